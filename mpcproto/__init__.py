@@ -1,0 +1,30 @@
+"""mpcproto: prototype a model-predictive controller for a process unit.
+
+Model (layer 1)
+    Model, Variable, Delay
+Operating points and linear models (layer 2)
+    OperatingPoint, LinearModel, DiscreteLinearModel, linearize, rga
+Controller protocol (layer 3)
+    Controller, Measurement, Targets, ControlOutput
+Errors
+    MpcprotoError and its subclasses
+"""
+
+from .exceptions import (
+    MpcprotoError, ModelError, NotBuiltError, SettingsError, ScenarioError,
+    OperatingPointError, SimulationError,
+)
+from .model import Model, Variable, Delay
+from .operating import OperatingPoint
+from .linear import LinearModel, DiscreteLinearModel, linearize, rga
+from .control.base import Controller, Measurement, Targets, ControlOutput
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "MpcprotoError", "ModelError", "NotBuiltError", "SettingsError", "ScenarioError",
+    "OperatingPointError", "SimulationError",
+    "Model", "Variable", "Delay",
+    "OperatingPoint", "LinearModel", "DiscreteLinearModel", "linearize", "rga",
+    "Controller", "Measurement", "Targets", "ControlOutput",
+]
