@@ -30,7 +30,7 @@ Example
 >>> qin = m.mv("inflow", nominal=0.1, unit="m3/s", low=0.0, high=0.5, description="feed valve")
 >>> qout = m.dv("draw", nominal=0.1, unit="m3/s", low=0.0, high=0.5, description="draw-off")
 >>> m.derivative(h, (qin - qout) / area)
->>> m.cv("level_meas", h, unit="m", low=0.0, high=3.0, description="level transmitter")
+>>> _ = m.cv("level_meas", h, unit="m", low=0.0, high=3.0, description="level transmitter")
 >>> m.build().state_names
 ('level',)
 """
