@@ -4,6 +4,8 @@ Model (layer 1)
     Model, Variable, Delay
 Operating points and linear models (layer 2)
     OperatingPoint, LinearModel, DiscreteLinearModel, linearize, rga
+Built-in models (layer 1)
+    models, make_model, available_models, transfer_matrix_model, TransferElement
 Controller protocol (layer 3)
     Controller, Measurement, Targets, ControlOutput
 Errors
@@ -18,6 +20,11 @@ from .model import Model, Variable, Delay
 from .operating import OperatingPoint
 from .linear import LinearModel, DiscreteLinearModel, linearize, rga
 from .control.base import Controller, Measurement, Targets, ControlOutput
+from . import models
+from .models import TransferElement, transfer_matrix_model
+
+make_model = models.make
+available_models = models.available
 
 __version__ = "0.1.0"
 
@@ -27,4 +34,5 @@ __all__ = [
     "Model", "Variable", "Delay",
     "OperatingPoint", "LinearModel", "DiscreteLinearModel", "linearize", "rga",
     "Controller", "Measurement", "Targets", "ControlOutput",
+    "models", "make_model", "available_models", "transfer_matrix_model", "TransferElement",
 ]
