@@ -1,0 +1,490 @@
+"""The closed loop: plant + instruments + actuators + faults + a controller, one sample at a time.
+
+:class:`ClosedLoop` can be stepped by hand (``reset()`` then ``step()``) or run to the end
+(``run()``); :func:`simulate` is the one-call convenience over it.  Both return a
+:class:`mpcproto.Trajectory`.
+
+Order of one sample ``k`` (time ``t = t0 + k*Ts``)
+--------------------------------------------------
+1. DVs, setpoints and limits are read from their signals (evaluated once for the whole run).
+2. The true CVs are computed from the plant state (inputs still at the previous sample's values).
+3. Each instrument turns its true CV into a reading (lag, bias, noise, sensor faults, dead time,
+   analyzer sample-and-hold) -> :class:`mpcproto.Measurement` with ``taken_at``/``fresh``.
+4. The controller's ``step`` answers with MVs; its wall time is recorded as ``diag.step_ms``.
+5. Each actuator applies limits, rate limits and valve faults -> the MVs applied to the plant.
+6. The row is recorded; the plant integrates over the sample with MVs and DVs held.
+
+A plant integration failure ends the run: the Trajectory keeps the rows recorded so far and says
+``status == "failed"`` with the integrator's message; nothing is raised.
+
+Randomness
+----------
+One ``rng`` (an int seed, a ``numpy.random.SeedSequence``, a ``Generator`` or None) is split into
+independent streams for the disturbance signals and the measurement noise, drawn before the run
+starts, so two runs with the same seed see the same disturbances and the same noise whatever the
+controller does.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+
+from ..control.base import Measurement, Targets, ControlOutput
+from ..exceptions import MpcprotoError, SettingsError, SimulationError
+from ..linear import delay_samples
+from ..model import suggest
+from ..operating import OperatingPoint
+from ..trajectory import RUN_FAILED, RUN_OK, Trajectory
+from .instruments import (Actuator, Fault, Instrument, actuator_from_spec, fault_from_spec,
+                          instrument_from_spec)
+from .plant import Plant
+from .signals import Signal, signal_from_spec
+
+__all__ = ["ClosedLoop", "simulate", "split_rng"]
+
+
+def split_rng(rng: Any, n: int) -> tuple[list[np.random.Generator], int | None]:
+    """*n* independent generators from an int / SeedSequence / Generator / None (and the int seed)."""
+    if isinstance(rng, np.random.Generator):
+        return list(rng.spawn(n)), None
+    if isinstance(rng, np.random.SeedSequence):
+        return [np.random.default_rng(s) for s in rng.spawn(n)], None
+    if rng is None or (isinstance(rng, (int, np.integer)) and not isinstance(rng, bool) and rng >= 0):
+        ss = np.random.SeedSequence(None if rng is None else int(rng))
+        seed = int(rng) if rng is not None else None
+        return [np.random.default_rng(s) for s in ss.spawn(n)], seed
+    raise SettingsError(
+        f"rng must be a non-negative int seed, a numpy SeedSequence or Generator, or None; "
+        f"found {rng!r}.")
+
+
+class ClosedLoop:
+    """A steppable closed-loop simulation of a nonlinear plant under a controller.
+
+    Parameters
+    ----------
+    plant_model : Model
+        Built model of the plant (its parameter values are the plant's).
+    controller : Controller
+        Anything with ``name``, ``reset(op, t0)`` and ``step(t, meas, dv, targets, dv_forecast)``.
+    op : OperatingPoint
+        Where the run starts: plant state, MVs and DVs; also the reference of relative signals.
+    Ts : float
+        Controller sample time (model time unit); the plant integrator is built for it once.
+    duration : float
+        Length of the run; rounded to a whole number of samples.
+    dvs : mapping DV name -> signal spec, optional
+        Disturbances, relative to ``op.d`` unless the spec gives a ``base``.
+    setpoints : mapping CV name -> signal spec or None, optional
+        Relative to ``op.y`` unless absolute; ``None`` = no setpoint (zone only).  CVs not listed
+        keep the setpoint ``op.y``.
+    cv_limits : mapping CV name -> {"low": spec, "high": spec}, optional
+        Zone limits given to the controller (and checked by the analysis); relative specs are
+        offsets from the model's physical bound on that side.  Default: the physical bounds.
+    mv_limits : mapping MV name -> {"low": spec, "high": spec, "rate": float}, optional
+        Operating limits given to the controller (``rate`` per time unit).  Default: physical.
+    instruments : mapping CV name -> Instrument or spec, optional
+    actuators : mapping MV name -> Actuator or spec, optional
+    faults : sequence of Fault or spec, optional
+    rng : int, SeedSequence, Generator or None
+        Seeds the disturbance and noise streams (see module docstring).
+    plant_parameters : mapping, optional
+        Parameter overrides for the plant only (model mismatch), via ``Model.with_parameters``.
+    integrator, integrator_options :
+        CasADi plugin and options for the plant (default: the model's choice, see
+        :class:`mpcproto.sim.Plant`).
+    t0 : float
+        Start time.
+    forecast : bool
+        Pass the true future measured DVs over the next ``forecast_steps`` samples as
+        ``dv_forecast`` (a perfect forecast, for studies of feedforward); default False (None).
+    forecast_steps : int
+    """
+
+    def __init__(self, plant_model: Any, controller: Any, *, op: OperatingPoint, Ts: float,
+                 duration: float, dvs: Mapping[str, Any] | None = None,
+                 setpoints: Mapping[str, Any] | None = None,
+                 cv_limits: Mapping[str, Any] | None = None,
+                 mv_limits: Mapping[str, Any] | None = None,
+                 instruments: Mapping[str, Any] | None = None,
+                 actuators: Mapping[str, Any] | None = None,
+                 faults: Sequence[Any] | None = None, rng: Any = None,
+                 plant_parameters: Mapping[str, float] | None = None,
+                 integrator: str | None = None, integrator_options: Mapping[str, Any] | None = None,
+                 t0: float = 0.0, forecast: bool = False, forecast_steps: int = 0):
+        self.model = plant_model.with_parameters(plant_parameters) if plant_parameters else plant_model
+        self.controller = controller
+        self.op = op
+        for meth in ("reset", "step"):
+            if not callable(getattr(controller, meth, None)):
+                raise SettingsError(
+                    f"ClosedLoop: the controller {controller!r} has no {meth}() method; it must "
+                    f"implement mpcproto.Controller (reset(op, t0) and step(t, meas, dv, targets)).")
+        if not (isinstance(duration, (int, float)) and math.isfinite(duration) and duration > 0):
+            raise SettingsError(f"ClosedLoop: 'duration' must be a finite number > 0; found {duration!r}.")
+        self.plant = Plant(self.model, Ts, integrator=integrator,
+                           options=dict(integrator_options) if integrator_options else None)
+        self.Ts = self.plant.Ts
+        self.t0 = float(t0)
+        self.n_steps = max(1, int(round(duration / self.Ts)))
+        m = self.model
+        for role, vec in (("state", op.x), ("mv", op.u), ("dv", op.d), ("cv", op.y)):
+            if np.asarray(vec).shape != (len(m.names(role)),):
+                raise SettingsError(
+                    f"ClosedLoop: the operating point has {np.asarray(vec).shape} {role} values; "
+                    f"model '{m.name}' has {len(m.names(role))} ({', '.join(m.names(role))}).")
+        self.forecast_steps = int(forecast_steps) if forecast else 0
+        (self._sig_rng, self._noise_rng), self.seed = split_rng(rng, 2)
+        self.faults = [fault_from_spec(f, what=f"faults[{i}]") for i, f in enumerate(faults or [])]
+        for i, f in enumerate(self.faults):
+            role, names = ("cv", m.cv_names) if f.on_sensor else ("mv", m.mv_names)
+            if f.variable not in names:
+                raise SettingsError(
+                    f"faults[{i}] ({f.kind}): '{f.variable}' is not a {role.upper()} of model "
+                    f"'{m.name}'{suggest(f.variable, names)}; its {role.upper()}s are: "
+                    f"{', '.join(names)}.")
+        self._setup_signals(dvs, setpoints, cv_limits, mv_limits)
+        self._setup_instruments(instruments)
+        self._setup_actuators(actuators)
+        self._started = False
+
+    # ------------------------------------------------------------------ setup
+    def _names_check(self, mapping: Mapping[str, Any] | None, role: str, arg: str) -> dict:
+        if mapping is None:
+            return {}
+        if not isinstance(mapping, Mapping):
+            raise SettingsError(f"ClosedLoop: '{arg}' must be a mapping of {role.upper()} names; "
+                                f"found {type(mapping).__name__}.")
+        names = self.model.names(role)
+        for k in mapping:
+            if k not in names:
+                raise SettingsError(
+                    f"ClosedLoop: {arg}: '{k}' is not a {role.upper()} of model '{self.model.name}'"
+                    f"{suggest(str(k), names)}; its {role.upper()}s are: {', '.join(names)}.")
+        return dict(mapping)
+
+    def _series(self, spec: Any, reference: float, what: str) -> np.ndarray:
+        sig = signal_from_spec(spec, what=what, rng=self._sig_rng)
+        if sig.relative and not math.isfinite(reference):
+            raise SettingsError(
+                f"{what}: a relative signal needs a finite reference value; give the spec a "
+                f"'base' (an absolute value) instead.")
+        return np.asarray(sig.value(self.times), float) + sig.resolve(reference)
+
+    def _setup_signals(self, dvs, setpoints, cv_limits, mv_limits) -> None:
+        m, op, N = self.model, self.op, self.n_steps
+        self.times = self.t0 + self.Ts * np.arange(N)
+        tf = self.t0 + self.Ts * np.arange(N + self.forecast_steps)
+        dvs = self._names_check(dvs, "dv", "dvs")
+        self.D = np.tile(np.asarray(op.d, float), (len(tf), 1))
+        for j, n in enumerate(m.dv_names):
+            if n in dvs:
+                sig = signal_from_spec(dvs[n], what=f"dvs.{n}", rng=self._sig_rng)
+                self.D[:, j] = np.asarray(sig.value(tf), float) + sig.resolve(op.d[j])
+        sps = self._names_check(setpoints, "cv", "setpoints")
+        self.SP = np.tile(np.asarray(op.y, float), (N, 1))
+        for j, n in enumerate(m.cv_names):
+            if n in sps:
+                self.SP[:, j] = np.nan if sps[n] is None else self._series(sps[n], op.y[j], f"setpoints.{n}")
+        self.LO, self.HI = self._limit_series(cv_limits, "cv", "cv_limits")
+        self.MVLO, self.MVHI = self._limit_series(mv_limits, "mv", "mv_limits", allow_rate=True)
+        bad = np.argwhere(self.LO > self.HI)
+        if bad.size:
+            k, j = bad[0]
+            raise SettingsError(
+                f"cv_limits.{m.cv_names[j]}: low ({self.LO[k, j]:g}) is above high "
+                f"({self.HI[k, j]:g}) at t={self.times[k]:g}.")
+        bad = np.argwhere(self.MVLO > self.MVHI)
+        if bad.size:
+            k, j = bad[0]
+            raise SettingsError(
+                f"mv_limits.{m.mv_names[j]}: low ({self.MVLO[k, j]:g}) is above high "
+                f"({self.MVHI[k, j]:g}) at t={self.times[k]:g}.")
+
+    def _limit_series(self, spec: Mapping[str, Any] | None, role: str, arg: str,
+                      allow_rate: bool = False) -> tuple[np.ndarray, np.ndarray]:
+        m, N = self.model, self.n_steps
+        spec = self._names_check(spec, role, arg)
+        plo, phi = m.bounds(role)
+        LO, HI = np.tile(plo, (N, 1)), np.tile(phi, (N, 1))
+        if allow_rate:
+            self.mv_rate = np.full(len(m.names(role)), np.inf)
+        for j, n in enumerate(m.names(role)):
+            if n not in spec:
+                continue
+            s = spec[n]
+            allowed = ("low", "high", "rate") if allow_rate else ("low", "high")
+            if not isinstance(s, Mapping):
+                raise SettingsError(f"{arg}.{n}: expected a table with keys {', '.join(allowed)}; "
+                                    f"found {s!r}.")
+            for k in s:
+                if k not in allowed:
+                    raise SettingsError(f"{arg}.{n}: unknown key '{k}'{suggest(str(k), allowed)}; "
+                                        f"allowed keys: {', '.join(allowed)}.")
+            if "low" in s and s["low"] is not None:
+                LO[:, j] = self._series(s["low"], plo[j], f"{arg}.{n}.low")
+            if "high" in s and s["high"] is not None:
+                HI[:, j] = self._series(s["high"], phi[j], f"{arg}.{n}.high")
+            if allow_rate and "rate" in s:
+                r = s["rate"]
+                if isinstance(r, bool) or not isinstance(r, (int, float)) or not r >= 0:
+                    raise SettingsError(f"{arg}.{n}.rate: must be a number >= 0 (per time unit); "
+                                        f"found {r!r}.")
+                self.mv_rate[j] = float(r)
+        return LO, HI
+
+    def _setup_instruments(self, instruments) -> None:
+        m, N, Ts = self.model, self.n_steps, self.Ts
+        spec = self._names_check(instruments, "cv", "instruments")
+        self.instruments = {n: instrument_from_spec(spec.get(n, Instrument()), what=f"instruments.{n}")
+                            for n in m.cv_names}
+        ny = m.ny
+        ins = [self.instruments[n] for n in m.cv_names]
+        self._alpha = np.array([math.exp(-Ts / i.lag) if i.lag > 0 else 0.0 for i in ins])
+        self._bias = np.array([i.bias for i in ins])
+        self._dl = [delay_samples(i.dead_time, Ts, what=f"instrument dead time on {n}")
+                    for i, n in zip(ins, m.cv_names)]
+        self._per = [max(1, delay_samples(i.period, Ts, what=f"analyzer period on {n}"))
+                     if i.period else 1 for i, n in zip(ins, m.cv_names)]
+        # the noise sequence is drawn once, before the run, for the whole run
+        std = np.array([i.noise_std for i in ins])
+        self._noise = self._noise_rng.standard_normal((N, ny)) * std
+
+    def _setup_actuators(self, actuators) -> None:
+        m = self.model
+        spec = self._names_check(actuators, "mv", "actuators")
+        self.actuators = {n: actuator_from_spec(spec.get(n, Actuator()), what=f"actuators.{n}")
+                          for n in m.mv_names}
+        plo, phi = m.bounds("mv")
+        acts = [self.actuators[n] for n in m.mv_names]
+        self._act_lo = np.maximum(plo, [a.low for a in acts])
+        self._act_hi = np.minimum(phi, [a.high for a in acts])
+        self._act_rate = np.array([a.rate for a in acts]) * self.Ts
+
+    # ------------------------------------------------------------------ running
+    def reset(self) -> None:
+        """Put plant, instruments, actuators and controller at the operating point; clear records."""
+        m, op, N = self.model, self.op, self.n_steps
+        self.plant.reset(op.x, op.u, op.d)
+        self.controller.reset(op, self.t0)
+        self.k = 0
+        self.u_prev = np.asarray(op.u, float).copy()
+        self._filt = np.asarray(op.y, float).copy()
+        self._meas_hist = np.zeros((N, m.ny))
+        self._y0 = np.asarray(op.y, float).copy()
+        self._stuck: dict[int, float] = {}
+        self._frozen: dict[int, float] = {}
+        self._rec = {
+            "x": np.full((N, m.nx), np.nan), "u": np.full((N, m.nu), np.nan),
+            "ucmd": np.full((N, m.nu), np.nan), "y": np.full((N, m.ny), np.nan),
+            "ym": np.full((N, m.ny), np.nan), "taken": np.full((N, m.ny), np.nan),
+        }
+        self._status: list[str] = []
+        self._diag: list[dict[str, float]] = []
+        self._fault_flags = np.zeros((N, len(self._fault_vars())))
+        self.status, self.message, self.failed_at = RUN_OK, "", None
+        self.done = False
+        self._started = True
+        self._cv_index = {n: j for j, n in enumerate(m.cv_names)}
+        self._mv_index = {n: j for j, n in enumerate(m.mv_names)}
+        self._dv_mask = np.array([v.measured for v in m.variables("dv")], bool)
+
+    def _fault_vars(self) -> list[str]:
+        out: list[str] = []
+        for f in self.faults:
+            if f.variable not in out:
+                out.append(f.variable)
+        return out
+
+    def _measure(self, k: int, t: float, y: np.ndarray) -> Measurement:
+        a = self._alpha
+        self._filt = a * self._filt + (1.0 - a) * y
+        mk = self._filt + self._bias + self._noise[k]
+        for f in self.faults:
+            if not f.on_sensor:
+                continue
+            j = self._cv_index[f.variable]
+            if not f.active(t):
+                self._frozen.pop(id(f), None)
+                continue
+            if f.kind == "sensor_frozen":
+                if id(f) not in self._frozen:
+                    self._frozen[id(f)] = (self._meas_hist[k - 1, j] if k > 0
+                                           else self._y0[j] + self._bias[j])
+                mk[j] = self._frozen[id(f)]
+            elif f.kind == "sensor_drift":
+                mk[j] += f.rate * (t - f.at)
+            elif f.kind == "sensor_nan":
+                mk[j] = np.nan
+            elif f.kind == "sensor_bias":
+                mk[j] += f.size
+        self._meas_hist[k] = mk
+        ny = len(mk)
+        val = np.empty(ny)
+        taken = np.empty(ny)
+        fresh = np.empty(ny, bool)
+        for j in range(ny):
+            nd, P = self._dl[j], self._per[j]
+            js = ((k - nd) // P) * P
+            val[j] = self._meas_hist[js, j] if js >= 0 else self._y0[j] + self._bias[j]
+            taken[j] = self.t0 + js * self.Ts
+            fresh[j] = js + nd == k
+        return Measurement(y=val, taken_at=taken, fresh=fresh)
+
+    def _actuate(self, t: float, ucmd: np.ndarray) -> np.ndarray:
+        lo, hi = self._act_lo.copy(), self._act_hi.copy()
+        stuck: dict[int, float] = {}
+        for f in self.faults:
+            if f.on_sensor:
+                continue
+            j = self._mv_index[f.variable]
+            if not f.active(t):
+                self._stuck.pop(id(f), None)
+                continue
+            if f.kind == "valve_saturation":
+                lo[j], hi[j] = max(lo[j], f.low), min(hi[j], f.high)
+            elif f.kind == "valve_stuck":
+                if id(f) not in self._stuck:
+                    self._stuck[id(f)] = f.position if f.position is not None else self.u_prev[j]
+                stuck[j] = self._stuck[id(f)]
+        cmd = np.where(np.isfinite(ucmd), ucmd, self.u_prev)   # a NaN request holds the valve
+        r = self._act_rate
+        u = np.clip(cmd, self.u_prev - r, self.u_prev + r)
+        u = np.clip(u, lo, np.maximum(lo, hi))
+        for j, v in stuck.items():
+            u[j] = v
+        return u
+
+    def step(self) -> bool:
+        """Advance one sample; returns False when the run is over (end reached or failed)."""
+        if not self._started:
+            raise SettingsError("ClosedLoop.step(): call reset() first.")
+        if self.done:
+            return False
+        k, m = self.k, self.model
+        t = float(self.times[k])
+        d = self.D[k]
+        y = self.plant.output(self.u_prev, d)
+        meas = self._measure(k, t, y)
+        dv_seen = np.where(self._dv_mask, d, np.nan)
+        rate = np.where(np.isfinite(self.mv_rate), self.mv_rate * self.Ts, np.inf)
+        targets = Targets(setpoint=self.SP[k].copy(), cv_low=self.LO[k].copy(), cv_high=self.HI[k].copy(),
+                          mv_low=self.MVLO[k].copy(), mv_high=self.MVHI[k].copy(), mv_rate=rate)
+        fc = None
+        if self.forecast_steps:
+            fc = np.where(self._dv_mask, self.D[k:k + self.forecast_steps], np.nan)
+        t_start = time.perf_counter()
+        try:
+            out = self.controller.step(t, meas, dv_seen, targets, fc)
+        except MpcprotoError as exc:
+            return self._fail(k, f"controller '{getattr(self.controller, 'name', '?')}' raised "
+                                 f"{type(exc).__name__} at t={t:g}: {exc}", rows=k)
+        step_ms = (time.perf_counter() - t_start) * 1e3
+        if not isinstance(out, ControlOutput):
+            raise SettingsError(
+                f"controller '{getattr(self.controller, 'name', '?')}'.step() must return a "
+                f"ControlOutput; got {type(out).__name__}.")
+        ucmd = np.asarray(out.u, float).reshape(-1)
+        if ucmd.shape != (m.nu,):
+            raise SettingsError(
+                f"controller '{getattr(self.controller, 'name', '?')}' returned {ucmd.shape[0]} MV "
+                f"values; model '{m.name}' has {m.nu} ({', '.join(m.mv_names)}).")
+        u = self._actuate(t, ucmd)
+        rec = self._rec
+        rec["x"][k], rec["u"][k], rec["ucmd"][k] = self.plant.x, u, ucmd
+        rec["y"][k], rec["ym"][k], rec["taken"][k] = y, meas.y, meas.taken_at
+        self._status.append(str(out.status))
+        diag = {"step_ms": step_ms}
+        for key, v in (out.diagnostics or {}).items():
+            if isinstance(v, (bool, np.bool_)):
+                diag[str(key)] = float(v)
+            elif isinstance(v, (int, float, np.integer, np.floating)):
+                diag[str(key)] = float(v)
+        self._diag.append(diag)
+        for i, var in enumerate(self._fault_vars()):
+            self._fault_flags[k, i] = float(any(f.variable == var and f.active(t) for f in self.faults))
+        self.u_prev = u
+        try:
+            self.plant.advance(u, d)
+        except SimulationError as exc:
+            return self._fail(k, str(exc), rows=k + 1)
+        self.k += 1
+        if self.k >= self.n_steps:
+            self.done = True
+            return False
+        return True
+
+    def _fail(self, k: int, message: str, rows: int) -> bool:
+        self.status, self.message, self.failed_at = RUN_FAILED, message, float(self.times[k])
+        self.k = rows
+        self.done = True
+        return False
+
+    def run(self) -> Trajectory:
+        """Reset, step to the end (or to a failure) and return the Trajectory."""
+        self.reset()
+        while self.step():
+            pass
+        return self.trajectory()
+
+    def trajectory(self) -> Trajectory:
+        """The Trajectory of the samples recorded so far."""
+        if not self._started:
+            raise SettingsError("ClosedLoop.trajectory(): nothing recorded; call reset()/run() first.")
+        m, n = self.model, self.k
+        cols: dict[str, np.ndarray] = {}
+        rec = self._rec
+
+        def put(kind: str, names: Sequence[str], arr: np.ndarray) -> None:
+            for j, name in enumerate(names):
+                cols[f"{kind}.{name}"] = arr[:n, j]
+
+        put("x", m.state_names, rec["x"])
+        put("u", m.mv_names, rec["u"])
+        put("ucmd", m.mv_names, rec["ucmd"])
+        put("d", m.dv_names, self.D)
+        put("y", m.cv_names, rec["y"])
+        put("ym", m.cv_names, rec["ym"])
+        put("taken", m.cv_names, rec["taken"])
+        put("sp", m.cv_names, self.SP)
+        put("lo", m.cv_names, self.LO)
+        put("hi", m.cv_names, self.HI)
+        put("mvlo", m.mv_names, self.MVLO)
+        put("mvhi", m.mv_names, self.MVHI)
+        put("fault", self._fault_vars(), self._fault_flags)
+        keys: list[str] = []
+        for dg in self._diag[:n]:
+            for key in dg:
+                if key not in keys:
+                    keys.append(key)
+        for key in keys:
+            cols[f"diag.{key}"] = np.array([dg.get(key, np.nan) for dg in self._diag[:n]])
+        units = {v.name: v.unit for v in m.variables() if v.role != "parameter"}
+        meta = {
+            "model": m.name, "controller": getattr(self.controller, "name", type(self.controller).__name__),
+            "Ts": self.Ts, "time_unit": m.time_unit, "t0": self.t0, "n_steps": self.n_steps,
+            "seed": self.seed, "states": list(m.state_names), "mvs": list(m.mv_names),
+            "dvs": list(m.dv_names), "measured_dvs": list(m.measured_dv_names),
+            "cvs": list(m.cv_names), "units": units, "plant_parameters": m.parameters,
+            "integrator": self.plant.plugin, "status": self.status, "message": self.message,
+            "failed_at": self.failed_at, "faults": [f.as_dict() for f in self.faults],
+            "instruments": {n: vars(i) for n, i in self.instruments.items()},
+        }
+        return Trajectory(self.times[:n], cols, {"status": self._status[:n]}, meta)
+
+
+def simulate(plant_model: Any, controller: Any, *, op: OperatingPoint, Ts: float, duration: float,
+             **kwargs: Any) -> Trajectory:
+    """Run a closed loop from *op* for *duration* and return its :class:`mpcproto.Trajectory`.
+
+    A convenience over ``ClosedLoop(plant_model, controller, op=op, Ts=Ts, duration=duration,
+    **kwargs).run()``; see :class:`ClosedLoop` for the keyword arguments (``dvs``, ``setpoints``,
+    ``cv_limits``, ``mv_limits``, ``instruments``, ``actuators``, ``faults``, ``rng``,
+    ``plant_parameters``, ``integrator``, ``integrator_options``, ``t0``, ``forecast``).
+    """
+    return ClosedLoop(plant_model, controller, op=op, Ts=Ts, duration=duration, **kwargs).run()

@@ -1,0 +1,152 @@
+"""The nonlinear plant advanced one sample at a time by a CasADi integrator built once.
+
+MVs and DVs are held constant over each sample (zero-order hold).  Every dead time declared with
+:meth:`mpcproto.Model.delayed` becomes a buffer of whole samples, rounded exactly as
+:func:`mpcproto.linear.delay_samples` rounds it for the controller's discrete model, so the plant
+and the controller's model see the same delays.
+
+Integrators
+-----------
+The plugin is the model's ``integrator`` attribute unless overridden.  ``"cvodes"`` (the default:
+adaptive-order, adaptive-step BDF from SUNDIALS) is the safe choice for stiff units such as an
+exothermic reactor; ``"idas"`` is the same family; the fixed-step ``"rk"`` and ``"collocation"``
+plugins are faster per call but need an accuracy check (``benchmarks/bench_sim.py`` measures it).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import casadi as ca
+import numpy as np
+
+from ..exceptions import SettingsError, SimulationError
+from ..linear import delay_samples
+
+__all__ = ["Plant", "DEFAULT_TOLERANCES"]
+
+DEFAULT_TOLERANCES = {"abstol": 1e-9, "reltol": 1e-8}
+_ADAPTIVE = ("cvodes", "idas")
+
+
+class Plant:
+    """A built model stepped by a CasADi integrator over one sample time.
+
+    Parameters
+    ----------
+    model : Model
+        A built model; its current parameter values are the plant's (use
+        ``model.with_parameters(...)`` for a plant that differs from the controller's model).
+    Ts : float
+        Sample time (model time unit); the integrator is built once for it.
+    integrator : str, optional
+        CasADi plugin; default ``model.integrator``.
+    options : dict, optional
+        Plugin options (for cvodes/idas the defaults are ``abstol=1e-9, reltol=1e-8``).
+
+    Attributes
+    ----------
+    step_ : casadi.Function
+        ``(x0, p) -> xf`` over one sample, ``p = [u; d; z; parameters]``.
+    delay_steps_ : list of int
+        Whole-sample length of each delay buffer (``model.delays`` order).
+    """
+
+    def __init__(self, model: Any, Ts: float, *, integrator: str | None = None,
+                 options: dict[str, Any] | None = None):
+        if not getattr(model, "is_built", False):
+            from ..exceptions import NotBuiltError
+
+            raise NotBuiltError(f"Plant: model '{model.name}' is not built; call model.build() first.")
+        if not (isinstance(Ts, (int, float)) and math.isfinite(Ts) and Ts > 0):
+            raise SettingsError(f"Plant: the sample time Ts must be a finite number > 0; got {Ts!r}.")
+        self.model = model
+        self.Ts = float(Ts)
+        self.plugin = integrator or getattr(model, "integrator", "cvodes") or "cvodes"
+        opts = dict(DEFAULT_TOLERANCES) if self.plugin in _ADAPTIVE else {}
+        opts.update(options or {})
+        self.options = opts
+        nx, nu, nd, nz = model.nx, model.nu, model.nd, model.nz
+        npar = len(model.parameter_names)
+        x = ca.SX.sym("x", nx)
+        pv = ca.SX.sym("p", nu + nd + nz + npar)
+        u, d = pv[:nu], pv[nu:nu + nd]
+        z, p = pv[nu + nd:nu + nd + nz], pv[nu + nd + nz:]
+        ode = model.ode_(x, u, d, z, p)
+        try:
+            F = ca.integrator(f"{model.name}_plant", self.plugin, {"x": x, "p": pv, "ode": ode},
+                              0.0, self.Ts, opts)
+        except RuntimeError as exc:
+            raise SettingsError(
+                f"Plant: cannot build the CasADi integrator {self.plugin!r} for model "
+                f"'{model.name}' with options {opts}: {str(exc).splitlines()[-1]}") from None
+        self.integrator_ = F
+        X0 = ca.MX.sym("x0", nx)
+        P = ca.MX.sym("p", pv.numel())
+        self.step_ = ca.Function(f"{model.name}_plant_step", [X0, P], [F(x0=X0, p=P)["xf"]],
+                                 ["x0", "p"], ["xf"])
+        self.delay_steps_ = [delay_samples(dl.dead_time, self.Ts, what=f"dead time on {dl.source}")
+                             for dl in model.delays]
+        self._z_src = [(dl.source_role, model.names(dl.source_role).index(dl.source))
+                       for dl in model.delays]
+        self._p = model.p
+        self.x = np.zeros(nx)
+        self._hist_u: list[np.ndarray] = []
+        self._hist_d: list[np.ndarray] = []
+        self._u0 = np.zeros(nu)
+        self._d0 = np.zeros(nd)
+        self.k = 0
+
+    # ------------------------------------------------------------------ run
+    def reset(self, x0: np.ndarray, u0: np.ndarray, d0: np.ndarray) -> None:
+        """Start at state *x0* with every delay buffer filled with *u0*/*d0* (a steady past)."""
+        m = self.model
+        self.x = m.vector("state", x0, what="Plant.reset x0").copy()
+        self._u0 = m.vector("mv", u0, what="Plant.reset u0").copy()
+        self._d0 = m.vector("dv", d0, what="Plant.reset d0").copy()
+        self._hist_u, self._hist_d = [], []
+        self.k = 0
+
+    def z(self, u: np.ndarray, d: np.ndarray) -> np.ndarray:
+        """Delayed inputs acting over the current sample if *u*, *d* are applied now."""
+        out = np.empty(len(self._z_src))
+        for i, ((role, j), n) in enumerate(zip(self._z_src, self.delay_steps_)):
+            if n == 0:
+                out[i] = u[j] if role == "mv" else d[j]
+                continue
+            idx = self.k - n
+            hist, first = (self._hist_u, self._u0) if role == "mv" else (self._hist_d, self._d0)
+            out[i] = hist[idx][j] if idx >= 0 else first[j]
+        return out
+
+    def output(self, u: np.ndarray, d: np.ndarray) -> np.ndarray:
+        """True CVs at the current state with inputs *u*, *d*."""
+        return np.asarray(self.model.out_(self.x, u, d, self.z(u, d), self._p), float).reshape(-1)
+
+    def advance(self, u: np.ndarray, d: np.ndarray) -> np.ndarray:
+        """Integrate one sample with *u*, *d* held; returns the new state.
+
+        Raises :class:`SimulationError` if the integrator fails or the state becomes non-finite
+        (the plant state is left at the start of the failed sample).
+        """
+        u = np.asarray(u, float)
+        d = np.asarray(d, float)
+        pv = np.concatenate([u, d, self.z(u, d), self._p])
+        try:
+            xf = np.asarray(self.step_(self.x, pv), float).reshape(-1)
+        except RuntimeError as exc:
+            last = [ln for ln in str(exc).splitlines() if ln.strip()]
+            raise SimulationError(
+                f"plant integrator {self.plugin!r} failed on the sample starting at step {self.k}: "
+                f"{last[-1] if last else exc}") from None
+        if not np.all(np.isfinite(xf)):
+            bad = [n for n, v in zip(self.model.state_names, xf) if not math.isfinite(v)]
+            raise SimulationError(
+                f"plant state became non-finite on the sample starting at step {self.k}: "
+                f"{', '.join(bad)}")
+        self._hist_u.append(u.copy())
+        self._hist_d.append(d.copy())
+        self.x = xf
+        self.k += 1
+        return xf

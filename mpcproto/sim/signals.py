@@ -1,0 +1,475 @@
+"""Time signals for disturbances, setpoints and zone limits.
+
+Every signal is an object with ``value(t)`` that accepts a scalar or an array of times and returns
+floats of the same shape.  A signal is either *relative* (``base`` is None: it is added to the
+value the variable has at the operating point -- the nominal DV, the initial CV, the model's
+physical bound for a limit) or *absolute* (``base`` given: ``value(t) = base + shape(t)``).
+
+Plain-dict specs (:func:`signal_from_spec`)
+-------------------------------------------
+Every spec has ``"kind"`` and may have ``"base"``.  Times are in the model's time unit.
+
+=============  ============================================================================
+kind           keys (required; *optional* = default)
+=============  ============================================================================
+constant       ``value``
+step           ``at``, ``size``
+ramp           ``start``, ``duration`` (> 0), ``size`` (total change, reached at start+duration
+               and held afterwards)
+pulse          ``at``, ``duration`` (> 0), ``size``
+sine           ``amplitude``, ``period`` (> 0); *start* = 0, *phase_deg* = 0 (zero before start)
+random_walk    ``step_std`` (>= 0, standard deviation of each increment), ``interval`` (> 0,
+               time between increments); *start* = 0, *low* / *high* (clip the walk),
+               *seed* (else the ``rng`` given to the factory)
+table          ``times`` (strictly increasing), ``values``; *interpolation* = ``"linear"`` or
+               ``"hold"`` (flat before the first and after the last point)
+csv            ``path``; *time_column* / *value_column* (name or 0-based index; default the
+               first and second columns), *interpolation*, *max_gap* (largest allowed time
+               step between rows)
+=============  ============================================================================
+
+A list of specs is their sum.  A bare number is an absolute constant.
+
+Example
+-------
+>>> from mpcproto.sim import signal_from_spec
+>>> s = signal_from_spec({"kind": "step", "at": 10, "size": 0.5}, what="dvs.feed")
+>>> s.value([0, 10, 20]).tolist()
+[0.0, 0.5, 0.5]
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..exceptions import SettingsError
+from ..model import suggest
+
+__all__ = ["Signal", "Constant", "Step", "Ramp", "Pulse", "Sine", "RandomWalk", "Table", "Sum",
+           "signal_from_spec", "table_from_csv", "SIGNAL_KINDS"]
+
+
+class Signal:
+    """Base class: ``value(t) = (base or 0) + shape(t)``."""
+
+    kind = "signal"
+
+    def __init__(self, base: float | None = None):
+        self.base = None if base is None else float(base)
+
+    @property
+    def relative(self) -> bool:
+        """True when the signal is an offset from the variable's operating value."""
+        return self.base is None
+
+    def shape(self, t: np.ndarray) -> np.ndarray:  # pragma: no cover - abstract
+        raise NotImplementedError
+
+    def value(self, t: Any) -> Any:
+        """Value at time(s) *t* (scalar in, float out; array in, array out)."""
+        arr = np.asarray(t, float)
+        out = self.shape(np.atleast_1d(arr)) + (self.base or 0.0)
+        return float(out[0]) if arr.ndim == 0 else out.reshape(arr.shape)
+
+    def __call__(self, t: Any) -> Any:
+        return self.value(t)
+
+    def resolve(self, reference: float) -> float:
+        """Offset to add to :meth:`value`: *reference* for a relative signal, 0 otherwise."""
+        return float(reference) if self.relative else 0.0
+
+    def __repr__(self) -> str:
+        fields = {k: v for k, v in vars(self).items() if not k.startswith("_")}
+        return f"{type(self).__name__}({', '.join(f'{k}={v!r}' for k, v in fields.items())})"
+
+
+class Constant(Signal):
+    """A constant ``value`` (absolute unless ``relative=True``)."""
+
+    kind = "constant"
+
+    def __init__(self, value: float, *, relative: bool = False):
+        super().__init__(None if relative else float(value))
+        self._offset = float(value) if relative else 0.0
+
+    def shape(self, t):
+        return np.full(t.shape, self._offset)
+
+
+class Step(Signal):
+    """0 before ``at``, ``size`` from ``at`` on."""
+
+    kind = "step"
+
+    def __init__(self, at: float, size: float, base: float | None = None):
+        super().__init__(base)
+        self.at, self.size = float(at), float(size)
+
+    def shape(self, t):
+        return np.where(t >= self.at, self.size, 0.0)
+
+
+class Ramp(Signal):
+    """0 before ``start``, rising linearly to ``size`` at ``start + duration``, then held."""
+
+    kind = "ramp"
+
+    def __init__(self, start: float, duration: float, size: float, base: float | None = None):
+        super().__init__(base)
+        self.start, self.duration, self.size = float(start), float(duration), float(size)
+
+    def shape(self, t):
+        return self.size * np.clip((t - self.start) / self.duration, 0.0, 1.0)
+
+
+class Pulse(Signal):
+    """``size`` for ``at <= t < at + duration``, 0 otherwise."""
+
+    kind = "pulse"
+
+    def __init__(self, at: float, duration: float, size: float, base: float | None = None):
+        super().__init__(base)
+        self.at, self.duration, self.size = float(at), float(duration), float(size)
+
+    def shape(self, t):
+        return np.where((t >= self.at) & (t < self.at + self.duration), self.size, 0.0)
+
+
+class Sine(Signal):
+    """``amplitude * sin(2 pi (t - start) / period + phase)`` from ``start`` on, 0 before."""
+
+    kind = "sine"
+
+    def __init__(self, amplitude: float, period: float, start: float = 0.0, phase_deg: float = 0.0,
+                 base: float | None = None):
+        super().__init__(base)
+        self.amplitude, self.period = float(amplitude), float(period)
+        self.start, self.phase_deg = float(start), float(phase_deg)
+
+    def shape(self, t):
+        arg = 2 * np.pi * (t - self.start) / self.period + np.deg2rad(self.phase_deg)
+        return np.where(t >= self.start, self.amplitude * np.sin(arg), 0.0)
+
+
+class RandomWalk(Signal):
+    """Piecewise-constant random walk: every ``interval`` an increment N(0, step_std^2) is added.
+
+    The increments come from *rng* (a ``numpy.random.Generator`` or a seed); they are drawn in
+    order as later times are asked for, so the same seed always gives the same path whatever the
+    order of the queries.  ``low``/``high`` clip the walk (the clipped value is where it continues).
+    """
+
+    kind = "random_walk"
+
+    def __init__(self, step_std: float, interval: float, *, start: float = 0.0,
+                 low: float = -math.inf, high: float = math.inf, rng: Any = None,
+                 base: float | None = None):
+        super().__init__(base)
+        self.step_std, self.interval, self.start = float(step_std), float(interval), float(start)
+        self.low, self.high = float(low), float(high)
+        self._rng = np.random.default_rng(rng)
+        self._path = np.zeros(1)   # value on [start + k*interval, start + (k+1)*interval)
+
+    def _extend(self, n: int) -> None:
+        have = self._path.shape[0]
+        if n <= have:
+            return
+        inc = self._rng.standard_normal(n - have) * self.step_std
+        out = np.empty(n)
+        out[:have] = self._path
+        v = self._path[-1]
+        for i, s in enumerate(inc, start=have):
+            v = min(max(v + s, self.low), self.high)
+            out[i] = v
+        self._path = out
+
+    def shape(self, t):
+        k = np.floor((t - self.start) / self.interval).astype(np.int64)
+        k = np.clip(k, -1, None)
+        if k.size:
+            self._extend(int(k.max()) + 1)
+        return np.where(k >= 0, self._path[np.clip(k, 0, None)], 0.0)
+
+
+class Table(Signal):
+    """Values at given times, linear between them (``"linear"``) or held (``"hold"``)."""
+
+    kind = "table"
+
+    def __init__(self, times: Sequence[float], values: Sequence[float], *,
+                 interpolation: str = "linear", base: float | None = None):
+        super().__init__(base)
+        self.times = np.asarray(times, float)
+        self.values = np.asarray(values, float)
+        self.interpolation = interpolation
+
+    def shape(self, t):
+        if self.interpolation == "linear":
+            return np.interp(t, self.times, self.values)
+        idx = np.searchsorted(self.times, t, side="right") - 1
+        return self.values[np.clip(idx, 0, len(self.values) - 1)]
+
+
+class Sum(Signal):
+    """Sum of several signals; absolute if any part has a base (at most one may)."""
+
+    kind = "sum"
+
+    def __init__(self, parts: Sequence[Signal]):
+        bases = [p.base for p in parts if p.base is not None]
+        super().__init__(bases[0] if bases else None)
+        self.parts = list(parts)
+
+    def shape(self, t):
+        out = np.zeros(t.shape)
+        for p in self.parts:
+            out = out + p.shape(t)
+        return out
+
+
+# ---------------------------------------------------------------------------------- factory
+_KEYS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
+    # kind: (required, optional)
+    "constant": (("value",), ()),
+    "step": (("at", "size"), ("base",)),
+    "ramp": (("start", "duration", "size"), ("base",)),
+    "pulse": (("at", "duration", "size"), ("base",)),
+    "sine": (("amplitude", "period"), ("start", "phase_deg", "base")),
+    "random_walk": (("step_std", "interval"), ("start", "low", "high", "seed", "base")),
+    "table": (("times", "values"), ("interpolation", "base")),
+    "csv": (("path",), ("time_column", "value_column", "interpolation", "max_gap", "base")),
+}
+SIGNAL_KINDS = tuple(_KEYS)
+
+
+def check_keys(spec: Mapping[str, Any], allowed: Sequence[str], required: Sequence[str], *,
+               what: str, kind: str) -> None:
+    """Raise :class:`SettingsError` for a missing or unknown key of a spec dict."""
+    for k in spec:
+        if k not in allowed:
+            raise SettingsError(
+                f"{what}: unknown key '{k}' for kind '{kind}'{suggest(str(k), list(allowed))}; "
+                f"allowed keys: {', '.join(allowed)}.")
+    for k in required:
+        if k not in spec:
+            raise SettingsError(
+                f"{what}: kind '{kind}' needs the key '{k}'; found keys: {', '.join(map(str, spec))}.")
+
+
+def number(spec: Mapping[str, Any], key: str, *, what: str, low: float = -math.inf,
+           strict_low: bool = False, default: Any = None, allow_inf: bool = False) -> float:
+    """Read ``spec[key]`` as a float in range, or raise a :class:`SettingsError` naming it."""
+    if key not in spec:
+        return default
+    v = spec[key]
+    try:
+        if isinstance(v, bool):
+            raise TypeError
+        f = float(v)
+    except (TypeError, ValueError):
+        raise SettingsError(f"{what}: '{key}' must be a number; found {v!r}.") from None
+    if math.isnan(f) or (math.isinf(f) and not allow_inf):
+        raise SettingsError(f"{what}: '{key}' must be a finite number; found {v!r}.")
+    if (f <= low) if strict_low else (f < low):
+        rel = ">" if strict_low else ">="
+        raise SettingsError(f"{what}: '{key}' must be {rel} {low:g}; found {f:g}.")
+    return f
+
+
+def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
+                     base_dir: str | Path | None = None) -> Signal:
+    """Build a :class:`Signal` from a plain spec (dict, list of dicts, number or Signal).
+
+    Parameters
+    ----------
+    spec : Mapping, list, float or Signal
+        See the module docstring for the keys of each kind.
+    what : str
+        Where the spec comes from (``"dvs.draw_off"``); every error message starts with it.
+    rng : int, numpy.random.Generator or None
+        Source of randomness for ``random_walk`` specs without their own ``seed``.
+    base_dir : path, optional
+        Directory relative ``csv`` paths are resolved against.
+
+    Raises
+    ------
+    SettingsError
+        Unknown kind (with a did-you-mean hint), missing or unknown key, a value of the wrong type
+        or out of range (negative duration, non-positive period...), a table with unsorted times.
+    """
+    if isinstance(spec, Signal):
+        return spec
+    if isinstance(spec, (int, float)) and not isinstance(spec, bool):
+        if not math.isfinite(float(spec)):
+            raise SettingsError(f"{what}: a constant signal must be finite; found {spec!r}.")
+        return Constant(float(spec))
+    if isinstance(spec, (list, tuple)):
+        if not spec:
+            raise SettingsError(f"{what}: an empty list is not a signal; give at least one spec.")
+        parts = [signal_from_spec(s, what=f"{what}[{i}]", rng=rng, base_dir=base_dir)
+                 for i, s in enumerate(spec)]
+        if sum(p.base is not None for p in parts) > 1:
+            raise SettingsError(
+                f"{what}: at most one part of a summed signal may give a 'base' (absolute value); "
+                f"found {sum(p.base is not None for p in parts)}.")
+        return parts[0] if len(parts) == 1 else Sum(parts)
+    if not isinstance(spec, Mapping):
+        raise SettingsError(
+            f"{what}: a signal must be a table/dict with a 'kind', a list of them or a number; "
+            f"found {type(spec).__name__} {spec!r}.")
+    kind = spec.get("kind")
+    if kind not in _KEYS:
+        raise SettingsError(
+            f"{what}: unknown signal kind {kind!r}{suggest(str(kind), SIGNAL_KINDS)}; "
+            f"expected one of: {', '.join(SIGNAL_KINDS)}.")
+    req, opt = _KEYS[kind]
+    body = {k: v for k, v in spec.items() if k != "kind"}
+    check_keys(body, req + opt, req, what=what, kind=kind)
+    w = f"{what} ({kind})"
+    base = number(body, "base", what=w)
+    if kind == "constant":
+        return Constant(number(body, "value", what=w))
+    if kind == "step":
+        return Step(number(body, "at", what=w), number(body, "size", what=w), base)
+    if kind == "ramp":
+        return Ramp(number(body, "start", what=w),
+                    number(body, "duration", what=w, low=0.0, strict_low=True),
+                    number(body, "size", what=w), base)
+    if kind == "pulse":
+        return Pulse(number(body, "at", what=w),
+                     number(body, "duration", what=w, low=0.0, strict_low=True),
+                     number(body, "size", what=w), base)
+    if kind == "sine":
+        return Sine(number(body, "amplitude", what=w),
+                    number(body, "period", what=w, low=0.0, strict_low=True),
+                    number(body, "start", what=w, default=0.0),
+                    number(body, "phase_deg", what=w, default=0.0), base)
+    if kind == "random_walk":
+        low = number(body, "low", what=w, default=-math.inf, allow_inf=True)
+        high = number(body, "high", what=w, default=math.inf, allow_inf=True)
+        if not low <= 0.0 <= high:
+            raise SettingsError(
+                f"{w}: the walk starts at 0, so 'low' must be <= 0 <= 'high'; found low={low:g}, "
+                f"high={high:g}.")
+        seed = body.get("seed")
+        if seed is not None and (isinstance(seed, bool) or not isinstance(seed, int) or seed < 0):
+            raise SettingsError(f"{w}: 'seed' must be a non-negative integer; found {seed!r}.")
+        return RandomWalk(number(body, "step_std", what=w, low=0.0),
+                          number(body, "interval", what=w, low=0.0, strict_low=True),
+                          start=number(body, "start", what=w, default=0.0), low=low, high=high,
+                          rng=seed if seed is not None else rng, base=base)
+    interp = body.get("interpolation", "linear")
+    if interp not in ("linear", "hold"):
+        raise SettingsError(
+            f"{w}: 'interpolation' must be 'linear' or 'hold'; found {interp!r}"
+            f"{suggest(str(interp), ['linear', 'hold'])}.")
+    if kind == "table":
+        times = _float_list(body["times"], "times", what=w)
+        values = _float_list(body["values"], "values", what=w)
+        if len(times) != len(values):
+            raise SettingsError(
+                f"{w}: 'times' and 'values' must have the same length; found {len(times)} times "
+                f"and {len(values)} values.")
+        _check_times(times, what=w, where="'times'")
+        return Table(times, values, interpolation=interp, base=base)
+    path = Path(str(body["path"]))
+    if base_dir is not None and not path.is_absolute():
+        path = Path(base_dir) / path
+    max_gap = number(body, "max_gap", what=w, low=0.0, strict_low=True)
+    times, values = table_from_csv(path, time_column=body.get("time_column", 0),
+                                   value_column=body.get("value_column", 1), what=w,
+                                   max_gap=max_gap)
+    return Table(times, values, interpolation=interp, base=base)
+
+
+def _float_list(v: Any, key: str, *, what: str) -> list[float]:
+    if isinstance(v, (str, bytes)) or not isinstance(v, Sequence):
+        raise SettingsError(f"{what}: '{key}' must be a list of numbers; found {v!r}.")
+    out = []
+    for i, x in enumerate(v):
+        try:
+            if isinstance(x, bool):
+                raise TypeError
+            f = float(x)
+        except (TypeError, ValueError):
+            raise SettingsError(f"{what}: '{key}'[{i}] must be a number; found {x!r}.") from None
+        if not math.isfinite(f):
+            raise SettingsError(f"{what}: '{key}'[{i}] must be finite; found {x!r}.")
+        out.append(f)
+    if not out:
+        raise SettingsError(f"{what}: '{key}' is empty; give at least one point.")
+    return out
+
+
+def _check_times(times: Sequence[float], *, what: str, where: str, max_gap: float | None = None,
+                 row_of=lambda i: i) -> None:
+    t = np.asarray(times, float)
+    d = np.diff(t)
+    bad = np.flatnonzero(d <= 0)
+    if bad.size:
+        i = int(bad[0]) + 1
+        raise SettingsError(
+            f"{what}: {where} must be strictly increasing; found {t[i]:g} at {row_of(i)} after "
+            f"{t[i - 1]:g} at {row_of(i - 1)}. Sort the table and remove duplicate times.")
+    if max_gap is not None:
+        big = np.flatnonzero(d > max_gap)
+        if big.size:
+            i = int(big[0])
+            raise SettingsError(
+                f"{what}: {where} has a gap of {d[i]:g} between {t[i]:g} ({row_of(i)}) and "
+                f"{t[i + 1]:g} ({row_of(i + 1)}), more than max_gap={max_gap:g}.")
+
+
+def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column: int | str = 1,
+                   what: str = "csv table", max_gap: float | None = None
+                   ) -> tuple[list[float], list[float]]:
+    """Read (times, values) from a CSV file with a header row.
+
+    Empty or non-numeric cells, unsorted or repeated times and (with *max_gap*) time gaps larger
+    than *max_gap* raise :class:`SettingsError` naming the file, the row and the column.
+    """
+    path = Path(path)
+    w = f"{what}: file '{path}'"
+    try:
+        with path.open(newline="") as fh:
+            rows = [r for r in csv.reader(fh) if r and not r[0].lstrip().startswith("#")]
+    except OSError as exc:
+        raise SettingsError(f"{w} cannot be read: {exc.strerror or exc}.") from None
+    if len(rows) < 2:
+        raise SettingsError(f"{w} needs a header row and at least one data row; found {len(rows)} rows.")
+    header = [h.strip() for h in rows[0]]
+
+    def col(c: int | str, key: str) -> int:
+        if isinstance(c, int) and not isinstance(c, bool):
+            if 0 <= c < len(header):
+                return c
+            raise SettingsError(f"{w}: {key} {c} is out of range; the file has {len(header)} columns.")
+        if c in header:
+            return header.index(c)
+        raise SettingsError(
+            f"{w}: no column named {c!r} for {key}{suggest(str(c), header)}; "
+            f"columns: {', '.join(header)}.")
+
+    ti, vi = col(time_column, "time_column"), col(value_column, "value_column")
+    times, values = [], []
+    for n, r in enumerate(rows[1:], start=2):
+        for idx, dest in ((ti, times), (vi, values)):
+            cell = r[idx].strip() if idx < len(r) else ""
+            try:
+                f = float(cell)
+                if not math.isfinite(f):
+                    raise ValueError
+            except ValueError:
+                raise SettingsError(
+                    f"{w}: row {n}, column '{header[idx]}' must hold a finite number; found "
+                    f"{cell!r} (a gap in the table?).") from None
+            dest.append(f)
+    _check_times(times, what=w, where=f"column '{header[ti]}'", max_gap=max_gap,
+                 row_of=lambda i: f"row {i + 2}")
+    return times, values
