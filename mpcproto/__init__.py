@@ -3,7 +3,8 @@
 Model (layer 1)
     Model, Variable, Delay
 Operating points and linear models (layer 2)
-    OperatingPoint, LinearModel, DiscreteLinearModel, linearize, rga
+    OperatingPoint, LinearModel, DiscreteLinearModel, linearize, rga,
+    steady_states, steady_state, solve_targets, TargetResult
 Built-in models (layer 1)
     models, make_model, available_models, transfer_matrix_model, TransferElement
 Controller protocol (layer 3)
@@ -17,7 +18,7 @@ from .exceptions import (
     OperatingPointError, SimulationError,
 )
 from .model import Model, Variable, Delay
-from .operating import OperatingPoint
+from .operating import OperatingPoint, TargetResult, steady_states, steady_state, solve_targets
 from .linear import LinearModel, DiscreteLinearModel, linearize, rga
 from .control.base import Controller, Measurement, Targets, ControlOutput
 from . import models
@@ -34,5 +35,6 @@ __all__ = [
     "Model", "Variable", "Delay",
     "OperatingPoint", "LinearModel", "DiscreteLinearModel", "linearize", "rga",
     "Controller", "Measurement", "Targets", "ControlOutput",
+    "TargetResult", "steady_states", "steady_state", "solve_targets",
     "models", "make_model", "available_models", "transfer_matrix_model", "TransferElement",
 ]
