@@ -1,0 +1,272 @@
+"""The ``mpcproto`` command line.
+
+Commands
+--------
+``mpcproto models [--json]``
+    List the built-in models with their variables, roles and units.
+``mpcproto linearize SCENARIO.toml [--json] [--model plant|controller]``
+    Operating point, continuous and discrete matrices, steady-state gains, poles, transmission
+    zeros, RGA (square systems) and a per-pair view.
+``mpcproto run SCENARIO.toml --out DIR``
+    Run the scenario's nominal case; write DIR/summary.json, DIR/trajectories_<controller>.csv and
+    PNG plots.
+``mpcproto batch PATHS... --out DIR ...``
+    Run every case of one or more studies (see ``mpcproto batch --help``).
+
+Exit codes: 0 success (every pass/fail criterion holds), 1 a criterion failed, 2 bad input (a
+one-paragraph message naming the file, key, expected and found; no traceback), 3 an unexpected
+internal error (with its traceback, so it can be reported).
+
+Every command is a thin wrapper over a documented function: :func:`mpcproto.models.available`,
+:func:`mpcproto.scenario.linear_report`, :func:`mpcproto.scenario.run_scenario`.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+import traceback
+from typing import Any, Sequence
+
+from .exceptions import MpcprotoError
+
+__all__ = ["main", "build_parser", "EXIT_OK", "EXIT_FAILED", "EXIT_BAD_INPUT", "EXIT_INTERNAL"]
+
+EXIT_OK = 0
+EXIT_FAILED = 1
+EXIT_BAD_INPUT = 2
+EXIT_INTERNAL = 3
+
+
+# ----------------------------------------------------------------------------------------- models
+def _models_data() -> list[dict[str, Any]]:
+    from . import models
+
+    out = []
+    for entry in models.available():
+        m = models.make(entry["name"])
+        d = dict(entry)
+        desc = m.describe()
+        d["variables"] = desc["variables"]
+        d["delays"] = desc["delays"]
+        out.append(d)
+    return out
+
+
+def _cmd_models(args: argparse.Namespace) -> int:
+    data = _models_data()
+    if args.json:
+        print(json.dumps(data, indent=2))
+        return EXIT_OK
+    for d in data:
+        print(f"{d['name']}  ({d['time_unit']})  {d['description']}")
+        if d["options"]:
+            for k, o in d["options"].items():
+                print(f"    option {k} = {o['default']!r}  (allowed: "
+                      f"{', '.join(repr(a) for a in o['allowed'])})  {o['description']}")
+        rows = [("role", "name", "unit", "nominal", "low", "high", "description")]
+        for v in d["variables"]:
+            role = v["role"]
+            if role == "dv":
+                role = "dv (measured)" if v.get("measured", True) else "dv (unmeasured)"
+            nom = "" if v["role"] == "cv" or v["nominal"] is None or \
+                (isinstance(v["nominal"], float) and math.isnan(v["nominal"])) else f"{v['nominal']:.4g}"
+            rows.append((role, v["name"], v["unit"], nom,
+                         "" if v["low"] is None else f"{v['low']:.4g}",
+                         "" if v["high"] is None else f"{v['high']:.4g}", v["description"]))
+        for dl in d["delays"]:
+            rows.append(("dead time", dl["source"], "", f"{dl['dead_time']:.4g}", "", "", ""))
+        _print_table(rows, indent=4)
+        print()
+    return EXIT_OK
+
+
+def _print_table(rows: Sequence[Sequence[str]], indent: int = 0) -> None:
+    widths = [max(len(str(r[i])) for r in rows) for i in range(len(rows[0]))]
+    for r in rows:
+        cells = [str(c).ljust(w) if i in (0, 1, 2, len(r) - 1) else str(c).rjust(w)
+                 for i, (c, w) in enumerate(zip(r, widths))]
+        print(" " * indent + "  ".join(cells).rstrip())
+
+
+# ----------------------------------------------------------------------------------------- linearize
+def _fmt(v: Any) -> str:
+    if v is None:
+        return "inf"
+    return f"{v:.4g}"
+
+
+def _print_matrix(title: str, M: list, rows: Sequence[str], cols: Sequence[str]) -> None:
+    print(f"{title}:")
+    if not M or not cols or not rows:
+        print("    (empty)")
+        return
+    table = [("",) + tuple(cols)] + [(r,) + tuple(_fmt(v) for v in row) for r, row in zip(rows, M)]
+    widths = [max(len(str(t[i])) for t in table) for i in range(len(table[0]))]
+    for t in table:
+        print("    " + "  ".join(str(c).ljust(w) if i == 0 else str(c).rjust(w)
+                                 for i, (c, w) in enumerate(zip(t, widths))))
+
+
+def _cplx_str(pairs: list) -> str:
+    if not pairs:
+        return "(none)"
+    out = []
+    for re_, im in pairs:
+        out.append(f"{re_:.4g}" if abs(im) < 1e-12 else f"{re_:.4g}{im:+.4g}j")
+    return ", ".join(out)
+
+
+def _cmd_linearize(args: argparse.Namespace) -> int:
+    from .scenario import linear_report, load_scenario
+
+    scn = load_scenario(args.scenario)
+    rep = linear_report(scn, which=args.model)
+    if args.json:
+        print(json.dumps(rep, indent=2))
+        return EXIT_OK
+    n = rep["names"]
+    op = rep["operating_point"]
+    print(f"scenario {rep['scenario']} ({rep['file']}): model {rep['model']} [{rep['which']}], "
+          f"time unit {rep['time_unit']}, sample time {rep['sample_time']:g}")
+    print(f"operating point (residual {op['residual']:.2e}; open loop {rep['open_loop']}):")
+    for role in ("states", "mvs", "dvs", "cvs"):
+        vals = ", ".join(f"{k}={v:.6g}" for k, v in op[role].items())
+        print(f"    {role:<7s}{vals or '(none)'}")
+    c = rep["continuous"]
+    _print_matrix("A (continuous)", c["A"], n["states"], n["states"])
+    _print_matrix("B (MVs)", c["B"], n["states"], n["mvs"])
+    _print_matrix("Bd (DVs)", c["Bd"], n["states"], n["dvs"])
+    _print_matrix("C", c["C"], n["cvs"], n["states"])
+    if any(any(r) for r in c["D"]):
+        _print_matrix("D", c["D"], n["cvs"], n["mvs"])
+    for dl in c["delays"]:
+        print(f"dead time on {dl['source']}: {dl['dead_time']:g} {rep['time_unit']}")
+    dsc = rep["discrete"]
+    _print_matrix(f"A (discrete, Ts={dsc['Ts']:g})", dsc["A"], n["discrete_states"], n["discrete_states"])
+    _print_matrix("B (discrete)", dsc["B"], n["discrete_states"], n["mvs"])
+    _print_matrix("steady-state gain dCV/dMV (inf: integrating)", rep["gain"], n["cvs"], n["mvs"])
+    if n["dvs"]:
+        _print_matrix("steady-state gain dCV/dDV", rep["dv_gain"], n["cvs"], n["dvs"])
+    print(f"poles: {_cplx_str(rep['poles'])}")
+    print(f"transmission zeros: {_cplx_str(rep['zeros'])}")
+    if rep["rga"] is not None:
+        _print_matrix("relative gain array", rep["rga"], n["cvs"], n["mvs"])
+    else:
+        print(f"relative gain array: {rep['rga_note']}")
+    print("pairs (CV <- MV): gain, time constants, dead time")
+    for p in rep["pairs"]:
+        if not p["connected"]:
+            continue
+        taus = ", ".join(f"{t:.4g}" for t in p["time_constants"]) or "-"
+        print(f"    {p['cv']:<16s} <- {p['mv']:<16s} gain {_fmt(p['gain']):>10s}   "
+              f"tau [{taus}]   dead time {p['dead_time']:g}")
+    return EXIT_OK
+
+
+# ----------------------------------------------------------------------------------------- run
+def _cmd_run(args: argparse.Namespace) -> int:
+    from .scenario import load_scenario, run_scenario
+
+    scn = load_scenario(args.scenario)
+    summary = run_scenario(scn, args.out, plots=not args.no_plots, ci=args.ci)
+    if summary["status"] != "ok":
+        print(f"mpcproto run: the case did not complete: {summary['message']}", file=sys.stderr)
+        return EXIT_FAILED
+    for label, res in summary["controllers"].items():
+        for cr in res["criteria"]:
+            mark = "pass" if cr["passed"] else "FAIL"
+            print(f"{mark}  {label:<10s} {cr['name']}: {_fmt(cr['value'])} (limit {_fmt(cr['limit'])})")
+    for cr in summary.get("comparisons", []):
+        mark = "pass" if cr["passed"] else "FAIL"
+        print(f"{mark}  {cr['name']}: {_fmt(cr['value'])} (limit {_fmt(cr['limit'])})")
+    print(f"{'PASSED' if summary['passed'] else 'FAILED'}: {summary['scenario']} "
+          f"({summary['elapsed_s']:.1f} s); results in {args.out}")
+    print(summary["caution"])
+    return EXIT_OK if summary["passed"] else EXIT_FAILED
+
+
+# ----------------------------------------------------------------------------------------- parser
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of the ``mpcproto`` command (one sub-command per step of a study)."""
+    p = argparse.ArgumentParser(
+        prog="mpcproto",
+        description="Prototype model-predictive controllers for process units and run closed-loop "
+                    "studies. Simulation only: a real plant needs its own independent safety "
+                    "systems, management of change, local codes and licensed engineers.")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    m = sub.add_parser("models", help="list the built-in models with their variables, roles and units")
+    m.add_argument("--json", action="store_true", help="print JSON instead of tables")
+    m.set_defaults(handler=_cmd_models)
+
+    lz = sub.add_parser("linearize", help="operating point and linear model of a scenario")
+    lz.add_argument("scenario", metavar="SCENARIO.toml")
+    lz.add_argument("--json", action="store_true", help="print JSON instead of tables")
+    lz.add_argument("--model", choices=("plant", "controller"), default="plant",
+                    help="linearize the plant (default) or the controller's model")
+    lz.set_defaults(handler=_cmd_linearize)
+
+    r = sub.add_parser("run", help="run a scenario's nominal case and check its criteria")
+    r.add_argument("scenario", metavar="SCENARIO.toml")
+    r.add_argument("--out", required=True, metavar="DIR", help="output directory (created)")
+    r.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
+    r.add_argument("--ci", action="store_true",
+                   help="use the scenario's CI-sized settings ([scenario.ci] duration)")
+    r.set_defaults(handler=_cmd_run)
+
+    _batch_error = ""
+    try:
+        from .scenario import batch as _batch
+    except ImportError as e:  # batch.py (or one of its imports) is not there yet
+        _batch = None
+        _batch_error = str(e)
+    registered = False
+    if _batch is not None and hasattr(_batch, "register_cli"):
+        try:
+            _batch.register_cli(sub)
+            registered = True
+        except NotImplementedError:
+            _batch_error = "mpcproto.scenario.batch.register_cli is not implemented yet"
+    elif _batch is not None:
+        _batch_error = "mpcproto.scenario.batch has no register_cli"
+    if not registered:
+        b = sub.add_parser("batch", help="run every case of one or more studies (not available)")
+        b.set_defaults(handler=lambda a, why=_batch_error: _unavailable("batch", why))
+    return p
+
+
+def _unavailable(cmd: str, why: str) -> int:
+    print(f"mpcproto {cmd}: this command is not available in this installation: {why}", file=sys.stderr)
+    return EXIT_INTERNAL
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``mpcproto`` command; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.handler(args))
+    except MpcprotoError as e:
+        print(f"mpcproto {args.command}: error: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except OSError as e:
+        where = f" '{e.filename}'" if getattr(e, "filename", None) else ""
+        print(f"mpcproto {args.command}: error: cannot use the file{where}: {e.strerror or e}.",
+              file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print(f"mpcproto {args.command}: interrupted.", file=sys.stderr)
+        return 130
+    except Exception:  # noqa: BLE001 - an internal error: show the traceback so it can be reported
+        traceback.print_exc()
+        print(f"mpcproto {args.command}: internal error (exit {EXIT_INTERNAL}); please report it "
+              f"with the traceback above.", file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,283 @@
+"""From a validated :class:`~mpcproto.scenario.schema.Scenario` to models, an operating point and a
+linear model.
+
+No numerics of its own: it calls the model library (:func:`mpcproto.models.make`), the steady-state
+and target solvers (:mod:`mpcproto.operating`) and :func:`mpcproto.linearize`.  Errors raised by those
+layers on behalf of a scenario key are re-raised as :class:`~mpcproto.exceptions.ScenarioError` naming
+the file and the key path.
+
+Compiled models are cached per process (keyed by model name, options and parameter values), so a
+pool worker that runs many cases of one study builds each distinct model once.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import warnings
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+import scipy.linalg as sla
+
+from ..exceptions import MpcprotoError, ScenarioError
+from ..model import Model, suggest
+from .schema import Scenario
+
+__all__ = ["get_model", "plant_model", "controller_model", "operating_point", "linear_report",
+           "clear_model_cache"]
+
+_MODEL_CACHE: dict[str, Model] = {}
+_MODEL_CACHE_LIMIT = 256
+
+
+def clear_model_cache() -> None:
+    """Forget every compiled model of this process."""
+    _MODEL_CACHE.clear()
+
+
+def get_model(name: str, *, options: Mapping[str, Any] | None = None,
+              parameters: Mapping[str, float] | None = None) -> Model:
+    """The built model *name* with *options* and *parameters*, compiled once per process.
+
+    Same arguments, same (shared) :class:`~mpcproto.model.Model` object: treat it as read-only.
+    """
+    from .. import models
+
+    key = json.dumps([name, dict(options or {}), dict(parameters or {})], sort_keys=True, default=str)
+    m = _MODEL_CACHE.get(key)
+    if m is None:
+        m = models.make(name, parameters=dict(parameters or {}), options=dict(options or {}))
+        if len(_MODEL_CACHE) >= _MODEL_CACHE_LIMIT:
+            _MODEL_CACHE.pop(next(iter(_MODEL_CACHE)))
+        _MODEL_CACHE[key] = m
+    return m
+
+
+def _wrap(scn: Scenario, key: str, err: Exception) -> ScenarioError:
+    return ScenarioError(str(err), file=scn.file, key=key)
+
+
+def plant_model(scn: Scenario) -> Model:
+    """The plant: ``[plant] model`` with its ``options`` and ``parameters``."""
+    pl = scn.data["plant"]
+    try:
+        return get_model(pl["model"], options=pl["options"], parameters=pl["parameters"])
+    except MpcprotoError as e:
+        key = _guess_plant_key(str(e), pl)
+        raise _wrap(scn, key, e) from None
+
+
+def _guess_plant_key(msg: str, pl: Mapping) -> str:
+    for k in pl["parameters"]:
+        if f"'{k}'" in msg:
+            return f"plant.parameters.{k}"
+    for k in pl["options"]:
+        if f"'{k}'" in msg:
+            return f"plant.options.{k}"
+    return "plant.model"
+
+
+def controller_model(scn: Scenario, base: Mapping[str, float] | None = None) -> Model:
+    """The controller's model: the plant's model and options with the parameter values the
+    controller believes.
+
+    Those are the plant's parameters as written in the file (*base*, by default
+    ``plant.parameters``) updated with ``[controller_model] parameters``.  A study that changes
+    ``plant.parameters.x`` therefore changes the plant only -- model mismatch -- unless it also
+    addresses ``controller_model.parameters.x``.
+    """
+    pl = scn.data["plant"]
+    params = dict(pl["parameters"] if base is None else base)
+    cm = scn.data["controller_model"]["parameters"]
+    params.update(cm)
+    try:
+        return get_model(pl["model"], options=pl["options"], parameters=params)
+    except MpcprotoError as e:
+        for k in cm:
+            if f"'{k}'" in str(e):
+                raise _wrap(scn, f"controller_model.parameters.{k}", e) from None
+        raise _wrap(scn, _guess_plant_key(str(e), pl), e) from None
+
+
+def _names(model: Model, role: str) -> tuple[str, ...]:
+    return model.names(role)
+
+
+def check_names(scn: Scenario, model: Model, section: str, role: str | tuple[str, ...],
+                entries: Mapping[str, Any]) -> None:
+    """Every key of *entries* must be a variable of *model* with one of the given roles."""
+    roles = (role,) if isinstance(role, str) else role
+    names: list[str] = []
+    for r in roles:
+        names += list(_names(model, r))
+    for k in entries:
+        if k not in names:
+            raise ScenarioError(
+                f"expected the name of a {' or '.join(r.upper() if r != 'state' else r for r in roles)} "
+                f"of model '{model.name}' ({', '.join(names) or 'none'}); found '{k}'"
+                f"{suggest(k, names)}.", file=scn.file, key=f"{section}.{k}")
+
+
+def operating_point(scn: Scenario, model: Model | None = None):
+    """The operating point the scenario starts from.
+
+    ``[operating_point]`` gives the MVs and DVs (the rest take the model's nominal values) and the
+    steady state is solved for, or CV ``targets`` for which the free MVs are solved (the target
+    problem; MVs listed under ``mvs`` are then held at their values).  ``state_guess`` seeds the
+    search; ``pick`` chooses among several steady states: "nearest" (to the guess, default),
+    "stable" or "unstable" (the one nearest the guess among those, e.g. the open-loop-unstable middle
+    state of an exothermic reactor).
+    """
+    from .. import operating
+
+    model = plant_model(scn) if model is None else model
+    op = scn.data["operating_point"]
+    check_names(scn, model, "operating_point.mvs", "mv", op["mvs"])
+    check_names(scn, model, "operating_point.dvs", "dv", op["dvs"])
+    check_names(scn, model, "operating_point.targets", "cv", op["targets"])
+    check_names(scn, model, "operating_point.state_guess", "state", op["state_guess"])
+    u = model.vector("mv", op["mvs"])
+    d = model.vector("dv", op["dvs"])
+    xg = model.vector("state", op["state_guess"]) if op["state_guess"] else None
+    try:
+        if op["targets"]:
+            res = operating.solve_targets(model, dict(op["targets"]), d=d,
+                                          fixed_mvs=dict(op["mvs"]) or None, x_guess=xg)
+            if not res.reachable:
+                raise ScenarioError(
+                    f"expected CV targets the MVs can reach at steady state within their bounds; "
+                    f"found: {res.message}", file=scn.file, key="operating_point.targets")
+            return res.op
+        if op["pick"] == "nearest":
+            return operating.steady_state(model, u, d, x_guess=xg)
+        found = operating.steady_states(model, u, d, starts=None if xg is None else [xg])
+        return _pick(scn, found, op["pick"], xg if xg is not None else model.nominal("state"))
+    except ScenarioError:
+        raise
+    except MpcprotoError as e:
+        raise ScenarioError(str(e), file=scn.file, key="operating_point") from None
+
+
+def _pick(scn: Scenario, found: list, pick: str, xg: np.ndarray | None):
+    if not found:
+        raise ScenarioError("expected at least one steady state for these MVs and DVs; found none.",
+                            file=scn.file, key="operating_point")
+    cands = list(found)
+    if pick == "stable":
+        cands = [p for p in found if p.stable]
+    elif pick == "unstable":
+        cands = [p for p in found if p.stable is False]
+    if not cands:
+        desc = ", ".join("stable" if p.stable else "unstable" for p in found)
+        raise ScenarioError(
+            f"expected a {pick} steady state for these MVs and DVs; found only {len(found)} "
+            f"({desc}).", file=scn.file, key="operating_point.pick")
+    if xg is not None:
+        cands.sort(key=lambda p: float(np.linalg.norm((p.x - xg) / np.maximum(np.abs(xg), 1e-9))))
+    return cands[0]
+
+
+def _cplx(values) -> list[list[float]]:
+    return [[float(np.real(v)), float(np.imag(v))] for v in np.asarray(values).reshape(-1)]
+
+
+def _mat(M) -> list[list[float | None]]:
+    M = np.asarray(M, float)
+    return [[(float(v) if math.isfinite(v) else None) for v in row] for row in M]
+
+
+def linear_report(scn: Scenario, *, which: str = "plant") -> dict[str, Any]:
+    """Everything ``mpcproto linearize`` prints, as plain JSON-able data.
+
+    Parameters
+    ----------
+    scn : Scenario
+    which : {"plant", "controller"}
+        Linearize the plant or the controller's model (they differ under model mismatch).
+
+    Returns
+    -------
+    dict
+        ``model``, ``time_unit``, ``sample_time``, ``operating_point`` (as
+        :meth:`OperatingPoint.as_dict`), ``names`` (states/mvs/dvs/cvs/discrete_states),
+        ``continuous`` (A, B, Bd, Bz, C, D, Dd, Dz, delays), ``discrete`` (Ts, A, B, Bd, C, D, Dd),
+        ``open_loop`` ("stable", "integrating" or "unstable"), ``gain`` (CV x MV), ``dv_gain`` (CV x DV), ``poles`` and ``zeros`` (as [re, im] pairs),
+        ``rga`` (square systems with a non-singular gain, else null, with ``rga_note``) and ``pairs``
+        (per CV/MV: gain, time constants, dead time).  Non-finite gains (integrating channels) are
+        null.
+    """
+    from ..linear import linearize
+
+    if which not in ("plant", "controller"):
+        raise ScenarioError(f"expected 'plant' or 'controller' for the model to linearize; found {which!r}.",
+                            file=scn.file)
+    model = plant_model(scn) if which == "plant" else controller_model(scn)
+    op = operating_point(scn, model)
+    lin = linearize(model, op)
+    with warnings.catch_warnings():
+        # an integrating unit (a level) has a singular A; the gain reports inf for it
+        warnings.simplefilter("ignore", sla.LinAlgWarning)
+        return _report(scn, which, model, op, lin)
+
+
+def _open_loop(eigenvalues) -> str:
+    ev = np.asarray(eigenvalues)
+    if ev.size == 0:
+        return "static"
+    scale = max(1.0, float(np.max(np.abs(ev))))
+    if np.any(ev.real > 1e-9 * scale):
+        return "unstable"
+    if np.any(ev.real > -1e-9 * scale):
+        return "integrating"
+    return "stable"
+
+
+def _report(scn, which, model, op, lin) -> dict[str, Any]:
+    from ..exceptions import SettingsError
+
+    try:
+        dlin = lin.discretize(scn.sample_time, dead_time=scn.data["scenario"]["dead_time"])
+    except SettingsError as e:
+        raise ScenarioError(str(e), file=scn.file, key="scenario.sample_time") from None
+    K = lin.gain("mv")
+    rga_val, rga_note = None, ""
+    if K.shape[0] == K.shape[1] and K.size:
+        try:
+            rga_val = _mat(lin.rga())
+        except SettingsError as e:
+            rga_note = str(e)
+    else:
+        rga_note = f"no RGA: the system is not square ({K.shape[0]} CVs, {K.shape[1]} MVs)"
+    pairs = []
+    for p in lin.pairs():
+        q = dict(p)
+        q["gain"] = float(q["gain"]) if math.isfinite(q["gain"]) else None
+        q["poles"] = _cplx(q["poles"])
+        q["zeros"] = _cplx(q["zeros"])
+        pairs.append(q)
+    cont = lin.as_dict()
+    return {
+        "scenario": scn.name,
+        "file": scn.file,
+        "model": model.name,
+        "which": which,
+        "time_unit": model.time_unit,
+        "sample_time": scn.sample_time,
+        "operating_point": op.as_dict(),
+        "open_loop": _open_loop(op.eigenvalues),
+        "names": {"states": list(model.state_names), "mvs": list(model.mv_names),
+                  "dvs": list(model.dv_names), "cvs": list(model.cv_names),
+                  "discrete_states": list(dlin.state_names)},
+        "continuous": {k: (_mat(v) if k != "delays" else v) for k, v in cont.items()},
+        "discrete": {"Ts": dlin.Ts, "A": _mat(dlin.A), "B": _mat(dlin.B), "Bd": _mat(dlin.Bd),
+                     "C": _mat(dlin.C), "D": _mat(dlin.D), "Dd": _mat(dlin.Dd)},
+        "gain": _mat(K),
+        "dv_gain": _mat(lin.gain("dv")),
+        "poles": _cplx(lin.poles()),
+        "zeros": _cplx(lin.zeros()),
+        "rga": rga_val,
+        "rga_note": rga_note,
+        "pairs": pairs,
+    }

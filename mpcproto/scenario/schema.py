@@ -1,0 +1,642 @@
+"""Scenario files: TOML text -> a validated, plain-data :class:`Scenario`.
+
+A scenario file is *data only*: it is parsed with the standard library's TOML reader and nothing in it
+is evaluated as code.  Every key is checked here; an unknown key, a wrong type or a value out of range
+raises :class:`~mpcproto.exceptions.ScenarioError` whose message names the file, the key path (for
+example ``disturbances.draw_off.at`` or ``criteria[2].limit``), what was expected and what was found,
+with a "did you mean" hint for misspelt keys.
+
+Checks that need the model (are the names in ``setpoints`` CVs of the model? does a signal spec make
+sense?) live in :func:`mpcproto.scenario.runner.check_scenario`, which builds the model.
+
+Every key is documented in ``docs/scenario-format.md``.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import math
+import re
+import sys
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from ..exceptions import ScenarioError
+from ..model import suggest
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - exercised on Python 3.10 only
+    import tomli as tomllib
+
+__all__ = ["Scenario", "load_scenario", "parse_scenario", "get_path", "set_path",
+           "CRITERION_CHECKS", "DISTRIBUTIONS"]
+
+# ----------------------------------------------------------------------------------------- vocabulary
+#: The pass/fail checks a ``[[criteria]]`` entry may name, with the keys each one needs.
+#: ``kpi`` checks read a KPI of one CV (or MV) of one controller and compare it with ``limit``.
+CRITERION_CHECKS: dict[str, dict[str, Any]] = {
+    # name: (required keys, optional keys, what it does)
+    "iae_below": {"needs": ("cv", "limit"), "doc": "integral of absolute error of a CV below limit"},
+    "ise_below": {"needs": ("cv", "limit"), "doc": "integral of squared error of a CV below limit"},
+    "itae_below": {"needs": ("cv", "limit"), "doc": "time-weighted IAE of a CV below limit"},
+    "max_error_below": {"needs": ("cv", "limit"), "doc": "largest |setpoint - CV| below limit"},
+    "settling_time_below": {"needs": ("cv", "limit"), "doc": "settling time of a CV below limit"},
+    "overshoot_below": {"needs": ("cv", "limit"), "doc": "overshoot of a CV (fraction) below limit"},
+    "peak_below": {"needs": ("variable", "limit"), "doc": "highest value a variable reaches below limit"},
+    "low_above": {"needs": ("variable", "limit"), "doc": "lowest value a variable reaches above limit"},
+    "travel_below": {"needs": ("mv", "limit"), "doc": "total travel of an MV below limit"},
+    "no_limit_violation": {"needs": (), "doc": "no hard-limit violation event (any variable, or one)"},
+    "no_solver_failure": {"needs": (), "doc": "the controller never failed nor fell back"},
+    "solve_time_below": {"needs": ("fraction",), "doc": "worst solve time below this fraction of Ts"},
+    "better_than": {"needs": ("than", "kpi", "cv", "by_percent"),
+                    "doc": "this controller's KPI of a CV at least by_percent % lower than the other's"},
+}
+CRITERION_KEYS = {"check", "controller", "cv", "mv", "variable", "limit", "fraction", "than", "kpi",
+                  "by_percent", "name"}
+BETTER_KPIS = ("iae", "ise", "itae", "max_abs_error", "settling_time", "overshoot")
+
+#: Distributions a Monte Carlo ``[[study.draw]]`` may use, with their parameter keys.
+DISTRIBUTIONS: dict[str, tuple[str, ...]] = {
+    "normal": ("mean", "std"),
+    "uniform": ("low", "high"),
+    "lognormal": ("median", "sigma"),
+    "triangular": ("low", "mode", "high"),
+    "choice": ("values",),
+}
+DRAW_OPTIONAL = {"relative", "clip_low", "clip_high"}
+
+TOP_KEYS = ("scenario", "plant", "controller_model", "operating_point", "controllers", "setpoints",
+            "limits", "disturbances", "instruments", "actuators", "faults", "criteria", "study")
+SCENARIO_KEYS = ("name", "description", "duration", "sample_time", "seed", "dead_time", "ci")
+PLANT_KEYS = ("model", "options", "parameters")
+CONTROLLER_MODEL_KEYS = ("parameters",)
+OP_KEYS = ("mvs", "dvs", "targets", "state_guess", "pick")
+OP_PICKS = ("nearest", "stable", "unstable")
+CONTROLLER_KINDS = ("mpc", "pid")
+STUDY_KEYS = ("draws", "full_draws", "sweep", "draw")
+SWEEP_KEYS = ("key", "values", "full_values", "label")
+
+
+# ----------------------------------------------------------------------------------------- helpers
+def _type_name(v: Any) -> str:
+    if isinstance(v, bool):
+        return "a boolean"
+    if isinstance(v, int):
+        return "an integer"
+    if isinstance(v, float):
+        return "a number"
+    if isinstance(v, str):
+        return "a string"
+    if isinstance(v, Mapping):
+        return "a table"
+    if isinstance(v, list):
+        return "an array"
+    return f"a {type(v).__name__}"
+
+
+def _show(v: Any) -> str:
+    """Short rendering of a found value for messages."""
+    if isinstance(v, Mapping):
+        return "a table {" + ", ".join(list(v)[:4]) + (", ..." if len(v) > 4 else "") + "}"
+    r = repr(v)
+    return r if len(r) <= 60 else r[:57] + "..."
+
+
+class _Ctx:
+    """Where we are: the file (for messages) and helpers that raise with the key path."""
+
+    def __init__(self, file: str):
+        self.file = file
+
+    def fail(self, key: str, expected: str, found: Any, hint: str = "") -> None:
+        msg = f"expected {expected}; found {found}."
+        if hint:
+            msg += " " + hint
+        raise ScenarioError(msg, file=self.file, key=key or None)
+
+    def table(self, v: Any, key: str) -> dict:
+        if not isinstance(v, Mapping):
+            self.fail(key, "a table", f"{_type_name(v)} ({_show(v)})")
+        return dict(v)
+
+    def keys(self, d: Mapping, key: str, allowed: tuple[str, ...] | set[str],
+             required: tuple[str, ...] = ()) -> None:
+        for k in d:
+            if k not in allowed:
+                where = f"{key}.{k}" if key else k
+                self.fail(where, f"one of the keys {', '.join(sorted(allowed))} in "
+                          f"{'[' + key + ']' if key else 'the top level'}",
+                          f"the unknown key '{k}'{suggest(k, sorted(allowed))}")
+        for k in required:
+            if k not in d:
+                where = f"{key}.{k}" if key else k
+                self.fail(where, f"the key '{k}' (it is required)", "nothing")
+
+    def number(self, v: Any, key: str, *, low: float = -math.inf, high: float = math.inf,
+               strict_low: bool = False, integer: bool = False) -> float:
+        ok_type = isinstance(v, int) if integer else isinstance(v, (int, float))
+        if isinstance(v, bool) or not ok_type:
+            self.fail(key, "an integer" if integer else "a number", f"{_type_name(v)} ({_show(v)})")
+        fv = float(v)
+        if not math.isfinite(fv):
+            self.fail(key, "a finite number", _show(v))
+        if (strict_low and fv <= low) or (not strict_low and fv < low) or fv > high:
+            rng = []
+            if low > -math.inf:
+                rng.append(f"{'>' if strict_low else '>='} {low:g}")
+            if high < math.inf:
+                rng.append(f"<= {high:g}")
+            self.fail(key, f"{'an integer' if integer else 'a number'} {' and '.join(rng)}", _show(v))
+        return int(v) if integer else fv
+
+    def string(self, v: Any, key: str, choices: tuple[str, ...] | None = None) -> str:
+        if not isinstance(v, str):
+            self.fail(key, "a string" + (f" (one of {', '.join(choices)})" if choices else ""),
+                      f"{_type_name(v)} ({_show(v)})")
+        if choices is not None and v not in choices:
+            self.fail(key, f"one of {', '.join(repr(c) for c in choices)}",
+                      f"{v!r}{suggest(v, choices)}")
+        return v
+
+    def name_map(self, v: Any, key: str, *, values: str = "number") -> dict:
+        """A table of variable name -> number (or -> table when values == 'table')."""
+        d = self.table(v, key)
+        out = {}
+        for k, x in d.items():
+            if not k.isidentifier():
+                self.fail(f"{key}.{k}", "a variable name (letters, digits, underscores)", repr(k))
+            if values == "number":
+                out[k] = self.number(x, f"{key}.{k}")
+            elif values == "table":
+                out[k] = self.table(x, f"{key}.{k}")
+            else:
+                out[k] = x
+        return out
+
+
+# ----------------------------------------------------------------------------------------- data type
+@dataclass(frozen=True)
+class Scenario:
+    """A validated scenario: plain data (nested dicts/lists of numbers and strings) plus its origin.
+
+    Attributes
+    ----------
+    name : str
+        ``scenario.name`` (defaults to the file's stem).
+    data : dict
+        The whole scenario with every default filled in; the sections are those of the file
+        (``scenario``, ``plant``, ``controller_model``, ``operating_point``, ``controllers``,
+        ``setpoints``, ``limits``, ``disturbances``, ``instruments``, ``actuators``, ``faults``,
+        ``criteria``, ``study``).
+    file : str
+        Path of the file it came from (``"<dict>"`` when parsed from a dict).
+    """
+
+    name: str
+    data: dict
+    file: str = "<dict>"
+    raw: dict = field(default_factory=dict, repr=False, compare=False)
+
+    @property
+    def sample_time(self) -> float:
+        return self.data["scenario"]["sample_time"]
+
+    @property
+    def duration(self) -> float | None:
+        return self.data["scenario"]["duration"]
+
+    @property
+    def seed(self) -> int:
+        return self.data["scenario"]["seed"]
+
+    def get(self, key: str) -> Any:
+        """Value at a dotted key path (``"plant.parameters.volume"``)."""
+        return get_path(self.data, key, file=self.file)
+
+    def to_json(self) -> str:
+        return json.dumps(self.data, sort_keys=True)
+
+
+_PIECE = re.compile(r"([A-Za-z_][A-Za-z0-9_]*)|\[(\d+)\]|(\.)")
+
+
+def _split(key: str) -> list[str | int]:
+    """``"criteria[2].limit"`` -> ``["criteria", 2, "limit"]``; raises ValueError when malformed."""
+    parts: list[str | int] = []
+    pos = 0
+    expect_name = True
+    while pos < len(key):
+        m = _PIECE.match(key, pos)
+        if m is None:
+            raise ValueError(key)
+        name, idx, dot = m.groups()
+        if name is not None:
+            if not expect_name:
+                raise ValueError(key)
+            parts.append(name)
+            expect_name = False
+        elif idx is not None:
+            if expect_name:
+                raise ValueError(key)
+            parts.append(int(idx))
+        else:
+            if expect_name:
+                raise ValueError(key)
+            expect_name = True
+        pos = m.end()
+    if expect_name or not parts:
+        raise ValueError(key)
+    return parts
+
+
+def _parts(key: str, file: str) -> list[str | int]:
+    try:
+        return _split(key)
+    except (ValueError, TypeError):
+        raise ScenarioError(f"expected a dotted key path such as 'plant.parameters.volume' or "
+                            f"'criteria[0].limit'; found {key!r}.", file=file, key=str(key)) from None
+
+
+def get_path(data: Mapping, key: str, *, file: str = "<dict>") -> Any:
+    """Value at a dotted key path; ``criteria[0].limit`` indexes arrays."""
+    cur: Any = data
+    done: list[str] = []
+    for p in _parts(key, file):
+        if isinstance(p, int):
+            if not isinstance(cur, list) or p >= len(cur):
+                raise ScenarioError(f"expected an array with an entry {p}; found {_show(cur)}.",
+                                    file=file, key=".".join(done) or key)
+            cur = cur[p]
+        else:
+            if not isinstance(cur, Mapping) or p not in cur:
+                known = list(cur) if isinstance(cur, Mapping) else []
+                raise ScenarioError(
+                    f"expected a key '{p}' at this place of the scenario{suggest(p, known)}; "
+                    f"found none (known here: {', '.join(known) or 'nothing'}).",
+                    file=file, key=key)
+            cur = cur[p]
+        done.append(str(p))
+    return cur
+
+
+def set_path(data: dict, key: str, value: Any, *, file: str = "<dict>") -> None:
+    """Set the value at a dotted key path in place; missing intermediate tables are created.
+
+    The last key must name an existing value *or* sit in a table that holds name -> value entries
+    (``plant.parameters.x``, ``operating_point.mvs.x``): it is then added.
+    """
+    parts = _parts(key, file)
+    cur: Any = data
+    for p in parts[:-1]:
+        if isinstance(p, int):
+            if not isinstance(cur, list) or p >= len(cur):
+                raise ScenarioError(f"expected an array with an entry {p}; found {_show(cur)}.",
+                                    file=file, key=key)
+            cur = cur[p]
+        else:
+            if not isinstance(cur, dict):
+                raise ScenarioError(f"expected a table above '{p}'; found {_show(cur)}.",
+                                    file=file, key=key)
+            cur = cur.setdefault(p, {})
+    last = parts[-1]
+    if isinstance(last, int):
+        if not isinstance(cur, list) or last >= len(cur):
+            raise ScenarioError(f"expected an array with an entry {last}; found {_show(cur)}.",
+                                file=file, key=key)
+    elif not isinstance(cur, dict):
+        raise ScenarioError(f"expected a table to hold '{last}'; found {_show(cur)}.",
+                            file=file, key=key)
+    cur[last] = value
+
+
+# ----------------------------------------------------------------------------------------- loading
+def load_scenario(path: str | Path) -> Scenario:
+    """Read and validate a scenario file.
+
+    Parameters
+    ----------
+    path : str or Path
+        A ``.toml`` file.
+
+    Returns
+    -------
+    Scenario
+
+    Raises
+    ------
+    ScenarioError
+        The file cannot be read, is not valid TOML, or a key is unknown, missing or out of range.
+        The message names the file, the key path, what was expected and what was found.
+    """
+    p = Path(path)
+    try:
+        raw_bytes = p.read_bytes()
+    except OSError as e:
+        raise ScenarioError(f"expected a readable scenario file; found {e.strerror or e}.",
+                            file=str(p)) from None
+    try:
+        raw = tomllib.loads(raw_bytes.decode("utf-8"))
+    except UnicodeDecodeError as e:
+        raise ScenarioError(f"expected UTF-8 text (TOML); found undecodable bytes ({e.reason} at "
+                            f"byte {e.start}).", file=str(p)) from None
+    except tomllib.TOMLDecodeError as e:
+        raise ScenarioError(f"expected valid TOML; found a syntax error: {e}.", file=str(p)) from None
+    return parse_scenario(raw, file=str(p), default_name=p.stem)
+
+
+def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "scenario") -> Scenario:
+    """Validate a scenario given as a (TOML-parsed) mapping; see :func:`load_scenario`."""
+    c = _Ctx(file)
+    raw = c.table(raw, "")
+    c.keys(raw, "", TOP_KEYS, required=("plant", "scenario"))
+    data: dict[str, Any] = {}
+
+    # [scenario]
+    s = c.table(raw["scenario"], "scenario")
+    c.keys(s, "scenario", SCENARIO_KEYS, required=("sample_time",))
+    name = c.string(s.get("name", default_name), "scenario.name")
+    if not name or any(ch in name for ch in "/\\:*?\"<>|") or name.strip() != name:
+        c.fail("scenario.name", "a name usable in a file name (no / \\ : * ? \" < > |, no "
+               "surrounding blanks)", repr(name))
+    ts = c.number(s["sample_time"], "scenario.sample_time", low=0.0, strict_low=True)
+    dur = None
+    if "duration" in s:
+        dur = c.number(s["duration"], "scenario.duration", low=0.0, strict_low=True)
+        if dur < ts:
+            c.fail("scenario.duration", f"a duration of at least one sample time ({ts:g})", _show(s["duration"]))
+    seed = c.number(s.get("seed", 0), "scenario.seed", low=0, integer=True)
+    ci = s.get("ci", {})
+    ci = c.table(ci, "scenario.ci")
+    c.keys(ci, "scenario.ci", ("duration",))
+    if "duration" in ci:
+        ci["duration"] = c.number(ci["duration"], "scenario.ci.duration", low=ts)
+    data["scenario"] = {
+        "name": name,
+        "description": c.string(s.get("description", ""), "scenario.description"),
+        "duration": dur,
+        "sample_time": ts,
+        "seed": seed,
+        "dead_time": c.string(s.get("dead_time", "round"), "scenario.dead_time", ("round", "refuse")),
+        "ci": ci,
+    }
+
+    # [plant]
+    pl = c.table(raw["plant"], "plant")
+    c.keys(pl, "plant", PLANT_KEYS, required=("model",))
+    model = c.string(pl["model"], "plant.model")
+    options = c.table(pl.get("options", {}), "plant.options")
+    for k, v in options.items():
+        if isinstance(v, (Mapping, list)) and not (isinstance(v, list) and
+                                                   all(isinstance(x, (int, float, str)) for x in v)):
+            c.fail(f"plant.options.{k}", "a number, string, boolean or array of them",
+                   f"{_type_name(v)} ({_show(v)})")
+    data["plant"] = {"model": model, "options": options,
+                     "parameters": c.name_map(pl.get("parameters", {}), "plant.parameters")}
+
+    # [controller_model]
+    cm = c.table(raw.get("controller_model", {}), "controller_model")
+    c.keys(cm, "controller_model", CONTROLLER_MODEL_KEYS)
+    data["controller_model"] = {
+        "parameters": c.name_map(cm.get("parameters", {}), "controller_model.parameters")}
+
+    # [operating_point]
+    op = c.table(raw.get("operating_point", {}), "operating_point")
+    c.keys(op, "operating_point", OP_KEYS)
+    data["operating_point"] = {
+        "mvs": c.name_map(op.get("mvs", {}), "operating_point.mvs"),
+        "dvs": c.name_map(op.get("dvs", {}), "operating_point.dvs"),
+        "targets": c.name_map(op.get("targets", {}), "operating_point.targets"),
+        "state_guess": c.name_map(op.get("state_guess", {}), "operating_point.state_guess"),
+        "pick": c.string(op.get("pick", "nearest"), "operating_point.pick", OP_PICKS),
+    }
+
+    # [controllers.<label>]
+    ctl = c.table(raw.get("controllers", {}), "controllers")
+    controllers = {}
+    for label, spec in ctl.items():
+        key = f"controllers.{label}"
+        if not label.isidentifier():
+            c.fail(key, "a controller label (letters, digits, underscores)", repr(label))
+        spec = c.table(spec, key)
+        kind = spec.get("kind", label if label in CONTROLLER_KINDS else None)
+        if kind is None:
+            c.fail(f"{key}.kind", f"the key 'kind' (one of {', '.join(CONTROLLER_KINDS)}) for a "
+                   f"controller labelled '{label}'", "nothing")
+        kind = c.string(kind, f"{key}.kind", CONTROLLER_KINDS)
+        spec = dict(spec)
+        spec["kind"] = kind
+        controllers[label] = spec
+    data["controllers"] = controllers
+
+    # signal-like sections: name -> table (checked against the model and H3's factories later)
+    for section in ("setpoints", "disturbances", "instruments", "actuators", "faults"):
+        tbl = c.table(raw.get(section, {}), section)
+        out = {}
+        for k, v in tbl.items():
+            if not k.isidentifier():
+                c.fail(f"{section}.{k}", "a variable name or label (letters, digits, underscores)",
+                       repr(k))
+            out[k] = c.table(v, f"{section}.{k}")
+        data[section] = out
+
+    # [limits.<variable>] low/high
+    lim = c.table(raw.get("limits", {}), "limits")
+    limits = {}
+    for k, v in lim.items():
+        key = f"limits.{k}"
+        v = c.table(v, key)
+        c.keys(v, key, ("low", "high", "rate"))
+        entry = {}
+        for side in ("low", "high"):
+            if side in v:
+                entry[side] = c.number(v[side], f"{key}.{side}")
+        if "rate" in v:
+            entry["rate"] = c.number(v["rate"], f"{key}.rate", low=0.0, strict_low=True)
+        if "low" in entry and "high" in entry and entry["low"] >= entry["high"]:
+            c.fail(f"{key}.high", f"a high limit above the low limit ({entry['low']:g})",
+                   _show(v["high"]))
+        limits[k] = entry
+    data["limits"] = limits
+
+    # [[criteria]]
+    crit_raw = raw.get("criteria", [])
+    if not isinstance(crit_raw, list):
+        c.fail("criteria", "an array of tables ([[criteria]] entries)", f"{_type_name(crit_raw)}")
+    criteria = []
+    names_seen: set[str] = set()
+    for i, cr in enumerate(crit_raw):
+        key = f"criteria[{i}]"
+        cr = c.table(cr, key)
+        c.keys(cr, key, CRITERION_KEYS, required=("check",))
+        check = c.string(cr["check"], f"{key}.check", tuple(CRITERION_CHECKS))
+        for need in CRITERION_CHECKS[check]["needs"]:
+            if need not in cr:
+                c.fail(f"{key}.{need}", f"the key '{need}' (the check '{check}' needs "
+                       f"{', '.join(CRITERION_CHECKS[check]['needs'])})", "nothing")
+        entry: dict[str, Any] = {"check": check}
+        for k in ("controller", "cv", "mv", "variable", "than"):
+            if k in cr:
+                entry[k] = c.string(cr[k], f"{key}.{k}")
+        if "limit" in cr:
+            entry["limit"] = c.number(cr["limit"], f"{key}.limit")
+        if "fraction" in cr:
+            entry["fraction"] = c.number(cr["fraction"], f"{key}.fraction", low=0.0, strict_low=True)
+        if "by_percent" in cr:
+            entry["by_percent"] = c.number(cr["by_percent"], f"{key}.by_percent", high=100.0)
+        if "kpi" in cr:
+            entry["kpi"] = c.string(cr["kpi"], f"{key}.kpi", BETTER_KPIS)
+        if check == "better_than" and "controller" not in entry:
+            c.fail(f"{key}.controller", "the key 'controller' (the one that should be better)", "nothing")
+        if entry.get("controller") is not None and entry.get("controller") == entry.get("than"):
+            c.fail(f"{key}.than", "another controller than 'controller'", repr(entry["than"]))
+        nm = c.string(cr.get("name", _criterion_name(entry)), f"{key}.name")
+        if nm in names_seen:
+            c.fail(f"{key}.name", "a name no other criterion uses (add a 'name' key)", repr(nm))
+        names_seen.add(nm)
+        entry["name"] = nm
+        criteria.append(entry)
+    data["criteria"] = criteria
+
+    # [study]
+    st = c.table(raw.get("study", {}), "study")
+    c.keys(st, "study", STUDY_KEYS)
+    draws = c.number(st.get("draws", 0), "study.draws", low=0, integer=True)
+    full_draws = c.number(st.get("full_draws", draws), "study.full_draws", low=0, integer=True)
+    sweeps = []
+    sw_raw = st.get("sweep", [])
+    if not isinstance(sw_raw, list):
+        c.fail("study.sweep", "an array of tables ([[study.sweep]] entries)", _type_name(sw_raw))
+    for i, sw in enumerate(sw_raw):
+        key = f"study.sweep[{i}]"
+        sw = c.table(sw, key)
+        c.keys(sw, key, SWEEP_KEYS, required=("key", "values"))
+        keys = sw["key"]
+        keys = [keys] if isinstance(keys, str) else keys
+        if not isinstance(keys, list) or not keys or not all(isinstance(k, str) for k in keys):
+            c.fail(f"{key}.key", "a key path string or an array of them", _show(sw["key"]))
+        for k in keys:
+            _check_target_key(c, raw, k, f"{key}.key")
+        vals = {}
+        for vk in ("values", "full_values"):
+            if vk not in sw:
+                continue
+            v = sw[vk]
+            if not isinstance(v, list) or not v:
+                c.fail(f"{key}.{vk}", "a non-empty array of values", _show(v))
+            for j, x in enumerate(v):
+                if isinstance(x, (Mapping, list)):
+                    c.fail(f"{key}.{vk}[{j}]", "a number, string or boolean", _show(x))
+            vals[vk] = list(v)
+        sweeps.append({"keys": keys, "values": vals["values"],
+                       "full_values": vals.get("full_values", vals["values"]),
+                       "label": c.string(sw.get("label", keys[0]), f"{key}.label")})
+    draw_specs = []
+    dr_raw = st.get("draw", [])
+    if not isinstance(dr_raw, list):
+        c.fail("study.draw", "an array of tables ([[study.draw]] entries)", _type_name(dr_raw))
+    for i, dr in enumerate(dr_raw):
+        key = f"study.draw[{i}]"
+        dr = c.table(dr, key)
+        if "distribution" not in dr:
+            c.fail(f"{key}.distribution", f"the key 'distribution' (one of {', '.join(DISTRIBUTIONS)})",
+                   "nothing")
+        dist = c.string(dr["distribution"], f"{key}.distribution", tuple(DISTRIBUTIONS))
+        allowed = {"key", "distribution", *DISTRIBUTIONS[dist], *DRAW_OPTIONAL}
+        c.keys(dr, key, allowed, required=("key", *DISTRIBUTIONS[dist]))
+        k = c.string(dr["key"], f"{key}.key")
+        _check_target_key(c, raw, k, f"{key}.key")
+        entry = {"key": k, "distribution": dist,
+                 "relative": _bool(c, dr.get("relative", False), f"{key}.relative")}
+        if dist == "choice":
+            v = dr["values"]
+            if not isinstance(v, list) or not v or any(isinstance(x, (Mapping, list)) for x in v):
+                c.fail(f"{key}.values", "a non-empty array of numbers or strings", _show(v))
+            entry["values"] = list(v)
+        else:
+            for pk in DISTRIBUTIONS[dist]:
+                entry[pk] = c.number(dr[pk], f"{key}.{pk}")
+            if dist == "normal" and entry["std"] < 0:
+                c.fail(f"{key}.std", "a standard deviation >= 0", _show(dr["std"]))
+            if dist == "lognormal":
+                if entry["sigma"] < 0:
+                    c.fail(f"{key}.sigma", "a sigma >= 0", _show(dr["sigma"]))
+                if entry["median"] <= 0:
+                    c.fail(f"{key}.median", "a median > 0", _show(dr["median"]))
+            if dist == "uniform" and not entry["low"] < entry["high"]:
+                c.fail(f"{key}.high", f"a value above low ({entry['low']:g})", _show(dr["high"]))
+            if dist == "triangular" and not (entry["low"] <= entry["mode"] <= entry["high"]
+                                             and entry["low"] < entry["high"]):
+                c.fail(f"{key}.mode", "low <= mode <= high with low < high",
+                       f"low={entry['low']:g}, mode={entry['mode']:g}, high={entry['high']:g}")
+        for ck in ("clip_low", "clip_high"):
+            if ck in dr:
+                entry[ck] = c.number(dr[ck], f"{key}.{ck}")
+        draw_specs.append(entry)
+    if draw_specs and draws == 0 and full_draws == 0:
+        c.fail("study.draws", "a number of Monte Carlo draws >= 1 (study.draw entries are given)", "0")
+    data["study"] = {"draws": draws, "full_draws": full_draws, "sweep": sweeps, "draw": draw_specs}
+    return Scenario(name=name, data=data, file=file, raw=copy.deepcopy(dict(raw)))
+
+
+def _bool(c: _Ctx, v: Any, key: str) -> bool:
+    if not isinstance(v, bool):
+        c.fail(key, "true or false", f"{_type_name(v)} ({_show(v)})")
+    return v
+
+
+def _criterion_name(entry: Mapping) -> str:
+    parts = [entry["check"]]
+    for k in ("cv", "mv", "variable"):
+        if k in entry:
+            parts.append(entry[k])
+    if "controller" in entry:
+        parts.append(entry["controller"])
+    if "than" in entry:
+        parts.append("vs_" + entry["than"])
+    return ":".join(parts)
+
+
+#: Sections a study may address, and how deep a key path goes in each.
+_ADDRESSABLE = {
+    "scenario": ("duration", "seed"),
+    "plant": ("parameters",),
+    "controller_model": ("parameters",),
+    "operating_point": ("mvs", "dvs", "targets"),
+    "controllers": None, "setpoints": None, "disturbances": None, "instruments": None,
+    "actuators": None, "faults": None, "limits": None, "criteria": None,
+}
+
+
+def _check_target_key(c: _Ctx, raw: Mapping, k: str, where: str) -> None:
+    """A study key path must address something a case can change (checked before running)."""
+    try:
+        parts = _split(k)
+    except (ValueError, TypeError):
+        parts = []
+    if not parts or not isinstance(parts[0], str) or len(parts) < 2:
+        c.fail(where, "a dotted key path such as 'plant.parameters.volume'", repr(k))
+    head = parts[0]
+    if head not in _ADDRESSABLE:
+        c.fail(where, f"a key path starting with one of {', '.join(_ADDRESSABLE)}",
+               f"{k!r}{suggest(str(head), list(_ADDRESSABLE))}")
+    sub = _ADDRESSABLE[head]
+    if sub is not None and parts[1] not in sub:
+        c.fail(where, f"a key path {head}.<{'|'.join(sub)}>...", f"{k!r}{suggest(str(parts[1]), sub)}")
+    if head in ("plant", "controller_model", "operating_point") and len(parts) != 3:
+        c.fail(where, f"a key path {head}.{parts[1]}.<name>", repr(k))
+    if head not in ("plant", "controller_model", "operating_point", "scenario"):
+        # the addressed entry must exist in the file (a sweep changes a value, it does not invent one)
+        cur: Any = raw
+        for p in parts[:-1]:
+            if isinstance(p, int):
+                ok = isinstance(cur, list) and p < len(cur)
+                cur = cur[p] if ok else None
+            else:
+                ok = isinstance(cur, Mapping) and p in cur
+                cur = cur[p] if ok else None
+            if not ok:
+                c.fail(where, "a key path to a table present in the file", f"{k!r} ('{p}' is not there)")
