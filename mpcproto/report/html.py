@@ -1,0 +1,513 @@
+"""The batch report: ONE self-contained HTML file (inline CSS, PNG charts as base64 data URIs).
+
+:func:`write_html_report` turns the records of a batch (the lines of ``results.jsonl``) into a page
+that opens anywhere, offline, and can be attached to a design review or a CI run as a single file:
+
+* the verdict at the top (cases passed / failed / errored, baseline regressions) and the safety
+  caution;
+* a table per scenario;
+* charts: verdicts per scenario, how much of each criterion's limit the cases use, and the spread of
+  each CV's IAE per controller;
+* the cases, worst first (errors, then failed criteria, then the cases closest to a limit), and the
+  KPI tables of the worst few;
+* optional extra PNGs (for example the trajectories of the worst case of each scenario).
+
+The page loads nothing from outside: no scripts, no web fonts, no external images or style sheets.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import math
+import os
+from collections import Counter, defaultdict
+from collections.abc import Iterable, Mapping, Sequence
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+from .baseline import BaselineComparison
+from .summary import case_verdict, criteria_of, utilisation
+
+__all__ = ["write_html_report", "SAFETY_CAUTION", "sort_worst_first", "png_data_uri"]
+
+SAFETY_CAUTION = (
+    "Simulation only. These results come from models and assumed disturbances; they are not a "
+    "guarantee of how a real unit will behave. A controller must never be the only protection of a "
+    "plant: the unit needs its own independent safety systems (trips, relief, interlocks), and any "
+    "change to it goes through management of change. Local codes and licensed engineers decide what "
+    "is installed and how it is operated.")
+
+# our own palette: verdict colours and a muted ink
+COLOURS = {"passed": "#2f8f83", "failed": "#d9703a", "error": "#7b4f8e", "ink": "#23313f",
+           "grid": "#d6dde4", "limit": "#b8323a", "band": "#f3f6f8"}
+RANK = {"error": 0, "failed": 1, "passed": 2}
+
+
+# ------------------------------------------------------------------------------------------ helpers
+def _e(s: Any) -> str:
+    return html.escape(str(s), quote=True)
+
+
+def _num(v: Any, digits: int = 4) -> str:
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, (int, float)):
+        if isinstance(v, float) and math.isnan(v):
+            return "&ndash;"
+        if isinstance(v, float) and math.isinf(v):
+            return "&infin;" if v > 0 else "&minus;&infin;"
+        return f"{v:.{digits}g}"
+    if v is None:
+        return "&ndash;"
+    return _e(v)
+
+
+def _worst_criterion(rec: Mapping[str, Any]) -> tuple[float, str, Mapping[str, Any] | None]:
+    best = (math.nan, "", None)
+    for ctl, cr in criteria_of(rec):
+        u = utilisation(cr)
+        if math.isnan(u):
+            continue
+        if math.isnan(best[0]) or u > best[0]:
+            best = (u, ctl, cr)
+    return best
+
+
+def sort_worst_first(records: Iterable[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
+    """Records ordered errors first, then failed, then by how close they come to a limit."""
+    def key(rec: Mapping[str, Any]):
+        u = _worst_criterion(rec)[0]
+        return (RANK[case_verdict(rec)], -(u if not math.isnan(u) else -1.0),
+                str(rec.get("scenario", "")), str(rec.get("case_id", "")))
+    return sorted(records, key=key)
+
+
+def png_data_uri(png: bytes) -> str:
+    """``data:image/png;base64,...`` for embedding a PNG in the page."""
+    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+
+def _fig_png(fig) -> bytes:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: PLC0415 - lazy, Agg only
+
+    FigureCanvasAgg(fig)
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=100)
+    return buf.getvalue()
+
+
+def _style_axes(ax) -> None:
+    ax.set_facecolor("white")
+    ax.grid(True, axis="x", color=COLOURS["grid"], linewidth=0.8)
+    ax.set_axisbelow(True)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.tick_params(colors=COLOURS["ink"], labelsize=9)
+
+
+# ------------------------------------------------------------------------------------------- charts
+def _chart_verdicts(by_scen: Mapping[str, Counter]) -> bytes:
+    from matplotlib.figure import Figure  # noqa: PLC0415
+
+    names = list(by_scen)
+    h = 1.2 + 0.45 * len(names)
+    fig = Figure(figsize=(9.0, h), layout="constrained")
+    ax = fig.add_subplot()
+    left = [0] * len(names)
+    for v in ("passed", "failed", "error"):
+        vals = [by_scen[n][v] for n in names]
+        ax.barh(names, vals, left=left, color=COLOURS[v], label=v, height=0.6)
+        left = [a + b for a, b in zip(left, vals)]
+    ax.invert_yaxis()
+    ax.set_xlabel("cases", color=COLOURS["ink"])
+    ax.set_title("Verdicts per scenario", loc="left", color=COLOURS["ink"], fontsize=11)
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=9, frameon=False)
+    _style_axes(ax)
+    return _fig_png(fig)
+
+
+def _chart_utilisation(scen: str, recs: Sequence[Mapping[str, Any]], max_rows: int = 14) -> bytes | None:
+    """Per criterion, the share of its limit each case uses (1.0 = at the limit)."""
+    from matplotlib.figure import Figure  # noqa: PLC0415
+
+    per: dict[str, list[tuple[float, bool]]] = defaultdict(list)
+    for rec in recs:
+        if case_verdict(rec) == "error":
+            continue
+        for ctl, cr in criteria_of(rec):
+            u = utilisation(cr)
+            if math.isnan(u):
+                continue
+            label = (f"{ctl}: " if ctl else "") + str(cr.get("name") or "criterion")
+            per[label].append((u, cr.get("passed") is not False))
+    if not per:
+        return None
+    labels = sorted(per, key=lambda k: -max(u for u, _ in per[k]))[:max_rows]
+    cap = 3.0
+    fig = Figure(figsize=(9.0, 1.3 + 0.38 * len(labels)), layout="constrained")
+    ax = fig.add_subplot()
+    for i, lab in enumerate(labels):
+        us = per[lab]
+        xs = [min(u, cap) for u, _ in us]
+        cols = [COLOURS["passed"] if ok else COLOURS["failed"] for _, ok in us]
+        # deterministic vertical spread so overlapping points stay visible
+        ys = [i + 0.28 * (((j * 0.6180339887) % 1.0) - 0.5) for j in range(len(us))]
+        ax.scatter(xs, ys, s=14, c=cols, alpha=0.75, linewidths=0)
+    ax.axvline(1.0, color=COLOURS["limit"], linewidth=1.4, linestyle="--")
+    ax.text(1.0, -0.9, " limit", color=COLOURS["limit"], fontsize=8, va="bottom")
+    ax.set_yticks(range(len(labels)), labels)
+    ax.set_ylim(len(labels) - 0.5, -1.0)
+    ax.set_xlim(0, max(1.25, min(cap, max(min(u, cap) for k in labels for u, _ in per[k]) * 1.08)))
+    ax.set_xlabel("share of the limit used (value / limit; over 1 = criterion failed; capped at 3)",
+                  color=COLOURS["ink"], fontsize=9)
+    ax.set_title(f"{scen}: how close each case comes to each limit", loc="left",
+                 color=COLOURS["ink"], fontsize=11)
+    _style_axes(ax)
+    return _fig_png(fig)
+
+
+def _chart_iae(scen: str, recs: Sequence[Mapping[str, Any]], max_cvs: int = 4) -> bytes | None:
+    """Spread of each CV's IAE over the cases, one box per controller."""
+    from matplotlib.figure import Figure  # noqa: PLC0415
+
+    data: dict[str, dict[str, list[float]]] = defaultdict(lambda: defaultdict(list))
+    for rec in recs:
+        if case_verdict(rec) == "error":
+            continue
+        for ctl, res in (rec.get("controllers") or {}).items():
+            for var, k in ((res or {}).get("kpi") or {}).items():
+                v = k.get("iae") if isinstance(k, Mapping) else None
+                if isinstance(v, (int, float)) and math.isfinite(v):
+                    data[var][str(ctl)].append(float(v))
+    cvs = [cv for cv in data if data[cv]][:max_cvs]
+    if not cvs:
+        return None
+    fig = Figure(figsize=(9.0, 2.9), layout="constrained")
+    axes = fig.subplots(1, len(cvs), squeeze=False)[0]
+    palette = ["#3d6f99", "#c9a227", "#5b8c5a", "#a05a7a", "#6b6b6b"]
+    for ax, cv in zip(axes, cvs):
+        ctls = sorted(data[cv])
+        bp = ax.boxplot([data[cv][c] for c in ctls], tick_labels=ctls, patch_artist=True,
+                        widths=0.55, medianprops={"color": COLOURS["ink"]})
+        for patch, col in zip(bp["boxes"], palette * 3):
+            patch.set_facecolor(col)
+            patch.set_alpha(0.55)
+        ax.set_title(f"IAE of {cv}", fontsize=10, color=COLOURS["ink"])
+        ax.grid(True, axis="y", color=COLOURS["grid"], linewidth=0.8)
+        ax.set_axisbelow(True)
+        for side in ("top", "right"):
+            ax.spines[side].set_visible(False)
+        ax.tick_params(labelsize=9, colors=COLOURS["ink"])
+    fig.suptitle(f"{scen}: integral of absolute error over the cases (lower is better)",
+                 x=0.01, ha="left", fontsize=11, color=COLOURS["ink"])
+    return _fig_png(fig)
+
+
+# ------------------------------------------------------------------------------------------ the page
+_CSS = """
+:root { --ink:#23313f; --muted:#5d6b78; --line:#d6dde4; --band:#f3f6f8; --pass:#2f8f83;
+        --fail:#d9703a; --err:#7b4f8e; --warn-bg:#fff6e5; --warn-line:#e0a43a; }
+* { box-sizing: border-box; }
+body { margin: 0; font: 14px/1.45 system-ui, -apple-system, "Segoe UI", Roboto, Helvetica, Arial,
+       sans-serif; color: var(--ink); background: #eef2f5; }
+header { background: #23313f; color: #fff; padding: 22px 32px 18px; }
+header h1 { margin: 0 0 4px; font-size: 22px; font-weight: 600; letter-spacing: .2px; }
+header .sub { color: #c4d0da; font-size: 13px; }
+main { max-width: 1160px; margin: 0 auto; padding: 18px 24px 40px; }
+section { background: #fff; border: 1px solid var(--line); border-radius: 6px; padding: 14px 18px;
+          margin: 14px 0; }
+h2 { font-size: 17px; margin: 2px 0 10px; }
+h3 { font-size: 14px; margin: 14px 0 6px; }
+.cards { display: flex; gap: 12px; flex-wrap: wrap; }
+.card { flex: 1 1 140px; border-radius: 6px; padding: 10px 14px; background: var(--band);
+        border-left: 5px solid var(--line); }
+.card .n { font-size: 26px; font-weight: 650; }
+.card .l { color: var(--muted); font-size: 12px; text-transform: uppercase; letter-spacing: .5px; }
+.card.pass { border-left-color: var(--pass); } .card.fail { border-left-color: var(--fail); }
+.card.err { border-left-color: var(--err); } .card.reg { border-left-color: #b8323a; }
+.verdict { display: inline-block; font-weight: 650; padding: 3px 12px; border-radius: 14px;
+           color: #fff; margin-top: 8px; }
+.verdict.ok { background: var(--pass); } .verdict.bad { background: var(--fail); }
+.caution { background: var(--warn-bg); border: 1px solid var(--warn-line);
+           border-left: 6px solid var(--warn-line); }
+.caution b { display: block; margin-bottom: 4px; }
+table { border-collapse: collapse; width: 100%; font-size: 13px; }
+th, td { text-align: left; padding: 5px 8px; border-bottom: 1px solid var(--line);
+         vertical-align: top; }
+th { background: var(--band); font-weight: 600; white-space: nowrap; }
+td.id { white-space: nowrap; }
+td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+tr.error td:first-child { box-shadow: inset 4px 0 var(--err); }
+tr.failed td:first-child { box-shadow: inset 4px 0 var(--fail); }
+tr.passed td:first-child { box-shadow: inset 4px 0 var(--pass); }
+.tag { display: inline-block; padding: 1px 8px; border-radius: 10px; font-size: 12px; color: #fff;
+       font-weight: 600; }
+.tag.passed { background: var(--pass); } .tag.failed { background: var(--fail); }
+.tag.error { background: var(--err); }
+.small { color: var(--muted); font-size: 12px; }
+.msg { font-family: ui-monospace, SFMono-Regular, Menlo, Consolas, monospace; font-size: 12px;
+       color: #6a2c2c; word-break: break-word; }
+figure { margin: 10px 0 16px; } figure img { max-width: 100%; height: auto; display: block; }
+figcaption { color: var(--muted); font-size: 12px; margin-top: 4px; }
+.case { border-top: 1px solid var(--line); padding-top: 8px; margin-top: 10px; }
+.mark-ok { color: var(--pass); font-weight: 700; } .mark-bad { color: var(--fail); font-weight: 700; }
+footer { color: var(--muted); font-size: 12px; text-align: center; padding: 8px 0 24px; }
+"""
+
+
+def _img(png: bytes, alt: str, caption: str = "") -> str:
+    cap = f"<figcaption>{_e(caption)}</figcaption>" if caption else ""
+    return f'<figure><img alt="{_e(alt)}" src="{png_data_uri(png)}">{cap}</figure>'
+
+
+def _params_text(rec: Mapping[str, Any], limit: int = 4) -> str:
+    p = rec.get("params") or {}
+    if not isinstance(p, Mapping) or not p:
+        return ""
+    items = list(p.items())
+    txt = ", ".join(f"{k}={_num(v) if isinstance(v, (int, float)) else _e(v)}" for k, v in items[:limit])
+    if len(items) > limit:
+        txt += f", &hellip; (+{len(items) - limit})"
+    return txt
+
+
+def _case_table(recs: Sequence[Mapping[str, Any]], max_rows: int, linked: int = 0) -> str:
+    rows = ['<table><tr><th>#</th><th>case</th><th>scenario</th><th>verdict</th>'
+            '<th>closest criterion</th><th class="num">value</th><th class="num">limit</th>'
+            '<th class="num">share of limit</th><th>parameters</th><th class="num">seed</th></tr>']
+    for i, rec in enumerate(recs[:max_rows], 1):
+        v = case_verdict(rec)
+        u, ctl, cr = _worst_criterion(rec)
+        if v == "error":
+            crit_cell = f'<span class="msg">{_e(rec.get("message", ""))}</span>'
+            val = lim = share = "&ndash;"
+        elif cr is None:
+            crit_cell, val, lim, share = "(no criteria)", "&ndash;", "&ndash;", "&ndash;"
+        else:
+            crit_cell = _e((f"{ctl}: " if ctl else "") + str(cr.get("name") or "criterion"))
+            val, lim = _num(cr.get("value")), _num(cr.get("limit"))
+            share = "&infin;" if math.isinf(u) else f"{100 * u:.0f} %"
+        cid = _e(rec.get("case_id", ""))
+        rows.append(f'<tr class="{v}"><td class="num">{i}</td><td class="id"><a href="#case-{cid}">{cid}</a></td>'
+                    if i <= linked else
+                    f'<tr class="{v}"><td class="num">{i}</td><td class="id">{cid}</td>')
+        rows[-1] += (f'<td>{_e(rec.get("scenario", ""))}</td><td><span class="tag {v}">{v}</span></td>'
+                     f'<td>{crit_cell}</td><td class="num">{val}</td><td class="num">{lim}</td>'
+                     f'<td class="num">{share}</td><td class="small">{_params_text(rec)}</td>'
+                     f'<td class="num small">{_e(rec.get("seed", ""))}</td></tr>')
+    rows.append("</table>")
+    if len(recs) > max_rows:
+        rows.append(f'<p class="small">{len(recs) - max_rows} more cases (all of them passed or '
+                    'further from their limits) are in summary.csv.</p>'
+                    if case_verdict(recs[max_rows]) == "passed" else
+                    f'<p class="small">{len(recs) - max_rows} more cases are in summary.csv.</p>')
+    return "\n".join(rows)
+
+
+def _kpi_block(rec: Mapping[str, Any]) -> str:
+    """KPI and criteria tables of one case."""
+    v = case_verdict(rec)
+    cid = _e(rec.get("case_id", ""))
+    out = [f'<div class="case" id="case-{cid}"><h3>{cid} <span class="tag {v}">{v}</span> '
+           f'<span class="small">{_e(rec.get("scenario", ""))} &middot; seed {_e(rec.get("seed", ""))}'
+           f'{" &middot; " + _params_text(rec, 8) if rec.get("params") else ""}</span></h3>']
+    if v == "error":
+        out.append(f'<p class="msg">{_e(rec.get("message", ""))}'
+                   f'{" (" + _e(rec["error_at"]) + ")" if rec.get("error_at") else ""}</p></div>')
+        return "".join(out)
+    ctls = rec.get("controllers") or {}
+    kpi_names: list[str] = []
+    variables: list[str] = []
+    for res in ctls.values():
+        for var, k in ((res or {}).get("kpi") or {}).items():
+            if var not in variables:
+                variables.append(var)
+            if isinstance(k, Mapping):
+                for name in k:
+                    if name not in kpi_names:
+                        kpi_names.append(name)
+    if variables:
+        head = "".join(f'<th class="num">{_e(k.replace("_", " "))}</th>' for k in kpi_names)
+        rows = [f"<table><tr><th>variable</th><th>controller</th>{head}</tr>"]
+        for var in variables:
+            for ctl, res in ctls.items():
+                k = ((res or {}).get("kpi") or {}).get(var)
+                if not isinstance(k, Mapping):
+                    continue
+                cells = "".join(f'<td class="num">{_num(k.get(n))}</td>' for n in kpi_names)
+                rows.append(f"<tr><td>{_e(var)}</td><td>{_e(ctl)}</td>{cells}</tr>")
+        rows.append("</table>")
+        out.append("".join(rows))
+    crit = criteria_of(rec)
+    if crit:
+        rows = ['<table style="margin-top:8px"><tr><th></th><th>criterion</th><th class="num">value'
+                '</th><th class="num">limit</th><th class="num">share of limit</th></tr>']
+        for ctl, cr in crit:
+            ok = cr.get("passed") is not False
+            u = utilisation(cr)
+            share = "&ndash;" if math.isnan(u) else ("&infin;" if math.isinf(u) else f"{100 * u:.0f} %")
+            rows.append(f'<tr><td class="{"mark-ok" if ok else "mark-bad"}">{"pass" if ok else "FAIL"}'
+                        f'</td><td>{_e((ctl + ": ") if ctl else "")}{_e(cr.get("name", ""))}</td>'
+                        f'<td class="num">{_num(cr.get("value"))}</td>'
+                        f'<td class="num">{_num(cr.get("limit"))}</td><td class="num">{share}</td></tr>')
+        rows.append("</table>")
+        out.append("".join(rows))
+    viol = [(ctl, ev) for ctl, res in ctls.items() for ev in ((res or {}).get("violations") or [])]
+    if viol:
+        out.append(f'<p class="small">{len(viol)} limit-violation event(s): ' + "; ".join(
+            f'{_e(ctl)} {_e(ev.get("variable", "?"))} {_e(ev.get("side", ev.get("bound", "")))} '
+            f'peak excess {_num(ev.get("peak_excess"))}' for ctl, ev in viol[:6])
+            + (" &hellip;" if len(viol) > 6 else "") + "</p>")
+    out.append("</div>")
+    return "".join(out)
+
+
+def write_html_report(records: Iterable[Mapping[str, Any]], path: str | os.PathLike, *,
+                      title: str = "Closed-loop study report", run_info: Mapping[str, Any] | None = None,
+                      baseline: BaselineComparison | None = None,
+                      images: Sequence[tuple[str, bytes | str | os.PathLike]] = (),
+                      max_rows: int = 200, detail_cases: int = 10, charts: bool = True) -> Path:
+    """Write the batch report as one self-contained HTML file.
+
+    Parameters
+    ----------
+    records : iterable of dict
+        Result records (lines of ``results.jsonl``) of the cases to report.
+    path : path
+        Output file (its directory is created).
+    title : str
+        Page title.
+    run_info : mapping, optional
+        Extra facts shown under the title (e.g. ``{"workers": 2, "wall time": "12 s"}``).
+    baseline : BaselineComparison, optional
+        Adds the list of KPIs that got worse than the baseline.
+    images : sequence of (caption, PNG bytes or path)
+        Extra figures to embed (as data URIs), e.g. trajectories of the worst cases.
+    max_rows : int
+        Most rows of the worst-first case table (the rest are in summary.csv).
+    detail_cases : int
+        How many of the worst cases get their KPI and criteria tables.
+    charts : bool
+        Draw the summary charts (matplotlib, Agg).
+
+    Returns
+    -------
+    pathlib.Path
+        The written file.
+    """
+    recs = sort_worst_first(records)
+    info = dict(run_info or {})
+    counts = Counter(case_verdict(r) for r in recs)
+    by_scen: dict[str, Counter] = defaultdict(Counter)
+    scen_recs: dict[str, list] = defaultdict(list)
+    for r in recs:
+        s = str(r.get("scenario") or "(unnamed)")
+        by_scen[s][case_verdict(r)] += 1
+        scen_recs[s].append(r)
+    by_scen = dict(sorted(by_scen.items()))
+    n_reg = len(baseline.regressions) if baseline is not None else 0
+    all_ok = counts["failed"] == 0 and counts["error"] == 0 and n_reg == 0 and bool(recs)
+    stamp = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+
+    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+             f"<meta name='viewport' content='width=device-width, initial-scale=1'>"
+             f"<title>{_e(title)}</title><style>{_CSS}</style></head><body>"]
+    sub = " &middot; ".join([f"{len(recs)} cases", f"{len(by_scen)} scenario(s)", stamp]
+                            + [f"{_e(k)}: {_e(v)}" for k, v in info.items()])
+    parts.append(f"<header><h1>{_e(title)}</h1><div class='sub'>{sub}</div></header><main>")
+
+    cards = [("pass", counts["passed"], "passed"), ("fail", counts["failed"], "failed a criterion"),
+             ("err", counts["error"], "did not complete")]
+    if baseline is not None:
+        cards.append(("reg", n_reg, "worse than baseline"))
+    parts.append("<section><div class='cards'>" + "".join(
+        f"<div class='card {c}'><div class='n'>{n}</div><div class='l'>{_e(lab)}</div></div>"
+        for c, n, lab in cards) + "</div>")
+    verdict_text = ("Every case completed and met its criteria" + (" and no KPI got worse than the "
+                    "baseline" if baseline is not None else "") + ".") if all_ok else (
+        "Not accepted: " + ", ".join(x for x in (
+            f"{counts['failed']} case(s) failed a criterion" if counts["failed"] else "",
+            f"{counts['error']} case(s) did not complete" if counts["error"] else "",
+            f"{n_reg} number(s) worse than the baseline" if n_reg else "",
+            "no cases" if not recs else "") if x) + ".")
+    parts.append(f"<div class='verdict {'ok' if all_ok else 'bad'}'>{_e(verdict_text)}</div></section>")
+    parts.append(f"<section class='caution'><b>Safety caution</b>{_e(SAFETY_CAUTION)}</section>")
+
+    # per scenario
+    rows = ["<table><tr><th>scenario</th><th class='num'>cases</th><th class='num'>passed</th>"
+            "<th class='num'>failed</th><th class='num'>errors</th><th class='num'>closest to a limit"
+            "</th><th class='num'>median run time</th></tr>"]
+    for s, c in by_scen.items():
+        us = [u for u in (_worst_criterion(r)[0] for r in scen_recs[s] if case_verdict(r) != "error")
+              if not math.isnan(u)]
+        el = sorted(float(r["elapsed_s"]) for r in scen_recs[s]
+                    if isinstance(r.get("elapsed_s"), (int, float)))
+        worst = ("&infin;" if math.isinf(max(us)) else f"{100 * max(us):.0f} %") if us else "&ndash;"
+        med = f"{el[len(el) // 2]:.2f} s" if el else "&ndash;"
+        rows.append(f"<tr><td>{_e(s)}</td><td class='num'>{sum(c.values())}</td>"
+                    f"<td class='num'>{c['passed']}</td><td class='num'>{c['failed']}</td>"
+                    f"<td class='num'>{c['error']}</td><td class='num'>{worst}</td>"
+                    f"<td class='num'>{med}</td></tr>")
+    rows.append("</table>")
+    parts.append("<section><h2>Scenarios</h2>" + "".join(rows) + "</section>")
+
+    if baseline is not None:
+        b = baseline
+        head = (f"<p class='small'>Compared with {_e(b.baseline_file or 'the baseline')}: "
+                f"{b.cases_compared} cases, {b.compared} numbers; tolerance: worse by more than "
+                f"{b.atol:g} + {100 * b.rtol:g} % of the baseline value. {b.improved} number(s) "
+                f"improved. {len(b.missing)} baseline case(s) missing here, {len(b.new)} new.</p>")
+        if b.regressions:
+            t = ["<table><tr><th>case</th><th>controller</th><th>quantity</th><th class='num'>"
+                 "baseline</th><th class='num'>now</th><th class='num'>change</th></tr>"]
+            for r in b.regressions[:max_rows]:
+                ch = r.change
+                chs = "&ndash;" if math.isnan(ch) else ("+&infin;" if math.isinf(ch) else f"{100 * ch:+.1f} %")
+                t.append(f"<tr class='failed'><td>{_e(r.case_id)}</td><td>{_e(r.controller)}</td>"
+                         f"<td>{_e(r.quantity)}</td><td class='num'>{_num(r.baseline)}</td>"
+                         f"<td class='num'>{_num(r.current)}</td><td class='num'>{chs}</td></tr>")
+            t.append("</table>")
+            if len(b.regressions) > max_rows:
+                t.append(f"<p class='small'>{len(b.regressions) - max_rows} more.</p>")
+            body = "".join(t)
+        else:
+            body = "<p>No KPI got worse beyond the tolerance.</p>"
+        parts.append(f"<section><h2>Against the baseline</h2>{head}{body}</section>")
+
+    if charts and recs:
+        figs = [_img(_chart_verdicts(by_scen), "verdicts per scenario")]
+        for s, rs in list(scen_recs.items())[:12]:
+            png = _chart_utilisation(s, rs)
+            if png:
+                figs.append(_img(png, f"criterion use, {s}",
+                                 "Each dot is one case; green within the limit, orange beyond it."))
+            png = _chart_iae(s, rs)
+            if png:
+                figs.append(_img(png, f"IAE spread, {s}"))
+        parts.append("<section><h2>Charts</h2>" + "".join(figs) + "</section>")
+
+    parts.append("<section><h2>Cases, worst first</h2>"
+                 "<p class='small'>Errors first, then cases that failed a criterion, then the rest by "
+                 "the largest share of a limit any of their criteria uses.</p>"
+                 + _case_table(recs, max_rows, detail_cases) + "</section>")
+
+    if detail_cases and recs:
+        parts.append(f"<section><h2>The {min(detail_cases, len(recs))} worst cases in detail</h2>"
+                     + "".join(_kpi_block(r) for r in recs[:detail_cases]) + "</section>")
+
+    if images:
+        figs = []
+        for caption, img in images:
+            png = img if isinstance(img, bytes) else Path(img).read_bytes()
+            figs.append(_img(png, caption, caption))
+        parts.append("<section><h2>Trajectories</h2>" + "".join(figs) + "</section>")
+
+    parts.append(f"<footer>mpcproto batch report &middot; {stamp} &middot; simulation only"
+                 "</footer></main></body></html>")
+    out = Path(path)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text("\n".join(parts), encoding="utf-8")
+    return out

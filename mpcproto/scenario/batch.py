@@ -1,0 +1,514 @@
+"""Batch runs of many closed-loop cases: a process pool or a Dask cluster, results streamed to disk.
+
+:func:`run_batch` takes the cases of one or more studies, runs each through a callable (by default
+the package's one-case runner) on a :class:`concurrent.futures.Executor`, and appends one JSON line
+per *finished* case to ``DIR/results.jsonl``: written, flushed and ``fsync``-ed before the next result
+is looked at, so a crash, a kill or Ctrl-C loses no finished case.  ``resume=True`` reads that file
+back (a last line cut short by a kill is dropped) and runs only the cases whose ids are missing.
+
+A case that raises is recorded as an error (``status: "error"`` with the exception's type and
+message) and the batch goes on.  Only a bounded number of cases is in flight at any time, so the
+parent's memory does not grow with the size of the study.
+
+The executor seam
+-----------------
+Pass ``executor=`` (any :class:`concurrent.futures.Executor`: a process pool, a thread pool for
+quick checks, or ``client.get_executor(pure=False)`` of a Dask client, see
+:func:`mpcproto.scenario.executors.dask_executor`) or ``workers=N`` for a local process pool owned by
+the call.  The callable and the cases are pickled to the workers, so both must be picklable: a
+module-level function and plain-data cases (no CasADi symbols, no solved cvxpy problems).
+
+The ``batch`` command of the CLI (:func:`register_cli`) wraps this function and writes the reports:
+``summary.csv``, ``report.html``, an optional JUnit XML file and an optional baseline comparison.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sys
+import time
+import traceback
+import warnings
+from collections.abc import Callable, Iterable, Iterator, Mapping
+from concurrent.futures import FIRST_COMPLETED, Executor, Future, wait
+from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, TextIO
+
+from ..exceptions import SettingsError
+from ..report.summary import case_verdict as verdict
+from .executors import executor_slots, local_pool
+
+__all__ = ["run_batch", "BatchOutcome", "iter_results", "load_results", "verdict", "case_id_of",
+           "RESULTS_FILE", "register_cli"]
+
+RESULTS_FILE = "results.jsonl"
+
+#: Key of the case id in every result record.
+ID_KEY = "case_id"
+
+
+# ------------------------------------------------------------------------------------- case identity
+def case_id_of(case: Any) -> str:
+    """The stable id of a case: its ``case_id`` or ``id`` attribute, or that key of a mapping."""
+    for name in (ID_KEY, "id"):
+        if isinstance(case, Mapping):
+            if name in case:
+                return str(case[name])
+        elif hasattr(case, name):
+            return str(getattr(case, name))
+    raise SettingsError(
+        f"A batch case must carry a stable id (an attribute or key 'case_id' or 'id'). "
+        f"Got a {type(case).__name__} without one.")
+
+
+def _case_meta(case: Any) -> dict[str, Any]:
+    """Plain-data fields of a case that help read an error record (scenario, params, seed)."""
+    meta: dict[str, Any] = {}
+    for name in ("scenario", "params", "seed"):
+        v = case.get(name) if isinstance(case, Mapping) else getattr(case, name, None)
+        if name == "scenario" and v is not None and not isinstance(v, (str, int, float)):
+            v = getattr(v, "name", None)
+        if v is not None:
+            meta[name] = v
+    return meta
+
+
+# ------------------------------------------------------------------------------- worker-side guard
+def _guarded_call(run: Callable[[Any], Mapping[str, Any]], case: Any, cid: str) -> dict[str, Any]:
+    """Run one case in a worker; never raises for an ordinary exception (it becomes an error record)."""
+    t0 = time.perf_counter()
+    try:
+        result = run(case)
+        if not isinstance(result, Mapping):
+            raise TypeError(f"the case runner must return a mapping (a dict); it returned a "
+                            f"{type(result).__name__}")
+        record = dict(result)
+    except Exception as exc:  # noqa: BLE001 - a failing case is data, not a crash of the batch
+        record = _error_record(cid, case, exc)
+    record.setdefault(ID_KEY, cid)
+    record.setdefault("elapsed_s", time.perf_counter() - t0)
+    record.setdefault("worker_pid", os.getpid())
+    return record
+
+
+def _error_record(cid: str, case: Any, exc: BaseException, where: str = "") -> dict[str, Any]:
+    tb = traceback.extract_tb(exc.__traceback__)
+    last = tb[-1] if tb else None
+    record = {ID_KEY: cid, **_case_meta(case), "status": "error",
+              "message": f"{type(exc).__name__}: {exc}" + (f" ({where})" if where else ""),
+              "error_type": type(exc).__name__, "passed": False}
+    if last is not None:
+        record["error_at"] = f"{Path(last.filename).name}:{last.lineno} in {last.name}"
+    return record
+
+
+# ------------------------------------------------------------------------------------- JSON lines
+def _plain(value: Any) -> Any:
+    """Make a result JSON-able: numpy scalars/arrays to Python, non-finite floats to None."""
+    if isinstance(value, Mapping):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, (str, int, bool)) or value is None:
+        return value
+    tolist = getattr(value, "tolist", None)  # numpy scalar or array
+    if callable(tolist):
+        return _plain(tolist())
+    return str(value)
+
+
+def _dumps(record: Mapping[str, Any]) -> str:
+    try:
+        return json.dumps(record, allow_nan=False, separators=(",", ":"))
+    except (TypeError, ValueError):
+        return json.dumps(_plain(record), allow_nan=False, separators=(",", ":"))
+
+
+def iter_results(path: str | os.PathLike) -> Iterator[dict[str, Any]]:
+    """Yield the records of a ``results.jsonl`` file one at a time (constant memory).
+
+    A line that does not parse (the last line of a file whose writer was killed mid-line) is
+    skipped; a bad line elsewhere is skipped with a warning that names the file and line.
+    """
+    path = Path(path)
+    with path.open("rb") as fh:
+        lines = iter(fh)
+        lineno = 0
+        prev: bytes | None = None
+        for raw in lines:
+            lineno += 1
+            if prev is not None:
+                rec = _parse_line(prev, path, lineno - 1, last=False)
+                if rec is not None:
+                    yield rec
+            prev = raw
+        if prev is not None:
+            rec = _parse_line(prev, path, lineno, last=True)
+            if rec is not None:
+                yield rec
+
+
+def _parse_line(raw: bytes, path: Path, lineno: int, *, last: bool) -> dict[str, Any] | None:
+    text = raw.strip()
+    if not text:
+        return None
+    try:
+        rec = json.loads(text)
+    except (ValueError, UnicodeDecodeError):
+        if not (last and not raw.endswith(b"\n")):
+            warnings.warn(f"{path}: line {lineno} is not a JSON record; it was skipped",
+                          RuntimeWarning, stacklevel=3)
+        return None
+    if not isinstance(rec, dict) or ID_KEY not in rec:
+        warnings.warn(f"{path}: line {lineno} has no '{ID_KEY}'; it was skipped",
+                      RuntimeWarning, stacklevel=3)
+        return None
+    return rec
+
+
+def load_results(path: str | os.PathLike, ids: Iterable[str] | None = None) -> list[dict[str, Any]]:
+    """All records of a ``results.jsonl`` file, the last one per case id, optionally only *ids*.
+
+    Records keep the order in which their cases finished.
+    """
+    wanted = None if ids is None else set(ids)
+    latest: dict[str, dict[str, Any]] = {}
+    for rec in iter_results(path):
+        cid = str(rec[ID_KEY])
+        if wanted is None or cid in wanted:
+            latest.pop(cid, None)
+            latest[cid] = rec
+    return list(latest.values())
+
+
+def _repair_tail(path: Path) -> int:
+    """Cut a partial last line (a writer killed mid-line) off *path*; return the bytes removed."""
+    size = path.stat().st_size
+    if size == 0:
+        return 0
+    with path.open("rb+") as fh:
+        fh.seek(size - 1)
+        if fh.read(1) == b"\n":
+            return 0
+        # walk back to the last newline
+        pos, block = size, 4096
+        keep = 0
+        while pos > 0:
+            start = max(0, pos - block)
+            fh.seek(start)
+            chunk = fh.read(pos - start)
+            i = chunk.rfind(b"\n")
+            if i >= 0:
+                keep = start + i + 1
+                break
+            pos = start
+        fh.truncate(keep)
+        fh.flush()
+        os.fsync(fh.fileno())
+        return size - keep
+
+
+def _scan_done(path: Path) -> dict[str, str]:
+    """Case id -> verdict of every complete record in *path* (the last record per id wins)."""
+    done: dict[str, str] = {}
+    for rec in iter_results(path):
+        done[str(rec[ID_KEY])] = verdict(rec)
+    return done
+
+
+# ------------------------------------------------------------------------------------ the outcome
+@dataclass
+class BatchOutcome:
+    """What a batch did: counts, verdicts and where the results are.
+
+    Attributes
+    ----------
+    out_dir, results_path : Path
+        The output directory and its ``results.jsonl``.
+    total : int
+        Cases given (each id once).
+    skipped : int
+        Cases already in ``results.jsonl`` and not run again (``resume=True``).
+    ran : int
+        Cases run and recorded by this call.
+    passed, failed, errors : int
+        Verdicts over all given cases, skipped ones included (read from the file).
+    wall_s : float
+        Wall time of the call in seconds.
+    interrupted : bool
+        True when Ctrl-C stopped the batch early (finished cases are on disk).
+    failed_ids, error_ids : list of str
+        Ids of the cases that failed a criterion / raised an error.
+    """
+
+    out_dir: Path
+    results_path: Path
+    total: int = 0
+    skipped: int = 0
+    ran: int = 0
+    passed: int = 0
+    failed: int = 0
+    errors: int = 0
+    wall_s: float = 0.0
+    interrupted: bool = False
+    failed_ids: list[str] = field(default_factory=list)
+    error_ids: list[str] = field(default_factory=list)
+    executor: str = ""
+
+    @property
+    def success(self) -> bool:
+        """True when every case ran and passed."""
+        return not self.interrupted and self.failed == 0 and self.errors == 0
+
+    def _tally(self, cid: str, v: str) -> None:
+        if v == "passed":
+            self.passed += 1
+        elif v == "failed":
+            self.failed += 1
+            self.failed_ids.append(cid)
+        else:
+            self.errors += 1
+            self.error_ids.append(cid)
+
+
+# --------------------------------------------------------------------------------------- progress
+def _fmt_s(s: float) -> str:
+    s = int(round(max(0.0, s)))
+    h, rem = divmod(s, 3600)
+    m, sec = divmod(rem, 60)
+    return f"{h}:{m:02d}:{sec:02d}" if h else f"{m}:{sec:02d}"
+
+
+class _ProgressBar:
+    """A one-line progress bar with ETA written to a terminal (no dependency)."""
+
+    def __init__(self, total: int | None, skipped: int, stream: TextIO, width: int = 28):
+        self.total = total
+        self.skipped = skipped
+        self.stream = stream
+        self.width = width
+        self.t0 = time.perf_counter()
+        self._last = 0.0
+
+    def update(self, ran: int, failed: int, errors: int, *, final: bool = False) -> None:
+        now = time.perf_counter()
+        if not final and now - self._last < 0.1:
+            return
+        self._last = now
+        elapsed = now - self.t0
+        done = self.skipped + ran
+        parts = []
+        if self.total:
+            frac = min(1.0, done / self.total)
+            fill = int(round(frac * self.width))
+            parts.append("[" + "#" * fill + "." * (self.width - fill) + "]")
+            parts.append(f"{done}/{self.total} {100 * frac:3.0f}%")
+            remaining = self.total - done
+            eta = (elapsed / ran * remaining) if ran else float("nan")
+            parts.append(f"elapsed {_fmt_s(elapsed)}")
+            parts.append("ETA " + (_fmt_s(eta) if math.isfinite(eta) else "--:--"))
+        else:
+            parts.append(f"{done} cases  elapsed {_fmt_s(elapsed)}")
+        if failed:
+            parts.append(f"{failed} failed")
+        if errors:
+            parts.append(f"{errors} error" + ("s" if errors > 1 else ""))
+        line = "batch " + "  ".join(parts)
+        self.stream.write("\r" + line + "\x1b[K" + ("\n" if final else ""))
+        self.stream.flush()
+
+
+# ---------------------------------------------------------------------------------- the runner
+def _default_run() -> Callable[[Any], Mapping[str, Any]]:
+    from .runner import run_case  # noqa: PLC0415 - the scenario layer is imported on first use
+    return run_case
+
+
+def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
+              executor: Executor | None = None, workers: int | None = None,
+              resume: bool = False, run: Callable[[Any], Mapping[str, Any]] | None = None,
+              progress: bool | Callable[[int, int | None, dict], None] | None = None,
+              max_in_flight: int | None = None) -> BatchOutcome:
+    """Run many cases in parallel and stream one JSON line per finished case to ``results.jsonl``.
+
+    Parameters
+    ----------
+    cases : iterable
+        Picklable cases, each with a stable id (``case_id``/``id`` attribute or key).  Read lazily,
+        so a generator keeps the parent's memory flat; a sized collection also gives the progress
+        bar its total.  Ids must be unique.
+    out_dir : path
+        Output directory (created); results go to ``out_dir/results.jsonl``.
+    executor : concurrent.futures.Executor, optional
+        Where to run the cases (the caller owns it and shuts it down).  Mutually exclusive with
+        *workers*.
+    workers : int, optional
+        Size of a local process pool owned by this call (default: the available CPUs).
+    resume : bool
+        Keep the records already in ``results.jsonl`` and run only the cases whose ids are missing.
+        Without it an existing ``results.jsonl`` is replaced.
+    run : callable, optional
+        ``run(case) -> dict`` executed in the workers; default
+        :func:`mpcproto.scenario.runner.run_case`.  Must be picklable (a module-level function).
+    progress : bool or callable, optional
+        ``None`` (default): a progress bar with ETA on stderr when it is a terminal, quiet
+        otherwise; ``True``/``False`` force it on/off; a callable is called as
+        ``progress(done, total, record)`` after each recorded case.
+    max_in_flight : int, optional
+        Most cases submitted but not yet recorded; default twice the executor's worker count.
+
+    Returns
+    -------
+    BatchOutcome
+        Counts and verdicts over all given cases.
+
+    Raises
+    ------
+    SettingsError
+        Bad arguments, or two cases with the same id.
+    KeyboardInterrupt
+        Re-raised after Ctrl-C, once the finished cases are on disk and an owned pool is stopped.
+    """
+    if executor is not None and workers is not None:
+        raise SettingsError("run_batch takes either 'executor' or 'workers', not both. "
+                            f"Got executor={executor!r} and workers={workers!r}.")
+    if max_in_flight is not None and (isinstance(max_in_flight, bool)
+                                      or not isinstance(max_in_flight, int) or max_in_flight < 1):
+        raise SettingsError("The 'max_in_flight' argument of run_batch must be an int in the range "
+                            f"[1, inf). Got {max_in_flight!r} instead.")
+    run_fn = _default_run() if run is None else run
+    t_start = time.perf_counter()
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    path = out / RESULTS_FILE
+
+    done: dict[str, str] = {}
+    if resume and path.exists():
+        removed = _repair_tail(path)
+        if removed:
+            warnings.warn(f"{path}: dropped a partial last line ({removed} bytes) left by an "
+                          "interrupted writer; that case runs again", RuntimeWarning, stacklevel=2)
+        done = _scan_done(path)
+    elif path.exists():
+        path.unlink()
+
+    total = len(cases) if hasattr(cases, "__len__") else None  # type: ignore[arg-type]
+    outcome = BatchOutcome(out_dir=out, results_path=path, total=0)
+
+    own = executor is None
+    ex = local_pool(workers) if own else executor
+    outcome.executor = type(ex).__name__
+    window = max_in_flight or 2 * executor_slots(ex)
+
+    callback = progress if callable(progress) else None
+    show_bar = (progress is True) or (progress is None and sys.stderr.isatty())
+    bar: _ProgressBar | None = None
+
+    seen: set[str] = set()
+    pending: dict[Future, tuple[str, Any]] = {}
+    case_iter = iter(cases)
+    exhausted = False
+
+    def record(rec: dict[str, Any], fh) -> None:
+        cid = str(rec[ID_KEY])
+        fh.write(_dumps(rec) + "\n")
+        fh.flush()
+        os.fsync(fh.fileno())
+        outcome.ran += 1
+        outcome._tally(cid, verdict(rec))
+        if bar is not None:
+            bar.update(outcome.ran, outcome.failed, outcome.errors)
+        if callback is not None:
+            callback(outcome.skipped + outcome.ran, total, rec)
+
+    def collect(fut: Future, fh) -> None:
+        cid, case = pending.pop(fut)
+        exc = fut.exception()
+        if exc is None:
+            rec = fut.result()
+        elif isinstance(exc, BrokenProcessPool):
+            rec = _error_record(cid, case, exc, "a worker process died while this case was in "
+                                "flight: it may have crashed the worker or been a bystander")
+        elif isinstance(exc, Exception):  # e.g. the case or runner could not be pickled
+            rec = _error_record(cid, case, exc, "raised outside the case runner")
+        else:  # KeyboardInterrupt/SystemExit in a worker: not a verdict, leave it for --resume
+            raise KeyboardInterrupt
+        record(rec, fh)
+
+    try:
+        with path.open("a", encoding="utf-8") as fh:
+            try:
+                while True:
+                    while not exhausted and len(pending) < window:
+                        try:
+                            case = next(case_iter)
+                        except StopIteration:
+                            exhausted = True
+                            break
+                        cid = case_id_of(case)
+                        if cid in seen:
+                            raise SettingsError(
+                                f"Two batch cases share the id {cid!r}; case ids must be unique "
+                                "(give each scenario a distinct name).")
+                        seen.add(cid)
+                        outcome.total += 1
+                        if cid in done:
+                            outcome.skipped += 1
+                            outcome._tally(cid, done[cid])
+                            continue
+                        if bar is None and show_bar:
+                            bar = _ProgressBar(total, outcome.skipped, sys.stderr)
+                        pending[ex.submit(_guarded_call, run_fn, case, cid)] = (cid, case)
+                    if not pending:
+                        break
+                    finished, _ = wait(list(pending), return_when=FIRST_COMPLETED)
+                    for fut in finished:
+                        collect(fut, fh)
+                    if own and any(isinstance(f.exception(), BrokenProcessPool)
+                                   for f in finished if not f.cancelled()):
+                        # a dead worker breaks the whole pool: record the bystanders, start afresh
+                        for fut in list(pending):
+                            wait([fut])
+                            collect(fut, fh)
+                        ex.shutdown(wait=False, cancel_futures=True)
+                        ex = local_pool(workers)
+            except KeyboardInterrupt:
+                outcome.interrupted = True
+                for fut in list(pending):  # keep whatever finished before the interrupt
+                    if fut.done() and not fut.cancelled() and fut.exception() is None:
+                        collect(fut, fh)
+                    else:
+                        fut.cancel()
+                raise
+    finally:
+        if own:
+            if outcome.interrupted:
+                _stop_pool(ex)
+            else:
+                ex.shutdown(wait=True)
+        outcome.wall_s = time.perf_counter() - t_start
+        if bar is not None:
+            bar.update(outcome.ran, outcome.failed, outcome.errors, final=True)
+    return outcome
+
+
+def _stop_pool(ex: Executor) -> None:
+    """Stop an owned process pool now (Ctrl-C): cancel queued cases, end its worker processes."""
+    procs = list((getattr(ex, "_processes", None) or {}).values())
+    ex.shutdown(wait=False, cancel_futures=True)
+    for p in procs:
+        try:
+            p.terminate()
+        except Exception:  # noqa: BLE001 - already gone
+            pass
+
+
+# ------------------------------------------------------------------------------------------ CLI
+def register_cli(subparsers) -> None:  # pragma: no cover - filled in below
+    raise NotImplementedError

@@ -1,0 +1,161 @@
+"""The one executor seam of the batch runner: a local process pool or a Dask cluster.
+
+The batch runner (:func:`mpcproto.scenario.batch.run_batch`) only ever sees a
+:class:`concurrent.futures.Executor`.  This module makes one:
+
+* :func:`local_pool` -- a :class:`~concurrent.futures.ProcessPoolExecutor` whose worker processes stay
+  alive across cases (a worker pays the ``import casadi`` / ``import cvxpy`` cost once, not per case).
+* :func:`dask_executor` -- connects a ``distributed.Client`` to a running scheduler and adapts it with
+  ``client.get_executor(pure=False)``.  Dask is an optional extra: it is imported here, lazily, and
+  a missing install raises an :class:`ImportError` that gives the install command.
+
+Nothing in this module imports Dask at module import time.
+
+Start method
+------------
+Worker processes are started with the ``"forkserver"`` method where the platform has it (Linux),
+with the package's scenario runner preloaded in the server: every worker is then forked from a small,
+single-threaded process that has already imported CasADi, so a worker starts in a fraction of a second
+without inheriting the parent's threads (a plain ``fork`` of a parent that runs solver or BLAS
+threads can deadlock the child).  ``"spawn"`` is the fallback elsewhere.  ``benchmarks/bench_batch.py``
+measures the start-up cost of each method.
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+from concurrent.futures import Executor, ProcessPoolExecutor
+from contextlib import contextmanager
+from typing import Iterator
+
+from ..exceptions import SettingsError
+
+__all__ = ["local_pool", "dask_executor", "executor_slots", "DASK_INSTALL_HINT", "START_METHODS"]
+
+DASK_INSTALL_HINT = 'pip install "mpcproto[dask]"'
+START_METHODS = ("forkserver", "spawn", "fork")
+
+# Modules the fork server imports once, so that workers forked from it start warm.  Missing ones
+# are skipped by multiprocessing without error.
+_PRELOAD = ["numpy", "casadi", "mpcproto", "mpcproto.scenario.runner"]
+
+
+def _check_workers(workers: object, what: str = "workers") -> int:
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise SettingsError(
+            f"The '{what}' argument of the batch runner must be an int in the range [1, inf). "
+            f"Got {workers!r} instead.")
+    return workers
+
+
+def default_workers() -> int:
+    """Number of worker processes used when none is given: the CPUs this process may run on."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def local_pool(workers: int | None = None, *, start_method: str | None = None,
+               preload: list[str] | None = None) -> ProcessPoolExecutor:
+    """A process pool for a batch, workers kept alive across cases.
+
+    Parameters
+    ----------
+    workers : int, optional
+        Number of worker processes; default: the CPUs available to this process.
+    start_method : {"forkserver", "spawn", "fork"}, optional
+        How worker processes start; default ``"forkserver"`` where available, else ``"spawn"``.
+    preload : list of str, optional
+        Modules a fork server imports before forking workers (only for ``"forkserver"``); default:
+        numpy, casadi and the package's scenario runner.
+
+    Returns
+    -------
+    concurrent.futures.ProcessPoolExecutor
+        The caller owns it (use it as a context manager or call ``shutdown()``).
+    """
+    n = default_workers() if workers is None else _check_workers(workers)
+    available = multiprocessing.get_all_start_methods()
+    if start_method is None:
+        start_method = "forkserver" if "forkserver" in available else "spawn"
+    if start_method not in START_METHODS or start_method not in available:
+        raise SettingsError(
+            f"The 'start_method' argument of local_pool must be one of "
+            f"{[m for m in START_METHODS if m in available]}. Got {start_method!r} instead.")
+    ctx = multiprocessing.get_context(start_method)
+    if start_method == "forkserver":
+        ctx.set_forkserver_preload(list(_PRELOAD if preload is None else preload))
+    return ProcessPoolExecutor(max_workers=n, mp_context=ctx)
+
+
+def _import_distributed():
+    try:
+        import distributed  # noqa: PLC0415 - optional extra, imported lazily on purpose
+    except ImportError as exc:  # pragma: no cover - exercised only without the extra
+        raise ImportError(
+            "Running a batch on a Dask cluster needs the optional Dask extra, which is not "
+            f"installed. Install it with: {DASK_INSTALL_HINT}") from exc
+    return distributed
+
+
+@contextmanager
+def dask_executor(address: str, *, timeout: float = 30.0) -> Iterator[Executor]:
+    """Connect to a running Dask scheduler and yield an executor that submits to it.
+
+    Parameters
+    ----------
+    address : str
+        Scheduler address, e.g. ``"tcp://10.0.0.5:8786"``; an in-process ``LocalCluster``'s
+        ``cluster.scheduler_address`` works too.
+    timeout : float
+        Seconds to wait for the connection.
+
+    Yields
+    ------
+    concurrent.futures.Executor
+        ``client.get_executor(pure=False)``: every submitted case runs, even when two cases
+        happen to have equal arguments.  The client is closed on exit; the cluster is left running.
+
+    Raises
+    ------
+    ImportError
+        Dask's ``distributed`` package is not installed (the message gives the install command).
+    SettingsError
+        The scheduler could not be reached.
+    """
+    distributed = _import_distributed()
+    try:
+        client = distributed.Client(address, timeout=timeout, set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise SettingsError(
+            f"The '--scheduler' address {address!r} could not be reached within {timeout:g} s: "
+            f"{exc}. Expected the address of a running Dask scheduler such as "
+            "'tcp://host:8786'.") from None
+    try:
+        yield client.get_executor(pure=False)
+    finally:
+        client.close()
+
+
+def executor_slots(executor: Executor) -> int:
+    """How many cases *executor* can run at once (used to size the in-flight window).
+
+    Reads ``_max_workers`` of a process or thread pool and the worker threads of a Dask client's
+    executor; falls back to the CPUs of this machine.
+    """
+    n = getattr(executor, "_max_workers", None)
+    if isinstance(n, int) and n > 0:
+        return n
+    client = getattr(executor, "_client", None)
+    if client is not None:
+        try:
+            threads = client.nthreads()
+            total = sum(int(v) for v in threads.values())
+            if total > 0:
+                return total
+        except Exception:  # noqa: BLE001 - sizing only; a failure just uses the fallback
+            pass
+    return default_workers()
+
