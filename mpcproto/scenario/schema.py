@@ -432,8 +432,33 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         controllers[label] = spec
     data["controllers"] = controllers
 
-    # signal-like sections: name -> table (checked against the model and H3's factories later)
-    for section in ("setpoints", "disturbances", "instruments", "actuators", "faults"):
+    # signal sections: variable name -> signal spec (a table, an array of tables added together, a
+    # number = an absolute constant; a setpoint may also be "none" = zone control only).  The specs
+    # are checked by the simulator's signal factory in check_scenario(), which knows the model.
+    for section in ("setpoints", "disturbances"):
+        tbl = c.table(raw.get(section, {}), section)
+        out = {}
+        for k, v in tbl.items():
+            key = f"{section}.{k}"
+            if not k.isidentifier():
+                c.fail(key, "a variable name (letters, digits, underscores)", repr(k))
+            if section == "setpoints" and v == "none":
+                out[k] = "none"
+            elif isinstance(v, list):
+                if not v:
+                    c.fail(key, "a signal table or a non-empty array of them", "an empty array")
+                out[k] = [c.table(x, f"{key}[{i}]") for i, x in enumerate(v)]
+            elif isinstance(v, (int, float)) and not isinstance(v, bool):
+                out[k] = c.number(v, key)
+            else:
+                if not isinstance(v, Mapping):
+                    c.fail(key, "a signal table (with 'kind'), an array of them, a number"
+                           + (' or "none"' if section == "setpoints" else ""),
+                           f"{_type_name(v)} ({_show(v)})")
+                out[k] = dict(v)
+        data[section] = out
+    # instruments (per CV), actuators (per MV), faults (per label): tables for the simulator
+    for section in ("instruments", "actuators", "faults"):
         tbl = c.table(raw.get(section, {}), section)
         out = {}
         for k, v in tbl.items():

@@ -1,0 +1,141 @@
+"""Pass/fail criteria of a scenario: from per-controller results to verdicts.
+
+The vocabulary (``check`` names and their keys) is listed in
+:data:`mpcproto.scenario.schema.CRITERION_CHECKS` and documented in ``docs/scenario-format.md``.
+Each verdict is plain data ``{"name", "check", "value", "limit", "passed"}`` (plus ``controller`` /
+``than`` where they apply); ``value`` is ``None`` when the figure does not exist (e.g. the IAE of a
+CV that has no setpoint), and a criterion on a missing figure fails.
+
+The figures come from :func:`mpcproto.analysis.summarize` (KPIs, violation events, solver health)
+and, for ``peak_below`` / ``low_above``, from the trajectory's true values.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+
+__all__ = ["evaluate_controller", "evaluate_comparisons", "applies_to"]
+
+_KPI_OF = {"iae_below": "iae", "ise_below": "ise", "itae_below": "itae",
+           "max_error_below": "max_abs_error", "settling_time_below": "settling_time",
+           "overshoot_below": "overshoot"}
+
+
+def _num(v: Any) -> float | None:
+    if v is None or isinstance(v, bool):
+        return None
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return None
+    return f if math.isfinite(f) else None
+
+
+def applies_to(criterion: Mapping[str, Any], label: str) -> bool:
+    """True when a per-controller criterion concerns the controller *label*."""
+    return criterion["check"] != "better_than" and criterion.get("controller", label) == label
+
+
+def _verdict(cr: Mapping[str, Any], value: float | None, limit: float, ok: bool | None,
+             **extra: Any) -> dict[str, Any]:
+    out = {"name": cr["name"], "check": cr["check"], "value": value, "limit": limit,
+           "passed": bool(ok) if value is not None else False}
+    out.update(extra)
+    return out
+
+
+def _series_extreme(traj: Any, variable: str, high: bool) -> float | None:
+    for kind in ("y", "u", "x", "d"):
+        if traj.has(kind, variable):
+            s = np.asarray(traj.series(kind, variable), float)
+            s = s[np.isfinite(s)]
+            if s.size == 0:
+                return None
+            return float(s.max() if high else s.min())
+    return None
+
+
+def evaluate_controller(criteria: Sequence[Mapping[str, Any]], label: str, block: Mapping[str, Any],
+                        traj: Any = None) -> list[dict[str, Any]]:
+    """Verdicts of every criterion that concerns controller *label*.
+
+    Parameters
+    ----------
+    criteria : sequence of dict
+        Validated ``criteria`` entries of a scenario.
+    label : str
+        Controller label.
+    block : dict
+        The controller's result (``kpi``, ``violations``, ``solver``, ``run``) from
+        :func:`mpcproto.analysis.summarize`.
+    traj : Trajectory, optional
+        Needed by ``peak_below`` and ``low_above``.
+    """
+    out = []
+    kpi = block.get("kpi", {})
+    solver = block.get("solver", {})
+    run = block.get("run", {})
+    if run.get("status", "completed") != "completed":
+        out.append({"name": "run_completed", "check": "run_completed", "value": 0.0, "limit": 1.0,
+                    "passed": False, "message": run.get("message", "")})
+    for cr in criteria:
+        if not applies_to(cr, label):
+            continue
+        check = cr["check"]
+        if check in _KPI_OF:
+            v = _num(kpi.get("cv", {}).get(cr["cv"], {}).get(_KPI_OF[check]))
+            out.append(_verdict(cr, v, cr["limit"], v is not None and v <= cr["limit"]))
+        elif check == "travel_below":
+            v = _num(kpi.get("mv", {}).get(cr["mv"], {}).get("total_travel"))
+            out.append(_verdict(cr, v, cr["limit"], v is not None and v <= cr["limit"]))
+        elif check in ("peak_below", "low_above"):
+            v = None if traj is None else _series_extreme(traj, cr["variable"], check == "peak_below")
+            ok = v is not None and (v < cr["limit"] if check == "peak_below" else v > cr["limit"])
+            out.append(_verdict(cr, v, cr["limit"], ok))
+        elif check == "no_limit_violation":
+            events = [e for e in block.get("violations", [])
+                      if "variable" not in cr or e.get("variable") == cr["variable"]]
+            v = float(len(events))
+            extra = {}
+            if events:
+                worst = max(events, key=lambda e: e.get("peak_excess") or 0.0)
+                extra["message"] = (f"{len(events)} event(s); worst: {worst['variable']} beyond its "
+                                    f"{worst['side']} limit by {worst['peak_excess']:.4g} from "
+                                    f"t={worst['start']:g} to {worst['end']:g}")
+            out.append(_verdict(cr, v, 0.0, v == 0.0, **extra))
+        elif check == "no_solver_failure":
+            v = float((solver.get("failures") or 0) + (solver.get("fallbacks") or 0))
+            out.append(_verdict(cr, v, 0.0, v == 0.0))
+        elif check == "solve_time_below":
+            v = _num(solver.get("worst_fraction"))
+            out.append(_verdict(cr, v, cr["fraction"], v is not None and v < cr["fraction"]))
+    return out
+
+
+def evaluate_comparisons(criteria: Sequence[Mapping[str, Any]],
+                         blocks: Mapping[str, Mapping[str, Any]]) -> list[dict[str, Any]]:
+    """Verdicts of the ``better_than`` criteria (controller A's KPI at least X % below B's).
+
+    ``value`` is the improvement in percent, ``100 * (kpi_B - kpi_A) / kpi_B``; the criterion
+    passes when it is at least ``by_percent``.
+    """
+    out = []
+    for cr in criteria:
+        if cr["check"] != "better_than":
+            continue
+        a, b = cr["controller"], cr["than"]
+        va = _num(blocks.get(a, {}).get("kpi", {}).get("cv", {}).get(cr["cv"], {}).get(cr["kpi"]))
+        vb = _num(blocks.get(b, {}).get("kpi", {}).get("cv", {}).get(cr["cv"], {}).get(cr["kpi"]))
+        if va is None or vb is None or vb == 0:
+            v = None
+        else:
+            v = 100.0 * (vb - va) / abs(vb)
+        out.append({"name": cr["name"], "check": "better_than", "controller": a, "than": b,
+                    "kpi": cr["kpi"], "cv": cr["cv"], "value": v, "limit": cr["by_percent"],
+                    "passed": v is not None and v >= cr["by_percent"],
+                    "values": {a: va, b: vb}})
+    return out

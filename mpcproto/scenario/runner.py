@@ -1,0 +1,401 @@
+"""Run one case of a scenario end to end, in whatever process it lands in.
+
+:func:`run_case` takes a plain :class:`~mpcproto.scenario.study.Case` (or a
+:class:`~mpcproto.scenario.schema.Scenario`), builds the plant and the controller's model in *this*
+process (compiled models are cached per process, see :mod:`mpcproto.scenario.build`), finds the
+operating point, linearizes and discretizes the controller's model, builds each controller of the
+scenario, runs the closed loop for each, and returns a JSON-able result::
+
+    {"case_id", "scenario", "file", "params", "seed", "grid_index", "draw_index",
+     "status": "ok" | "error", "message",
+     "controllers": {label: {"kpi", "violations", "solver", "run", "criteria"}},
+     "comparisons": [...better_than verdicts...],
+     "passed": bool, "elapsed_s": float, "caution": str}
+
+Bad input (:class:`~mpcproto.exceptions.MpcprotoError`) becomes ``status == "error"`` with its
+message; anything else is a bug and propagates (the batch runner records it as an error too).
+
+:func:`run_scenario` runs a scenario's nominal case and writes ``summary.json``, one CSV trajectory
+per controller and PNG plots to a directory: the ``mpcproto run`` command.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import re
+import time
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from ..exceptions import MpcprotoError, ScenarioError, SettingsError
+from ..model import suggest
+from .build import check_names, controller_model, operating_point, plant_model
+from .criteria import evaluate_comparisons, evaluate_controller
+from .schema import Scenario, load_scenario
+from .study import Case, case_scenario
+
+__all__ = ["run_case", "run_scenario", "check_scenario", "prepare", "Prepared", "CAUTION"]
+
+#: Carried by every summary and report.
+CAUTION = ("Simulation only. These results come from models and do not show that a controller is "
+           "safe on a real unit: the plant needs its own independent safety systems (trips, relief, "
+           "interlocks), management of change, compliance with local codes, and the judgement of "
+           "licensed engineers before anything is commissioned.")
+
+
+# ----------------------------------------------------------------------------------------- errors
+_QUOTED = re.compile(r"'([A-Za-z_][A-Za-z0-9_]*)'")
+
+
+def settings_error(err: Exception, scn: Scenario, base_key: str, spec: Any = None) -> ScenarioError:
+    """Turn a :class:`SettingsError` raised for the entry at *base_key* into a ScenarioError.
+
+    The key path is made as precise as the message allows: a quoted name in the message that is a
+    key of *spec* is appended (``disturbances.draw_off`` + ``'at'`` -> ``disturbances.draw_off.at``).
+    """
+    msg = str(err)
+    key = base_key
+    keys: list[str] = []
+    if isinstance(spec, Mapping):
+        keys = list(spec)
+    elif isinstance(spec, list):
+        keys = [k for s in spec if isinstance(s, Mapping) for k in s]
+    for m in _QUOTED.finditer(msg):
+        if m.group(1) in keys:
+            key = f"{base_key}.{m.group(1)}"
+            break
+    if msg.startswith(base_key + ":"):
+        msg = msg[len(base_key) + 1:].strip()
+    return ScenarioError(msg, file=scn.file, key=key)
+
+
+# ----------------------------------------------------------------------------------------- setup
+@dataclass
+class Prepared:
+    """Everything a case needs before the closed loops run (built in the worker process)."""
+
+    scenario: Scenario
+    plant: Any
+    model: Any                       # the controller's model
+    op: Any                          # plant operating point (start of every run)
+    model_op: Any                    # the controller's model's operating point
+    dmodel: Any                      # discrete linear model of the controller's model
+    sim: dict[str, Any] = field(default_factory=dict)   # keyword arguments of simulate()
+    duration: float = 0.0
+
+
+def _duration(scn: Scenario, ci: bool) -> float:
+    s = scn.data["scenario"]
+    if ci and "duration" in s["ci"]:
+        return float(s["ci"]["duration"])
+    if s["duration"] is None:
+        raise ScenarioError("expected a run length 'duration' (model time unit) to run the scenario; "
+                            "found none.", file=scn.file, key="scenario.duration")
+    return float(s["duration"])
+
+
+def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None,
+            ci: bool = False) -> Prepared:
+    """Build models, operating points, the discrete linear model and the simulator's arguments.
+
+    Every name and spec of the scenario is checked here against the model and the simulator's
+    factories; errors name the file and the key path.
+
+    Parameters
+    ----------
+    scn : Scenario
+    base_parameters : mapping, optional
+        The plant parameters the controller's model starts from (default ``plant.parameters`` of
+        *scn*); a study passes the file's values so that a swept plant parameter is a mismatch.
+    ci : bool
+        Use the CI-sized run length (``scenario.ci.duration``) when the scenario gives one.
+    """
+    from ..linear import linearize
+    from ..sim import actuator_from_spec, fault_from_spec, instrument_from_spec, signal_from_spec
+
+    plant = plant_model(scn)
+    model = controller_model(scn, base=base_parameters)
+    op = operating_point(scn, plant)
+    model_op = op if model is plant else operating_point(scn, model)
+    try:
+        dmodel = linearize(model, model_op).discretize(scn.sample_time,
+                                                       dead_time=scn.data["scenario"]["dead_time"])
+    except SettingsError as e:
+        raise ScenarioError(str(e), file=scn.file, key="scenario.sample_time") from None
+
+    d = scn.data
+    check_names(scn, plant, "disturbances", "dv", d["disturbances"])
+    check_names(scn, plant, "setpoints", "cv", d["setpoints"])
+    check_names(scn, plant, "instruments", "cv", d["instruments"])
+    check_names(scn, plant, "actuators", "mv", d["actuators"])
+    check_names(scn, plant, "limits", ("cv", "mv"), d["limits"])
+
+    dvs: dict[str, Any] = {}
+    for k, spec in d["disturbances"].items():
+        try:
+            signal_from_spec(spec, what=f"disturbances.{k}", rng=0)
+        except SettingsError as e:
+            raise settings_error(e, scn, f"disturbances.{k}", spec) from None
+        dvs[k] = spec
+    setpoints: dict[str, Any] = {}
+    for k, spec in d["setpoints"].items():
+        if spec == "none":
+            setpoints[k] = None
+            continue
+        try:
+            signal_from_spec(spec, what=f"setpoints.{k}", rng=0)
+        except SettingsError as e:
+            raise settings_error(e, scn, f"setpoints.{k}", spec) from None
+        setpoints[k] = spec
+    cv_limits: dict[str, Any] = {}
+    mv_limits: dict[str, Any] = {}
+    for k, lim in d["limits"].items():
+        if k in plant.cv_names:
+            if "rate" in lim:
+                raise ScenarioError("expected 'low' and/or 'high' for a CV (a rate limit applies to "
+                                    "MVs only); found 'rate'.", file=scn.file, key=f"limits.{k}.rate")
+            cv_limits[k] = {s: lim[s] for s in ("low", "high") if s in lim}
+        else:
+            entry = {s: lim[s] for s in ("low", "high") if s in lim}
+            if "rate" in lim:
+                entry["rate"] = lim["rate"]
+            mv_limits[k] = entry
+    instruments = {}
+    for k, spec in d["instruments"].items():
+        try:
+            instruments[k] = instrument_from_spec(spec, what=f"instruments.{k}")
+        except SettingsError as e:
+            raise settings_error(e, scn, f"instruments.{k}", spec) from None
+    actuators = {}
+    for k, spec in d["actuators"].items():
+        try:
+            actuators[k] = actuator_from_spec(spec, what=f"actuators.{k}")
+        except SettingsError as e:
+            raise settings_error(e, scn, f"actuators.{k}", spec) from None
+    faults = []
+    for k, spec in d["faults"].items():
+        try:
+            f = fault_from_spec(spec, what=f"faults.{k}")
+        except SettingsError as e:
+            raise settings_error(e, scn, f"faults.{k}", spec) from None
+        role, names = ("cv", plant.cv_names) if f.on_sensor else ("mv", plant.mv_names)
+        if f.variable not in names:
+            raise ScenarioError(
+                f"expected a {role.upper()} of model '{plant.name}' for a {f.kind} fault "
+                f"({', '.join(names)}); found '{f.variable}'{suggest(f.variable, names)}.",
+                file=scn.file, key=f"faults.{k}.variable")
+        faults.append(f)
+    _check_criteria_names(scn, plant)
+    sim = {"dvs": dvs, "setpoints": setpoints, "cv_limits": cv_limits, "mv_limits": mv_limits,
+           "instruments": instruments, "actuators": actuators, "faults": faults}
+    return Prepared(scenario=scn, plant=plant, model=model, op=op, model_op=model_op, dmodel=dmodel,
+                    sim=sim, duration=_duration(scn, ci))
+
+
+def _check_criteria_names(scn: Scenario, plant: Any) -> None:
+    labels = list(scn.data["controllers"])
+    for i, cr in enumerate(scn.data["criteria"]):
+        key = f"criteria[{i}]"
+        for k, roles in (("cv", ("cv",)), ("mv", ("mv",)), ("variable", ("cv", "mv", "state", "dv"))):
+            if k in cr:
+                names = [n for r in roles for n in plant.names(r)]
+                if cr[k] not in names:
+                    raise ScenarioError(
+                        f"expected a {'/'.join(r.upper() for r in roles)} of model '{plant.name}' "
+                        f"({', '.join(names)}); found '{cr[k]}'{suggest(cr[k], names)}.",
+                        file=scn.file, key=f"{key}.{k}")
+        for k in ("controller", "than"):
+            if k in cr and cr[k] not in labels:
+                raise ScenarioError(
+                    f"expected the label of a controller of this scenario "
+                    f"({', '.join(labels) or 'none: add a [controllers.<label>] table'}); found "
+                    f"'{cr[k]}'{suggest(cr[k], labels)}.", file=scn.file, key=f"{key}.{k}")
+
+
+# ----------------------------------------------------------------------------------------- controllers
+def build_controller(label: str, spec: Mapping[str, Any], prep: Prepared) -> Any:
+    """The controller *label* of the scenario, built from its ``[controllers.<label>]`` table."""
+    scn = prep.scenario
+    settings = {k: v for k, v in spec.items() if k != "kind"}
+    key = f"controllers.{label}"
+    try:
+        if spec["kind"] == "mpc":
+            from ..control.mpc import from_settings
+
+            ctl = from_settings(prep.dmodel, settings)
+        else:
+            ctl = _build_pid(settings, prep, key)
+    except ScenarioError:
+        raise
+    except SettingsError as e:
+        raise settings_error(e, scn, key, settings) from None
+    try:
+        ctl.name = label
+    except AttributeError:
+        pass
+    return ctl
+
+
+def _build_pid(settings: Mapping[str, Any], prep: Prepared, key: str) -> Any:
+    from ..control.pid import pid_from_settings
+
+    return pid_from_settings(prep.model, prep.model_op, prep.scenario.sample_time, settings,
+                             what=key)
+
+
+# ----------------------------------------------------------------------------------------- checks
+def check_scenario(scn: Scenario | str | Path, *, build_controllers: bool = True) -> Prepared:
+    """Check a scenario as deeply as possible without running it.
+
+    Loads it (for a path), builds the models and the operating point, checks every name against the
+    model, every signal/instrument/actuator/fault spec against the simulator's factories and (with
+    *build_controllers*) builds every controller.  Raises :class:`ScenarioError` naming the file and
+    the key path; returns the prepared setup.
+    """
+    if not isinstance(scn, Scenario):
+        scn = load_scenario(scn)
+    prep = prepare(scn)
+    if build_controllers:
+        for label, spec in scn.data["controllers"].items():
+            build_controller(label, spec, prep)
+    if scn.data["study"]["sweep"] or scn.data["study"]["draw"]:
+        from .study import iter_cases
+
+        for i, c in enumerate(iter_cases(scn, full=True)):
+            case_scenario(c)
+            if i >= 1000:
+                break
+    return prep
+
+
+# ----------------------------------------------------------------------------------------- running
+def _identity(case: Case | Scenario) -> dict[str, Any]:
+    if isinstance(case, Case):
+        return {"case_id": case.case_id, "scenario": case.scenario, "file": case.file,
+                "params": dict(case.params), "seed": case.seed, "grid_index": case.grid_index,
+                "draw_index": case.draw_index}
+    return {"case_id": case.name, "scenario": case.name, "file": case.file, "params": {},
+            "seed": case.seed, "grid_index": None, "draw_index": None}
+
+
+def _run(case: Case | Scenario, *, ci: bool | None = None) -> tuple[dict[str, Any], dict[str, Any]]:
+    """One case: (result record, {controller label: Trajectory})."""
+    from ..analysis import summarize
+    from ..sim import simulate
+
+    t0 = time.perf_counter()
+    rec = _identity(case)
+    trajs: dict[str, Any] = {}
+    try:
+        if isinstance(case, Case):
+            scn = case_scenario(case)
+            base = dict((case.raw.get("plant") or {}).get("parameters") or {})
+            use_ci = case.ci if ci is None else ci
+        else:
+            scn, base, use_ci = case, None, bool(ci)
+        if not scn.data["controllers"]:
+            raise ScenarioError("expected at least one [controllers.<label>] table to run; found none.",
+                                file=scn.file, key="controllers")
+        prep = prepare(scn, base_parameters=base, ci=use_ci)
+        blocks: dict[str, Any] = {}
+        for label, spec in scn.data["controllers"].items():
+            ctl = build_controller(label, spec, prep)
+            try:
+                traj = simulate(prep.plant, ctl, op=prep.op, Ts=scn.sample_time,
+                                duration=prep.duration, rng=rec["seed"], **prep.sim)
+            except SettingsError as e:
+                raise ScenarioError(str(e), file=scn.file, key=f"controllers.{label}") from None
+            traj.meta["controller"] = label
+            trajs[label] = traj
+            block = summarize(traj)
+            block["criteria"] = evaluate_controller(scn.data["criteria"], label, block, traj)
+            blocks[label] = block
+        comparisons = evaluate_comparisons(scn.data["criteria"], blocks)
+        passed = all(cr["passed"] for b in blocks.values() for cr in b["criteria"]) and \
+            all(cr["passed"] for cr in comparisons)
+        rec.update({"status": "ok", "message": "", "model": prep.plant.name,
+                    "time_unit": prep.plant.time_unit, "sample_time": scn.sample_time,
+                    "duration": prep.duration, "operating_point": prep.op.as_dict(),
+                    "controllers": blocks, "comparisons": comparisons, "passed": bool(passed)})
+    except MpcprotoError as e:
+        rec.update({"status": "error", "message": str(e), "error_type": type(e).__name__,
+                    "controllers": {}, "comparisons": [], "passed": False})
+    rec["elapsed_s"] = time.perf_counter() - t0
+    rec["caution"] = CAUTION
+    return _plain(rec), trajs
+
+
+def run_case(case: Case | Scenario) -> dict[str, Any]:
+    """Run one case (all its controllers) and return its JSON-able result (see module docstring).
+
+    A module-level function taking plain data, so a process pool or a Dask worker can call it.
+    """
+    return _run(case)[0]
+
+
+def _plain(v: Any) -> Any:
+    if isinstance(v, Mapping):
+        return {str(k): _plain(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_plain(x) for x in v]
+    if isinstance(v, bool) or v is None or isinstance(v, str):
+        return v
+    if isinstance(v, int):
+        return v
+    if isinstance(v, float):
+        return v if math.isfinite(v) else None
+    tolist = getattr(v, "tolist", None)
+    if callable(tolist):
+        return _plain(tolist())
+    if isinstance(v, complex):
+        return [v.real, v.imag]
+    return str(v)
+
+
+def run_scenario(scn: Scenario | str | Path, out_dir: str | Path, *, plots: bool = True,
+                 ci: bool = False) -> dict[str, Any]:
+    """Run a scenario's nominal case and write its results to *out_dir* (created).
+
+    Writes ``summary.json`` (the result record of :func:`run_case`), ``trajectories_<label>.csv``
+    per controller and, with *plots*, PNG figures of the CVs and MVs (``plot_<label>.png``) and a
+    comparison of the controllers (``compare.png``).  Sweeps and Monte Carlo draws are ignored (they
+    are for ``mpcproto batch``).
+
+    Returns
+    -------
+    dict
+        The summary (as written to ``summary.json``).
+    """
+    if not isinstance(scn, Scenario):
+        scn = load_scenario(scn)
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    rec, trajs = _run(scn, ci=ci)
+    files = []
+    for label, traj in trajs.items():
+        p = out / f"trajectories_{label}.csv"
+        traj.to_csv(p)
+        files.append(p.name)
+    if plots and trajs:
+        files += _plots(trajs, out, scn.name)
+    rec["files"] = files
+    (out / "summary.json").write_text(json.dumps(rec, indent=2) + "\n")
+    return rec
+
+
+def _plots(trajs: Mapping[str, Any], out: Path, title: str) -> list[str]:
+    from ..report import plots
+
+    names = []
+    for label, traj in trajs.items():
+        p = out / f"plot_{label}.png"
+        plots.plot_trajectory(traj, p, title=f"{title}: {label}")
+        names.append(p.name)
+    if len(trajs) > 1:
+        p = out / "compare.png"
+        plots.plot_comparison(dict(trajs), p, title=title)
+        names.append(p.name)
+    return names
