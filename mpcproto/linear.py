@@ -12,13 +12,20 @@ where ``z`` are the model's delayed inputs (each the value of one MV or DV a dea
 discretization for a sampled controller) and turns every dead time into a chain of integer-sample
 delay states.  A dead time that is not a multiple of the sample time is **rounded to the nearest
 whole number of samples with a warning** (``dead_time="round"``, the default) or **refused**
-(``dead_time="refuse"``).  The nonlinear simulator rounds the same way, so controller model and plant
-agree.
+(``dead_time="refuse"``); half a sample rounds up.  The nonlinear simulator rounds the same way
+(:func:`delay_samples`), so controller model and plant agree.
+
+Analysis (:class:`LinearModel`): steady-state gains, poles, transmission zeros, the relative gain
+array and a per-pair view.  Channels and zeros are computed on *minimal* realizations (controllable
+and observable parts, by orthogonal projections after a diagonal balancing; see
+:func:`minimal_realization`), so the states of one MV or DV that another channel does not see do
+not show up as its poles or zeros, and an integrating level does not make every other gain infinite.
 """
 
 from __future__ import annotations
 
 import math
+import numbers
 import warnings
 from dataclasses import dataclass, field
 from typing import Any
@@ -29,15 +36,21 @@ import scipy.linalg as sla
 from .exceptions import SettingsError
 from .operating import OperatingPoint
 
-__all__ = ["LinearModel", "DiscreteLinearModel", "linearize", "rga", "delay_samples"]
+__all__ = ["LinearModel", "DiscreteLinearModel", "linearize", "rga", "delay_samples",
+           "minimal_realization", "transmission_zeros"]
 
 
 def delay_samples(dead_time: float, Ts: float, *, policy: str = "round", what: str = "dead time") -> int:
-    """Whole number of samples for *dead_time* at sample time *Ts* (rounded with a warning, or refused)."""
+    """Whole number of samples for *dead_time* at sample time *Ts*.
+
+    A dead time that is not a whole number of samples is rounded to the nearest one (half a sample
+    rounds up) with a ``UserWarning`` (``policy="round"``), or refused with :class:`SettingsError`
+    (``policy="refuse"``).
+    """
     n_exact = dead_time / Ts
-    n = int(round(n_exact))
+    n = int(math.floor(n_exact + 0.5))  # half a sample rounds up (2.5 -> 3), not to even
     if abs(n - n_exact) > 1e-9 * max(1.0, n_exact):
-        msg = (f"the {what} {dead_time:g} is not a multiple of the sample time {Ts:g} "
+        msg = (f"the {what} = {dead_time:g} is not a multiple of the sample time {Ts:g} "
                f"({n_exact:.4g} samples)")
         if policy == "refuse":
             raise SettingsError(
@@ -102,120 +115,96 @@ class LinearModel:
     def gain(self, role: str = "mv") -> np.ndarray:
         """Steady-state gain matrix dy/du (``role="mv"``) or dy/dd (``role="dv"``).
 
-        An integrating channel (singular A) gives ``inf`` entries where the response has no steady
-        state.
+        Each channel is reduced to its minimal (controllable and observable) part first, so a
+        channel that does settle keeps its finite gain even when another part of the unit
+        integrates (a level); an integrating channel gives ``inf`` (with the sign of its ramp).
         """
         Bf, Df = self._fold(role)
-        try:
-            lu = sla.lu_factor(self.A, check_finite=True)
-            if np.min(np.abs(np.diag(lu[0]))) < 1e-12 * max(1.0, np.max(np.abs(self.A))):
-                raise np.linalg.LinAlgError
-            return Df - self.C @ sla.lu_solve(lu, Bf)
-        except (np.linalg.LinAlgError, ValueError):
-            K = np.full((self.C.shape[0], Bf.shape[1]), np.inf)
-            # channels that do reach a steady state: solve in the least-squares sense and keep
-            # entries whose response is consistent
-            sol, *_ = np.linalg.lstsq(self.A, Bf, rcond=None)
-            ok = np.allclose(self.A @ sol, Bf, atol=1e-9)
-            if ok:
-                K = Df - self.C @ sol
-            return K
+        ny, nu = self.C.shape[0], Bf.shape[1]
+        K = np.zeros((ny, nu))
+        for i in range(ny):
+            for j in range(nu):
+                K[i, j] = _channel(self.A, Bf[:, j], self.C[i], Df[i, j])["gain"]
+        return K
 
     def poles(self) -> np.ndarray:
         """Eigenvalues of A (delay-free part)."""
         return np.linalg.eigvals(self.A)
 
     def zeros(self) -> np.ndarray:
-        """Finite transmission zeros of the delay-free system (A, B+Bz S, C, D+Dz S) from MVs to CVs.
+        """Finite transmission zeros from MVs to CVs of the delay-free system.
 
-        Computed as the finite generalized eigenvalues of the Rosenbrock system matrix pencil
-        ``[[A, B], [C, D]] - s [[I, 0], [0, 0]]`` (square systems); for non-square systems the
-        normal rank is reduced by projecting onto the smaller dimension.
+        Method: (1) fold each delayed input onto its source (the zeros of the rational part; the
+        dead times are extra, pure delays); (2) reduce (A, B, C) to its minimal part -- the
+        controllable subspace of (A, B), then the observable part of that (orthogonal staircase,
+        rank decisions by SVD) -- so input/output decoupling zeros (e.g. the poles of DV-only states)
+        are not reported; (3) the finite generalized eigenvalues of the Rosenbrock pencil
+        ``[[A, B], [C, D]] - s [[I, 0], [0, 0]]``.  A non-square system is squared down by two
+        independent random combinations of its inputs or outputs; only the zeros common to both are
+        kept (a squared-down system has extra zeros that move with the combination; the transmission
+        zeros do not).  A system whose transfer matrix does not have full normal rank has no
+        isolated zeros: an empty array is returned.
         """
         Bf, Df = self._fold("mv")
-        nx, nu, ny = self.A.shape[0], Bf.shape[1], self.C.shape[0]
-        if nu != ny:
-            # Zeros of a non-square system: those common to every square sub-system.  We use the
-            # square system obtained with a random combination (zeros of the generic combination are
-            # the transmission zeros with probability one).
-            rng = np.random.default_rng(0)
-            if ny > nu:
-                W = rng.standard_normal((nu, ny))
-                C, D, B = W @ self.C, W @ Df, Bf
-            else:
-                V = rng.standard_normal((nu, ny))
-                C, D, B = self.C, Df @ V, Bf @ V
-        else:
-            C, D, B = self.C, Df, Bf
-        m = B.shape[1]
-        M = np.block([[self.A, B], [C, D]])
-        N = np.block([[np.eye(nx), np.zeros((nx, m))], [np.zeros((C.shape[0], nx)), np.zeros((C.shape[0], m))]])
-        ev = sla.eigvals(M, N)
-        ev = ev[np.isfinite(ev)]
-        return ev[np.abs(ev) < 1e8]
+        return transmission_zeros(self.A, Bf, self.C, Df)
 
     def rga(self) -> np.ndarray:
         """Relative gain array of the MV->CV steady-state gains (square systems only)."""
         return rga(self.gain("mv"))
 
     def transfer_element(self, cv: int, mv: int) -> tuple[np.ndarray, np.ndarray, float]:
-        """(num, den, dead time) of one MV->CV channel: the delay-free rational part and its delay.
+        """(num, den, dead time) of one MV->CV channel: the minimal rational part and its delay.
 
-        The dead time is the smallest dead time among the paths from this MV to this CV; the
-        rational part folds every delayed path onto the same input (exact when one delay applies).
+        The rational part is that of the channel's minimal realization (common poles and zeros of
+        the full model cancelled exactly, by construction); ``den`` is monic.  The dead time is the
+        smallest dead time among the paths from this MV to this CV; the rational part folds every
+        delayed path onto the same input (exact when one delay applies).
         """
         Bf, Df = self._fold("mv")
-        from scipy.signal import ss2tf
-
-        num, den = ss2tf(self.A, Bf[:, [mv]], self.C[[cv], :], Df[[cv]][:, [mv]])
-        # the smallest delay on this MV whose column reaches the CV (directly or through the states)
+        ch = _channel(self.A, Bf[:, mv], self.C[cv], Df[cv, mv])
         reach = []
         for k, (r, i, dt) in enumerate(self.delays):
             if r != "mv" or i != mv:
                 continue
             g = self.Dz[cv, k] + self.C[cv] @ _controllability_reach(self.A, self.Bz[:, k])
-            if np.any(np.abs(g) > 1e-12):
+            if np.any(np.abs(g) > 1e-12 * max(1.0, np.max(np.abs(self.Bz[:, k])))):
                 reach.append(dt)
         dead = min(reach) if reach else 0.0
-        return np.atleast_1d(np.squeeze(num)), np.atleast_1d(den), float(dead)
+        return ch["num"], ch["den"], float(dead) if ch["connected"] else 0.0
 
     def pairs(self) -> list[dict[str, Any]]:
-        """Per MV->CV pair: gain, time constants (from the channel's real poles), dead time."""
-        K = self.gain("mv")
+        """Per MV->CV pair: gain, time constants, poles, zeros, dead time, connection.
+
+        Each pair is the channel's minimal realization (see :meth:`zeros` for the reduction):
+        ``connected`` is False when the MV does not move the CV at all (then gain 0, no poles);
+        ``integrating`` is True when the channel has a pole at the origin (gain ``inf``), and
+        ``ramp_rate`` is then the CV's slope per unit MV step (per time unit).  Time constants are
+        ``-1/p`` for the real stable poles, largest first; complex poles are listed under ``poles``.
+        """
         out = []
+        Bf, Df = self._fold("mv")
         for i, c in enumerate(self.cv_names):
             for j, m in enumerate(self.mv_names):
-                num, den, dead = self.transfer_element(i, j)
-                num = np.trim_zeros(np.where(np.abs(num) < 1e-12 * max(1.0, np.max(np.abs(num))), 0, num), "f")
-                poles = np.roots(den) if len(den) > 1 else np.zeros(0)
-                zeros_ = np.roots(num) if len(num) > 1 else np.zeros(0)
-                # cancel pole-zero pairs (uncontrollable/unobservable modes of this channel)
-                keep = []
-                zl = list(zeros_)
-                for p_ in poles:
-                    hit = [k for k, z_ in enumerate(zl) if abs(z_ - p_) < 1e-6 * max(1.0, abs(p_))]
-                    if hit:
-                        zl.pop(hit[0])
-                    else:
-                        keep.append(p_)
-                taus = sorted((-1.0 / p_.real for p_ in keep if abs(p_.imag) < 1e-9 and p_.real < 0),
-                              reverse=True)
-                connected = bool(np.any(np.abs(num) > 0))
-                if not connected:
-                    taus, keep, zl, dead = [], [], [], 0.0
+                ch = _channel(self.A, Bf[:, j], self.C[i], Df[i, j])
+                _, _, dead = self.transfer_element(i, j)
+                poles = ch["poles"]
+                taus = sorted((-1.0 / p_.real for p_ in poles
+                               if abs(p_.imag) <= 1e-9 * max(1.0, abs(p_)) and p_.real < 0), reverse=True)
                 out.append({
-                    "cv": c, "mv": m, "gain": float(K[i, j]),
+                    "cv": c, "mv": m, "gain": float(ch["gain"]),
                     "time_constants": [float(t) for t in taus],
-                    "poles": [complex(p_) for p_ in keep],
-                    "zeros": [complex(z_) for z_ in zl],
-                    "dead_time": dead,
-                    "connected": connected,
+                    "poles": [complex(p_) for p_ in poles],
+                    "zeros": [complex(z_) for z_ in ch["zeros"]],
+                    "dead_time": float(dead),
+                    "connected": ch["connected"],
+                    "integrating": ch["integrating"],
+                    "ramp_rate": ch["ramp_rate"],
                 })
         return out
 
     def discretize(self, Ts: float, *, dead_time: str = "round") -> "DiscreteLinearModel":
         """Zero-order-hold discretization with integer-sample delay states (see module docstring)."""
-        if not (isinstance(Ts, (int, float)) and math.isfinite(Ts) and Ts > 0):
+        if isinstance(Ts, bool) or not (isinstance(Ts, numbers.Real) and math.isfinite(Ts) and Ts > 0):
             raise SettingsError(f"discretize(): the sample time Ts must be a finite number > 0; got {Ts!r}.")
         nx, nu, nd = self.A.shape[0], self.B.shape[1], self.Bd.shape[1]
         nz = len(self.delays)
@@ -229,7 +218,7 @@ class LinearModel:
         Gu, Gd, Gz = Gam[:, :nu], Gam[:, nu:nu + nd], Gam[:, nu + nd:]
         # delay chains: one chain per source (mv j or dv j), as long as its longest delay
         nsamp = [delay_samples(dt, Ts, policy=dead_time,
-                               what=f"dead time on {(self.mv_names if r == 'mv' else self.dv_names)[i]}")
+                               what=f"dead time on '{(self.mv_names if r == 'mv' else self.dv_names)[i]}'")
                  for (r, i, dt) in self.delays]
         chains: dict[tuple[str, int], int] = {}
         for (r, i, _), n in zip(self.delays, nsamp):
@@ -281,6 +270,169 @@ class LinearModel:
         }
 
 
+
+# ---------------------------------------------------------------------------------------------
+# minimal realizations, channel gains and transmission zeros
+
+
+def _orth(M: np.ndarray, tol: float) -> np.ndarray:
+    """Orthonormal basis of the range of M (singular values above tol)."""
+    if M.size == 0:
+        return np.zeros((M.shape[0], 0))
+    U, sv, _ = np.linalg.svd(M, full_matrices=False)
+    return U[:, sv > tol]
+
+
+def _krylov_basis(A: np.ndarray, B: np.ndarray, tol: float) -> np.ndarray:
+    """Orthonormal basis of the smallest A-invariant subspace containing range(B) (staircase)."""
+    n = A.shape[0]
+    V = _orth(B, tol)
+    while 0 < V.shape[1] < n:
+        W = _orth(np.hstack([V, A @ V]), tol)
+        if W.shape[1] == V.shape[1]:
+            break
+        V = W
+    return V
+
+
+def minimal_realization(A: np.ndarray, B: np.ndarray, C: np.ndarray,
+                        tol: float = 1e-9) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The controllable and observable part (Am, Bm, Cm) of (A, B, C), by orthogonal projections.
+
+    The state is first balanced by a diagonal similarity (``scipy.linalg.matrix_balance``) and A, B,
+    C are normalized, so rank decisions do not depend on units.  Then the controllable subspace V
+    of (A, B) is built (the Krylov space of B under A, one orthonormal block at a time), and within
+    it the orthogonal complement W of the unobservable subspace (the Krylov space of C^T under A^T).
+    ``tol`` is the relative singular-value threshold for the rank decisions.  The result is a
+    realization of the same transfer matrix (in other state coordinates).
+    """
+    A = np.atleast_2d(np.asarray(A, float))
+    n = A.shape[0]
+    B = np.asarray(B, float).reshape(n, -1)
+    C = np.asarray(C, float).reshape(-1, n)
+    if n == 0:
+        return A, B, C
+    _, (sc, _) = sla.matrix_balance(A, permute=False, separate=True)
+    A = A * (1.0 / sc)[:, None] * sc[None, :]
+    B = B / sc[:, None]
+    C = C * sc[None, :]
+    na = np.linalg.norm(A, 2) or 1.0
+    nb = np.linalg.norm(B, 2) or 1.0
+    nc = np.linalg.norm(C, 2) or 1.0
+    An = A / na
+    V = _krylov_basis(An, B / nb, tol)
+    Ac, Bc, Cc = V.T @ A @ V, V.T @ B, C @ V
+    if Ac.shape[0] == 0:
+        return Ac, Bc, Cc
+    W = _krylov_basis(Ac.T / na, Cc.T / nc, tol)
+    return W.T @ Ac @ W, W.T @ Bc, Cc @ W
+
+
+def _ss_gain(Am: np.ndarray, bm: np.ndarray, cm: np.ndarray, d: float, *,
+             discrete: bool) -> tuple[float, bool, float | None]:
+    """(gain, integrating, ramp rate) of a minimal SISO realization.
+
+    Continuous: gain = d + c (0 I - A)^-1 b; discrete: d + c (I - A)^-1 b.  With a (simple) pole at
+    s = 0 (z = 1) the gain is infinite and the ramp rate -- the slope of the step response per time
+    unit (per sample) -- is the residue c v w^T b / (w^T v), v and w right and left null vectors.
+    """
+    n = Am.shape[0]
+    if n == 0:
+        return float(d), False, None
+    M = (np.eye(n) - Am) if discrete else -Am
+    scale = max(1.0, float(np.max(np.abs(M))))
+    U, sv, Vt = np.linalg.svd(M)
+    if sv[-1] > 1e-10 * scale:
+        return float(d + (cm @ np.linalg.solve(M, bm)).item()), False, None
+    v, w = Vt[-1], U[:, -1]
+    denom = float(w @ v)
+    ramp = float((cm @ v).item() * (w @ bm).item() / denom) if abs(denom) > 1e-12 else math.nan
+    gain = math.copysign(math.inf, ramp) if (ramp == ramp and ramp != 0) else math.inf
+    return gain, True, ramp
+
+
+def _channel(A: np.ndarray, b: np.ndarray, c: np.ndarray, d: float) -> dict[str, Any]:
+    """Minimal SISO realization of one channel with its gain, poles, zeros and (num, den)."""
+    Am, bm, cm = minimal_realization(A, b.reshape(-1, 1), c.reshape(1, -1))
+    n = Am.shape[0]
+    d = float(d)
+    scale = max(1.0, float(np.max(np.abs(Am)))) if n else 1.0
+    connected = bool(n > 0 or abs(d) > 0)
+    integrating = False
+    ramp = None
+    gain, integrating, ramp = _ss_gain(Am, bm, cm, d, discrete=False)
+    poles = np.linalg.eigvals(Am) if n else np.zeros(0, complex)
+    poles = np.where(np.abs(poles) <= 1e-10 * scale, 0.0, poles)  # integrators exactly at 0
+    if n:
+        from scipy.signal import ss2tf
+
+        num, den = ss2tf(Am, bm, cm, np.array([[d]]))
+        num = np.atleast_1d(np.squeeze(num))
+        nz = np.abs(num) > 1e-10 * max(1.0, float(np.max(np.abs(num))))
+        num = num[np.argmax(nz):] if np.any(nz) else np.zeros(1)
+        zeros_ = np.roots(num) if len(num) > 1 else np.zeros(0, complex)
+    else:
+        num, den, zeros_ = np.array([d]), np.array([1.0]), np.zeros(0, complex)
+    return {"gain": float(gain), "poles": poles, "zeros": zeros_, "num": num, "den": np.atleast_1d(den),
+            "connected": connected, "integrating": integrating, "ramp_rate": ramp}
+
+
+def _pencil_zeros(A: np.ndarray, B: np.ndarray, C: np.ndarray, D: np.ndarray) -> np.ndarray:
+    """Finite generalized eigenvalues of the square Rosenbrock pencil."""
+    nx, m = A.shape[0], B.shape[1]
+    p = C.shape[0]
+    M = np.block([[A, B], [C, D]])
+    N = np.zeros_like(M)
+    N[:nx, :nx] = np.eye(nx)
+    if M.size == 0:
+        return np.zeros(0, complex)
+    with np.errstate(all="ignore"):
+        ev = sla.eigvals(M, N)
+    ev = ev[np.isfinite(ev)]
+    scale = max(1.0, float(np.max(np.abs(M))))
+    return ev[np.abs(ev) < 1e8 * scale]
+
+
+def _normal_rank(A, B, C, D, rng) -> int:
+    """Normal rank of G(s) = C (sI - A)^-1 B + D, from its values at two random complex points."""
+    n = A.shape[0]
+    r = 0
+    for _ in range(2):
+        s = complex(rng.standard_normal(), rng.standard_normal()) * max(1.0, float(np.max(np.abs(A), initial=0)))
+        G = D + (C @ np.linalg.solve(s * np.eye(n) - A, B) if n else 0)
+        sv = np.linalg.svd(np.atleast_2d(G), compute_uv=False)
+        r = max(r, int(np.sum(sv > 1e-10 * max(1.0, float(sv[0]) if sv.size else 1.0))))
+    return r
+
+
+def transmission_zeros(A: np.ndarray, B: np.ndarray, C: np.ndarray, D: np.ndarray) -> np.ndarray:
+    """Finite transmission zeros of (A, B, C, D); see :meth:`LinearModel.zeros` for the method."""
+    A = np.atleast_2d(np.asarray(A, float))
+    nx = A.shape[0]
+    B = np.asarray(B, float).reshape(nx, -1)
+    C = np.asarray(C, float).reshape(-1, nx)
+    D = np.asarray(D, float).reshape(C.shape[0], B.shape[1])
+    Am, Bm, Cm = minimal_realization(A, B, C)
+    nu, ny = Bm.shape[1], Cm.shape[0]
+    rng = np.random.default_rng(12345)  # fixed: the squaring-down is an internal device
+    if nu == 0 or ny == 0 or _normal_rank(Am, Bm, Cm, D, rng) < min(nu, ny):
+        return np.zeros(0, complex)
+    if nu == ny:
+        z = _pencil_zeros(Am, Bm, Cm, D)
+    else:
+        sets = []
+        for _ in range(2):
+            if ny > nu:
+                Wt = rng.standard_normal((nu, ny))
+                sets.append(_pencil_zeros(Am, Bm, Wt @ Cm, Wt @ D))
+            else:
+                V = rng.standard_normal((nu, ny))
+                sets.append(_pencil_zeros(Am, Bm @ V, Cm, D @ V))
+        z = np.array([z1 for z1 in sets[0]
+                      if np.any(np.abs(sets[1] - z1) <= 1e-6 * max(1.0, abs(z1)))], dtype=complex)
+    return np.sort_complex(z.astype(complex))
+
+
 def _controllability_reach(A: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Columns b, Ab, A^2 b, ... stacked: a CV row times this is non-zero iff the path is connected."""
     n = A.shape[0]
@@ -320,15 +472,18 @@ class DiscreteLinearModel:
     ny = property(lambda self: self.C.shape[0])
 
     def gain(self, role: str = "mv") -> np.ndarray:
-        """Steady-state gain ``C (I - A)^-1 B + D`` (or for DVs); ``inf`` where integrating."""
+        """Steady-state gain ``C (I - A)^-1 B + D`` (or for DVs), channel by channel.
+
+        Each channel is reduced to its minimal realization first, so only channels that really
+        integrate give ``inf`` (signed by the direction of their ramp).
+        """
         B, D = (self.B, self.D) if role == "mv" else (self.Bd, self.Dd)
-        M = np.eye(self.nx) - self.A
-        try:
-            if np.linalg.cond(M) > 1e12:
-                raise np.linalg.LinAlgError
-            return D + self.C @ np.linalg.solve(M, B)
-        except np.linalg.LinAlgError:
-            return np.full((self.ny, B.shape[1]), np.inf)
+        K = np.zeros((self.ny, B.shape[1]))
+        for i in range(self.ny):
+            for j in range(B.shape[1]):
+                Am, bm, cm = minimal_realization(self.A, B[:, [j]], self.C[[i]])
+                K[i, j] = _ss_gain(Am, bm, cm, D[i, j], discrete=True)[0]
+        return K
 
     def poles(self) -> np.ndarray:
         return np.linalg.eigvals(self.A)
