@@ -1,0 +1,357 @@
+"""Decentralized PID loops: the baseline the MPC has to beat.
+
+Each :class:`PIDLoop` moves one MV to hold one CV.  The algorithm is the textbook discrete PID of
+Astrom & Hagglund (*Advanced PID Control*, ISA 2006, section 3.6, from memory), in the ideal
+(non-interacting) form with gain ``K``, integral time ``Ti`` and derivative time ``Td``:
+
+* proportional action on a weighted setpoint: ``P = K (b r - y)`` (``b`` = setpoint weight);
+* derivative on the measurement only (a setpoint step does not kick the valve), filtered with time
+  constant ``Td/N`` and discretized by backward difference:
+  ``D = Td/(Td + N h) * D - K Td N/(Td + N h) * (y - y_prev)``;
+* integral by forward Euler with **anti-windup by back-calculation (tracking)**: when the output
+  is limited the integral is driven towards the value that makes the unlimited output equal the
+  limited one, with tracking time ``Tt``:
+  ``I[k] = I[k-1] + K h/Ti (r - y)[k-1] + h/Tt (u - v)[k-1]``, ``v = P + I + D``,
+  ``u = limit(v)``;
+  default ``Tt = sqrt(Ti Td)`` (``Ti`` without derivative), as Astrom & Hagglund suggest;
+* bumpless start: at the first sample the integral is set so that the output equals the MV at the
+  operating point.
+
+``h`` is the time since the loop last acted: a loop on an analyzer that reports every few minutes
+acts only when a fresh result arrives (``on_fresh=True``, the default) and holds its output in
+between, so it neither integrates a stale error nor winds up.  A NaN reading holds the output and
+reports the status ``fallback_hold``.  The limits applied are the operating limits and the rate
+limit the simulator passes in ``Targets``; the simulator's actuator may clip further (a stuck
+valve), which the loop does not see.
+
+PID loop spec keys (:func:`pid_loop_from_spec`)
+------------------------------------------------
+``cv``, ``mv``, ``gain`` (required); ``integral_time`` (default: none, P/PD only),
+``derivative_time`` (0), ``setpoint_weight`` (1), ``derivative_filter`` (N, 10),
+``tracking_time`` (see above), ``on_fresh`` (true).
+
+Pairing: :func:`suggest_pairing` picks the MV for each CV from the relative gain array (Bristol
+1966): the one-to-one pairing with positive relative gains closest to 1.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..exceptions import SettingsError
+from ..linear import rga as _rga
+from ..model import suggest
+from ..operating import OperatingPoint
+from .base import STATUS_HOLD, STATUS_OK, ControlOutput, Measurement, Targets
+
+__all__ = ["PIDLoop", "PIDController", "pid_loop_from_spec", "pid_from_settings", "suggest_pairing", "Pairing",
+           "low_frequency_gain"]
+
+
+@dataclass(frozen=True)
+class PIDLoop:
+    """Settings of one loop (ideal form; see module docstring)."""
+
+    cv: str
+    mv: str
+    gain: float
+    integral_time: float = math.inf
+    derivative_time: float = 0.0
+    setpoint_weight: float = 1.0
+    derivative_filter: float = 10.0
+    tracking_time: float | None = None
+    on_fresh: bool = True
+    rule: str = ""
+
+    def __post_init__(self) -> None:
+        w = f"PIDLoop {self.cv}<-{self.mv}"
+
+        def chk(name: str, v: Any, cond, expect: str) -> None:
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v) or not cond(v):
+                raise SettingsError(f"{w}: '{name}' must be {expect}; found {v!r}.")
+
+        chk("gain", self.gain, lambda v: math.isfinite(v) and v != 0, "a finite non-zero number")
+        chk("integral_time", self.integral_time, lambda v: v > 0, "> 0 (inf = no integral action)")
+        chk("derivative_time", self.derivative_time, lambda v: math.isfinite(v) and v >= 0, ">= 0")
+        chk("setpoint_weight", self.setpoint_weight, lambda v: 0 <= v <= 1, "in [0, 1]")
+        chk("derivative_filter", self.derivative_filter, lambda v: math.isfinite(v) and v > 0, "> 0")
+        if self.tracking_time is not None:
+            chk("tracking_time", self.tracking_time, lambda v: v > 0, "> 0")
+
+    @property
+    def tt(self) -> float:
+        """Tracking time actually used by the anti-windup."""
+        if self.tracking_time is not None:
+            return float(self.tracking_time)
+        if self.derivative_time > 0 and math.isfinite(self.integral_time):
+            return math.sqrt(self.integral_time * self.derivative_time)
+        return float(self.integral_time)
+
+    def as_dict(self) -> dict[str, Any]:
+        d = {"cv": self.cv, "mv": self.mv, "gain": self.gain,
+             "integral_time": self.integral_time if math.isfinite(self.integral_time) else None,
+             "derivative_time": self.derivative_time, "setpoint_weight": self.setpoint_weight,
+             "derivative_filter": self.derivative_filter, "tracking_time": self.tracking_time,
+             "on_fresh": self.on_fresh}
+        if self.rule:
+            d["rule"] = self.rule
+        return d
+
+
+_LOOP_KEYS = ("cv", "mv", "gain", "integral_time", "derivative_time", "setpoint_weight",
+              "derivative_filter", "tracking_time", "on_fresh")
+
+
+def pid_loop_from_spec(spec: Mapping[str, Any] | PIDLoop, *, what: str) -> PIDLoop:
+    """A :class:`PIDLoop` from a plain dict (keys in the module docstring)."""
+    if isinstance(spec, PIDLoop):
+        return spec
+    if not isinstance(spec, Mapping):
+        raise SettingsError(f"{what}: a PID loop must be a table/dict; found {spec!r}.")
+    for k in spec:
+        if k not in _LOOP_KEYS:
+            raise SettingsError(f"{what}: unknown key '{k}'{suggest(str(k), _LOOP_KEYS)}; allowed "
+                                f"keys: {', '.join(_LOOP_KEYS)}.")
+    for k in ("cv", "mv", "gain"):
+        if k not in spec:
+            raise SettingsError(f"{what}: a PID loop needs '{k}'; found keys: {', '.join(spec)}.")
+    kw = dict(spec)
+    if kw.get("integral_time") is None:
+        kw.pop("integral_time", None)
+    for k in ("gain", "integral_time", "derivative_time", "setpoint_weight", "derivative_filter",
+              "tracking_time"):
+        if k in kw and kw[k] is not None:
+            try:
+                if isinstance(kw[k], bool):
+                    raise TypeError
+                kw[k] = float(kw[k])
+            except (TypeError, ValueError):
+                raise SettingsError(f"{what}: '{k}' must be a number; found {spec[k]!r}.") from None
+    if "on_fresh" in kw and not isinstance(kw["on_fresh"], bool):
+        raise SettingsError(f"{what}: 'on_fresh' must be true or false; found {kw['on_fresh']!r}.")
+    try:
+        return PIDLoop(**kw)
+    except SettingsError as exc:
+        raise SettingsError(f"{what}: {exc}") from None
+
+
+@dataclass
+class _LoopState:
+    i: float = 0.0
+    d: float = 0.0
+    y_prev: float = math.nan
+    t_last: float = math.nan
+    u: float = math.nan
+    e_prev: float = 0.0
+    aw_prev: float = 0.0
+    started: bool = False
+
+
+class PIDController:
+    """Several PID loops side by side (decentralized control); implements the controller protocol.
+
+    Parameters
+    ----------
+    cv_names, mv_names : sequence of str
+        The model's CVs and MVs in declaration order (``model.cv_names``, ``model.mv_names``).
+    loops : sequence of PIDLoop or spec dicts
+        One loop per paired MV; each CV and each MV at most once.  MVs without a loop stay at their
+        operating-point value.
+    name : str
+        Reported in trajectories and scorecards (default ``"pid"``).
+    """
+
+    def __init__(self, cv_names: Sequence[str], mv_names: Sequence[str],
+                 loops: Sequence[PIDLoop | Mapping[str, Any]], *, name: str = "pid"):
+        self.name = str(name)
+        self.cv_names, self.mv_names = tuple(cv_names), tuple(mv_names)
+        self.loops = [pid_loop_from_spec(lp, what=f"PID loops[{i}]") for i, lp in enumerate(loops)]
+        if not self.loops:
+            raise SettingsError("PIDController: give at least one loop.")
+        seen_cv: set[str] = set()
+        seen_mv: set[str] = set()
+        for i, lp in enumerate(self.loops):
+            for role, names, seen, v in (("CV", self.cv_names, seen_cv, lp.cv),
+                                         ("MV", self.mv_names, seen_mv, lp.mv)):
+                if v not in names:
+                    raise SettingsError(
+                        f"PID loops[{i}]: '{v}' is not a {role} of the model{suggest(v, names)}; "
+                        f"{role}s: {', '.join(names)}.")
+                if v in seen:
+                    raise SettingsError(f"PID loops[{i}]: {role} '{v}' is used by two loops; "
+                                        f"each {role} may be in one loop only.")
+                seen.add(v)
+        self._idx = [(self.cv_names.index(lp.cv), self.mv_names.index(lp.mv)) for lp in self.loops]
+        self._u0 = np.zeros(len(self.mv_names))
+        self._state: list[_LoopState] = []
+
+    @classmethod
+    def for_model(cls, model: Any, loops: Sequence[PIDLoop | Mapping[str, Any]], *,
+                  name: str = "pid") -> "PIDController":
+        """Loops on a model's CVs and MVs."""
+        return cls(model.cv_names, model.mv_names, loops, name=name)
+
+    def reset(self, op: OperatingPoint, t0: float = 0.0) -> None:
+        self._u0 = np.asarray(op.u, float).copy()
+        self._state = [_LoopState(u=float(self._u0[j])) for _, j in self._idx]
+
+    @property
+    def integrals(self) -> np.ndarray:
+        """Current integral terms, one per loop (for tests and diagnostics)."""
+        return np.array([s.i for s in self._state])
+
+    def step(self, t: float, meas: Measurement, dv: np.ndarray, targets: Targets,
+             dv_forecast: np.ndarray | None = None) -> ControlOutput:
+        if not self._state:
+            raise SettingsError(f"PIDController '{self.name}': call reset(op) before step().")
+        u_out = self._u0.copy()
+        status = STATUS_OK
+        held = 0
+        saturated = 0
+        rate = targets.mv_rate
+        for lp, (ci, mj), st in zip(self.loops, self._idx, self._state):
+            y = float(meas.y[ci])
+            r = float(targets.setpoint[ci])
+            lo, hi = float(targets.mv_low[mj]), float(targets.mv_high[mj])
+            if rate is not None and math.isfinite(rate[mj]):
+                lo, hi = max(lo, st.u - rate[mj]), min(hi, st.u + rate[mj])
+                if lo > hi:   # operating limit moved faster than the rate allows: rate wins
+                    lo = hi = min(max(st.u, float(targets.mv_low[mj])), float(targets.mv_high[mj]))
+            if not math.isfinite(y) or not math.isfinite(r):
+                held += not math.isfinite(y)
+                u_out[mj] = st.u
+                continue
+            if lp.on_fresh and not bool(meas.fresh[ci]) and st.started:
+                u_out[mj] = st.u
+                continue
+            K, Td, N = lp.gain, lp.derivative_time, lp.derivative_filter
+            if not st.started:
+                st.i = st.u - K * (lp.setpoint_weight * r - y)
+                st.d, st.y_prev, st.t_last, st.started = 0.0, y, t, True
+                st.e_prev = st.aw_prev = 0.0
+            h = t - st.t_last if t > st.t_last else 0.0
+            if h > 0 and math.isfinite(lp.integral_time):
+                # forward Euler over the interval just ended, with back-calculation of the
+                # limited output (anti-windup): I += K h/Ti e + h/Tt (u - v)
+                st.i += K * h / lp.integral_time * st.e_prev + h / lp.tt * st.aw_prev
+            if Td > 0 and h > 0:
+                st.d = Td / (Td + N * h) * st.d - K * Td * N / (Td + N * h) * (y - st.y_prev)
+            v = K * (lp.setpoint_weight * r - y) + st.i + st.d
+            u = min(max(v, lo), hi)
+            saturated += u != v
+            st.e_prev, st.aw_prev = r - y, u - v
+            st.y_prev, st.t_last, st.u = y, t, u
+            u_out[mj] = u
+        if held:
+            status = STATUS_HOLD
+        return ControlOutput(u=u_out, status=status,
+                             diagnostics={"loops_held": held, "loops_saturated": saturated})
+
+
+# ---------------------------------------------------------------------------------- pairing
+@dataclass
+class Pairing:
+    """Result of :func:`suggest_pairing`."""
+
+    pairs: list[tuple[str, str]]                 # (cv, mv)
+    rga: np.ndarray
+    cv_names: tuple[str, ...]
+    mv_names: tuple[str, ...]
+    relative_gains: dict[str, float] = field(default_factory=dict)  # "cv<-mv": lambda
+    low_frequency: bool = False                  # True if the RGA was taken at a low frequency
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"pairs": [{"cv": c, "mv": m, "relative_gain": self.relative_gains[f"{c}<-{m}"]}
+                          for c, m in self.pairs],
+                "rga": self.rga.tolist(), "cv_names": list(self.cv_names),
+                "mv_names": list(self.mv_names), "low_frequency": self.low_frequency}
+
+
+def low_frequency_gain(lin: Any, s: float | None = None) -> np.ndarray:
+    """Transfer matrix ``G(s) = C (sI - A)^-1 B + D`` (MV->CV, delays folded) at a small real s.
+
+    Used for pairing when a CV integrates (a level): the RGA is unchanged by scaling a row, so the
+    RGA of ``G(s)`` at a low frequency gives the steady-state pairing information even where
+    ``G(0)`` is infinite.  Default ``s``: 1e-4 times the slowest non-zero pole magnitude.
+    """
+    Bf, Df = lin._fold("mv")
+    A, C = lin.A, lin.C
+    if s is None:
+        mags = np.abs(np.linalg.eigvals(A)) if A.size else np.zeros(0)
+        mags = mags[mags > 1e-10 * max(1.0, mags.max() if mags.size else 1.0)]
+        s = 1e-4 * (mags.min() if mags.size else 1.0)
+    n = A.shape[0]
+    return C @ np.linalg.solve(s * np.eye(n) - A, Bf) + Df
+
+
+def suggest_pairing(lin: Any, *, cvs: Sequence[str] | None = None,
+                    mvs: Sequence[str] | None = None) -> Pairing:
+    """Pair CVs with MVs from the relative gain array of a :class:`mpcproto.LinearModel`.
+
+    Among all one-to-one pairings of the (square) selection, pairings on a negative relative gain
+    are ruled out (Bristol 1966; common practice: such a loop changes sign when the others open),
+    and the one whose relative gains are closest to 1 (least sum of ``|ln lambda|``) is chosen.
+    Integrating CVs are handled with the RGA at a low frequency (:func:`low_frequency_gain`).
+
+    Raises
+    ------
+    SettingsError
+        A non-square selection, an unknown name, a singular gain matrix, or no pairing with all
+        relative gains positive.
+    """
+    cv_all, mv_all = tuple(lin.cv_names), tuple(lin.mv_names)
+    cvs = tuple(cvs) if cvs is not None else cv_all
+    mvs = tuple(mvs) if mvs is not None else mv_all
+    for sel, all_, role in ((cvs, cv_all, "CV"), (mvs, mv_all, "MV")):
+        for n in sel:
+            if n not in all_:
+                raise SettingsError(f"suggest_pairing: '{n}' is not a {role}{suggest(n, all_)}; "
+                                    f"{role}s: {', '.join(all_)}.")
+    if len(cvs) != len(mvs):
+        raise SettingsError(
+            f"suggest_pairing: pairing needs as many CVs as MVs; got {len(cvs)} CVs "
+            f"({', '.join(cvs)}) and {len(mvs)} MVs ({', '.join(mvs)}). Pass cvs=/mvs= to choose a "
+            f"square selection.")
+    ri = [cv_all.index(c) for c in cvs]
+    cj = [mv_all.index(m) for m in mvs]
+    K = lin.gain("mv")[np.ix_(ri, cj)]
+    low = False
+    if not np.all(np.isfinite(K)):
+        K = low_frequency_gain(lin)[np.ix_(ri, cj)]
+        low = True
+    L = _rga(K)
+    n = len(cvs)
+    best, best_cost = None, math.inf
+    perms = itertools.permutations(range(n)) if n <= 8 else None
+    if perms is None:
+        raise SettingsError(f"suggest_pairing: {n} loops is too many to search; select at most 8.")
+    for perm in perms:
+        lam = np.array([L[i, perm[i]] for i in range(n)])
+        if np.any(lam <= 0):
+            continue
+        cost = float(np.sum(np.abs(np.log(lam))))
+        if cost < best_cost:
+            best, best_cost = perm, cost
+    if best is None:
+        raise SettingsError(
+            "suggest_pairing: every one-to-one pairing has a negative relative gain; decentralized "
+            f"PID is not advisable for this selection (RGA = {np.round(L, 3).tolist()}).")
+    pairs = [(cvs[i], mvs[best[i]]) for i in range(n)]
+    rel = {f"{cvs[i]}<-{mvs[best[i]]}": float(L[i, best[i]]) for i in range(n)}
+    return Pairing(pairs=pairs, rga=L, cv_names=cvs, mv_names=mvs, relative_gains=rel,
+                   low_frequency=low)
+
+
+def pid_from_settings(model: Any, op: OperatingPoint, Ts: float, settings: Mapping[str, Any], *,
+                      what: str = "pid") -> PIDController:
+    """A tuned :class:`PIDController` from a plain settings dict; see
+    :func:`mpcproto.control.tuning.pid_from_settings` for the keys."""
+    from .tuning import pid_from_settings as build
+
+    return build(model, op, Ts, settings, what=what)

@@ -1,0 +1,631 @@
+r"""PID tuning from a step test: fit a low-order model, then apply a published rule.
+
+1. :func:`step_test` moves one MV of the NONLINEAR model by a step and records every CV (the
+   closed-loop simulator with an open-loop "controller", optionally with measurement noise).
+2. :func:`fit_fopdt` / :func:`fit_sopdt` / :func:`fit_integrating` fit, by least squares
+   (``scipy.optimize.least_squares``), a first- or second-order-plus-dead-time model or an
+   integrator with dead time to the response.
+3. A rule turns the fitted :class:`ProcessFit` into :class:`mpcproto.control.pid.PIDLoop` settings
+   (ideal form ``K (1 + 1/(Ti s) + Td s)``):
+
+:func:`simc` -- Skogestad (2003), "Simple analytic rules for model reduction and PID controller
+tuning", J. Process Control 13:291-309.  With closed-loop time constant :math:`\tau_c`
+(default :math:`\tau_c = \theta`, the paper's choice for fast, robust control):
+
+* FOPDT :math:`k e^{-\theta s}/(\tau_1 s + 1)` -> PI: :math:`K_c = \frac{1}{k}\frac{\tau_1}{\tau_c + \theta}`,
+  :math:`\tau_I = \min(\tau_1, 4(\tau_c + \theta))`;
+* SOPDT :math:`k e^{-\theta s}/((\tau_1 s + 1)(\tau_2 s + 1))` -> series PID with the same
+  :math:`K_c, \tau_I` and :math:`\tau_D = \tau_2`, converted to the ideal form
+  (:math:`K = K_c(1 + \tau_D/\tau_I)`, :math:`T_i = \tau_I + \tau_D`,
+  :math:`T_d = \tau_I\tau_D/(\tau_I + \tau_D)`);
+* integrating :math:`k' e^{-\theta s}/s` -> PI: :math:`K_c = \frac{1}{k'}\frac{1}{\tau_c + \theta}`,
+  :math:`\tau_I = 4(\tau_c + \theta)`.
+
+:func:`imc` -- Rivera, Morari & Skogestad (1986), "Internal model control. 4. PID controller
+design", Ind. Eng. Chem. Process Des. Dev. 25:252-265 (table values from memory), FOPDT with a
+first-order Pade approximation of the dead time and filter time constant :math:`\lambda`:
+
+* PID: :math:`K k = \frac{2\tau + \theta}{2(\lambda + \theta)}`, :math:`T_i = \tau + \theta/2`,
+  :math:`T_d = \frac{\tau\theta}{2\tau + \theta}` (advised :math:`\lambda > 0.8\theta`; default
+  :math:`\lambda = \max(\theta, 0.1\tau)`);
+* PI: :math:`K k = \frac{2\tau + \theta}{2\lambda}`, :math:`T_i = \tau + \theta/2`
+  (advised :math:`\lambda > 1.7\theta`; default :math:`\lambda = \max(1.7\theta, 0.1\tau)`).
+
+:func:`ziegler_nichols` -- Ziegler & Nichols (1942), "Optimum settings for automatic
+controllers", Trans. ASME 64:759-768, ultimate-sensitivity method with ultimate gain
+:math:`K_u` and period :math:`P_u` (from :func:`ultimate_point` of the fitted model):
+P: :math:`K = 0.5K_u`; PI: :math:`K = 0.45K_u, T_i = P_u/1.2`; PID: :math:`K = 0.6K_u,
+T_i = P_u/2, T_d = P_u/8`.
+
+Each rule refuses a model it was not derived for (an integrating process for IMC, an inverse
+response, a model without a phase crossover for Ziegler-Nichols) with a :class:`SettingsError`.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy.optimize import brentq, least_squares
+
+from ..exceptions import SettingsError
+from ..model import suggest
+from .pid import PIDLoop
+
+__all__ = ["ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating",
+           "fit_step", "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "RULES",
+           "tune_pid_loops", "pid_from_settings"]
+
+RULES = ("simc", "imc", "ziegler_nichols")
+
+
+@dataclass(frozen=True)
+class ProcessFit:
+    """A low-order process model: ``kind`` ``"fopdt"``, ``"sopdt"`` or ``"integrating"``.
+
+    ``gain`` is the steady-state gain (fopdt/sopdt) or the slope gain (integrating: rate of change
+    of the CV per unit MV step).  ``time_constants`` has one (fopdt), two (sopdt, largest first) or
+    no entries (integrating).  Times in the model's time unit.
+    """
+
+    kind: str
+    gain: float
+    time_constants: tuple[float, ...] = ()
+    dead_time: float = 0.0
+    rmse: float | None = None
+    inverse_response: bool = False
+    cv: str = ""
+    mv: str = ""
+
+    def __post_init__(self) -> None:
+        n_tau = {"fopdt": 1, "sopdt": 2, "integrating": 0}
+        if self.kind not in n_tau:
+            raise SettingsError(f"ProcessFit: kind must be one of {', '.join(n_tau)}; found "
+                                f"{self.kind!r}{suggest(str(self.kind), list(n_tau))}.")
+        if len(self.time_constants) != n_tau[self.kind]:
+            raise SettingsError(f"ProcessFit ({self.kind}): needs {n_tau[self.kind]} time "
+                                f"constant(s); found {len(self.time_constants)}.")
+        if not (math.isfinite(self.gain) and self.gain != 0):
+            raise SettingsError(f"ProcessFit ({self.kind}): the gain must be finite and non-zero; "
+                                f"found {self.gain!r}.")
+        for tau in self.time_constants:
+            if not (math.isfinite(tau) and tau > 0):
+                raise SettingsError(f"ProcessFit ({self.kind}): time constants must be finite and "
+                                    f"> 0; found {tau!r}.")
+        if not (math.isfinite(self.dead_time) and self.dead_time >= 0):
+            raise SettingsError(f"ProcessFit ({self.kind}): the dead time must be finite and >= 0; "
+                                f"found {self.dead_time!r}.")
+
+    @classmethod
+    def fopdt(cls, gain: float, time_constant: float, dead_time: float = 0.0, **kw: Any) -> "ProcessFit":
+        return cls("fopdt", float(gain), (float(time_constant),), float(dead_time), **kw)
+
+    @classmethod
+    def sopdt(cls, gain: float, tau1: float, tau2: float, dead_time: float = 0.0, **kw: Any) -> "ProcessFit":
+        t1, t2 = sorted((float(tau1), float(tau2)), reverse=True)
+        return cls("sopdt", float(gain), (t1, t2), float(dead_time), **kw)
+
+    @classmethod
+    def integrating(cls, slope_gain: float, dead_time: float = 0.0, **kw: Any) -> "ProcessFit":
+        return cls("integrating", float(slope_gain), (), float(dead_time), **kw)
+
+    def response(self, t: np.ndarray) -> np.ndarray:
+        """Unit-step response (CV change per unit MV step applied at t = 0)."""
+        s = np.clip(np.asarray(t, float) - self.dead_time, 0.0, None)
+        k = self.gain
+        if self.kind == "fopdt":
+            return k * (1.0 - np.exp(-s / self.time_constants[0]))
+        if self.kind == "integrating":
+            return k * s
+        t1, t2 = self.time_constants
+        if abs(t1 - t2) < 1e-9 * t1:
+            t2 = t1 * (1 - 1e-6)
+        return k * (1.0 - (t1 * np.exp(-s / t1) - t2 * np.exp(-s / t2)) / (t1 - t2))
+
+    def frequency_response(self, w: np.ndarray) -> np.ndarray:
+        """G(jw)."""
+        s = 1j * np.asarray(w, float)
+        g = self.gain * np.exp(-s * self.dead_time)
+        if self.kind == "integrating":
+            return g / s
+        for tau in self.time_constants:
+            g = g / (tau * s + 1.0)
+        return g
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"kind": self.kind, "gain": self.gain, "time_constants": list(self.time_constants),
+                "dead_time": self.dead_time, "rmse": self.rmse,
+                "inverse_response": self.inverse_response, "cv": self.cv, "mv": self.mv}
+
+
+@dataclass
+class StepData:
+    """Recorded response of a step test: ``t``, CVs by name, the MV step and when it happened."""
+
+    t: np.ndarray
+    y: dict[str, np.ndarray]
+    mv: str
+    size: float
+    at: float
+    y0: dict[str, float] = field(default_factory=dict)
+
+
+# ---------------------------------------------------------------------------------- step test
+def step_test(model: Any, op: Any, mv: str, *, size: float, Ts: float, duration: float,
+              at: float | None = None, noise_std: Mapping[str, float] | float = 0.0,
+              rng: Any = None) -> StepData:
+    """Step MV *mv* of the nonlinear *model* by *size* at time *at* (default ``Ts``) from *op*.
+
+    Other MVs and the DVs stay at *op*.  ``noise_std`` (one number or per CV) adds white
+    measurement noise, seeded by *rng*.  The recorded ``y`` are the measured CVs.
+    """
+    from ..sim.closed_loop import ClosedLoop   # lazy: control must not need sim at import
+    from ..sim.open_loop import OpenLoop
+
+    if mv not in model.mv_names:
+        raise SettingsError(f"step_test: '{mv}' is not an MV of model '{model.name}'"
+                            f"{suggest(mv, model.mv_names)}; MVs: {', '.join(model.mv_names)}.")
+    if not (isinstance(size, (int, float)) and math.isfinite(size) and size != 0):
+        raise SettingsError(f"step_test: 'size' must be a finite non-zero number; found {size!r}.")
+    at = float(Ts if at is None else at)
+    if isinstance(noise_std, Mapping):
+        inst = {c: {"noise_std": float(v)} for c, v in noise_std.items()}
+    else:
+        inst = {c: {"noise_std": float(noise_std)} for c in model.cv_names} if noise_std else {}
+    ctl = OpenLoop(model.mv_names, {mv: {"kind": "step", "at": at, "size": float(size)}})
+    tr = ClosedLoop(model, ctl, op=op, Ts=Ts, duration=duration, instruments=inst, rng=rng).run()
+    if not tr.success:
+        raise SettingsError(f"step_test: the step of {size:g} on '{mv}' made the plant fail: "
+                            f"{tr.message}. Try a smaller step.")
+    return StepData(t=tr.t.copy(), y={c: tr.series("ym", c).copy() for c in model.cv_names},
+                    mv=mv, size=float(size), at=at,
+                    y0={c: float(v) for c, v in zip(model.cv_names, op.y)})
+
+
+def _prep(t, y, at, size, y0, what):
+    t = np.asarray(t, float).reshape(-1)
+    y = np.asarray(y, float).reshape(-1)
+    if t.shape != y.shape or t.size < 5:
+        raise SettingsError(f"{what}: t and y must be 1-D of the same length (>= 5); found "
+                            f"{t.shape} and {y.shape}.")
+    if not (math.isfinite(size) and size != 0):
+        raise SettingsError(f"{what}: the step size must be finite and non-zero; found {size!r}.")
+    ok = np.isfinite(y)
+    if ok.sum() < 5:
+        raise SettingsError(f"{what}: fewer than 5 finite samples of the response.")
+    t, y = t[ok], y[ok]
+    if y0 is None:
+        before = y[t < at]
+        y0 = float(before.mean()) if before.size else float(y[0])
+    after = t >= at
+    if after.sum() < 4:
+        raise SettingsError(f"{what}: fewer than 4 samples after the step at t={at:g}.")
+    return t[after] - at, (y[after] - y0) / size, y0
+
+
+def _noise_level(r: np.ndarray) -> float:
+    """Robust noise estimate from successive differences (MAD)."""
+    d = np.diff(r)
+    return float(1.4826 * np.median(np.abs(d - np.median(d))) / math.sqrt(2)) if d.size else 0.0
+
+
+def _shape_checks(s, r, what, allow_integrating=False):
+    n = r.size
+    tail = r[int(0.8 * n):]
+    final = float(np.mean(tail))
+    noise = _noise_level(r)
+    span = float(np.max(np.abs(r))) if r.size else 0.0
+    if span <= 3 * noise or span == 0:
+        raise SettingsError(f"{what}: the response does not rise above the noise (peak "
+                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.")
+    # integrating: still moving at the end at a rate comparable to the mean rate
+    ts = s[int(0.8 * n):]
+    slope = np.polyfit(ts, tail, 1)[0] if ts.size > 2 else 0.0
+    mean_rate = abs(final) / max(s[-1], 1e-12)
+    integrating = abs(slope) > 0.5 * mean_rate and abs(slope) * (ts[-1] - ts[0]) > 5 * noise
+    # inverse response: an early excursion opposite the final direction, beyond the noise
+    sign = np.sign(final) if final != 0 else np.sign(r[np.argmax(np.abs(r))])
+    inverse = bool(np.min(sign * r) < -max(5 * noise, 0.02 * abs(final)))
+    if integrating and not allow_integrating:
+        raise SettingsError(
+            f"{what}: the response is still ramping at the end (slope {slope:.3g} per unit step "
+            f"per time unit): an integrating process (a level?) or a test too short to settle. "
+            f"Use fit_integrating(), or run the test longer.")
+    return final, noise, inverse
+
+
+def fit_fopdt(t: Sequence[float], y: Sequence[float], *, at: float, size: float,
+              y0: float | None = None, cv: str = "", mv: str = "") -> ProcessFit:
+    """Least-squares FOPDT fit of a step response (step of *size* at time *at*)."""
+    what = f"fit_fopdt({cv}<-{mv})" if cv else "fit_fopdt"
+    s, r, _ = _prep(t, y, at, size, y0, what)
+    final, noise, inverse = _shape_checks(s, r, what)
+    k0 = final
+    frac = r / k0
+    i63 = np.flatnonzero(frac >= 0.632)
+    i05 = np.flatnonzero(frac >= 0.05)
+    th0 = float(s[i05[0]]) if i05.size else 0.0
+    tau0 = max(float(s[i63[0]]) - th0, s[1] - s[0]) if i63.size else s[-1] / 3
+    x0 = [k0, math.log(tau0), max(th0 * 0.8, 0.0)]
+
+    def res(p):
+        return ProcessFit.fopdt(p[0], math.exp(p[1]), p[2]).response(s) - r
+
+    sol = least_squares(res, x0, bounds=([-np.inf, -30, 0.0], [np.inf, 30, s[-1]]),
+                        x_scale=[abs(k0), 1.0, max(tau0, s[1] - s[0])])
+    # the dead time enters non-smoothly: polish from a few starts and keep the best
+    for th in (0.0, th0, 0.5 * th0 + 0.5 * sol.x[2]):
+        alt = least_squares(res, [sol.x[0], sol.x[1], th], bounds=([-np.inf, -30, 0.0], [np.inf, 30, s[-1]]),
+                            x_scale=[abs(k0), 1.0, max(tau0, s[1] - s[0])])
+        if alt.cost < sol.cost:
+            sol = alt
+    k, tau, th = sol.x[0], math.exp(sol.x[1]), sol.x[2]
+    rmse = float(math.sqrt(2 * sol.cost / s.size)) * abs(size)
+    return ProcessFit.fopdt(k, tau, th, rmse=rmse, inverse_response=inverse, cv=cv, mv=mv)
+
+
+def fit_sopdt(t: Sequence[float], y: Sequence[float], *, at: float, size: float,
+              y0: float | None = None, cv: str = "", mv: str = "") -> ProcessFit:
+    """Least-squares SOPDT fit (two real time constants) of a step response."""
+    what = f"fit_sopdt({cv}<-{mv})" if cv else "fit_sopdt"
+    first = fit_fopdt(t, y, at=at, size=size, y0=y0, cv=cv, mv=mv)
+    s, r, _ = _prep(t, y, at, size, y0, what)
+    k0, (tau,), th = first.gain, first.time_constants, first.dead_time
+    best = None
+    for split in (0.5, 0.2, 0.05):
+        x0 = [k0, math.log(tau * (1 - split) + 1e-9), math.log(tau * split + 1e-9) if split else -5,
+              th]
+
+        def res(p):
+            return ProcessFit.sopdt(p[0], math.exp(p[1]), math.exp(p[2]), p[3]).response(s) - r
+
+        sol = least_squares(res, x0, bounds=([-np.inf, -30, -30, 0.0], [np.inf, 30, 30, s[-1]]),
+                            x_scale=[abs(k0), 1.0, 1.0, max(tau, s[1] - s[0])])
+        if best is None or sol.cost < best.cost:
+            best = sol
+    k, t1, t2, th = best.x[0], math.exp(best.x[1]), math.exp(best.x[2]), best.x[3]
+    rmse = float(math.sqrt(2 * best.cost / s.size)) * abs(size)
+    return ProcessFit.sopdt(k, t1, t2, th, rmse=rmse, inverse_response=first.inverse_response,
+                            cv=cv, mv=mv)
+
+
+def fit_integrating(t: Sequence[float], y: Sequence[float], *, at: float, size: float,
+                    y0: float | None = None, cv: str = "", mv: str = "") -> ProcessFit:
+    """Least-squares fit of ``k' e^{-theta s}/s`` (slope gain and dead time) to a ramp response."""
+    what = f"fit_integrating({cv}<-{mv})" if cv else "fit_integrating"
+    s, r, _ = _prep(t, y, at, size, y0, what)
+    _, noise, inverse = _shape_checks(s, r, what, allow_integrating=True)
+    slope0 = np.polyfit(s[s.size // 2:], r[s.size // 2:], 1)
+    k0 = float(slope0[0])
+    if k0 == 0:
+        raise SettingsError(f"{what}: the response has no slope; it is not integrating.")
+    th0 = max(0.0, float(-slope0[1] / k0))
+
+    def res(p):
+        return ProcessFit.integrating(p[0], p[1]).response(s) - r
+
+    sol = least_squares(res, [k0, min(th0, s[-1] * 0.9)], bounds=([-np.inf, 0.0], [np.inf, s[-1]]))
+    rmse = float(math.sqrt(2 * sol.cost / s.size)) * abs(size)
+    return ProcessFit.integrating(sol.x[0], sol.x[1], rmse=rmse, inverse_response=inverse,
+                                  cv=cv, mv=mv)
+
+
+def fit_step(data: StepData, cv: str, *, kind: str = "auto") -> ProcessFit:
+    """Fit one CV of a :class:`StepData`: ``kind`` "fopdt", "sopdt", "integrating" or "auto"
+    (integrating if the response still ramps at the end, else FOPDT)."""
+    if cv not in data.y:
+        raise SettingsError(f"fit_step: no CV '{cv}' in the step data{suggest(cv, list(data.y))}.")
+    args = dict(at=data.at, size=data.size, y0=data.y0.get(cv), cv=cv, mv=data.mv)
+    fits = {"fopdt": fit_fopdt, "sopdt": fit_sopdt, "integrating": fit_integrating}
+    if kind == "auto":
+        try:
+            return fit_fopdt(data.t, data.y[cv], **args)
+        except SettingsError as exc:
+            if "integrating" not in str(exc):
+                raise
+            return fit_integrating(data.t, data.y[cv], **args)
+    if kind not in fits:
+        raise SettingsError(f"fit_step: kind must be one of auto, {', '.join(fits)}; found "
+                            f"{kind!r}{suggest(str(kind), list(fits))}.")
+    return fits[kind](data.t, data.y[cv], **args)
+
+
+# ---------------------------------------------------------------------------------- rules
+def _refuse_inverse(fit: ProcessFit, rule: str) -> None:
+    if fit.inverse_response:
+        raise SettingsError(
+            f"{rule}: the step response of {fit.cv or 'this CV'} shows an inverse response (it first "
+            f"moves the wrong way); the rule assumes a monotonic response. Model the right-half-"
+            f"plane zero (e.g. Skogestad's half rule into the dead time) before tuning.")
+
+
+def _loop(fit: ProcessFit, K: float, Ti: float, Td: float, rule: str, cv: str | None,
+          mv: str | None, **kw: Any) -> PIDLoop:
+    return PIDLoop(cv=cv or fit.cv or "cv", mv=mv or fit.mv or "mv", gain=float(K),
+                   integral_time=float(Ti), derivative_time=float(Td), rule=rule, **kw)
+
+
+def simc(fit: ProcessFit, *, tau_c: float | None = None, cv: str | None = None,
+         mv: str | None = None, **loop_kw: Any) -> PIDLoop:
+    """SIMC settings (Skogestad 2003; formulas in the module docstring)."""
+    _refuse_inverse(fit, "simc")
+    th = fit.dead_time
+    if tau_c is None:
+        if th <= 0:
+            raise SettingsError("simc: the fitted dead time is 0, so the default tau_c = dead time "
+                                "is 0; give tau_c (the desired closed-loop time constant) > 0.")
+        tau_c = th
+    if not (isinstance(tau_c, (int, float)) and math.isfinite(tau_c) and tau_c > 0):
+        raise SettingsError(f"simc: tau_c must be a finite number > 0; found {tau_c!r}.")
+    k = fit.gain
+    if fit.kind == "integrating":
+        return _loop(fit, 1.0 / (k * (tau_c + th)), 4.0 * (tau_c + th), 0.0, "simc", cv, mv, **loop_kw)
+    t1 = fit.time_constants[0]
+    Kc = t1 / (k * (tau_c + th))
+    Ti = min(t1, 4.0 * (tau_c + th))
+    if fit.kind == "fopdt":
+        return _loop(fit, Kc, Ti, 0.0, "simc", cv, mv, **loop_kw)
+    Td = fit.time_constants[1]
+    return _loop(fit, Kc * (1 + Td / Ti), Ti + Td, Ti * Td / (Ti + Td), "simc", cv, mv, **loop_kw)
+
+
+def imc(fit: ProcessFit, *, lam: float | None = None, mode: str = "PID", cv: str | None = None,
+        mv: str | None = None, **loop_kw: Any) -> PIDLoop:
+    """IMC-PID / IMC-PI settings for a FOPDT model (Rivera, Morari & Skogestad 1986)."""
+    if mode not in ("PID", "PI"):
+        raise SettingsError(f"imc: mode must be 'PID' or 'PI'; found {mode!r}.")
+    if fit.kind != "fopdt":
+        raise SettingsError(
+            f"imc: the IMC rules implemented here are for a first-order-plus-dead-time process; the "
+            f"model is {fit.kind}. Fit a FOPDT (fit_fopdt) or use simc, which covers integrating "
+            f"and second-order processes.")
+    _refuse_inverse(fit, "imc")
+    k, tau, th = fit.gain, fit.time_constants[0], fit.dead_time
+    if lam is None:
+        lam = max(th, 0.1 * tau) if mode == "PID" else max(1.7 * th, 0.1 * tau)
+    if not (isinstance(lam, (int, float)) and math.isfinite(lam) and lam > 0):
+        raise SettingsError(f"imc: lam (the IMC filter time constant) must be > 0; found {lam!r}.")
+    Ti = tau + th / 2.0
+    if mode == "PID":
+        return _loop(fit, (2 * tau + th) / (2 * k * (lam + th)), Ti, tau * th / (2 * tau + th),
+                     "imc", cv, mv, **loop_kw)
+    return _loop(fit, (2 * tau + th) / (2 * k * lam), Ti, 0.0, "imc", cv, mv, **loop_kw)
+
+
+def ultimate_point(fit_or_num: Any, den: Sequence[float] | None = None, dead_time: float = 0.0,
+                   *, w_max: float | None = None) -> tuple[float, float]:
+    """Ultimate gain and period ``(Ku, Pu)``: the gain at which a P controller brings the loop to
+    sustained oscillation, from the first frequency where the phase of G(jw) reaches -180 deg.
+
+    Give a :class:`ProcessFit`, or polynomial coefficients ``num, den`` (highest power first) and a
+    dead time.  Raises :class:`SettingsError` if the phase never reaches -180 deg (e.g. a FOPDT
+    without dead time) or the gain is negative.
+    """
+    if isinstance(fit_or_num, ProcessFit):
+        fit = fit_or_num
+        G = fit.frequency_response
+        scale = max(list(fit.time_constants) + [fit.dead_time, 1e-12])
+        k_sign = fit.gain
+    else:
+        num = np.atleast_1d(np.asarray(fit_or_num, float))
+        dn = np.atleast_1d(np.asarray(den, float))
+        if not (math.isfinite(dead_time) and dead_time >= 0):
+            raise SettingsError(f"ultimate_point: dead_time must be >= 0; found {dead_time!r}.")
+
+        def G(w):
+            s = 1j * np.asarray(w, float)
+            return np.polyval(num, s) / np.polyval(dn, s) * np.exp(-s * dead_time)
+
+        roots = np.roots(dn)
+        mags = np.abs(roots[np.abs(roots) > 0])
+        scale = max([1.0 / m for m in mags] + [dead_time, 1e-12])
+        k_sign = float(np.real(G(1e-9 / scale)))
+    if k_sign < 0:
+        raise SettingsError("ultimate_point: the process gain is negative; use the magnitude "
+                            "(the controller's action is reversed), e.g. a fit with -gain.")
+    w = np.logspace(-4, 4, 4000) / scale
+    if w_max is not None:
+        w = w[w <= w_max]
+    ph = np.unwrap(np.angle(G(w)))
+    crossed = np.flatnonzero(ph <= -np.pi)
+    if crossed.size == 0 or crossed[0] == 0:
+        raise SettingsError(
+            "ultimate_point: the phase of the process never reaches -180 deg (e.g. a first-order "
+            "process without dead time), so there is no ultimate gain; the Ziegler-Nichols "
+            "ultimate-sensitivity rule does not apply. Use simc or imc.")
+    i = crossed[0]
+    # refine between the two grid points on the phase continued from the lower one
+    lo, hi = w[i - 1], w[i]
+    ph_lo = ph[i - 1]
+
+    def phase_at(x):
+        return ph_lo + np.angle(G(np.array([x]))[0] / G(np.array([lo]))[0]) + np.pi
+
+    wc = brentq(phase_at, lo, hi, xtol=1e-14 * hi, rtol=1e-14)
+    Ku = 1.0 / abs(G(np.array([wc]))[0])
+    return float(Ku), float(2 * np.pi / wc)
+
+
+def ziegler_nichols(fit: ProcessFit | None = None, *, ultimate: tuple[float, float] | None = None,
+                    mode: str = "PID", cv: str | None = None, mv: str | None = None,
+                    **loop_kw: Any) -> PIDLoop:
+    """Ziegler-Nichols (1942) ultimate-sensitivity settings (formulas in the module docstring).
+
+    Give a :class:`ProcessFit` (its ultimate point is computed) or ``ultimate=(Ku, Pu)`` measured
+    on the plant.
+    """
+    table = {"P": (0.5, None, 0.0), "PI": (0.45, 1 / 1.2, 0.0), "PID": (0.6, 0.5, 0.125)}
+    if mode not in table:
+        raise SettingsError(f"ziegler_nichols: mode must be one of P, PI, PID; found {mode!r}.")
+    if (fit is None) == (ultimate is None):
+        raise SettingsError("ziegler_nichols: give either a fitted model or ultimate=(Ku, Pu).")
+    sign = 1.0
+    if fit is not None:
+        _refuse_inverse(fit, "ziegler_nichols")
+        sign = math.copysign(1.0, fit.gain)
+        pos = ProcessFit(fit.kind, abs(fit.gain), fit.time_constants, fit.dead_time)
+        Ku, Pu = ultimate_point(pos)
+    else:
+        Ku, Pu = map(float, ultimate)
+        if not (Ku > 0 and Pu > 0 and math.isfinite(Ku) and math.isfinite(Pu)):
+            raise SettingsError(f"ziegler_nichols: Ku and Pu must be > 0; found {ultimate!r}.")
+    a, b, c = table[mode]
+    dummy = fit or ProcessFit.fopdt(1.0, 1.0)
+    return _loop(dummy, sign * a * Ku, b * Pu if b else math.inf, c * Pu, "ziegler_nichols",
+                 cv, mv, **loop_kw)
+
+
+def tune_loop(fit: ProcessFit, rule: str, **kw: Any) -> PIDLoop:
+    """Apply the rule called *rule* (``"simc"``, ``"imc"`` or ``"ziegler_nichols"``) to *fit*."""
+    fns = {"simc": simc, "imc": imc, "ziegler_nichols": ziegler_nichols}
+    if rule not in fns:
+        raise SettingsError(f"tune_loop: unknown rule {rule!r}{suggest(str(rule), RULES)}; "
+                            f"expected one of: {', '.join(RULES)}.")
+    return fns[rule](fit, **kw)
+
+
+# ---------------------------------------------------------------------------------- settings
+_SETTINGS_KEYS = ("loops", "pairs", "rule", "tau_c", "lam", "mode", "step_fraction",
+                  "test_duration", "fit", "setpoint_weight", "derivative_filter", "on_fresh")
+
+
+def _per_cv(v: Any, cv: str, what: str, key: str) -> Any:
+    if isinstance(v, Mapping):
+        return v.get(cv)
+    return v
+
+
+def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, str]], *,
+                   rule: str = "simc", fit: str = "auto", step_fraction: float = 0.05,
+                   test_duration: float | None = None, rule_options: Mapping[str, Any] | None = None,
+                   loop_options: Mapping[str, Any] | None = None,
+                   what: str = "tune_pid_loops") -> tuple[list[PIDLoop], list[ProcessFit]]:
+    """Step-test each (cv, mv) pair on the nonlinear *model*, fit, and apply *rule*.
+
+    The step is ``step_fraction`` of the MV's physical range (or of its value if the range is
+    unbounded), upwards unless that leaves the range.  ``test_duration`` defaults to five times
+    the slowest time constant of the linearized model plus its largest dead time (at least 20
+    samples; 50 samples for an integrating channel).  ``rule_options`` maps a CV name (or
+    ``"*"``) to keyword arguments of the rule (``tau_c``, ``lam``, ``mode``).
+    """
+    from ..linear import linearize
+
+    if rule not in RULES:
+        raise SettingsError(f"{what}: unknown rule {rule!r}{suggest(str(rule), RULES)}; expected "
+                            f"one of: {', '.join(RULES)}.")
+    if not (isinstance(step_fraction, (int, float)) and 0 < step_fraction <= 0.5):
+        raise SettingsError(f"{what}: step_fraction must be in (0, 0.5]; found {step_fraction!r}.")
+    lin = linearize(model, op)
+    loops, fits = [], []
+    lo, hi = model.bounds("mv")
+    rule_options = dict(rule_options or {})
+    for cv, mv in pairs:
+        j = model.mv_names.index(mv)
+        span = hi[j] - lo[j] if math.isfinite(hi[j] - lo[j]) else max(abs(op.u[j]), 1.0)
+        size = step_fraction * span
+        if op.u[j] + size > hi[j]:
+            size = -size
+        dur = test_duration
+        if dur is None:
+            ch = [p for p in lin.pairs() if p["cv"] == cv and p["mv"] == mv][0]
+            taus = ch["time_constants"]
+            integrating = any(abs(complex(p)) < 1e-9 for p in ch["poles"])
+            dur = 50 * Ts if integrating or not taus else 5 * max(taus) + ch["dead_time"]
+            dur = float(min(max(dur, 20 * Ts), 2000 * Ts))
+        data = step_test(model, op, mv, size=size, Ts=Ts, duration=dur)
+        f = fit_step(data, cv, kind=fit)
+        kw = dict(rule_options.get("*", {}))
+        kw.update(rule_options.get(cv, {}))
+        kw.update(loop_options or {})
+        try:
+            loops.append(tune_loop(f, rule, cv=cv, mv=mv, **kw))
+        except SettingsError as exc:
+            raise SettingsError(f"{what}: loop {cv}<-{mv}: {exc}") from None
+        fits.append(f)
+    return loops, fits
+
+
+def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any], *,
+                      what: str = "pid") -> Any:
+    """A :class:`mpcproto.control.pid.PIDController` from a plain settings dict.
+
+    Keys (all optional)
+    -------------------
+    ``loops``          list of loop specs (see :mod:`mpcproto.control.pid`); a loop that gives
+                       ``gain`` is used as is, one without is tuned by the rule
+    ``pairs``          list of ``[cv, mv]`` or a table ``{cv = mv}``; default: from ``loops``,
+                       else :func:`mpcproto.control.pid.suggest_pairing` (RGA)
+    ``rule``           ``"simc"`` (default), ``"imc"`` or ``"ziegler_nichols"``
+    ``tau_c``          SIMC closed-loop time constant: a number or a table per CV
+    ``lam``            IMC filter time constant: a number or a table per CV
+    ``mode``           ``"PID"``/``"PI"`` (IMC, Ziegler-Nichols), a string or a table per CV
+    ``fit``            ``"auto"`` (default), ``"fopdt"``, ``"sopdt"``, ``"integrating"``
+    ``step_fraction``  step-test size as a fraction of the MV range (default 0.05)
+    ``test_duration``  step-test length (default: from the linearized model)
+    ``setpoint_weight``, ``derivative_filter``, ``on_fresh``: applied to every tuned loop
+    """
+    from .pid import PIDController, pid_loop_from_spec, suggest_pairing
+
+    if not isinstance(settings, Mapping):
+        raise SettingsError(f"{what}: PID settings must be a table; found {settings!r}.")
+    for k in settings:
+        if k not in _SETTINGS_KEYS:
+            raise SettingsError(f"{what}: unknown key '{k}'{suggest(str(k), _SETTINGS_KEYS)}; "
+                                f"allowed keys: {', '.join(_SETTINGS_KEYS)}.")
+    given: dict[tuple[str, str], PIDLoop] = {}
+    to_tune: list[tuple[str, str]] = []
+    loop_specs = settings.get("loops")
+    if loop_specs is not None:
+        if not isinstance(loop_specs, (list, tuple)):
+            raise SettingsError(f"{what}.loops: expected a list of loop tables; found {loop_specs!r}.")
+        for i, spec in enumerate(loop_specs):
+            if isinstance(spec, Mapping) and "gain" not in spec:
+                for k in ("cv", "mv"):
+                    if k not in spec:
+                        raise SettingsError(f"{what}.loops[{i}]: needs '{k}'.")
+                to_tune.append((spec["cv"], spec["mv"]))
+            else:
+                lp = pid_loop_from_spec(spec, what=f"{what}.loops[{i}]")
+                given[(lp.cv, lp.mv)] = lp
+    pairs_spec = settings.get("pairs")
+    if pairs_spec is not None:
+        if isinstance(pairs_spec, Mapping):
+            pairs = [(str(c), str(m)) for c, m in pairs_spec.items()]
+        elif isinstance(pairs_spec, (list, tuple)) and all(
+                isinstance(p, (list, tuple)) and len(p) == 2 for p in pairs_spec):
+            pairs = [(str(c), str(m)) for c, m in pairs_spec]
+        else:
+            raise SettingsError(f"{what}.pairs: expected a list of [cv, mv] pairs or a table "
+                                f"{{cv = mv}}; found {pairs_spec!r}.")
+        to_tune += [p for p in pairs if p not in given and p not in to_tune]
+    elif loop_specs is None:
+        from ..linear import linearize
+
+        to_tune = suggest_pairing(linearize(model, op)).pairs
+    for i, (c, m) in enumerate(to_tune):
+        for v, names, role in ((c, model.cv_names, "CV"), (m, model.mv_names, "MV")):
+            if v not in names:
+                raise SettingsError(f"{what}: pair {i} ({c}, {m}): '{v}' is not a {role} of model "
+                                    f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.")
+    rule = settings.get("rule", "simc")
+    ropts: dict[str, dict[str, Any]] = {}
+    for c, _ in to_tune:
+        kw: dict[str, Any] = {}
+        for key in ("tau_c", "lam", "mode"):
+            if key in settings:
+                v = _per_cv(settings[key], c, what, key)
+                if v is not None:
+                    kw[key] = v
+        ropts[c] = kw
+    lopts = {k: settings[k] for k in ("setpoint_weight", "derivative_filter", "on_fresh")
+             if k in settings}
+    tuned: list[PIDLoop] = []
+    if to_tune:
+        tuned, _ = tune_pid_loops(model, op, Ts, to_tune, rule=rule, fit=settings.get("fit", "auto"),
+                                  step_fraction=settings.get("step_fraction", 0.05),
+                                  test_duration=settings.get("test_duration"), rule_options=ropts,
+                                  loop_options=lopts, what=what)
+    return PIDController.for_model(model, list(given.values()) + tuned)
