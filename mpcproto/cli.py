@@ -7,6 +7,9 @@ Commands
 ``mpcproto linearize SCENARIO.toml [--json] [--model plant|controller]``
     Operating point, continuous and discrete matrices, steady-state gains, poles, transmission
     zeros, RGA (square systems) and a per-pair view.
+``mpcproto check SCENARIO.toml...``
+    Validate scenario files as deeply as possible without running them (models, operating point,
+    names, signal specs, controllers, every study case).
 ``mpcproto run SCENARIO.toml --out DIR``
     Run the scenario's nominal case; write DIR/summary.json, DIR/trajectories_<controller>.csv and
     PNG plots.
@@ -166,6 +169,20 @@ def _cmd_linearize(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# ----------------------------------------------------------------------------------------- check
+def _cmd_check(args: argparse.Namespace) -> int:
+    from .scenario import check_scenario, count_cases, load_scenario
+
+    for path in args.scenarios:
+        scn = load_scenario(path)
+        check_scenario(scn, build_controllers=not args.no_controllers)
+        n, nf = count_cases(scn), count_cases(scn, full=True)
+        print(f"ok: {path}: scenario {scn.name}, model {scn.data['plant']['model']}, "
+              f"{len(scn.data['controllers'])} controller(s), {len(scn.data['criteria'])} "
+              f"criteria, {n} case(s) ({nf} with --full)")
+    return EXIT_OK
+
+
 # ----------------------------------------------------------------------------------------- run
 def _cmd_run(args: argparse.Namespace) -> int:
     from .scenario import load_scenario, run_scenario
@@ -209,6 +226,12 @@ def build_parser() -> argparse.ArgumentParser:
     lz.add_argument("--model", choices=("plant", "controller"), default="plant",
                     help="linearize the plant (default) or the controller's model")
     lz.set_defaults(handler=_cmd_linearize)
+
+    ck = sub.add_parser("check", help="validate scenario files without running them")
+    ck.add_argument("scenarios", nargs="+", metavar="SCENARIO.toml")
+    ck.add_argument("--no-controllers", action="store_true",
+                    help="do not build the controllers (faster; their settings are not checked)")
+    ck.set_defaults(handler=_cmd_check)
 
     r = sub.add_parser("run", help="run a scenario's nominal case and check its criteria")
     r.add_argument("scenario", metavar="SCENARIO.toml")

@@ -109,13 +109,16 @@ def check_names(scn: Scenario, model: Model, section: str, role: str | tuple[str
                 entries: Mapping[str, Any]) -> None:
     """Every key of *entries* must be a variable of *model* with one of the given roles."""
     roles = (role,) if isinstance(role, str) else role
+    words = [r.upper() if r != "state" else r for r in roles]
+    what = " or ".join(words)
+    article = "an" if words[0] in ("MV",) or words[0][0] in "aeiou" else "a"
     names: list[str] = []
     for r in roles:
         names += list(_names(model, r))
     for k in entries:
         if k not in names:
             raise ScenarioError(
-                f"expected the name of a {' or '.join(r.upper() if r != 'state' else r for r in roles)} "
+                f"expected the name of {article} {what} "
                 f"of model '{model.name}' ({', '.join(names) or 'none'}); found '{k}'"
                 f"{suggest(k, names)}.", file=scn.file, key=f"{section}.{k}")
 

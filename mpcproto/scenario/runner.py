@@ -63,12 +63,20 @@ def settings_error(err: Exception, scn: Scenario, base_key: str, spec: Any = Non
         keys = list(spec)
     elif isinstance(spec, list):
         keys = [k for s in spec if isinstance(s, Mapping) for k in s]
-    for m in _QUOTED.finditer(msg):
-        if m.group(1) in keys:
-            key = f"{base_key}.{m.group(1)}"
-            break
-    if msg.startswith(base_key + ":"):
-        msg = msg[len(base_key) + 1:].strip()
+    named = re.search(r"\bkey '([A-Za-z_][A-Za-z0-9_]*)'", msg)
+    if named:
+        key = f"{base_key}.{named.group(1)}"
+    else:
+        for m in _QUOTED.finditer(msg):
+            if m.group(1) in keys:
+                key = f"{base_key}.{m.group(1)}"
+                break
+        else:
+            if "kind" in keys and re.search(r"\bkind\b", msg):
+                key = f"{base_key}.kind"
+    m = re.match(re.escape(base_key) + r"(?:\[\d+\])?(?: (\([^)]*\)))?:\s*", msg)
+    if m:
+        msg = ((m.group(1) + " ") if m.group(1) else "") + msg[m.end():]
     return ScenarioError(msg, file=scn.file, key=key)
 
 
@@ -184,7 +192,7 @@ def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None
         role, names = ("cv", plant.cv_names) if f.on_sensor else ("mv", plant.mv_names)
         if f.variable not in names:
             raise ScenarioError(
-                f"expected a {role.upper()} of model '{plant.name}' for a {f.kind} fault "
+                f"expected {'an' if role == 'mv' else 'a'} {role.upper()} of model '{plant.name}' for a {f.kind} fault "
                 f"({', '.join(names)}); found '{f.variable}'{suggest(f.variable, names)}.",
                 file=scn.file, key=f"faults.{k}.variable")
         faults.append(f)
