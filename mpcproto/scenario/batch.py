@@ -510,5 +510,223 @@ def _stop_pool(ex: Executor) -> None:
 
 
 # ------------------------------------------------------------------------------------------ CLI
-def register_cli(subparsers) -> None:  # pragma: no cover - filled in below
-    raise NotImplementedError
+EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
+
+
+def register_cli(subparsers) -> None:
+    """Add the ``batch`` sub-command to the ``mpcproto`` argument parser.
+
+    Parameters
+    ----------
+    subparsers
+        The object returned by ``ArgumentParser.add_subparsers()``.
+    """
+    b = subparsers.add_parser(
+        "batch", help="run every case of one or more studies in parallel, with CI verdicts",
+        description="Run every case (sweeps x Monte Carlo draws) of the given scenario files on a "
+                    "local process pool or a Dask cluster. One JSON line per finished case is "
+                    "appended to DIR/results.jsonl; DIR/summary.csv and DIR/report.html are written "
+                    "at the end. Exit code 0: every case passed; 1: a criterion failed, a case did "
+                    "not complete or a KPI got worse than the baseline; 2: bad input. Simulation "
+                    "only: a real plant needs its own independent safety systems, management of "
+                    "change, local codes and licensed engineers.")
+    b.add_argument("paths", nargs="+", metavar="PATH",
+                   help="scenario files (.toml) or directories of them")
+    b.add_argument("--out", required=True, metavar="DIR", help="output directory (created)")
+    where = b.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=int, default=None, metavar="N",
+                       help="worker processes of the local pool (default: the available CPUs)")
+    where.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="run on a running Dask scheduler, e.g. tcp://host:8786 (needs the "
+                            "optional extra: pip install \"mpcproto[dask]\")")
+    b.add_argument("--resume", action="store_true",
+                   help="keep DIR/results.jsonl and run only the cases missing from it")
+    b.add_argument("--full", action="store_true",
+                   help="use the studies' full Monte Carlo sizes and sweep values (default: the "
+                        "CI-sized study)")
+    b.add_argument("--junit", default=None, metavar="FILE",
+                   help="also write JUnit XML: one test case per case and criterion")
+    b.add_argument("--baseline", default=None, metavar="RESULTS.jsonl",
+                   help="compare with an earlier run's results.jsonl; KPIs worse beyond the "
+                        "tolerance fail the batch")
+    b.add_argument("--tolerance", type=float, default=0.05, metavar="REL",
+                   help="relative tolerance of the baseline comparison (default 0.05 = 5 %%)")
+    b.add_argument("--abs-tolerance", type=float, default=1e-9, metavar="ABS",
+                   help="absolute tolerance of the baseline comparison, in each KPI's unit "
+                        "(default 1e-9)")
+    b.add_argument("--no-trajectories", action="store_true",
+                   help="do not re-run the worst case of each scenario for trajectory plots in "
+                        "the report")
+    b.set_defaults(handler=_cmd_batch)
+
+
+def _scenario_files(paths: Iterable[str]) -> list[Path]:
+    from ..exceptions import ScenarioError  # noqa: PLC0415
+
+    files: list[Path] = []
+    for raw in paths:
+        p = Path(raw)
+        if p.is_dir():
+            found = sorted(p.glob("*.toml"))
+            if not found:
+                raise ScenarioError(f"expected a scenario file (.toml) or a directory holding some; "
+                                    f"found a directory with no .toml file.", file=str(p))
+            files.extend(found)
+        elif p.is_file():
+            files.append(p)
+        else:
+            raise ScenarioError("expected a scenario file (.toml) or a directory of them; found no "
+                                "such file or directory.", file=str(p))
+    unique: list[Path] = []
+    for f in files:
+        if f.resolve() not in {u.resolve() for u in unique}:
+            unique.append(f)
+    return unique
+
+
+def _load_cases(files: list[Path], full: bool) -> tuple[list[Any], dict[str, Any]]:
+    from ..exceptions import ScenarioError  # noqa: PLC0415
+    from . import check_scenario, expand, load_scenario  # noqa: PLC0415
+
+    cases: list[Any] = []
+    owner: dict[str, str] = {}
+    scenarios: dict[str, Any] = {}
+    for f in files:
+        scn = load_scenario(f)
+        check_scenario(scn, build_controllers=True)
+        for c in expand(scn, full=full):
+            if c.case_id in owner:
+                raise ScenarioError(
+                    f"case id {c.case_id!r} also comes from {owner[c.case_id]}; case ids must be "
+                    "unique across a batch: give the scenarios distinct names "
+                    "([scenario] name = ...).", file=str(f), key="scenario.name")
+            owner[c.case_id] = str(f)
+            cases.append(c)
+        scenarios[scn.name] = scn
+    return cases, scenarios
+
+
+def _worst_case_images(records: list[dict[str, Any]], cases: list[Any], limit: int = 4
+                       ) -> list[tuple[str, bytes]]:
+    """Re-run the worst completed case of each scenario (same seed, same numbers) and plot it."""
+    import tempfile  # noqa: PLC0415
+
+    from ..report.html import sort_worst_first  # noqa: PLC0415
+
+    try:
+        from ..report import plots  # noqa: PLC0415
+        from .runner import _run  # noqa: PLC0415 - the runner's (record, trajectories) form
+    except ImportError:
+        return []
+    by_id = {case_id_of(c): c for c in cases}
+    picked: dict[str, dict[str, Any]] = {}
+    for rec in sort_worst_first(records):
+        scen = str(rec.get("scenario", ""))
+        if scen not in picked and verdict(rec) != "error" and rec.get("case_id") in by_id:
+            picked[scen] = rec
+    images: list[tuple[str, bytes]] = []
+    with tempfile.TemporaryDirectory() as tmp:
+        for scen, rec in list(picked.items())[:limit]:
+            cid = rec["case_id"]
+            try:
+                _, trajs = _run(by_id[cid])
+                if not trajs:
+                    continue
+                png = Path(tmp) / f"{len(images)}.png"
+                if len(trajs) > 1:
+                    plots.plot_comparison(dict(trajs), png, title=f"{scen}: {cid}")
+                else:
+                    (label, traj), = trajs.items()
+                    plots.plot_trajectory(traj, png, title=f"{scen}: {cid} ({label})")
+                images.append((f"{scen}: the case closest to (or beyond) a limit, {cid} "
+                               f"({verdict(rec)})", png.read_bytes()))
+            except Exception as exc:  # noqa: BLE001 - a figure must not sink the report
+                warnings.warn(f"no trajectory plot for case {cid}: {type(exc).__name__}: {exc}",
+                              RuntimeWarning, stacklevel=2)
+    return images
+
+
+def _cmd_batch(args) -> int:
+    """Handler of ``mpcproto batch`` (exit codes: 0 pass, 1 fail/error/regression, 2 bad input)."""
+    from ..exceptions import ScenarioError  # noqa: PLC0415
+    from ..report.baseline import compare_with_baseline  # noqa: PLC0415
+    from ..report.html import write_html_report  # noqa: PLC0415
+    from ..report.junit import write_junit  # noqa: PLC0415
+    from ..report.summary import write_summary_csv  # noqa: PLC0415
+    from .executors import dask_executor  # noqa: PLC0415
+
+    if args.workers is not None and args.workers < 1:
+        raise SettingsError(f"The '--workers' option must be an int in the range [1, inf). "
+                            f"Got {args.workers} instead.")
+    for opt in ("tolerance", "abs_tolerance"):
+        v = getattr(args, opt)
+        if not (math.isfinite(v) and v >= 0):
+            raise SettingsError(f"The '--{opt.replace('_', '-')}' option must be a finite number "
+                                f">= 0. Got {v} instead.")
+    if args.baseline is not None and not Path(args.baseline).is_file():
+        raise ScenarioError("expected the results.jsonl of an earlier batch (--baseline); found no "
+                            "such file.", file=args.baseline)
+    files = _scenario_files(args.paths)
+    cases, _ = _load_cases(files, args.full)
+    ids = [case_id_of(c) for c in cases]
+    out_dir = Path(args.out)
+    print(f"mpcproto batch: {len(cases)} cases from {len(files)} scenario file(s) -> {out_dir}",
+          file=sys.stderr)
+    try:
+        if args.scheduler:
+            try:
+                dask_cm = dask_executor(args.scheduler)
+                ex = dask_cm.__enter__()
+            except ImportError as exc:
+                print(f"mpcproto batch: error: {exc}", file=sys.stderr)
+                return EXIT_BAD_INPUT
+            try:
+                outcome = run_batch(cases, out_dir, executor=ex, resume=args.resume)
+            finally:
+                dask_cm.__exit__(None, None, None)
+            where = f"Dask scheduler {args.scheduler}"
+        else:
+            outcome = run_batch(cases, out_dir, workers=args.workers, resume=args.resume)
+            where = f"{args.workers or 'all'} local worker(s)"
+    except KeyboardInterrupt:
+        done = sum(1 for _ in iter_results(out_dir / RESULTS_FILE)) \
+            if (out_dir / RESULTS_FILE).exists() else 0
+        print(f"\nmpcproto batch: interrupted; {done} finished case(s) are kept in "
+              f"{out_dir / RESULTS_FILE}. Run the same command with --resume to finish the rest.",
+              file=sys.stderr)
+        return EXIT_INTERRUPTED
+
+    records = load_results(outcome.results_path, ids)
+    write_summary_csv(outcome.results_path, out_dir / "summary.csv", ids=ids)
+    comparison = None
+    if args.baseline:
+        comparison = compare_with_baseline(records, args.baseline, rtol=args.tolerance,
+                                           atol=args.abs_tolerance)
+        comparison.baseline_file = str(args.baseline)
+    if args.junit:
+        write_junit(records, args.junit, baseline=comparison)
+    images = [] if args.no_trajectories else _worst_case_images(records, cases)
+    info = {"run on": where, "wall time": f"{outcome.wall_s:.1f} s"}
+    if outcome.skipped:
+        info["resumed"] = f"{outcome.skipped} case(s) kept from an earlier run"
+    title = "Closed-loop study: " + ", ".join(sorted({str(r.get("scenario")) for r in records}))
+    write_html_report(records, out_dir / "report.html", title=title, run_info=info,
+                      baseline=comparison, images=images)
+
+    n_reg = len(comparison.regressions) if comparison else 0
+    print(f"{outcome.passed} passed, {outcome.failed} failed a criterion, {outcome.errors} did not "
+          f"complete" + (f", {n_reg} KPI(s) worse than the baseline" if comparison else "")
+          + f" ({outcome.total} cases, {outcome.ran} run now, {outcome.wall_s:.1f} s)")
+    for cid in outcome.error_ids[:10]:
+        rec = next((r for r in records if r.get("case_id") == cid), {})
+        print(f"  error  {cid}: {rec.get('message', '')}")
+    for cid in outcome.failed_ids[:10]:
+        print(f"  FAIL   {cid}")
+    if comparison:
+        for r in comparison.regressions[:10]:
+            print(f"  WORSE  {r.describe()}")
+    print(f"results: {outcome.results_path}  summary: {out_dir / 'summary.csv'}  "
+          f"report: {out_dir / 'report.html'}" + (f"  junit: {args.junit}" if args.junit else ""))
+    from ..report.html import SAFETY_CAUTION  # noqa: PLC0415
+    print(SAFETY_CAUTION)
+    return EXIT_OK if (outcome.success and n_reg == 0) else EXIT_FAILED
