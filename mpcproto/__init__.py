@@ -5,6 +5,8 @@ Model (layer 1)
 Operating points and linear models (layer 2)
     OperatingPoint, LinearModel, DiscreteLinearModel, linearize, rga,
     steady_states, steady_state, solve_targets, TargetResult
+Open-loop tests (layer 2)
+    open_loop_test, plot_response_test, linearity_sweep, ResponseTest
 Built-in models (layer 1)
     models, make_model, available_models, transfer_matrix_model, TransferElement
 Controller protocol (layer 3)
@@ -21,6 +23,7 @@ from .model import Model, Variable, Delay
 from .operating import OperatingPoint, TargetResult, steady_states, steady_state, solve_targets
 from .linear import LinearModel, DiscreteLinearModel, linearize, rga
 from .control.base import Controller, Measurement, Targets, ControlOutput
+from .responses import ResponseTest, open_loop_test, plot_response_test, linearity_sweep
 from . import models
 from .models import TransferElement, transfer_matrix_model
 
@@ -36,5 +39,6 @@ __all__ = [
     "OperatingPoint", "LinearModel", "DiscreteLinearModel", "linearize", "rga",
     "Controller", "Measurement", "Targets", "ControlOutput",
     "TargetResult", "steady_states", "steady_state", "solve_targets",
+    "ResponseTest", "open_loop_test", "plot_response_test", "linearity_sweep",
     "models", "make_model", "available_models", "transfer_matrix_model", "TransferElement",
 ]
