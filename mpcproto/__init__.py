@@ -11,6 +11,16 @@ Built-in models (layer 1)
     models, make_model, available_models, transfer_matrix_model, TransferElement
 Controller protocol (layer 3)
     Controller, Measurement, Targets, ControlOutput
+PID loops and tuning (layer 3)
+    PIDLoop, PIDController, pid_loop_from_spec, pid_from_settings, suggest_pairing, ProcessFit,
+    StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating, fit_step, ultimate_point, simc,
+    imc, ziegler_nichols, tune_loop, tune_pid_loops
+Closed-loop simulation (layer 4)
+    simulate, ClosedLoop, Plant, OpenLoop, Signal, signal_from_spec, Instrument, Actuator, Fault,
+    instrument_from_spec, actuator_from_spec, fault_from_spec
+Trajectory and analysis (layer 5)
+    Trajectory, cv_performance, mv_usage, kpis, violations, controller_health, summarize,
+    compare, Comparison
 Errors
     MpcprotoError and its subclasses
 """
@@ -26,6 +36,15 @@ from .control.base import Controller, Measurement, Targets, ControlOutput
 from .responses import ResponseTest, open_loop_test, plot_response_test, linearity_sweep
 from . import models
 from .models import TransferElement, transfer_matrix_model
+from .trajectory import Trajectory
+from .sim import (Signal, signal_from_spec, Instrument, Actuator, Fault, instrument_from_spec,
+                  actuator_from_spec, fault_from_spec, Plant, ClosedLoop, simulate, OpenLoop)
+from .analysis import cv_performance, mv_usage, kpis, violations, controller_health, summarize
+from .control.pid import PIDLoop, PIDController, pid_loop_from_spec, pid_from_settings, suggest_pairing
+from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating,
+                             fit_step, ultimate_point, simc, imc, ziegler_nichols, tune_loop,
+                             tune_pid_loops)
+from .compare import compare, Comparison
 
 make_model = models.make
 available_models = models.available
@@ -41,4 +60,12 @@ __all__ = [
     "TargetResult", "steady_states", "steady_state", "solve_targets",
     "ResponseTest", "open_loop_test", "plot_response_test", "linearity_sweep",
     "models", "make_model", "available_models", "transfer_matrix_model", "TransferElement",
+    "Trajectory", "Signal", "signal_from_spec", "Instrument", "Actuator", "Fault",
+    "instrument_from_spec", "actuator_from_spec", "fault_from_spec", "Plant", "ClosedLoop",
+    "simulate", "OpenLoop",
+    "cv_performance", "mv_usage", "kpis", "violations", "controller_health", "summarize",
+    "PIDLoop", "PIDController", "pid_loop_from_spec", "pid_from_settings", "suggest_pairing",
+    "ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating", "fit_step",
+    "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",
+    "compare", "Comparison",
 ]

@@ -1,0 +1,171 @@
+"""Run the same scenario with several controllers and put their KPIs side by side.
+
+Every controller sees the same plant, the same disturbances and the same measurement-noise
+sequence: each run is started from the same seed (see :mod:`mpcproto.sim.closed_loop`), so the
+differences in the scorecard come from the controllers alone.
+
+Example
+-------
+``compare(plant, {"mpc": mpc, "pid": pid}, op=op, Ts=10, duration=3600, rng=7, dvs=...)``
+returns a :class:`Comparison`; ``comparison.scorecard_text()`` prints the table and
+``comparison.plot(out_dir)`` writes the PNG figures.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .analysis import summarize
+from .exceptions import SettingsError
+from .trajectory import Trajectory
+
+__all__ = ["compare", "Comparison", "scorecard"]
+
+_CV_KPIS = ("iae", "ise", "itae", "settling_time", "overshoot", "max_abs_error")
+_MV_KPIS = ("total_travel", "time_at_limit")
+_SOLVER = ("failures", "fallbacks", "slow_steps", "median_solve_ms", "p95_solve_ms", "worst_fraction")
+
+
+def scorecard(summaries: Mapping[str, Mapping[str, Any]]) -> list[dict[str, Any]]:
+    """Rows ``{"group", "variable", "metric", <label>: value, ...}`` from per-controller summaries.
+
+    Groups: ``cv`` (per CV KPIs), ``mv`` (per MV travel and time at a limit), ``violations``
+    (count, total integral and worst peak excess per CV), ``solver`` (health figures) and ``run``
+    (status).  Lower is better for every numeric row.
+    """
+    labels = list(summaries)
+    if not labels:
+        raise SettingsError("scorecard: no controller summaries given.")
+    first = summaries[labels[0]]
+    rows: list[dict[str, Any]] = []
+    for cv in first["kpi"]["cv"]:
+        for k in _CV_KPIS:
+            rows.append({"group": "cv", "variable": cv, "metric": k,
+                         **{lb: summaries[lb]["kpi"]["cv"].get(cv, {}).get(k) for lb in labels}})
+    for mv in first["kpi"]["mv"]:
+        for k in _MV_KPIS:
+            rows.append({"group": "mv", "variable": mv, "metric": k,
+                         **{lb: summaries[lb]["kpi"]["mv"].get(mv, {}).get(k) for lb in labels}})
+    for cv in first["kpi"]["cv"]:
+        for k in ("events", "integral", "peak_excess"):
+            vals = {}
+            for lb in labels:
+                ev = [e for e in summaries[lb]["violations"] if e["variable"] == cv]
+                vals[lb] = (len(ev) if k == "events" else
+                            float(sum(e["integral"] for e in ev)) if k == "integral" else
+                            float(max((e["peak_excess"] for e in ev), default=0.0)))
+            rows.append({"group": "violations", "variable": cv, "metric": k, **vals})
+    for k in _SOLVER:
+        rows.append({"group": "solver", "variable": "", "metric": k,
+                     **{lb: summaries[lb]["solver"].get(k) for lb in labels}})
+    rows.append({"group": "run", "variable": "", "metric": "status",
+                 **{lb: summaries[lb].get("run", {}).get("status") for lb in labels}})
+    return rows
+
+
+def _fmt(v: Any) -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, str):
+        return v
+    if isinstance(v, (int, np.integer)):
+        return str(int(v))
+    v = float(v)
+    if not math.isfinite(v):
+        return "-"
+    return f"{v:.4g}"
+
+
+@dataclass
+class Comparison:
+    """The runs of a comparison: trajectories and summaries by controller label."""
+
+    trajectories: dict[str, Trajectory]
+    summaries: dict[str, dict[str, Any]]
+    seed: Any = None
+    meta: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def labels(self) -> list[str]:
+        return list(self.trajectories)
+
+    def scorecard(self) -> list[dict[str, Any]]:
+        return scorecard(self.summaries)
+
+    def scorecard_text(self) -> str:
+        """The scorecard as an aligned plain-text table (lower is better)."""
+        rows = self.scorecard()
+        head = ["group", "variable", "metric", *self.labels]
+        body = [[r["group"], r["variable"], r["metric"], *(_fmt(r[lb]) for lb in self.labels)]
+                for r in rows]
+        widths = [max(len(str(x)) for x in col) for col in zip(head, *body)]
+        line = lambda cells: "  ".join(str(c).ljust(w) for c, w in zip(cells, widths))  # noqa: E731
+        return "\n".join([line(head), line(["-" * w for w in widths])] + [line(b) for b in body])
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-able: per-label summaries plus the scorecard rows."""
+        return {"seed": self.seed, "controllers": self.summaries, "scorecard": self.scorecard(),
+                **self.meta}
+
+    def plot(self, out_dir: str | Path, *, stem: str = "comparison",
+             title: str | None = None) -> list[Path]:
+        """CV and MV figures of every run overlaid (see :func:`mpcproto.report.plot_comparison`)."""
+        from .report.plots import plot_comparison
+
+        return plot_comparison(self.trajectories, out_dir, stem=stem, title=title)
+
+    def save_csv(self, out_dir: str | Path) -> list[Path]:
+        """One ``trajectory_<label>.csv`` per run."""
+        out = Path(out_dir)
+        return [tr.to_csv(out / f"trajectory_{lb}.csv") for lb, tr in self.trajectories.items()]
+
+
+def compare(plant_model: Any, controllers: Mapping[str, Any] | Sequence[Any], *, op: Any,
+            Ts: float, duration: float, rng: int | np.random.SeedSequence | None = 0,
+            summary_options: Mapping[str, Any] | None = None, **sim_kwargs: Any) -> Comparison:
+    """Run :func:`mpcproto.sim.simulate` once per controller with identical inputs and seed.
+
+    Parameters
+    ----------
+    controllers : mapping label -> controller, or a sequence (labels from ``controller.name``)
+    rng : int or SeedSequence
+        The one seed every run starts from (a Generator is refused: it would give each run a
+        different stream).
+    summary_options : mapping, optional
+        Keyword arguments of :func:`mpcproto.analysis.summarize` (bands, tolerance...).
+    **sim_kwargs
+        Every other keyword of :class:`mpcproto.sim.ClosedLoop` (dvs, setpoints, instruments...).
+    """
+    from .sim.closed_loop import simulate
+
+    if isinstance(rng, np.random.Generator):
+        raise SettingsError("compare: rng must be an int seed or a SeedSequence so that every "
+                            "controller sees the same noise; got a Generator.")
+    if not isinstance(controllers, Mapping):
+        items: dict[str, Any] = {}
+        for c in controllers:
+            lb = str(getattr(c, "name", type(c).__name__))
+            if lb in items:
+                raise SettingsError(f"compare: two controllers are named '{lb}'; pass a mapping "
+                                    f"{{label: controller}} with distinct labels.")
+            items[lb] = c
+        controllers = items
+    if not controllers:
+        raise SettingsError("compare: give at least one controller.")
+    trajs: dict[str, Trajectory] = {}
+    sums: dict[str, dict[str, Any]] = {}
+    for label, ctl in controllers.items():
+        seed = rng if not isinstance(rng, np.random.SeedSequence) else np.random.SeedSequence(
+            rng.entropy, spawn_key=rng.spawn_key)
+        tr = simulate(plant_model, ctl, op=op, Ts=Ts, duration=duration, rng=seed, **sim_kwargs)
+        tr.meta["controller"] = str(label)
+        trajs[str(label)] = tr
+        sums[str(label)] = summarize(tr, **dict(summary_options or {}))
+    return Comparison(trajectories=trajs, summaries=sums,
+                      seed=rng if isinstance(rng, (int, type(None))) else str(rng))
