@@ -108,6 +108,16 @@ def _style_axes(ax) -> None:
     ax.tick_params(colors=COLOURS["ink"], labelsize=9)
 
 
+def _kpi_groups(kpi: Any) -> dict[str, dict[str, Mapping[str, Any]]]:
+    """``{"cv": {var: {kpi: value}}, "mv": {...}}`` from a KPI block, nested by role or not."""
+    if not isinstance(kpi, Mapping):
+        return {}
+    if kpi and all(isinstance(v, Mapping) and v and all(isinstance(x, Mapping) for x in v.values())
+                   for v in kpi.values()):
+        return {str(role): dict(v) for role, v in kpi.items()}
+    return {"": {str(k): v for k, v in kpi.items() if isinstance(v, Mapping)}}
+
+
 # ------------------------------------------------------------------------------------------- charts
 def _chart_verdicts(by_scen: Mapping[str, Counter]) -> bytes:
     from matplotlib.figure import Figure  # noqa: PLC0415
@@ -178,8 +188,9 @@ def _chart_iae(scen: str, recs: Sequence[Mapping[str, Any]], max_cvs: int = 4) -
         if case_verdict(rec) == "error":
             continue
         for ctl, res in (rec.get("controllers") or {}).items():
-            for var, k in ((res or {}).get("kpi") or {}).items():
-                v = k.get("iae") if isinstance(k, Mapping) else None
+            groups = _kpi_groups((res or {}).get("kpi"))
+            for var, k in groups.get("cv", groups.get("", {})).items():
+                v = k.get("iae")
                 if isinstance(v, (int, float)) and math.isfinite(v):
                     data[var][str(ctl)].append(float(v))
     cvs = [cv for cv in data if data[cv]][:max_cvs]
@@ -319,22 +330,23 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
                    f'{" (" + _e(rec["error_at"]) + ")" if rec.get("error_at") else ""}</p></div>')
         return "".join(out)
     ctls = rec.get("controllers") or {}
-    kpi_names: list[str] = []
-    variables: list[str] = []
+    roles: dict[str, tuple[list[str], list[str]]] = {}   # role -> (variables, kpi names)
     for res in ctls.values():
-        for var, k in ((res or {}).get("kpi") or {}).items():
-            if var not in variables:
-                variables.append(var)
-            if isinstance(k, Mapping):
-                for name in k:
-                    if name not in kpi_names:
+        for role, table in _kpi_groups((res or {}).get("kpi")).items():
+            variables, kpi_names = roles.setdefault(role, ([], []))
+            for var, k in table.items():
+                if var not in variables:
+                    variables.append(var)
+                for name, val in k.items():
+                    if name not in kpi_names and (val is None or isinstance(val, (int, float))):
                         kpi_names.append(name)
-    if variables:
+    for role, (variables, kpi_names) in roles.items():
         head = "".join(f'<th class="num">{_e(k.replace("_", " "))}</th>' for k in kpi_names)
-        rows = [f"<table><tr><th>variable</th><th>controller</th>{head}</tr>"]
+        rows = [f'<table style="margin-top:6px"><tr><th>{_e(role.upper() or "variable")}</th>'
+                f"<th>controller</th>{head}</tr>"]
         for var in variables:
             for ctl, res in ctls.items():
-                k = ((res or {}).get("kpi") or {}).get(var)
+                k = _kpi_groups((res or {}).get("kpi")).get(role, {}).get(var)
                 if not isinstance(k, Mapping):
                     continue
                 cells = "".join(f'<td class="num">{_num(k.get(n))}</td>' for n in kpi_names)

@@ -632,14 +632,12 @@ def _worst_case_images(records: list[dict[str, Any]], cases: list[Any], limit: i
                 _, trajs = _run(by_id[cid])
                 if not trajs:
                     continue
-                png = Path(tmp) / f"{len(images)}.png"
-                if len(trajs) > 1:
-                    plots.plot_comparison(dict(trajs), png, title=f"{scen}: {cid}")
-                else:
-                    (label, traj), = trajs.items()
-                    plots.plot_trajectory(traj, png, title=f"{scen}: {cid} ({label})")
-                images.append((f"{scen}: the case closest to (or beyond) a limit, {cid} "
-                               f"({verdict(rec)})", png.read_bytes()))
+                stem = Path(tmp) / f"{len(images)}"
+                plots.plot_cvs(dict(trajs), f"{stem}_cvs.png", title=f"{scen}: {cid}")
+                plots.plot_mvs(dict(trajs), f"{stem}_mvs.png", title=f"{scen}: {cid}")
+                what = f"{scen}: the case closest to (or beyond) a limit, {cid} ({verdict(rec)})"
+                images.append((what + ": CVs", Path(f"{stem}_cvs.png").read_bytes()))
+                images.append((what + ": MVs", Path(f"{stem}_mvs.png").read_bytes()))
             except Exception as exc:  # noqa: BLE001 - a figure must not sink the report
                 warnings.warn(f"no trajectory plot for case {cid}: {type(exc).__name__}: {exc}",
                               RuntimeWarning, stacklevel=2)
