@@ -15,6 +15,8 @@ PID loops and tuning (layer 3)
     PIDLoop, PIDController, pid_loop_from_spec, pid_from_settings, suggest_pairing, ProcessFit,
     StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating, fit_step, ultimate_point, simc,
     imc, ziegler_nichols, tune_loop, tune_pid_loops
+Predictive control (layer 3)
+    PredictiveController, DisturbanceEstimator, SteadyTarget
 Closed-loop simulation (layer 4)
     simulate, ClosedLoop, Plant, OpenLoop, Signal, signal_from_spec, Instrument, Actuator, Fault,
     instrument_from_spec, actuator_from_spec, fault_from_spec
@@ -45,6 +47,9 @@ from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sop
                              fit_step, ultimate_point, simc, imc, ziegler_nichols, tune_loop,
                              tune_pid_loops)
 from .compare import compare, Comparison
+from .control.mpc import PredictiveController
+from .control.estimator import DisturbanceEstimator
+from .control.steady_target import SteadyTarget
 
 make_model = models.make
 available_models = models.available
@@ -68,4 +73,5 @@ __all__ = [
     "ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating", "fit_step",
     "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",
     "compare", "Comparison",
+    "PredictiveController", "DisturbanceEstimator", "SteadyTarget",
 ]

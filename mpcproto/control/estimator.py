@@ -1,0 +1,319 @@
+"""Offset-free state estimation: a steady-state Kalman filter on a disturbance-augmented model.
+
+The controller model (deviation variables, sample time ``Ts``)::
+
+    x[k+1] = A x[k] + B u[k] + Bd d[k] + Bw w[k]
+    y[k]   = C x[k] + D u[k-1] + Dd d[k] + Cw w[k]            w[k+1] = w[k]
+
+is augmented with one constant disturbance state ``w_i`` per CV (Muske & Badgwell 2002;
+Pannocchia & Rawlings 2003 give the rank condition this construction satisfies).  Per CV the
+disturbance enters either
+
+``"output"``
+    as a bias on that CV (``Cw = I`` column): fast, the usual default, exact for a sensor offset;
+``"input"``
+    through the MVs, in the direction ``B @ pinv(G)[:, i]`` whose steady-state effect is a unit
+    change of CV *i* alone (G: steady-state MV gains): it moves through the process dynamics like a
+    load change, so an unmeasured feed disturbance is rejected faster and without the slow
+    open-loop tail of an output bias.
+
+The filter gain comes from the steady-state prior covariance of the augmented model
+(:func:`scipy.linalg.solve_discrete_are`).  When only some CVs report at a sample (analyzers), the
+gain for that subset is ``P C_S' (C_S P C_S' + R_S)^-1`` with the same steady-state prior ``P``.
+
+Late measurements
+-----------------
+A measurement carries ``taken_at``.  The estimator keeps the last ``history`` samples (prior
+estimate, inputs and every measurement used there).  A value taken at an earlier sample is stored
+at *that* sample (the sample nearest to ``taken_at``) and the filter is re-run from there to now,
+so the correction enters where the information belongs and is carried forward through the model
+rather than being compared with today's prediction.  Values older than the history are dropped and
+counted; non-finite values are rejected and flagged.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+import scipy.linalg as sla
+
+from ..exceptions import NotBuiltError, SettingsError
+from ..model import suggest
+
+__all__ = ["DisturbanceEstimator"]
+
+DISTURBANCE_MODELS = ("output", "input")
+_NOTHING: dict[str, Any] = {"rejected": (), "late": (), "too_old": ()}
+
+
+class DisturbanceEstimator:
+    """Steady-state Kalman filter for plant states plus one integrating disturbance per CV.
+
+    Parameters
+    ----------
+    dmodel : DiscreteLinearModel
+        The controller's model (deviation variables around ``dmodel.op``).
+    disturbance : mapping of CV name to {"output", "input"}, or str
+        Disturbance model per CV (a single string applies to every CV).  Default ``"output"``.
+    state_noise : float
+        Process noise variance on every plant state (delay states get none: they are exact).
+    disturbance_noise : mapping of CV name to float, or float
+        Variance of the per-sample change of each disturbance state: larger = faster integral action.
+    measurement_noise : mapping of CV name to float, or float
+        Measurement noise variance per CV (engineering units squared).
+    history : int
+        Samples kept for late measurements (longest analyzer delay in samples, plus margin).
+    feedforward : sequence of bool or None
+        Per DV, whether its measured value enters the model (False: treated as unknown, zero
+        deviation).  None: every DV whose value arrives finite.
+
+    Notes
+    -----
+    Call :meth:`build` before use.  After it, ``gain_`` (full measurement set), ``P_`` (prior
+    covariance), ``A_``, ``C_`` (augmented matrices) and ``Bw_``, ``Cw_`` are set.
+    """
+
+    def __init__(self, dmodel, *, disturbance: Mapping[str, str] | str = "output",
+                 state_noise: float = 1e-4, disturbance_noise: Mapping[str, float] | float = 1e-2,
+                 measurement_noise: Mapping[str, float] | float = 1e-3, history: int = 60,
+                 feedforward=None):
+        self.dmodel = dmodel
+        self.disturbance = disturbance
+        self.state_noise = state_noise
+        self.disturbance_noise = disturbance_noise
+        self.measurement_noise = measurement_noise
+        self.history = history
+        self.feedforward = feedforward
+        self.is_built = False
+
+    # ------------------------------------------------------------------ helpers
+    def _per_cv(self, value, what: str, kind=float):
+        names = list(self.dmodel.cv_names)
+        if isinstance(value, Mapping):
+            for k in value:
+                if k not in names:
+                    raise SettingsError(f"DisturbanceEstimator: '{what}' names an unknown CV '{k}'"
+                                        f"{suggest(k, names)}; CVs are {names}.")
+            default = {"disturbance": "output", "disturbance_noise": 1e-2,
+                       "measurement_noise": 1e-3}[what]
+            return [value.get(n, default) for n in names]
+        return [value] * len(names)
+
+    @staticmethod
+    def _positive(v, what: str, allow_zero=False) -> float:
+        try:
+            f = float(v)
+        except (TypeError, ValueError):
+            raise SettingsError(f"DisturbanceEstimator: '{what}' must be a number; got {v!r}.") from None
+        if not np.isfinite(f) or f < 0 or (f == 0 and not allow_zero):
+            raise SettingsError(f"DisturbanceEstimator: '{what}' must be a finite number "
+                                f"{'>= 0' if allow_zero else '> 0'}; got {v!r}.")
+        return f
+
+    # ------------------------------------------------------------------ build
+    def build(self) -> "DisturbanceEstimator":
+        """Validate the settings, form the augmented model and solve the Riccati equation."""
+        m = self.dmodel
+        A, B, C = np.asarray(m.A, float), np.asarray(m.B, float), np.asarray(m.C, float)
+        nx, nu, ny = A.shape[0], B.shape[1], C.shape[0]
+        kinds = self._per_cv(self.disturbance, "disturbance")
+        for n, k in zip(m.cv_names, kinds):
+            if k not in DISTURBANCE_MODELS:
+                raise SettingsError(f"DisturbanceEstimator: disturbance model for CV '{n}' must be one "
+                                    f"of {DISTURBANCE_MODELS}; got {k!r}{suggest(k, DISTURBANCE_MODELS)}.")
+        qw = [self._positive(v, f"disturbance_noise[{n}]")
+              for n, v in zip(m.cv_names, self._per_cv(self.disturbance_noise, "disturbance_noise"))]
+        rv = [self._positive(v, f"measurement_noise[{n}]")
+              for n, v in zip(m.cv_names, self._per_cv(self.measurement_noise, "measurement_noise"))]
+        qx = self._positive(self.state_noise, "state_noise", allow_zero=True)
+        if not isinstance(self.history, (int, np.integer)) or self.history < 1:
+            raise SettingsError(f"DisturbanceEstimator: 'history' must be an int >= 1 (samples); "
+                                f"got {self.history!r}.")
+        Bw = np.zeros((nx, ny))
+        Cw = np.zeros((ny, ny))
+        need_gain = any(k == "input" for k in kinds)
+        if need_gain:
+            G = m.gain("mv")
+            if not np.all(np.isfinite(G)):
+                raise SettingsError("DisturbanceEstimator: an 'input' disturbance model needs finite "
+                                    "steady-state gains (the model integrates); use 'output'.")
+            Gp = np.linalg.pinv(G)
+        for i, k in enumerate(kinds):
+            if k == "output":
+                Cw[i, i] = 1.0
+            else:
+                col = B @ Gp[:, i]
+                if np.linalg.norm(col) < 1e-12:
+                    raise SettingsError(f"DisturbanceEstimator: CV '{m.cv_names[i]}' cannot take an "
+                                        f"'input' disturbance (no MV moves it at steady state).")
+                Bw[:, i] = col
+        self.kinds_ = tuple(kinds)
+        self.Bw_, self.Cw_ = Bw, Cw
+        na = nx + ny
+        Aa = np.zeros((na, na))
+        Aa[:nx, :nx] = A
+        Aa[:nx, nx:] = Bw
+        Aa[nx:, nx:] = np.eye(ny)
+        Ca = np.hstack([C, Cw])
+        Q = np.zeros((na, na))
+        npl = m.n_plant_states
+        Q[np.arange(npl), np.arange(npl)] = qx
+        Q[nx + np.arange(ny), nx + np.arange(ny)] = qw
+        R = np.diag(rv)
+        try:
+            P = sla.solve_discrete_are(Aa.T, Ca.T, Q, R)
+        except (np.linalg.LinAlgError, ValueError) as exc:
+            raise SettingsError(
+                "DisturbanceEstimator: the Riccati equation of the augmented model has no "
+                f"stabilizing solution ({exc}); the disturbance model is not detectable -- try "
+                "'output' disturbances, or an 'input' model only where MVs reach the CV.") from None
+        if not np.all(np.isfinite(P)):
+            raise SettingsError("DisturbanceEstimator: the Riccati solution is not finite; the "
+                                "disturbance model is not detectable.")
+        self.A_, self.C_, self.P_, self.R_ = Aa, Ca, P, R
+        self.Ba_ = np.vstack([B, np.zeros((ny, nu))])
+        self.Bda_ = np.vstack([np.asarray(m.Bd, float), np.zeros((ny, m.nd))])
+        self.D_, self.Dd_ = np.asarray(m.D, float), np.asarray(m.Dd, float)
+        self._gains: dict[bytes, np.ndarray] = {}
+        self.gain_ = self._gain(np.ones(ny, bool))
+        self.nx_, self.na_, self.ny_ = nx, na, ny
+        self.is_built = True
+        self.reset()
+        return self
+
+    def _gain(self, mask: np.ndarray) -> np.ndarray:
+        key = mask.tobytes()
+        L = self._gains.get(key)
+        if L is None:
+            Cs = self.C_[mask]
+            S = Cs @ self.P_ @ Cs.T + self.R_[np.ix_(mask, mask)]
+            L = np.linalg.solve(S, Cs @ self.P_).T
+            self._gains[key] = L
+        return L
+
+    def _check(self):
+        if not self.is_built:
+            raise NotBuiltError("DisturbanceEstimator is not built; call .build() first.")
+
+    # ------------------------------------------------------------------ running
+    def reset(self, x0: np.ndarray | None = None, t0: float = 0.0) -> None:
+        """Start at deviation state *x0* (default 0) with zero disturbance estimates, at time *t0*."""
+        self._check()
+        H = int(self.history) + 1
+        na, ny = self.na_, self.ny_
+        self._t0 = float(t0)
+        self._k = 0                       # index of the current sample (time t0 + k Ts)
+        self._prior = np.zeros((H, na))   # ring buffers indexed by k % H
+        self._post = np.zeros((H, na))
+        self._u = np.zeros((H, self.dmodel.nu))   # input applied from sample k to k+1
+        self._d = np.zeros((H, self.dmodel.nd))   # DV deviation at sample k
+        self._ymask = np.zeros((H, ny), bool)
+        self._yval = np.zeros((H, ny))
+        xa = np.zeros(na)
+        if x0 is not None:
+            xa[: self.nx_] = np.asarray(x0, float).reshape(-1)
+        self._prior[0] = xa
+        self._post[0] = xa
+        self._u_prev = np.zeros(self.dmodel.nu)
+        self._started = False
+        self.counts = {"rejected_nonfinite": 0, "late_used": 0, "too_old": 0}
+
+    def sample_index(self, t: float) -> int:
+        """Nearest sample index of time *t* (sample 0 at the reset time)."""
+        return int(round((float(t) - self._t0) / self.dmodel.Ts))
+
+    def update(self, t: float, y_dev: np.ndarray, taken_at: np.ndarray, fresh: np.ndarray,
+               d_dev: np.ndarray) -> dict[str, Any]:
+        """Correct the estimate at time *t* with the fresh values (deviation CVs).
+
+        Returns a dict with ``rejected`` (CV indices with fresh non-finite values), ``late`` (CV
+        indices used at an earlier sample) and ``too_old`` (dropped).
+        """
+        self._check()
+        k = self.sample_index(t)
+        H = self._prior.shape[0]
+        if self._started:
+            if k != self._k + 1:
+                raise SettingsError(f"DisturbanceEstimator.update(): expected the next sample "
+                                    f"(index {self._k + 1}, t={self._t0 + (self._k + 1) * self.dmodel.Ts:g}); "
+                                    f"got t={t:g} (index {k}). Call predict() once per sample.")
+        else:
+            if k != self._k:
+                # first update after reset: align the clock on the first call
+                self._t0 = float(t) - self._k * self.dmodel.Ts
+                k = self._k
+        self._k = k
+        slot = k % H
+        self._d[slot] = d_dev
+        y_dev = np.asarray(y_dev, float)
+        fresh = np.asarray(fresh, bool)
+        taken_at = np.asarray(taken_at, float)
+        if fresh.all() and np.isfinite(y_dev).all() and (np.abs(taken_at - t) < 0.5 * self.dmodel.Ts).all():
+            # the common case: every CV measured now
+            self._ymask[slot] = True
+            self._yval[slot] = y_dev
+            xa = self._prior[slot]
+            u_held = self._u[(k - 1) % H] if k > 0 else self._u_prev
+            yhat = self.C_ @ xa + self.D_ @ u_held + self.Dd_ @ d_dev
+            self._post[slot] = xa + self.gain_ @ (y_dev - yhat)
+            self._started = True
+            return _NOTHING
+        rejected, late, too_old = [], [], []
+        first = k
+        for i in np.flatnonzero(fresh):
+            v = y_dev[i]
+            if not np.isfinite(v) or not np.isfinite(taken_at[i]):
+                rejected.append(int(i))
+                continue
+            j = min(self.sample_index(taken_at[i]), k)
+            if j < k - (H - 1) or j < 0:
+                too_old.append(int(i))
+                continue
+            s = j % H
+            self._ymask[s, i] = True
+            self._yval[s, i] = v
+            if j < k:
+                late.append(int(i))
+                first = min(first, j)
+        self.counts["rejected_nonfinite"] += len(rejected)
+        self.counts["late_used"] += len(late)
+        self.counts["too_old"] += len(too_old)
+        # re-run the filter from the earliest sample that received a value
+        for j in range(first, k + 1):
+            s = j % H
+            xa = self._prior[s].copy()
+            mask = self._ymask[s]
+            if mask.any():
+                u_held = self._u[(j - 1) % H] if j > 0 else self._u_prev
+                yhat = self.C_ @ xa + self.D_ @ u_held + self.Dd_ @ self._d[s]
+                L = self._gain(mask)
+                xa = xa + L @ (self._yval[s, mask] - yhat[mask])
+            self._post[s] = xa
+            if j < k:
+                self._prior[(j + 1) % H] = (self.A_ @ xa + self.Ba_ @ self._u[s]
+                                            + self.Bda_ @ self._d[s])
+        self._started = True
+        return {"rejected": rejected, "late": late, "too_old": too_old}
+
+    def predict(self, u_dev: np.ndarray) -> None:
+        """Propagate to the next sample with the MVs *u_dev* applied from now on."""
+        self._check()
+        H = self._prior.shape[0]
+        s = self._k % H
+        self._u[s] = u_dev
+        nxt = (self._k + 1) % H
+        self._prior[nxt] = self.A_ @ self._post[s] + self.Ba_ @ u_dev + self.Bda_ @ self._d[s]
+        self._ymask[nxt] = False
+        self._u_prev = np.asarray(u_dev, float).copy()
+
+    @property
+    def state(self) -> np.ndarray:
+        """Current filtered plant (and delay) state, deviation variables."""
+        return self._post[self._k % self._prior.shape[0], : self.nx_]
+
+    @property
+    def disturbance_estimate(self) -> np.ndarray:
+        """Current estimate of the per-CV disturbance states."""
+        return self._post[self._k % self._prior.shape[0], self.nx_:]

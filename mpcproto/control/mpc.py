@@ -1,0 +1,849 @@
+"""Constrained model-predictive control on a discrete linear model, compiled once in cvxpy.
+
+:class:`PredictiveController` implements :class:`mpcproto.control.base.Controller`.  Each sample it
+
+1. corrects its state and disturbance estimates with the measurements at the times they were taken
+   (:class:`~mpcproto.control.estimator.DisturbanceEstimator`, offset-free);
+2. computes where MVs and CVs should settle (:class:`~mpcproto.control.steady_target.SteadyTarget`,
+   optional);
+3. solves the dynamic QP below and applies the first move; a solve that is not optimal to
+   tolerance is never used: the controller applies the previous plan shifted by one sample (or
+   holds the MVs), flags and counts it.
+
+The dynamic QP (deviation variables around the model's operating point; k = 1..N prediction,
+j = 0..M-1 moves, the MVs are held after the control horizon M)::
+
+    minimize   sum_k  q_i e_ik^2                         CV outside its band (setpoint or zone)
+             + sum_j  r_m du_mj^2                        move suppression
+             + sum_k  s_m (u_mk - rest_m)^2              MV resting values (steady-target MVs)
+             + sum_k  l_i sl_ik + h_i sl_ik^2            soft CV limits (exact penalty)
+             + (x_N - x_s)' P_t (x_N - x_s)              optional terminal cost (Riccati)
+    subject to x_{k+1} = A x_k + B u_k + W_k             W: measured DVs + disturbance estimates
+               y_k = C x_k + D u_k + V_k
+               band_lo <= y - e <= band_hi
+               lim_lo <= y + sl,  y - sl <= lim_hi,  sl >= 0
+               u_lo <= u <= u_hi,  r_lo <= du <= r_hi    hard MV limits and rate limits
+
+Every per-sample datum is a cvxpy Parameter entering only the linear cost and the constraint
+bounds, so the problem is DPP, the matrices never change and OSQP keeps its factorization.  By
+default the compiled problem's affine parameter->data map is read once and OSQP is driven directly
+(``fast_path=True``); ``fast_path=False`` re-solves through ``cvxpy.Problem.solve`` (OSQP or
+Clarabel).
+
+Caution: this is a simulation prototype.  A controller on a real plant needs independent safety
+systems, management of change and the judgement of licensed engineers under local codes.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+import scipy.linalg as sla
+import scipy.sparse as sp
+
+from ..exceptions import NotBuiltError, SettingsError
+from ..model import suggest
+from ._qp import CompiledQP, OSQP_DEFAULTS
+from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_OK, ControlOutput,
+                   Measurement, Targets)
+from .estimator import DISTURBANCE_MODELS, DisturbanceEstimator
+from .steady_target import SteadyTarget
+
+__all__ = ["PredictiveController", "SETTINGS_KEYS", "CV_KEYS", "MV_KEYS", "DV_KEYS"]
+
+#: top-level settings keys and their defaults (see :class:`PredictiveController`)
+SETTINGS_KEYS: dict[str, Any] = {
+    "horizon": 30, "control_horizon": None, "cv": None, "mv": None, "dv": None,
+    "terminal_cost": False, "steady_target": True, "solver": "osqp", "fast_path": True,
+    "solver_options": None, "state_noise": 1e-4, "history": 60, "priority_ratio": 10.0,
+    "fallback": "shift",
+}
+#: per-CV keys and defaults
+CV_KEYS: dict[str, Any] = {
+    "weight": 1.0, "scale": 1.0, "low": -math.inf, "high": math.inf, "limit_penalty": 1e3,
+    "limit_penalty_quadratic": 1e2, "priority": 1, "disturbance": "output",
+    "measurement_noise": 1e-3, "disturbance_noise": 1e-2,
+}
+#: per-MV keys and defaults
+MV_KEYS: dict[str, Any] = {
+    "move_weight": 0.1, "rest_weight": 0.0, "rest_value": None, "low": -math.inf,
+    "high": math.inf, "max_move": math.inf, "scale": 1.0,
+}
+#: per-DV keys and defaults
+DV_KEYS: dict[str, Any] = {"feedforward": True}
+
+SOLVERS = ("osqp", "clarabel")
+FALLBACKS = ("shift", "hold")
+_OSQP_OPTIONS = ("eps_abs", "eps_rel", "eps_prim_inf", "eps_dual_inf", "max_iter", "polishing",
+                 "polish_refine_iter", "warm_starting", "adaptive_rho", "adaptive_rho_interval",
+                 "adaptive_rho_tolerance", "adaptive_rho_fraction", "rho", "sigma", "alpha",
+                 "scaling", "time_limit", "check_termination", "scaled_termination", "delta",
+                 "verbose", "check_dualgap")
+
+
+def _err(key: str, expected: str, found: Any) -> SettingsError:
+    return SettingsError(f"PredictiveController: the '{key}' setting must be {expected}; got {found!r}.")
+
+
+def _number(key, v, *, low=None, low_open=False, allow_inf=False) -> float:
+    if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)):
+        raise _err(key, "a number", v)
+    f = float(v)
+    if math.isnan(f) or (math.isinf(f) and not allow_inf):
+        raise _err(key, "a finite number" if not allow_inf else "a number (not NaN)", v)
+    if low is not None and (f < low or (low_open and f == low)):
+        raise _err(key, f"a number {'>' if low_open else '>='} {low:g}", v)
+    return f
+
+
+def _int(key, v, low=1) -> int:
+    if isinstance(v, bool) or not isinstance(v, (int, np.integer)):
+        raise _err(key, f"an int >= {low}", v)
+    if v < low:
+        raise _err(key, f"an int >= {low}", v)
+    return int(v)
+
+
+def _bool(key, v) -> bool:
+    if not isinstance(v, (bool, np.bool_)):
+        raise _err(key, "true or false", v)
+    return bool(v)
+
+
+class PredictiveController:
+    """Constrained, offset-free MPC on a :class:`~mpcproto.linear.DiscreteLinearModel`.
+
+    Construct (stores only), then :meth:`build` (validates and compiles), then :meth:`reset` at an
+    operating point and :meth:`step` once per sample.  :meth:`from_settings` builds the keyword
+    arguments from a plain dict (scenario files) and validates them at once.
+
+    Parameters
+    ----------
+    dmodel : DiscreteLinearModel
+        Controller model: deviation variables around ``dmodel.op``, sample time ``dmodel.Ts``.
+    horizon : int
+        Prediction horizon N in samples (>= 1).
+    control_horizon : int or None
+        Number of future moves M (1 <= M <= N); the MVs are held after it (move blocking).
+        None: M = N.
+    cv : mapping of CV name to dict
+        Per-CV settings (every key optional): ``weight`` (>= 0, weight on the error outside the
+        setpoint band, per squared ``scale``), ``scale`` (> 0, engineering units of one "unit of
+        error"), ``low``/``high`` (static soft limits, engineering units; the run-time
+        :class:`Targets` limits are intersected with them), ``limit_penalty`` (>= 0, linear slack
+        penalty per ``scale``: exact penalty when large enough), ``limit_penalty_quadratic``
+        (>= 0), ``priority`` (int >= 1, 1 = most important: its weights are multiplied by
+        ``priority_ratio`` per class above the least important), ``disturbance`` ("output" or
+        "input" disturbance model), ``measurement_noise`` (> 0, variance), ``disturbance_noise``
+        (> 0, variance of the per-sample disturbance change).
+    mv : mapping of MV name to dict
+        Per-MV settings: ``move_weight`` (>= 0, per squared ``scale``), ``rest_weight`` (>= 0,
+        weight pulling the MV to its resting value), ``rest_value`` (engineering units; default:
+        the operating point; with the steady target on, the dynamic problem rests at the target
+        and ``rest_value`` only breaks ties in the target), ``low``/``high`` (hard limits,
+        intersected with the run-time ones), ``max_move`` (> 0, largest move per sample),
+        ``scale`` (> 0).
+    dv : mapping of DV name to dict
+        Per-DV settings: ``feedforward`` (bool, default True: a measured DV's value and forecast
+        enter the prediction; False: treated as unknown).
+    terminal_cost : bool
+        Add the discrete-Riccati terminal weight on the distance of the last predicted state
+        from the steady target (needs ``steady_target``).
+    steady_target : bool
+        Solve the steady-state target QP each sample and track its result.
+    solver : {"osqp", "clarabel"}
+        QP solver.  Clarabel always goes through ``cvxpy.Problem.solve``.
+    fast_path : bool
+        With OSQP: drive OSQP directly from the compiled parameter map (default) instead of
+        ``cvxpy.Problem.solve``.
+    solver_options : mapping
+        Solver settings (OSQP names such as ``eps_abs``, ``eps_rel``, ``max_iter``,
+        ``polishing``, ``adaptive_rho``; Clarabel's own names with Clarabel).
+    state_noise : float
+        Estimator process noise on the plant states (>= 0).
+    history : int
+        Samples of estimator history for late measurements (>= 1).
+    priority_ratio : float
+        Weight factor between neighbouring priority classes (> 1).
+    fallback : {"shift", "hold"}
+        What a failed solve applies: the previous plan shifted one sample, or the previous MVs.
+
+    Attributes
+    ----------
+    qp_ : CompiledQP
+        After :meth:`build`: the compiled dynamic problem (``qp_.problem`` is the cvxpy Problem).
+    estimator_ : DisturbanceEstimator
+    target_ : SteadyTarget or None
+    counts : dict
+        Running totals since :meth:`reset`: steps, fallbacks, holds, inaccurate, failed solves,
+        target fallbacks, rejected measurements, late measurements used.
+    """
+
+    name = "mpc"
+
+    def __init__(self, dmodel, *, horizon: int = 30, control_horizon: int | None = None,
+                 cv: Mapping[str, Mapping[str, Any]] | None = None,
+                 mv: Mapping[str, Mapping[str, Any]] | None = None,
+                 dv: Mapping[str, Mapping[str, Any]] | None = None,
+                 terminal_cost: bool = False, steady_target: bool = True, solver: str = "osqp",
+                 fast_path: bool = True, solver_options: Mapping[str, Any] | None = None,
+                 state_noise: float = 1e-4, history: int = 60, priority_ratio: float = 10.0,
+                 fallback: str = "shift"):
+        self.dmodel = dmodel
+        self.horizon = horizon
+        self.control_horizon = control_horizon
+        self.cv = cv
+        self.mv = mv
+        self.dv = dv
+        self.terminal_cost = terminal_cost
+        self.steady_target = steady_target
+        self.solver = solver
+        self.fast_path = fast_path
+        self.solver_options = solver_options
+        self.state_noise = state_noise
+        self.history = history
+        self.priority_ratio = priority_ratio
+        self.fallback = fallback
+        self.is_built = False
+        self._op = None
+
+    # ================================================================== settings
+    @classmethod
+    def from_settings(cls, dmodel, settings: Mapping[str, Any]) -> "PredictiveController":
+        """Controller from a plain dict of settings (keys: see the class docstring).
+
+        Unknown keys and bad values raise :class:`~mpcproto.exceptions.SettingsError` naming the
+        key.  The result is validated but not built: call :meth:`build`.
+        """
+        if not isinstance(settings, Mapping):
+            raise SettingsError(f"PredictiveController.from_settings(): settings must be a mapping; "
+                                f"got {type(settings).__name__}.")
+        for k in settings:
+            if k not in SETTINGS_KEYS:
+                raise SettingsError(f"PredictiveController: unknown setting '{k}'"
+                                    f"{suggest(k, list(SETTINGS_KEYS))}; known settings are "
+                                    f"{sorted(SETTINGS_KEYS)}.")
+        obj = cls(dmodel, **dict(settings))
+        obj.validate()
+        return obj
+
+    def validate(self) -> dict[str, Any]:
+        """Check every setting against the model; return the resolved per-variable arrays.
+
+        Raises
+        ------
+        SettingsError
+            Naming the setting, what was expected and what was found.
+        """
+        m = self.dmodel
+        self._check_model(m)
+        nx, nu, ny, nd = m.nx, m.nu, m.ny, m.nd
+        N = _int("horizon", self.horizon)
+        M = N if self.control_horizon is None else _int("control_horizon", self.control_horizon)
+        if M > N:
+            raise _err("control_horizon", f"an int between 1 and the horizon ({N})", self.control_horizon)
+        r: dict[str, Any] = {"N": N, "M": M}
+        cvs = self._per_var("cv", self.cv, m.cv_names, CV_KEYS)
+        mvs = self._per_var("mv", self.mv, m.mv_names, MV_KEYS)
+        dvs = self._per_var("dv", self.dv, m.dv_names, DV_KEYS)
+        arr = lambda rows, key: np.array([row[key] for row in rows], float)  # noqa: E731
+        for i, (name, row) in enumerate(zip(m.cv_names, cvs)):
+            p = f"cv.{name}"
+            _number(f"{p}.weight", row["weight"], low=0)
+            _number(f"{p}.scale", row["scale"], low=0, low_open=True)
+            _number(f"{p}.low", row["low"], allow_inf=True)
+            _number(f"{p}.high", row["high"], allow_inf=True)
+            if row["low"] > row["high"]:
+                raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
+            _number(f"{p}.limit_penalty", row["limit_penalty"], low=0)
+            _number(f"{p}.limit_penalty_quadratic", row["limit_penalty_quadratic"], low=0)
+            _int(f"{p}.priority", row["priority"])
+            if row["disturbance"] not in DISTURBANCE_MODELS:
+                raise _err(f"{p}.disturbance", f"one of {DISTURBANCE_MODELS}", row["disturbance"])
+            _number(f"{p}.measurement_noise", row["measurement_noise"], low=0, low_open=True)
+            _number(f"{p}.disturbance_noise", row["disturbance_noise"], low=0, low_open=True)
+        for name, row in zip(m.mv_names, mvs):
+            p = f"mv.{name}"
+            _number(f"{p}.move_weight", row["move_weight"], low=0)
+            _number(f"{p}.rest_weight", row["rest_weight"], low=0)
+            if row["rest_value"] is not None:
+                _number(f"{p}.rest_value", row["rest_value"])
+            _number(f"{p}.low", row["low"], allow_inf=True)
+            _number(f"{p}.high", row["high"], allow_inf=True)
+            if row["low"] > row["high"]:
+                raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
+            _number(f"{p}.max_move", row["max_move"], low=0, low_open=True, allow_inf=True)
+            _number(f"{p}.scale", row["scale"], low=0, low_open=True)
+        for name, row in zip(m.dv_names, dvs):
+            _bool(f"dv.{name}.feedforward", row["feedforward"])
+        _bool("terminal_cost", self.terminal_cost)
+        _bool("steady_target", self.steady_target)
+        _bool("fast_path", self.fast_path)
+        if self.solver not in SOLVERS:
+            raise _err("solver", f"one of {SOLVERS}", self.solver)
+        if self.fallback not in FALLBACKS:
+            raise _err("fallback", f"one of {FALLBACKS}", self.fallback)
+        if self.terminal_cost and not self.steady_target:
+            raise _err("terminal_cost", "false when steady_target is false (the terminal cost "
+                       "pulls the last state to the steady target)", self.terminal_cost)
+        opts = {} if self.solver_options is None else self.solver_options
+        if not isinstance(opts, Mapping):
+            raise _err("solver_options", "a mapping of solver setting names to values", opts)
+        if self.solver == "osqp":
+            for k in opts:
+                if k not in _OSQP_OPTIONS:
+                    raise SettingsError(f"PredictiveController: unknown OSQP option "
+                                        f"'solver_options.{k}'{suggest(k, _OSQP_OPTIONS)}; known: "
+                                        f"{sorted(_OSQP_OPTIONS)}.")
+        _number("state_noise", self.state_noise, low=0)
+        _int("history", self.history)
+        _number("priority_ratio", self.priority_ratio, low=1, low_open=True)
+        prio = arr(cvs, "priority")
+        pf = float(self.priority_ratio) ** (prio.max() - prio)
+        r.update(
+            cv_weight=arr(cvs, "weight") / arr(cvs, "scale") ** 2 * pf,
+            cv_scale=arr(cvs, "scale"), cv_low=arr(cvs, "low"), cv_high=arr(cvs, "high"),
+            lim_lin=arr(cvs, "limit_penalty") / arr(cvs, "scale") * pf,
+            lim_quad=arr(cvs, "limit_penalty_quadratic") / arr(cvs, "scale") ** 2 * pf,
+            disturbance={n: row["disturbance"] for n, row in zip(m.cv_names, cvs)},
+            meas_noise={n: float(row["measurement_noise"]) for n, row in zip(m.cv_names, cvs)},
+            dist_noise={n: float(row["disturbance_noise"]) for n, row in zip(m.cv_names, cvs)},
+            move_weight=arr(mvs, "move_weight") / arr(mvs, "scale") ** 2,
+            rest_weight=arr(mvs, "rest_weight") / arr(mvs, "scale") ** 2,
+            mv_scale=arr(mvs, "scale"),
+            rest_value=np.array([m.op.u[j] if row["rest_value"] is None else float(row["rest_value"])
+                                 for j, row in enumerate(mvs)]),
+            mv_low=arr(mvs, "low"), mv_high=arr(mvs, "high"), max_move=arr(mvs, "max_move"),
+            feedforward=np.array([bool(row["feedforward"]) for row in dvs], bool),
+            solver_options=dict(opts),
+        )
+        self._resolved = r
+        return r
+
+    @staticmethod
+    def _per_var(role: str, given, names, keys: Mapping[str, Any]) -> list[dict[str, Any]]:
+        given = {} if given is None else given
+        if not isinstance(given, Mapping):
+            raise _err(role, f"a mapping of {role.upper()} name to a dict of settings", given)
+        for n, row in given.items():
+            if n not in names:
+                raise SettingsError(f"PredictiveController: '{role}' names an unknown {role.upper()} "
+                                    f"'{n}'{suggest(n, list(names))}; the model's {role.upper()}s are "
+                                    f"{list(names)}.")
+            if not isinstance(row, Mapping):
+                raise _err(f"{role}.{n}", "a mapping of setting names to values", row)
+            for k in row:
+                if k not in keys:
+                    raise SettingsError(f"PredictiveController: unknown setting '{role}.{n}.{k}'"
+                                        f"{suggest(k, list(keys))}; known: {sorted(keys)}.")
+        out = []
+        for n in names:
+            row = dict(keys)
+            row.update(given.get(n, {}))
+            out.append(row)
+        return out
+
+    @staticmethod
+    def _check_model(m) -> None:
+        need = ("A", "B", "Bd", "C", "D", "Dd", "Ts", "op")
+        for k in need:
+            if not hasattr(m, k):
+                raise SettingsError(f"PredictiveController: dmodel must be a DiscreteLinearModel "
+                                    f"(missing '{k}'); got {type(m).__name__}.")
+        A = np.asarray(m.A, float)
+        if A.ndim != 2 or A.shape[0] != A.shape[1]:
+            raise SettingsError(f"PredictiveController: dmodel.A must be square; got shape {A.shape}.")
+        nx = A.shape[0]
+        nu, nd, ny = len(m.op.mv_names), len(m.op.dv_names), len(m.op.cv_names)
+        for k, shape in (("B", (nx, nu)), ("Bd", (nx, nd)), ("C", (ny, nx)), ("D", (ny, nu)),
+                         ("Dd", (ny, nd))):
+            got = np.shape(getattr(m, k))
+            if got != shape:
+                raise SettingsError(f"PredictiveController: dmodel.{k} must have shape {shape} "
+                                    f"(states={nx}, MVs={nu}, DVs={nd}, CVs={ny}); got {got}.")
+            if not np.all(np.isfinite(np.asarray(getattr(m, k), float))):
+                raise SettingsError(f"PredictiveController: dmodel.{k} has non-finite entries.")
+        if not np.all(np.isfinite(A)):
+            raise SettingsError("PredictiveController: dmodel.A has non-finite entries.")
+        for k, n in (("u", nu), ("d", nd), ("y", ny)):
+            if np.shape(getattr(m.op, k)) != (n,):
+                raise SettingsError(f"PredictiveController: dmodel.op.{k} must have shape ({n},); "
+                                    f"got {np.shape(getattr(m.op, k))}.")
+        if not (np.isfinite(m.Ts) and m.Ts > 0):
+            raise SettingsError(f"PredictiveController: dmodel.Ts must be > 0; got {m.Ts!r}.")
+
+    # ================================================================== build
+    def build(self) -> "PredictiveController":
+        """Validate the settings, build the estimator and steady target, compile the dynamic QP."""
+        import cvxpy as cp
+
+        t_start = time.perf_counter()
+        r = self.validate()
+        m = self.dmodel
+        A, B, C, D = (np.asarray(m.A, float), np.asarray(m.B, float), np.asarray(m.C, float),
+                      np.asarray(m.D, float))
+        nx, nu, ny = A.shape[0], B.shape[1], C.shape[0]
+        N, M = r["N"], r["M"]
+        self.estimator_ = DisturbanceEstimator(
+            m, disturbance=r["disturbance"], state_noise=float(self.state_noise),
+            disturbance_noise=r["dist_noise"], measurement_noise=r["meas_noise"],
+            history=int(self.history), feedforward=r["feedforward"]).build()
+        Bw, Cw = self.estimator_.Bw_, self.estimator_.Cw_
+        opts = r["solver_options"]
+        osqp_opts = dict(opts) if self.solver == "osqp" else {}
+        # -- steady state maps
+        self._ss = None
+        if self.steady_target:
+            IA = np.eye(nx) - A
+            if np.linalg.cond(IA) > 1e12:
+                raise _err("steady_target", "false for a model with an integrating mode (I - A is "
+                           "singular: no steady-state gain)", True)
+            lu = sla.lu_factor(IA)
+            G = C @ sla.lu_solve(lu, B) + D
+            self._ss = {"lu": lu, "G": G,
+                        "Gd": C @ sla.lu_solve(lu, np.asarray(m.Bd, float)) + np.asarray(m.Dd, float),
+                        "Gw": C @ sla.lu_solve(lu, Bw) + Cw}
+            self.target_ = SteadyTarget(
+                G, band_weight=r["cv_weight"] + 1e-9, limit_linear=r["lim_lin"],
+                limit_quadratic=r["lim_quad"],
+                rest_weight=np.maximum(r["rest_weight"], 1e-6 / r["mv_scale"] ** 2),
+                solver_options=osqp_opts, Gd=self._ss["Gd"], Gw=self._ss["Gw"]).build()
+        else:
+            self.target_ = None
+        # -- terminal weight from the discrete Riccati equation of the plant (and delay) states
+        Pt = None
+        if self.terminal_cost:
+            Qx = C.T @ np.diag(r["cv_weight"]) @ C
+            Ru = np.diag(r["rest_weight"])
+            if np.any(r["rest_weight"] <= 0):
+                raise _err("mv.*.rest_weight", "> 0 for every MV when terminal_cost is true (the "
+                           "Riccati terminal weight needs a positive input weight)",
+                           list(r["rest_weight"]))
+            try:
+                P = sla.solve_discrete_are(A, B, Qx, Ru)
+            except (np.linalg.LinAlgError, ValueError) as exc:
+                raise _err("terminal_cost", "false for this model (no stabilizing Riccati solution: "
+                           f"{exc})", True) from None
+            Pt = P - Qx          # the last stage's own cost is already in the sum over k = 1..N
+            Pt = 0.5 * (Pt + Pt.T)
+            w, V = np.linalg.eigh(Pt)
+            Pt = (V * np.clip(w, 0, None)) @ V.T
+            self.riccati_ = P
+        self.terminal_weight_ = Pt
+        # -- the dynamic QP, whole-horizon variables and matrix constraints
+        X = cp.Variable((nx, N), name="x")
+        U = cp.Variable((nu, M), name="u")
+        dU = cp.Variable((nu, M), name="du")
+        E = cp.Variable((ny, N), name="e")
+        S = cp.Variable((ny, N), name="slack")
+        par = {
+            "x0": cp.Parameter(nx, name="x0"), "u_prev": cp.Parameter(nu, name="u_prev"),
+            "W": cp.Parameter((nx, N), name="W"), "V": cp.Parameter((ny, N), name="V"),
+            "band_lo": cp.Parameter((ny, N), name="band_lo"),
+            "band_hi": cp.Parameter((ny, N), name="band_hi"),
+            "lim_lo": cp.Parameter((ny, N), name="lim_lo"),
+            "lim_hi": cp.Parameter((ny, N), name="lim_hi"),
+            "u_lo": cp.Parameter((nu, M), name="u_lo"), "u_hi": cp.Parameter((nu, M), name="u_hi"),
+            "du_lo": cp.Parameter((nu, M), name="du_lo"), "du_hi": cp.Parameter((nu, M), name="du_hi"),
+            "rest": cp.Parameter((nu, M), name="rest"),
+        }
+        e1N = np.zeros((1, N))
+        e1N[0, 0] = 1.0
+        e1M = np.zeros((1, M))
+        e1M[0, 0] = 1.0
+        shiftN = np.eye(N, k=1)                  # X @ shiftN: column k holds X[:, k-1]
+        shiftM = np.eye(M, k=1)
+        sel_now = np.zeros((M, N))               # u applied over sample k (k = 0..N-1)
+        sel_out = np.zeros((M, N))               # u seen by the output at k = 1..N
+        for k in range(N):
+            sel_now[min(k, M - 1), k] = 1.0
+            sel_out[min(k + 1, M - 1), k] = 1.0
+        count = sel_now.sum(axis=1)              # samples each planned move is held
+        x0c = cp.reshape(par["x0"], (nx, 1), order="F")
+        upc = cp.reshape(par["u_prev"], (nu, 1), order="F")
+        Y = C @ X + par["V"]
+        if np.any(D != 0):
+            Y = Y + D @ (U @ sel_out)
+        wq = np.repeat(r["cv_weight"][:, None], N, axis=1)
+        wr = np.repeat(r["move_weight"][:, None], M, axis=1)
+        ws = r["rest_weight"][:, None] * count[None, :]
+        wl = np.repeat(r["lim_lin"][:, None], N, axis=1)
+        wh = np.repeat(r["lim_quad"][:, None], N, axis=1)
+        obj = (cp.sum(cp.multiply(wq, cp.square(E)))
+               + cp.sum(cp.multiply(wr, cp.square(dU)))
+               + cp.sum(cp.multiply(ws, cp.square(U)))
+               - 2 * cp.sum(cp.multiply(cp.multiply(ws, par["rest"]), U))
+               + cp.sum(cp.multiply(wl, S)) + cp.sum(cp.multiply(wh, cp.square(S))))
+        if Pt is not None:
+            par["x_term"] = cp.Parameter(nx, name="x_term")
+            xN = X[:, N - 1]
+            obj = obj + cp.quad_form(xN, cp.psd_wrap(Pt)) - 2 * (par["x_term"] @ (Pt @ xN))
+        cons = [
+            X == A @ (X @ shiftN) + (A @ x0c) @ e1N + B @ (U @ sel_now) + par["W"],
+            dU == U - U @ shiftM - upc @ e1M,
+            par["band_lo"] <= Y - E, Y - E <= par["band_hi"],
+            Y + S >= par["lim_lo"], Y - S <= par["lim_hi"], S >= 0,
+            U >= par["u_lo"], U <= par["u_hi"],
+            dU >= par["du_lo"], dU <= par["du_hi"],
+        ]
+        prob = cp.Problem(cp.Minimize(obj), cons)
+        self.qp_ = CompiledQP(prob, par, {"x": X, "u": U, "du": dU, "e": E, "slack": S},
+                              inf_parameters=("band_lo", "band_hi", "lim_lo", "lim_hi", "u_lo",
+                                              "u_hi", "du_lo", "du_hi"),
+                              owner="PredictiveController").compile()
+        nd = m.nd
+        Bd, Dd = np.asarray(m.Bd, float), np.asarray(m.Dd, float)
+        layout = {"x0": nx, "u_prev": nu, "dtraj": nd * (N + 1), "w": ny, "band_lo": ny,
+                  "band_hi": ny, "lim_lo": ny, "lim_hi": ny, "u_lo": nu * M, "u_hi": nu * M,
+                  "rate": nu, "rest": nu}
+        oneN, oneM = np.ones((N, 1)), np.ones((M, 1))
+        rep_y = sp.kron(oneN, sp.identity(ny))
+        rep_u = sp.kron(oneM, sp.identity(nu))
+        maps = {
+            "x0": {"x0": sp.identity(nx)}, "u_prev": {"u_prev": sp.identity(nu)},
+            "W": {"dtraj": sp.hstack([sp.kron(sp.identity(N), Bd), sp.csc_matrix((nx * N, nd))]),
+                  "w": sp.kron(oneN, Bw)},
+            "V": {"dtraj": sp.hstack([sp.csc_matrix((ny * N, nd)), sp.kron(sp.identity(N), Dd)]),
+                  "w": sp.kron(oneN, Cw)},
+            "band_lo": {"band_lo": rep_y}, "band_hi": {"band_hi": rep_y},
+            "lim_lo": {"lim_lo": rep_y}, "lim_hi": {"lim_hi": rep_y},
+            "u_lo": {"u_lo": sp.identity(nu * M)}, "u_hi": {"u_hi": sp.identity(nu * M)},
+            "du_lo": {"rate": -rep_u}, "du_hi": {"rate": rep_u}, "rest": {"rest": rep_u},
+        }
+        if Pt is not None:
+            layout["x_term"] = nx
+            maps["x_term"] = {"x_term": sp.identity(nx)}
+        self.qp_.set_inputs(layout, maps, inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi",
+                                                      "u_lo", "u_hi", "rate"))
+        off, o = {}, 0
+        for k, s_ in layout.items():
+            off[k] = slice(o, o + s_)
+            o += s_
+        self._zsl = off
+        self._z = np.zeros(o)
+        tl, o = {}, 0
+        if self.target_ is not None:
+            for k, s_ in self.target_.layout_.items():
+                tl[k] = slice(o, o + s_)
+                o += s_
+        self._tsl = tl
+        self._tz = np.zeros(o)
+        self._steps = np.arange(1, M + 1)[None, :].astype(float)
+        self._plan_idx = np.minimum(np.arange(N), M - 1)
+        if self.solver == "osqp" and self.fast_path:
+            self.qp_.setup(osqp_opts)
+        self._cvxpy_solver = "OSQP" if self.solver == "osqp" else "CLARABEL"
+        self._cvxpy_opts = dict(opts)
+        self._N, self._M = N, M
+        self._Bd, self._Dd = np.asarray(m.Bd, float), np.asarray(m.Dd, float)
+        self._Bw, self._Cw = Bw, Cw
+        self._B = B
+        self.is_built = True
+        self.compile_s_ = time.perf_counter() - t_start
+        return self
+
+    def _check_built(self, what: str) -> None:
+        if not self.is_built:
+            raise NotBuiltError(f"PredictiveController.{what}(): the controller is not built; call "
+                                f".build() first (after from_settings() or the constructor).")
+
+    # ================================================================== running
+    def reset(self, op=None, t0: float = 0.0) -> None:
+        """Start bumplessly at *op* (default: the model's operating point) at time *t0*.
+
+        The estimator starts at the deviation state of *op* when it has the model's state layout
+        (plant states; delay states at the operating MVs/DVs), else at zero; the previous MVs are
+        the operating point's.
+        """
+        self._check_built("reset")
+        m = self.dmodel
+        op = m.op if op is None else op
+        x0 = np.zeros(m.nx)
+        npl = getattr(m, "n_plant_states", m.nx)
+        if np.shape(op.x) == np.shape(m.op.x) and len(m.op.x) == npl:
+            x0[:npl] = np.asarray(op.x, float) - np.asarray(m.op.x, float)
+            # delay states of MVs/DVs at the new point: the delayed input, a shift register
+            for i, nm in enumerate(m.state_names[npl:], start=npl):
+                src = nm.split("[")[0]
+                if src in m.mv_names:
+                    x0[i] = op.u[m.mv_names.index(src)] - m.op.u[m.mv_names.index(src)]
+                elif src in m.dv_names:
+                    x0[i] = op.d[m.dv_names.index(src)] - m.op.d[m.dv_names.index(src)]
+        self.estimator_.reset(x0, t0)
+        self._op = op
+        self._op_u = np.asarray(m.op.u, float)
+        self._op_d = np.asarray(m.op.d, float)
+        self._op_y = np.asarray(m.op.y, float)
+        r = self._resolved
+        self._rest_dev = r["rest_value"] - self._op_u
+        self._slack_tol = 1e-4 * r["cv_scale"]
+        self._fast = self.solver == "osqp" and self.fast_path
+        self._z[:] = 0.0
+        self._u_prev = np.asarray(op.u, float).copy()
+        self._plan = None
+        self._plan_age = 0
+        self._target = None
+        self.counts = {"steps": 0, "fallbacks": 0, "holds": 0, "inaccurate": 0, "failed_solves": 0,
+                       "target_fallbacks": 0, "rejected_measurements": 0, "late_measurements": 0}
+
+    def _vec(self, v, n: int, what: str, fill: float) -> np.ndarray:
+        if v is None:
+            return np.full(n, fill)
+        a = np.asarray(v, float)
+        if a.shape != (n,):
+            a = a.reshape(-1)
+            if a.shape != (n,):
+                raise SettingsError(f"PredictiveController.step(): {what} must have {n} entries "
+                                    f"(model order); got shape {np.shape(v)}.")
+        return a
+
+    def _limits(self, targets: Targets):
+        """Hard MV limits and rates (absolute), CV soft limits and setpoints for this sample."""
+        r = self._resolved
+        m = self.dmodel
+        nu, ny = m.nu, m.ny
+        if targets is None:
+            raise SettingsError("PredictiveController.step(): targets must be a Targets object; got None.")
+        mv_lo = np.maximum(self._vec(targets.mv_low, nu, "targets.mv_low", -np.inf), r["mv_low"])
+        mv_hi = np.minimum(self._vec(targets.mv_high, nu, "targets.mv_high", np.inf), r["mv_high"])
+        if np.any(mv_lo > mv_hi):
+            j = int(np.flatnonzero(mv_lo > mv_hi)[0])
+            raise SettingsError(f"PredictiveController.step(): MV '{m.mv_names[j]}' has its low "
+                                f"limit {mv_lo[j]:g} above its high limit {mv_hi[j]:g} (targets "
+                                f"intersected with the settings).")
+        rate = r["max_move"]
+        if targets.mv_rate is not None:
+            tr = self._vec(targets.mv_rate, nu, "targets.mv_rate", np.inf)
+            if np.any(tr <= 0):
+                j = int(np.flatnonzero(tr <= 0)[0])
+                raise SettingsError(f"PredictiveController.step(): targets.mv_rate for MV "
+                                    f"'{m.mv_names[j]}' must be > 0; got {tr[j]!r}.")
+            rate = np.fmin(tr, rate)
+        cv_lo = np.fmax(self._vec(targets.cv_low, ny, "targets.cv_low", -np.inf), r["cv_low"])
+        cv_hi = np.fmin(self._vec(targets.cv_high, ny, "targets.cv_high", np.inf), r["cv_high"])
+        sp_ = self._vec(targets.setpoint, ny, "targets.setpoint", np.nan)
+        return mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_
+
+    def step(self, t: float, meas: Measurement, dv: np.ndarray, targets: Targets,
+             dv_forecast: np.ndarray | None = None) -> ControlOutput:
+        """One sample: estimate, target, solve, return the MVs (absolute) and diagnostics.
+
+        Parameters
+        ----------
+        t : float
+            Time now (model time unit).
+        meas : Measurement
+            CV values with the times they were taken and freshness flags (model order).
+        dv : ndarray (nd,)
+            DV values now (absolute); NaN for unmeasured DVs.
+        targets : Targets
+            Setpoints (NaN: none, zone control between the CV limits), CV soft limits, MV limits
+            and rates (NaN rate: none).
+        dv_forecast : ndarray (n, nd) or None
+            Expected DV values at t, t+Ts, ... (absolute); rows past its end repeat the last one,
+            NaN entries take the current value.  None: DVs held at their current values.
+
+        Returns
+        -------
+        ControlOutput
+            ``u`` (absolute MVs), ``status`` (``STATUS_OK``, ``STATUS_FALLBACK``, ``STATUS_HOLD``
+            or ``STATUS_FAILED``) and ``diagnostics`` with ``solve_ms``, ``step_ms``,
+            ``target_ms``, ``solver_status``, ``iterations``, ``fallback``, ``slack_max``,
+            ``cv_limits_relaxed``, ``relaxed_cvs``, ``active_mv_limits``,
+            ``active_mv_limit_names``, ``active_rate_limits``, ``rejected_measurements``,
+            ``late_measurements``, ``target_status``, ``target_u``, ``target_y``, ``clipped``
+            and ``counts``.
+        """
+        if not self.is_built:
+            self._check_built("step")
+        if self._op is None:
+            raise NotBuiltError("PredictiveController.step(): call .reset(op, t0) before the first step.")
+        t_start = time.perf_counter()
+        m, r = self.dmodel, self._resolved
+        N, M = self._N, self._M
+        op_u, op_d, op_y = self._op_u, self._op_d, self._op_y
+        nu, ny, nd = m.nu, m.ny, m.nd
+        names = m.cv_names
+        diag: dict[str, Any] = {}
+        # ---- measured DVs (deviation); unknown / not fed forward -> 0
+        dv = np.full(nd, np.nan) if dv is None else self._vec(dv, nd, "dv", np.nan)
+        use = r["feedforward"] & np.isfinite(dv)
+        d_now = np.where(use, dv - op_d, 0.0)
+        # ---- estimator
+        y = self._vec(meas.y, ny, "meas.y", np.nan)
+        info = self.estimator_.update(t, y - op_y, meas.taken_at, meas.fresh, d_now)
+        if info["rejected"]:
+            self.counts["rejected_measurements"] += len(info["rejected"])
+        if info["late"]:
+            self.counts["late_measurements"] += len(info["late"])
+        diag["rejected_measurements"] = [names[i] for i in info["rejected"]]
+        diag["late_measurements"] = [names[i] for i in info["late"]]
+        x = self.estimator_.state
+        w = self.estimator_.disturbance_estimate
+        mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_ = self._limits(targets)
+        self.counts["steps"] += 1
+        if not (np.isfinite(x).all() and np.isfinite(w).all()):
+            u = self._hold(mv_lo, mv_hi, rate)
+            self.counts["failed_solves"] += 1
+            diag.update(solver_status="estimate_not_finite", fallback=True, solve_ms=0.0,
+                        target_ms=0.0, slack_max=float("nan"), active_mv_limits=0, iterations=None)
+            self.estimator_.reset(None, t)
+            return self._finish(u, STATUS_FAILED, diag, t_start)
+        z, zs = self._z, self._zsl
+        # ---- DV trajectory over the horizon (deviation), samples 0..N
+        if nd:
+            if dv_forecast is None or not use.any():
+                dtraj = np.tile(d_now, N + 1)
+            else:
+                f = np.asarray(dv_forecast, float)
+                if f.ndim == 1:
+                    f = f[None, :]
+                if f.ndim != 2 or f.shape[1] != nd:
+                    raise SettingsError(f"PredictiveController.step(): dv_forecast must have shape "
+                                        f"(n, {nd}); got {np.shape(dv_forecast)}.")
+                F = f[np.minimum(np.arange(N + 1), f.shape[0] - 1)] - op_d
+                F = np.where(np.isfinite(F), F, d_now)
+                dtraj = np.where(use, F, 0.0).ravel()
+            z[zs["dtraj"]] = dtraj
+            d_end = dtraj[-nd:]
+        else:
+            d_end = d_now
+        # ---- deviations of limits and setpoints
+        lo_dev, hi_dev = mv_lo - op_u, mv_hi - op_u
+        clo, chi = cv_lo - op_y, cv_hi - op_y
+        spd = sp_ - op_y
+        has_sp = np.isfinite(spd)
+        consistent = clo <= chi
+        zone_lo = np.where(consistent, clo, -np.inf)
+        zone_hi = np.where(consistent, chi, np.inf)
+        u_prev_dev = self._u_prev - op_u
+        t_target = 0.0
+        fast = self._fast
+        # ---- steady target
+        if self.target_ is not None:
+            tz, ts = self._tz, self._tsl
+            if nd:
+                tz[ts["d"]] = d_end
+            tz[ts["w"]] = w
+            tz[ts["band_lo"]] = np.where(has_sp, spd, zone_lo)
+            tz[ts["band_hi"]] = np.where(has_sp, spd, zone_hi)
+            tz[ts["lim_lo"]] = clo
+            tz[ts["lim_hi"]] = chi
+            tz[ts["mv_lo"]] = lo_dev
+            tz[ts["mv_hi"]] = hi_dev
+            tz[ts["rest"]] = self._rest_dev
+            res = self.target_.solve(tz, fast=fast, solver=self._cvxpy_solver,
+                                     options=self._cvxpy_opts)
+            t_target = res.solve_ms
+            if res.accepted:
+                self._target = (res.values["us"], res.values["ys"])
+                diag["target_status"] = "ok"
+            else:
+                self.counts["target_fallbacks"] += 1
+                diag["target_status"] = res.status
+                if self._target is None:
+                    u_in = np.clip(u_prev_dev, lo_dev, hi_dev)
+                    self._target = (u_in, self._ss["G"] @ u_in + self._ss["Gd"] @ d_end
+                                    + self._ss["Gw"] @ w)
+            us, ys = self._target
+            band_lo = np.where(has_sp, ys, np.fmin(zone_lo, ys))
+            band_hi = np.where(has_sp, ys, np.fmax(zone_hi, ys))
+            rest = us
+            diag["target_u"] = (us + op_u).tolist()
+            diag["target_y"] = (ys + op_y).tolist()
+        else:
+            band_lo = np.where(has_sp, spd, zone_lo)
+            band_hi = np.where(has_sp, spd, zone_hi)
+            rest = self._rest_dev
+        # ---- MV limits reachable under the rate limits (keeps the QP feasible when a limit moved
+        # past the current MV: the plan then moves towards it as fast as allowed)
+        reach = self._steps * rate[:, None]
+        ulo = np.fmin(lo_dev[:, None], u_prev_dev[:, None] + reach)
+        uhi = np.fmax(hi_dev[:, None], u_prev_dev[:, None] - reach)
+        z[zs["x0"]] = x
+        z[zs["u_prev"]] = u_prev_dev
+        z[zs["w"]] = w
+        z[zs["band_lo"]] = band_lo
+        z[zs["band_hi"]] = band_hi
+        z[zs["lim_lo"]] = clo
+        z[zs["lim_hi"]] = chi
+        z[zs["u_lo"]] = ulo.ravel(order="F")
+        z[zs["u_hi"]] = uhi.ravel(order="F")
+        z[zs["rate"]] = rate
+        z[zs["rest"]] = rest
+        if self.terminal_weight_ is not None:
+            us, _ = self._target
+            z[zs["x_term"]] = sla.lu_solve(self._ss["lu"], self._B @ us + self._Bd @ d_end
+                                           + self._Bw @ w)
+        if fast:
+            res = self.qp_.solve_inputs(z)
+        else:
+            res = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=self._cvxpy_solver,
+                                       options=self._cvxpy_opts)
+        diag["solve_ms"] = res.solve_ms
+        diag["target_ms"] = t_target
+        diag["solver_status"] = res.status
+        diag["iterations"] = res.iterations
+        if res.accepted:
+            Uplan = res.values["u"] + op_u[:, None]
+            u = Uplan[:, 0]
+            self._plan = Uplan[:, self._plan_idx]
+            self._plan_age = 0
+            smax_cv = res.values["slack"].max(axis=1)
+            relaxed = smax_cv > self._slack_tol
+            diag["fallback"] = False
+            diag["slack_max"] = max(float(smax_cv.max()), 0.0)
+            diag["cv_limits_relaxed"] = bool(relaxed.any())
+            diag["relaxed_cvs"] = [names[i] for i in np.flatnonzero(relaxed)]
+            status = STATUS_OK
+        else:
+            if res.status == "optimal_inaccurate":
+                self.counts["inaccurate"] += 1
+            else:
+                self.counts["failed_solves"] += 1
+            self.counts["fallbacks"] += 1
+            diag["fallback"] = True
+            diag["slack_max"] = float("nan")
+            diag["cv_limits_relaxed"] = None
+            diag["relaxed_cvs"] = []
+            if self.fallback == "shift" and self._plan is not None and self._plan_age + 1 < N:
+                self._plan_age += 1
+                u = self._plan[:, self._plan_age].copy()
+                status = STATUS_FALLBACK
+            else:
+                u = self._u_prev.copy()
+                status = STATUS_HOLD
+                self.counts["holds"] += 1
+        # ---- exact limits on what is applied (solver tolerance or a stale plan must not break them)
+        u_clip = self._apply_limits(u, mv_lo, mv_hi, rate)
+        diag["clipped"] = float(np.max(np.abs(u_clip - u))) if nu else 0.0
+        u = u_clip
+        tol_u = 1e-6 * np.maximum(1.0, np.abs(u))
+        at = (np.abs(u - mv_lo) <= tol_u) | (np.abs(u - mv_hi) <= tol_u)
+        diag["active_mv_limits"] = int(at.sum())
+        diag["active_mv_limit_names"] = [m.mv_names[j] for j in np.flatnonzero(at)]
+        diag["active_rate_limits"] = int(np.sum(np.abs(np.abs(u - self._u_prev) - rate) <= tol_u))
+        return self._finish(u, status, diag, t_start)
+
+    def _apply_limits(self, u, lo, hi, rate):
+        up = self._u_prev
+        with np.errstate(invalid="ignore"):
+            u = np.clip(u, up - rate, up + rate)
+        inside = (up >= lo) & (up <= hi)
+        # limits win over rates only where the previous MV is already inside them
+        return np.where(inside, np.clip(u, lo, hi), u)
+
+    def _hold(self, lo, hi, rate):
+        self.counts["holds"] += 1
+        return self._apply_limits(self._u_prev.copy(), lo, hi, rate)
+
+    def _finish(self, u, status, diag, t_start) -> ControlOutput:
+        self.estimator_.predict(u - self._op_u)
+        self._u_prev = np.asarray(u, float).copy()
+        diag["step_ms"] = (time.perf_counter() - t_start) * 1e3
+        diag["counts"] = dict(self.counts)
+        return ControlOutput(u=np.asarray(u, float).copy(), status=status, diagnostics=diag)
