@@ -18,11 +18,13 @@ ways to find one:
     the target problem: the MVs (within their bounds) and states that put the CVs at given targets at
     steady state, as a least-squares problem solved by IPOPT (compiled once per model)::
 
-        minimize   sum_i ((y_i - t_i) / s_i)^2  +  1e-6 * sum_j ((u_j - u_ref_j) / r_j)^2
+        minimize   sum_i ((y_i - t_i) / s_i)^2
+                   + 1e-10 * (sum_j ((u_j - u_ref_j) / r_j)^2 + sum_k ((x_k - x_ref_k) / q_k)^2)
         subject to f(x, u, d) = 0,  x and u within their physical bounds,  fixed MVs held
 
-    with ``s_i`` the span of CV i's physical bounds (or its magnitude) and ``r_j`` the span of MV j.
-    The small second term picks one answer when there are more free MVs than targets.  When a target
+    with ``s_i``, ``r_j``, ``q_k`` the spans of the physical bounds (or the magnitudes) of CV i, MV j
+    and state k, and the references the guesses (default nominal).  The tiny second term picks one
+    answer when the targets leave MVs or states free (more MVs than targets, an integrating level).  When a target
     cannot be reached, the answer is the least-squares compromise and the message says which target
     missed by how much and which MVs sit at a bound.
 """
@@ -41,6 +43,10 @@ from .exceptions import ModelError, NotBuiltError, OperatingPointError
 from .model import suggest
 
 __all__ = ["OperatingPoint", "TargetResult", "steady_states", "steady_state", "solve_targets"]
+
+#: weight of the MV term of the target problem: small enough not to pull reachable targets off
+#: (the bias it causes is of this order relative to the CV scales), large enough to pick one answer
+REGULARIZATION = 1e-10
 
 
 @dataclass(frozen=True)
@@ -383,7 +389,7 @@ def _target_solver(model):
     nx, nu, nd, ny, npar = model.nx, model.nu, model.nd, model.ny, len(model.p)
     x = ca.MX.sym("x", nx)
     u = ca.MX.sym("u", nu)
-    P = ca.MX.sym("P", nd + npar + 3 * ny + 2 * nu + nx)
+    P = ca.MX.sym("P", nd + npar + 3 * ny + 2 * nu + 2 * nx)
     o = 0
     d = P[o:o + nd]; o += nd  # noqa: E702
     p = P[o:o + npar]; o += npar  # noqa: E702
@@ -393,6 +399,7 @@ def _target_solver(model):
     uref = P[o:o + nu]; o += nu  # noqa: E702
     su = P[o:o + nu]; o += nu  # noqa: E702
     sx = P[o:o + nx]; o += nx  # noqa: E702
+    xref = P[o:o + nx]; o += nx  # noqa: E702
     zs = []
     for dl in model.delays:
         i = model.names(dl.source_role).index(dl.source)
@@ -400,7 +407,8 @@ def _target_solver(model):
     z = ca.vertcat(*zs) if zs else ca.MX(0, 1)
     y = model.out_(x, u, d, z, p)
     f = model.ode_(x, u, d, z, p)
-    obj = ca.sum1(w * ((y - t) / sy) ** 2) + 1e-6 * ca.sumsqr((u - uref) / su)
+    obj = (ca.sum1(w * ((y - t) / sy) ** 2)
+           + REGULARIZATION * (ca.sumsqr((u - uref) / su) + ca.sumsqr((x - xref) / sx)))
     nlp = {"x": ca.vertcat(x, u), "p": P, "f": obj, "g": f / sx}
     sol = ca.nlpsol(f"{model.name}_targets", "ipopt", nlp, {
         "ipopt.print_level": 0, "print_time": False, "ipopt.sb": "yes", "ipopt.tol": 1e-12,
@@ -495,7 +503,7 @@ def solve_targets(model, targets: Mapping[str, float], *,
     # steady-state residual scale: a state changing by 1e-10 of its span per time unit counts as still
     sxdot = np.maximum(sx, 1e-12)
     solver = _target_solver(model)
-    P = np.concatenate([dd, model.p, tvec, wvec, sy, u0, su, sxdot])
+    P = np.concatenate([dd, model.p, tvec, wvec, sy, u0, su, sxdot, x0])
     # keep strictly off the state bounds (square roots of levels have no slope at 0)
     span = np.where(np.isfinite(xhi - xlo), xhi - xlo, 0.0)
     lbx = np.concatenate([xlo + 1e-9 * span, ulo])
