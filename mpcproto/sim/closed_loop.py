@@ -293,6 +293,7 @@ class ClosedLoop:
         self._cv_index = {n: j for j, n in enumerate(m.cv_names)}
         self._mv_index = {n: j for j, n in enumerate(m.mv_names)}
         self._dv_mask = np.array([v.measured for v in m.variables("dv")], bool)
+        self._rate_per_sample = np.where(np.isfinite(self.mv_rate), self.mv_rate * self.Ts, np.inf)
 
     def _fault_vars(self) -> list[str]:
         out: list[str] = []
@@ -369,10 +370,10 @@ class ClosedLoop:
         k, m = self.k, self.model
         t = float(self.times[k])
         d = self.D[k]
-        y = self.plant.output(self.u_prev, d)
+        y = self.plant.y_next if self.plant.y_next is not None else self.plant.output(self.u_prev, d)
         meas = self._measure(k, t, y)
         dv_seen = np.where(self._dv_mask, d, np.nan)
-        rate = np.where(np.isfinite(self.mv_rate), self.mv_rate * self.Ts, np.inf)
+        rate = self._rate_per_sample
         targets = Targets(setpoint=self.SP[k].copy(), cv_low=self.LO[k].copy(), cv_high=self.HI[k].copy(),
                           mv_low=self.MVLO[k].copy(), mv_high=self.MVHI[k].copy(), mv_rate=rate)
         fc = None
@@ -390,7 +391,7 @@ class ClosedLoop:
                 f"controller '{getattr(self.controller, 'name', '?')}'.step() must return a "
                 f"ControlOutput; got {type(out).__name__}.")
         ucmd = np.asarray(out.u, float).reshape(-1)
-        if ucmd.shape != (m.nu,):
+        if ucmd.shape != self.u_prev.shape:
             raise SettingsError(
                 f"controller '{getattr(self.controller, 'name', '?')}' returned {ucmd.shape[0]} MV "
                 f"values; model '{m.name}' has {m.nu} ({', '.join(m.mv_names)}).")
@@ -406,11 +407,13 @@ class ClosedLoop:
             elif isinstance(v, (int, float, np.integer, np.floating)):
                 diag[str(key)] = float(v)
         self._diag.append(diag)
-        for i, var in enumerate(self._fault_vars()):
-            self._fault_flags[k, i] = float(any(f.variable == var and f.active(t) for f in self.faults))
+        if self.faults:
+            for i, var in enumerate(self._fault_vars()):
+                self._fault_flags[k, i] = float(any(f.variable == var and f.active(t)
+                                                    for f in self.faults))
         self.u_prev = u
         try:
-            self.plant.advance(u, d)
+            self.plant.advance(u, d, self.D[k + 1] if k + 1 < len(self.D) else d)
         except SimulationError as exc:
             return self._fail(k, str(exc), rows=k + 1)
         self.k += 1

@@ -49,6 +49,9 @@ class Plant:
     ----------
     step_ : casadi.Function
         ``(x0, p) -> xf`` over one sample, ``p = [u; d; z; parameters]``.
+    step_out_ : casadi.Function
+        ``(x0, p, q) -> (xf, y)``: the same step plus the CVs at its end with inputs ``q``
+        (used by :meth:`advance`, so a closed-loop sample costs one CasADi call).
     delay_steps_ : list of int
         Whole-sample length of each delay buffer (``model.delays`` order).
     """
@@ -84,8 +87,14 @@ class Plant:
         self.integrator_ = F
         X0 = ca.MX.sym("x0", nx)
         P = ca.MX.sym("p", pv.numel())
-        self.step_ = ca.Function(f"{model.name}_plant_step", [X0, P], [F(x0=X0, p=P)["xf"]],
-                                 ["x0", "p"], ["xf"])
+        xf = F(x0=X0, p=P)["xf"]
+        self.step_ = ca.Function(f"{model.name}_plant_step", [X0, P], [xf], ["x0", "p"], ["xf"])
+        # one call per sample: integrate and evaluate the CVs at the end of the sample, with the
+        # inputs q = [u; d; z; parameters] that will act at the start of the next one
+        Q = ca.MX.sym("q", pv.numel())
+        yf = model.out_(xf, Q[:nu], Q[nu:nu + nd], Q[nu + nd:nu + nd + nz], Q[nu + nd + nz:])
+        self.step_out_ = ca.Function(f"{model.name}_plant_step_out", [X0, P, Q], [xf, yf],
+                                     ["x0", "p", "q"], ["xf", "y"])
         self.delay_steps_ = [delay_samples(dl.dead_time, self.Ts, what=f"dead time on {dl.source}")
                              for dl in model.delays]
         self._z_src = [(dl.source_role, model.names(dl.source_role).index(dl.source))
@@ -97,6 +106,7 @@ class Plant:
         self._u0 = np.zeros(nu)
         self._d0 = np.zeros(nd)
         self.k = 0
+        self.y_next: np.ndarray | None = None
 
     # ------------------------------------------------------------------ run
     def reset(self, x0: np.ndarray, u0: np.ndarray, d0: np.ndarray) -> None:
@@ -107,6 +117,7 @@ class Plant:
         self._d0 = m.vector("dv", d0, what="Plant.reset d0").copy()
         self._hist_u, self._hist_d = [], []
         self.k = 0
+        self.y_next = None
 
     def z(self, u: np.ndarray, d: np.ndarray) -> np.ndarray:
         """Delayed inputs acting over the current sample if *u*, *d* are applied now."""
@@ -124,29 +135,42 @@ class Plant:
         """True CVs at the current state with inputs *u*, *d*."""
         return np.asarray(self.model.out_(self.x, u, d, self.z(u, d), self._p), float).reshape(-1)
 
-    def advance(self, u: np.ndarray, d: np.ndarray) -> np.ndarray:
+    def advance(self, u: np.ndarray, d: np.ndarray, d_next: np.ndarray | None = None) -> np.ndarray:
         """Integrate one sample with *u*, *d* held; returns the new state.
 
-        Raises :class:`SimulationError` if the integrator fails or the state becomes non-finite
-        (the plant state is left at the start of the failed sample).
+        The CVs at the end of the sample (MVs still at *u*, DVs at *d_next*, default *d*) are
+        left in :attr:`y_next`.  Raises :class:`SimulationError` if the integrator fails or the
+        state becomes non-finite (the plant is left at the start of the failed sample).
         """
         u = np.asarray(u, float)
         d = np.asarray(d, float)
+        dn = d if d_next is None else np.asarray(d_next, float)
         pv = np.concatenate([u, d, self.z(u, d), self._p])
+        self._hist_u.append(u.copy())
+        self._hist_d.append(d.copy())
+        self.k += 1
+        q = np.concatenate([u, dn, self.z(u, dn), self._p])
         try:
-            xf = np.asarray(self.step_(self.x, pv), float).reshape(-1)
+            xf_dm, y_dm = self.step_out_(self.x, pv, q)
+            xf = np.array(xf_dm.elements(), float)
+            y = np.array(y_dm.elements(), float)
         except RuntimeError as exc:
+            self._undo()
             last = [ln for ln in str(exc).splitlines() if ln.strip()]
             raise SimulationError(
                 f"plant integrator {self.plugin!r} failed on the sample starting at step {self.k}: "
                 f"{last[-1] if last else exc}") from None
-        if not np.all(np.isfinite(xf)):
+        if not math.isfinite(float(xf.sum())):
+            self._undo()
             bad = [n for n, v in zip(self.model.state_names, xf) if not math.isfinite(v)]
             raise SimulationError(
                 f"plant state became non-finite on the sample starting at step {self.k}: "
                 f"{', '.join(bad)}")
-        self._hist_u.append(u.copy())
-        self._hist_d.append(d.copy())
         self.x = xf
-        self.k += 1
+        self.y_next = y
         return xf
+
+    def _undo(self) -> None:
+        self._hist_u.pop()
+        self._hist_d.pop()
+        self.k -= 1
