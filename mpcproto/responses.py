@@ -18,7 +18,7 @@ Inputs (held between samples of ``Ts``, zero-order hold):
     actually apply.  Keep ``Ts`` short against the unit's time constants.
 
 The nonlinear response comes from a CasADi integrator (the model's plugin, cvodes by default,
-tolerances 1e-10/1e-8) built once per call; dead times are whole-sample delays, rounded as
+tolerances abstol 1e-11, reltol 1e-10) built once per call; dead times are whole-sample delays, rounded as
 :func:`mpcproto.linear.delay_samples` rounds them.  The linear response is the exact ZOH
 discretization of the linearization (:meth:`~mpcproto.LinearModel.discretize`), so for a linear
 plant the two agree to integrator accuracy.
@@ -138,7 +138,7 @@ def _integrator(model, Ts: float):
     u, d = pv[:nu], pv[nu:nu + nd]
     z, p = pv[nu + nd:nu + nd + nz], pv[nu + nd + nz:]
     plugin = getattr(model, "integrator", "cvodes") or "cvodes"
-    opts = {"abstol": 1e-10, "reltol": 1e-8} if plugin in ("cvodes", "idas") else {}
+    opts = {"abstol": 1e-11, "reltol": 1e-10} if plugin in ("cvodes", "idas") else {}
     return ca.integrator(f"{model.name}_response", plugin,
                          {"x": x, "p": pv, "ode": model.ode_(x, u, d, z, p)}, 0.0, float(Ts), opts)
 

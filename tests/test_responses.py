@@ -1,0 +1,123 @@
+"""Open-loop step, pulse and impulse tests against analytic responses of the balances."""
+
+import math
+
+import matplotlib.image as mpimg
+import numpy as np
+import pytest
+
+import mpcproto as mp
+
+
+@pytest.fixture(scope="module")
+def tank():
+    m = mp.make_model("blending_tank")
+    return m, mp.steady_state(m)
+
+
+def test_heater_step_matches_the_analytic_first_order_response(tank):
+    # analytic: with the level constant, the energy balance M cp dT/dt = ... + Q - UA (T - Ta) is
+    # linear in T and Q, so a heater step dQ gives T(t) = T0 + dQ/(W cp + UA) (1 - exp(-t/tau)),
+    # tau = M cp/(W cp + UA), W = w1 + w2 -- for the nonlinear model and the linear one alike
+    m, op = tank
+    p = m.parameters
+    r = mp.open_loop_test(m, op, "heater_duty", kind="step", size=50.0, duration=3000.0, Ts=20.0)
+    W = op.u[0] + op.u[1]
+    M = p["density"] * p["area"] * op.x[0]
+    gain = 1.0 / (W * p["heat_capacity"] + p["loss_coefficient"])
+    tau = M * p["heat_capacity"] * gain
+    T_ref = op.x[2] + 50.0 * gain * (1 - np.exp(-r.t / tau))
+    # integrator tolerances (reltol 1e-10 of ~80 degC per step) allow ~1e-6 of the 8 K change
+    np.testing.assert_allclose(r.y_nonlinear[:, 2], T_ref, rtol=0, atol=1e-6 * 50.0 * gain)
+    np.testing.assert_allclose(r.y_linear[:, 2], T_ref, rtol=1e-10)
+    assert r.linearity["temperature"] < 1e-5
+    assert r.linearity["level"] == 0.0 and r.linearity["concentration"] == 0.0  # not moved at all
+    assert r.t[-1] == pytest.approx(3000.0) and r.u[0] == pytest.approx(op.u[2] + 50.0)
+
+
+def test_linear_plant_responses_coincide_and_follow_the_fopdt():
+    # Wood & Berry is linear: nonlinear and linear responses agree to integrator accuracy; the
+    # reflux -> top step follows K (1 - exp(-(t - theta)/tau)) with K 12.8, tau 16.7, theta 1
+    # (Wood & Berry 1973, from memory)
+    m = mp.make_model("wood_berry")
+    op = mp.steady_state(m)
+    with pytest.warns(UserWarning, match="dead time"):  # the feed delays 8.1 and 3.4 min
+        r = mp.open_loop_test(m, op, "reflux", size=0.1, duration=60.0, Ts=1.0)
+    assert max(r.linearity.values()) < 1e-5
+    k = r.t
+    ref = 96.25 + np.where(k >= 1, 0.1 * 12.8 * (1 - np.exp(-(k - 1) / 16.7)), 0.0)
+    np.testing.assert_allclose(r.y_nonlinear[:, 0], ref, atol=1e-7)
+    assert any("feed" in n for n in r.notes)
+
+
+def test_impulse_is_a_one_sample_pulse_of_the_given_area():
+    # analytic: K/(tau s + 1) driven by a pulse of height a/Ts over [0, Ts):
+    # y(k Ts) = (a/Ts) K (1 - exp(-Ts/tau)) exp(-(k - 1) Ts/tau) for k >= 1
+    K, tau, a, Ts = 2.0, 5.0, 3.0, 0.5
+    m = mp.transfer_matrix_model("lag", mvs=["u"], cvs=["y"], elements={"y": {"u": (K, tau, 0.0)}})
+    op = mp.steady_state(m)
+    r = mp.open_loop_test(m, op, "u", kind="impulse", size=a, duration=20.0, Ts=Ts)
+    k = np.arange(len(r.t))
+    ref = np.where(k >= 1, a / Ts * K * (1 - math.exp(-Ts / tau)) * np.exp(-(k - 1) * Ts / tau), 0.0)
+    np.testing.assert_allclose(r.y_nonlinear[:, 0], ref, atol=1e-8)
+    np.testing.assert_allclose(r.y_linear[:, 0], ref, atol=1e-12)
+    assert r.u[0] == pytest.approx(a / Ts) and r.u[1] == 0.0
+    # the response integrates to K * a (impulse area times gain), trapezoid over the samples
+    assert np.trapezoid(r.y_linear[:, 0], r.t) == pytest.approx(K * a, rel=0.02)
+
+
+def test_pulse_width_and_return(tank):
+    m, op = tank
+    r = mp.open_loop_test(m, op, "caustic_flow", kind="pulse", size=0.02, width=55.0, duration=600.0, Ts=10.0)
+    assert np.sum(r.u > op.u[0] + 0.01) == 6  # 55 s at 10 s rounded to 6 samples
+    assert any("rounded to 6 samples" in n for n in r.notes)
+    assert r.u[-1] == pytest.approx(op.u[0])
+
+
+def test_cstr_linearity_worsens_with_step_size():
+    # common practice, no source: the linearization error of a step test grows with the step size
+    # (Taylor remainder); the Henson-Seborg reactor near its ignition point is strongly nonlinear
+    m = mp.make_model("henson_seborg_cstr")
+    op = mp.steady_states(m, {"coolant_temperature": 300.0})[2]  # stable, low temperature
+    sweep = mp.linearity_sweep(m, op, "coolant_temperature", [0.5, 2.0], duration=8.0, Ts=0.1)
+    small, large = (s["linearity"]["temperature"] for s in sweep)
+    assert 0 < small < large
+    assert small < 0.1
+
+
+def test_dv_step_and_plot(tank, tmp_path):
+    m, op = tank
+    r = mp.open_loop_test(m, op, "water_temperature", size=-5.0, duration=2000.0, Ts=20.0)
+    assert r.input_role == "dv"
+    # analytic steady-state change: dT = w2 dT2 / (W cp + UA) * cp
+    p = m.parameters
+    W = op.u[0] + op.u[1]
+    dT = op.u[1] * p["heat_capacity"] * -5.0 / (W * p["heat_capacity"] + p["loss_coefficient"])
+    tau = p["density"] * p["area"] * op.x[0] * p["heat_capacity"] / (W * p["heat_capacity"] + p["loss_coefficient"])
+    assert r.y_nonlinear[-1, 2] - op.y[2] == pytest.approx(dT * (1 - math.exp(-2000.0 / tau)), rel=1e-6)
+    assert r.y_linear[-1, 2] - op.y[2] == pytest.approx(dT * (1 - math.exp(-2000.0 / tau)), rel=1e-9)
+    path = mp.plot_response_test(r, tmp_path / "sub" / "water_step.png")
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    img = mpimg.imread(path)
+    assert img.shape[0] > 400 and img.shape[1] == 800
+    assert img[..., :3].std() > 0.05  # something is drawn
+    d = r.as_dict()
+    assert d["cvs"]["temperature"]["unit"] == "degC" and len(d["t"]) == len(r.t)
+
+
+def test_bad_requests_are_named(tank):
+    m, op = tank
+    with pytest.raises(mp.SettingsError, match=r"'heater' is not an MV or DV.*did you mean 'heater_duty'"):
+        mp.open_loop_test(m, op, "heater", size=1.0)
+    with pytest.raises(mp.SettingsError, match=r"kind must be one of step, pulse, impulse; got 'stpe'"):
+        mp.open_loop_test(m, op, "heater_duty", kind="stpe", size=1.0)
+    with pytest.raises(mp.SettingsError, match=r"size must be a finite non-zero number; got 0"):
+        mp.open_loop_test(m, op, "heater_duty", size=0)
+    with pytest.raises(mp.SettingsError, match=r"Ts must be a finite number > 0; got -1"):
+        mp.open_loop_test(m, op, "heater_duty", size=1.0, Ts=-1.0, duration=10.0)
+    other = mp.make_model("henson_seborg_cstr")
+    with pytest.raises(mp.SettingsError, match=r"operating point belongs to model 'blending_tank'"):
+        mp.open_loop_test(other, op, "coolant_temperature", size=1.0)
+    r = mp.open_loop_test(m, op, "heater_duty", size=10.0, duration=100.0, Ts=10.0)
+    with pytest.raises(mp.SettingsError, match=r"must end in .png; got 'out.svg'"):
+        mp.plot_response_test(r, "out.svg")
