@@ -6,7 +6,7 @@ Operating points and linear models (layer 2)
     OperatingPoint, LinearModel, DiscreteLinearModel, linearize, rga,
     steady_states, steady_state, solve_targets, TargetResult
 Open-loop tests (layer 2)
-    open_loop_test, plot_response_test, linearity_sweep, ResponseTest
+    open_loop_test, plot_response_test, linearity_sweep, ResponseTest, fit_step_response, StepFit
 Built-in models (layer 1)
     models, make_model, available_models, transfer_matrix_model, TransferElement
 Controller protocol (layer 3)
@@ -35,7 +35,9 @@ from .model import Model, Variable, Delay
 from .operating import OperatingPoint, TargetResult, steady_states, steady_state, solve_targets
 from .linear import LinearModel, DiscreteLinearModel, linearize, rga
 from .control.base import Controller, Measurement, Targets, ControlOutput
-from .responses import ResponseTest, open_loop_test, plot_response_test, linearity_sweep
+from .responses import (
+    ResponseTest, open_loop_test, plot_response_test, linearity_sweep, StepFit, fit_step_response,
+)
 from . import models
 from .models import TransferElement, transfer_matrix_model
 from .trajectory import Trajectory
@@ -64,6 +66,7 @@ __all__ = [
     "Controller", "Measurement", "Targets", "ControlOutput",
     "TargetResult", "steady_states", "steady_state", "solve_targets",
     "ResponseTest", "open_loop_test", "plot_response_test", "linearity_sweep",
+    "StepFit", "fit_step_response",
     "models", "make_model", "available_models", "transfer_matrix_model", "TransferElement",
     "Trajectory", "Signal", "signal_from_spec", "Instrument", "Actuator", "Fault",
     "instrument_from_spec", "actuator_from_spec", "fault_from_spec", "Plant", "ClosedLoop",

@@ -4,7 +4,8 @@ Before a controller is designed, an engineer moves one MV (or watches one DV) by
 and records how every CV answers.  :func:`open_loop_test` does this on the **nonlinear** model and,
 beside it, on its **linearization** at the same operating point, so the reach of the linear model is
 visible; :func:`plot_response_test` draws both to a PNG and :func:`linearity_sweep` repeats the test
-for several sizes (and both directions).
+for several sizes (and both directions).  :func:`fit_step_response` turns a recorded step response
+into a first- or second-order-plus-dead-time element (for :func:`~mpcproto.transfer_matrix_model`).
 
 Inputs (held between samples of ``Ts``, zero-order hold):
 
@@ -48,7 +49,8 @@ from .linear import delay_samples, linearize
 from .model import suggest
 from .operating import OperatingPoint
 
-__all__ = ["ResponseTest", "open_loop_test", "plot_response_test", "linearity_sweep"]
+__all__ = ["ResponseTest", "open_loop_test", "plot_response_test", "linearity_sweep", "StepFit",
+           "fit_step_response"]
 
 KINDS = ("step", "pulse", "impulse")
 
@@ -383,3 +385,121 @@ def plot_response_test(result: ResponseTest, path: str | Path, *, title: str | N
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path, dpi=100)
     return path
+
+
+# ---------------------------------------------------------------------------------------------
+# FOPDT / SOPDT fits from step data
+
+
+@dataclass(frozen=True)
+class StepFit:
+    """A first- or second-order-plus-dead-time model fitted to one step response.
+
+    Attributes
+    ----------
+    gain : float
+        Steady-state gain (CV change per unit input step).
+    time_constants : tuple of float
+        One (FOPDT) or two (SOPDT, largest first) time constants.
+    dead_time : float
+        Dead time (time unit of the data).
+    rms_error : float
+        Root-mean-square residual of the fit (CV unit).
+    element : TransferElement
+        The same, ready for :func:`~mpcproto.transfer_matrix_model`.
+    """
+
+    gain: float
+    time_constants: tuple[float, ...]
+    dead_time: float
+    rms_error: float
+    element: Any
+
+
+def _step_model(t: np.ndarray, K: float, taus: Sequence[float], theta: float) -> np.ndarray:
+    s = np.clip(t - theta, 0.0, None)
+    if len(taus) == 1:
+        return K * (1.0 - np.exp(-s / taus[0]))
+    t1, t2 = taus
+    if abs(t1 - t2) < 1e-6 * max(t1, t2):  # double pole: the limit of the formula below
+        return K * (1.0 - (1.0 + s / t1) * np.exp(-s / t1))
+    return K * (1.0 - (t1 * np.exp(-s / t1) - t2 * np.exp(-s / t2)) / (t1 - t2))
+
+
+def fit_step_response(t: Sequence[float], y: Sequence[float], *, size: float, order: int = 1,
+                      t_step: float = 0.0, y0: float | None = None) -> StepFit:
+    """Fit ``K e^{-theta s} / prod(tau_i s + 1)`` (one or two lags) to a recorded step response.
+
+    The way plant step tests become transfer-matrix models: least squares (scipy ``least_squares``,
+    bounded: time constants > 0, dead time >= 0) on the analytic step response
+    ``y0 + size K (1 - exp(-(t - t_step - theta)/tau))`` (or its two-lag form), started from the
+    usual graphical estimates (gain from the final value, dead time where the response leaves 2 %
+    of its change, time constant at 63 %).
+
+    Parameters
+    ----------
+    t, y : sequence of float
+        Sample times and CV values (same length, at least 5 samples after the step).
+    size : float
+        Height of the input step (input unit); the gain is per unit of input.
+    order : {1, 2}
+        FOPDT or SOPDT.
+    t_step : float
+        Time of the step.
+    y0 : float, optional
+        CV value before the step (default: the first sample at or before ``t_step``).
+
+    Returns
+    -------
+    StepFit
+    """
+    from scipy.optimize import least_squares
+
+    from .models.transfer_matrix import TransferElement
+
+    t = np.asarray(t, float).reshape(-1)
+    y = np.asarray(y, float).reshape(-1)
+    if t.shape != y.shape or t.size < 5 or not (np.all(np.isfinite(t)) and np.all(np.isfinite(y))):
+        raise SettingsError(f"fit_step_response(): t and y must be finite and of the same length >= 5; "
+                            f"got shapes {t.shape} and {y.shape}.")
+    if np.any(np.diff(t) <= 0):
+        raise SettingsError("fit_step_response(): t must be strictly increasing.")
+    if order not in (1, 2):
+        raise SettingsError(f"fit_step_response(): order must be 1 (FOPDT) or 2 (SOPDT); got {order!r}.")
+    if isinstance(size, bool) or not isinstance(size, numbers.Real) or not math.isfinite(size) or size == 0:
+        raise SettingsError(f"fit_step_response(): size must be a finite non-zero number; got {size!r}.")
+    if y0 is None:
+        before = np.nonzero(t <= t_step)[0]
+        y0 = float(y[before[-1]] if before.size else y[0])
+    after = t >= t_step
+    if np.count_nonzero(after) < 5:
+        raise SettingsError("fit_step_response(): need at least 5 samples after the step.")
+    ta = t[after] - t_step
+    dy = y[after] - y0
+    change = dy[-1]
+    if abs(change) <= 1e-12 * max(1.0, abs(y0)):
+        raise SettingsError("fit_step_response(): the response does not move; nothing to fit.")
+    K0 = change / size
+    moved = np.nonzero(np.abs(dy) > 0.02 * abs(change))[0]
+    theta0 = float(ta[moved[0] - 1]) if moved.size and moved[0] > 0 else 0.0
+    hit = np.nonzero(np.abs(dy) >= 0.632 * abs(change))[0]
+    tau0 = max(float(ta[hit[0]]) - theta0, (ta[1] - ta[0])) if hit.size else float(ta[-1]) / 3
+    span = float(ta[-1])
+
+    def resid(v):
+        K, theta, *logt = v
+        return size * _step_model(ta, K, np.exp(logt), theta) - dy
+
+    if order == 1:
+        x0 = [K0, theta0, math.log(tau0)]
+    else:
+        x0 = [K0, theta0, math.log(0.7 * tau0), math.log(0.3 * tau0)]
+    lo = [-np.inf, 0.0] + [math.log(1e-6 * span)] * order
+    hi = [np.inf, span] + [math.log(100 * span)] * order
+    sol = least_squares(resid, x0, bounds=(lo, hi), x_scale="jac", xtol=1e-12, ftol=1e-12, gtol=1e-12)
+    K, theta, *logt = sol.x
+    theta = 0.0 if theta < 1e-9 * span else float(theta)
+    taus = tuple(sorted((float(v) for v in np.exp(logt)), reverse=True))
+    rms = float(np.sqrt(np.mean(sol.fun ** 2)))
+    el = TransferElement(gain=float(K), time_constants=taus, dead_time=float(theta))
+    return StepFit(gain=float(K), time_constants=taus, dead_time=float(theta), rms_error=rms, element=el)

@@ -121,3 +121,35 @@ def test_bad_requests_are_named(tank):
     r = mp.open_loop_test(m, op, "heater_duty", size=10.0, duration=100.0, Ts=10.0)
     with pytest.raises(mp.SettingsError, match=r"must end in .png; got 'out.svg'"):
         mp.plot_response_test(r, "out.svg")
+
+
+def test_fopdt_fit_recovers_the_wood_berry_element():
+    # reference: the published reflux -> bottoms element 6.6 e^{-7s}/(10.9 s + 1) (Wood & Berry 1973,
+    # from memory), sampled at 0.5 min: the fit must give it back
+    m = mp.make_model("wood_berry")
+    op = mp.steady_state(m)
+    with pytest.warns(UserWarning):
+        r = mp.open_loop_test(m, op, "reflux", size=0.1, duration=100.0, Ts=0.5)
+    fit = mp.fit_step_response(r.t, r.y_nonlinear[:, 1], size=0.1)
+    assert fit.gain == pytest.approx(6.6, rel=1e-6)
+    assert fit.time_constants[0] == pytest.approx(10.9, rel=1e-5)
+    assert fit.dead_time == pytest.approx(7.0, abs=1e-5)
+    # the element rebuilds an equivalent plant
+    plant = mp.transfer_matrix_model("refit", mvs=["reflux"], cvs=["xb"], elements=[[fit.element]])
+    assert mp.linearize(plant, mp.steady_state(plant)).gain()[0, 0] == pytest.approx(6.6, rel=1e-6)
+
+
+def test_sopdt_fit_finds_the_quadruple_tank_lags():
+    # Johansson (2000), from memory: pump 2 reaches tank 1 only through tank 3, a two-lag path with
+    # time constants T1 ~ 62 s and T3 ~ 23 s in the minimum-phase setting
+    m = mp.make_model("quadruple_tank")
+    op = mp.steady_state(m)
+    r = mp.open_loop_test(m, op, "v2", size=0.1, duration=800.0, Ts=2.0)
+    fit = mp.fit_step_response(r.t, r.y_nonlinear[:, 0], size=0.1, order=2)
+    assert fit.time_constants[0] == pytest.approx(62.0, rel=0.05)
+    assert fit.time_constants[1] == pytest.approx(23.0, rel=0.05)
+    assert fit.dead_time == pytest.approx(0.0, abs=0.5)
+    with pytest.raises(mp.SettingsError, match=r"order must be 1 \(FOPDT\) or 2 \(SOPDT\); got 3"):
+        mp.fit_step_response(r.t, r.y_nonlinear[:, 0], size=0.1, order=3)
+    with pytest.raises(mp.SettingsError, match=r"does not move"):
+        mp.fit_step_response(r.t, np.ones_like(r.t), size=0.1)
