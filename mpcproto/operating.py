@@ -294,9 +294,10 @@ def steady_state(model, u: Mapping[str, float] | Sequence[float] | np.ndarray | 
                  n_starts: int = 8) -> OperatingPoint:
     """The steady state nearest *x_guess* (default: the nominal state) for the given MVs and DVs.
 
-    Newton's method starts from the guess; if it does not converge inside the bounds,
-    :func:`steady_states` searches from *n_starts* further points and the steady state nearest the
-    guess (distance scaled by the state bounds) is returned.
+    :func:`steady_states` searches from the guess, the nominal state and *n_starts* further points
+    (fixed seed); the steady state nearest the guess (distance scaled by the state bounds) is
+    returned.  Where the steady states are not isolated (an integrating level), it is the one the
+    bounded least-squares solve reaches from the guess.
 
     Raises
     ------
@@ -307,15 +308,6 @@ def steady_state(model, u: Mapping[str, float] | Sequence[float] | np.ndarray | 
     _require(model, where)
     xg = model.vector("state", x_guess, what=f"{where}: x_guess")
     uu, dd = _inputs(model, u, d, where)
-    z = model.z_of(uu, dd)
-    rf = _rootfinder(model)
-    if rf is False:
-        xs = _least_squares_root(model, xg, uu, dd, z, model.p)
-        xs = np.full(model.nx, np.nan) if xs is None else xs
-    else:
-        xs = np.asarray(rf(xg, np.concatenate([uu, dd, z, model.p])), float).reshape(-1)
-    if _converged(model, xs, uu, dd, z, model.p) and _in_box(model, xs):
-        return OperatingPoint.at(model, xs, uu, dd)
     ops = steady_states(model, uu, dd, starts=[xg], n_starts=n_starts)
     if not ops:
         ul = ", ".join(f"{n}={v:g}" for n, v in zip(model.mv_names, uu))
