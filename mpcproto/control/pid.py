@@ -250,8 +250,10 @@ class PIDController:
             u_out[mj] = u
         if held:
             status = STATUS_HOLD
-        return ControlOutput(u=u_out, status=status,
-                             diagnostics={"loops_held": held, "loops_saturated": saturated})
+        diag: dict[str, float] = {"loops_held": held, "loops_saturated": saturated}
+        for lp, st in zip(self.loops, self._state):
+            diag[f"integral.{lp.mv}"] = st.i
+        return ControlOutput(u=u_out, status=status, diagnostics=diag)
 
 
 # ---------------------------------------------------------------------------------- pairing
