@@ -190,8 +190,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
     scn = load_scenario(args.scenario)
     summary = run_scenario(scn, args.out, plots=not args.no_plots, ci=args.ci)
     if summary["status"] != "ok":
-        print(f"mpcproto run: the case did not complete: {summary['message']}", file=sys.stderr)
-        return EXIT_FAILED
+        print(f"mpcproto run: error: {summary['message']}", file=sys.stderr)
+        return EXIT_BAD_INPUT
     for label, res in summary["controllers"].items():
         for cr in res["criteria"]:
             mark = "pass" if cr["passed"] else "FAIL"

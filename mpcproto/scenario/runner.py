@@ -231,9 +231,9 @@ def build_controller(label: str, spec: Mapping[str, Any], prep: Prepared) -> Any
     key = f"controllers.{label}"
     try:
         if spec["kind"] == "mpc":
-            from ..control.mpc import from_settings
+            from ..control.mpc import PredictiveController
 
-            ctl = from_settings(prep.dmodel, settings)
+            ctl = PredictiveController.from_settings(prep.dmodel, settings).build()
         else:
             ctl = _build_pid(settings, prep, key)
     except ScenarioError:
@@ -368,8 +368,8 @@ def run_scenario(scn: Scenario | str | Path, out_dir: str | Path, *, plots: bool
     """Run a scenario's nominal case and write its results to *out_dir* (created).
 
     Writes ``summary.json`` (the result record of :func:`run_case`), ``trajectories_<label>.csv``
-    per controller and, with *plots*, PNG figures of the CVs and MVs (``plot_<label>.png``) and a
-    comparison of the controllers (``compare.png``).  Sweeps and Monte Carlo draws are ignored (they
+    per controller and, with *plots*, PNG figures of the CVs and of the MVs with every controller
+    overlaid (``plot_cvs.png``, ``plot_mvs.png``).  Sweeps and Monte Carlo draws are ignored (they
     are for ``mpcproto batch``).
 
     Returns
@@ -395,15 +395,7 @@ def run_scenario(scn: Scenario | str | Path, out_dir: str | Path, *, plots: bool
 
 
 def _plots(trajs: Mapping[str, Any], out: Path, title: str) -> list[str]:
-    from ..report import plots
+    from ..report.plots import plot_comparison
 
-    names = []
-    for label, traj in trajs.items():
-        p = out / f"plot_{label}.png"
-        plots.plot_trajectory(traj, p, title=f"{title}: {label}")
-        names.append(p.name)
-    if len(trajs) > 1:
-        p = out / "compare.png"
-        plots.plot_comparison(dict(trajs), p, title=title)
-        names.append(p.name)
-    return names
+    paths = plot_comparison(dict(trajs), out, stem="plot", title=title)
+    return [Path(p).name for p in paths]
