@@ -1,0 +1,74 @@
+"""Comparison runs: same disturbances and noise for every controller; scorecard; PNG plots."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+import mpcproto as mp
+
+
+@pytest.fixture(scope="module")
+def comparison():
+    tank = mp.make_model("blending_tank")
+    op = mp.OperatingPoint.at(tank, tank.nominal("state"), tank.nominal("mv"), tank.nominal("dv"))
+    tight = mp.pid_from_settings(tank, op, 10.0, {"tau_c": {"level": 120, "concentration": 300,
+                                                            "temperature": 200}})
+    loose = mp.pid_from_settings(tank, op, 10.0, {"tau_c": 600.0})
+    return mp.compare(
+        tank, {"tight": tight, "loose": loose}, op=op, Ts=10.0, duration=2400.0, rng=21,
+        dvs={"draw_off": [{"kind": "step", "at": 300, "size": 0.3},
+                          {"kind": "random_walk", "step_std": 0.02, "interval": 60}],
+             "caustic_strength": {"kind": "step", "at": 1200, "size": -0.04}},
+        setpoints={"temperature": {"kind": "step", "at": 1800, "size": 2.0}},
+        cv_limits={"concentration": {"low": 1.9, "high": 2.1}},
+        instruments={"concentration": {"noise_std": 0.005, "dead_time": 60, "period": 120},
+                     "temperature": {"noise_std": 0.05}},
+        faults=[{"kind": "sensor_frozen", "variable": "level", "at": 2000, "until": 2100}])
+
+
+def test_every_controller_sees_the_same_disturbances_and_noise(comparison):
+    a, b = comparison.trajectories["tight"], comparison.trajectories["loose"]
+    for name in a.names("d"):
+        assert np.array_equal(a.series("d", name), b.series("d", name))
+    # temperature has noise only (no lag): measured - true is the noise sequence itself
+    na = a.series("ym", "temperature") - a.series("y", "temperature")
+    nb = b.series("ym", "temperature") - b.series("y", "temperature")
+    assert np.allclose(na, nb, atol=1e-9) and np.std(na) > 0.03
+    # ... while the controllers really did different things
+    assert not np.allclose(a.series("u", "heater_duty"), b.series("u", "heater_duty"))
+
+
+def test_scorecard_side_by_side(comparison):
+    rows = comparison.scorecard()
+    iae = {r["variable"]: r for r in rows if r["group"] == "cv" and r["metric"] == "iae"}
+    assert set(iae) == {"level", "concentration", "temperature"}
+    # the tighter tuning has the smaller integrated error on the level (lower is better)
+    assert iae["level"]["tight"] < iae["level"]["loose"]
+    assert comparison.summaries["tight"]["kpi"]["cv"]["level"]["iae"] == iae["level"]["tight"]
+    text = comparison.scorecard_text()
+    assert "tight" in text.splitlines()[0] and "concentration" in text
+    json.dumps(comparison.to_dict(), allow_nan=False)
+
+
+def test_plots_are_written_as_png(comparison, tmp_path):
+    paths = comparison.plot(tmp_path, stem="tank")
+    assert [p.name for p in paths] == ["tank_cvs.png", "tank_mvs.png"]
+    for p in paths:
+        data = p.read_bytes()
+        assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 20_000
+    csvs = comparison.save_csv(tmp_path)
+    back = mp.Trajectory.from_csv(csvs[0])
+    assert back.meta["controller"] == "tight"
+
+
+def test_compare_refuses_a_generator_and_duplicate_names():
+    tank = mp.make_model("blending_tank")
+    op = mp.OperatingPoint.at(tank, tank.nominal("state"), tank.nominal("mv"), tank.nominal("dv"))
+    ol = mp.OpenLoop(tank.mv_names)
+    with pytest.raises(mp.SettingsError, match="same noise"):
+        mp.compare(tank, {"a": ol}, op=op, Ts=10.0, duration=100.0, rng=np.random.default_rng(1))
+    with pytest.raises(mp.SettingsError, match="two controllers are named 'open_loop'"):
+        mp.compare(tank, [ol, mp.OpenLoop(tank.mv_names)], op=op, Ts=10.0, duration=100.0)
