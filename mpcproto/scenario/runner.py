@@ -122,7 +122,6 @@ def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None
         Use the CI-sized run length (``scenario.ci.duration``) when the scenario gives one.
     """
     from ..linear import linearize
-    from ..sim import actuator_from_spec, fault_from_spec, instrument_from_spec, signal_from_spec
 
     plant = plant_model(scn)
     model = controller_model(scn, base=base_parameters)
@@ -141,6 +140,18 @@ def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None
     check_names(scn, plant, "actuators", "mv", d["actuators"])
     check_names(scn, plant, "limits", ("cv", "mv"), d["limits"])
 
+    sim = _check_specs(scn, plant)
+    _check_criteria_names(scn, plant)
+    return Prepared(scenario=scn, plant=plant, model=model, op=op, model_op=model_op, dmodel=dmodel,
+                    sim=sim, duration=_duration(scn, ci))
+
+
+def _check_specs(scn: Scenario, plant: Any = None) -> dict[str, Any]:
+    """Check the simulator specs of a scenario with the simulator's factories; return simulate()'s
+    keyword arguments.  Without *plant* the names are not checked against the model."""
+    from ..sim import actuator_from_spec, fault_from_spec, instrument_from_spec, signal_from_spec
+
+    d = scn.data
     dvs: dict[str, Any] = {}
     for k, spec in d["disturbances"].items():
         try:
@@ -161,7 +172,7 @@ def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None
     cv_limits: dict[str, Any] = {}
     mv_limits: dict[str, Any] = {}
     for k, lim in d["limits"].items():
-        if k in plant.cv_names:
+        if (plant is not None and k in plant.cv_names) or (plant is None and "rate" not in lim):
             if "rate" in lim:
                 raise ScenarioError("expected 'low' and/or 'high' for a CV (a rate limit applies to "
                                     "MVs only); found 'rate'.", file=scn.file, key=f"limits.{k}.rate")
@@ -189,6 +200,9 @@ def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None
             f = fault_from_spec(spec, what=f"faults.{k}")
         except SettingsError as e:
             raise settings_error(e, scn, f"faults.{k}", spec) from None
+        if plant is None:
+            faults.append(f)
+            continue
         role, names = ("cv", plant.cv_names) if f.on_sensor else ("mv", plant.mv_names)
         if f.variable not in names:
             raise ScenarioError(
@@ -196,11 +210,8 @@ def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None
                 f"({', '.join(names)}); found '{f.variable}'{suggest(f.variable, names)}.",
                 file=scn.file, key=f"faults.{k}.variable")
         faults.append(f)
-    _check_criteria_names(scn, plant)
-    sim = {"dvs": dvs, "setpoints": setpoints, "cv_limits": cv_limits, "mv_limits": mv_limits,
-           "instruments": instruments, "actuators": actuators, "faults": faults}
-    return Prepared(scenario=scn, plant=plant, model=model, op=op, model_op=model_op, dmodel=dmodel,
-                    sim=sim, duration=_duration(scn, ci))
+    return {"dvs": dvs, "setpoints": setpoints, "cv_limits": cv_limits, "mv_limits": mv_limits,
+            "instruments": instruments, "actuators": actuators, "faults": faults}
 
 
 def _check_criteria_names(scn: Scenario, plant: Any) -> None:
@@ -270,10 +281,10 @@ def check_scenario(scn: Scenario | str | Path, *, build_controllers: bool = True
         for label, spec in scn.data["controllers"].items():
             build_controller(label, spec, prep)
     if scn.data["study"]["sweep"] or scn.data["study"]["draw"]:
-        from .study import iter_cases
+        from .study import check_case, iter_cases
 
         for i, c in enumerate(iter_cases(scn, full=True)):
-            case_scenario(c)
+            check_case(c)
             if i >= 1000:
                 break
     return prep

@@ -38,7 +38,8 @@ import numpy as np
 from ..exceptions import MpcprotoError, ScenarioError
 from .schema import Scenario, _split, get_path, load_scenario, parse_scenario, set_path
 
-__all__ = ["Case", "expand", "iter_cases", "count_cases", "case_scenario", "draw_values"]
+__all__ = ["Case", "expand", "iter_cases", "count_cases", "case_scenario", "check_case",
+           "draw_values"]
 
 
 @dataclass(frozen=True)
@@ -217,16 +218,30 @@ def expand(scn: Scenario | str, *, full: bool = False, ci: bool | None = None,
            check: bool = True) -> list[Case]:
     """All cases of a study (see :func:`iter_cases`); a path is loaded first.
 
-    With ``check=True`` every case's scenario is re-validated with its overrides applied, so a sweep
-    value out of range is reported now (naming the sweep key) rather than in a worker.
+    With ``check=True`` every case's scenario is re-validated with its overrides applied (schema and
+    the simulator's signal/instrument/actuator/fault factories), so a sweep value out of range is
+    reported now (naming the key and the case) rather than in a worker.
     """
     if not isinstance(scn, Scenario):
         scn = load_scenario(scn)
     cases = list(iter_cases(scn, full=full, ci=ci))
     if check:
         for c in cases:
-            case_scenario(c)
+            check_case(c)
     return cases
+
+
+def check_case(case: Case) -> Scenario:
+    """:func:`case_scenario` plus the simulator's checks of its signal, instrument, actuator and
+    fault specs (no model needed); errors on a key the case sets name the case."""
+    from .runner import _check_specs
+
+    sc = case_scenario(case)
+    try:
+        _check_specs(sc)
+    except ScenarioError as e:
+        raise _blame(e, case) from None
+    return sc
 
 
 def case_scenario(case: Case) -> Scenario:
@@ -241,10 +256,16 @@ def case_scenario(case: Case) -> Scenario:
     try:
         return parse_scenario(raw, file=case.file, default_name=case.scenario)
     except ScenarioError as e:
-        if e.key in case.params or any(e.key and e.key.startswith(k) for k in case.params):
-            raise ScenarioError(f"{_strip(e)} (value set by case {case.case_id})",
-                                file=case.file, key=e.key) from None
-        raise
+        raise _blame(e, case) from None
+
+
+def _blame(e: ScenarioError, case: Case) -> ScenarioError:
+    """Add the case id to an error on a key path the case overrides (or a key inside it)."""
+    if e.key and any(e.key == k or e.key.startswith(k + ".") or k.startswith(e.key + ".")
+                     for k in case.params):
+        return ScenarioError(f"{_strip(e)} (value set by case {case.case_id})",
+                             file=case.file, key=e.key)
+    return e
 
 
 def _strip(e: ScenarioError) -> str:
