@@ -81,12 +81,12 @@ from test_batch_workload import make_cases, run_tank_case
 from mpcproto.scenario.batch import run_batch
 
 if __name__ == "__main__":
-    run_batch(make_cases({n}, steps=4000), {out!r}, workers=2, run=run_tank_case, progress=False)
+    run_batch(make_cases({n}, steps=1500), {out!r}, workers=2, run=run_tank_case, progress=False)
 """
 
 
 def test_resume_after_a_killed_batch_loses_no_case_and_runs_none_twice(tmp_path):
-    n = 14
+    n = 10
     out_dir = tmp_path / "out"
     script = tmp_path / "batch_script.py"
     script.write_text(textwrap.dedent(_KILL_SCRIPT.format(tests=str(TESTS_DIR), n=n, out=str(out_dir))))
@@ -114,7 +114,7 @@ def test_resume_after_a_killed_batch_loses_no_case_and_runs_none_twice(tmp_path)
     assert len(before) == len(done_before)
 
     ran_now: list[str] = []
-    cases = make_cases(n, steps=4000)
+    cases = make_cases(n, steps=1500)
     out = run_batch(cases, out_dir, workers=2, run=run_tank_case, resume=True,
                     progress=lambda done, total, rec: ran_now.append(rec["case_id"]))
     after = _lines(results)

@@ -133,3 +133,19 @@ def test_workload_integrator_matches_scipy_and_torricelli():
     r2 = run_tank_case(TankCase("a", gain=0.3, seed=1, steps=200))
     assert r1 == r2
     assert r1["controllers"]["pi"]["kpi"]["level"]["iae"] > 0
+
+
+def batch_records(tmp_path, *, n: int = 6, bad: tuple[int, ...] = (4,), tight: tuple[int, ...] = (1,),
+                  steps: int = 100) -> list[dict]:
+    """Records of a small real batch (one worker thread: CasADi Functions are not thread-safe):
+    cases in *bad* raise, cases in *tight* fail their IAE criterion."""
+    from concurrent.futures import ThreadPoolExecutor
+    from dataclasses import replace
+
+    from mpcproto.scenario.batch import load_results, run_batch
+
+    cases = [replace(c, iae_limit=0.5) if i in tight else c
+             for i, c in enumerate(make_cases(n, steps=steps, bad=bad))]
+    with ThreadPoolExecutor(1) as ex:
+        run_batch(cases, tmp_path, executor=ex, run=run_tank_case, progress=False)
+    return load_results(tmp_path / "results.jsonl")

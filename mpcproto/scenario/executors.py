@@ -13,28 +13,33 @@ Nothing in this module imports Dask at module import time.
 
 Start method
 ------------
-Worker processes are started with the ``"forkserver"`` method where the platform has it (Linux),
-with the package's scenario runner preloaded in the server: every worker is then forked from a small,
-single-threaded process that has already imported CasADi, so a worker starts in a fraction of a second
-without inheriting the parent's threads (a plain ``fork`` of a parent that runs solver or BLAS
-threads can deadlock the child).  ``"spawn"`` is the fallback elsewhere.  ``benchmarks/bench_batch.py``
-measures the start-up cost of each method.
+By default a worker process is a ``fork`` of the parent when the parent runs a single Python
+thread (the ``mpcproto batch`` command does): the worker then starts in milliseconds and inherits
+the models the parent already built while checking the scenarios.  A fork of a process that runs
+other threads (a Dask client, a GUI, a test runner with a cluster) can deadlock in the child, so then
+the ``"forkserver"`` method is used, with NumPy, CasADi and the package's scenario runner preloaded
+in the server (``"spawn"`` where the platform has no fork server).  ``benchmarks/bench_batch.py``
+measures the start-up cost of each method; on the 2-core test machine a pool of 2 workers was
+ready and through its first cases in 1.3 s with ``fork``, 2.9 s with a warm fork server (8.6 s when
+the server itself had to start and import everything) and 13.7 s with ``spawn``.
 """
 
 from __future__ import annotations
 
 import multiprocessing
 import os
+import threading
 from concurrent.futures import Executor, ProcessPoolExecutor
 from contextlib import contextmanager
 from typing import Iterator
 
 from ..exceptions import SettingsError
 
-__all__ = ["local_pool", "dask_executor", "executor_slots", "DASK_INSTALL_HINT", "START_METHODS"]
+__all__ = ["local_pool", "dask_executor", "executor_slots", "default_start_method", "default_workers",
+           "DASK_INSTALL_HINT", "START_METHODS"]
 
 DASK_INSTALL_HINT = 'pip install "mpcproto[dask]"'
-START_METHODS = ("forkserver", "spawn", "fork")
+START_METHODS = ("fork", "forkserver", "spawn")
 
 # Modules the fork server imports once, so that workers forked from it start warm.  Missing ones
 # are skipped by multiprocessing without error.
@@ -57,6 +62,14 @@ def default_workers() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+def default_start_method() -> str:
+    """``"fork"`` when it is safe (one Python thread), else ``"forkserver"`` or ``"spawn"``."""
+    available = multiprocessing.get_all_start_methods()
+    if "fork" in available and threading.active_count() == 1:
+        return "fork"
+    return "forkserver" if "forkserver" in available else "spawn"
+
+
 def local_pool(workers: int | None = None, *, start_method: str | None = None,
                preload: list[str] | None = None) -> ProcessPoolExecutor:
     """A process pool for a batch, workers kept alive across cases.
@@ -65,8 +78,9 @@ def local_pool(workers: int | None = None, *, start_method: str | None = None,
     ----------
     workers : int, optional
         Number of worker processes; default: the CPUs available to this process.
-    start_method : {"forkserver", "spawn", "fork"}, optional
-        How worker processes start; default ``"forkserver"`` where available, else ``"spawn"``.
+    start_method : {"fork", "forkserver", "spawn"}, optional
+        How worker processes start; default: ``"fork"`` when this process runs a single Python
+        thread, else ``"forkserver"`` (``"spawn"`` where neither exists); see the module docstring.
     preload : list of str, optional
         Modules a fork server imports before forking workers (only for ``"forkserver"``); default:
         numpy, casadi and the package's scenario runner.
@@ -79,7 +93,7 @@ def local_pool(workers: int | None = None, *, start_method: str | None = None,
     n = default_workers() if workers is None else _check_workers(workers)
     available = multiprocessing.get_all_start_methods()
     if start_method is None:
-        start_method = "forkserver" if "forkserver" in available else "spawn"
+        start_method = default_start_method()
     if start_method not in START_METHODS or start_method not in available:
         raise SettingsError(
             f"The 'start_method' argument of local_pool must be one of "
