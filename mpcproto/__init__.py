@@ -23,6 +23,9 @@ Closed-loop simulation (layer 4)
 Trajectory and analysis (layer 5)
     Trajectory, cv_performance, mv_usage, kpis, violations, controller_health, summarize,
     compare, Comparison
+Batch runs and reports (layer 6)
+    run_batch, BatchOutcome, load_results, local_pool, dask_executor, write_summary_csv,
+    compare_with_baseline, BaselineComparison, write_junit, write_html_report
 Errors
     MpcprotoError and its subclasses
 """
@@ -52,6 +55,12 @@ from .compare import compare, Comparison
 from .control.mpc import PredictiveController
 from .control.estimator import DisturbanceEstimator
 from .control.steady_target import SteadyTarget
+from .scenario.batch import run_batch, BatchOutcome, load_results
+from .scenario.executors import local_pool, dask_executor
+from .report.summary import write_summary_csv
+from .report.baseline import compare_with_baseline, BaselineComparison
+from .report.junit import write_junit
+from .report.html import write_html_report
 
 make_model = models.make
 available_models = models.available
@@ -77,4 +86,6 @@ __all__ = [
     "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",
     "compare", "Comparison",
     "PredictiveController", "DisturbanceEstimator", "SteadyTarget",
+    "run_batch", "BatchOutcome", "load_results", "local_pool", "dask_executor", "write_summary_csv",
+    "compare_with_baseline", "BaselineComparison", "write_junit", "write_html_report",
 ]
