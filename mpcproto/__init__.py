@@ -23,6 +23,9 @@ Closed-loop simulation (layer 4)
 Trajectory and analysis (layer 5)
     Trajectory, cv_performance, mv_usage, kpis, violations, controller_health, summarize,
     compare, Comparison
+Scenario files and studies (layer 6)
+    scenario, Scenario, load_scenario, parse_scenario, check_scenario, Case, expand, run_case,
+    run_scenario, linear_report
 Batch runs and reports (layer 6)
     run_batch, BatchOutcome, load_results, local_pool, dask_executor, write_summary_csv,
     compare_with_baseline, BaselineComparison, write_junit, write_html_report
@@ -55,6 +58,9 @@ from .compare import compare, Comparison
 from .control.mpc import PredictiveController
 from .control.estimator import DisturbanceEstimator
 from .control.steady_target import SteadyTarget
+from . import scenario
+from .scenario import (Scenario, load_scenario, parse_scenario, check_scenario, Case, expand,
+                       run_case, run_scenario, linear_report)
 from .scenario.batch import run_batch, BatchOutcome, load_results
 from .scenario.executors import local_pool, dask_executor
 from .report.summary import write_summary_csv
@@ -86,6 +92,8 @@ __all__ = [
     "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",
     "compare", "Comparison",
     "PredictiveController", "DisturbanceEstimator", "SteadyTarget",
+    "scenario", "Scenario", "load_scenario", "parse_scenario", "check_scenario", "Case", "expand",
+    "run_case", "run_scenario", "linear_report",
     "run_batch", "BatchOutcome", "load_results", "local_pool", "dask_executor", "write_summary_csv",
     "compare_with_baseline", "BaselineComparison", "write_junit", "write_html_report",
 ]
