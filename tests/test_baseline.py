@@ -11,8 +11,7 @@ import copy
 import numpy as np
 import pytest
 
-from mpcproto import SettingsError
-from mpcproto.report.baseline import compare_with_baseline
+from mpcproto import SettingsError, compare_with_baseline
 
 
 def _rec(cid, iae, *, passed=True, status="ok", travel=1.0, violations=0):

@@ -17,9 +17,7 @@ from pathlib import Path
 
 import pytest
 
-from mpcproto import SettingsError
-from mpcproto.scenario.batch import load_results, run_batch
-from mpcproto.scenario.executors import local_pool
+from mpcproto import SettingsError, load_results, local_pool, run_batch
 from test_batch_workload import TankCase, make_cases, run_tank_case
 
 TESTS_DIR = Path(__file__).resolve().parent

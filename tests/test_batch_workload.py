@@ -142,7 +142,7 @@ def batch_records(tmp_path, *, n: int = 6, bad: tuple[int, ...] = (4,), tight: t
     from concurrent.futures import ThreadPoolExecutor
     from dataclasses import replace
 
-    from mpcproto.scenario.batch import load_results, run_batch
+    from mpcproto import load_results, run_batch
 
     cases = [replace(c, iae_limit=0.5) if i in tight else c
              for i, c in enumerate(make_cases(n, steps=steps, bad=bad))]

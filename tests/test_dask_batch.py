@@ -8,8 +8,8 @@ import json
 import pytest
 
 from mpcproto.scenario import expand, load_scenario
-from mpcproto.scenario.batch import load_results, run_batch
-from mpcproto.scenario.executors import dask_executor, executor_slots, local_pool
+from mpcproto import dask_executor, load_results, local_pool, run_batch
+from mpcproto.scenario.executors import executor_slots
 from test_batch_cli import write_study
 
 distributed = pytest.importorskip("distributed")

@@ -6,8 +6,8 @@ import base64
 import copy
 from html.parser import HTMLParser
 
-from mpcproto.report.baseline import compare_with_baseline
-from mpcproto.report.html import SAFETY_CAUTION, write_html_report
+from mpcproto import compare_with_baseline, write_html_report
+from mpcproto.report.html import SAFETY_CAUTION
 from test_batch_workload import batch_records
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature

@@ -11,8 +11,7 @@ from __future__ import annotations
 import copy
 import xml.etree.ElementTree as ET
 
-from mpcproto.report.baseline import compare_with_baseline
-from mpcproto.report.junit import write_junit
+from mpcproto import compare_with_baseline, write_junit
 from test_batch_workload import batch_records
 
 
