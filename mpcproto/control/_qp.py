@@ -342,6 +342,13 @@ class CompiledQP:
                                                           "solution")) else None
         self._started = False
 
+    def update_settings(self, **settings) -> None:
+        """Change OSQP settings of the fast path (those OSQP allows after setup)."""
+        if self._solver is None:
+            raise SettingsError(f"{self.owner}: the fast path is not set up (fast_path=False?).")
+        self._solver.update_settings(**settings)
+        self._opts.update(settings)
+
     def reset_warm_start(self) -> None:
         """Forget the previous solution (the next solve starts cold)."""
         if self._solver is not None:

@@ -13,9 +13,11 @@ disturbance enters either
     as a bias on that CV (``Cw = I`` column): fast, the usual default, exact for a sensor offset;
 ``"input"``
     through the MVs, in the direction ``B @ pinv(G)[:, i]`` whose steady-state effect is a unit
-    change of CV *i* alone (G: steady-state MV gains): it moves through the process dynamics like a
-    load change, so an unmeasured feed disturbance is rejected faster and without the slow
-    open-loop tail of an output bias.
+    change of CV *i* alone (G: steady-state MV gains; for an integrating model, the step response
+    after ``nx + 20`` samples instead): it moves through the process dynamics like a load change,
+    so an unmeasured feed disturbance is rejected without the slow open-loop tail of an output
+    bias.  A CV that integrates (a level) needs it: an output bias on an integrator is not
+    observable apart from the integrating state.
 
 The filter gain comes from the steady-state prior covariance of the augmented model
 (:func:`scipy.linalg.solve_discrete_are`).  When only some CVs report at a sample (analyzers), the
@@ -44,7 +46,7 @@ from ..model import suggest
 
 __all__ = ["DisturbanceEstimator"]
 
-DISTURBANCE_MODELS = ("output", "input")
+DISTURBANCE_MODELS = ("auto", "output", "input")
 _NOTHING: dict[str, Any] = {"rejected": (), "late": (), "too_old": ()}
 
 
@@ -55,8 +57,9 @@ class DisturbanceEstimator:
     ----------
     dmodel : DiscreteLinearModel
         The controller's model (deviation variables around ``dmodel.op``).
-    disturbance : mapping of CV name to {"output", "input"}, or str
-        Disturbance model per CV (a single string applies to every CV).  Default ``"output"``.
+    disturbance : mapping of CV name to {"auto", "output", "input"}, or str
+        Disturbance model per CV (a single string applies to every CV).  ``"auto"`` (default):
+        ``"input"`` for a CV that integrates (a level), ``"output"`` otherwise.
     state_noise : float
         Process noise variance on every plant state (delay states get none: they are exact).
     disturbance_noise : mapping of CV name to float, or float
@@ -96,7 +99,7 @@ class DisturbanceEstimator:
                 if k not in names:
                     raise SettingsError(f"DisturbanceEstimator: '{what}' names an unknown CV '{k}'"
                                         f"{suggest(k, names)}; CVs are {names}.")
-            default = {"disturbance": "output", "disturbance_noise": 1e-2,
+            default = {"disturbance": "auto", "disturbance_noise": 1e-2,
                        "measurement_noise": 1e-3}[what]
             return [value.get(n, default) for n in names]
         return [value] * len(names)
@@ -133,21 +136,34 @@ class DisturbanceEstimator:
                                 f"got {self.history!r}.")
         Bw = np.zeros((nx, ny))
         Cw = np.zeros((ny, ny))
-        need_gain = any(k == "input" for k in kinds)
-        if need_gain:
-            G = m.gain("mv")
-            if not np.all(np.isfinite(G)):
-                raise SettingsError("DisturbanceEstimator: an 'input' disturbance model needs finite "
-                                    "steady-state gains (the model integrates); use 'output'.")
+        integrating = self.integrating_cvs(A, C)
+        kinds = [("input" if integrating[i] else "output") if k == "auto" else k
+                 for i, k in enumerate(kinds)]
+        if any(k == "input" for k in kinds):
+            if integrating.any() or not np.all(np.isfinite(m.gain("mv"))):
+                # no steady-state gain: use the step response after T samples instead
+                T = nx + 20
+                S, Ak = np.zeros((nx, nu)), np.eye(nx)
+                for _ in range(T):
+                    S += Ak @ B
+                    Ak = Ak @ A
+                G = C @ S + np.asarray(m.D, float)
+            else:
+                G = m.gain("mv")
             Gp = np.linalg.pinv(G)
         for i, k in enumerate(kinds):
             if k == "output":
+                if integrating[i]:
+                    raise SettingsError(
+                        f"DisturbanceEstimator: CV '{m.cv_names[i]}' integrates (a level, an "
+                        f"inventory); an 'output' disturbance on it cannot be told apart from the "
+                        f"integrating state. Use 'input' or 'auto'.")
                 Cw[i, i] = 1.0
             else:
                 col = B @ Gp[:, i]
                 if np.linalg.norm(col) < 1e-12:
                     raise SettingsError(f"DisturbanceEstimator: CV '{m.cv_names[i]}' cannot take an "
-                                        f"'input' disturbance (no MV moves it at steady state).")
+                                        f"'input' disturbance (no MV moves it).")
                 Bw[:, i] = col
         self.kinds_ = tuple(kinds)
         self.Bw_, self.Cw_ = Bw, Cw
@@ -182,6 +198,17 @@ class DisturbanceEstimator:
         self.is_built = True
         self.reset()
         return self
+
+    @staticmethod
+    def integrating_cvs(A: np.ndarray, C: np.ndarray) -> np.ndarray:
+        """Bool per CV: does the CV see a mode of A at exactly 1 (an integrator)?"""
+        nx = A.shape[0]
+        if nx == 0:
+            return np.zeros(C.shape[0], bool)
+        V = sla.null_space(np.eye(nx) - A, rcond=1e-10)
+        if V.size == 0:
+            return np.zeros(C.shape[0], bool)
+        return np.linalg.norm(C @ V, axis=1) > 1e-9 * max(1.0, np.abs(C).max())
 
     def _gain(self, mask: np.ndarray) -> np.ndarray:
         key = mask.tobytes()

@@ -60,12 +60,12 @@ SETTINGS_KEYS: dict[str, Any] = {
     "horizon": 30, "control_horizon": None, "cv": None, "mv": None, "dv": None,
     "terminal_cost": False, "steady_target": True, "solver": "osqp", "fast_path": True,
     "solver_options": None, "state_noise": 1e-4, "history": 60, "priority_ratio": 10.0,
-    "fallback": "shift",
+    "fallback": "shift", "backup_solver": "clarabel",
 }
 #: per-CV keys and defaults
 CV_KEYS: dict[str, Any] = {
-    "weight": 1.0, "scale": 1.0, "low": -math.inf, "high": math.inf, "limit_penalty": 1e3,
-    "limit_penalty_quadratic": 1e2, "priority": 1, "disturbance": "output",
+    "weight": 1.0, "scale": 1.0, "low": -math.inf, "high": math.inf, "limit_penalty": 1e2,
+    "limit_penalty_quadratic": 1e1, "priority": 1, "disturbance": "auto",
     "measurement_noise": 1e-3, "disturbance_noise": 1e-2,
 }
 #: per-MV keys and defaults
@@ -138,7 +138,8 @@ class PredictiveController:
         penalty per ``scale``: exact penalty when large enough), ``limit_penalty_quadratic``
         (>= 0), ``priority`` (int >= 1, 1 = most important: its weights are multiplied by
         ``priority_ratio`` per class above the least important), ``disturbance`` ("output" or
-        "input" disturbance model), ``measurement_noise`` (> 0, variance), ``disturbance_noise``
+        "input" disturbance model; "auto", the default, takes "input" for an integrating CV and
+        "output" otherwise), ``measurement_noise`` (> 0, variance), ``disturbance_noise``
         (> 0, variance of the per-sample disturbance change).
     mv : mapping of MV name to dict
         Per-MV settings: ``move_weight`` (>= 0, per squared ``scale``), ``rest_weight`` (>= 0,
@@ -171,6 +172,10 @@ class PredictiveController:
         Weight factor between neighbouring priority classes (> 1).
     fallback : {"shift", "hold"}
         What a failed solve applies: the previous plan shifted one sample, or the previous MVs.
+    backup_solver : {"clarabel", "osqp"} or None
+        With the fast path: when OSQP does not reach an optimal solution, solve the same compiled
+        problem once more with this solver through cvxpy before falling back (the first such call
+        canonicalizes for that solver, a few hundred ms).  None: fall back at once.
 
     Attributes
     ----------
@@ -192,7 +197,7 @@ class PredictiveController:
                  terminal_cost: bool = False, steady_target: bool = True, solver: str = "osqp",
                  fast_path: bool = True, solver_options: Mapping[str, Any] | None = None,
                  state_noise: float = 1e-4, history: int = 60, priority_ratio: float = 10.0,
-                 fallback: str = "shift"):
+                 fallback: str = "shift", backup_solver: str | None = "clarabel"):
         self.dmodel = dmodel
         self.horizon = horizon
         self.control_horizon = control_horizon
@@ -208,6 +213,7 @@ class PredictiveController:
         self.history = history
         self.priority_ratio = priority_ratio
         self.fallback = fallback
+        self.backup_solver = backup_solver
         self.is_built = False
         self._op = None
 
@@ -285,6 +291,8 @@ class PredictiveController:
         _bool("fast_path", self.fast_path)
         if self.solver not in SOLVERS:
             raise _err("solver", f"one of {SOLVERS}", self.solver)
+        if self.backup_solver is not None and self.backup_solver not in SOLVERS:
+            raise _err("backup_solver", f"one of {SOLVERS} or None", self.backup_solver)
         if self.fallback not in FALLBACKS:
             raise _err("fallback", f"one of {FALLBACKS}", self.fallback)
         if self.terminal_cost and not self.steady_target:
@@ -395,23 +403,14 @@ class PredictiveController:
         Bw, Cw = self.estimator_.Bw_, self.estimator_.Cw_
         opts = r["solver_options"]
         osqp_opts = dict(opts) if self.solver == "osqp" else {}
-        # -- steady state maps
-        self._ss = None
+        # -- steady target (state-space steady-state form: works for integrating units too)
         if self.steady_target:
-            IA = np.eye(nx) - A
-            if np.linalg.cond(IA) > 1e12:
-                raise _err("steady_target", "false for a model with an integrating mode (I - A is "
-                           "singular: no steady-state gain)", True)
-            lu = sla.lu_factor(IA)
-            G = C @ sla.lu_solve(lu, B) + D
-            self._ss = {"lu": lu, "G": G,
-                        "Gd": C @ sla.lu_solve(lu, np.asarray(m.Bd, float)) + np.asarray(m.Dd, float),
-                        "Gw": C @ sla.lu_solve(lu, Bw) + Cw}
             self.target_ = SteadyTarget(
-                G, band_weight=r["cv_weight"] + 1e-9, limit_linear=r["lim_lin"],
+                A, B, C, D, np.asarray(m.Bd, float), np.asarray(m.Dd, float), Bw, Cw,
+                band_weight=r["cv_weight"] + 1e-9, limit_linear=r["lim_lin"],
                 limit_quadratic=r["lim_quad"],
                 rest_weight=np.maximum(r["rest_weight"], 1e-6 / r["mv_scale"] ** 2),
-                solver_options=osqp_opts, Gd=self._ss["Gd"], Gw=self._ss["Gw"]).build()
+                solver_options=osqp_opts).build()
         else:
             self.target_ = None
         # -- terminal weight from the discrete Riccati equation of the plant (and delay) states
@@ -538,6 +537,8 @@ class PredictiveController:
             self.qp_.setup(osqp_opts)
         self._cvxpy_solver = "OSQP" if self.solver == "osqp" else "CLARABEL"
         self._cvxpy_opts = dict(opts)
+        self._backup = None if self.backup_solver is None else self.backup_solver.upper()
+        self._backup_opts = dict(opts) if self.backup_solver == self.solver else {}
         self._N, self._M = N, M
         self._Bd, self._Dd = np.asarray(m.Bd, float), np.asarray(m.Dd, float)
         self._Bw, self._Cw = Bw, Cw
@@ -588,7 +589,8 @@ class PredictiveController:
         self._plan_age = 0
         self._target = None
         self.counts = {"steps": 0, "fallbacks": 0, "holds": 0, "inaccurate": 0, "failed_solves": 0,
-                       "target_fallbacks": 0, "rejected_measurements": 0, "late_measurements": 0}
+                       "target_fallbacks": 0, "rejected_measurements": 0, "late_measurements": 0,
+                       "backup_solves": 0}
 
     def _vec(self, v, n: int, what: str, fill: float) -> np.ndarray:
         if v is None:
@@ -693,99 +695,9 @@ class PredictiveController:
                         target_ms=0.0, slack_max=float("nan"), active_mv_limits=0, iterations=None)
             self.estimator_.reset(None, t)
             return self._finish(u, STATUS_FAILED, diag, t_start)
-        z, zs = self._z, self._zsl
-        # ---- DV trajectory over the horizon (deviation), samples 0..N
-        if nd:
-            if dv_forecast is None or not use.any():
-                dtraj = np.tile(d_now, N + 1)
-            else:
-                f = np.asarray(dv_forecast, float)
-                if f.ndim == 1:
-                    f = f[None, :]
-                if f.ndim != 2 or f.shape[1] != nd:
-                    raise SettingsError(f"PredictiveController.step(): dv_forecast must have shape "
-                                        f"(n, {nd}); got {np.shape(dv_forecast)}.")
-                F = f[np.minimum(np.arange(N + 1), f.shape[0] - 1)] - op_d
-                F = np.where(np.isfinite(F), F, d_now)
-                dtraj = np.where(use, F, 0.0).ravel()
-            z[zs["dtraj"]] = dtraj
-            d_end = dtraj[-nd:]
-        else:
-            d_end = d_now
-        # ---- deviations of limits and setpoints
-        lo_dev, hi_dev = mv_lo - op_u, mv_hi - op_u
-        clo, chi = cv_lo - op_y, cv_hi - op_y
-        spd = sp_ - op_y
-        has_sp = np.isfinite(spd)
-        consistent = clo <= chi
-        zone_lo = np.where(consistent, clo, -np.inf)
-        zone_hi = np.where(consistent, chi, np.inf)
-        u_prev_dev = self._u_prev - op_u
-        t_target = 0.0
-        fast = self._fast
-        # ---- steady target
-        if self.target_ is not None:
-            tz, ts = self._tz, self._tsl
-            if nd:
-                tz[ts["d"]] = d_end
-            tz[ts["w"]] = w
-            tz[ts["band_lo"]] = np.where(has_sp, spd, zone_lo)
-            tz[ts["band_hi"]] = np.where(has_sp, spd, zone_hi)
-            tz[ts["lim_lo"]] = clo
-            tz[ts["lim_hi"]] = chi
-            tz[ts["mv_lo"]] = lo_dev
-            tz[ts["mv_hi"]] = hi_dev
-            tz[ts["rest"]] = self._rest_dev
-            res = self.target_.solve(tz, fast=fast, solver=self._cvxpy_solver,
-                                     options=self._cvxpy_opts)
-            t_target = res.solve_ms
-            if res.accepted:
-                self._target = (res.values["us"], res.values["ys"])
-                diag["target_status"] = "ok"
-            else:
-                self.counts["target_fallbacks"] += 1
-                diag["target_status"] = res.status
-                if self._target is None:
-                    u_in = np.clip(u_prev_dev, lo_dev, hi_dev)
-                    self._target = (u_in, self._ss["G"] @ u_in + self._ss["Gd"] @ d_end
-                                    + self._ss["Gw"] @ w)
-            us, ys = self._target
-            band_lo = np.where(has_sp, ys, np.fmin(zone_lo, ys))
-            band_hi = np.where(has_sp, ys, np.fmax(zone_hi, ys))
-            rest = us
-            diag["target_u"] = (us + op_u).tolist()
-            diag["target_y"] = (ys + op_y).tolist()
-        else:
-            band_lo = np.where(has_sp, spd, zone_lo)
-            band_hi = np.where(has_sp, spd, zone_hi)
-            rest = self._rest_dev
-        # ---- MV limits reachable under the rate limits (keeps the QP feasible when a limit moved
-        # past the current MV: the plan then moves towards it as fast as allowed)
-        reach = self._steps * rate[:, None]
-        ulo = np.fmin(lo_dev[:, None], u_prev_dev[:, None] + reach)
-        uhi = np.fmax(hi_dev[:, None], u_prev_dev[:, None] - reach)
-        z[zs["x0"]] = x
-        z[zs["u_prev"]] = u_prev_dev
-        z[zs["w"]] = w
-        z[zs["band_lo"]] = band_lo
-        z[zs["band_hi"]] = band_hi
-        z[zs["lim_lo"]] = clo
-        z[zs["lim_hi"]] = chi
-        z[zs["u_lo"]] = ulo.ravel(order="F")
-        z[zs["u_hi"]] = uhi.ravel(order="F")
-        z[zs["rate"]] = rate
-        z[zs["rest"]] = rest
-        if self.terminal_weight_ is not None:
-            us, _ = self._target
-            z[zs["x_term"]] = sla.lu_solve(self._ss["lu"], self._B @ us + self._Bd @ d_end
-                                           + self._Bw @ w)
-        if fast:
-            res = self.qp_.solve_inputs(z)
-        else:
-            res = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=self._cvxpy_solver,
-                                       options=self._cvxpy_opts)
+        res = self._optimize(x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
+                             self._u_prev, diag)
         diag["solve_ms"] = res.solve_ms
-        diag["target_ms"] = t_target
         diag["solver_status"] = res.status
         diag["iterations"] = res.iterations
         if res.accepted:
@@ -828,6 +740,186 @@ class PredictiveController:
         diag["active_mv_limit_names"] = [m.mv_names[j] for j in np.flatnonzero(at)]
         diag["active_rate_limits"] = int(np.sum(np.abs(np.abs(u - self._u_prev) - rate) <= tol_u))
         return self._finish(u, status, diag, t_start)
+
+    def _optimize(self, x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
+                  u_prev, diag):
+        """Steady target and dynamic QP for estimate (x, w); returns the dynamic QPResult."""
+        m, r = self.dmodel, self._resolved
+        N, M = self._N, self._M
+        op_u, op_d, op_y = self._op_u, self._op_d, self._op_y
+        nu, ny, nd = m.nu, m.ny, m.nd
+        z, zs = self._z, self._zsl
+        # ---- DV trajectory over the horizon (deviation), samples 0..N
+        if nd:
+            if dv_forecast is None or not use.any():
+                dtraj = np.tile(d_now, N + 1)
+            else:
+                f = np.asarray(dv_forecast, float)
+                if f.ndim == 1:
+                    f = f[None, :]
+                if f.ndim != 2 or f.shape[1] != nd:
+                    raise SettingsError(f"PredictiveController.step(): dv_forecast must have shape "
+                                        f"(n, {nd}); got {np.shape(dv_forecast)}.")
+                F = f[np.minimum(np.arange(N + 1), f.shape[0] - 1)] - op_d
+                F = np.where(np.isfinite(F), F, d_now)
+                dtraj = np.where(use, F, 0.0).ravel()
+            z[zs["dtraj"]] = dtraj
+            d_end = dtraj[-nd:]
+        else:
+            d_end = d_now
+        # ---- deviations of limits and setpoints
+        lo_dev, hi_dev = mv_lo - op_u, mv_hi - op_u
+        clo, chi = cv_lo - op_y, cv_hi - op_y
+        spd = sp_ - op_y
+        has_sp = np.isfinite(spd)
+        consistent = clo <= chi
+        zone_lo = np.where(consistent, clo, -np.inf)
+        zone_hi = np.where(consistent, chi, np.inf)
+        u_prev_dev = u_prev - op_u
+        t_target = 0.0
+        fast = self._fast
+        # ---- steady target
+        if self.target_ is not None:
+            tz, ts = self._tz, self._tsl
+            if nd:
+                tz[ts["d"]] = d_end
+            tz[ts["w"]] = w
+            tz[ts["band_lo"]] = np.where(has_sp, spd, zone_lo)
+            tz[ts["band_hi"]] = np.where(has_sp, spd, zone_hi)
+            tz[ts["lim_lo"]] = clo
+            tz[ts["lim_hi"]] = chi
+            tz[ts["mv_lo"]] = lo_dev
+            tz[ts["mv_hi"]] = hi_dev
+            tz[ts["rest"]] = self._rest_dev
+            res = self.target_.solve(tz, fast=fast, solver=self._cvxpy_solver,
+                                     options=self._cvxpy_opts)
+            t_target = res.solve_ms
+            if not res.accepted and self.backup_solver is not None and fast:
+                res2 = self.target_.solve(tz, fast=False, solver=self._backup,
+                                          options=self._backup_opts)
+                if res2.accepted:
+                    self.counts["backup_solves"] += 1
+                    res = res2
+            if res.accepted:
+                self._target = (res.values["us"], res.values["ys"], res.values["xs"])
+                diag["target_status"] = "ok"
+            else:
+                self.counts["target_fallbacks"] += 1
+                diag["target_status"] = res.status
+                if self._target is None:     # stay where we are
+                    self._target = (np.clip(u_prev_dev, lo_dev, hi_dev),
+                                    m.C @ x + self._Cw @ w, x.copy())
+            us, ys, _xs = self._target
+            band_lo = np.where(has_sp, ys, np.fmin(zone_lo, ys))
+            band_hi = np.where(has_sp, ys, np.fmax(zone_hi, ys))
+            rest = us
+            diag["target_u"] = (us + op_u).tolist()
+            diag["target_y"] = (ys + op_y).tolist()
+        else:
+            band_lo = np.where(has_sp, spd, zone_lo)
+            band_hi = np.where(has_sp, spd, zone_hi)
+            rest = self._rest_dev
+        # ---- MV limits reachable under the rate limits (keeps the QP feasible when a limit moved
+        # past the current MV: the plan then moves towards it as fast as allowed)
+        reach = self._steps * rate[:, None]
+        ulo = np.fmin(lo_dev[:, None], u_prev_dev[:, None] + reach)
+        uhi = np.fmax(hi_dev[:, None], u_prev_dev[:, None] - reach)
+        z[zs["x0"]] = x
+        z[zs["u_prev"]] = u_prev_dev
+        z[zs["w"]] = w
+        z[zs["band_lo"]] = band_lo
+        z[zs["band_hi"]] = band_hi
+        z[zs["lim_lo"]] = clo
+        z[zs["lim_hi"]] = chi
+        z[zs["u_lo"]] = ulo.ravel(order="F")
+        z[zs["u_hi"]] = uhi.ravel(order="F")
+        z[zs["rate"]] = rate
+        z[zs["rest"]] = rest
+        if self.terminal_weight_ is not None:
+            z[zs["x_term"]] = self._target[2]
+        if fast:
+            res = self.qp_.solve_inputs(z)
+            if not res.accepted and self.backup_solver is not None:
+                # a second opinion before falling back: the interior-point solver via cvxpy
+                res2 = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=self._backup,
+                                            options=self._backup_opts)
+                diag["first_solver_status"] = res.status
+                if res2.accepted:
+                    self.counts["backup_solves"] += 1
+                    res2.solve_ms += res.solve_ms
+                    res = res2
+        else:
+            res = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=self._cvxpy_solver,
+                                       options=self._cvxpy_opts)
+        self._last_inputs = z
+        diag["target_ms"] = t_target
+        return res
+
+    def plan(self, x: np.ndarray, targets: Targets, *, disturbance: np.ndarray | None = None,
+             dv: np.ndarray | None = None, dv_forecast: np.ndarray | None = None,
+             u_prev: np.ndarray | None = None) -> dict[str, Any]:
+        """Solve the control problem for a given state, without touching the estimator.
+
+        A what-if tool (and the hook the tests use to compare with LQR and with cvxpy's own
+        solve): nothing of the running controller changes except the solver's warm start.
+
+        Parameters
+        ----------
+        x : ndarray (nx,)
+            Model state in deviation variables (plant states, then delay states).
+        targets : Targets
+            As in :meth:`step`.
+        disturbance : ndarray (ny,) or None
+            Disturbance-state values (default zero).
+        dv : ndarray (nd,) or None
+            DV values (absolute; NaN or None: unknown).
+        dv_forecast : ndarray or None
+            As in :meth:`step`.
+        u_prev : ndarray (nu,) or None
+            MVs applied over the last sample (absolute; default: the operating point's).
+
+        Returns
+        -------
+        dict
+            ``u`` (first move, absolute, after the exact limit projection), ``u_plan`` (nu, N)
+            absolute, ``y_pred`` (ny, N) absolute predicted CVs at samples 1..N, ``x_pred``
+            (nx, N) deviation states, ``slack`` (ny, N), ``status`` (solver word), ``accepted``,
+            ``objective``, ``diagnostics``.
+        """
+        self._check_built("plan")
+        if self._op is None:
+            self.reset()
+        m, r = self.dmodel, self._resolved
+        x = self._vec(x, m.nx, "x", np.nan)
+        w = np.zeros(m.ny) if disturbance is None else self._vec(disturbance, m.ny, "disturbance", np.nan)
+        dvv = np.full(m.nd, np.nan) if dv is None else self._vec(dv, m.nd, "dv", np.nan)
+        use = r["feedforward"] & np.isfinite(dvv)
+        d_now = np.where(use, dvv - self._op_d, 0.0)
+        up = self._op_u.copy() if u_prev is None else self._vec(u_prev, m.nu, "u_prev", np.nan)
+        lims = self._limits(targets)
+        diag: dict[str, Any] = {}
+        res = self._optimize(x, w, d_now, use, dv_forecast, *lims, up, diag)
+        out: dict[str, Any] = {"status": res.status, "accepted": res.accepted,
+                               "objective": res.objective, "diagnostics": diag}
+        if res.values:
+            Uplan = res.values["u"][:, self._plan_idx] + self._op_u[:, None]
+            X = res.values["x"]
+            Y = m.C @ X + self._Cw @ w[:, None] + self._op_y[:, None]
+            if m.nd:
+                dtraj = self._last_inputs[self._zsl["dtraj"]].reshape(m.nd, -1, order="F")
+                Y = Y + self._Dd @ dtraj[:, 1:]
+            if np.any(m.D != 0):
+                Y = Y + m.D @ (Uplan[:, np.minimum(np.arange(1, self._N + 1), self._N - 1)]
+                               - self._op_u[:, None])
+            mv_lo, mv_hi, rate = lims[0], lims[1], lims[2]
+            saved = self._u_prev
+            self._u_prev = up
+            try:
+                u0 = self._apply_limits(Uplan[:, 0], mv_lo, mv_hi, rate)
+            finally:
+                self._u_prev = saved
+            out.update(u=u0, u_plan=Uplan, y_pred=Y, x_pred=X, slack=res.values["slack"])
+        return out
 
     def _apply_limits(self, u, lo, hi, rate):
         up = self._u_prev

@@ -1,19 +1,23 @@
 """Steady-state target calculation: where should the MVs and CVs settle?
 
-A small QP on the gain model, solved every sample before the dynamic problem (the usual two-layer
-arrangement of industrial predictive control, e.g. Muske & Rawlings 1993; Rao & Rawlings 1999)::
+A small QP on the steady-state form of the model, solved every sample before the dynamic problem
+(the usual two-layer arrangement of industrial predictive control; Muske & Rawlings 1993, Rao &
+Rawlings 1999)::
 
     minimize    sum_i  c_i * e_i^2                    (CV outside its setpoint band; c_i by priority)
               + sum_i  l_i * s_i + h_i * s_i^2         (soft CV limits, exact penalty)
               + sum_j  r_j * (us_j - rest_j)^2         (MV resting values; small: picks among ties)
-    subject to  ys = G us + c                          (c: measured DVs and disturbance estimates)
-                band_lo - e <= ys ... (e >= 0 either side, written as band_lo <= ys - e <= band_hi)
+    subject to  (I - A) xs = B us + Bd d + Bw w        (steady state of the model)
+                ys = C xs + D us + Dd d + Cw w
+                band_lo <= ys - e <= band_hi
                 lim_lo <= ys + s,  ys - s <= lim_hi,  s >= 0
                 mv_lo <= us <= mv_hi                   (hard)
 
-All in deviation variables.  Priorities enter through the weights: a CV of a higher priority class
-gets weights larger by a factor ``priority_ratio`` per class, so a lower-priority CV gives way first
-when the MVs cannot satisfy every CV.
+All in deviation variables; ``d`` are the measured DVs, ``w`` the disturbance estimates.  Written
+with the state (not a gain matrix) so that integrating units work: a level's steady state asks for
+balanced flows and leaves the level itself to its setpoint.  Priorities enter through the weights:
+a CV of a higher priority class gets weights larger by a factor per class, so a lower-priority CV
+gives way first when the MVs cannot satisfy every CV.
 """
 
 from __future__ import annotations
@@ -32,23 +36,30 @@ class SteadyTarget:
 
     Parameters
     ----------
-    G : ndarray (ny, nu)
-        Steady-state gains from MVs to CVs (deviation variables).
-    Gd, Gw : ndarray (ny, nd), (ny, nw)
-        Steady-state gains from the DVs and from the disturbance states to the CVs.
+    A, B, C, D : ndarray
+        Discrete model matrices (deviation variables).
+    Bd, Dd : ndarray (nx, nd), (ny, nd)
+        DV input matrices.
+    Bw, Cw : ndarray (nx, nw), (ny, nw)
+        How the disturbance states enter the states and the CVs.
     band_weight, limit_linear, limit_quadratic : ndarray (ny,)
         Weights per CV (already scaled by priority and engineering scale).
     rest_weight : ndarray (nu,)
         Weight of the MV resting values (strictly positive keeps the target unique).
     solver_options : dict
         OSQP settings for the fast path.
+
+    Notes
+    -----
+    The input vector of :meth:`solve` is the concatenation, in ``layout_`` order, of ``d`` (nd),
+    ``w`` (nw), ``band_lo``, ``band_hi``, ``lim_lo``, ``lim_hi`` (ny each), ``mv_lo``, ``mv_hi``
+    and ``rest`` (nu each).
     """
 
-    def __init__(self, G, band_weight, limit_linear, limit_quadratic, rest_weight,
-                 solver_options=None, Gd=None, Gw=None):
-        self.G = np.asarray(G, float)
-        self.Gd = np.zeros((self.G.shape[0], 0)) if Gd is None else np.asarray(Gd, float)
-        self.Gw = np.zeros((self.G.shape[0], 0)) if Gw is None else np.asarray(Gw, float)
+    def __init__(self, A, B, C, D, Bd, Dd, Bw, Cw, band_weight, limit_linear, limit_quadratic,
+                 rest_weight, solver_options=None):
+        self.A, self.B, self.C, self.D = (np.asarray(M, float) for M in (A, B, C, D))
+        self.Bd, self.Dd, self.Bw, self.Cw = (np.asarray(M, float) for M in (Bd, Dd, Bw, Cw))
         self.band_weight = np.asarray(band_weight, float)
         self.limit_linear = np.asarray(limit_linear, float)
         self.limit_quadratic = np.asarray(limit_quadratic, float)
@@ -60,24 +71,24 @@ class SteadyTarget:
         """Write the QP in cvxpy and compile it once."""
         import cvxpy as cp
 
-        G = self.G
-        if G.ndim != 2 or not np.all(np.isfinite(G)):
-            raise SettingsError(f"SteadyTarget: the gain matrix must be a finite 2-D array; got shape "
-                                f"{G.shape} (an integrating model has no steady-state gain: turn the "
-                                f"steady target off).")
-        ny, nu = G.shape
+        A, B, C, D = self.A, self.B, self.C, self.D
+        nx, nu, ny = A.shape[0], B.shape[1], C.shape[0]
+        nd, nw = self.Bd.shape[1], self.Bw.shape[1]
+        for name, M, shape in (("B", B, (nx, nu)), ("C", C, (ny, nx)), ("D", D, (ny, nu)),
+                               ("Bd", self.Bd, (nx, nd)), ("Dd", self.Dd, (ny, nd)),
+                               ("Cw", self.Cw, (ny, nw))):
+            if M.shape != shape:
+                raise SettingsError(f"SteadyTarget: {name} must have shape {shape}; got {M.shape}.")
+        xs = cp.Variable(nx, name="xs")
         us = cp.Variable(nu, name="us")
         ys = cp.Variable(ny, name="ys")
         e = cp.Variable(ny, name="e")
         s = cp.Variable(ny, name="s")
         par = {
-            "offset": cp.Parameter(ny, name="offset"),
-            "band_lo": cp.Parameter(ny, name="band_lo"),
-            "band_hi": cp.Parameter(ny, name="band_hi"),
-            "lim_lo": cp.Parameter(ny, name="lim_lo"),
-            "lim_hi": cp.Parameter(ny, name="lim_hi"),
-            "mv_lo": cp.Parameter(nu, name="mv_lo"),
-            "mv_hi": cp.Parameter(nu, name="mv_hi"),
+            "dx": cp.Parameter(nx, name="dx"), "dy": cp.Parameter(ny, name="dy"),
+            "band_lo": cp.Parameter(ny, name="band_lo"), "band_hi": cp.Parameter(ny, name="band_hi"),
+            "lim_lo": cp.Parameter(ny, name="lim_lo"), "lim_hi": cp.Parameter(ny, name="lim_hi"),
+            "mv_lo": cp.Parameter(nu, name="mv_lo"), "mv_hi": cp.Parameter(nu, name="mv_hi"),
             "rest": cp.Parameter(nu, name="rest"),
         }
         rw = self.rest_weight
@@ -85,22 +96,25 @@ class SteadyTarget:
                + self.limit_linear @ s + cp.sum(cp.multiply(self.limit_quadratic, cp.square(s)))
                + cp.sum(cp.multiply(rw, cp.square(us)))
                - 2 * (cp.multiply(rw, par["rest"]) @ us))
-        cons = [ys == G @ us + par["offset"],
+        IA = np.eye(nx) - A
+        cons = [IA @ xs - B @ us == par["dx"],
+                ys == C @ xs + D @ us + par["dy"],
                 par["band_lo"] <= ys - e, ys - e <= par["band_hi"],
                 ys + s >= par["lim_lo"], ys - s <= par["lim_hi"], s >= 0,
                 us >= par["mv_lo"], us <= par["mv_hi"]]
         prob = cp.Problem(cp.Minimize(obj), cons)
-        self.qp_ = CompiledQP(prob, par, {"us": us, "ys": ys, "e": e, "s": s},
-                              inf_parameters=("band_lo", "band_hi", "lim_lo", "lim_hi", "mv_lo", "mv_hi"),
+        self.qp_ = CompiledQP(prob, par, {"xs": xs, "us": us, "ys": ys, "e": e, "s": s},
+                              inf_parameters=("band_lo", "band_hi", "lim_lo", "lim_hi", "mv_lo",
+                                              "mv_hi"),
                               owner="SteadyTarget").compile()
-        nd, nw = self.Gd.shape[1], self.Gw.shape[1]
         eye_y, eye_u = sp.identity(ny), sp.identity(nu)
         self.layout_ = {"d": nd, "w": nw, "band_lo": ny, "band_hi": ny, "lim_lo": ny, "lim_hi": ny,
                         "mv_lo": nu, "mv_hi": nu, "rest": nu}
         self.qp_.set_inputs(
             self.layout_,
-            {"offset": {"d": self.Gd, "w": self.Gw}, "band_lo": {"band_lo": eye_y},
-             "band_hi": {"band_hi": eye_y}, "lim_lo": {"lim_lo": eye_y}, "lim_hi": {"lim_hi": eye_y},
+            {"dx": {"d": self.Bd, "w": self.Bw}, "dy": {"d": self.Dd, "w": self.Cw},
+             "band_lo": {"band_lo": eye_y}, "band_hi": {"band_hi": eye_y},
+             "lim_lo": {"lim_lo": eye_y}, "lim_hi": {"lim_hi": eye_y},
              "mv_lo": {"mv_lo": eye_u}, "mv_hi": {"mv_hi": eye_u}, "rest": {"rest": eye_u}},
             inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi", "mv_lo", "mv_hi"))
         self.qp_.setup(self.solver_options)
@@ -110,7 +124,7 @@ class SteadyTarget:
     def solve(self, z: np.ndarray, fast: bool = True, solver: str = "OSQP", options=None):
         """Solve for the input vector *z* (blocks in ``layout_`` order, deviation variables).
 
-        Returns a :class:`~mpcproto.control._qp.QPResult` with ``us``, ``ys``, ``e``, ``s``.
+        Returns a :class:`~mpcproto.control._qp.QPResult` with ``xs``, ``us``, ``ys``, ``e``, ``s``.
         """
         if not self.is_built:
             raise NotBuiltError("SteadyTarget is not built; call .build() first.")
