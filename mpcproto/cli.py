@@ -189,6 +189,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
     scn = load_scenario(args.scenario)
     summary = run_scenario(scn, args.out, plots=not args.no_plots, ci=args.ci)
+    for w in summary.get("warnings", []):
+        print(f"mpcproto run: warning: {w}", file=sys.stderr)
     if summary["status"] != "ok":
         print(f"mpcproto run: error: {summary['message']}", file=sys.stderr)
         return EXIT_BAD_INPUT

@@ -10,7 +10,10 @@ scenario, runs the closed loop for each, and returns a JSON-able result::
      "status": "ok" | "error", "message",
      "controllers": {label: {"kpi", "violations", "solver", "run", "criteria"}},
      "comparisons": [...better_than verdicts...],
-     "passed": bool, "elapsed_s": float, "caution": str}
+     "passed": bool, "elapsed_s": float, "warnings": [str], "caution": str}
+
+Warnings raised while the case runs (a dead time rounded to whole samples, ...) are collected,
+de-duplicated, into ``warnings`` instead of being printed by each worker.
 
 Bad input (:class:`~mpcproto.exceptions.MpcprotoError`) becomes ``status == "error"`` with its
 message; anything else is a bug and propagates (the batch runner records it as an error too).
@@ -25,6 +28,7 @@ import json
 import math
 import re
 import time
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -302,12 +306,28 @@ def _identity(case: Case | Scenario) -> dict[str, Any]:
 
 def _run(case: Case | Scenario, *, ci: bool | None = None) -> tuple[dict[str, Any], dict[str, Any]]:
     """One case: (result record, {controller label: Trajectory})."""
-    from ..analysis import summarize
-    from ..sim import simulate
-
     t0 = time.perf_counter()
     rec = _identity(case)
     trajs: dict[str, Any] = {}
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        _run_inner(case, ci, rec, trajs)
+    seen: list[str] = []
+    for w in caught:
+        msg = f"{w.category.__name__}: {w.message}"
+        if msg not in seen:
+            seen.append(msg)
+    rec["warnings"] = seen[:20]
+    rec["elapsed_s"] = time.perf_counter() - t0
+    rec["caution"] = CAUTION
+    return _plain(rec), trajs
+
+
+def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
+               trajs: dict[str, Any]) -> None:
+    from ..analysis import summarize
+    from ..sim import simulate
+
     try:
         if isinstance(case, Case):
             scn = case_scenario(case)
@@ -342,9 +362,6 @@ def _run(case: Case | Scenario, *, ci: bool | None = None) -> tuple[dict[str, An
     except MpcprotoError as e:
         rec.update({"status": "error", "message": str(e), "error_type": type(e).__name__,
                     "controllers": {}, "comparisons": [], "passed": False})
-    rec["elapsed_s"] = time.perf_counter() - t0
-    rec["caution"] = CAUTION
-    return _plain(rec), trajs
 
 
 def run_case(case: Case | Scenario) -> dict[str, Any]:
