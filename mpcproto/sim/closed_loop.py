@@ -47,6 +47,8 @@ from .signals import Signal, signal_from_spec
 
 __all__ = ["ClosedLoop", "simulate", "split_rng"]
 
+_SCALARS = (bool, int, float, np.bool_, np.integer, np.floating)
+
 
 def split_rng(rng: Any, n: int) -> tuple[list[np.random.Generator], int | None]:
     """*n* independent generators from an int / SeedSequence / Generator / None (and the int seed)."""
@@ -294,6 +296,15 @@ class ClosedLoop:
         self._mv_index = {n: j for j, n in enumerate(m.mv_names)}
         self._dv_mask = np.array([v.measured for v in m.variables("dv")], bool)
         self._rate_per_sample = np.where(np.isfinite(self.mv_rate), self.mv_rate * self.Ts, np.inf)
+        self._has_rate = bool(np.isfinite(self._act_rate).any())
+        self._sensor_faults = [f for f in self.faults if f.on_sensor]
+        self._valve_faults = [f for f in self.faults if not f.on_sensor]
+        self._plain_instruments = all(n == 0 for n in self._dl) and all(p == 1 for p in self._per)
+        self._dv_seen = np.where(self._dv_mask, self.D[:N], np.nan)
+        self._act_hi_eff = np.maximum(self._act_lo, self._act_hi)
+        for arr in (self.SP, self.LO, self.HI, self.MVLO, self.MVHI, self._dv_seen,
+                    self._rate_per_sample):
+            arr.flags.writeable = False    # handed to the controller as views: read-only
 
     def _fault_vars(self) -> list[str]:
         out: list[str] = []
@@ -306,9 +317,7 @@ class ClosedLoop:
         a = self._alpha
         self._filt = a * self._filt + (1.0 - a) * y
         mk = self._filt + self._bias + self._noise[k]
-        for f in self.faults:
-            if not f.on_sensor:
-                continue
+        for f in self._sensor_faults:
             j = self._cv_index[f.variable]
             if not f.active(t):
                 self._frozen.pop(id(f), None)
@@ -325,6 +334,8 @@ class ClosedLoop:
             elif f.kind == "sensor_bias":
                 mk[j] += f.size
         self._meas_hist[k] = mk
+        if self._plain_instruments:
+            return Measurement(y=mk, taken_at=np.full(mk.shape, t), fresh=np.ones(mk.shape, bool))
         ny = len(mk)
         val = np.empty(ny)
         taken = np.empty(ny)
@@ -338,11 +349,15 @@ class ClosedLoop:
         return Measurement(y=val, taken_at=taken, fresh=fresh)
 
     def _actuate(self, t: float, ucmd: np.ndarray) -> np.ndarray:
+        cmd = ucmd if np.isfinite(ucmd).all() else np.where(np.isfinite(ucmd), ucmd, self.u_prev)
+        if self._has_rate:        # a NaN request (above) holds the valve
+            r = self._act_rate
+            cmd = np.minimum(np.maximum(cmd, self.u_prev - r), self.u_prev + r)
+        if not self._valve_faults:
+            return np.minimum(np.maximum(cmd, self._act_lo), self._act_hi_eff)
         lo, hi = self._act_lo.copy(), self._act_hi.copy()
         stuck: dict[int, float] = {}
-        for f in self.faults:
-            if f.on_sensor:
-                continue
+        for f in self._valve_faults:
             j = self._mv_index[f.variable]
             if not f.active(t):
                 self._stuck.pop(id(f), None)
@@ -353,10 +368,7 @@ class ClosedLoop:
                 if id(f) not in self._stuck:
                     self._stuck[id(f)] = f.position if f.position is not None else self.u_prev[j]
                 stuck[j] = self._stuck[id(f)]
-        cmd = np.where(np.isfinite(ucmd), ucmd, self.u_prev)   # a NaN request holds the valve
-        r = self._act_rate
-        u = np.clip(cmd, self.u_prev - r, self.u_prev + r)
-        u = np.clip(u, lo, np.maximum(lo, hi))
+        u = np.minimum(np.maximum(cmd, lo), np.maximum(lo, hi))
         for j, v in stuck.items():
             u[j] = v
         return u
@@ -372,10 +384,9 @@ class ClosedLoop:
         d = self.D[k]
         y = self.plant.y_next if self.plant.y_next is not None else self.plant.output(self.u_prev, d)
         meas = self._measure(k, t, y)
-        dv_seen = np.where(self._dv_mask, d, np.nan)
-        rate = self._rate_per_sample
-        targets = Targets(setpoint=self.SP[k].copy(), cv_low=self.LO[k].copy(), cv_high=self.HI[k].copy(),
-                          mv_low=self.MVLO[k].copy(), mv_high=self.MVHI[k].copy(), mv_rate=rate)
+        dv_seen = self._dv_seen[k]
+        targets = Targets(setpoint=self.SP[k], cv_low=self.LO[k], cv_high=self.HI[k],
+                          mv_low=self.MVLO[k], mv_high=self.MVHI[k], mv_rate=self._rate_per_sample)
         fc = None
         if self.forecast_steps:
             fc = np.where(self._dv_mask, self.D[k:k + self.forecast_steps], np.nan)
@@ -402,9 +413,7 @@ class ClosedLoop:
         self._status.append(str(out.status))
         diag = {"step_ms": step_ms}
         for key, v in (out.diagnostics or {}).items():
-            if isinstance(v, (bool, np.bool_)):
-                diag[str(key)] = float(v)
-            elif isinstance(v, (int, float, np.integer, np.floating)):
+            if isinstance(v, _SCALARS):
                 diag[str(key)] = float(v)
         self._diag.append(diag)
         if self.faults:

@@ -145,11 +145,15 @@ class Plant:
         u = np.asarray(u, float)
         d = np.asarray(d, float)
         dn = d if d_next is None else np.asarray(d_next, float)
-        pv = np.concatenate([u, d, self.z(u, d), self._p])
+        if self._z_src:
+            pv = np.concatenate([u, d, self.z(u, d), self._p])
+        else:
+            pv = np.concatenate([u, d, self._p])
         self._hist_u.append(u.copy())
         self._hist_d.append(d.copy())
         self.k += 1
-        q = np.concatenate([u, dn, self.z(u, dn), self._p])
+        q = np.concatenate([u, dn, self.z(u, dn), self._p]) if self._z_src else \
+            np.concatenate([u, dn, self._p])
         try:
             xf_dm, y_dm = self.step_out_(self.x, pv, q)
             xf = np.array(xf_dm.elements(), float)
