@@ -671,6 +671,8 @@ class PredictiveController:
         nu, ny, nd = m.nu, m.ny, m.nd
         names = m.cv_names
         diag: dict[str, Any] = {}
+        # ---- inputs checked before anything changes state
+        mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_ = self._limits(targets)
         # ---- measured DVs (deviation); unknown / not fed forward -> 0
         dv = np.full(nd, np.nan) if dv is None else self._vec(dv, nd, "dv", np.nan)
         use = r["feedforward"] & np.isfinite(dv)
@@ -686,7 +688,6 @@ class PredictiveController:
         diag["late_measurements"] = [names[i] for i in info["late"]]
         x = self.estimator_.state
         w = self.estimator_.disturbance_estimate
-        mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_ = self._limits(targets)
         self.counts["steps"] += 1
         if not (np.isfinite(x).all() and np.isfinite(w).all()):
             u = self._hold(mv_lo, mv_hi, rate)
