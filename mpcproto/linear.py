@@ -198,7 +198,8 @@ class LinearModel:
                     "dead_time": float(dead),
                     "connected": ch["connected"],
                     "integrating": ch["integrating"],
-                    "ramp_rate": ch["ramp_rate"],
+                    "ramp_rate": (ch["ramp_rate"] if ch["ramp_rate"] is not None
+                                  and math.isfinite(ch["ramp_rate"]) else None),
                 })
         return out
 
