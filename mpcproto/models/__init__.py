@@ -13,6 +13,23 @@ their defaults); :func:`make` builds one by name with parameter overrides and op
 
 Linear transfer-function-matrix plants of first- or second-order-plus-dead-time elements (models
 identified from plant step tests) are built with :func:`transfer_matrix_model`.
+
+Adding a model
+--------------
+Write a module here whose docstring derives the model from its balances and which defines
+
+``DESCRIPTION`` (one line), ``TIME_UNIT`` (``"s"``, ``"min"`` or ``"h"``),
+``OPTIONS``
+    ``{option: {"default": ..., "allowed": (...), "description": "..."}}`` (may be empty),
+``default_parameters(options) -> dict``
+    every parameter name and default value for those options,
+``build(parameters, options) -> Model``
+    declares the variables (with units, nominal values, physical bounds, descriptions), gives
+    the derivatives and CV expressions, and returns the built model,
+
+then add it to ``_REGISTRY`` below.  :func:`make` validates names, options and parameter values
+before calling ``build``; nominal values that follow from the parameters (an MV that holds the
+nominal steady state) are computed in ``build``.
 """
 
 from __future__ import annotations
