@@ -1,7 +1,7 @@
 r"""PID tuning from a step test: fit a low-order model, then apply a published rule.
 
-1. :func:`step_test` moves one MV of the NONLINEAR model by a step and records every CV (the
-   closed-loop simulator with an open-loop "controller", optionally with measurement noise).
+1. :func:`step_test` moves one MV of the NONLINEAR model by a step and records every CV
+   (:func:`mpcproto.responses.open_loop_test`, optionally with measurement noise).
 2. :func:`fit_fopdt` / :func:`fit_sopdt` / :func:`fit_integrating` fit, by least squares
    (``scipy.optimize.least_squares``), a first- or second-order-plus-dead-time model or an
    integrator with dead time to the response.
@@ -159,11 +159,14 @@ def step_test(model: Any, op: Any, mv: str, *, size: float, Ts: float, duration:
               rng: Any = None) -> StepData:
     """Step MV *mv* of the nonlinear *model* by *size* at time *at* (default ``Ts``) from *op*.
 
-    Other MVs and the DVs stay at *op*.  ``noise_std`` (one number or per CV) adds white
-    measurement noise, seeded by *rng*.  The recorded ``y`` are the measured CVs.
+    Other MVs and the DVs stay at *op* (which should be a steady state: the samples before the
+    step are its CVs).  The nonlinear response comes from
+    :func:`mpcproto.responses.open_loop_test` (the model's own CasADi integrator, MVs held over each
+    sample).  ``noise_std`` (one number or per CV) adds white measurement noise drawn from *rng*
+    (an int seed or a ``numpy.random.Generator``).
     """
-    from ..sim.closed_loop import ClosedLoop   # lazy: control must not need sim at import
-    from ..sim.open_loop import OpenLoop
+    from ..exceptions import SimulationError
+    from ..responses import open_loop_test
 
     if mv not in model.mv_names:
         raise SettingsError(f"step_test: '{mv}' is not an MV of model '{model.name}'"
@@ -171,16 +174,31 @@ def step_test(model: Any, op: Any, mv: str, *, size: float, Ts: float, duration:
     if not (isinstance(size, (int, float)) and math.isfinite(size) and size != 0):
         raise SettingsError(f"step_test: 'size' must be a finite non-zero number; found {size!r}.")
     at = float(Ts if at is None else at)
-    if isinstance(noise_std, Mapping):
-        inst = {c: {"noise_std": float(v)} for c, v in noise_std.items()}
-    else:
-        inst = {c: {"noise_std": float(noise_std)} for c in model.cv_names} if noise_std else {}
-    ctl = OpenLoop(model.mv_names, {mv: {"kind": "step", "at": at, "size": float(size)}})
-    tr = ClosedLoop(model, ctl, op=op, Ts=Ts, duration=duration, instruments=inst, rng=rng).run()
-    if not tr.success:
+    if not (math.isfinite(at) and 0 <= at < duration):
+        raise SettingsError(f"step_test: 'at' must be in [0, duration); found {at!r}.")
+    n_pre = int(round(at / Ts))
+    at = n_pre * Ts
+    try:
+        rt = open_loop_test(model, op, mv, kind="step", size=float(size), duration=duration - at, Ts=Ts)
+    except SimulationError as exc:
         raise SettingsError(f"step_test: the step of {size:g} on '{mv}' made the plant fail: "
-                            f"{tr.message}. Try a smaller step.")
-    return StepData(t=tr.t.copy(), y={c: tr.series("ym", c).copy() for c in model.cv_names},
+                            f"{exc}. Try a smaller step.") from None
+    t = np.concatenate([np.arange(n_pre) * Ts, at + rt.t])
+    Y = np.vstack([np.tile(np.asarray(op.y, float), (n_pre, 1)), rt.y_nonlinear])
+    if isinstance(noise_std, Mapping):
+        for c in noise_std:
+            if c not in model.cv_names:
+                raise SettingsError(f"step_test: noise_std names '{c}', not a CV of model "
+                                    f"'{model.name}'{suggest(str(c), model.cv_names)}.")
+        std = np.array([float(noise_std.get(c, 0.0)) for c in model.cv_names])
+    else:
+        std = np.full(len(model.cv_names), float(noise_std))
+    if np.any(std < 0) or not np.all(np.isfinite(std)):
+        raise SettingsError(f"step_test: noise_std must be finite and >= 0; found {noise_std!r}.")
+    if np.any(std > 0):
+        gen = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
+        Y = Y + gen.standard_normal(Y.shape) * std
+    return StepData(t=t, y={c: Y[:, i].copy() for i, c in enumerate(model.cv_names)},
                     mv=mv, size=float(size), at=at,
                     y0={c: float(v) for c, v in zip(model.cv_names, op.y)})
 
