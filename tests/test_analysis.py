@@ -78,6 +78,14 @@ def test_overshoot_and_settling_after_a_setpoint_step():
     assert mp.cv_performance(tr, "c", band=10.0)["settling_time"] == 0.0
 
 
+def test_settling_after_an_upset_counts_from_the_upset():
+    e = np.zeros(40)
+    e[10:20] = [1.0, 0.8, 0.6, 0.4, 0.2, 0.1, 0.05, 0.03, 0.01, 0.0]
+    tr = traj(1.0 - e, sp=1.0, Ts=2.0)
+    # band 2 % of the setpoint = 0.02: out from sample 10 to 17, in for good from sample 18
+    assert mp.cv_performance(tr, "c")["settling_time"] == (18 - 10) * 2.0
+
+
 def test_ramped_setpoint_counts_as_one_move():
     sp = np.concatenate([np.zeros(5), np.linspace(0.5, 2.0, 4), np.full(11, 2.0)])
     tr = traj(sp.copy(), sp=sp)

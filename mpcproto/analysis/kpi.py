@@ -11,9 +11,9 @@ Definitions (sums over samples, each sample of length ``Ts``; ``e = setpoint - y
 ``ise``            sum e^2 Ts                       (integral of squared error)
 ``itae``           sum (t - t0) |e| Ts              (time-weighted; t0 = start of the run)
 ``max_abs_error``  max |e|
-``settling_time``  time from the last setpoint change (or the start of the run if the setpoint
-                   never moves) until |e| stays inside the band for good; ``None`` if it never
-                   does.  Band: ``band_fraction * |setpoint step|`` after a step, otherwise
+``settling_time``  time from the last setpoint change (if the setpoint never moves: from the
+                   first sample where |e| leaves the band, i.e. the upset) until |e| stays inside
+                   the band for good; 0 if it never leaves; ``None`` if it never settles.  Band: ``band_fraction * |setpoint step|`` after a step, otherwise
                    ``band_fraction * |setpoint|``, unless given per CV in ``bands``.
 ``overshoot``      after the last setpoint step, the largest excursion beyond the new setpoint in
                    the direction of the step, as a fraction of the step (0.1 = 10 %); ``None``
@@ -90,7 +90,11 @@ def cv_performance(traj: Trajectory, cv: str, *, band: float | None = None,
     if band is None:
         ref = abs(size) if i_step is not None else float(np.nanmax(np.abs(sp)))
         band = band_fraction * ref if ref > 0 else band_fraction
-    start = i_step if i_step is not None else 0
+    if i_step is not None:
+        start = i_step
+    else:   # regulatory: from the first time the error leaves the band (the upset) on
+        first_out = np.flatnonzero(ae > band)
+        start = int(first_out[0]) if first_out.size else 0
     outside = np.flatnonzero(ae[start:] > band) + start
     if outside.size == 0:
         out["settling_time"] = 0.0
