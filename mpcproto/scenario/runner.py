@@ -239,8 +239,44 @@ def _check_criteria_names(scn: Scenario, plant: Any) -> None:
 
 
 # ----------------------------------------------------------------------------------------- controllers
-def build_controller(label: str, spec: Mapping[str, Any], prep: Prepared) -> Any:
-    """The controller *label* of the scenario, built from its ``[controllers.<label>]`` table."""
+_CONTROLLER_CACHE: dict[str, Any] = {}
+_CONTROLLER_CACHE_LIMIT = 16
+
+
+def _controller_key(label: str, spec: Mapping[str, Any], prep: Prepared) -> str:
+    scn = prep.scenario
+    model = prep.model
+    return json.dumps([label, spec, model.name, scn.data["plant"]["options"], model.parameters,
+                       [list(map(float, v)) for v in (prep.model_op.x, prep.model_op.u,
+                                                      prep.model_op.d)],
+                       scn.sample_time, scn.data["scenario"]["dead_time"]],
+                      sort_keys=True, default=str)
+
+
+def build_controller(label: str, spec: Mapping[str, Any], prep: Prepared, *,
+                     cache: bool = True) -> Any:
+    """The controller *label* of the scenario, built from its ``[controllers.<label>]`` table.
+
+    PID controllers are cached per process, keyed by their settings, the controller's model (name,
+    options, parameter values), its operating point and the sample time: the cases of a Monte Carlo
+    study on the *plant* share one set of tuned loops (the step tests run once), which the simulator
+    resets at the start of every run.  Predictive controllers are built afresh for every run: a
+    reused one would start its solver warm from the previous run, and the same case would not give
+    the same numbers in every worker.
+    """
+    cache = cache and spec.get("kind") == "pid"
+    key = _controller_key(label, spec, prep) if cache else ""
+    if cache and key in _CONTROLLER_CACHE:
+        return _CONTROLLER_CACHE[key]
+    ctl = _build_controller(label, spec, prep)
+    if cache:
+        if len(_CONTROLLER_CACHE) >= _CONTROLLER_CACHE_LIMIT:
+            _CONTROLLER_CACHE.pop(next(iter(_CONTROLLER_CACHE)))
+        _CONTROLLER_CACHE[key] = ctl
+    return ctl
+
+
+def _build_controller(label: str, spec: Mapping[str, Any], prep: Prepared) -> Any:
     scn = prep.scenario
     settings = {k: v for k, v in spec.items() if k != "kind"}
     key = f"controllers.{label}"
