@@ -180,3 +180,54 @@ def test_bad_arguments_are_named(tmp_path, pool):
         run_batch([cases[0], cases[0]], tmp_path, executor=pool, run=run_tank_case, progress=False)
     with pytest.raises(SettingsError, match="stable id"):
         run_batch([object()], tmp_path, executor=pool, run=run_tank_case, progress=False)
+
+
+_INTERRUPT_SCRIPT = """
+import sys
+sys.path.insert(0, {tests!r})
+from test_batch_workload import make_cases, run_tank_case
+from mpcproto import run_batch
+
+if __name__ == "__main__":
+    try:
+        run_batch(make_cases({n}, steps=1500), {out!r}, workers=2, run=run_tank_case, progress=False)
+    except KeyboardInterrupt:
+        print("interrupted", flush=True)
+        sys.exit(130)
+"""
+
+
+def test_ctrl_c_keeps_finished_cases_and_resume_completes(tmp_path):
+    # Ctrl-C on a terminal sends SIGINT to the whole foreground process group: the batch, its workers
+    n = 10
+    out_dir = tmp_path / "out"
+    script = tmp_path / "interrupt_script.py"
+    script.write_text(textwrap.dedent(_INTERRUPT_SCRIPT.format(tests=str(TESTS_DIR), n=n,
+                                                               out=str(out_dir))))
+    results = out_dir / "results.jsonl"
+    proc = subprocess.Popen([sys.executable, str(script)], start_new_session=True,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 90
+        while time.monotonic() < deadline:
+            if results.exists() and results.read_bytes().count(b"\n") >= 2:
+                break
+            if proc.poll() is not None:
+                pytest.fail(f"the batch ended before Ctrl-C: {proc.stderr.read()!r}")
+            time.sleep(0.05)
+        os.killpg(proc.pid, signal.SIGINT)
+        stdout, stderr = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait(timeout=30)
+    assert proc.returncode == 130, stderr
+    assert "interrupted" in stdout
+    before = _lines(results)                       # every line is a whole record
+    ids_before = {r["case_id"] for r in before}
+    assert len(ids_before) == len(before) >= 2
+    out = run_batch(make_cases(n, steps=1500), out_dir, workers=2, run=run_tank_case, resume=True,
+                    progress=False)
+    after = _lines(results)
+    assert sorted(r["case_id"] for r in after) == [f"tank-{i:04d}" for i in range(n)]
+    assert out.skipped == len(ids_before) and out.ran == n - len(ids_before)

@@ -71,7 +71,8 @@ def default_start_method() -> str:
 
 
 def local_pool(workers: int | None = None, *, start_method: str | None = None,
-               preload: list[str] | None = None) -> ProcessPoolExecutor:
+               preload: list[str] | None = None, initializer=None,
+               initargs: tuple = ()) -> ProcessPoolExecutor:
     """A process pool for a batch, workers kept alive across cases.
 
     Parameters
@@ -84,6 +85,9 @@ def local_pool(workers: int | None = None, *, start_method: str | None = None,
     preload : list of str, optional
         Modules a fork server imports before forking workers (only for ``"forkserver"``); default:
         numpy, casadi and the package's scenario runner.
+    initializer, initargs : optional
+        ``initializer(*initargs)`` runs once in every worker when it starts (for example to warm
+        caches); must be picklable.
 
     Returns
     -------
@@ -101,7 +105,8 @@ def local_pool(workers: int | None = None, *, start_method: str | None = None,
     ctx = multiprocessing.get_context(start_method)
     if start_method == "forkserver":
         ctx.set_forkserver_preload(list(_PRELOAD if preload is None else preload))
-    return ProcessPoolExecutor(max_workers=n, mp_context=ctx)
+    return ProcessPoolExecutor(max_workers=n, mp_context=ctx, initializer=initializer,
+                               initargs=initargs)
 
 
 def _import_distributed():

@@ -1,0 +1,353 @@
+"""Batch scaling: 1 vs 2 local workers vs a Dask LocalCluster of 2 workers, and parent memory.
+
+Run:  python benchmarks/bench_batch.py          (about 3-5 minutes on 2 cores)
+      python benchmarks/bench_batch.py --quick  (8 cases instead of 32; a smoke run)
+
+What it measures
+----------------
+1. Per-worker start-up cost: from creating a pool of one worker to the first answer of a task that
+   imports the package's scenario runner (a worker ready to run a case), for each start method
+   (fork, forkserver, spawn), and for a Dask LocalCluster of 2 worker processes (cluster start plus
+   the same import on both workers).
+2. The same 32 real closed-loop cases (our own blending-tank study, below: MPC and PID, 4 draw-off
+   surge sizes x 8 Monte Carlo draws of the outlet loss coefficient) on 1 local worker, 2 local
+   workers and a Dask LocalCluster of 2 workers.  Workers are started and warmed (one run of the
+   nominal case builds the models) before the clock starts, so the wall times compare the batch
+   itself; start-up is reported separately and also added in "cold" figures.
+   Parallel efficiency = T(1 worker) / (2 x T(2 workers)); targets: >= 0.9 local pool, >= 0.85 Dask.
+   All three runs must give identical results (same ids, seeds and numbers).
+3. Peak memory of the parent process for 100, 1,000 and 3,000 cheap cases (a 20-sample CasADi tank
+   integration each, cases generated lazily), each in a fresh process: peak RSS (ru_maxrss) and
+   tracemalloc's peak of Python allocations during ``run_batch``.  It must not grow with the number
+   of cases (the runner keeps a bounded window of cases in flight and streams results to disk).
+
+Figures are ratios or differences measured in the same run (the machine is shared and noisy): the
+one-minute load average before each part is recorded beside the figures.
+
+Writes a table to stdout and JSON to benchmarks/results/bench_batch.json.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from concurrent.futures import wait
+from dataclasses import dataclass
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+RESULTS = HERE / "results"
+
+# Our own study on the package's blending tank (numbers of our invention).
+STUDY = """
+[scenario]
+name = "bench_blend"
+sample_time = 10.0
+duration = 600.0
+seed = 4242
+
+[plant]
+model = "blending_tank"
+options = { outflow = "dv" }
+parameters = { loss_coefficient = 0.035 }
+
+[operating_point]
+dvs = { draw_off = 1.6 }
+targets = { level = 1.1, concentration = 2.5, temperature = 72.0 }
+
+[disturbances]
+draw_off = { kind = "pulse", at = 100.0, duration = 300.0, size = 0.4 }
+
+[instruments]
+level = { noise_std = 0.002 }
+concentration = { noise_std = 0.01, period = 60.0, dead_time = 60.0 }
+temperature = { noise_std = 0.05 }
+
+[controllers.mpc]
+horizon = 20
+control_horizon = 4
+steady_target = false
+cv = { level = { disturbance = "auto" } }
+mv = { caustic_flow = { scale = 0.01 }, water_flow = { scale = 0.1 }, heater_duty = { scale = 20.0 } }
+
+[controllers.pid]
+rule = "simc"
+pairs = { level = "water_flow", concentration = "caustic_flow", temperature = "heater_duty" }
+
+[[criteria]]
+check = "low_above"
+variable = "level"
+limit = 0.7
+
+[study]
+draws = {draws}
+
+[[study.sweep]]
+key = "disturbances.draw_off.size"
+values = [0.2, 0.4, 0.6, 0.8]
+
+[[study.draw]]
+key = "plant.parameters.loss_coefficient"
+distribution = "uniform"
+low = 0.03
+high = 0.04
+"""
+
+TIMING_KEYS = {"elapsed_s", "worker_pid", "median_solve_ms", "p95_solve_ms", "worst_fraction",
+               "slow_steps", "solve_ms"}
+
+
+# ------------------------------------------------------------------------------- worker functions
+def _ready() -> int:
+    """A worker ready to run a case: the scenario runner imported."""
+    import mpcproto.scenario.runner  # noqa: F401, PLC0415
+
+    return os.getpid()
+
+
+def _ready_and_hold(seconds: float) -> int:
+    pid = _ready()
+    time.sleep(seconds)
+    return pid
+
+
+def _warm(scenario) -> None:
+    """Run the nominal case once: builds and caches the models in this worker."""
+    from mpcproto.scenario import run_case  # noqa: PLC0415
+
+    run_case(scenario)
+
+
+_TANK: dict = {}
+
+
+@dataclass(frozen=True)
+class CheapCase:
+    case_id: str
+    seed: int
+
+
+def cheap_case(case: CheapCase) -> dict:
+    """A cheap real case: 20 samples of a CasADi-integrated tank with seeded inflow noise."""
+    import casadi as ca  # noqa: PLC0415
+    import numpy as np  # noqa: PLC0415
+
+    if "f" not in _TANK:
+        h, q = ca.MX.sym("h"), ca.MX.sym("q")
+        _TANK["f"] = ca.integrator("tank", "cvodes",
+                                   {"x": h, "p": q, "ode": (q - 0.12 * ca.sqrt(ca.fmax(h, 0))) / 1.5},
+                                   0.0, 1.0)
+    rng = np.random.default_rng(case.seed)
+    h, iae = 1.0, 0.0
+    for _ in range(20):
+        h = float(_TANK["f"](x0=h, p=0.12 + 0.01 * rng.standard_normal())["xf"])
+        iae += abs(1.0 - h)
+    return {"case_id": case.case_id, "scenario": "cheap", "seed": case.seed, "status": "ok",
+            "controllers": {"none": {"kpi": {"cv": {"level": {"iae": iae}}},
+                                     "criteria": [{"name": "iae", "value": iae, "limit": 5.0,
+                                                   "passed": iae < 5.0}]}},
+            "passed": iae < 5.0}
+
+
+# ------------------------------------------------------------------------------------- helpers
+def _load() -> float:
+    return round(os.getloadavg()[0], 2)
+
+
+def _strip(v):
+    if isinstance(v, dict):
+        return {k: _strip(x) for k, x in v.items() if k not in TIMING_KEYS}
+    if isinstance(v, list):
+        return [_strip(x) for x in v]
+    return v
+
+
+def _numbers(path: Path) -> dict:
+    from mpcproto import load_results  # noqa: PLC0415
+
+    return {r["case_id"]: json.dumps(_strip(r), sort_keys=True) for r in load_results(path)}
+
+
+def startup_costs() -> dict:
+    from mpcproto import local_pool  # noqa: PLC0415
+    from mpcproto.scenario.executors import START_METHODS  # noqa: PLC0415
+
+    out = {}
+    for method in START_METHODS:
+        t0 = time.perf_counter()
+        with local_pool(1, start_method=method) as ex:
+            ex.submit(_ready).result()
+        out[method] = time.perf_counter() - t0
+    return out
+
+
+def run_local(workers: int, cases, scenario, out_dir: Path) -> dict:
+    from mpcproto import local_pool, run_batch  # noqa: PLC0415
+
+    load = _load()
+    t0 = time.perf_counter()
+    ex = local_pool(workers, initializer=_warm, initargs=(scenario,))
+    # every worker starts, warms, and answers one probe (held long enough that each takes one)
+    pids = {f.result() for f in [ex.submit(_ready_and_hold, 0.5) for _ in range(workers)]}
+    ready = time.perf_counter() - t0
+    try:
+        out = run_batch(cases, out_dir, executor=ex, progress=False)
+    finally:
+        ex.shutdown()
+    return {"workers": workers, "distinct_warm_workers": len(pids), "startup_and_warm_s": ready,
+            "wall_s": out.wall_s, "cold_wall_s": ready + out.wall_s, "cases": out.ran,
+            "errors": out.errors, "load_before": load}
+
+
+def run_dask(cases, scenario, out_dir: Path) -> dict:
+    import distributed  # noqa: PLC0415
+
+    from mpcproto import dask_executor, run_batch  # noqa: PLC0415
+
+    load = _load()
+    t0 = time.perf_counter()
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                       dashboard_address=None, silence_logs=40)
+    client = distributed.Client(cluster)
+    try:
+        client.run(_ready)
+        startup = time.perf_counter() - t0
+        client.run(_warm, scenario)
+        ready = time.perf_counter() - t0
+        with dask_executor(cluster.scheduler_address) as ex:
+            out = run_batch(cases, out_dir, executor=ex, progress=False)
+    finally:
+        client.close()
+        cluster.close()
+    return {"workers": 2, "cluster_startup_s": startup, "startup_and_warm_s": ready,
+            "wall_s": out.wall_s, "cold_wall_s": ready + out.wall_s, "cases": out.ran,
+            "errors": out.errors, "load_before": load}
+
+
+def memory_child(n: int) -> dict:
+    """In a fresh process: parent-side peak memory of a batch of *n* cheap cases."""
+    import tracemalloc  # noqa: PLC0415
+
+    from mpcproto import run_batch  # noqa: PLC0415
+
+    def gen():
+        for i in range(n):
+            yield CheapCase(f"cheap-{i:05d}", 1000 + i)
+
+    rss_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    with tempfile.TemporaryDirectory() as tmp:
+        tracemalloc.start()
+        t0 = time.perf_counter()
+        out = run_batch(gen(), tmp, workers=2, run=cheap_case, progress=False)
+        wall = time.perf_counter() - t0
+        _, peak = tracemalloc.get_traced_memory()
+        tracemalloc.stop()
+        size = (Path(tmp) / "results.jsonl").stat().st_size
+    rss_after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return {"cases": n, "ran": out.ran, "wall_s": wall, "tracemalloc_peak_kib": peak / 1024,
+            "peak_rss_mib": rss_after / 1024, "rss_growth_during_batch_mib": (rss_after - rss_before) / 1024,
+            "results_file_kib": size / 1024}
+
+
+def memory_scaling(sizes) -> list[dict]:
+    rows = []
+    for n in sizes:
+        cp = subprocess.run([sys.executable, str(Path(__file__).resolve()), "--memory-child", str(n)],
+                            capture_output=True, text=True, check=True)
+        rows.append(json.loads(cp.stdout.strip().splitlines()[-1]))
+    return rows
+
+
+# ----------------------------------------------------------------------------------------- main
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="8 cases instead of 32 (smoke run)")
+    ap.add_argument("--memory-child", type=int, default=None, help=argparse.SUPPRESS)
+    ap.add_argument("--skip-dask", action="store_true", help="leave out the Dask LocalCluster")
+    args = ap.parse_args(argv)
+    if args.memory_child is not None:
+        print(json.dumps(memory_child(args.memory_child)))
+        return 0
+
+    from mpcproto.scenario import expand, load_scenario  # noqa: PLC0415
+
+    RESULTS.mkdir(parents=True, exist_ok=True)
+    draws = 2 if args.quick else 8
+    report: dict = {"machine": {"cpus": os.cpu_count(), "python": platform.python_version(),
+                                "platform": platform.platform()},
+                    "workload": "real closed-loop cases (MPC + PID on the blending tank, 600 s at "
+                                "Ts = 10 s), our own study 'bench_blend'; memory part: cheap CasADi "
+                                "tank integrations"}
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        study = tmp / "bench_blend.toml"
+        study.write_text(STUDY.replace("{draws}", str(draws)))
+        scenario = load_scenario(study)
+        cases = expand(scenario)
+        report["cases"] = len(cases)
+        print(f"bench_batch: {len(cases)} cases; load average {_load()}", flush=True)
+
+        report["startup_s"] = startup_costs()
+        print("  start-up per worker:", {k: round(v, 2) for k, v in report["startup_s"].items()},
+              flush=True)
+        r1 = run_local(1, cases, scenario, tmp / "w1")
+        print(f"  1 worker : {r1['wall_s']:.1f} s", flush=True)
+        r2 = run_local(2, cases, scenario, tmp / "w2")
+        print(f"  2 workers: {r2['wall_s']:.1f} s", flush=True)
+        runs = {"local_1": r1, "local_2": r2}
+        if not args.skip_dask:
+            rd = run_dask(cases, scenario, tmp / "dask")
+            print(f"  Dask 2   : {rd['wall_s']:.1f} s", flush=True)
+            runs["dask_2"] = rd
+        ref = _numbers(tmp / "w1" / "results.jsonl")
+        same = {name: _numbers(tmp / name.replace("local_1", "w1").replace("local_2", "w2")
+                               .replace("dask_2", "dask") / "results.jsonl") == ref for name in runs}
+        report["identical_results"] = same
+        t1 = r1["wall_s"]
+        for name, r in runs.items():
+            r["efficiency"] = t1 / (r["workers"] * r["wall_s"])
+            r["cold_efficiency"] = r1["cold_wall_s"] / (r["workers"] * r["cold_wall_s"])
+            r["per_case_s"] = r["wall_s"] * r["workers"] / max(1, r["cases"])
+        report["runs"] = runs
+    report["memory"] = memory_scaling([100, 1000, 3000])
+
+    # ------------------------------------------------------------------------------ the table
+    print()
+    print(f"{'run':<10s}{'wall s':>9s}{'cold s':>9s}{'eff.':>7s}{'cold eff.':>11s}"
+          f"{'start+warm s':>14s}{'same numbers':>14s}")
+    targets = {"local_1": "", "local_2": ">= 0.90", "dask_2": ">= 0.85"}
+    for name, r in report["runs"].items():
+        print(f"{name:<10s}{r['wall_s']:9.1f}{r['cold_wall_s']:9.1f}{r['efficiency']:7.2f}"
+              f"{r['cold_efficiency']:11.2f}{r['startup_and_warm_s']:14.1f}"
+              f"{str(report['identical_results'][name]):>14s}   target {targets[name] or '-'}")
+    print("start-up of one worker (pool created -> runner imported): " + ", ".join(
+        f"{k} {v:.2f} s" for k, v in report["startup_s"].items())
+        + (f"; Dask LocalCluster (2 workers) {report['runs']['dask_2']['cluster_startup_s']:.2f} s"
+           if "dask_2" in report["runs"] else ""))
+    print(f"\n{'cases':>7s}{'peak RSS MiB':>14s}{'RSS growth MiB':>16s}{'tracemalloc KiB':>17s}"
+          f"{'results KiB':>13s}{'wall s':>8s}")
+    for m in report["memory"]:
+        print(f"{m['cases']:7d}{m['peak_rss_mib']:14.1f}{m['rss_growth_during_batch_mib']:16.1f}"
+              f"{m['tracemalloc_peak_kib']:17.1f}{m['results_file_kib']:13.1f}{m['wall_s']:8.1f}")
+    m0, m1 = report["memory"][0], report["memory"][-1]
+    report["memory_ratio_tracemalloc"] = m1["tracemalloc_peak_kib"] / m0["tracemalloc_peak_kib"]
+    report["memory_ratio_rss"] = m1["peak_rss_mib"] / m0["peak_rss_mib"]
+    print(f"peak-memory ratio {m1['cases']} vs {m0['cases']} cases: RSS {report['memory_ratio_rss']:.3f}, "
+          f"tracemalloc {report['memory_ratio_tracemalloc']:.2f} (cases x{m1['cases'] // m0['cases']})")
+    path = RESULTS / "bench_batch.json"
+    path.write_text(json.dumps(report, indent=2, default=lambda x: None if isinstance(x, float)
+                               and not math.isfinite(x) else str(x)))
+    print(f"\nJSON: {path}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
