@@ -277,3 +277,16 @@ def test_trajectory_csv_round_trip(tmp_path):
     with pytest.raises(mp.SettingsError, match="not written by Trajectory.to_csv"):
         (tmp_path / "x.csv").write_text("t,a\n0,1\n")
         mp.Trajectory.from_csv(tmp_path / "x.csv")
+
+
+def test_integrator_is_shared_by_runs_of_the_same_model_and_sample_time():
+    m = first_order()
+    mism = m.with_parameters(gain=5.0)
+    a = mp.ClosedLoop(m, OpenLoop(m.mv_names), op=op_of(m), Ts=1.0, duration=5.0)
+    b = mp.ClosedLoop(mism, OpenLoop(m.mv_names), op=op_of(m), Ts=1.0, duration=5.0)
+    c = mp.ClosedLoop(m, OpenLoop(m.mv_names), op=op_of(m), Ts=2.0, duration=5.0)
+    assert a.plant.step_out_ is b.plant.step_out_        # parameters are inputs: same code
+    assert a.plant.step_out_ is not c.plant.step_out_    # another sample time: another integrator
+    other = first_order()                                # rebuilt model: new compiled Functions
+    d = mp.ClosedLoop(other, OpenLoop(m.mv_names), op=op_of(other), Ts=1.0, duration=5.0)
+    assert d.plant.step_out_ is not a.plant.step_out_

@@ -5,6 +5,9 @@ MVs and DVs are held constant over each sample (zero-order hold).  Every dead ti
 :func:`mpcproto.linear.delay_samples` rounds it for the controller's discrete model, so the plant
 and the controller's model see the same delays.
 
+The integrator for a (model, Ts, plugin, options) is built once and kept in a small module-level
+cache, so the runs of a comparison or a study reuse it.
+
 Integrators
 -----------
 The plugin is the model's ``integrator`` attribute unless overridden.  ``"cvodes"`` (the default:
@@ -27,6 +30,10 @@ from ..linear import delay_samples
 __all__ = ["Plant", "DEFAULT_TOLERANCES"]
 
 DEFAULT_TOLERANCES = {"abstol": 1e-9, "reltol": 1e-8}
+# compiled integrators by (model name, Ts, plugin, options), valid while the model's compiled
+# Functions are the same objects (parameters are inputs, so a mismatched plant shares them)
+_CACHE: dict[tuple, tuple] = {}
+_CACHE_SIZE = 32
 _ADAPTIVE = ("cvodes", "idas")
 
 
@@ -71,6 +78,30 @@ class Plant:
         opts.update(options or {})
         self.options = opts
         nx, nu, nd, nz = model.nx, model.nu, model.nd, model.nz
+        key = (model.name, self.Ts, self.plugin, repr(sorted(opts.items())))
+        hit = _CACHE.get(key)
+        if hit is not None and hit[0] is model.ode_ and hit[1] is model.out_:
+            self.integrator_, self.step_, self.step_out_ = hit[2:]
+        else:
+            self.integrator_, self.step_, self.step_out_ = self._build(model, opts)
+            if len(_CACHE) >= _CACHE_SIZE:
+                _CACHE.pop(next(iter(_CACHE)))
+            _CACHE[key] = (model.ode_, model.out_, self.integrator_, self.step_, self.step_out_)
+        self.delay_steps_ = [delay_samples(dl.dead_time, self.Ts, what=f"dead time on {dl.source}")
+                             for dl in model.delays]
+        self._z_src = [(dl.source_role, model.names(dl.source_role).index(dl.source))
+                       for dl in model.delays]
+        self._p = model.p
+        self.x = np.zeros(nx)
+        self._hist_u: list[np.ndarray] = []
+        self._hist_d: list[np.ndarray] = []
+        self._u0 = np.zeros(nu)
+        self._d0 = np.zeros(nd)
+        self.k = 0
+        self.y_next: np.ndarray | None = None
+
+    def _build(self, model: Any, opts: dict[str, Any]) -> tuple[Any, Any, Any]:
+        nx, nu, nd, nz = model.nx, model.nu, model.nd, model.nz
         npar = len(model.parameter_names)
         x = ca.SX.sym("x", nx)
         pv = ca.SX.sym("p", nu + nd + nz + npar)
@@ -84,29 +115,17 @@ class Plant:
             raise SettingsError(
                 f"Plant: cannot build the CasADi integrator {self.plugin!r} for model "
                 f"'{model.name}' with options {opts}: {str(exc).splitlines()[-1]}") from None
-        self.integrator_ = F
         X0 = ca.MX.sym("x0", nx)
         P = ca.MX.sym("p", pv.numel())
         xf = F(x0=X0, p=P)["xf"]
-        self.step_ = ca.Function(f"{model.name}_plant_step", [X0, P], [xf], ["x0", "p"], ["xf"])
+        step = ca.Function(f"{model.name}_plant_step", [X0, P], [xf], ["x0", "p"], ["xf"])
         # one call per sample: integrate and evaluate the CVs at the end of the sample, with the
         # inputs q = [u; d; z; parameters] that will act at the start of the next one
         Q = ca.MX.sym("q", pv.numel())
         yf = model.out_(xf, Q[:nu], Q[nu:nu + nd], Q[nu + nd:nu + nd + nz], Q[nu + nd + nz:])
-        self.step_out_ = ca.Function(f"{model.name}_plant_step_out", [X0, P, Q], [xf, yf],
-                                     ["x0", "p", "q"], ["xf", "y"])
-        self.delay_steps_ = [delay_samples(dl.dead_time, self.Ts, what=f"dead time on {dl.source}")
-                             for dl in model.delays]
-        self._z_src = [(dl.source_role, model.names(dl.source_role).index(dl.source))
-                       for dl in model.delays]
-        self._p = model.p
-        self.x = np.zeros(nx)
-        self._hist_u: list[np.ndarray] = []
-        self._hist_d: list[np.ndarray] = []
-        self._u0 = np.zeros(nu)
-        self._d0 = np.zeros(nd)
-        self.k = 0
-        self.y_next: np.ndarray | None = None
+        step_out = ca.Function(f"{model.name}_plant_step_out", [X0, P, Q], [xf, yf],
+                               ["x0", "p", "q"], ["xf", "y"])
+        return F, step, step_out
 
     # ------------------------------------------------------------------ run
     def reset(self, x0: np.ndarray, u0: np.ndarray, d0: np.ndarray) -> None:
