@@ -231,3 +231,21 @@ def test_ctrl_c_keeps_finished_cases_and_resume_completes(tmp_path):
     after = _lines(results)
     assert sorted(r["case_id"] for r in after) == [f"tank-{i:04d}" for i in range(n)]
     assert out.skipped == len(ids_before) and out.ran == n - len(ids_before)
+
+
+def crash_or_run(case):
+    """Kill the worker process outright for a negative gain (what a segfault in compiled code does)."""
+    if case.gain < 0:
+        os._exit(3)
+    return run_tank_case(case)
+
+
+def test_a_case_that_kills_its_worker_is_pinned_and_the_rest_run(tmp_path):
+    cases = make_cases(8, steps=150, bad=(3,))
+    out = run_batch(cases, tmp_path, workers=2, run=crash_or_run, progress=False)
+    lines = _lines(tmp_path / "results.jsonl")
+    assert sorted(r["case_id"] for r in lines) == [c.case_id for c in cases]
+    errors = [r for r in lines if r["status"] == "error"]
+    assert [r["case_id"] for r in errors] == ["tank-0003"]       # the bystanders ran again
+    assert "died while running this case alone" in errors[0]["message"]
+    assert (out.errors, out.passed) == (1, 7)

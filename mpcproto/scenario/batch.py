@@ -7,7 +7,10 @@ is looked at, so a crash, a kill or Ctrl-C loses no finished case.  ``resume=Tru
 back (a last line cut short by a kill is dropped) and runs only the cases whose ids are missing.
 
 A case that raises is recorded as an error (``status: "error"`` with the exception's type and
-message) and the batch goes on.  Only a bounded number of cases is in flight at any time, so the
+message) and the batch goes on.  A case that kills its worker process (a crash in compiled code, out
+of memory) breaks a process pool: the pool owned by the call is replaced, the cases that were in
+flight are re-run one at a time, and only the one that kills a worker on its own is recorded as an
+error.  Only a bounded number of cases is in flight at any time, so the
 parent's memory does not grow with the size of the study.
 
 The executor seam
@@ -31,6 +34,7 @@ import sys
 import time
 import traceback
 import warnings
+from collections import deque
 from collections.abc import Callable, Iterable, Iterator, Mapping
 from concurrent.futures import FIRST_COMPLETED, Executor, Future, wait
 from concurrent.futures.process import BrokenProcessPool
@@ -411,7 +415,7 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
     bar: _ProgressBar | None = None
 
     seen: set[str] = set()
-    pending: dict[Future, tuple[str, Any]] = {}
+    pending: dict[Future, tuple[str, Any, bool]] = {}
     case_iter = iter(cases)
     exhausted = False
 
@@ -427,25 +431,43 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
         if callback is not None:
             callback(outcome.skipped + outcome.ran, total, rec)
 
-    def collect(fut: Future, fh) -> None:
-        cid, case = pending.pop(fut)
+    suspects: deque[tuple[str, Any]] = deque()   # cases in flight when a worker process died
+
+    def collect(fut: Future, fh) -> bool:
+        """Record a finished future; return True when its worker process died under it."""
+        cid, case, alone = pending.pop(fut)
+        if fut.cancelled():
+            record(_error_record(cid, case, RuntimeError("the executor cancelled this case")), fh)
+            return False
         exc = fut.exception()
         if exc is None:
             rec = fut.result()
-        elif isinstance(exc, BrokenProcessPool):
-            rec = _error_record(cid, case, exc, "a worker process died while this case was in "
-                                "flight: it may have crashed the worker or been a bystander")
-        elif isinstance(exc, Exception):  # e.g. the case or runner could not be pickled
+        elif isinstance(exc, BrokenProcessPool) and own:
+            if not alone:   # maybe a bystander: run it again, on its own, in a fresh pool
+                suspects.append((cid, case))
+                return True
+            rec = _error_record(cid, case, exc, "the worker process died while running this "
+                                "case alone (a crash in compiled code, or out of memory)")
+        elif isinstance(exc, Exception):  # e.g. unpicklable case, dead cluster worker
             rec = _error_record(cid, case, exc, "raised outside the case runner")
         else:  # KeyboardInterrupt/SystemExit in a worker: not a verdict, leave it for --resume
             raise KeyboardInterrupt
         record(rec, fh)
+        return isinstance(exc, BrokenProcessPool)
+
+    def submit(cid: str, case: Any, alone: bool) -> None:
+        pending[ex.submit(_guarded_call, run_fn, case, cid)] = (cid, case, alone)
 
     try:
         with path.open("a", encoding="utf-8") as fh:
             try:
                 while True:
-                    while not exhausted and len(pending) < window:
+                    if suspects:
+                        # after a worker died: re-run each case that was in flight on its own,
+                        # so that a crash is pinned on the case that causes it
+                        if not pending:
+                            submit(*suspects.popleft(), True)
+                    while not suspects and not exhausted and len(pending) < window:
                         try:
                             case = next(case_iter)
                         except StopIteration:
@@ -464,15 +486,17 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
                             continue
                         if bar is None and show_bar:
                             bar = _ProgressBar(total, outcome.skipped, sys.stderr)
-                        pending[ex.submit(_guarded_call, run_fn, case, cid)] = (cid, case)
+                        submit(cid, case, False)
                     if not pending:
+                        if suspects:
+                            continue
                         break
                     finished, _ = wait(list(pending), return_when=FIRST_COMPLETED)
+                    broken = False
                     for fut in finished:
-                        collect(fut, fh)
-                    if own and any(isinstance(f.exception(), BrokenProcessPool)
-                                   for f in finished if not f.cancelled()):
-                        # a dead worker breaks the whole pool: record the bystanders, start afresh
+                        broken |= collect(fut, fh)
+                    if broken and own:
+                        # a dead worker breaks the whole pool: the other futures fail too
                         for fut in list(pending):
                             wait([fut])
                             collect(fut, fh)
