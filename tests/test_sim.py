@@ -290,3 +290,36 @@ def test_integrator_is_shared_by_runs_of_the_same_model_and_sample_time():
     other = first_order()                                # rebuilt model: new compiled Functions
     d = mp.ClosedLoop(other, OpenLoop(m.mv_names), op=op_of(other), Ts=1.0, duration=5.0)
     assert d.plant.step_out_ is not a.plant.step_out_
+
+
+def test_cstr_ignition_transient_matches_scipy_radau():
+    # Reference: scipy.integrate.solve_ivp (Radau, rtol 1e-10) on the same balances (Henson-Seborg
+    # CSTR, model docstring) with the same held coolant step: open loop from the unstable middle
+    # steady state, the reactor ignites (T from 350 K to ~440 K and back to ~384 K).
+    from scipy.integrate import solve_ivp
+
+    m = mp.make_model("henson_seborg_cstr")
+    op = mp.steady_state(m)
+    tr = mp.simulate(m, OpenLoop(m.mv_names, {"coolant_temperature": {"kind": "step", "at": 0.5, "size": 5.0}}),
+                     op=op, Ts=0.05, duration=10.0)
+    p = m.parameters
+    q, V, CAf, Tf = op.d[2], p["volume"], op.d[0], op.d[1]
+
+    def f(t, s):
+        CA, T = s
+        Tc = op.u[0] + (5.0 if t >= 0.5 else 0.0)
+        r = p["rate_constant"] * math.exp(-p["activation_temperature"] / T) * CA
+        rc = p["density"] * p["heat_capacity"]
+        return [q / V * (CAf - CA) - r,
+                q / V * (Tf - T) + (-p["heat_of_reaction"]) / rc * r + p["heat_transfer"] / (V * rc) * (Tc - T)]
+
+    ref_a = solve_ivp(f, (0.0, 0.5), op.x, method="Radau", rtol=1e-10, atol=1e-10, dense_output=True)
+    ref_b = solve_ivp(f, (0.5, 10.0), ref_a.y[:, -1], method="Radau", rtol=1e-10, atol=1e-10,
+                      dense_output=True)
+    t = tr.t
+    ref = np.where(t < 0.5, ref_a.sol(np.minimum(t, 0.5)), ref_b.sol(np.maximum(t, 0.5)))
+    assert tr.series("x", "T").max() > 430.0                    # it really ran away
+    # cvodes at abstol 1e-9 / reltol 1e-8 through a strongly amplifying transient: within 0.05 K
+    err_T = np.max(np.abs(tr.series("x", "T") - ref[1]))
+    assert err_T < 0.05, err_T
+    assert np.max(np.abs(tr.series("x", "CA") - ref[0])) < 5e-4
