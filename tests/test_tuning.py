@@ -158,3 +158,19 @@ def test_pid_from_settings_tunes_the_blending_tank_on_rga_pairs():
         mp.pid_from_settings(tank, op0(tank), 10.0, {"rulee": "simc"}, what="tank.pid")
     with pytest.raises(mp.SettingsError, match=r"loop level<-water_flow: imc: .*integrating"):
         mp.pid_from_settings(tank, op0(tank), 10.0, {"rule": "imc", "pairs": [["level", "water_flow"]]})
+
+
+def test_tuning_adds_half_a_sample_and_the_analyzer_delay_to_the_dead_time():
+    # SIMC with tau_c = theta_eff on a FOPDT plant: Kc = tau/(k 2 theta_eff); theta_eff = fitted
+    # dead time + Ts/2 (zero-order hold, common practice) + the extra dead time given per CV
+    K, tau, theta, Ts = 2.0, 60.0, 20.0, 5.0
+    m = fopdt_model(K, tau, theta)
+    loops, fits = mp.tune_pid_loops(m, op0(m), Ts, [("y", "u")], rule="simc", fit="fopdt",
+                                    extra_dead_time={"y": 30.0})
+    assert fits[0].dead_time == pytest.approx(theta + Ts / 2 + 30.0, abs=1.0)
+    th = fits[0].dead_time
+    assert loops[0].gain == pytest.approx(fits[0].time_constants[0] / (fits[0].gain * 2 * th))
+    ctl = mp.pid_from_settings(m, op0(m), Ts, {"pairs": {"y": "u"}, "extra_dead_time": 30.0})
+    assert ctl.loops[0].gain == pytest.approx(loops[0].gain, rel=1e-6)
+    with pytest.raises(mp.SettingsError, match=r"extra_dead_time: 'yy' is not a CV"):
+        mp.pid_from_settings(m, op0(m), Ts, {"pairs": {"y": "u"}, "extra_dead_time": {"yy": 1.0}})

@@ -507,7 +507,8 @@ def tune_loop(fit: ProcessFit, rule: str, **kw: Any) -> PIDLoop:
 
 # ---------------------------------------------------------------------------------- settings
 _SETTINGS_KEYS = ("loops", "pairs", "rule", "tau_c", "lam", "mode", "step_fraction",
-                  "test_duration", "fit", "setpoint_weight", "derivative_filter", "on_fresh")
+                  "test_duration", "fit", "extra_dead_time", "setpoint_weight",
+                  "derivative_filter", "on_fresh")
 
 
 def _per_cv(v: Any, cv: str, what: str, key: str) -> Any:
@@ -520,6 +521,7 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
                    rule: str = "simc", fit: str = "auto", step_fraction: float = 0.05,
                    test_duration: float | None = None, rule_options: Mapping[str, Any] | None = None,
                    loop_options: Mapping[str, Any] | None = None,
+                   extra_dead_time: Mapping[str, float] | None = None,
                    what: str = "tune_pid_loops") -> tuple[list[PIDLoop], list[ProcessFit]]:
     """Step-test each (cv, mv) pair on the nonlinear *model*, fit, and apply *rule*.
 
@@ -528,6 +530,11 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
     the slowest time constant of the linearized model plus its largest dead time (at least 20
     samples; 50 samples for an integrating channel).  ``rule_options`` maps a CV name (or
     ``"*"``) to keyword arguments of the rule (``tau_c``, ``lam``, ``mode``).
+
+    The rule sees the fitted dead time plus half a sample (the zero-order hold of a sampled loop;
+    common practice, e.g. Skogestad 2003) plus ``extra_dead_time[cv]`` (or ``["*"]``): what the
+    step test of the model does not see, such as an analyzer's dead time and half its cycle.
+    The returned fits are the effective ones the rule used.
     """
     from ..linear import linearize
 
@@ -537,6 +544,7 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
     if not (isinstance(step_fraction, (int, float)) and 0 < step_fraction <= 0.5):
         raise SettingsError(f"{what}: step_fraction must be in (0, 0.5]; found {step_fraction!r}.")
     lin = linearize(model, op)
+    extra_dead_time = dict(extra_dead_time or {})
     loops, fits = [], []
     lo, hi = model.bounds("mv")
     rule_options = dict(rule_options or {})
@@ -555,6 +563,15 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
             dur = float(min(max(dur, 20 * Ts), 2000 * Ts))
         data = step_test(model, op, mv, size=size, Ts=Ts, duration=dur)
         f = fit_step(data, cv, kind=fit)
+        extra = extra_dead_time.get(cv, extra_dead_time.get("*", 0.0))
+        if not (isinstance(extra, (int, float)) and not isinstance(extra, bool)
+                and math.isfinite(extra) and extra >= 0):
+            raise SettingsError(f"{what}: extra dead time for '{cv}' must be a number >= 0; "
+                                f"found {extra!r}.")
+        # the sampled loop adds about half a sample of delay (zero-order hold), plus what the
+        # measurement adds (analyzer dead time and half its cycle)
+        f = ProcessFit(f.kind, f.gain, f.time_constants, f.dead_time + 0.5 * Ts + float(extra),
+                       rmse=f.rmse, inverse_response=f.inverse_response, cv=f.cv, mv=f.mv)
         kw = dict(rule_options.get("*", {}))
         kw.update(rule_options.get(cv, {}))
         kw.update(loop_options or {})
@@ -583,6 +600,9 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     ``fit``            ``"auto"`` (default), ``"fopdt"``, ``"sopdt"``, ``"integrating"``
     ``step_fraction``  step-test size as a fraction of the MV range (default 0.05)
     ``test_duration``  step-test length (default: from the linearized model)
+    ``extra_dead_time`` dead time the step test does not see (an analyzer's dead time plus half
+                       its cycle): a number or a table per CV; added, with half a sample for the
+                       hold, to the fitted dead time before the rule is applied
     ``setpoint_weight``, ``derivative_filter``, ``on_fresh``: applied to every tuned loop
     """
     from .pid import PIDController, pid_loop_from_spec, suggest_pairing
@@ -642,8 +662,15 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
              if k in settings}
     tuned: list[PIDLoop] = []
     if to_tune:
+        ed = settings.get("extra_dead_time", {})
+        if not isinstance(ed, Mapping):
+            ed = {"*": ed}
+        for c in ed:
+            if c != "*" and c not in model.cv_names:
+                raise SettingsError(f"{what}.extra_dead_time: '{c}' is not a CV of model "
+                                    f"'{model.name}'{suggest(str(c), model.cv_names)}.")
         tuned, _ = tune_pid_loops(model, op, Ts, to_tune, rule=rule, fit=settings.get("fit", "auto"),
                                   step_fraction=settings.get("step_fraction", 0.05),
                                   test_duration=settings.get("test_duration"), rule_options=ropts,
-                                  loop_options=lopts, what=what)
+                                  loop_options=lopts, extra_dead_time=ed, what=what)
     return PIDController.for_model(model, list(given.values()) + tuned)
