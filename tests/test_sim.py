@@ -323,3 +323,32 @@ def test_cstr_ignition_transient_matches_scipy_radau():
     err_T = np.max(np.abs(tr.series("x", "T") - ref[1]))
     assert err_T < 0.05, err_T
     assert np.max(np.abs(tr.series("x", "CA") - ref[0])) < 5e-4
+
+
+class _Recorder(OpenLoop):
+    """Open loop that keeps what the simulator hands the controller."""
+
+    def __init__(self, mv_names):
+        super().__init__(mv_names)
+        self.seen = []
+
+    def step(self, t, meas, dv, targets, dv_forecast=None):
+        self.seen.append((t, dv.copy(), None if dv_forecast is None else dv_forecast.copy(),
+                          targets.setpoint.copy()))
+        return super().step(t, meas, dv, targets, dv_forecast)
+
+
+def test_controller_sees_measured_dvs_only_and_a_perfect_forecast_when_asked():
+    m, op = tank_op()
+    rec = _Recorder(m.mv_names)
+    mp.simulate(m, rec, op=op, Ts=10.0, duration=100.0, forecast=True, forecast_steps=3,
+                dvs={"draw_off": {"kind": "ramp", "start": 0, "duration": 100, "size": 1.0},
+                     "caustic_strength": {"kind": "step", "at": 0, "size": -0.1}},
+                setpoints={"temperature": None, "level": {"kind": "step", "at": 50, "size": 0.1}})
+    t, dv, fc, sp = rec.seen[2]
+    j = m.dv_names.index("draw_off")
+    assert dv[j] == pytest.approx(op.d[j] + 0.2)
+    assert np.isnan(dv[m.dv_names.index("caustic_strength")])          # unmeasured
+    assert fc.shape == (3, m.nd) and np.allclose(fc[:, j], op.d[j] + np.array([0.2, 0.3, 0.4]))
+    assert np.isnan(sp[m.cv_names.index("temperature")])                # no setpoint: zone only
+    assert rec.seen[5][3][0] == pytest.approx(op.y[0] + 0.1)
