@@ -156,8 +156,10 @@ def _check_specs(scn: Scenario, plant: Any = None) -> dict[str, Any]:
     from ..sim import actuator_from_spec, fault_from_spec, instrument_from_spec, signal_from_spec
 
     d = scn.data
+    base_dir = Path(scn.file).parent if scn.file and scn.file != "<dict>" else None
     dvs: dict[str, Any] = {}
     for k, spec in d["disturbances"].items():
+        spec = _csv_paths(spec, base_dir)
         try:
             signal_from_spec(spec, what=f"disturbances.{k}", rng=0)
         except SettingsError as e:
@@ -168,6 +170,7 @@ def _check_specs(scn: Scenario, plant: Any = None) -> dict[str, Any]:
         if spec == "none":
             setpoints[k] = None
             continue
+        spec = _csv_paths(spec, base_dir)
         try:
             signal_from_spec(spec, what=f"setpoints.{k}", rng=0)
         except SettingsError as e:
@@ -216,6 +219,20 @@ def _check_specs(scn: Scenario, plant: Any = None) -> dict[str, Any]:
         faults.append(f)
     return {"dvs": dvs, "setpoints": setpoints, "cv_limits": cv_limits, "mv_limits": mv_limits,
             "instruments": instruments, "actuators": actuators, "faults": faults}
+
+
+def _csv_paths(spec: Any, base_dir: Path | None) -> Any:
+    """A copy of a signal spec whose relative ``csv`` paths are resolved against the scenario's
+    directory (a scenario and its tables travel together)."""
+    if base_dir is None:
+        return spec
+    if isinstance(spec, list):
+        return [_csv_paths(s, base_dir) for s in spec]
+    if isinstance(spec, Mapping) and spec.get("kind") == "csv" and isinstance(spec.get("path"), str):
+        p = Path(spec["path"])
+        if not p.is_absolute():
+            return {**spec, "path": str(base_dir / p)}
+    return spec
 
 
 def _check_criteria_names(scn: Scenario, plant: Any) -> None:
