@@ -29,7 +29,7 @@ from pathlib import Path
 from typing import Any
 
 from .baseline import BaselineComparison
-from .summary import case_verdict, criteria_of, utilisation
+from .summary import case_verdict, criteria_of, margin, utilisation
 
 __all__ = ["write_html_report", "SAFETY_CAUTION", "sort_worst_first", "png_data_uri"]
 
@@ -201,11 +201,20 @@ def _chart_iae(scen: str, recs: Sequence[Mapping[str, Any]], max_cvs: int = 4) -
     palette = ["#3d6f99", "#c9a227", "#5b8c5a", "#a05a7a", "#6b6b6b"]
     for ax, cv in zip(axes, cvs):
         ctls = sorted(data[cv])
-        bp = ax.boxplot([data[cv][c] for c in ctls], tick_labels=ctls, patch_artist=True,
-                        widths=0.55, medianprops={"color": COLOURS["ink"]})
-        for patch, col in zip(bp["boxes"], palette * 3):
-            patch.set_facecolor(col)
-            patch.set_alpha(0.55)
+        if max(len(data[cv][c]) for c in ctls) >= 5:
+            bp = ax.boxplot([data[cv][c] for c in ctls], tick_labels=ctls, patch_artist=True,
+                            widths=0.55, medianprops={"color": COLOURS["ink"]})
+            for patch, col in zip(bp["boxes"], palette * 3):
+                patch.set_facecolor(col)
+                patch.set_alpha(0.55)
+        else:  # too few cases for a box: show each one
+            for i, (c, col) in enumerate(zip(ctls, palette * 3), 1):
+                ys = data[cv][c]
+                xs = [i + 0.12 * (((j * 0.6180339887) % 1.0) - 0.5) for j in range(len(ys))]
+                ax.scatter(xs, ys, s=36, color=col, zorder=3)
+            ax.set_xticks(range(1, len(ctls) + 1), ctls)
+            ax.set_xlim(0.4, len(ctls) + 0.6)
+            ax.set_ylim(bottom=0)
         ax.set_title(f"IAE of {cv}", fontsize=10, color=COLOURS["ink"])
         ax.grid(True, axis="y", color=COLOURS["grid"], linewidth=0.8)
         ax.set_axisbelow(True)
@@ -228,7 +237,7 @@ header { background: #23313f; color: #fff; padding: 22px 32px 18px; }
 header h1 { margin: 0 0 4px; font-size: 22px; font-weight: 600; letter-spacing: .2px; }
 header .sub { color: #c4d0da; font-size: 13px; }
 main { max-width: 1160px; margin: 0 auto; padding: 18px 24px 40px; }
-section { background: #fff; border: 1px solid var(--line); border-radius: 6px; padding: 14px 18px;
+section { overflow-x: auto; background: #fff; border: 1px solid var(--line); border-radius: 6px; padding: 14px 18px;
           margin: 14px 0; }
 h2 { font-size: 17px; margin: 2px 0 10px; }
 h3 { font-size: 14px; margin: 14px 0 6px; }
@@ -259,6 +268,8 @@ tr.passed td:first-child { box-shadow: inset 4px 0 var(--pass); }
 .tag.passed { background: var(--pass); } .tag.failed { background: var(--fail); }
 .tag.error { background: var(--err); }
 .small { color: var(--muted); font-size: 12px; }
+td.small { min-width: 10em; }
+td.crit { word-break: break-word; min-width: 12em; }
 .msg { font-family: ui-monospace, SFMono-Regular, Menlo, Consolas, monospace; font-size: 12px;
        color: #6a2c2c; word-break: break-word; }
 figure { margin: 10px 0 16px; } figure img { max-width: 100%; height: auto; display: block; }
@@ -275,18 +286,20 @@ def _img(png: bytes, alt: str, caption: str = "") -> str:
 
 
 def _params_text(rec: Mapping[str, Any], limit: int = 4) -> str:
+    """Study parameters of a case: last part of each key path (full path on hover)."""
     p = rec.get("params") or {}
     if not isinstance(p, Mapping) or not p:
         return ""
     items = list(p.items())
-    txt = ", ".join(f"{k}={_num(v) if isinstance(v, (int, float)) else _e(v)}" for k, v in items[:limit])
+    txt = ", ".join(f'<span title="{_e(k)}">{_e(str(k).rsplit(".", 1)[-1])}</span>='
+                    f"{_num(v) if isinstance(v, (int, float)) else _e(v)}" for k, v in items[:limit])
     if len(items) > limit:
         txt += f", &hellip; (+{len(items) - limit})"
     return txt
 
 
 def _case_table(recs: Sequence[Mapping[str, Any]], max_rows: int, linked: int = 0) -> str:
-    rows = ['<table><tr><th>#</th><th>case</th><th>scenario</th><th>verdict</th>'
+    rows = ['<table><tr><th>#</th><th>case</th><th>verdict</th>'
             '<th>closest criterion</th><th class="num">value</th><th class="num">limit</th>'
             '<th class="num">share of limit</th><th>parameters</th><th class="num">seed</th></tr>']
     for i, rec in enumerate(recs[:max_rows], 1):
@@ -305,8 +318,8 @@ def _case_table(recs: Sequence[Mapping[str, Any]], max_rows: int, linked: int = 
         rows.append(f'<tr class="{v}"><td class="num">{i}</td><td class="id"><a href="#case-{cid}">{cid}</a></td>'
                     if i <= linked else
                     f'<tr class="{v}"><td class="num">{i}</td><td class="id">{cid}</td>')
-        rows[-1] += (f'<td>{_e(rec.get("scenario", ""))}</td><td><span class="tag {v}">{v}</span></td>'
-                     f'<td>{crit_cell}</td><td class="num">{val}</td><td class="num">{lim}</td>'
+        rows[-1] += (f'<td><span class="tag {v}">{v}</span></td>'
+                     f'<td class="crit">{crit_cell}</td><td class="num">{val}</td><td class="num">{lim}</td>'
                      f'<td class="num">{share}</td><td class="small">{_params_text(rec)}</td>'
                      f'<td class="num small">{_e(rec.get("seed", ""))}</td></tr>')
     rows.append("</table>")
@@ -356,7 +369,8 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
     crit = criteria_of(rec)
     if crit:
         rows = ['<table style="margin-top:8px"><tr><th></th><th>criterion</th><th class="num">value'
-                '</th><th class="num">limit</th><th class="num">share of limit</th></tr>']
+                '</th><th class="num">limit</th><th class="num">margin</th><th class="num">share of limit</th>'
+                '</tr>']
         for ctl, cr in crit:
             ok = cr.get("passed") is not False
             u = utilisation(cr)
@@ -364,7 +378,8 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
             rows.append(f'<tr><td class="{"mark-ok" if ok else "mark-bad"}">{"pass" if ok else "FAIL"}'
                         f'</td><td>{_e((ctl + ": ") if ctl else "")}{_e(cr.get("name", ""))}</td>'
                         f'<td class="num">{_num(cr.get("value"))}</td>'
-                        f'<td class="num">{_num(cr.get("limit"))}</td><td class="num">{share}</td></tr>')
+                        f'<td class="num">{_num(cr.get("limit"))}</td>'
+                        f'<td class="num">{_num(margin(cr))}</td><td class="num">{share}</td></tr>')
         rows.append("</table>")
         out.append("".join(rows))
     viol = [(ctl, ev) for ctl, res in ctls.items() for ev in ((res or {}).get("violations") or [])]
