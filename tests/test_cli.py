@@ -94,3 +94,51 @@ def test_real_process_exit_code_and_stderr(tmp_path):
     assert r.returncode == 2
     assert "bad.toml" in r.stderr and "plant.model" in r.stderr and "did you mean 'blending_tank'" in r.stderr
     assert "Traceback" not in r.stderr
+
+
+def test_linearize_wood_berry_rga(capsys):
+    # Wood & Berry (1973) column: relative gain of the top <- reflux pair 2.01 (widely quoted, e.g.
+    # Skogestad & Postlethwaite, Multivariable Feedback Control -- from memory)
+    with pytest.warns(UserWarning, match="8.1 is not a multiple of the sample time 1"):
+        code, out, err = run_cli(capsys, "linearize", "scenarios/wood_berry_column.toml", "--json")
+    assert code == 0, err
+    rep = json.loads(out)
+    assert rep["names"]["cvs"] == ["top_composition", "bottom_composition"]
+    assert rep["rga"][0][0] == pytest.approx(2.01, abs=0.01)
+    np.testing.assert_allclose(rep["gain"], [[12.8, -18.9], [6.6, -19.4]], rtol=1e-9)  # published
+    # dead times rounded to whole samples are reported as delay states of the discrete model
+    assert any(s.startswith("steam[k-") for s in rep["names"]["discrete_states"])
+
+
+def test_linearize_quadruple_tank_nmp_zero(capsys):
+    # Johansson (2000): in the non-minimum-phase setting one transmission zero is in the right half
+    # plane; the relative gain of the diagonal pairing is negative
+    code, out, err = run_cli(capsys, "linearize", "scenarios/quadruple_tank_nmp.toml", "--json")
+    assert code == 0, err
+    rep = json.loads(out)
+    zeros = [complex(*z) for z in rep["zeros"]]
+    assert sum(z.real > 0 for z in zeros) == 1
+    assert rep["rga"][0][0] < 0
+
+
+def test_linearize_cstr_middle_state_is_unstable(capsys):
+    # Henson & Seborg CSTR at Tc = 300 K: the middle steady state (about 0.5 mol/L, 350 K) has one
+    # positive eigenvalue
+    code, out, err = run_cli(capsys, "linearize", "scenarios/henson_seborg_unstable.toml", "--json")
+    assert code == 0, err
+    rep = json.loads(out)
+    assert rep["open_loop"] == "unstable"
+    assert rep["operating_point"]["states"]["CA"] == pytest.approx(0.5, abs=0.01)
+    assert rep["operating_point"]["states"]["T"] == pytest.approx(350.0, abs=0.5)
+    assert sum(p[0] > 0 for p in rep["poles"]) == 1
+
+
+@pytest.mark.filterwarnings("ignore:the dead time on 'feed'")
+def test_every_shipped_scenario_checks(capsys):
+    from pathlib import Path
+
+    files = sorted(str(p) for p in Path("scenarios").glob("*.toml"))
+    assert len(files) >= 7
+    code, out, err = run_cli(capsys, "check", "--no-controllers", *files)
+    assert code == 0, err
+    assert out.count("ok: ") == len(files)
