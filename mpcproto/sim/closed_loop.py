@@ -302,6 +302,11 @@ class ClosedLoop:
         self._plain_instruments = all(n == 0 for n in self._dl) and all(p == 1 for p in self._per)
         self._dv_seen = np.where(self._dv_mask, self.D[:N], np.nan)
         self._act_hi_eff = np.maximum(self._act_lo, self._act_hi)
+        self._dl_arr = np.array(self._dl, dtype=np.int64)
+        self._per_arr = np.array(self._per, dtype=np.int64)
+        self._cv_range = np.arange(m.ny)
+        self._all_fresh = np.ones(m.ny, bool)
+        self._all_fresh.flags.writeable = False
         for arr in (self.SP, self.LO, self.HI, self.MVLO, self.MVHI, self._dv_seen,
                     self._rate_per_sample):
             arr.flags.writeable = False    # handed to the controller as views: read-only
@@ -335,18 +340,13 @@ class ClosedLoop:
                 mk[j] += f.size
         self._meas_hist[k] = mk
         if self._plain_instruments:
-            return Measurement(y=mk, taken_at=np.full(mk.shape, t), fresh=np.ones(mk.shape, bool))
-        ny = len(mk)
-        val = np.empty(ny)
-        taken = np.empty(ny)
-        fresh = np.empty(ny, bool)
-        for j in range(ny):
-            nd, P = self._dl[j], self._per[j]
-            js = ((k - nd) // P) * P
-            val[j] = self._meas_hist[js, j] if js >= 0 else self._y0[j] + self._bias[j]
-            taken[j] = self.t0 + js * self.Ts
-            fresh[j] = js + nd == k
-        return Measurement(y=val, taken_at=taken, fresh=fresh)
+            return Measurement(y=mk, taken_at=np.full(mk.shape, t), fresh=self._all_fresh)
+        # sample taken at js (a multiple of the analyzer period), arrived after the dead time;
+        # before the run the past is the steady operating point
+        js = ((k - self._dl_arr) // self._per_arr) * self._per_arr
+        val = np.where(js >= 0, self._meas_hist[np.maximum(js, 0), self._cv_range],
+                       self._y0 + self._bias)
+        return Measurement(y=val, taken_at=self.t0 + js * self.Ts, fresh=js + self._dl_arr == k)
 
     def _actuate(self, t: float, ucmd: np.ndarray) -> np.ndarray:
         cmd = ucmd if np.isfinite(ucmd).all() else np.where(np.isfinite(ucmd), ucmd, self.u_prev)

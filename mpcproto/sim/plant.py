@@ -57,8 +57,9 @@ class Plant:
     step_ : casadi.Function
         ``(x0, p) -> xf`` over one sample, ``p = [u; d; z; parameters]``.
     step_out_ : casadi.Function
-        ``(x0, p, q) -> (xf, y)``: the same step plus the CVs at its end with inputs ``q``
-        (used by :meth:`advance`, so a closed-loop sample costs one CasADi call).
+        ``[x0; p; q] -> [xf; y]``: the same step plus the CVs at its end with inputs ``q``,
+        packed into one vector each way (used by :meth:`advance`, so a closed-loop sample costs
+        one CasADi call with one conversion in and one out).
     delay_steps_ : list of int
         Whole-sample length of each delay buffer (``model.delays`` order).
     """
@@ -99,6 +100,7 @@ class Plant:
         self._d0 = np.zeros(nd)
         self.k = 0
         self.y_next: np.ndarray | None = None
+        self._nx = nx
 
     def _build(self, model: Any, opts: dict[str, Any]) -> tuple[Any, Any, Any]:
         nx, nu, nd, nz = model.nx, model.nu, model.nd, model.nz
@@ -121,10 +123,14 @@ class Plant:
         step = ca.Function(f"{model.name}_plant_step", [X0, P], [xf], ["x0", "p"], ["xf"])
         # one call per sample: integrate and evaluate the CVs at the end of the sample, with the
         # inputs q = [u; d; z; parameters] that will act at the start of the next one
-        Q = ca.MX.sym("q", pv.numel())
-        yf = model.out_(xf, Q[:nu], Q[nu:nu + nd], Q[nu + nd:nu + nd + nz], Q[nu + nd + nz:])
-        step_out = ca.Function(f"{model.name}_plant_step_out", [X0, P, Q], [xf, yf],
-                               ["x0", "p", "q"], ["xf", "y"])
+        # one packed input and one packed output: each Python<->CasADi conversion costs time
+        npv = pv.numel()
+        W = ca.MX.sym("w", nx + 2 * npv)
+        X0w, Pw, Q = W[:nx], W[nx:nx + npv], W[nx + npv:]
+        xfw = F(x0=X0w, p=Pw)["xf"]
+        yf = model.out_(xfw, Q[:nu], Q[nu:nu + nd], Q[nu + nd:nu + nd + nz], Q[nu + nd + nz:])
+        step_out = ca.Function(f"{model.name}_plant_step_out", [W], [ca.vertcat(xfw, yf)],
+                               ["w"], ["xf_y"])
         return F, step, step_out
 
     # ------------------------------------------------------------------ run
@@ -161,22 +167,21 @@ class Plant:
         left in :attr:`y_next`.  Raises :class:`SimulationError` if the integrator fails or the
         state becomes non-finite (the plant is left at the start of the failed sample).
         """
-        u = np.asarray(u, float)
-        d = np.asarray(d, float)
+        u = np.array(u, float)
+        d = np.array(d, float)
         dn = d if d_next is None else np.asarray(d_next, float)
         if self._z_src:
             pv = np.concatenate([u, d, self.z(u, d), self._p])
         else:
             pv = np.concatenate([u, d, self._p])
-        self._hist_u.append(u.copy())
-        self._hist_d.append(d.copy())
+        self._hist_u.append(u)       # the caller hands fresh arrays: kept, not copied
+        self._hist_d.append(d)
         self.k += 1
         q = np.concatenate([u, dn, self.z(u, dn), self._p]) if self._z_src else \
             np.concatenate([u, dn, self._p])
         try:
-            xf_dm, y_dm = self.step_out_(self.x, pv, q)
-            xf = np.array(xf_dm.elements(), float)
-            y = np.array(y_dm.elements(), float)
+            out = np.array(self.step_out_(np.concatenate([self.x, pv, q])).elements(), float)
+            xf, y = out[:self._nx], out[self._nx:]
         except RuntimeError as exc:
             self._undo()
             last = [ln for ln in str(exc).splitlines() if ln.strip()]
