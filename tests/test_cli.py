@@ -96,6 +96,7 @@ def test_real_process_exit_code_and_stderr(tmp_path):
     assert "Traceback" not in r.stderr
 
 
+@pytest.mark.filterwarnings("ignore:the dead time on 'feed' = 3.4")
 def test_linearize_wood_berry_rga(capsys):
     # Wood & Berry (1973) column: relative gain of the top <- reflux pair 2.01 (widely quoted, e.g.
     # Skogestad & Postlethwaite, Multivariable Feedback Control -- from memory)
