@@ -136,9 +136,18 @@ def test_bad_sweep_value_names_key_and_case():
     raw = copy.deepcopy(STUDY)
     raw["study"]["sweep"][0]["values"] = [0.1, "big"]
     # the simulator's signal factory refuses the string; the message names the key and the case
-    with pytest.raises(mp.ScenarioError, match=r"key 'disturbances.draw_off.size'.*case st-s002"):
+    with pytest.raises(mp.ScenarioError, match=r"key 'disturbances.draw_off.size'.*case st-s006-d0000"):
         expand(scn(raw))
     raw2 = copy.deepcopy(STUDY)
     raw2["study"]["sweep"] = [{"key": "scenario.duration", "values": [100.0, 0.0]}]
     with pytest.raises(mp.ScenarioError, match=r"key 'scenario.duration'.*value set by case st-s001"):
         expand(scn(raw2))
+
+
+def test_ci_ids_name_the_same_grid_points_as_full_ids():
+    raw = copy.deepcopy(STUDY)
+    raw["study"]["sweep"][0]["values"] = [0.3]          # CI: only the last full value
+    s = scn(raw)
+    full = {c.case_id: c.params for c in expand(s, full=True)}
+    for c in expand(s):
+        assert full[c.case_id] == c.params

@@ -15,8 +15,9 @@ shipped to any worker, which builds the models itself.
 Stable ids and seeds
 --------------------
 A case id is ``<scenario name>`` plus ``-s<grid index>`` when the study sweeps and ``-d<draw index>``
-when it draws, e.g. ``caustic_blending-s002-d0013``.  Grid indices follow the declaration order of the
-sweeps and values; draw *j* uses the random streams ``SeedSequence(seed, spawn_key=(j, 0))`` for its
+when it draws, e.g. ``caustic_blending-s002-d0013``.  Grid indices count over each sweep's
+``full_values`` (then any CI ``values`` not among them), the first sweep varying slowest, so an id
+names the same grid point in a CI-sized and in a full study; draw *j* uses the random streams ``SeedSequence(seed, spawn_key=(j, 0))`` for its
 parameter values and ``SeedSequence(seed, spawn_key=(j, 1))`` for the case's own seed (noise) -- the
 children ``SeedSequence(seed).spawn()`` would hand out, but addressed by index, so ids, values and
 seeds depend only on the file, never on the order or the worker a case runs in.  Draw *j* has the
@@ -152,18 +153,35 @@ def draw_values(scn: Scenario, j: int) -> dict[str, Any]:
     return out
 
 
-def _grid(scn: Scenario, full: bool) -> list[dict[str, Any]]:
+def _axes(scn: Scenario) -> list[list[Any]]:
+    """Per sweep, every value it can take: ``full_values`` then the CI ``values`` not among them.
+
+    Grid indices count in these axes, so a case id means the same values in a CI-sized and a full
+    study (``-s001`` is the same grid point in both).
+    """
+    axes = []
+    for sw in scn.data["study"]["sweep"]:
+        ax = list(sw["full_values"])
+        ax += [v for v in sw["values"] if v not in ax]
+        axes.append(ax)
+    return axes
+
+
+def _grid(scn: Scenario, full: bool) -> list[tuple[int, dict[str, Any]]]:
     sweeps = scn.data["study"]["sweep"]
     if not sweeps:
-        return [{}]
-    axes = [sw["full_values"] if full else sw["values"] for sw in sweeps]
+        return [(0, {})]
+    axes = _axes(scn)
+    chosen = [sw["full_values"] if full else sw["values"] for sw in sweeps]
     points = []
-    for combo in itertools.product(*axes):
+    for combo in itertools.product(*chosen):
         p: dict[str, Any] = {}
-        for sw, v in zip(sweeps, combo):
+        gi = 0
+        for sw, ax, v in zip(sweeps, axes, combo):
+            gi = gi * len(ax) + ax.index(v)
             for k in sw["keys"]:
                 p[k] = v
-        points.append(p)
+        points.append((gi, p))
     return points
 
 
@@ -195,7 +213,7 @@ def iter_cases(scn: Scenario, *, full: bool = False, ci: bool | None = None) -> 
     n_draw = (st["full_draws"] if full else st["draws"]) if st["draw"] else 0
     ci = (not full) if ci is None else bool(ci)
     draws_cache: dict[int, dict[str, Any]] = {}
-    for gi, point in enumerate(grid):
+    for gi, point in grid:
         for j in (range(n_draw) if n_draw else [None]):
             params = dict(point)
             if j is not None:
