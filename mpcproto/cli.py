@@ -203,6 +203,12 @@ def _cmd_run(args: argparse.Namespace) -> int:
         print(f"{mark}  {cr['name']}: {_fmt(cr['value'])} (limit {_fmt(cr['limit'])})")
     print(f"{'PASSED' if summary['passed'] else 'FAILED'}: {summary['scenario']} "
           f"({summary['elapsed_s']:.1f} s); results in {args.out}")
+    from .scenario import count_cases
+
+    n = count_cases(scn, full=True)
+    if n > 1:
+        print(f"(the nominal case only; the study has {count_cases(scn)} case(s), {n} with --full: "
+              f"run them with mpcproto batch)")
     print(summary["caution"])
     return EXIT_OK if summary["passed"] else EXIT_FAILED
 

@@ -1,7 +1,5 @@
 """``mpcproto run`` and run_case end to end on a short scenario of our own (the CIP caustic tank)."""
 
-import copy
-import csv
 import json
 
 import numpy as np

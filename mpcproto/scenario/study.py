@@ -30,7 +30,7 @@ from __future__ import annotations
 import copy
 import itertools
 import math
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
