@@ -51,7 +51,7 @@ CAUTION = ("Simulation only. These results come from models and do not show that
 
 
 # ----------------------------------------------------------------------------------------- errors
-_QUOTED = re.compile(r"'([A-Za-z_][A-Za-z0-9_]*)'")
+_QUOTED = re.compile(r"'([A-Za-z_][A-Za-z0-9_.]*)'")
 
 
 def settings_error(err: Exception, scn: Scenario, base_key: str, spec: Any = None) -> ScenarioError:
@@ -71,13 +71,17 @@ def settings_error(err: Exception, scn: Scenario, base_key: str, spec: Any = Non
     if named:
         key = f"{base_key}.{named.group(1)}"
     else:
+        # a quoted setting whose first part is a key of the spec: 'at', 'cv.level.weight'
         for m in _QUOTED.finditer(msg):
-            if m.group(1) in keys:
+            if m.group(1).split(".")[0] in keys:
                 key = f"{base_key}.{m.group(1)}"
                 break
         else:
-            if "kind" in keys and re.search(r"\bkind\b", msg):
-                key = f"{base_key}.kind"
+            # else the first word of the message that is a key of the spec ("unknown rule ...")
+            for m in re.finditer(r"\b([A-Za-z_][A-Za-z0-9_]*)\b", msg[len(base_key):]):
+                if m.group(1) in keys:
+                    key = f"{base_key}.{m.group(1)}"
+                    break
     m = re.match(re.escape(base_key) + r"(?:\[\d+\])?(?: (\([^)]*\)))?:\s*", msg)
     if m:
         msg = ((m.group(1) + " ") if m.group(1) else "") + msg[m.end():]
