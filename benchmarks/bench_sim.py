@@ -7,7 +7,9 @@ Run ``python benchmarks/bench_sim.py``; prints tables and writes
    noise, actuators, a DV signal, bookkeeping, and a set of PID loops as the controller, so no QP
    dominates) against a bare Python loop calling the same compiled CasADi integrator on the same
    input sequence (replayed from the closed-loop run, so the integrator does the same work), both
-   measured in this run.  Target: ratio <= 2.
+   measured in this run, alternately, 7 times; the ratio uses the fastest repeat of each (the
+   least disturbed on a shared machine), the ratio of medians is printed beside it.
+   Target: ratio <= 2.
 2. Accuracy of the plant integrator through a transient of the Henson-Seborg CSTR (open loop from
    its unstable middle steady state, coolant step, ignition to the upper steady state) against a
    cvodes reference at tight tolerances (abstol = reltol = 1e-12), for the default cvodes
@@ -30,7 +32,7 @@ import mpcproto as mp
 from mpcproto.sim import ClosedLoop, OpenLoop, Plant
 
 RESULTS = Path(__file__).resolve().parent / "results"
-REPEATS = 5
+REPEATS = 7
 
 
 def op_of(m, u=None, d=None):
@@ -103,10 +105,12 @@ def bench_stepping():
             x = np.array(F(x, P[k]).elements())
             err = max(err, float(np.max(np.abs(x - X[k + 1]) / (1e-6 + np.abs(X[k + 1])))))
         ctl_ms = float(np.median(tr.series("diag", "step_ms")))
-        c, b = float(np.median(closed)), float(np.median(bare))
+        # the least-disturbed repeat of each (the machine is shared and noisy); medians as well
+        c, b = float(np.min(closed)), float(np.min(bare))
         rows.append({"model": name, "samples": n, "integrator": plant.plugin,
                      "closed_loop_us_per_sample": c * 1e6, "bare_integrator_us_per_sample": b * 1e6,
-                     "ratio": c / b, "pid_step_us_median": ctl_ms * 1e3,
+                     "ratio": c / b, "ratio_of_medians": float(np.median(closed) / np.median(bare)),
+                     "pid_step_us_median": ctl_ms * 1e3,
                      "replay_max_rel_state_error": err, "target_ratio": 2.0, "meets_target": c / b <= 2.0})
     return rows
 
@@ -173,10 +177,12 @@ def main() -> int:
     acc_rows, span = bench_accuracy()
     choices = integrator_choices()
     print("Closed-loop stepping cost per sample (PID controller, instruments, DV signals)")
-    print(f"{'model':<20}{'samples':>8}{'closed us':>11}{'bare us':>10}{'ratio':>7}{'PID us':>8}  target<=2")
+    print(f"{'model':<20}{'samples':>8}{'closed us':>11}{'bare us':>10}{'ratio':>7}{'(med)':>7}"
+          f"{'PID us':>8}  target<=2")
     for r in step_rows:
         print(f"{r['model']:<20}{r['samples']:>8}{r['closed_loop_us_per_sample']:>11.1f}"
-              f"{r['bare_integrator_us_per_sample']:>10.1f}{r['ratio']:>7.2f}{r['pid_step_us_median']:>8.1f}"
+              f"{r['bare_integrator_us_per_sample']:>10.1f}{r['ratio']:>7.2f}{r['ratio_of_medians']:>7.2f}"
+              f"{r['pid_step_us_median']:>8.1f}"
               f"  {'met' if r['meets_target'] else 'MISSED'}")
     print()
     print(f"Integrator accuracy, Henson-Seborg CSTR, coolant +5 K from the middle steady state "

@@ -188,6 +188,7 @@ class PIDController:
                                         f"each {role} may be in one loop only.")
                 seen.add(v)
         self._idx = [(self.cv_names.index(lp.cv), self.mv_names.index(lp.mv)) for lp in self.loops]
+        self._diag_keys = [f"integral.{lp.mv}" for lp in self.loops]
         self._u0 = np.zeros(len(self.mv_names))
         self._state: list[_LoopState] = []
 
@@ -214,20 +215,24 @@ class PIDController:
         status = STATUS_OK
         held = 0
         saturated = 0
-        rate = targets.mv_rate
+        # plain Python floats: scalar arithmetic on them is much cheaper than on numpy scalars
+        ys, sps = meas.y.tolist(), targets.setpoint.tolist()
+        fresh = meas.fresh.tolist()
+        mv_lo, mv_hi = targets.mv_low.tolist(), targets.mv_high.tolist()
+        rate = targets.mv_rate.tolist() if targets.mv_rate is not None else None
         for lp, (ci, mj), st in zip(self.loops, self._idx, self._state):
-            y = float(meas.y[ci])
-            r = float(targets.setpoint[ci])
-            lo, hi = float(targets.mv_low[mj]), float(targets.mv_high[mj])
+            y = ys[ci]
+            r = sps[ci]
+            lo, hi = mv_lo[mj], mv_hi[mj]
             if rate is not None and math.isfinite(rate[mj]):
                 lo, hi = max(lo, st.u - rate[mj]), min(hi, st.u + rate[mj])
                 if lo > hi:   # operating limit moved faster than the rate allows: rate wins
-                    lo = hi = min(max(st.u, float(targets.mv_low[mj])), float(targets.mv_high[mj]))
+                    lo = hi = min(max(st.u, mv_lo[mj]), mv_hi[mj])
             if not math.isfinite(y) or not math.isfinite(r):
                 held += not math.isfinite(y)
                 u_out[mj] = st.u
                 continue
-            if lp.on_fresh and not bool(meas.fresh[ci]) and st.started:
+            if lp.on_fresh and not fresh[ci] and st.started:
                 u_out[mj] = st.u
                 continue
             K, Td, N = lp.gain, lp.derivative_time, lp.derivative_filter
@@ -251,8 +256,8 @@ class PIDController:
         if held:
             status = STATUS_HOLD
         diag: dict[str, float] = {"loops_held": held, "loops_saturated": saturated}
-        for lp, st in zip(self.loops, self._state):
-            diag[f"integral.{lp.mv}"] = st.i
+        for key, st in zip(self._diag_keys, self._state):
+            diag[key] = st.i
         return ControlOutput(u=u_out, status=status, diagnostics=diag)
 
 

@@ -276,8 +276,12 @@ class ClosedLoop:
         self.controller.reset(op, self.t0)
         self.k = 0
         self.u_prev = np.asarray(op.u, float).copy()
-        self._filt = np.asarray(op.y, float).copy()
-        self._meas_hist = np.zeros((N, m.ny))
+        self._filt = np.asarray(op.y, float).tolist()
+        self._meas_hist: list[list[float]] = []
+        self._alpha_l, self._bias_l = self._alpha.tolist(), self._bias.tolist()
+        self._y0_l = np.asarray(op.y, float).tolist()
+        self._noise_l = self._noise.tolist()
+        self._dl_per = list(zip(self._dl, self._per))
         self._y0 = np.asarray(op.y, float).copy()
         self._stuck: dict[int, float] = {}
         self._frozen: dict[int, float] = {}
@@ -302,9 +306,6 @@ class ClosedLoop:
         self._plain_instruments = all(n == 0 for n in self._dl) and all(p == 1 for p in self._per)
         self._dv_seen = np.where(self._dv_mask, self.D[:N], np.nan)
         self._act_hi_eff = np.maximum(self._act_lo, self._act_hi)
-        self._dl_arr = np.array(self._dl, dtype=np.int64)
-        self._per_arr = np.array(self._per, dtype=np.int64)
-        self._cv_range = np.arange(m.ny)
         self._all_fresh = np.ones(m.ny, bool)
         self._all_fresh.flags.writeable = False
         for arr in (self.SP, self.LO, self.HI, self.MVLO, self.MVHI, self._dv_seen,
@@ -319,9 +320,15 @@ class ClosedLoop:
         return out
 
     def _measure(self, k: int, t: float, y: np.ndarray) -> Measurement:
-        a = self._alpha
-        self._filt = a * self._filt + (1.0 - a) * y
-        mk = self._filt + self._bias + self._noise[k]
+        # a handful of CVs: plain Python floats are faster here than small numpy arrays
+        a, b, filt = self._alpha_l, self._bias_l, self._filt
+        noise = self._noise_l[k]
+        yl = y.tolist()
+        mk = []
+        for j in range(len(yl)):
+            f = a[j] * filt[j] + (1.0 - a[j]) * yl[j]
+            filt[j] = f
+            mk.append(f + b[j] + noise[j])
         for f in self._sensor_faults:
             j = self._cv_index[f.variable]
             if not f.active(t):
@@ -329,24 +336,28 @@ class ClosedLoop:
                 continue
             if f.kind == "sensor_frozen":
                 if id(f) not in self._frozen:
-                    self._frozen[id(f)] = (self._meas_hist[k - 1, j] if k > 0
-                                           else self._y0[j] + self._bias[j])
+                    self._frozen[id(f)] = (self._meas_hist[k - 1][j] if k > 0
+                                           else self._y0_l[j] + b[j])
                 mk[j] = self._frozen[id(f)]
             elif f.kind == "sensor_drift":
                 mk[j] += f.rate * (t - f.at)
             elif f.kind == "sensor_nan":
-                mk[j] = np.nan
+                mk[j] = math.nan
             elif f.kind == "sensor_bias":
                 mk[j] += f.size
-        self._meas_hist[k] = mk
+        self._meas_hist.append(mk)
         if self._plain_instruments:
-            return Measurement(y=mk, taken_at=np.full(mk.shape, t), fresh=self._all_fresh)
+            return Measurement(y=np.array(mk), taken_at=np.full(len(mk), t), fresh=self._all_fresh)
         # sample taken at js (a multiple of the analyzer period), arrived after the dead time;
         # before the run the past is the steady operating point
-        js = ((k - self._dl_arr) // self._per_arr) * self._per_arr
-        val = np.where(js >= 0, self._meas_hist[np.maximum(js, 0), self._cv_range],
-                       self._y0 + self._bias)
-        return Measurement(y=val, taken_at=self.t0 + js * self.Ts, fresh=js + self._dl_arr == k)
+        hist, t0, Ts = self._meas_hist, self.t0, self.Ts
+        val, taken, fresh = [], [], []
+        for j, (nd, P) in enumerate(self._dl_per):
+            js = ((k - nd) // P) * P
+            val.append(hist[js][j] if js >= 0 else self._y0_l[j] + b[j])
+            taken.append(t0 + js * Ts)
+            fresh.append(js + nd == k)
+        return Measurement(y=np.array(val), taken_at=np.array(taken), fresh=np.array(fresh))
 
     def _actuate(self, t: float, ucmd: np.ndarray) -> np.ndarray:
         cmd = ucmd if np.isfinite(ucmd).all() else np.where(np.isfinite(ucmd), ucmd, self.u_prev)
