@@ -164,8 +164,9 @@ def _cmd_linearize(args: argparse.Namespace) -> int:
         if not p["connected"]:
             continue
         taus = ", ".join(f"{t:.4g}" for t in p["time_constants"]) or "-"
+        integ = any(abs(re_) < 1e-12 and abs(im) < 1e-12 for re_, im in p["poles"])
         print(f"    {p['cv']:<16s} <- {p['mv']:<16s} gain {_fmt(p['gain']):>10s}   "
-              f"tau [{taus}]   dead time {p['dead_time']:g}")
+              f"tau [{taus}]   dead time {p['dead_time']:g}" + ("   integrating" if integ else ""))
     return EXIT_OK
 
 
