@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 
 import mpcproto as mp
-from mpcproto.sim import ClosedLoop, OpenLoop, Plant
+from mpcproto.sim import ClosedLoop, OpenLoop
 
 RESULTS = Path(__file__).resolve().parent / "results"
 REPEATS = 7

@@ -40,10 +40,10 @@ from ..linear import delay_samples
 from ..model import suggest
 from ..operating import OperatingPoint
 from ..trajectory import RUN_FAILED, RUN_OK, Trajectory
-from .instruments import (Actuator, Fault, Instrument, actuator_from_spec, fault_from_spec,
+from .instruments import (Actuator, Instrument, actuator_from_spec, fault_from_spec,
                           instrument_from_spec)
 from .plant import Plant
-from .signals import Signal, signal_from_spec
+from .signals import signal_from_spec
 
 __all__ = ["ClosedLoop", "simulate", "split_rng"]
 

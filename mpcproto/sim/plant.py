@@ -78,7 +78,7 @@ class Plant:
         opts = dict(DEFAULT_TOLERANCES) if self.plugin in _ADAPTIVE else {}
         opts.update(options or {})
         self.options = opts
-        nx, nu, nd, nz = model.nx, model.nu, model.nd, model.nz
+        nx, nu, nd = model.nx, model.nu, model.nd
         key = (model.name, self.Ts, self.plugin, repr(sorted(opts.items())))
         hit = _CACHE.get(key)
         if hit is not None and hit[0] is model.ode_ and hit[1] is model.out_:
