@@ -10,8 +10,8 @@ Commands
 ``mpcproto check SCENARIO.toml...``
     Validate scenario files as deeply as possible without running them (models, operating point,
     names, signal specs, controllers, every study case).
-``mpcproto run SCENARIO.toml --out DIR``
-    Run the scenario's nominal case; write DIR/summary.json, DIR/trajectories_<controller>.csv and
+``mpcproto run SCENARIO.toml --out DIR [--ci] [--case ID]``
+    Run the scenario's nominal case (or one case of its study); write DIR/summary.json, DIR/trajectories_<controller>.csv and
     PNG plots.
 ``mpcproto batch PATHS... --out DIR ...``
     Run every case of one or more studies (see ``mpcproto batch --help``).
@@ -189,7 +189,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from .scenario import load_scenario, run_scenario
 
     scn = load_scenario(args.scenario)
-    summary = run_scenario(scn, args.out, plots=not args.no_plots, ci=args.ci)
+    summary = run_scenario(scn, args.out, plots=not args.no_plots, ci=args.ci, case_id=args.case)
     for w in summary.get("warnings", []):
         print(f"mpcproto run: warning: {w}", file=sys.stderr)
     if summary["status"] != "ok":
@@ -207,7 +207,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from .scenario import count_cases
 
     n = count_cases(scn, full=True)
-    if n > 1:
+    if n > 1 and args.case is None:
         print(f"(the nominal case only; the study has {count_cases(scn)} case(s), {n} with --full: "
               f"run them with mpcproto batch)")
     print(summary["caution"])
@@ -248,6 +248,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     r.add_argument("--ci", action="store_true",
                    help="use the scenario's CI-sized settings ([scenario.ci] duration)")
+    r.add_argument("--case", default=None, metavar="ID",
+                   help="run one case of the scenario's study (an id from mpcproto batch) instead "
+                        "of the nominal case")
     r.set_defaults(handler=_cmd_run)
 
     _batch_error = ""

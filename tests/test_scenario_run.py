@@ -157,3 +157,18 @@ def test_swept_plant_parameter_is_a_mismatch(tmp_path):
     prep = prepare(case_scenario(c), base_parameters={"area": 1.1})
     assert prep.plant.parameters["area"] == 1.3
     assert prep.model.parameters["area"] == 1.1
+
+
+def test_run_one_case_of_a_study(tmp_path, capsys):
+    text = SHORT.replace("[controllers.mpc]\nhorizon = 20\ncontrol_horizon = 4\nsteady_target = false\n"
+                         "cv = { level = { disturbance = \"auto\" } }\n", "")
+    text += '\n[study]\n[[study.sweep]]\nkey = "disturbances.draw_off.size"\nvalues = [0.3]\nfull_values = [0.1, 0.3]\n'
+    path = write(tmp_path, text=text)
+    code = main(["run", str(path), "--out", str(tmp_path / "o"), "--no-plots", "--case", "short_tank-s000"])
+    capsys.readouterr()
+    assert code == 0
+    s = json.loads((tmp_path / "o" / "summary.json").read_text())
+    # the same case as in a batch: its id, its study value, its seed
+    (case,) = [c for c in expand(load_scenario(path), full=True) if c.case_id == "short_tank-s000"]
+    assert s["case_id"] == "short_tank-s000" and s["params"] == {"disturbances.draw_off.size": 0.1}
+    assert s["seed"] == case.seed

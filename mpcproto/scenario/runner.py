@@ -41,7 +41,8 @@ from .criteria import evaluate_comparisons, evaluate_controller
 from .schema import Scenario, load_scenario
 from .study import Case, case_scenario
 
-__all__ = ["run_case", "run_scenario", "check_scenario", "prepare", "Prepared", "CAUTION"]
+__all__ = ["run_case", "run_scenario", "check_scenario", "prepare", "Prepared", "CAUTION",
+           "find_case"]
 
 #: Carried by every summary and report.
 CAUTION = ("Simulation only. These results come from models and do not show that a controller is "
@@ -448,14 +449,30 @@ def _plain(v: Any) -> Any:
     return str(v)
 
 
+def find_case(scn: Scenario, case_id: str) -> Case:
+    """The case of *scn*'s study called *case_id* (CI-sized or full study)."""
+    from .study import iter_cases
+
+    for full in (False, True):
+        for c in iter_cases(scn, full=full):
+            if c.case_id == case_id:
+                return c
+    from .study import count_cases
+
+    raise ScenarioError(
+        f"expected the id of a case of this study (e.g. {next(iter_cases(scn)).case_id}; "
+        f"{count_cases(scn, full=True)} cases with --full); found {case_id!r}.", file=scn.file)
+
+
 def run_scenario(scn: Scenario | str | Path, out_dir: str | Path, *, plots: bool = True,
-                 ci: bool = False) -> dict[str, Any]:
+                 ci: bool = False, case_id: str | None = None) -> dict[str, Any]:
     """Run a scenario's nominal case and write its results to *out_dir* (created).
 
     Writes ``summary.json`` (the result record of :func:`run_case`), ``trajectories_<label>.csv``
     per controller and, with *plots*, PNG figures of the CVs and of the MVs with every controller
     overlaid (``plot_cvs.png``, ``plot_mvs.png``).  Sweeps and Monte Carlo draws are ignored (they
-    are for ``mpcproto batch``).
+    are for ``mpcproto batch``) unless *case_id* names one case of the study: that case is run
+    (same values, same seed as in a batch), e.g. to look at a failing Monte Carlo draw.
 
     Returns
     -------
@@ -464,9 +481,10 @@ def run_scenario(scn: Scenario | str | Path, out_dir: str | Path, *, plots: bool
     """
     if not isinstance(scn, Scenario):
         scn = load_scenario(scn)
+    target: Case | Scenario = scn if case_id is None else find_case(scn, case_id)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    rec, trajs = _run(scn, ci=ci)
+    rec, trajs = _run(target, ci=ci)
     files = []
     for label, traj in trajs.items():
         p = out / f"trajectories_{label}.csv"
