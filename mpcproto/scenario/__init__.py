@@ -16,11 +16,11 @@ The scenario keys are documented in ``docs/scenario-format.md``.
 from .schema import Scenario, load_scenario, parse_scenario, get_path, set_path
 from .build import plant_model, controller_model, operating_point, linear_report, get_model
 from .study import Case, expand, iter_cases, count_cases, case_scenario, draw_values
-from .runner import run_case, run_scenario, check_scenario, prepare, CAUTION
+from .runner import run_case, run_scenario, check_scenario, prepare, find_case, CAUTION
 
 __all__ = [
     "Scenario", "load_scenario", "parse_scenario", "get_path", "set_path",
     "plant_model", "controller_model", "operating_point", "linear_report", "get_model",
     "Case", "expand", "iter_cases", "count_cases", "case_scenario", "draw_values",
-    "run_case", "run_scenario", "check_scenario", "prepare", "CAUTION",
+    "run_case", "run_scenario", "check_scenario", "prepare", "find_case", "CAUTION",
 ]
