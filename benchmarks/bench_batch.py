@@ -16,6 +16,10 @@ What it measures
    itself; start-up is reported separately and also added in "cold" figures.
    Parallel efficiency = T(1 worker) / (2 x T(2 workers)); targets: >= 0.9 local pool, >= 0.85 Dask.
    All three runs must give identical results (same ids, seeds and numbers).
+   Two load-independent figures explain an efficiency below target: "slots busy" = time spent
+   inside cases / (workers x wall time) -- what the runner itself loses to scheduling, pickling and
+   writing is 1 minus it -- and "CPU share" = CPU time / wall time inside cases, below 1 when other
+   processes on the machine took the cores.
 3. Peak memory of the parent process for 100, 1,000 and 3,000 cheap cases (a 20-sample CasADi tank
    integration each, cases generated lazily), each in a fresh process: peak RSS (ru_maxrss) and
    tracemalloc's peak of Python allocations during ``run_batch``.  It must not grow with the number
@@ -102,7 +106,7 @@ high = 0.04
 """
 
 TIMING_KEYS = {"elapsed_s", "worker_pid", "median_solve_ms", "p95_solve_ms", "worst_fraction",
-               "slow_steps", "solve_ms"}
+               "slow_steps", "solve_ms", "cpu_s"}
 
 
 # ------------------------------------------------------------------------------- worker functions
@@ -311,8 +315,18 @@ def main(argv=None) -> int:
         same = {name: _numbers(tmp / name.replace("local_1", "w1").replace("local_2", "w2")
                                .replace("dask_2", "dask") / "results.jsonl") == ref for name in runs}
         report["identical_results"] = same
+        from mpcproto import load_results  # noqa: PLC0415
+
         t1 = r1["wall_s"]
         for name, r in runs.items():
+            recs = load_results(tmp / {"local_1": "w1", "local_2": "w2", "dask_2": "dask"}[name]
+                                / "results.jsonl")
+            in_cases = sum(x["elapsed_s"] for x in recs)
+            # share of the worker slots' wall time spent inside cases (the runner's own overhead
+            # is the rest), and share of that time the workers actually got a CPU (the rest went
+            # to other processes on the machine)
+            r["slot_utilisation"] = in_cases / (r["workers"] * r["wall_s"])
+            r["cpu_share_in_cases"] = sum(x["cpu_s"] for x in recs) / in_cases
             r["efficiency"] = t1 / (r["workers"] * r["wall_s"])
             r["cold_efficiency"] = r1["cold_wall_s"] / (r["workers"] * r["cold_wall_s"])
             r["per_case_s"] = r["wall_s"] * r["workers"] / max(1, r["cases"])
@@ -322,11 +336,12 @@ def main(argv=None) -> int:
     # ------------------------------------------------------------------------------ the table
     print()
     print(f"{'run':<10s}{'wall s':>9s}{'cold s':>9s}{'eff.':>7s}{'cold eff.':>11s}"
-          f"{'start+warm s':>14s}{'same numbers':>14s}")
+          f"{'start+warm s':>14s}{'slots busy':>12s}{'CPU share':>11s}{'same numbers':>14s}")
     targets = {"local_1": "", "local_2": ">= 0.90", "dask_2": ">= 0.85"}
     for name, r in report["runs"].items():
         print(f"{name:<10s}{r['wall_s']:9.1f}{r['cold_wall_s']:9.1f}{r['efficiency']:7.2f}"
               f"{r['cold_efficiency']:11.2f}{r['startup_and_warm_s']:14.1f}"
+              f"{r['slot_utilisation']:12.2f}{r['cpu_share_in_cases']:11.2f}"
               f"{str(report['identical_results'][name]):>14s}   target {targets[name] or '-'}")
     print("start-up of one worker (pool created -> runner imported): " + ", ".join(
         f"{k} {v:.2f} s" for k, v in report["startup_s"].items())

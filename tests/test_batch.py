@@ -21,7 +21,7 @@ from mpcproto import SettingsError, load_results, local_pool, run_batch
 from test_batch_workload import TankCase, make_cases, run_tank_case
 
 TESTS_DIR = Path(__file__).resolve().parent
-VOLATILE = ("elapsed_s", "worker_pid")
+VOLATILE = ("elapsed_s", "worker_pid", "cpu_s")
 
 
 def _stable(rec: dict) -> dict:
@@ -249,3 +249,31 @@ def test_a_case_that_kills_its_worker_is_pinned_and_the_rest_run(tmp_path):
     assert [r["case_id"] for r in errors] == ["tank-0003"]       # the bystanders ran again
     assert "died while running this case alone" in errors[0]["message"]
     assert (out.errors, out.passed) == (1, 7)
+
+
+def blas_threads_in_worker() -> list[int]:
+    """Thread counts the OpenBLAS libraries loaded in this process report."""
+    import ctypes
+
+    import numpy as np
+
+    np.ones((64, 64)) @ np.ones((64, 64))
+    counts = []
+    with open("/proc/self/maps") as fh:
+        paths = sorted({ln.split()[-1] for ln in fh if "openblas" in ln.lower() and ".so" in ln})
+    for p in paths:
+        lib = ctypes.CDLL(p)
+        for name in ("openblas_get_num_threads", "openblas_get_num_threads64_",
+                     "scipy_openblas_get_num_threads", "scipy_openblas_get_num_threads64_"):
+            if hasattr(lib, name):
+                counts.append(int(getattr(lib, name)()))
+                break
+    return counts
+
+
+def test_pool_workers_run_single_threaded_blas(pool):
+    # one case per core: each worker's BLAS is capped at one thread (as Dask does for its workers)
+    counts = pool.submit(blas_threads_in_worker).result()
+    if not counts:
+        pytest.skip("no OpenBLAS library with a thread-count query is loaded on this platform")
+    assert counts == [1] * len(counts)

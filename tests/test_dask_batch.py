@@ -16,7 +16,7 @@ distributed = pytest.importorskip("distributed")
 
 # measured on the machine, not part of the closed-loop result
 TIMING = {"elapsed_s", "worker_pid", "median_solve_ms", "p95_solve_ms", "worst_fraction",
-          "slow_steps", "solve_ms"}
+          "slow_steps", "solve_ms", "cpu_s"}
 
 
 def _without_timing(v):

@@ -85,6 +85,7 @@ def _case_meta(case: Any) -> dict[str, Any]:
 def _guarded_call(run: Callable[[Any], Mapping[str, Any]], case: Any, cid: str) -> dict[str, Any]:
     """Run one case in a worker; never raises for an ordinary exception (it becomes an error record)."""
     t0 = time.perf_counter()
+    c0 = time.process_time()
     try:
         result = run(case)
         if not isinstance(result, Mapping):
@@ -95,6 +96,7 @@ def _guarded_call(run: Callable[[Any], Mapping[str, Any]], case: Any, cid: str) 
         record = _error_record(cid, case, exc)
     record.setdefault(ID_KEY, cid)
     record.setdefault("elapsed_s", time.perf_counter() - t0)
+    record["cpu_s"] = time.process_time() - c0   # CPU time of the worker for this case
     record.setdefault("worker_pid", os.getpid())
     return record
 
@@ -579,8 +581,9 @@ def register_cli(subparsers) -> None:
                    help="absolute tolerance of the baseline comparison, in each KPI's unit "
                         "(default 1e-9)")
     b.add_argument("--no-trajectories", action="store_true",
-                   help="do not re-run the worst case of each scenario for trajectory plots in "
-                        "the report")
+                   help="do not re-run the worst cases for the report's trajectory plots (by "
+                        "default the worst case of each scenario with a failed case, at most 3, "
+                        "or the case closest to a limit when all passed)")
     b.set_defaults(handler=_cmd_batch)
 
 
@@ -630,9 +633,10 @@ def _load_cases(files: list[Path], full: bool) -> tuple[list[Any], dict[str, Any
     return cases, scenarios
 
 
-def _worst_case_images(records: list[dict[str, Any]], cases: list[Any], limit: int = 4
+def _worst_case_images(records: list[dict[str, Any]], cases: list[Any], limit: int = 3
                        ) -> list[tuple[str, bytes]]:
-    """Re-run the worst completed case of each scenario (same seed, same numbers) and plot it."""
+    """Re-run (same seed, same numbers) and plot the worst case of each scenario with a failed case
+    (at most *limit*), or the case closest to a limit when every case passed."""
     import tempfile  # noqa: PLC0415
 
     from ..report.html import sort_worst_first  # noqa: PLC0415
@@ -644,10 +648,14 @@ def _worst_case_images(records: list[dict[str, Any]], cases: list[Any], limit: i
         return []
     by_id = {case_id_of(c): c for c in cases}
     picked: dict[str, dict[str, Any]] = {}
-    for rec in sort_worst_first(records):
+    ranked = [r for r in sort_worst_first(records)
+              if verdict(r) != "error" and r.get("case_id") in by_id]
+    for rec in ranked:   # the worst case of every scenario with a failed case ...
         scen = str(rec.get("scenario", ""))
-        if scen not in picked and verdict(rec) != "error" and rec.get("case_id") in by_id:
+        if verdict(rec) == "failed" and scen not in picked:
             picked[scen] = rec
+    if not picked and ranked:   # ... or, when all passed, the one closest to a limit
+        picked[str(ranked[0].get("scenario", ""))] = ranked[0]
     images: list[tuple[str, bytes]] = []
     with tempfile.TemporaryDirectory() as tmp:
         for scen, rec in list(picked.items())[:limit]:
@@ -718,8 +726,9 @@ def _cmd_batch(args) -> int:
               file=sys.stderr)
         return EXIT_INTERRUPTED
 
-    records = load_results(outcome.results_path, ids)
-    write_summary_csv(outcome.results_path, out_dir / "summary.csv", ids=ids)
+    order = {cid: i for i, cid in enumerate(ids)}
+    records = sorted(load_results(outcome.results_path, ids), key=lambda r: order[r["case_id"]])
+    write_summary_csv(records, out_dir / "summary.csv")   # rows in case order, stable for diffs
     comparison = None
     if args.baseline:
         comparison = compare_with_baseline(records, args.baseline, rtol=args.tolerance,

@@ -36,6 +36,7 @@ from typing import Iterator
 from ..exceptions import SettingsError
 
 __all__ = ["local_pool", "dask_executor", "executor_slots", "default_start_method", "default_workers",
+           "limit_blas_threads",
            "DASK_INSTALL_HINT", "START_METHODS"]
 
 DASK_INSTALL_HINT = 'pip install "mpcproto[dask]"'
@@ -70,9 +71,57 @@ def default_start_method() -> str:
     return "forkserver" if "forkserver" in available else "spawn"
 
 
+#: Environment variables that cap the thread pools of numerical libraries loaded after they are set.
+_THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+_BLAS_SETTERS = ("openblas_set_num_threads", "openblas_set_num_threads64_",
+                 "scipy_openblas_set_num_threads", "scipy_openblas_set_num_threads64_")
+
+
+def limit_blas_threads(n: int = 1) -> int:
+    """Cap the BLAS thread pools of this process at *n* threads; return how many were capped.
+
+    Process-parallel batches run one case per core: a BLAS library that also starts a thread per
+    core in every worker oversubscribes the machine (its idle threads spin).  This sets the
+    ``*_NUM_THREADS`` environment variables (for libraries loaded later) and calls
+    ``openblas_set_num_threads`` (under the names NumPy's and SciPy's bundled OpenBLAS builds
+    export) in every OpenBLAS library already loaded, found through ``/proc/self/maps``.  Dask's
+    worker processes get the same cap from Dask itself.  Returns 0 where nothing could be set
+    (another platform or BLAS).
+    """
+    import ctypes  # noqa: PLC0415
+
+    for var in _THREAD_ENV:
+        os.environ[var] = str(n)
+    try:
+        with open("/proc/self/maps", encoding="utf-8", errors="replace") as fh:
+            paths = sorted({ln.split()[-1] for ln in fh if "openblas" in ln.lower() and ".so" in ln})
+    except OSError:
+        return 0
+    count = 0
+    for path in paths:
+        try:
+            lib = ctypes.CDLL(path)
+        except OSError:
+            continue
+        for name in _BLAS_SETTERS:
+            setter = getattr(lib, name, None)
+            if setter is not None:
+                setter(ctypes.c_int(n))
+                count += 1
+                break
+    return count
+
+
+def _worker_start(blas_threads: int | None, initializer, initargs: tuple) -> None:
+    if blas_threads is not None:
+        limit_blas_threads(blas_threads)
+    if initializer is not None:
+        initializer(*initargs)
+
+
 def local_pool(workers: int | None = None, *, start_method: str | None = None,
                preload: list[str] | None = None, initializer=None,
-               initargs: tuple = ()) -> ProcessPoolExecutor:
+               initargs: tuple = (), blas_threads: int | None = 1) -> ProcessPoolExecutor:
     """A process pool for a batch, workers kept alive across cases.
 
     Parameters
@@ -88,6 +137,9 @@ def local_pool(workers: int | None = None, *, start_method: str | None = None,
     initializer, initargs : optional
         ``initializer(*initargs)`` runs once in every worker when it starts (for example to warm
         caches); must be picklable.
+    blas_threads : int or None
+        Threads each worker's BLAS may use (default 1: the pool already runs one case per core;
+        see :func:`limit_blas_threads`); None leaves the libraries' defaults.
 
     Returns
     -------
@@ -105,8 +157,8 @@ def local_pool(workers: int | None = None, *, start_method: str | None = None,
     ctx = multiprocessing.get_context(start_method)
     if start_method == "forkserver":
         ctx.set_forkserver_preload(list(_PRELOAD if preload is None else preload))
-    return ProcessPoolExecutor(max_workers=n, mp_context=ctx, initializer=initializer,
-                               initargs=initargs)
+    return ProcessPoolExecutor(max_workers=n, mp_context=ctx, initializer=_worker_start,
+                               initargs=(blas_threads, initializer, tuple(initargs)))
 
 
 def _import_distributed():
