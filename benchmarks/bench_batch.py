@@ -174,6 +174,21 @@ def _strip(v):
     return v
 
 
+def _diff(a, b, path=""):
+    """Paths where two plain-data trees differ (first few)."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        out = []
+        for k in sorted(set(a) | set(b)):
+            out += _diff(a.get(k), b.get(k), f"{path}.{k}")
+        return out
+    if isinstance(a, list) and isinstance(b, list) and len(a) == len(b):
+        out = []
+        for i, (x, y) in enumerate(zip(a, b)):
+            out += _diff(x, y, f"{path}[{i}]")
+        return out
+    return [] if a == b else [f"{path}: {str(a)[:40]} != {str(b)[:40]}"]
+
+
 def _numbers(path: Path) -> dict:
     from mpcproto import load_results  # noqa: PLC0415
 
@@ -315,6 +330,16 @@ def main(argv=None) -> int:
         same = {name: _numbers(tmp / name.replace("local_1", "w1").replace("local_2", "w2")
                                .replace("dask_2", "dask") / "results.jsonl") == ref for name in runs}
         report["identical_results"] = same
+        report["differences"] = {}
+        for name, ok in same.items():
+            if not ok:
+                other = _numbers(tmp / {"local_2": "w2", "dask_2": "dask"}[name] / "results.jsonl")
+                found = []
+                for cid in sorted(ref):
+                    found += [f"{cid}{p}" for p in _diff(json.loads(ref[cid]),
+                                                         json.loads(other.get(cid, "{}")))]
+                report["differences"][name] = {"count": len(found), "first": found[:8]}
+                print(f"  {name}: {len(found)} numbers differ from 1 worker, e.g. {found[:3]}")
         from mpcproto import load_results  # noqa: PLC0415
 
         t1 = r1["wall_s"]

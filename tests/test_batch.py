@@ -21,7 +21,7 @@ from mpcproto import SettingsError, load_results, local_pool, run_batch
 from test_batch_workload import TankCase, make_cases, run_tank_case
 
 TESTS_DIR = Path(__file__).resolve().parent
-VOLATILE = ("elapsed_s", "worker_pid", "cpu_s")
+VOLATILE = ("elapsed_s", "worker_pid", "cpu_s", "case_fingerprint")
 
 
 def _stable(rec: dict) -> dict:
@@ -277,3 +277,17 @@ def test_pool_workers_run_single_threaded_blas(pool):
     if not counts:
         pytest.skip("no OpenBLAS library with a thread-count query is loaded on this platform")
     assert counts == [1] * len(counts)
+
+
+def test_resume_reruns_a_case_whose_definition_changed(tmp_path, pool):
+    from dataclasses import replace
+
+    cases = make_cases(3, steps=100)
+    run_batch(cases, tmp_path, executor=pool, run=run_tank_case, progress=False)
+    edited = [cases[0], replace(cases[1], gain=0.45), cases[2]]     # same id, new gain
+    out = run_batch(edited, tmp_path, executor=pool, run=run_tank_case, resume=True,
+                    progress=False)
+    assert (out.skipped, out.ran, out.changed) == (2, 1, ["tank-0001"])
+    latest = {r["case_id"]: r for r in load_results(tmp_path / "results.jsonl")}
+    assert latest["tank-0001"]["params"]["gain"] == 0.45
+    assert _stable(latest["tank-0001"]) == json.loads(json.dumps(run_tank_case(edited[1])))

@@ -27,6 +27,8 @@ The ``batch`` command of the CLI (:func:`register_cli`) wraps this function and 
 
 from __future__ import annotations
 
+import dataclasses
+import hashlib
 import json
 import math
 import os
@@ -47,12 +49,15 @@ from ..report.summary import case_verdict as verdict
 from .executors import executor_slots, local_pool
 
 __all__ = ["run_batch", "BatchOutcome", "iter_results", "load_results", "verdict", "case_id_of",
+           "case_fingerprint",
            "RESULTS_FILE", "register_cli"]
 
 RESULTS_FILE = "results.jsonl"
 
 #: Key of the case id in every result record.
 ID_KEY = "case_id"
+#: Key of the case fingerprint (see :func:`case_fingerprint`).
+FINGERPRINT_KEY = "case_fingerprint"
 
 
 # ------------------------------------------------------------------------------------- case identity
@@ -220,12 +225,31 @@ def _repair_tail(path: Path) -> int:
         return size - keep
 
 
-def _scan_done(path: Path) -> dict[str, str]:
-    """Case id -> verdict of every complete record in *path* (the last record per id wins)."""
-    done: dict[str, str] = {}
+def _scan_done(path: Path) -> dict[str, tuple[str, str | None]]:
+    """Case id -> (verdict, fingerprint) of every complete record in *path* (the last per id wins)."""
+    done: dict[str, tuple[str, str | None]] = {}
     for rec in iter_results(path):
-        done[str(rec[ID_KEY])] = verdict(rec)
+        done[str(rec[ID_KEY])] = (verdict(rec), rec.get(FINGERPRINT_KEY))
     return done
+
+
+def case_fingerprint(case: Any) -> str:
+    """A short hash of everything that defines a case (its fields, scenario data, parameters, seed).
+
+    Stored in each record; on resume a case whose fingerprint changed (the scenario file was edited
+    but the ids stayed) runs again instead of keeping a stale result.
+    """
+    try:
+        if dataclasses.is_dataclass(case) and not isinstance(case, type):
+            data: Any = dataclasses.asdict(case)
+        elif isinstance(case, Mapping):
+            data = dict(case)
+        else:
+            data = vars(case)
+        text = json.dumps(data, sort_keys=True, default=repr)
+    except (TypeError, ValueError):
+        text = repr(case)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
 
 # ------------------------------------------------------------------------------------ the outcome
@@ -251,6 +275,9 @@ class BatchOutcome:
         True when Ctrl-C stopped the batch early (finished cases are on disk).
     failed_ids, error_ids : list of str
         Ids of the cases that failed a criterion / raised an error.
+    changed : list of str
+        With ``resume=True``: ids whose recorded result came from a different definition of the
+        case (see :func:`case_fingerprint`) and that therefore ran again.
     """
 
     out_dir: Path
@@ -265,6 +292,7 @@ class BatchOutcome:
     interrupted: bool = False
     failed_ids: list[str] = field(default_factory=list)
     error_ids: list[str] = field(default_factory=list)
+    changed: list[str] = field(default_factory=list)
     executor: str = ""
 
     @property
@@ -357,7 +385,8 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
     workers : int, optional
         Size of a local process pool owned by this call (default: the available CPUs).
     resume : bool
-        Keep the records already in ``results.jsonl`` and run only the cases whose ids are missing.
+        Keep the records already in ``results.jsonl`` and run only the cases whose ids are missing
+        (or whose definition changed since their record was written: :func:`case_fingerprint`).
         Without it an existing ``results.jsonl`` is replaced.
     run : callable, optional
         ``run(case) -> dict`` executed in the workers; default
@@ -394,7 +423,7 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
     out.mkdir(parents=True, exist_ok=True)
     path = out / RESULTS_FILE
 
-    done: dict[str, str] = {}
+    done: dict[str, tuple[str, str | None]] = {}
     if resume and path.exists():
         removed = _repair_tail(path)
         if removed:
@@ -417,7 +446,7 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
     bar: _ProgressBar | None = None
 
     seen: set[str] = set()
-    pending: dict[Future, tuple[str, Any, bool]] = {}
+    pending: dict[Future, tuple[str, Any, bool, str]] = {}
     case_iter = iter(cases)
     exhausted = False
 
@@ -433,20 +462,22 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
         if callback is not None:
             callback(outcome.skipped + outcome.ran, total, rec)
 
-    suspects: deque[tuple[str, Any]] = deque()   # cases in flight when a worker process died
+    suspects: deque[tuple[str, Any, str]] = deque()   # cases in flight when a worker process died
 
     def collect(fut: Future, fh) -> bool:
         """Record a finished future; return True when its worker process died under it."""
-        cid, case, alone = pending.pop(fut)
+        cid, case, alone, fp = pending.pop(fut)
         if fut.cancelled():
-            record(_error_record(cid, case, RuntimeError("the executor cancelled this case")), fh)
+            rec = _error_record(cid, case, RuntimeError("the executor cancelled this case"))
+            rec[FINGERPRINT_KEY] = fp
+            record(rec, fh)
             return False
         exc = fut.exception()
         if exc is None:
             rec = fut.result()
         elif isinstance(exc, BrokenProcessPool) and own:
             if not alone:   # maybe a bystander: run it again, on its own, in a fresh pool
-                suspects.append((cid, case))
+                suspects.append((cid, case, fp))
                 return True
             rec = _error_record(cid, case, exc, "the worker process died while running this "
                                 "case alone (a crash in compiled code, or out of memory)")
@@ -454,11 +485,12 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
             rec = _error_record(cid, case, exc, "raised outside the case runner")
         else:  # KeyboardInterrupt/SystemExit in a worker: not a verdict, leave it for --resume
             raise KeyboardInterrupt
+        rec[FINGERPRINT_KEY] = fp
         record(rec, fh)
         return isinstance(exc, BrokenProcessPool)
 
-    def submit(cid: str, case: Any, alone: bool) -> None:
-        pending[ex.submit(_guarded_call, run_fn, case, cid)] = (cid, case, alone)
+    def submit(cid: str, case: Any, alone: bool, fp: str) -> None:
+        pending[ex.submit(_guarded_call, run_fn, case, cid)] = (cid, case, alone, fp)
 
     try:
         with path.open("a", encoding="utf-8") as fh:
@@ -468,7 +500,8 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
                         # after a worker died: re-run each case that was in flight on its own,
                         # so that a crash is pinned on the case that causes it
                         if not pending:
-                            submit(*suspects.popleft(), True)
+                            cid, case, fp = suspects.popleft()
+                            submit(cid, case, True, fp)
                     while not suspects and not exhausted and len(pending) < window:
                         try:
                             case = next(case_iter)
@@ -482,13 +515,17 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
                                 "(give each scenario a distinct name).")
                         seen.add(cid)
                         outcome.total += 1
+                        fp = case_fingerprint(case)
                         if cid in done:
-                            outcome.skipped += 1
-                            outcome._tally(cid, done[cid])
-                            continue
+                            was, old_fp = done[cid]
+                            if old_fp is None or old_fp == fp:
+                                outcome.skipped += 1
+                                outcome._tally(cid, was)
+                                continue
+                            outcome.changed.append(cid)   # edited since it ran: run it again
                         if bar is None and show_bar:
                             bar = _ProgressBar(total, outcome.skipped, sys.stderr)
-                        submit(cid, case, False)
+                        submit(cid, case, False, fp)
                     if not pending:
                         if suspects:
                             continue
@@ -748,6 +785,9 @@ def _cmd_batch(args) -> int:
     print(f"{outcome.passed} passed, {outcome.failed} failed a criterion, {outcome.errors} did not "
           f"complete" + (f", {n_reg} KPI(s) worse than the baseline" if comparison else "")
           + f" ({outcome.total} cases, {outcome.ran} run now, {outcome.wall_s:.1f} s)")
+    if outcome.changed:
+        print(f"  {len(outcome.changed)} case(s) had changed since their results were recorded and "
+              f"ran again (e.g. {outcome.changed[0]})")
     for cid in outcome.error_ids[:10]:
         rec = next((r for r in records if r.get("case_id") == cid), {})
         print(f"  error  {cid}: {rec.get('message', '')}")
