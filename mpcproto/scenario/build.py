@@ -161,6 +161,12 @@ def operating_point(scn: Scenario, model: Model | None = None):
         raise
     except MpcprotoError as e:
         raise ScenarioError(str(e), file=scn.file, key="operating_point") from None
+    except np.linalg.LinAlgError as e:
+        # non-finite derivatives at the point found (absurd parameter values)
+        raise ScenarioError(
+            f"expected a steady state where model '{model.name}' has finite derivatives; found "
+            f"non-finite values ({e}). Check the parameter values in [plant] and "
+            f"[controller_model].", file=scn.file, key="operating_point") from None
 
 
 def _pick(scn: Scenario, found: list, pick: str, xg: np.ndarray | None):

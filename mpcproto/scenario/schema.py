@@ -448,6 +448,9 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
                 if not v:
                     c.fail(key, "a signal table or a non-empty array of them", "an empty array")
                 out[k] = [c.table(x, f"{key}[{i}]") for i, x in enumerate(v)]
+                for i, x in enumerate(out[k]):
+                    if "kind" in x:
+                        c.string(x["kind"], f"{key}[{i}].kind")
             elif isinstance(v, (int, float)) and not isinstance(v, bool):
                 out[k] = c.number(v, key)
             else:
@@ -456,6 +459,8 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
                            + (' or "none"' if section == "setpoints" else ""),
                            f"{_type_name(v)} ({_show(v)})")
                 out[k] = dict(v)
+                if "kind" in v:
+                    c.string(v["kind"], f"{key}.kind")
         data[section] = out
     # instruments (per CV), actuators (per MV), faults (per label): tables for the simulator
     for section in ("instruments", "actuators", "faults"):
