@@ -19,7 +19,9 @@ What it measures
    Two load-independent figures explain an efficiency below target: "slots busy" = time spent
    inside cases / (workers x wall time) -- what the runner itself loses to scheduling, pickling and
    writing is 1 minus it -- and "CPU share" = CPU time / wall time inside cases, below 1 when other
-   processes on the machine took the cores.
+   processes on the machine took the cores.  "CPU eff." = (CPU time of the 1-worker run / CPU
+   time of this run) x (slots busy / slots busy of the 1-worker run): the efficiency this run would
+   reach with a core per worker, an estimate for a busy machine.
 3. Peak memory of the parent process for 100, 1,000 and 3,000 cheap cases (a 20-sample CasADi tank
    integration each, cases generated lazily), each in a fresh process: peak RSS (ru_maxrss) and
    tracemalloc's peak of Python allocations during ``run_batch``.  It must not grow with the number
@@ -352,6 +354,13 @@ def main(argv=None) -> int:
             # to other processes on the machine)
             r["slot_utilisation"] = in_cases / (r["workers"] * r["wall_s"])
             r["cpu_share_in_cases"] = sum(x["cpu_s"] for x in recs) / in_cases
+            r["cpu_s_total"] = sum(x["cpu_s"] for x in recs)
+        for name, r in runs.items():
+            # what the efficiency would be if every worker had a core to itself: the runner's own
+            # losses (slots not busy with cases) times the extra CPU a case costs when run in
+            # parallel (shared caches, memory bandwidth)
+            r["cpu_based_efficiency"] = (r1["cpu_s_total"] / r["cpu_s_total"]) * \
+                (r["slot_utilisation"] / r1["slot_utilisation"])
             r["efficiency"] = t1 / (r["workers"] * r["wall_s"])
             r["cold_efficiency"] = r1["cold_wall_s"] / (r["workers"] * r["cold_wall_s"])
             r["per_case_s"] = r["wall_s"] * r["workers"] / max(1, r["cases"])
@@ -361,13 +370,25 @@ def main(argv=None) -> int:
     # ------------------------------------------------------------------------------ the table
     print()
     print(f"{'run':<10s}{'wall s':>9s}{'cold s':>9s}{'eff.':>7s}{'cold eff.':>11s}"
-          f"{'start+warm s':>14s}{'slots busy':>12s}{'CPU share':>11s}{'same numbers':>14s}")
+          f"{'start+warm s':>14s}{'slots busy':>12s}{'CPU share':>11s}{'CPU eff.':>10s}"
+          f"{'same numbers':>14s}")
     targets = {"local_1": "", "local_2": ">= 0.90", "dask_2": ">= 0.85"}
     for name, r in report["runs"].items():
         print(f"{name:<10s}{r['wall_s']:9.1f}{r['cold_wall_s']:9.1f}{r['efficiency']:7.2f}"
               f"{r['cold_efficiency']:11.2f}{r['startup_and_warm_s']:14.1f}"
               f"{r['slot_utilisation']:12.2f}{r['cpu_share_in_cases']:11.2f}"
+              f"{r['cpu_based_efficiency']:10.2f}"
               f"{str(report['identical_results'][name]):>14s}   target {targets[name] or '-'}")
+    busy = report["runs"]["local_1"]["cpu_share_in_cases"] < 0.9
+    report["machine_busy"] = busy
+    if busy:
+        print("NOTE: even the 1-worker run got only "
+              f"{report['runs']['local_1']['cpu_share_in_cases']:.0%} of a core: other processes "
+              "were using the machine, and the kernel shares the CPUs fairly between sessions, so "
+              "a second worker in this session cannot get a second core. The wall-time "
+              "efficiencies above measure that contention; 'CPU eff.' (from the CPU time the "
+              "cases used and the share of time the worker slots were busy) estimates the "
+              "efficiency on an idle machine. Re-run when the machine is idle.")
     print("start-up of one worker (pool created -> runner imported): " + ", ".join(
         f"{k} {v:.2f} s" for k, v in report["startup_s"].items())
         + (f"; Dask LocalCluster (2 workers) {report['runs']['dask_2']['cluster_startup_s']:.2f} s"
