@@ -291,3 +291,12 @@ def test_resume_reruns_a_case_whose_definition_changed(tmp_path, pool):
     latest = {r["case_id"]: r for r in load_results(tmp_path / "results.jsonl")}
     assert latest["tank-0001"]["params"]["gain"] == 0.45
     assert _stable(latest["tank-0001"]) == json.loads(json.dumps(run_tank_case(edited[1])))
+
+
+def test_progress_bar_shows_counts_and_eta_when_asked(tmp_path, pool, capsys):
+    cases = make_cases(4, steps=60, bad=(1,))
+    run_batch(cases, tmp_path, executor=pool, run=run_tank_case, progress=True)
+    err = capsys.readouterr().err
+    last = err.rstrip("\n").split("\r")[-1]
+    assert last.startswith("batch [") and "4/4 100%" in last and "ETA 0:00" in last
+    assert "1 error" in last and err.endswith("\n")
