@@ -22,6 +22,11 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
+try:  # the kernel behind ``csr_matrix @ vector``, without scipy's dispatch layers
+    from scipy.sparse._sparsetools import csr_matvec as _csr_matvec
+except ImportError:  # pragma: no cover - other scipy layouts
+    _csr_matvec = None
+
 from ..exceptions import SettingsError
 
 __all__ = ["CompiledQP", "QPResult", "OSQP_DEFAULTS"]
@@ -230,6 +235,8 @@ class CompiledQP:
         Mz = sp.hstack([blocks[name] for name in layout] + [M[:, [-1]]]).tocsr()
         Mz.eliminate_zeros()
         self._Mz = Mz
+        # a small map is faster as a dense matrix (one BLAS call, no sparse bookkeeping)
+        self._Mz_dense = Mz.toarray() if Mz.shape[0] * Mz.shape[1] <= 40000 else None
         self._zoffs = offs
         self.n_inputs_ = nz
         self._zz = np.zeros(nz + 1)
@@ -281,8 +288,9 @@ class CompiledQP:
         zz[:-1] = z
         zi = zz[self._zinf]
         isinf = np.isinf(zi)
+        hit = None
         if isinf.any():
-            key = np.where(isinf, np.sign(zi), 0.0).tobytes()
+            key = (zi * isinf).tobytes()      # +-inf where infinite, 0 (or nan) elsewhere
             hit = self._inf_cache.get(key)
             if hit is None:
                 direction = self._Mz_inf_sign @ np.where(isinf, np.sign(zi), 0.0)
@@ -292,10 +300,16 @@ class CompiledQP:
                     self._inf_cache.clear()
                 self._inf_cache[key] = hit
             zz[hit[0]] = 0.0
-            out = self._Mz @ zz
-            out[hit[1]] = hit[2]
+        Mz = self._Mz
+        if self._Mz_dense is not None:
+            out = self._Mz_dense @ zz
+        elif _csr_matvec is not None:
+            out = np.zeros(Mz.shape[0])
+            _csr_matvec(Mz.shape[0], Mz.shape[1], Mz.indptr, Mz.indices, Mz.data, zz, out)
         else:
-            out = self._Mz @ zz
+            out = Mz @ zz
+        if hit is not None:
+            out[hit[1]] = hit[2]
         n, m = self._n, self._m
         l = self._lbuf
         l[self._low_rows] = out[n + m:]

@@ -192,6 +192,8 @@ class DisturbanceEstimator:
         self.Ba_ = np.vstack([B, np.zeros((ny, nu))])
         self.Bda_ = np.vstack([np.asarray(m.Bd, float), np.zeros((ny, m.nd))])
         self.D_, self.Dd_ = np.asarray(m.D, float), np.asarray(m.Dd, float)
+        self._has_D, self._has_Dd = bool(np.any(self.D_ != 0)), bool(np.any(self.Dd_ != 0))
+        self._has_Bd = bool(np.any(self.Bda_ != 0))
         self._gains: dict[bytes, np.ndarray] = {}
         self.gain_ = self._gain(np.ones(ny, bool))
         self.nx_, self.na_, self.ny_ = nx, na, ny
@@ -277,13 +279,18 @@ class DisturbanceEstimator:
         y_dev = np.asarray(y_dev, float)
         fresh = np.asarray(fresh, bool)
         taken_at = np.asarray(taken_at, float)
-        if fresh.all() and np.isfinite(y_dev).all() and (np.abs(taken_at - t) < 0.5 * self.dmodel.Ts).all():
+        half = 0.5 * self.dmodel.Ts
+        if (fresh.all() and np.isfinite(y_dev).all()
+                and taken_at.min() > t - half and taken_at.max() < t + half):
             # the common case: every CV measured now
             self._ymask[slot] = True
             self._yval[slot] = y_dev
             xa = self._prior[slot]
-            u_held = self._u[(k - 1) % H] if k > 0 else self._u_prev
-            yhat = self.C_ @ xa + self.D_ @ u_held + self.Dd_ @ d_dev
+            yhat = self.C_ @ xa
+            if self._has_D:
+                yhat += self.D_ @ (self._u[(k - 1) % H] if k > 0 else self._u_prev)
+            if self._has_Dd:
+                yhat += self.Dd_ @ d_dev
             self._post[slot] = xa + self.gain_ @ (y_dev - yhat)
             self._started = True
             return _NOTHING
@@ -331,7 +338,10 @@ class DisturbanceEstimator:
         s = self._k % H
         self._u[s] = u_dev
         nxt = (self._k + 1) % H
-        self._prior[nxt] = self.A_ @ self._post[s] + self.Ba_ @ u_dev + self.Bda_ @ self._d[s]
+        xn = self.A_ @ self._post[s] + self.Ba_ @ u_dev
+        if self._has_Bd:
+            xn += self.Bda_ @ self._d[s]
+        self._prior[nxt] = xn
         self._ymask[nxt] = False
         self._u_prev = np.asarray(u_dev, float).copy()
 

@@ -386,7 +386,22 @@ class PredictiveController:
 
     # ================================================================== build
     def build(self) -> "PredictiveController":
-        """Validate the settings, build the estimator and steady target, compile the dynamic QP."""
+        """Validate the settings, build the estimator and steady target, compile the dynamic QP.
+
+        Returns the controller itself.  Compiled artefacts: ``qp_``, ``target_``,
+        ``estimator_``, ``scales_``, ``scaled_``, ``terminal_weight_`` and ``compile_s_``.
+        """
+        import gc
+
+        was_enabled = gc.isenabled()
+        gc.disable()             # compilation makes many short-lived objects: collect once after
+        try:
+            return self._build()
+        finally:
+            if was_enabled:
+                gc.enable()
+
+    def _build(self) -> "PredictiveController":
         import cvxpy as cp
 
         t_start = time.perf_counter()
@@ -403,36 +418,57 @@ class PredictiveController:
         Bw, Cw = self.estimator_.Bw_, self.estimator_.Cw_
         opts = r["solver_options"]
         osqp_opts = dict(opts) if self.solver == "osqp" else {}
+        Bd, Dd = np.asarray(m.Bd, float), np.asarray(m.Dd, float)
+        nd = m.nd
+        # -- scaling: the QPs work in scaled deviations (one MV/CV scale = 1; states scaled by how
+        # far the MVs move them within the horizon), so OSQP sees a well-balanced problem
+        su, sy = r["mv_scale"], r["cv_scale"]
+        sx = self._state_scales(A, B, C, su, sy, min(N, 50))
+        self.scales_ = {"x": sx, "u": su, "y": sy}
+        As = A * (1 / sx)[:, None] * sx[None, :]
+        Bs = B * (1 / sx)[:, None] * su[None, :]
+        Cs = C * (1 / sy)[:, None] * sx[None, :]
+        Ds = D * (1 / sy)[:, None] * su[None, :]
+        Bds, Dds = Bd / sx[:, None], Dd / sy[:, None]
+        Bws, Cws = Bw / sx[:, None], Cw / sy[:, None]
+        wq_s = r["cv_weight"] * sy ** 2            # weights per scaled unit
+        wr_s = r["move_weight"] * su ** 2
+        wrest_s = r["rest_weight"] * su ** 2
+        wl_s = r["lim_lin"] * sy
+        wh_s = r["lim_quad"] * sy ** 2
+        self.scaled_ = {"A": As, "B": Bs, "C": Cs, "D": Ds, "Bd": Bds, "Dd": Dds, "Bw": Bws,
+                        "Cw": Cws, "cv_weight": wq_s, "move_weight": wr_s, "rest_weight": wrest_s,
+                        "limit_linear": wl_s, "limit_quadratic": wh_s}
         # -- steady target (state-space steady-state form: works for integrating units too)
         if self.steady_target:
             self.target_ = SteadyTarget(
-                A, B, C, D, np.asarray(m.Bd, float), np.asarray(m.Dd, float), Bw, Cw,
-                band_weight=r["cv_weight"] + 1e-9, limit_linear=r["lim_lin"],
+                A, B, C, D, Bd, Dd, Bw, Cw,
+                band_weight=r["cv_weight"] + 1e-9 / sy ** 2, limit_linear=r["lim_lin"],
                 limit_quadratic=r["lim_quad"],
-                rest_weight=np.maximum(r["rest_weight"], 1e-6 / r["mv_scale"] ** 2),
-                solver_options=osqp_opts).build()
+                rest_weight=np.maximum(r["rest_weight"], 1e-6 / su ** 2),
+                solver_options=osqp_opts, scales=(sx, su, sy)).build()
         else:
             self.target_ = None
         # -- terminal weight from the discrete Riccati equation of the plant (and delay) states
         Pt = None
         if self.terminal_cost:
-            Qx = C.T @ np.diag(r["cv_weight"]) @ C
-            Ru = np.diag(r["rest_weight"])
             if np.any(r["rest_weight"] <= 0):
                 raise _err("mv.*.rest_weight", "> 0 for every MV when terminal_cost is true (the "
                            "Riccati terminal weight needs a positive input weight)",
                            list(r["rest_weight"]))
+            Qx = Cs.T @ np.diag(wq_s) @ Cs
             try:
-                P = sla.solve_discrete_are(A, B, Qx, Ru)
+                P = sla.solve_discrete_are(As, Bs, Qx, np.diag(wrest_s))
             except (np.linalg.LinAlgError, ValueError) as exc:
                 raise _err("terminal_cost", "false for this model (no stabilizing Riccati solution: "
                            f"{exc})", True) from None
             Pt = P - Qx          # the last stage's own cost is already in the sum over k = 1..N
             Pt = 0.5 * (Pt + Pt.T)
-            w, V = np.linalg.eigh(Pt)
-            Pt = (V * np.clip(w, 0, None)) @ V.T
-            self.riccati_ = P
+            w_, V_ = np.linalg.eigh(Pt)
+            Pt = (V_ * np.clip(w_, 0, None)) @ V_.T
+            self.riccati_ = P / sx[:, None] / sx[None, :]          # engineering units
         self.terminal_weight_ = Pt
+        A, B, C, D = As, Bs, Cs, Ds
         # -- the dynamic QP, whole-horizon variables and matrix constraints
         X = cp.Variable((nx, N), name="x")
         U = cp.Variable((nu, M), name="u")
@@ -467,11 +503,11 @@ class PredictiveController:
         Y = C @ X + par["V"]
         if np.any(D != 0):
             Y = Y + D @ (U @ sel_out)
-        wq = np.repeat(r["cv_weight"][:, None], N, axis=1)
-        wr = np.repeat(r["move_weight"][:, None], M, axis=1)
-        ws = r["rest_weight"][:, None] * count[None, :]
-        wl = np.repeat(r["lim_lin"][:, None], N, axis=1)
-        wh = np.repeat(r["lim_quad"][:, None], N, axis=1)
+        wq = np.repeat(wq_s[:, None], N, axis=1)
+        wr = np.repeat(wr_s[:, None], M, axis=1)
+        ws = wrest_s[:, None] * count[None, :]
+        wl = np.repeat(wl_s[:, None], N, axis=1)
+        wh = np.repeat(wh_s[:, None], N, axis=1)
         obj = (cp.sum(cp.multiply(wq, cp.square(E)))
                + cp.sum(cp.multiply(wr, cp.square(dU)))
                + cp.sum(cp.multiply(ws, cp.square(U)))
@@ -494,28 +530,33 @@ class PredictiveController:
                               inf_parameters=("band_lo", "band_hi", "lim_lo", "lim_hi", "u_lo",
                                               "u_hi", "du_lo", "du_hi"),
                               owner="PredictiveController").compile()
-        nd = m.nd
-        Bd, Dd = np.asarray(m.Bd, float), np.asarray(m.Dd, float)
-        layout = {"x0": nx, "u_prev": nu, "dtraj": nd * (N + 1), "w": ny, "band_lo": ny,
+        layout = {"x0": nx, "u_prev": nu, "d_now": nd, "dtraj": nd * (N + 1), "w": ny,
+                  "band_lo": ny,
                   "band_hi": ny, "lim_lo": ny, "lim_hi": ny, "u_lo": nu * M, "u_hi": nu * M,
                   "rate": nu, "rest": nu}
+        # the inputs stay in engineering deviation units: the scaling is folded into the maps
         oneN, oneM = np.ones((N, 1)), np.ones((M, 1))
-        rep_y = sp.kron(oneN, sp.identity(ny))
-        rep_u = sp.kron(oneM, sp.identity(nu))
+        iy, iu, ix = sp.diags(1 / sy), sp.diags(1 / su), sp.diags(1 / sx)
+        rep_y = sp.kron(oneN, iy)
+        rep_u = sp.kron(oneM, iu)
         maps = {
-            "x0": {"x0": sp.identity(nx)}, "u_prev": {"u_prev": sp.identity(nu)},
-            "W": {"dtraj": sp.hstack([sp.kron(sp.identity(N), Bd), sp.csc_matrix((nx * N, nd))]),
-                  "w": sp.kron(oneN, Bw)},
-            "V": {"dtraj": sp.hstack([sp.csc_matrix((ny * N, nd)), sp.kron(sp.identity(N), Dd)]),
-                  "w": sp.kron(oneN, Cw)},
+            "x0": {"x0": ix}, "u_prev": {"u_prev": iu},
+            # DVs: their value now, plus a forecast's departure from it (zero without forecast)
+            "W": {"d_now": sp.kron(oneN, Bds),
+                  "dtraj": sp.hstack([sp.kron(sp.identity(N), Bds), sp.csc_matrix((nx * N, nd))]),
+                  "w": sp.kron(oneN, Bws)},
+            "V": {"d_now": sp.kron(oneN, Dds),
+                  "dtraj": sp.hstack([sp.csc_matrix((ny * N, nd)), sp.kron(sp.identity(N), Dds)]),
+                  "w": sp.kron(oneN, Cws)},
             "band_lo": {"band_lo": rep_y}, "band_hi": {"band_hi": rep_y},
             "lim_lo": {"lim_lo": rep_y}, "lim_hi": {"lim_hi": rep_y},
-            "u_lo": {"u_lo": sp.identity(nu * M)}, "u_hi": {"u_hi": sp.identity(nu * M)},
+            "u_lo": {"u_lo": sp.kron(sp.identity(M), iu)},
+            "u_hi": {"u_hi": sp.kron(sp.identity(M), iu)},
             "du_lo": {"rate": -rep_u}, "du_hi": {"rate": rep_u}, "rest": {"rest": rep_u},
         }
         if Pt is not None:
             layout["x_term"] = nx
-            maps["x_term"] = {"x_term": sp.identity(nx)}
+            maps["x_term"] = {"x_term": ix}
         self.qp_.set_inputs(layout, maps, inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi",
                                                       "u_lo", "u_hi", "rate"))
         off, o = {}, 0
@@ -540,12 +581,34 @@ class PredictiveController:
         self._backup = None if self.backup_solver is None else self.backup_solver.upper()
         self._backup_opts = dict(opts) if self.backup_solver == self.solver else {}
         self._N, self._M = N, M
-        self._Bd, self._Dd = np.asarray(m.Bd, float), np.asarray(m.Dd, float)
+        self._Bd, self._Dd = Bd, Dd
         self._Bw, self._Cw = Bw, Cw
-        self._B = B
+        self._su, self._sy, self._sx = su, sy, sx
+        self._su_col, self._sy_col = su[:, None], sy[:, None]
         self.is_built = True
         self.compile_s_ = time.perf_counter() - t_start
         return self
+
+    @staticmethod
+    def _state_scales(A, B, C, su, sy, T):
+        """Per state: the largest change one scaled MV step causes within T samples.
+
+        States no MV reaches take the CV scale through ``C`` (or 1).
+        """
+        nx = A.shape[0]
+        reach = np.zeros(nx)
+        S, Ak = np.zeros_like(B), np.eye(nx)
+        for _ in range(max(T, 1)):
+            S = S + Ak @ B
+            reach = np.maximum(reach, np.max(np.abs(S) * su[None, :], axis=1) if B.size else 0.0)
+            Ak = Ak @ A
+        sx = reach
+        bad = ~(sx > 1e-12)
+        if bad.any():
+            with np.errstate(divide="ignore"):
+                via_c = np.min(np.where(np.abs(C) > 0, sy[:, None] / np.abs(C), np.inf), axis=0)
+            sx = np.where(bad, np.where(np.isfinite(via_c), via_c, 1.0), sx)
+        return np.clip(sx, 1e-9, 1e9)
 
     def _check_built(self, what: str) -> None:
         if not self.is_built:
@@ -582,10 +645,14 @@ class PredictiveController:
         r = self._resolved
         self._rest_dev = r["rest_value"] - self._op_u
         self._slack_tol = 1e-4 * r["cv_scale"]
+        self._slack_tol_list = self._slack_tol.tolist()
+        self._mv_names = list(m.mv_names)
         self._fast = self.solver == "osqp" and self.fast_path
         self._z[:] = 0.0
+        self._forecast_in_z = False
         self._u_prev = np.asarray(op.u, float).copy()
         self._plan = None
+        self._plan_scaled = None
         self._plan_age = 0
         self._target = None
         self.counts = {"steps": 0, "fallbacks": 0, "holds": 0, "inaccurate": 0, "failed_solves": 0,
@@ -702,16 +769,18 @@ class PredictiveController:
         diag["solver_status"] = res.status
         diag["iterations"] = res.iterations
         if res.accepted:
-            Uplan = res.values["u"] + op_u[:, None]
-            u = Uplan[:, 0]
-            self._plan = Uplan[:, self._plan_idx]
+            Us = res.values["u"]
+            u = Us[:, 0] * self._su + op_u
+            self._plan_scaled = Us                  # (nu, M) scaled; unscaled on demand
+            self._plan = None
             self._plan_age = 0
-            smax_cv = res.values["slack"].max(axis=1)
-            relaxed = smax_cv > self._slack_tol
+            smax_cv = (res.values["slack"].max(axis=1) * self._sy).tolist()
+            tol = self._slack_tol_list
+            relaxed = [names[i] for i in range(ny) if smax_cv[i] > tol[i]]
             diag["fallback"] = False
-            diag["slack_max"] = max(float(smax_cv.max()), 0.0)
-            diag["cv_limits_relaxed"] = bool(relaxed.any())
-            diag["relaxed_cvs"] = [names[i] for i in np.flatnonzero(relaxed)]
+            diag["slack_max"] = max(max(smax_cv), 0.0) if ny else 0.0
+            diag["cv_limits_relaxed"] = bool(relaxed)
+            diag["relaxed_cvs"] = relaxed
             status = STATUS_OK
         else:
             if res.status == "optimal_inaccurate":
@@ -723,23 +792,38 @@ class PredictiveController:
             diag["slack_max"] = float("nan")
             diag["cv_limits_relaxed"] = None
             diag["relaxed_cvs"] = []
+            if self._plan is None and self._plan_scaled is not None:
+                self._plan = self._plan_scaled * self._su_col + op_u[:, None]
             if self.fallback == "shift" and self._plan is not None and self._plan_age + 1 < N:
                 self._plan_age += 1
-                u = self._plan[:, self._plan_age].copy()
+                u = self._plan[:, min(self._plan_age, self._M - 1)].copy()
                 status = STATUS_FALLBACK
             else:
                 u = self._u_prev.copy()
                 status = STATUS_HOLD
                 self.counts["holds"] += 1
         # ---- exact limits on what is applied (solver tolerance or a stale plan must not break them)
-        u_clip = self._apply_limits(u, mv_lo, mv_hi, rate)
-        diag["clipped"] = float(np.max(np.abs(u_clip - u))) if nu else 0.0
-        u = u_clip
-        tol_u = 1e-6 * np.maximum(1.0, np.abs(u))
-        at = (np.abs(u - mv_lo) <= tol_u) | (np.abs(u - mv_hi) <= tol_u)
-        diag["active_mv_limits"] = int(at.sum())
-        diag["active_mv_limit_names"] = [m.mv_names[j] for j in np.flatnonzero(at)]
-        diag["active_rate_limits"] = int(np.sum(np.abs(np.abs(u - self._u_prev) - rate) <= tol_u))
+        # (plain Python floats: a handful of MVs is faster this way than through numpy)
+        ul, up = u.tolist(), self._u_prev.tolist()
+        lo, hi, rt = mv_lo.tolist(), mv_hi.tolist(), rate.tolist()
+        out, active, n_rate, clipped = [], [], 0, 0.0
+        for j in range(nu):
+            v, p = ul[j], up[j]
+            w_ = min(max(v, p - rt[j]), p + rt[j])
+            if lo[j] <= p <= hi[j]:       # limits win over rates where the MV is inside them
+                w_ = min(max(w_, lo[j]), hi[j])
+            clipped = max(clipped, abs(w_ - v))
+            tol = 1e-6 * max(1.0, abs(w_))
+            if abs(w_ - lo[j]) <= tol or abs(w_ - hi[j]) <= tol:
+                active.append(self._mv_names[j])
+            if abs(abs(w_ - p) - rt[j]) <= tol:
+                n_rate += 1
+            out.append(w_)
+        u = np.array(out)
+        diag["clipped"] = clipped
+        diag["active_mv_limits"] = len(active)
+        diag["active_mv_limit_names"] = active
+        diag["active_rate_limits"] = n_rate
         return self._finish(u, status, diag, t_start)
 
     def _optimize(self, x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
@@ -752,8 +836,12 @@ class PredictiveController:
         z, zs = self._z, self._zsl
         # ---- DV trajectory over the horizon (deviation), samples 0..N
         if nd:
+            z[zs["d_now"]] = d_now
             if dv_forecast is None or not use.any():
-                dtraj = np.tile(d_now, N + 1)
+                if self._forecast_in_z:
+                    z[zs["dtraj"]] = 0.0
+                    self._forecast_in_z = False
+                d_end = d_now
             else:
                 f = np.asarray(dv_forecast, float)
                 if f.ndim == 1:
@@ -763,9 +851,10 @@ class PredictiveController:
                                         f"(n, {nd}); got {np.shape(dv_forecast)}.")
                 F = f[np.minimum(np.arange(N + 1), f.shape[0] - 1)] - op_d
                 F = np.where(np.isfinite(F), F, d_now)
-                dtraj = np.where(use, F, 0.0).ravel()
-            z[zs["dtraj"]] = dtraj
-            d_end = dtraj[-nd:]
+                dtraj = (np.where(use, F, 0.0) - d_now).ravel()
+                z[zs["dtraj"]] = dtraj
+                self._forecast_in_z = True
+                d_end = d_now + dtraj[-nd:]
         else:
             d_end = d_now
         # ---- deviations of limits and setpoints
@@ -903,11 +992,12 @@ class PredictiveController:
         out: dict[str, Any] = {"status": res.status, "accepted": res.accepted,
                                "objective": res.objective, "diagnostics": diag}
         if res.values:
-            Uplan = res.values["u"][:, self._plan_idx] + self._op_u[:, None]
-            X = res.values["x"]
+            Uplan = res.values["u"][:, self._plan_idx] * self._su_col + self._op_u[:, None]
+            X = res.values["x"] * self._sx[:, None]
             Y = m.C @ X + self._Cw @ w[:, None] + self._op_y[:, None]
             if m.nd:
-                dtraj = self._last_inputs[self._zsl["dtraj"]].reshape(m.nd, -1, order="F")
+                dtraj = (self._last_inputs[self._zsl["dtraj"]].reshape(m.nd, -1, order="F")
+                         + self._last_inputs[self._zsl["d_now"]][:, None])
                 Y = Y + self._Dd @ dtraj[:, 1:]
             if np.any(m.D != 0):
                 Y = Y + m.D @ (Uplan[:, np.minimum(np.arange(1, self._N + 1), self._N - 1)]
@@ -919,16 +1009,28 @@ class PredictiveController:
                 u0 = self._apply_limits(Uplan[:, 0], mv_lo, mv_hi, rate)
             finally:
                 self._u_prev = saved
-            out.update(u=u0, u_plan=Uplan, y_pred=Y, x_pred=X, slack=res.values["slack"])
+            out.update(u=u0, u_plan=Uplan, y_pred=Y, x_pred=X,
+                       slack=res.values["slack"] * self._sy_col)
         return out
+
+    def last_plan(self) -> np.ndarray | None:
+        """MV plan (nu, M), absolute, of the last accepted solve (None before the first one).
+
+        Column j is the MV value planned for sample j from that solve; the last column is held
+        to the end of the prediction horizon.
+        """
+        if self._plan_scaled is None:
+            return None
+        if self._plan is None:
+            self._plan = self._plan_scaled * self._su_col + self._op_u[:, None]
+        return self._plan.copy()
 
     def _apply_limits(self, u, lo, hi, rate):
         up = self._u_prev
-        with np.errstate(invalid="ignore"):
-            u = np.clip(u, up - rate, up + rate)
+        u = np.minimum(np.maximum(u, up - rate), up + rate)
         inside = (up >= lo) & (up <= hi)
         # limits win over rates only where the previous MV is already inside them
-        return np.where(inside, np.clip(u, lo, hi), u)
+        return np.where(inside, np.minimum(np.maximum(u, lo), hi), u)
 
     def _hold(self, lo, hi, rate):
         self.counts["holds"] += 1

@@ -48,6 +48,9 @@ class SteadyTarget:
         Weight of the MV resting values (strictly positive keeps the target unique).
     solver_options : dict
         OSQP settings for the fast path.
+    scales : tuple of ndarray (x, u, y) or None
+        Engineering size of one unit of each state, MV and CV: the QP is written in these scaled
+        units (a well-balanced problem for OSQP); inputs and results stay in engineering units.
 
     Notes
     -----
@@ -57,7 +60,7 @@ class SteadyTarget:
     """
 
     def __init__(self, A, B, C, D, Bd, Dd, Bw, Cw, band_weight, limit_linear, limit_quadratic,
-                 rest_weight, solver_options=None):
+                 rest_weight, solver_options=None, scales=None):
         self.A, self.B, self.C, self.D = (np.asarray(M, float) for M in (A, B, C, D))
         self.Bd, self.Dd, self.Bw, self.Cw = (np.asarray(M, float) for M in (Bd, Dd, Bw, Cw))
         self.band_weight = np.asarray(band_weight, float)
@@ -65,6 +68,7 @@ class SteadyTarget:
         self.limit_quadratic = np.asarray(limit_quadratic, float)
         self.rest_weight = np.asarray(rest_weight, float)
         self.solver_options = dict(solver_options or {})
+        self.scales = scales
         self.is_built = False
 
     def build(self) -> "SteadyTarget":
@@ -74,6 +78,14 @@ class SteadyTarget:
         A, B, C, D = self.A, self.B, self.C, self.D
         nx, nu, ny = A.shape[0], B.shape[1], C.shape[0]
         nd, nw = self.Bd.shape[1], self.Bw.shape[1]
+        if self.scales is None:
+            sx, su, sy = np.ones(nx), np.ones(nu), np.ones(ny)
+        else:
+            sx, su, sy = (np.asarray(v, float) for v in self.scales)
+            if sx.shape != (nx,) or su.shape != (nu,) or sy.shape != (ny,):
+                raise SettingsError(f"SteadyTarget: scales must have shapes ({nx},), ({nu},), "
+                                    f"({ny},); got {sx.shape}, {su.shape}, {sy.shape}.")
+        self._sx, self._su, self._sy = sx, su, sy
         for name, M, shape in (("B", B, (nx, nu)), ("C", C, (ny, nx)), ("D", D, (ny, nu)),
                                ("Bd", self.Bd, (nx, nd)), ("Dd", self.Dd, (ny, nd)),
                                ("Cw", self.Cw, (ny, nw))):
@@ -91,14 +103,19 @@ class SteadyTarget:
             "mv_lo": cp.Parameter(nu, name="mv_lo"), "mv_hi": cp.Parameter(nu, name="mv_hi"),
             "rest": cp.Parameter(nu, name="rest"),
         }
-        rw = self.rest_weight
-        obj = (cp.sum(cp.multiply(self.band_weight, cp.square(e)))
-               + self.limit_linear @ s + cp.sum(cp.multiply(self.limit_quadratic, cp.square(s)))
+        rw = self.rest_weight * su ** 2
+        obj = (cp.sum(cp.multiply(self.band_weight * sy ** 2, cp.square(e)))
+               + (self.limit_linear * sy) @ s
+               + cp.sum(cp.multiply(self.limit_quadratic * sy ** 2, cp.square(s)))
                + cp.sum(cp.multiply(rw, cp.square(us)))
                - 2 * (cp.multiply(rw, par["rest"]) @ us))
-        IA = np.eye(nx) - A
-        cons = [IA @ xs - B @ us == par["dx"],
-                ys == C @ xs + D @ us + par["dy"],
+        # scaled model: x = sx * xs', u = su * us', y = sy * ys'
+        IA = (np.eye(nx) - A) * (1 / sx)[:, None] * sx[None, :]
+        Bs = B * (1 / sx)[:, None] * su[None, :]
+        Cs = C * (1 / sy)[:, None] * sx[None, :]
+        Ds = D * (1 / sy)[:, None] * su[None, :]
+        cons = [IA @ xs - Bs @ us == par["dx"],
+                ys == Cs @ xs + Ds @ us + par["dy"],
                 par["band_lo"] <= ys - e, ys - e <= par["band_hi"],
                 ys + s >= par["lim_lo"], ys - s <= par["lim_hi"], s >= 0,
                 us >= par["mv_lo"], us <= par["mv_hi"]]
@@ -107,12 +124,13 @@ class SteadyTarget:
                               inf_parameters=("band_lo", "band_hi", "lim_lo", "lim_hi", "mv_lo",
                                               "mv_hi"),
                               owner="SteadyTarget").compile()
-        eye_y, eye_u = sp.identity(ny), sp.identity(nu)
+        eye_y, eye_u = sp.diags(1 / sy), sp.diags(1 / su)
         self.layout_ = {"d": nd, "w": nw, "band_lo": ny, "band_hi": ny, "lim_lo": ny, "lim_hi": ny,
                         "mv_lo": nu, "mv_hi": nu, "rest": nu}
         self.qp_.set_inputs(
             self.layout_,
-            {"dx": {"d": self.Bd, "w": self.Bw}, "dy": {"d": self.Dd, "w": self.Cw},
+            {"dx": {"d": self.Bd / sx[:, None], "w": self.Bw / sx[:, None]},
+             "dy": {"d": self.Dd / sy[:, None], "w": self.Cw / sy[:, None]},
              "band_lo": {"band_lo": eye_y}, "band_hi": {"band_hi": eye_y},
              "lim_lo": {"lim_lo": eye_y}, "lim_hi": {"lim_hi": eye_y},
              "mv_lo": {"mv_lo": eye_u}, "mv_hi": {"mv_hi": eye_u}, "rest": {"rest": eye_u}},
@@ -124,10 +142,20 @@ class SteadyTarget:
     def solve(self, z: np.ndarray, fast: bool = True, solver: str = "OSQP", options=None):
         """Solve for the input vector *z* (blocks in ``layout_`` order, deviation variables).
 
-        Returns a :class:`~mpcproto.control._qp.QPResult` with ``xs``, ``us``, ``ys``, ``e``, ``s``.
+        Returns a :class:`~mpcproto.control._qp.QPResult` with ``xs``, ``us``, ``ys`` and ``s``
+        in engineering deviation units (``e`` stays scaled).
         """
         if not self.is_built:
             raise NotBuiltError("SteadyTarget is not built; call .build() first.")
         if fast:
-            return self.qp_.solve_inputs(z)
-        return self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=solver, options=options)
+            res = self.qp_.solve_inputs(z)
+        else:
+            res = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=solver,
+                                       options=options)
+        v = res.values
+        if v:       # back to engineering units
+            v["xs"] = v["xs"] * self._sx
+            v["us"] = v["us"] * self._su
+            v["ys"] = v["ys"] * self._sy
+            v["s"] = v["s"] * self._sy
+        return res
