@@ -502,12 +502,22 @@ class ClosedLoop:
 
 
 def simulate(plant_model: Any, controller: Any, *, op: OperatingPoint, Ts: float, duration: float,
-             **kwargs: Any) -> Trajectory:
+             dvs: Mapping[str, Any] | None = None, setpoints: Mapping[str, Any] | None = None,
+             cv_limits: Mapping[str, Any] | None = None, mv_limits: Mapping[str, Any] | None = None,
+             instruments: Mapping[str, Any] | None = None,
+             actuators: Mapping[str, Any] | None = None, faults: Sequence[Any] | None = None,
+             rng: Any = None, plant_parameters: Mapping[str, float] | None = None,
+             integrator: str | None = None, integrator_options: Mapping[str, Any] | None = None,
+             t0: float = 0.0, forecast: bool = False, forecast_steps: int = 0) -> Trajectory:
     """Run a closed loop from *op* for *duration* and return its :class:`mpcproto.Trajectory`.
 
     A convenience over ``ClosedLoop(plant_model, controller, op=op, Ts=Ts, duration=duration,
-    **kwargs).run()``; see :class:`ClosedLoop` for the keyword arguments (``dvs``, ``setpoints``,
-    ``cv_limits``, ``mv_limits``, ``instruments``, ``actuators``, ``faults``, ``rng``,
-    ``plant_parameters``, ``integrator``, ``integrator_options``, ``t0``, ``forecast``).
+    ...).run()``; the arguments are those of :class:`ClosedLoop`.  A plant integration failure
+    does not raise: the Trajectory ends there with ``status == "failed"`` and the message.
     """
-    return ClosedLoop(plant_model, controller, op=op, Ts=Ts, duration=duration, **kwargs).run()
+    return ClosedLoop(plant_model, controller, op=op, Ts=Ts, duration=duration, dvs=dvs,
+                      setpoints=setpoints, cv_limits=cv_limits, mv_limits=mv_limits,
+                      instruments=instruments, actuators=actuators, faults=faults, rng=rng,
+                      plant_parameters=plant_parameters, integrator=integrator,
+                      integrator_options=integrator_options, t0=t0, forecast=forecast,
+                      forecast_steps=forecast_steps).run()
