@@ -172,3 +172,13 @@ def test_run_one_case_of_a_study(tmp_path, capsys):
     (case,) = [c for c in expand(load_scenario(path), full=True) if c.case_id == "short_tank-s000"]
     assert s["case_id"] == "short_tank-s000" and s["params"] == {"disturbances.draw_off.size": 0.1}
     assert s["seed"] == case.seed
+
+
+def test_nominal_run_equals_the_batch_case_of_a_studyless_scenario(tmp_path):
+    text = SHORT.replace("[controllers.mpc]\nhorizon = 20\ncontrol_horizon = 4\nsteady_target = false\n"
+                         "cv = { level = { disturbance = \"auto\" } }\n", "")
+    scn = load_scenario(write(tmp_path, text=text))
+    (case,) = expand(scn)
+    a, b = run_case(scn), run_case(case)
+    assert a["case_id"] == b["case_id"] and a["seed"] == b["seed"]
+    assert a["controllers"]["pid"]["kpi"] == b["controllers"]["pid"]["kpi"]

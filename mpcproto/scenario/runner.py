@@ -358,8 +358,11 @@ def _identity(case: Case | Scenario) -> dict[str, Any]:
         return {"case_id": case.case_id, "scenario": case.scenario, "file": case.file,
                 "params": dict(case.params), "seed": case.seed, "grid_index": case.grid_index,
                 "draw_index": case.draw_index}
+    # the nominal case: the same id and seed as the single case of a study-less batch
+    from .study import _case_seed
+
     return {"case_id": case.name, "scenario": case.name, "file": case.file, "params": {},
-            "seed": case.seed, "grid_index": None, "draw_index": None}
+            "seed": _case_seed(case.seed, 0), "grid_index": None, "draw_index": None}
 
 
 def _run(case: Case | Scenario, *, ci: bool | None = None) -> tuple[dict[str, Any], dict[str, Any]]:
