@@ -45,7 +45,6 @@ import subprocess
 import sys
 import tempfile
 import time
-from concurrent.futures import wait
 from dataclasses import dataclass
 from pathlib import Path
 

@@ -633,8 +633,8 @@ def _scenario_files(paths: Iterable[str]) -> list[Path]:
         if p.is_dir():
             found = sorted(p.glob("*.toml"))
             if not found:
-                raise ScenarioError(f"expected a scenario file (.toml) or a directory holding some; "
-                                    f"found a directory with no .toml file.", file=str(p))
+                raise ScenarioError("expected a scenario file (.toml) or a directory holding some; "
+                                    "found a directory with no .toml file.", file=str(p))
             files.extend(found)
         elif p.is_file():
             files.append(p)
