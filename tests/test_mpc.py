@@ -331,6 +331,7 @@ def test_failed_solve_falls_back_to_shifted_plan_then_holds():
 def test_diagnostics_report_active_limits_and_timing():
     dm = make_dlm([[0.9]], [[0.1]], [[1.0]])
     ctrl = mp.PredictiveController(dm, horizon=10, mv={"u0": {"high": 0.5}}).build()
+    assert isinstance(ctrl, mp.Controller) and ctrl.name == "mpc"
     ctrl.reset()
     out = ctrl.step(0.0, mp.Measurement.now([0.0], 0.0), [], free_targets(1, 1, sp=[10.0]))
     d = out.diagnostics
