@@ -300,3 +300,13 @@ def test_progress_bar_shows_counts_and_eta_when_asked(tmp_path, pool, capsys):
     last = err.rstrip("\n").split("\r")[-1]
     assert last.startswith("batch [") and "4/4 100%" in last and "ETA 0:00" in last
     assert "1 error" in last and err.endswith("\n")
+
+
+def test_dask_missing_gives_the_install_command(monkeypatch):
+    # as if the optional extra were not installed: importing 'distributed' fails
+    from mpcproto import dask_executor
+
+    monkeypatch.setitem(sys.modules, "distributed", None)
+    with pytest.raises(ImportError, match=r'pip install "mpcproto\[dask\]"'):
+        with dask_executor("tcp://127.0.0.1:8786"):
+            pass

@@ -7,6 +7,7 @@ import json
 
 import pytest
 
+from mpcproto.cli import main
 from mpcproto.scenario import expand, load_scenario
 from mpcproto import dask_executor, load_results, local_pool, run_batch
 from mpcproto.scenario.executors import executor_slots
@@ -40,6 +41,12 @@ def test_dask_local_cluster_gives_the_numbers_of_the_local_pool(tmp_path):
             out = run_batch(cases, tmp_path / "dask", executor=ex, progress=False)
             pids = {r["worker_pid"] for r in load_results(tmp_path / "dask" / "results.jsonl")}
             worker_pids = set(ex._client.run(lambda: __import__("os").getpid()).values())
+        # the CLI's --scheduler path on the same cluster
+        rc = main(["batch", str(study), "--out", str(tmp_path / "cli"), "--scheduler",
+                   cluster.scheduler_address, "--no-trajectories"])
+        assert rc == 0
+        cli = {r["case_id"]: r for r in load_results(tmp_path / "cli" / "results.jsonl")}
+        assert {r["worker_pid"] for r in cli.values()} <= worker_pids
     assert out.ran == 4 and out.errors == 0
     assert pids <= worker_pids                    # the cases ran in the cluster's processes
     pool = {r["case_id"]: r for r in load_results(tmp_path / "pool" / "results.jsonl")}
@@ -51,6 +58,7 @@ def test_dask_local_cluster_gives_the_numbers_of_the_local_pool(tmp_path):
         # identical floats: same seeds, same integrator, same code path
         assert json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
         assert a["controllers"]["pid"]["kpi"]["cv"]["level"]["iae"] > 0
+        assert json.dumps(_without_timing(cli[cid]), sort_keys=True) == json.dumps(a, sort_keys=True)
 
 
 def test_an_unreachable_scheduler_is_a_clear_error():
