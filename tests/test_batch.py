@@ -310,3 +310,20 @@ def test_dask_missing_gives_the_install_command(monkeypatch):
     with pytest.raises(ImportError, match=r'pip install "mpcproto\[dask\]"'):
         with dask_executor("tcp://127.0.0.1:8786"):
             pass
+
+
+def test_a_garbled_line_in_the_middle_is_skipped_with_a_warning_and_rerun(tmp_path, pool):
+    cases = make_cases(3, steps=60)
+    run_batch(cases, tmp_path, executor=pool, run=run_tank_case, progress=False)
+    results = tmp_path / "results.jsonl"
+    lines = results.read_text().splitlines()
+    garbled_id = json.loads(lines[1])["case_id"]
+    lines[1] = lines[1][:25] + "#garbled#"
+    results.write_text("\n".join(lines) + "\n")
+    with pytest.warns(RuntimeWarning, match=r"results.jsonl: line 2 is not a JSON record"):
+        out = run_batch(cases, tmp_path, executor=pool, run=run_tank_case, resume=True,
+                        progress=False)
+    assert (out.skipped, out.ran) == (2, 1)
+    with pytest.warns(RuntimeWarning, match="line 2"):
+        ids = sorted(r["case_id"] for r in load_results(results))
+    assert ids == [c.case_id for c in cases] and garbled_id in ids
