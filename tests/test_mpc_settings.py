@@ -40,6 +40,8 @@ def small_model(B_shape=None):
     ({"cv": {"level": {"priority": 0}}}, ["'cv.level.priority'", ">= 1"]),
     ({"dv": {"load": {"feedforward": "yes"}}}, ["'dv.load.feedforward'", "true or false", "yes"]),
     ({"solver_options": {"eps_abss": 1e-4}}, ["eps_abss", "did you mean 'eps_abs'"]),
+    ({"solver": "clarabel", "solver_options": {"max_iters": 5}},
+     ["clarabel option 'solver_options.max_iters'", "did you mean 'max_iter'"]),
     ({"terminal_cost": True, "steady_target": False}, ["'terminal_cost'", "steady_target"]),
     ({"priority_ratio": 1.0}, ["'priority_ratio'", "> 1"]),
 ])

@@ -302,11 +302,16 @@ class PredictiveController:
         if not isinstance(opts, Mapping):
             raise _err("solver_options", "a mapping of solver setting names to values", opts)
         if self.solver == "osqp":
-            for k in opts:
-                if k not in _OSQP_OPTIONS:
-                    raise SettingsError(f"PredictiveController: unknown OSQP option "
-                                        f"'solver_options.{k}'{suggest(k, _OSQP_OPTIONS)}; known: "
-                                        f"{sorted(_OSQP_OPTIONS)}.")
+            known = _OSQP_OPTIONS
+        else:
+            import clarabel
+
+            known = tuple(k for k in dir(clarabel.DefaultSettings()) if not k.startswith("_"))
+        for k in opts:
+            if k not in known:
+                raise SettingsError(f"PredictiveController: unknown {self.solver} option "
+                                    f"'solver_options.{k}'{suggest(k, known)}; known: "
+                                    f"{sorted(known)}.")
         _number("state_noise", self.state_noise, low=0)
         _int("history", self.history)
         _number("priority_ratio", self.priority_ratio, low=1, low_open=True)
