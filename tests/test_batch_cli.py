@@ -127,10 +127,12 @@ def test_batch_end_to_end_resume_and_baseline(tmp_path, capsys):
 
 def test_a_failed_criterion_gives_exit_1_and_bad_input_exit_2(tmp_path, capsys):
     tight = write_study(tmp_path, name="tight_tank", limit=1e-6)
-    rc = main(["batch", str(tight), "--out", str(tmp_path / "o"), "--workers", "1",
+    # --full: the study's full sizes (2 sweep values x full_draws = 3 draws)
+    rc = main(["batch", str(tight), "--out", str(tmp_path / "o"), "--workers", "1", "--full",
                "--no-trajectories"])
     cap = capsys.readouterr()
-    assert rc == 1 and "0 passed, 4 failed a criterion" in cap.out
+    assert rc == 1 and "0 passed, 6 failed a criterion" in cap.out
+    assert "tight_tank-s001-d0002" in (tmp_path / "o" / "results.jsonl").read_text()
 
     cases = {
         "no such file": ["batch", str(tmp_path / "missing.toml"), "--out", str(tmp_path / "x")],

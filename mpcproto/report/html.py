@@ -6,8 +6,9 @@ that opens anywhere, offline, and can be attached to a design review or a CI run
 * the verdict at the top (cases passed / failed / errored, baseline regressions) and the safety
   caution;
 * a table per scenario;
-* charts: verdicts per scenario, how much of each criterion's limit the cases use, and the spread of
-  each CV's IAE per controller;
+* charts: verdicts per scenario, how much of each criterion's limit the cases use, the key
+  criteria against the study's swept or drawn parameters, and the spread of each CV's IAE per
+  controller;
 * the cases, worst first (errors, then failed criteria, then the cases closest to a limit), and the
   KPI tables of the worst few;
 * optional extra PNGs (for example the trajectories of the worst case of each scenario).
@@ -176,6 +177,71 @@ def _chart_utilisation(scen: str, recs: Sequence[Mapping[str, Any]], max_rows: i
     ax.set_title(f"{scen}: how close each case comes to each limit", loc="left",
                  color=COLOURS["ink"], fontsize=11)
     _style_axes(ax)
+    return _fig_png(fig)
+
+
+def _chart_parameters(scen: str, recs: Sequence[Mapping[str, Any]], max_params: int = 2,
+                      max_criteria: int = 2) -> bytes | None:
+    """The key criteria's values against the study's varied parameters, with the limit drawn.
+
+    Parameters: numeric ones that take more than one value over the cases.  Criteria: those that
+    failed most often, then checks on an absolute level (a peak temperature), then the ones that
+    use most of their limit.
+    """
+    from matplotlib.figure import Figure  # noqa: PLC0415
+
+    ok_recs = [r for r in recs if case_verdict(r) != "error"]
+    values: dict[str, set] = defaultdict(set)
+    for r in ok_recs:
+        for k, v in (r.get("params") or {}).items():
+            if isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v):
+                values[k].add(float(v))
+    params = [k for k, vs in values.items() if len(vs) > 1][:max_params]
+    if not params:
+        return None
+    per: dict[str, list[tuple[Mapping[str, Any], Mapping[str, Any]]]] = defaultdict(list)
+    for r in ok_recs:
+        for ctl, cr in criteria_of(r):
+            v, lim = cr.get("value"), cr.get("limit")
+            if isinstance(v, (int, float)) and isinstance(lim, (int, float)) and math.isfinite(v):
+                per[(f"{ctl}: " if ctl else "") + str(cr.get("name") or "criterion")].append((r, cr))
+    if not per:
+        return None
+
+    def rank(label: str):
+        items = per[label]
+        fails = sum(1 for _, cr in items if cr.get("passed") is False)
+        absolute = any(str(cr.get("check", "")) in ("peak_below", "low_above") for _, cr in items)
+        us = [utilisation(cr) for _, cr in items]
+        worst = max((u for u in us if not math.isnan(u)), default=0.0)
+        return (-fails, not absolute, -min(worst, 1e9))
+
+    labels = sorted(per, key=rank)[:max_criteria]
+    fig = Figure(figsize=(9.0, 2.6 * len(labels) + 0.6), layout="constrained")
+    axes = fig.subplots(len(labels), len(params), squeeze=False)
+    for i, lab in enumerate(labels):
+        for j, key in enumerate(params):
+            ax = axes[i][j]
+            pts = [(float(r["params"][key]), float(cr["value"]), cr.get("passed") is not False)
+                   for r, cr in per[lab] if key in (r.get("params") or {})
+                   and isinstance(r["params"][key], (int, float))]
+            if pts:
+                ax.scatter([p[0] for p in pts], [p[1] for p in pts], s=18, alpha=0.8, linewidths=0,
+                           c=[COLOURS["passed"] if p[2] else COLOURS["failed"] for p in pts])
+            lim = per[lab][0][1].get("limit")
+            if isinstance(lim, (int, float)) and math.isfinite(lim):
+                ax.axhline(lim, color=COLOURS["limit"], linestyle="--", linewidth=1.2)
+            ax.set_xlabel(key.rsplit(".", 1)[-1], fontsize=9, color=COLOURS["ink"])
+            if j == 0:
+                ax.set_ylabel(lab if len(lab) <= 28 else lab[:27] + "\u2026", fontsize=9,
+                              color=COLOURS["ink"])
+            ax.grid(True, color=COLOURS["grid"], linewidth=0.7)
+            ax.set_axisbelow(True)
+            for side in ("top", "right"):
+                ax.spines[side].set_visible(False)
+            ax.tick_params(labelsize=8, colors=COLOURS["ink"])
+    fig.suptitle(f"{scen}: key criteria against the study parameters (dashed: the limit)",
+                 x=0.01, ha="left", fontsize=11, color=COLOURS["ink"])
     return _fig_png(fig)
 
 
@@ -511,6 +577,10 @@ def write_html_report(records: Iterable[Mapping[str, Any]], path: str | os.PathL
             if png:
                 figs.append(_img(png, f"criterion use, {s}",
                                  "Each dot is one case; green within the limit, orange beyond it."))
+            png = _chart_parameters(s, rs)
+            if png:
+                figs.append(_img(png, f"criteria against parameters, {s}",
+                                 "Each dot is one case; green: criterion met, orange: failed."))
             png = _chart_iae(s, rs)
             if png:
                 figs.append(_img(png, f"IAE spread, {s}"))
