@@ -17,10 +17,12 @@ For horizons N = 20, 50, 100 (control horizon N/5):
 * **floor**: the identical dynamic QP, assembled here independently as ``scipy.sparse`` matrices
   (the same variables, cost and constraints written by hand, no cvxpy), solved by the osqp
   package's own public API (``OSQP.setup`` once, then ``update(q=, l=, u=)`` and ``solve()`` each
-  sample, warm started, the same OSQP settings), timed in the same run, interleaved sample by
-  sample with the controller so both see the same machine load.  Only ``update`` + ``solve`` are
-  timed; the floor's vectors are built from the controller's per-sample data outside the timer.
-  Its solution is compared with the controller's plan each sample (``max_plan_diff``).
+  sample, warm started, the same OSQP settings), in the same run: the controller's closed loop
+  records its per-sample data, the floor then solves the same sequence of QPs in its own loop
+  (two such pairs of passes, alternating, so both see the same spread of machine load; solving
+  them interleaved sample by sample would let each evict the other's caches).  Only ``update`` +
+  ``solve`` are timed; the floor's vectors are built before its timed loop.  Its solution is
+  compared with the controller's plan each sample (``max_plan_diff``).
 * **compile**: ``build()`` time (cvxpy canonicalization of both QPs, map extraction, OSQP setup,
   Riccati equations), after one warm-up build so that imports are not counted.
 * **memory**: peak Python heap during build + 50 steps (tracemalloc) and growth of the process's
@@ -185,16 +187,15 @@ class Floor:
 
 
 # ------------------------------------------------------------------------------------------------
-def closed_loop(ctrl, plant, floor=None, steps=STEPS, seed=1):
+def closed_loop(ctrl, plant, steps=STEPS, seed=1, record=False):
+    """Run the controller against the linear plant; time every step (wall and CPU)."""
     rng = np.random.default_rng(seed)
     op = plant.op
-    ny, nu, nd = plant.ny, plant.nu, plant.nd
+    ny = plant.ny
     x = np.zeros(plant.nx)
     ctrl.reset(op)
     draw = 0.0
-    t_step, t_floor, t_floor_c, diffs, iters, statuses = [], [], [], [], [], []
-    t_solve, t_target, f_iters = [], [], []
-    c_step, c_floor = [], []
+    t_step, c_step, t_solve, t_target, iters, statuses, inputs, plans = [], [], [], [], [], [], [], []
     lo = np.array([0.0, 0.0, 0.0])
     hi = np.array([0.2, 3.0, 600.0])
     for k in range(steps):
@@ -216,22 +217,31 @@ def closed_loop(ctrl, plant, floor=None, steps=STEPS, seed=1):
         t_solve.append(out.diagnostics.get("solve_ms", 0.0) / 1e3)
         t_target.append(out.diagnostics.get("target_ms", 0.0) / 1e3)
         statuses.append(out.status)
-        if floor is not None:
-            q, l, u = floor.vectors(ctrl._last_inputs)
-            c0 = time.thread_time()
-            dt, res, U = floor.solve(q, l, u)
-            c_floor.append(time.thread_time() - c0)
-            t_floor.append(dt)
-            t_floor_c.append(res.info.solve_time + res.info.update_time)
-            f_iters.append(res.info.iter)
-            if out.status == "ok":
-                plan = ctrl.last_plan() - op.u[:, None]
-                diffs.append(float(np.max(np.abs((plan - U) / ctrl._resolved["mv_scale"][:, None]))))
+        if record:
+            inputs.append(ctrl._last_inputs.copy())
+            plans.append(ctrl.last_plan() if out.status == "ok" else None)
         x = plant.A @ x + plant.B @ (out.u - op.u) + plant.Bd @ d
-    return {"step": np.array(t_step), "floor": np.array(t_floor), "floor_c": np.array(t_floor_c),
-            "diffs": np.array(diffs), "iters": np.array(iters), "statuses": statuses,
-            "solve": np.array(t_solve), "target": np.array(t_target), "f_iters": np.array(f_iters),
-            "cpu_step": np.array(c_step), "cpu_floor": np.array(c_floor)}
+    return {"step": np.array(t_step), "cpu_step": np.array(c_step), "solve": np.array(t_solve),
+            "target": np.array(t_target), "iters": np.array(iters), "statuses": statuses,
+            "inputs": inputs, "plans": plans}
+
+
+def replay_floor(floor, inputs, plans, op):
+    """Solve the recorded per-sample QPs with the floor, in the same order (warm starts alike)."""
+    data = [floor.vectors(z) for z in inputs]            # built before timing starts
+    t_floor, c_floor, t_c, f_iters, diffs = [], [], [], [], []
+    su = floor.sc["u"][:, None]
+    for (q, l, u), plan in zip(data, plans):
+        c0 = time.thread_time()
+        dt, res, U = floor.solve(q, l, u)
+        c_floor.append(time.thread_time() - c0)
+        t_floor.append(dt)
+        t_c.append(res.info.solve_time + res.info.update_time)
+        f_iters.append(res.info.iter)
+        if plan is not None:
+            diffs.append(float(np.max(np.abs((plan - op.u[:, None] - U) / su))))
+    return {"floor": np.array(t_floor), "cpu_floor": np.array(c_floor), "floor_c": np.array(t_c),
+            "f_iters": np.array(f_iters), "diffs": np.array(diffs)}
 
 
 def ms(a, q):
@@ -255,15 +265,23 @@ def main():
         gc.collect()
         tracemalloc.start()
         mctrl = mp.PredictiveController.from_settings(dm, settings_for(N)).build()
-        closed_loop(mctrl, plant, None, steps=50)
+        closed_loop(mctrl, plant, steps=50)
         peak = tracemalloc.get_traced_memory()[1]
         tracemalloc.stop()
         del mctrl
-        floor = Floor(ctrl)
-        # warm both (first solves set up caches), then the measured run
-        closed_loop(ctrl, plant, floor, steps=30, seed=7)
-        floor = Floor(ctrl)
-        res = closed_loop(ctrl, plant, floor)
+        # two passes of each, alternating (controller, floor, controller, floor): each runs in
+        # its own hot loop on the same per-sample data, and both see the same spread of load
+        closed_loop(ctrl, plant, steps=30, seed=7)                 # warm-up
+        parts = []
+        for _ in range(2):
+            run = closed_loop(ctrl, plant, record=True)
+            floor = Floor(ctrl)
+            rep = replay_floor(floor, run["inputs"], run["plans"], plant.op)
+            parts.append((run, rep))
+        cat = lambda key, i: np.concatenate([p[i][key] for p in parts])   # noqa: E731
+        res = {k: cat(k, 0) for k in ("step", "cpu_step", "solve", "target", "iters")}
+        res.update({k: cat(k, 1) for k in ("floor", "cpu_floor", "floor_c", "f_iters", "diffs")})
+        res["statuses"] = parts[0][0]["statuses"] + parts[1][0]["statuses"]
         rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
         st, fl = res["step"], res["floor"]
         row = {
