@@ -1,6 +1,7 @@
 """The ``mpcproto`` command line: models, linearize, exit codes and error messages."""
 
 import json
+from pathlib import Path
 import subprocess
 import sys
 
@@ -136,10 +137,25 @@ def test_linearize_cstr_middle_state_is_unstable(capsys):
 
 @pytest.mark.filterwarnings("ignore:the dead time on 'feed'")
 def test_every_shipped_scenario_checks(capsys):
-    from pathlib import Path
 
     files = sorted(str(p) for p in Path("scenarios").glob("*.toml"))
     assert len(files) >= 7
     code, out, err = run_cli(capsys, "check", "--no-controllers", *files)
     assert code == 0, err
     assert out.count("ok: ") == len(files)
+
+
+def test_linearize_controller_model_under_mismatch(capsys, tmp_path):
+    text = Path("scenarios/caustic_blending.toml").read_text().replace(
+        "[operating_point]", "[controller_model]\nparameters = { area = 1.5 }\n\n[operating_point]")
+    p = tmp_path / "mismatch.toml"
+    p.write_text(text)
+    _, out_p, _ = run_cli(capsys, "linearize", str(p), "--json")
+    code, out_c, err = run_cli(capsys, "linearize", str(p), "--json", "--model", "controller")
+    assert code == 0, err
+    plant, ctl = json.loads(out_p), json.loads(out_c)
+    assert plant["which"] == "plant" and ctl["which"] == "controller"
+    # dh/dt = (w1 + w2 - w) / (rho A): the level row of B scales with 1/area (balance, by hand)
+    area_plant = mp.make_model("blending_tank").parameters["area"]
+    ratio = plant["continuous"]["B"][0][1] / ctl["continuous"]["B"][0][1]
+    assert ratio == pytest.approx(1.5 / area_plant, rel=1e-9)
