@@ -222,6 +222,9 @@ def build_parser() -> argparse.ArgumentParser:
         description="Prototype model-predictive controllers for process units and run closed-loop "
                     "studies. Simulation only: a real plant needs its own independent safety "
                     "systems, management of change, local codes and licensed engineers.")
+    from . import __version__
+
+    p.add_argument("--version", action="version", version=f"mpcproto {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
