@@ -362,3 +362,37 @@ def test_nonlinear_blending_tank_linearization_drives_to_setpoint():
     Y, U, outs = run_loop(ctrl, dm, 120, tg)
     np.testing.assert_allclose(Y[-1], sp, atol=1e-3 * np.abs(sp).max())
     assert np.all(U >= -1e-12) and np.all(U <= np.array([0.2, 3.0, 600.0]) + 1e-12)
+
+
+def test_dead_times_of_the_wood_berry_column_are_handled():
+    # Reference: Wood & Berry (1973) distillation column (mpcproto.models.wood_berry), dead times
+    # of 1-8 min as integer-sample delay states; offset-free MPC reaches both composition
+    # setpoints (Pannocchia & Rawlings 2003) through the delays.
+    wb = mp.make_model("wood_berry")
+    op = mp.steady_state(wb)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)     # 8.1 and 3.4 min rounded to samples
+        dm = mp.linearize(wb, op).discretize(1.0)
+    assert dm.nx > dm.n_plant_states                     # delay states are present
+    ctrl = mp.PredictiveController(dm, horizon=40, control_horizon=8).build()
+    sp = op.y + np.array([1.0, -1.0])
+    tg = mp.Targets(setpoint=sp, cv_low=np.full(2, -np.inf), cv_high=np.full(2, np.inf),
+                    mv_low=op.u - 5.0, mv_high=op.u + 5.0)
+    Y, _, outs = run_loop(ctrl, dm, 150, tg)
+    np.testing.assert_allclose(Y[-1], sp, atol=1e-3)
+    assert all(o.status == STATUS_OK for o in outs)
+
+
+def test_reset_is_bumpless_at_the_operating_point():
+    # Reference: bumpless transfer (common practice, no source): at a steady state with the
+    # setpoints where the CVs are, the controller leaves the MVs where they are.
+    rng = np.random.default_rng(8)
+    A, B, C, Bd = random_stable(rng, 3, 2, 2, nd=1)
+    dm = make_dlm(A, B, C, Bd=Bd, u0=[1.0, 2.0], y0=[5.0, -3.0], d0=[0.5])
+    ctrl = mp.PredictiveController(dm, horizon=10).build()
+    ctrl.reset(dm.op)
+    tg = mp.Targets(setpoint=dm.op.y, cv_low=np.full(2, -np.inf), cv_high=np.full(2, np.inf),
+                    mv_low=np.full(2, -10.0), mv_high=np.full(2, 10.0))
+    for k in range(3):
+        out = ctrl.step(float(k), mp.Measurement.now(dm.op.y, float(k)), dm.op.d, tg)
+        np.testing.assert_allclose(out.u, dm.op.u, atol=1e-6)
