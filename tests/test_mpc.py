@@ -149,6 +149,10 @@ def test_fast_path_equals_cvxpy_solve_on_random_steps():
         np.testing.assert_allclose(a["u_plan"], b["u_plan"], atol=1e-6)
         np.testing.assert_allclose(a["y_pred"], b["y_pred"], atol=1e-6)
         np.testing.assert_allclose(a["objective"], b["objective"], rtol=1e-5, atol=1e-6)
+        # the composed input map gives the same solver data as cvxpy's parameter map itself
+        z = fast._last_inputs
+        for got, want in zip(fast.qp_.data_inputs(z), fast.qp_.data(fast.qp_.values_from_inputs(z))):
+            np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12)
 
 
 # ----------------------------------------------------------------------------------------------

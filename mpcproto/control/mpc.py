@@ -28,7 +28,14 @@ Every per-sample datum is a cvxpy Parameter entering only the linear cost and th
 bounds, so the problem is DPP, the matrices never change and OSQP keeps its factorization.  By
 default the compiled problem's affine parameter->data map is read once and OSQP is driven directly
 (``fast_path=True``); ``fast_path=False`` re-solves through ``cvxpy.Problem.solve`` (OSQP or
-Clarabel).
+Clarabel).  Both QPs are written in scaled deviations (one ``scale`` of each MV and CV is one
+unit; each state is scaled by how far one scaled MV step moves it within the horizon), which keeps
+OSQP's iteration counts low on units whose variables differ by orders of magnitude; inputs,
+outputs and diagnostics stay in engineering units.
+
+Solve outcomes: a solve that is not optimal is retried once with ``backup_solver`` (Clarabel via
+cvxpy), then the previous plan is applied shifted by one sample (``fallback="shift"``) or the MVs
+are held; the applied MVs are always projected exactly onto the hard limits and rate limits.
 
 Caution: this is a simulation prototype.  A controller on a real plant needs independent safety
 systems, management of change and the judgement of licensed engineers under local codes.
@@ -176,6 +183,9 @@ class PredictiveController:
         With the fast path: when OSQP does not reach an optimal solution, solve the same compiled
         problem once more with this solver through cvxpy before falling back (the first such call
         canonicalizes for that solver, a few hundred ms).  None: fall back at once.
+
+    Defaults of every key are in the module constants ``SETTINGS_KEYS``, ``CV_KEYS``,
+    ``MV_KEYS`` and ``DV_KEYS``.
 
     Attributes
     ----------
