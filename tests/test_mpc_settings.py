@@ -99,3 +99,14 @@ def test_output_disturbance_on_an_integrating_cv_is_refused():
                                 cv={"level": {"disturbance": "output"}}).build()
     # 'auto' picks an input disturbance for it and builds
     mp.PredictiveController(m, horizon=5).build()
+
+
+def test_bad_forecast_is_refused_before_the_estimator_moves():
+    ctrl = mp.PredictiveController(small_model(), horizon=5).build()
+    ctrl.reset()
+    tg = mp.Targets(setpoint=np.zeros(2), cv_low=np.full(2, -np.inf), cv_high=np.full(2, np.inf),
+                    mv_low=np.zeros(2), mv_high=np.ones(2))
+    meas = mp.Measurement.now([0.0, 0.0], 0.0)
+    with pytest.raises(mp.SettingsError, match=r"dv_forecast must have shape \(n, 1\)"):
+        ctrl.step(0.0, meas, [0.0], tg, dv_forecast=np.zeros((4, 3)))
+    ctrl.step(0.0, meas, [0.0], tg, dv_forecast=np.zeros((4, 1)))   # same sample, now accepted

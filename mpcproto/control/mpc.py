@@ -685,6 +685,20 @@ class PredictiveController:
                                     f"(model order); got shape {np.shape(v)}.")
         return a
 
+    def _forecast(self, dv_forecast):
+        """The DV forecast as an (n, nd) array, or None; checked before anything changes."""
+        if dv_forecast is None:
+            return None
+        nd = self.dmodel.nd
+        f = np.asarray(dv_forecast, float)
+        if f.ndim == 1:
+            f = f[None, :]
+        if f.ndim != 2 or f.shape[1] != nd or f.shape[0] < 1:
+            raise SettingsError(f"PredictiveController: dv_forecast must have shape (n, {nd}) "
+                                f"(rows: samples from now, columns: DVs in model order); got "
+                                f"{np.shape(dv_forecast)}.")
+        return f
+
     def _limits(self, targets: Targets):
         """Hard MV limits and rates (absolute), CV soft limits and setpoints for this sample."""
         r = self._resolved
@@ -755,6 +769,7 @@ class PredictiveController:
         diag: dict[str, Any] = {}
         # ---- inputs checked before anything changes state
         mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_ = self._limits(targets)
+        dv_forecast = self._forecast(dv_forecast)
         # ---- measured DVs (deviation); unknown / not fed forward -> 0
         dv = np.full(nd, np.nan) if dv is None else self._vec(dv, nd, "dv", np.nan)
         use = r["feedforward"] & np.isfinite(dv)
@@ -858,12 +873,7 @@ class PredictiveController:
                     self._forecast_in_z = False
                 d_end = d_now
             else:
-                f = np.asarray(dv_forecast, float)
-                if f.ndim == 1:
-                    f = f[None, :]
-                if f.ndim != 2 or f.shape[1] != nd:
-                    raise SettingsError(f"PredictiveController.step(): dv_forecast must have shape "
-                                        f"(n, {nd}); got {np.shape(dv_forecast)}.")
+                f = dv_forecast
                 F = f[np.minimum(np.arange(N + 1), f.shape[0] - 1)] - op_d
                 F = np.where(np.isfinite(F), F, d_now)
                 dtraj = (np.where(use, F, 0.0) - d_now).ravel()
@@ -1002,6 +1012,7 @@ class PredictiveController:
         d_now = np.where(use, dvv - self._op_d, 0.0)
         up = self._op_u.copy() if u_prev is None else self._vec(u_prev, m.nu, "u_prev", np.nan)
         lims = self._limits(targets)
+        dv_forecast = self._forecast(dv_forecast)
         diag: dict[str, Any] = {}
         res = self._optimize(x, w, d_now, use, dv_forecast, *lims, up, diag)
         out: dict[str, Any] = {"status": res.status, "accepted": res.accepted,
