@@ -776,7 +776,12 @@ class PredictiveController:
         d_now = np.where(use, dv - op_d, 0.0)
         # ---- estimator
         y = self._vec(meas.y, ny, "meas.y", np.nan)
-        info = self.estimator_.update(t, y - op_y, meas.taken_at, meas.fresh, d_now)
+        taken = self._vec(meas.taken_at, ny, "meas.taken_at", np.nan)
+        fresh = np.asarray(meas.fresh, bool)
+        if fresh.shape != (ny,):
+            raise SettingsError(f"PredictiveController.step(): meas.fresh must have {ny} entries "
+                                f"(model order); got shape {fresh.shape}.")
+        info = self.estimator_.update(t, y - op_y, taken, fresh, d_now)
         if info["rejected"]:
             self.counts["rejected_measurements"] += len(info["rejected"])
         if info["late"]:
