@@ -68,9 +68,7 @@ class DisturbanceEstimator:
         Measurement noise variance per CV (engineering units squared).
     history : int
         Samples kept for late measurements (longest analyzer delay in samples, plus margin).
-    feedforward : sequence of bool or None
-        Per DV, whether its measured value enters the model (False: treated as unknown, zero
-        deviation).  None: every DV whose value arrives finite.
+        DVs enter :meth:`update` as deviations; pass 0 for a DV that is unknown or not to be used.
 
     Notes
     -----
@@ -80,15 +78,13 @@ class DisturbanceEstimator:
 
     def __init__(self, dmodel, *, disturbance: Mapping[str, str] | str = "output",
                  state_noise: float = 1e-4, disturbance_noise: Mapping[str, float] | float = 1e-2,
-                 measurement_noise: Mapping[str, float] | float = 1e-3, history: int = 60,
-                 feedforward=None):
+                 measurement_noise: Mapping[str, float] | float = 1e-3, history: int = 60):
         self.dmodel = dmodel
         self.disturbance = disturbance
         self.state_noise = state_noise
         self.disturbance_noise = disturbance_noise
         self.measurement_noise = measurement_noise
         self.history = history
-        self.feedforward = feedforward
         self.is_built = False
 
     # ------------------------------------------------------------------ helpers

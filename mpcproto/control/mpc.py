@@ -429,7 +429,7 @@ class PredictiveController:
         self.estimator_ = DisturbanceEstimator(
             m, disturbance=r["disturbance"], state_noise=float(self.state_noise),
             disturbance_noise=r["dist_noise"], measurement_noise=r["meas_noise"],
-            history=int(self.history), feedforward=r["feedforward"]).build()
+            history=int(self.history)).build()
         Bw, Cw = self.estimator_.Bw_, self.estimator_.Cw_
         opts = r["solver_options"]
         osqp_opts = dict(opts) if self.solver == "osqp" else {}
