@@ -6,8 +6,9 @@ The controller model (deviation variables, sample time ``Ts``)::
     y[k]   = C x[k] + D u[k-1] + Dd d[k] + Cw w[k]            w[k+1] = w[k]
 
 is augmented with one constant disturbance state ``w_i`` per CV (Muske & Badgwell 2002;
-Pannocchia & Rawlings 2003 give the rank condition this construction satisfies).  Per CV the
-disturbance enters either
+Pannocchia & Rawlings 2003 give the detectability condition; :meth:`DisturbanceEstimator.build`
+refuses a model that breaks it, because the Riccati equation then has no stabilizing solution).
+Per CV the disturbance enters either
 
 ``"output"``
     as a bias on that CV (``Cw = I`` column): fast, the usual default, exact for a sensor offset;
@@ -19,9 +20,13 @@ disturbance enters either
     bias.  A CV that integrates (a level) needs it: an output bias on an integrator is not
     observable apart from the integrating state.
 
+``"auto"`` (the default) takes ``"input"`` for integrating CVs and ``"output"`` for the others.
+
 The filter gain comes from the steady-state prior covariance of the augmented model
 (:func:`scipy.linalg.solve_discrete_are`).  When only some CVs report at a sample (analyzers), the
-gain for that subset is ``P C_S' (C_S P C_S' + R_S)^-1`` with the same steady-state prior ``P``.
+gain for that subset is ``P C_S' (C_S P C_S' + R_S)^-1`` with the same steady-state prior ``P``
+(an approximation: between two analyzer samples the true covariance grows beyond the every-sample
+``P``, so the analyzer correction is somewhat timid; a time-varying filter would be exact).
 
 Late measurements
 -----------------
