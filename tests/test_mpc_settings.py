@@ -44,6 +44,7 @@ def small_model(B_shape=None):
      ["clarabel option 'solver_options.max_iters'", "did you mean 'max_iter'"]),
     ({"terminal_cost": True, "steady_target": False}, ["'terminal_cost'", "steady_target"]),
     ({"priority_ratio": 1.0}, ["'priority_ratio'", "> 1"]),
+    ({"backup_solver": "ecos"}, ["'backup_solver'", "'none'", "ecos"]),
 ])
 def test_bad_settings_are_named(settings, words):
     with pytest.raises(mp.SettingsError) as exc:

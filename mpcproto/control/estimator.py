@@ -81,7 +81,7 @@ class DisturbanceEstimator:
     covariance), ``A_``, ``C_`` (augmented matrices) and ``Bw_``, ``Cw_`` are set.
     """
 
-    def __init__(self, dmodel, *, disturbance: Mapping[str, str] | str = "output",
+    def __init__(self, dmodel, *, disturbance: Mapping[str, str] | str = "auto",
                  state_noise: float = 1e-4, disturbance_noise: Mapping[str, float] | float = 1e-2,
                  measurement_noise: Mapping[str, float] | float = 1e-3, history: int = 60):
         self.dmodel = dmodel

@@ -179,10 +179,10 @@ class PredictiveController:
         Weight factor between neighbouring priority classes (> 1).
     fallback : {"shift", "hold"}
         What a failed solve applies: the previous plan shifted one sample, or the previous MVs.
-    backup_solver : {"clarabel", "osqp"} or None
+    backup_solver : {"clarabel", "osqp", "none"} or None
         With the fast path: when OSQP does not reach an optimal solution, solve the same compiled
         problem once more with this solver through cvxpy before falling back (the first such call
-        canonicalizes for that solver, a few hundred ms).  None: fall back at once.
+        canonicalizes for that solver, a few hundred ms).  None or "none": fall back at once.
 
     Defaults of every key are in the module constants ``SETTINGS_KEYS``, ``CV_KEYS``,
     ``MV_KEYS`` and ``DV_KEYS``.
@@ -301,8 +301,10 @@ class PredictiveController:
         _bool("fast_path", self.fast_path)
         if self.solver not in SOLVERS:
             raise _err("solver", f"one of {SOLVERS}", self.solver)
+        if self.backup_solver == "none":          # the spelling a TOML file can give
+            self.backup_solver = None
         if self.backup_solver is not None and self.backup_solver not in SOLVERS:
-            raise _err("backup_solver", f"one of {SOLVERS} or None", self.backup_solver)
+            raise _err("backup_solver", f"one of {SOLVERS} or 'none'", self.backup_solver)
         if self.fallback not in FALLBACKS:
             raise _err("fallback", f"one of {FALLBACKS}", self.fallback)
         if self.terminal_cost and not self.steady_target:
