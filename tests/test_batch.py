@@ -178,6 +178,8 @@ def test_bad_arguments_are_named(tmp_path, pool):
         run_batch(cases, tmp_path, workers=0, run=run_tank_case)
     with pytest.raises(SettingsError, match="share the id 'tank-0000'"):
         run_batch([cases[0], cases[0]], tmp_path, executor=pool, run=run_tank_case, progress=False)
+    with pytest.raises(SettingsError, match="'run' callable of run_batch must be picklable"):
+        run_batch(cases, tmp_path, executor=pool, run=lambda case: {}, progress=False)
     with pytest.raises(SettingsError, match="stable id"):
         run_batch([object()], tmp_path, executor=pool, run=run_tank_case, progress=False)
 

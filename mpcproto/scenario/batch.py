@@ -32,13 +32,14 @@ import hashlib
 import json
 import math
 import os
+import pickle
 import sys
 import time
 import traceback
 import warnings
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator, Mapping
-from concurrent.futures import FIRST_COMPLETED, Executor, Future, wait
+from concurrent.futures import FIRST_COMPLETED, Executor, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -437,6 +438,14 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
     outcome = BatchOutcome(out_dir=out, results_path=path, total=0)
 
     own = executor is None
+    if own or isinstance(executor, ProcessPoolExecutor):
+        try:   # fail now, not once per case in the workers
+            pickle.dumps(run_fn)
+        except Exception as exc:  # noqa: BLE001 - pickling raises many types
+            raise SettingsError(
+                f"The 'run' callable of run_batch must be picklable to reach the worker processes "
+                f"(a function defined at module level, not a lambda or a local function). Got "
+                f"{run_fn!r}, which does not pickle: {exc}.") from None
     ex = local_pool(workers) if own else executor
     outcome.executor = type(ex).__name__
     window = max_in_flight or 2 * executor_slots(ex)
