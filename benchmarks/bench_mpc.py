@@ -17,10 +17,11 @@ For horizons N = 20, 50, 100 (control horizon N/5):
 * **floor**: the identical dynamic QP, assembled here independently as ``scipy.sparse`` matrices
   (the same variables, cost and constraints written by hand, no cvxpy), solved by the osqp
   package's own public API (``OSQP.setup`` once, then ``update(q=, l=, u=)`` and ``solve()`` each
-  sample, warm started, the same OSQP settings), in the same run: the controller's closed loop
-  records its per-sample data, the floor then solves the same sequence of QPs in its own loop
-  (two such pairs of passes, alternating, so both see the same spread of machine load; solving
-  them interleaved sample by sample would let each evict the other's caches).  Only ``update`` +
+  sample, warm started, the same OSQP settings), in the same run: the controller runs the closed
+  loop in segments of 25 samples, recording its per-sample data, and after each segment the floor
+  solves the same QPs in its own loop (its warm start carried from segment to segment), so both
+  see the same spread of machine load; solving them interleaved sample by sample would let each
+  evict the other's caches.  Only ``update`` +
   ``solve`` are timed; the floor's vectors are built before its timed loop.  Its solution is
   compared with the controller's plan each sample (``max_plan_diff``).
 * **compile**: ``build()`` time (cvxpy canonicalization of both QPs, map extraction, OSQP setup,
@@ -52,7 +53,8 @@ from mpcproto.control._qp import OSQP_DEFAULTS
 
 RESULTS = Path(__file__).resolve().parent / "results"
 HORIZONS = (20, 50, 100)
-STEPS = 400
+STEPS = 600
+SEGMENT = 25
 TS = 10.0
 
 
@@ -187,43 +189,58 @@ class Floor:
 
 
 # ------------------------------------------------------------------------------------------------
+class Loop:
+    """The closed loop against the linear plant, run in segments (state kept between calls)."""
+
+    def __init__(self, ctrl, plant, seed=1):
+        self.ctrl, self.plant = ctrl, plant
+        self.rng = np.random.default_rng(seed)
+        self.x = np.zeros(plant.nx)
+        self.draw = 0.0
+        self.k = 0
+        ctrl.reset(plant.op)
+
+    def run(self, steps, record=False):
+        """Advance *steps* samples; time every controller step (wall and CPU)."""
+        ctrl, plant, rng = self.ctrl, self.plant, self.rng
+        op = plant.op
+        ny = plant.ny
+        lo = np.array([0.0, 0.0, 0.0])
+        hi = np.array([0.2, 3.0, 600.0])
+        t_step, c_step, t_solve, t_target, iters, statuses, inputs, plans = ([] for _ in range(8))
+        for _ in range(steps):
+            k = self.k
+            t = k * plant.Ts
+            self.draw = float(np.clip(self.draw + rng.normal(scale=0.01), -0.3, 0.3))
+            d = np.array([self.draw, 0.03 if k >= 150 else 0.0, 0.0])   # deviation DVs, plant
+            y = plant.C @ self.x + plant.Dd @ d + op.y + rng.normal(scale=[0.002, 0.01, 0.05])
+            sp_ = op.y + np.array([0.0, 0.3 if k >= 50 else 0.0, -2.0 if k >= 250 else 0.0])
+            tg = mp.Targets(setpoint=sp_, cv_low=np.full(ny, -np.inf),
+                            cv_high=np.full(ny, np.inf), mv_low=lo, mv_high=hi)
+            dv = np.array([op.d[0] + self.draw, np.nan, np.nan])
+            meas = mp.Measurement.now(y, t)
+            c0 = time.thread_time()
+            t0 = time.perf_counter()
+            out = ctrl.step(t, meas, dv, tg)
+            t_step.append(time.perf_counter() - t0)
+            c_step.append(time.thread_time() - c0)
+            iters.append(out.diagnostics.get("iterations") or 0)
+            t_solve.append(out.diagnostics.get("solve_ms", 0.0) / 1e3)
+            t_target.append(out.diagnostics.get("target_ms", 0.0) / 1e3)
+            statuses.append(out.status)
+            if record:
+                inputs.append(ctrl._last_inputs.copy())
+                plans.append(ctrl.last_plan() if out.status == "ok" else None)
+            self.x = plant.A @ self.x + plant.B @ (out.u - op.u) + plant.Bd @ d
+            self.k += 1
+        return {"step": np.array(t_step), "cpu_step": np.array(c_step),
+                "solve": np.array(t_solve), "target": np.array(t_target),
+                "iters": np.array(iters), "statuses": statuses, "inputs": inputs, "plans": plans}
+
+
 def closed_loop(ctrl, plant, steps=STEPS, seed=1, record=False):
-    """Run the controller against the linear plant; time every step (wall and CPU)."""
-    rng = np.random.default_rng(seed)
-    op = plant.op
-    ny = plant.ny
-    x = np.zeros(plant.nx)
-    ctrl.reset(op)
-    draw = 0.0
-    t_step, c_step, t_solve, t_target, iters, statuses, inputs, plans = [], [], [], [], [], [], [], []
-    lo = np.array([0.0, 0.0, 0.0])
-    hi = np.array([0.2, 3.0, 600.0])
-    for k in range(steps):
-        t = k * plant.Ts
-        draw = float(np.clip(draw + rng.normal(scale=0.01), -0.3, 0.3))
-        d = np.array([draw, 0.03 if k >= 150 else 0.0, 0.0])        # deviation DVs at the plant
-        y = plant.C @ x + plant.Dd @ d + op.y + rng.normal(scale=[0.002, 0.01, 0.05])
-        sp_ = op.y + np.array([0.0, 0.3 if k >= 50 else 0.0, -2.0 if k >= 250 else 0.0])
-        tg = mp.Targets(setpoint=sp_, cv_low=np.full(ny, -np.inf), cv_high=np.full(ny, np.inf),
-                        mv_low=lo, mv_high=hi)
-        dv = np.array([op.d[0] + draw, np.nan, np.nan])
-        meas = mp.Measurement.now(y, t)
-        c0 = time.thread_time()
-        t0 = time.perf_counter()
-        out = ctrl.step(t, meas, dv, tg)
-        t_step.append(time.perf_counter() - t0)
-        c_step.append(time.thread_time() - c0)
-        iters.append(out.diagnostics.get("iterations") or 0)
-        t_solve.append(out.diagnostics.get("solve_ms", 0.0) / 1e3)
-        t_target.append(out.diagnostics.get("target_ms", 0.0) / 1e3)
-        statuses.append(out.status)
-        if record:
-            inputs.append(ctrl._last_inputs.copy())
-            plans.append(ctrl.last_plan() if out.status == "ok" else None)
-        x = plant.A @ x + plant.B @ (out.u - op.u) + plant.Bd @ d
-    return {"step": np.array(t_step), "cpu_step": np.array(c_step), "solve": np.array(t_solve),
-            "target": np.array(t_target), "iters": np.array(iters), "statuses": statuses,
-            "inputs": inputs, "plans": plans}
+    """A whole closed-loop run from the operating point."""
+    return Loop(ctrl, plant, seed).run(steps, record)
 
 
 def replay_floor(floor, inputs, plans, op):
@@ -269,19 +286,21 @@ def main():
         peak = tracemalloc.get_traced_memory()[1]
         tracemalloc.stop()
         del mctrl
-        # two passes of each, alternating (controller, floor, controller, floor): each runs in
-        # its own hot loop on the same per-sample data, and both see the same spread of load
+        # the controller runs the closed loop in segments; after each segment the floor solves
+        # the same QPs (same order, its warm start carried on), so both run in their own hot
+        # loop and both see the same spread of machine load
         closed_loop(ctrl, plant, steps=30, seed=7)                 # warm-up
+        loop = Loop(ctrl, plant)
+        floor = Floor(ctrl)
         parts = []
-        for _ in range(2):
-            run = closed_loop(ctrl, plant, record=True)
-            floor = Floor(ctrl)
+        for _ in range(STEPS // SEGMENT):
+            run = loop.run(SEGMENT, record=True)
             rep = replay_floor(floor, run["inputs"], run["plans"], plant.op)
             parts.append((run, rep))
         cat = lambda key, i: np.concatenate([p[i][key] for p in parts])   # noqa: E731
         res = {k: cat(k, 0) for k in ("step", "cpu_step", "solve", "target", "iters")}
         res.update({k: cat(k, 1) for k in ("floor", "cpu_floor", "floor_c", "f_iters", "diffs")})
-        res["statuses"] = parts[0][0]["statuses"] + parts[1][0]["statuses"]
+        res["statuses"] = [s_ for p in parts for s_ in p[0]["statuses"]]
         rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
         st, fl = res["step"], res["floor"]
         row = {
