@@ -390,11 +390,10 @@ def main(argv=None) -> int:
     if busy:
         print("NOTE: even the 1-worker run got only "
               f"{report['runs']['local_1']['cpu_share_in_cases']:.0%} of a core: other processes "
-              "were using the machine, and the kernel shares the CPUs fairly between sessions, so "
-              "a second worker in this session cannot get a second core. The wall-time "
-              "efficiencies above measure that contention; 'CPU eff.' (from the CPU time the "
-              "cases used and the share of time the worker slots were busy) estimates the "
-              "efficiency on an idle machine. Re-run when the machine is idle.")
+              "were using the machine (see the load averages), so the wall-time efficiencies "
+              "above measure that contention as much as the batch runner. 'slots busy' shows what "
+              "the runner itself loses; 'CPU eff.' (from the CPU time the cases used) estimates "
+              "the efficiency with a free core per worker. Re-run on an idle machine.")
     print("start-up of one worker (pool created -> runner imported): " + ", ".join(
         f"{k} {v:.2f} s" for k, v in report["startup_s"].items())
         + (f"; Dask LocalCluster (2 workers) {report['runs']['dask_2']['cluster_startup_s']:.2f} s"
