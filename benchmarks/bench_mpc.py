@@ -145,7 +145,7 @@ class Floor:
         """q, l, u from the controller's input vector of this sample (not timed)."""
         c = self.ctrl
         zs = c._zsl
-        N, M, nx, nu, ny = self.N, self.M, self.nx, self.nu, self.ny
+        N, M, nu, ny = self.N, self.M, self.nu, self.ny
         dm = c.dmodel
         sx, su, sy = self.sc["x"], self.sc["u"], self.sc["y"]
         S = c.scaled_

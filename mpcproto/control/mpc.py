@@ -54,7 +54,7 @@ import scipy.sparse as sp
 
 from ..exceptions import NotBuiltError, SettingsError
 from ..model import suggest
-from ._qp import CompiledQP, OSQP_DEFAULTS
+from ._qp import CompiledQP
 from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_OK, ControlOutput,
                    Measurement, Targets)
 from .estimator import DISTURBANCE_MODELS, DisturbanceEstimator
@@ -257,7 +257,6 @@ class PredictiveController:
         """
         m = self.dmodel
         self._check_model(m)
-        nx, nu, ny, nd = m.nx, m.nu, m.ny, m.nd
         N = _int("horizon", self.horizon)
         M = N if self.control_horizon is None else _int("control_horizon", self.control_horizon)
         if M > N:
@@ -764,7 +763,7 @@ class PredictiveController:
             raise NotBuiltError("PredictiveController.step(): call .reset(op, t0) before the first step.")
         t_start = time.perf_counter()
         m, r = self.dmodel, self._resolved
-        N, M = self._N, self._M
+        N = self._N
         op_u, op_d, op_y = self._op_u, self._op_d, self._op_y
         nu, ny, nd = m.nu, m.ny, m.nd
         names = m.cv_names
@@ -866,10 +865,10 @@ class PredictiveController:
     def _optimize(self, x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
                   u_prev, diag):
         """Steady target and dynamic QP for estimate (x, w); returns the dynamic QPResult."""
-        m, r = self.dmodel, self._resolved
-        N, M = self._N, self._M
+        m = self.dmodel
+        N = self._N
         op_u, op_d, op_y = self._op_u, self._op_d, self._op_y
-        nu, ny, nd = m.nu, m.ny, m.nd
+        nd = m.nd
         z, zs = self._z, self._zsl
         # ---- DV trajectory over the horizon (deviation), samples 0..N
         if nd:
