@@ -400,3 +400,35 @@ def test_reset_is_bumpless_at_the_operating_point():
     for k in range(3):
         out = ctrl.step(float(k), mp.Measurement.now(dm.op.y, float(k)), dm.op.d, tg)
         np.testing.assert_allclose(out.u, dm.op.u, atol=1e-6)
+
+
+def test_steady_target_active_set_reuse_matches_an_interior_point_solve():
+    # Reference: cvxpy's own solve of the same target problem with Clarabel; the re-used active
+    # set gives the exact KKT point (Nocedal & Wright, Numerical Optimization, ch. 16, from
+    # memory: for a fixed active set a convex QP's solution solves one linear KKT system).
+    rng = np.random.default_rng(21)
+    A, B, C, Bd = random_stable(rng, 3, 2, 2, nd=1)
+    dm = make_dlm(A, B, C, Bd=Bd)
+    ctrl = mp.PredictiveController(dm, horizon=8, mv={"u0": {"low": -0.4, "high": 0.4},
+                                                      "u1": {"rest_weight": 0.2}}).build()
+    tgt = ctrl.target_
+    lay = tgt.layout_
+    explicit = 0
+    for _ in range(12):
+        parts = {"d": rng.normal(size=1) * 0.2, "w": rng.normal(size=2) * 0.05,
+                 "band_lo": np.array([rng.normal(), -np.inf]), "band_hi": np.array([np.nan, 0.3]),
+                 "lim_lo": np.full(2, -np.inf), "lim_hi": np.array([np.inf, 1.0]),
+                 "mv_lo": np.array([-0.4, -np.inf]), "mv_hi": np.array([0.4, np.inf]),
+                 "rest": np.zeros(2)}
+        parts["band_hi"][0] = parts["band_lo"][0]          # a setpoint on y0, a zone on y1
+        z = np.concatenate([np.asarray(parts[k], float).reshape(lay[k]) for k in lay])
+        for _rep in range(2):                              # the second solve re-uses the set
+            before = tgt.explicit_solves
+            a = tgt.solve(z, fast=True)
+            explicit += tgt.explicit_solves - before
+        b = tgt.solve(z, fast=False, solver="CLARABEL",
+                      options={"tol_gap_abs": 1e-10, "tol_gap_rel": 1e-10, "tol_feas": 1e-10})
+        assert a.accepted and b.accepted
+        for key in ("us", "ys"):
+            np.testing.assert_allclose(a.values[key], b.values[key], atol=1e-7)
+    assert explicit >= 6

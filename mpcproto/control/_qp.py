@@ -84,6 +84,8 @@ class CompiledQP:
         self.owner = owner
         self._solver = None
         self._started = False
+        self.keep_duals = False     # keep OSQP's duals of the last solve in ``last_duals``
+        self.last_duals = None
 
     # ------------------------------------------------------------------ compile
     def compile(self) -> "CompiledQP":
@@ -386,11 +388,16 @@ class CompiledQP:
             ext.update_data_vec(q=q, l=l, u=u)
             ext.solve()
             info = ext.info
-            x = np.array(ext.solution.x)
+            sol = ext.solution
+            x = np.array(sol.x)
+            if self.keep_duals:
+                self.last_duals = np.array(sol.y)
         else:
             self._solver.update(q=q, l=l, u=u)
             res = self._solver.solve(raise_error=False)
             info, x = res.info, np.array(res.x)
+            if self.keep_duals:
+                self.last_duals = np.array(res.y)
         ms = (time.perf_counter() - t0) * 1e3
         sv = int(info.status_val)
         status = _OSQP_STATUS.get(sv, str(info.status))

@@ -921,6 +921,7 @@ class PredictiveController:
                 if res2.accepted:
                     self.counts["backup_solves"] += 1
                     res = res2
+            diag["target_iterations"] = res.iterations     # 0: the active set was re-used
             if res.accepted:
                 self._target = (res.values["us"], res.values["ys"], res.values["xs"])
                 diag["target_status"] = "ok"

@@ -22,6 +22,9 @@ gives way first when the MVs cannot satisfy every CV.
 
 from __future__ import annotations
 
+import time
+from typing import Any
+
 import numpy as np
 import scipy.sparse as sp
 
@@ -136,8 +139,67 @@ class SteadyTarget:
              "mv_lo": {"mv_lo": eye_u}, "mv_hi": {"mv_hi": eye_u}, "rest": {"rest": eye_u}},
             inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi", "mv_lo", "mv_hi"))
         self.qp_.setup(self.solver_options)
+        self.qp_.keep_duals = True
+        Pu = np.triu(self.qp_.P_.toarray())          # OSQP reads the upper triangle
+        self._P = Pu + np.triu(Pu, 1).T
+        self._A = self.qp_.A_.toarray()
+        self._active: dict[bytes, Any] = {}
+        self._last_key = None
+        self.explicit_solves = 0
         self.is_built = True
         return self
+
+    # -- re-using the active set: for a fixed set of active constraints the QP's solution is an
+    # affine function of its data (the KKT system), so while the same constraints stay active the
+    # target is one matrix-vector product; it is accepted only when it satisfies every KKT
+    # condition (primal bounds, signs of the multipliers), else OSQP solves and teaches the new set.
+    def _learn_active_set(self, q, l, u):
+        y = self.qp_.last_duals
+        if y is None:
+            return
+        eq = l == u
+        up = (y > 1e-9) & ~eq
+        lo = (y < -1e-9) & ~eq
+        key = np.concatenate([eq, up, lo]).tobytes()
+        if key not in self._active:
+            S = np.flatnonzero(eq | up | lo)
+            n = self._P.shape[0]
+            AS = self._A[S]
+            K = np.block([[self._P, AS.T], [AS, np.zeros((len(S), len(S)))]])
+            entry = None
+            if np.linalg.cond(K) < 1e10:
+                entry = (np.linalg.inv(K), S, up[S], lo[S], eq, n)
+            if len(self._active) > 256:
+                self._active.clear()
+            self._active[key] = entry
+        self._last_key = key
+
+    def _reuse_active_set(self, q, l, u):
+        from ._qp import QPResult
+
+        if self._last_key is None:
+            return None
+        entry = self._active.get(self._last_key)
+        if entry is None:
+            return None
+        Kinv, S, upS, loS, eq, n = entry
+        if not np.array_equal(l == u, eq):
+            return None
+        t0 = time.perf_counter()
+        sol = Kinv @ np.concatenate([-q, np.where(loS, l[S], u[S])])
+        x, yS = sol[:n], sol[n:]
+        Ax = self._A @ x
+        tol = 1e-9 * (1.0 + np.abs(Ax))
+        if (Ax > u + tol).any() or (Ax < l - tol).any():
+            return None
+        if (yS[upS] < -1e-9).any() or (yS[loS] > 1e-9).any():
+            return None
+        self.explicit_solves += 1
+        vals = {name: x[sl].reshape(shape, order="F")
+                for name, (sl, shape) in self.qp_._vslices.items()}
+        return QPResult(status="optimal", accepted=True, values=vals, iterations=0,
+                        solve_ms=(time.perf_counter() - t0) * 1e3,
+                        objective=float(0.5 * x @ self._P @ x + q @ x))
 
     def solve(self, z: np.ndarray, fast: bool = True, solver: str = "OSQP", options=None):
         """Solve for the input vector *z* (blocks in ``layout_`` order, deviation variables).
@@ -148,7 +210,12 @@ class SteadyTarget:
         if not self.is_built:
             raise NotBuiltError("SteadyTarget is not built; call .build() first.")
         if fast:
-            res = self.qp_.solve_inputs(z)
+            q, l, u = self.qp_.data_inputs(z)
+            res = self._reuse_active_set(q, l, u)
+            if res is None:
+                res = self.qp_.solve_data(q, l, u)
+                if res.accepted:
+                    self._learn_active_set(q, l, u)
         else:
             res = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=solver,
                                        options=options)
