@@ -23,6 +23,9 @@ What it measures
    processes on the machine took the cores.  "CPU eff." = (CPU time of the 1-worker run / CPU
    time of this run) x (slots busy / slots busy of the 1-worker run): the efficiency this run would
    reach with a core per worker, an estimate for a busy machine.
+   Baseline in the same run: the same cases split statically over 1 and 2 plain forked processes
+   (no executor, no results file, workers warmed the same way): the efficiency the machine itself
+   allows (two vCPUs may not be two free physical cores).  "vs bare" = efficiency / that.
 3. Peak memory of the parent process for 100, 1,000 and 3,000 cheap cases (a 20-sample CasADi tank
    integration each, cases generated lazily), each in a fresh process: peak RSS (ru_maxrss) and
    tracemalloc's peak of Python allocations during ``run_batch``.  It must not grow with the number
@@ -130,6 +133,44 @@ def _warm(scenario) -> None:
     from mpcproto.scenario import run_case  # noqa: PLC0415
 
     run_case(scenario)
+
+
+def _bare_worker(cases, scenario, start, queue) -> None:
+    """Baseline without any batch runner: warm up, wait for the start signal, run a fixed share."""
+    from mpcproto.scenario import run_case  # noqa: PLC0415
+    from mpcproto.scenario.executors import limit_blas_threads  # noqa: PLC0415
+
+    limit_blas_threads(1)
+    _warm(scenario)
+    queue.put("ready")
+    start.wait()
+    for c in cases:
+        run_case(c)
+    queue.put("done")
+
+
+def run_bare(nproc: int, cases, scenario) -> dict:
+    """The same cases split statically over *nproc* plain processes (no executor, no results file):
+    the parallel speed-up the machine itself allows."""
+    import multiprocessing  # noqa: PLC0415
+
+    ctx = multiprocessing.get_context("fork")
+    start, queue = ctx.Event(), ctx.Queue()
+    procs = [ctx.Process(target=_bare_worker, args=(cases[i::nproc], scenario, start, queue))
+             for i in range(nproc)]
+    load = _load()
+    for p in procs:
+        p.start()
+    for _ in procs:
+        queue.get()
+    t0 = time.perf_counter()
+    start.set()
+    for _ in procs:
+        queue.get()
+    wall = time.perf_counter() - t0
+    for p in procs:
+        p.join()
+    return {"workers": nproc, "wall_s": wall, "cases": len(cases), "load_before": load}
 
 
 _TANK: dict = {}
@@ -324,6 +365,7 @@ def main(argv=None) -> int:
         from mpcproto import load_results  # noqa: PLC0415
 
         names = ["local_1", "local_2"] + ([] if args.skip_dask else ["dask_2"])
+        bare: dict[str, list[dict]] = {"bare_1": [], "bare_2": []}
         rounds: dict[str, list[dict]] = {n: [] for n in names}
         ref = None
         report["identical_results"] = {n: True for n in names}
@@ -356,6 +398,11 @@ def main(argv=None) -> int:
                 rounds[name].append(r)
                 print(f"  round {rnd + 1} {name}: {r['wall_s']:.1f} s (load {r['load_before']})",
                       flush=True)
+            for name in bare:
+                r = run_bare(int(name[-1]), cases, scenario)
+                bare[name].append(r)
+                print(f"  round {rnd + 1} {name}: {r['wall_s']:.1f} s (load {r['load_before']})",
+                      flush=True)
         # the best round of each set-up (least disturbed by the other processes on the machine)
         runs = {n: dict(min(rs, key=lambda r: r["wall_s"])) for n, rs in rounds.items()}
         report["rounds"] = rounds
@@ -371,20 +418,31 @@ def main(argv=None) -> int:
             r["cold_efficiency"] = r1["cold_wall_s"] / (r["workers"] * r["cold_wall_s"])
             r["per_case_s"] = r["wall_s"] * r["workers"] / max(1, r["cases"])
         report["runs"] = runs
+        b1 = min(r["wall_s"] for r in bare["bare_1"])
+        b2 = min(r["wall_s"] for r in bare["bare_2"])
+        report["bare_processes"] = {"rounds": bare, "wall_1_s": b1, "wall_2_s": b2,
+                                    "efficiency": b1 / (2 * b2)}
+        for r in runs.values():
+            r["relative_to_bare"] = r["efficiency"] / report["bare_processes"]["efficiency"] \
+                if r["workers"] == 2 else 1.0
     report["memory"] = memory_scaling([100, 1000, 3000])
 
     # ------------------------------------------------------------------------------ the table
     print()
     print(f"{'run':<10s}{'wall s':>9s}{'cold s':>9s}{'eff.':>7s}{'cold eff.':>11s}"
           f"{'start+warm s':>14s}{'slots busy':>12s}{'CPU share':>11s}{'CPU eff.':>10s}"
-          f"{'same numbers':>14s}")
+          f"{'vs bare':>9s}{'same numbers':>14s}")
     targets = {"local_1": "", "local_2": ">= 0.90", "dask_2": ">= 0.85"}
     for name, r in report["runs"].items():
         print(f"{name:<10s}{r['wall_s']:9.1f}{r['cold_wall_s']:9.1f}{r['efficiency']:7.2f}"
               f"{r['cold_efficiency']:11.2f}{r['startup_and_warm_s']:14.1f}"
               f"{r['slot_utilisation']:12.2f}{r['cpu_share_in_cases']:11.2f}"
-              f"{r['cpu_based_efficiency']:10.2f}"
+              f"{r['cpu_based_efficiency']:10.2f}{r['relative_to_bare']:9.2f}"
               f"{str(report['identical_results'][name]):>14s}   target {targets[name] or '-'}")
+    bp = report["bare_processes"]
+    print(f"bare processes (no runner, static split, same cases): 1 process {bp['wall_1_s']:.1f} s, "
+          f"2 processes {bp['wall_2_s']:.1f} s: the machine allows an efficiency of "
+          f"{bp['efficiency']:.2f}; 'vs bare' = a set-up's efficiency / that")
     busy = report["runs"]["local_1"]["cpu_share_in_cases"] < 0.9
     report["machine_busy"] = busy
     if busy:
