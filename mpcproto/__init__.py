@@ -6,7 +6,8 @@ Operating points and linear models (layer 2)
     OperatingPoint, LinearModel, DiscreteLinearModel, linearize, rga,
     steady_states, steady_state, solve_targets, TargetResult
 Open-loop tests (layer 2)
-    open_loop_test, plot_response_test, linearity_sweep, ResponseTest, fit_step_response, StepFit
+    open_loop_test, plot_response_test, linearity_sweep, ResponseTest, fit_step_response, StepFit,
+    step_model_response
 Built-in models (layer 1)
     models, make_model, available_models, transfer_matrix_model, TransferElement
 Controller protocol (layer 3)
@@ -43,6 +44,7 @@ from .linear import LinearModel, DiscreteLinearModel, linearize, rga
 from .control.base import Controller, Measurement, Targets, ControlOutput
 from .responses import (
     ResponseTest, open_loop_test, plot_response_test, linearity_sweep, StepFit, fit_step_response,
+    step_model_response,
 )
 from . import models
 from .models import TransferElement, transfer_matrix_model
@@ -81,7 +83,7 @@ __all__ = [
     "Controller", "Measurement", "Targets", "ControlOutput",
     "TargetResult", "steady_states", "steady_state", "solve_targets",
     "ResponseTest", "open_loop_test", "plot_response_test", "linearity_sweep",
-    "StepFit", "fit_step_response",
+    "StepFit", "fit_step_response", "step_model_response",
     "models", "make_model", "available_models", "transfer_matrix_model", "TransferElement",
     "Trajectory", "Signal", "signal_from_spec", "Instrument", "Actuator", "Fault",
     "instrument_from_spec", "actuator_from_spec", "fault_from_spec", "Plant", "ClosedLoop",

@@ -2,9 +2,10 @@ r"""PID tuning from a step test: fit a low-order model, then apply a published r
 
 1. :func:`step_test` moves one MV of the NONLINEAR model by a step and records every CV
    (:func:`mpcproto.responses.open_loop_test`, optionally with measurement noise).
-2. :func:`fit_fopdt` / :func:`fit_sopdt` / :func:`fit_integrating` fit, by least squares
-   (``scipy.optimize.least_squares``), a first- or second-order-plus-dead-time model or an
-   integrator with dead time to the response.
+2. :func:`fit_fopdt` / :func:`fit_sopdt` / :func:`fit_integrating` check the shape of the
+   response (noise, ramp, inverse response) and fit, by least squares
+   (:func:`mpcproto.responses.fit_step_response`, the package's one step-response fitter), a
+   first- or second-order-plus-dead-time model or an integrator with dead time to it.
 3. A rule turns the fitted :class:`ProcessFit` into :class:`mpcproto.control.pid.PIDLoop` settings
    (ideal form ``K (1 + 1/(Ti s) + Td s)``):
 
@@ -49,7 +50,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy.optimize import brentq, least_squares
+from scipy.optimize import brentq
 
 from ..exceptions import SettingsError
 from ..model import suggest
@@ -114,16 +115,10 @@ class ProcessFit:
 
     def response(self, t: np.ndarray) -> np.ndarray:
         """Unit-step response (CV change per unit MV step applied at t = 0)."""
-        s = np.clip(np.asarray(t, float) - self.dead_time, 0.0, None)
-        k = self.gain
-        if self.kind == "fopdt":
-            return k * (1.0 - np.exp(-s / self.time_constants[0]))
-        if self.kind == "integrating":
-            return k * s
-        t1, t2 = self.time_constants
-        if abs(t1 - t2) < 1e-9 * t1:
-            t2 = t1 * (1 - 1e-6)
-        return k * (1.0 - (t1 * np.exp(-s / t1) - t2 * np.exp(-s / t2)) / (t1 - t2))
+        from ..responses import step_model_response
+
+        return step_model_response(t, self.gain, self.time_constants, self.dead_time,
+                                   integrating=self.kind == "integrating")
 
     def frequency_response(self, w: np.ndarray) -> np.ndarray:
         """G(jw)."""
@@ -219,8 +214,8 @@ def _prep(t, y, at, size, y0, what):
         before = y[t < at]
         y0 = float(before.mean()) if before.size else float(y[0])
     after = t >= at
-    if after.sum() < 4:
-        raise SettingsError(f"{what}: fewer than 4 samples after the step at t={at:g}.")
+    if after.sum() < 5:
+        raise SettingsError(f"{what}: fewer than 5 samples after the step at t={at:g}.")
     return t[after] - at, (y[after] - y0) / size, y0
 
 
@@ -255,80 +250,44 @@ def _shape_checks(s, r, what, allow_integrating=False):
     return final, noise, inverse
 
 
+def _fit(kind: str, t: Sequence[float], y: Sequence[float], at: float, size: float,
+         y0: float | None, cv: str, mv: str) -> ProcessFit:
+    """Shape checks here; the least squares is :func:`mpcproto.responses.fit_step_response`."""
+    from ..responses import fit_step_response
+
+    what = f"fit_{kind}({cv}<-{mv})" if cv else f"fit_{kind}"
+    s, r, _ = _prep(t, y, at, size, y0, what)
+    _, _, inverse = _shape_checks(s, r, what, allow_integrating=kind == "integrating")
+    if kind == "integrating" and np.polyfit(s[s.size // 2:], r[s.size // 2:], 1)[0] == 0:
+        raise SettingsError(f"{what}: the response has no slope; it is not integrating.")
+    # r is the response per unit step measured from y0 at times since the step
+    f = fit_step_response(s, r, size=1.0, t_step=0.0, y0=0.0, kind=kind, what=what)
+    return ProcessFit(kind, f.gain, f.time_constants, f.dead_time, rmse=f.rms_error * abs(size),
+                      inverse_response=inverse, cv=cv, mv=mv)
+
+
 def fit_fopdt(t: Sequence[float], y: Sequence[float], *, at: float, size: float,
               y0: float | None = None, cv: str = "", mv: str = "") -> ProcessFit:
-    """Least-squares FOPDT fit of a step response (step of *size* at time *at*)."""
-    what = f"fit_fopdt({cv}<-{mv})" if cv else "fit_fopdt"
-    s, r, _ = _prep(t, y, at, size, y0, what)
-    final, noise, inverse = _shape_checks(s, r, what)
-    k0 = final
-    frac = r / k0
-    i63 = np.flatnonzero(frac >= 0.632)
-    i05 = np.flatnonzero(frac >= 0.05)
-    th0 = float(s[i05[0]]) if i05.size else 0.0
-    tau0 = max(float(s[i63[0]]) - th0, s[1] - s[0]) if i63.size else s[-1] / 3
-    x0 = [k0, math.log(tau0), max(th0 * 0.8, 0.0)]
+    """Least-squares FOPDT fit of a step response (step of *size* at time *at*).
 
-    def res(p):
-        return ProcessFit.fopdt(p[0], math.exp(p[1]), p[2]).response(s) - r
-
-    sol = least_squares(res, x0, bounds=([-np.inf, -30, 0.0], [np.inf, 30, s[-1]]),
-                        x_scale=[abs(k0), 1.0, max(tau0, s[1] - s[0])])
-    # the dead time enters non-smoothly: polish from a few starts and keep the best
-    for th in (0.0, th0, 0.5 * th0 + 0.5 * sol.x[2]):
-        alt = least_squares(res, [sol.x[0], sol.x[1], th], bounds=([-np.inf, -30, 0.0], [np.inf, 30, s[-1]]),
-                            x_scale=[abs(k0), 1.0, max(tau0, s[1] - s[0])])
-        if alt.cost < sol.cost:
-            sol = alt
-    k, tau, th = sol.x[0], math.exp(sol.x[1]), sol.x[2]
-    rmse = float(math.sqrt(2 * sol.cost / s.size)) * abs(size)
-    return ProcessFit.fopdt(k, tau, th, rmse=rmse, inverse_response=inverse, cv=cv, mv=mv)
+    Refuses a response that is still ramping at the end (use :func:`fit_integrating`) or that
+    does not rise above the noise; flags an inverse response.  The fit itself is
+    :func:`mpcproto.responses.fit_step_response`.
+    """
+    return _fit("fopdt", t, y, at, size, y0, cv, mv)
 
 
 def fit_sopdt(t: Sequence[float], y: Sequence[float], *, at: float, size: float,
               y0: float | None = None, cv: str = "", mv: str = "") -> ProcessFit:
-    """Least-squares SOPDT fit (two real time constants) of a step response."""
-    what = f"fit_sopdt({cv}<-{mv})" if cv else "fit_sopdt"
-    first = fit_fopdt(t, y, at=at, size=size, y0=y0, cv=cv, mv=mv)
-    s, r, _ = _prep(t, y, at, size, y0, what)
-    k0, (tau,), th = first.gain, first.time_constants, first.dead_time
-    best = None
-    for split in (0.5, 0.2, 0.05):
-        x0 = [k0, math.log(tau * (1 - split) + 1e-9), math.log(tau * split + 1e-9) if split else -5,
-              th]
-
-        def res(p):
-            return ProcessFit.sopdt(p[0], math.exp(p[1]), math.exp(p[2]), p[3]).response(s) - r
-
-        sol = least_squares(res, x0, bounds=([-np.inf, -30, -30, 0.0], [np.inf, 30, 30, s[-1]]),
-                            x_scale=[abs(k0), 1.0, 1.0, max(tau, s[1] - s[0])])
-        if best is None or sol.cost < best.cost:
-            best = sol
-    k, t1, t2, th = best.x[0], math.exp(best.x[1]), math.exp(best.x[2]), best.x[3]
-    rmse = float(math.sqrt(2 * best.cost / s.size)) * abs(size)
-    return ProcessFit.sopdt(k, t1, t2, th, rmse=rmse, inverse_response=first.inverse_response,
-                            cv=cv, mv=mv)
+    """Least-squares SOPDT fit (two real time constants) of a step response (see
+    :func:`fit_fopdt`)."""
+    return _fit("sopdt", t, y, at, size, y0, cv, mv)
 
 
 def fit_integrating(t: Sequence[float], y: Sequence[float], *, at: float, size: float,
                     y0: float | None = None, cv: str = "", mv: str = "") -> ProcessFit:
     """Least-squares fit of ``k' e^{-theta s}/s`` (slope gain and dead time) to a ramp response."""
-    what = f"fit_integrating({cv}<-{mv})" if cv else "fit_integrating"
-    s, r, _ = _prep(t, y, at, size, y0, what)
-    _, noise, inverse = _shape_checks(s, r, what, allow_integrating=True)
-    slope0 = np.polyfit(s[s.size // 2:], r[s.size // 2:], 1)
-    k0 = float(slope0[0])
-    if k0 == 0:
-        raise SettingsError(f"{what}: the response has no slope; it is not integrating.")
-    th0 = max(0.0, float(-slope0[1] / k0))
-
-    def res(p):
-        return ProcessFit.integrating(p[0], p[1]).response(s) - r
-
-    sol = least_squares(res, [k0, min(th0, s[-1] * 0.9)], bounds=([-np.inf, 0.0], [np.inf, s[-1]]))
-    rmse = float(math.sqrt(2 * sol.cost / s.size)) * abs(size)
-    return ProcessFit.integrating(sol.x[0], sol.x[1], rmse=rmse, inverse_response=inverse,
-                                  cv=cv, mv=mv)
+    return _fit("integrating", t, y, at, size, y0, cv, mv)
 
 
 def fit_step(data: StepData, cv: str, *, kind: str = "auto") -> ProcessFit:
