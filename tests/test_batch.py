@@ -329,3 +329,10 @@ def test_a_garbled_line_in_the_middle_is_skipped_with_a_warning_and_rerun(tmp_pa
     with pytest.warns(RuntimeWarning, match="line 2"):
         ids = sorted(r["case_id"] for r in load_results(results))
     assert ids == [c.case_id for c in cases] and garbled_id in ids
+
+
+def test_the_package_does_not_import_dask_until_asked():
+    code = ("import sys, mpcproto, mpcproto.cli; mpcproto.cli.build_parser(); "
+            "print(sorted(m for m in ('dask', 'distributed') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
