@@ -103,7 +103,25 @@ class LinearModel:
     cv_names = property(lambda self: self.op.cv_names)
 
     # -- delay-free views (each delayed input folded back onto its source) -----------------
-    def _fold(self, role: str) -> tuple[np.ndarray, np.ndarray]:
+    def folded_inputs(self, role: str = "mv") -> tuple[np.ndarray, np.ndarray]:
+        """Input matrices with every dead time set to zero: ``(B + Bz S, D + Dz S)``.
+
+        Each delayed copy of an MV (``role="mv"``) or DV (``role="dv"``) is folded back onto its
+        source (``S`` selects, per delay, its source column), so ``C (sI - A)^-1 Bf + Df`` is the
+        transfer matrix without its dead times, and at ``s = 0`` the steady-state gain (a dead
+        time does not change a gain).
+
+        Parameters
+        ----------
+        role : {"mv", "dv"}
+
+        Returns
+        -------
+        Bf : ndarray (nx, nu) or (nx, nd)
+        Df : ndarray (ny, nu) or (ny, nd)
+        """
+        if role not in ("mv", "dv"):
+            raise SettingsError(f"LinearModel.folded_inputs(): role must be 'mv' or 'dv'; got {role!r}.")
         n = self.B.shape[1] if role == "mv" else self.Bd.shape[1]
         S = np.zeros((len(self.delays), n))
         for k, (r, i, _) in enumerate(self.delays):
@@ -112,6 +130,8 @@ class LinearModel:
         B0, D0 = (self.B, self.D) if role == "mv" else (self.Bd, self.Dd)
         return B0 + self.Bz @ S, D0 + self.Dz @ S
 
+    _fold = folded_inputs  # former private name, kept for old callers
+
     def gain(self, role: str = "mv") -> np.ndarray:
         """Steady-state gain matrix dy/du (``role="mv"``) or dy/dd (``role="dv"``).
 
@@ -119,7 +139,7 @@ class LinearModel:
         channel that does settle keeps its finite gain even when another part of the unit
         integrates (a level); an integrating channel gives ``inf`` (with the sign of its ramp).
         """
-        Bf, Df = self._fold(role)
+        Bf, Df = self.folded_inputs(role)
         ny, nu = self.C.shape[0], Bf.shape[1]
         K = np.zeros((ny, nu))
         for i in range(ny):
@@ -145,7 +165,7 @@ class LinearModel:
         zeros do not).  A system whose transfer matrix does not have full normal rank has no
         isolated zeros: an empty array is returned.
         """
-        Bf, Df = self._fold("mv")
+        Bf, Df = self.folded_inputs("mv")
         return transmission_zeros(self.A, Bf, self.C, Df)
 
     def rga(self) -> np.ndarray:
@@ -160,7 +180,7 @@ class LinearModel:
         smallest dead time among the paths from this MV to this CV; the rational part folds every
         delayed path onto the same input (exact when one delay applies).
         """
-        Bf, Df = self._fold("mv")
+        Bf, Df = self.folded_inputs("mv")
         ch = _channel(self.A, Bf[:, mv], self.C[cv], Df[cv, mv])
         reach = []
         for k, (r, i, dt) in enumerate(self.delays):
@@ -182,7 +202,7 @@ class LinearModel:
         ``-1/p`` for the real stable poles, largest first; complex poles are listed under ``poles``.
         """
         out = []
-        Bf, Df = self._fold("mv")
+        Bf, Df = self.folded_inputs("mv")
         for i, c in enumerate(self.cv_names):
             for j, m in enumerate(self.mv_names):
                 ch = _channel(self.A, Bf[:, j], self.C[i], Df[i, j])

@@ -287,7 +287,7 @@ def low_frequency_gain(lin: Any, s: float | None = None) -> np.ndarray:
     RGA of ``G(s)`` at a low frequency gives the steady-state pairing information even where
     ``G(0)`` is infinite.  Default ``s``: 1e-4 times the slowest non-zero pole magnitude.
     """
-    Bf, Df = lin._fold("mv")
+    Bf, Df = lin.folded_inputs("mv")
     A, C = lin.A, lin.C
     if s is None:
         mags = np.abs(np.linalg.eigvals(A)) if A.size else np.zeros(0)
