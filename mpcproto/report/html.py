@@ -30,7 +30,7 @@ from pathlib import Path
 from typing import Any
 
 from .baseline import BaselineComparison
-from .summary import case_verdict, criteria_of, margin, utilisation
+from .summary import ABSOLUTE_CHECKS, case_verdict, criteria_of, margin, utilisation
 
 __all__ = ["write_html_report", "SAFETY_CAUTION", "sort_worst_first", "png_data_uri"]
 
@@ -75,6 +75,20 @@ def _worst_criterion(rec: Mapping[str, Any]) -> tuple[float, str, Mapping[str, A
         if math.isnan(best[0]) or u > best[0]:
             best = (u, ctl, cr)
     return best
+
+
+def _is_absolute(cr: Mapping[str, Any]) -> bool:
+    chk = cr.get("check") if isinstance(cr.get("check"), str) else str(cr.get("name", "")).split(":")[0]
+    return chk in ABSOLUTE_CHECKS
+
+
+def _share(u: float) -> str:
+    """A share of the limit for a table cell ("failed" where no ratio exists)."""
+    if math.isnan(u):
+        return "&ndash;"
+    if math.isinf(u):
+        return "failed"
+    return f"{100 * u:.0f} %"
 
 
 def sort_worst_first(records: Iterable[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
@@ -149,6 +163,8 @@ def _chart_utilisation(scen: str, recs: Sequence[Mapping[str, Any]], max_rows: i
         if case_verdict(rec) == "error":
             continue
         for ctl, cr in criteria_of(rec):
+            if _is_absolute(cr):   # no ratio for a level check: shown against the parameters
+                continue
             u = utilisation(cr)
             if math.isnan(u):
                 continue
@@ -379,7 +395,7 @@ def _case_table(recs: Sequence[Mapping[str, Any]], max_rows: int, linked: int = 
         else:
             crit_cell = _e((f"{ctl}: " if ctl else "") + str(cr.get("name") or "criterion"))
             val, lim = _num(cr.get("value")), _num(cr.get("limit"))
-            share = "&infin;" if math.isinf(u) else f"{100 * u:.0f} %"
+            share = _share(u)
         cid = _e(rec.get("case_id", ""))
         rows.append(f'<tr class="{v}"><td class="num">{i}</td><td class="id"><a href="#case-{cid}">{cid}</a></td>'
                     if i <= linked else
@@ -440,7 +456,7 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
         for ctl, cr in crit:
             ok = cr.get("passed") is not False
             u = utilisation(cr)
-            share = "&ndash;" if math.isnan(u) else ("&infin;" if math.isinf(u) else f"{100 * u:.0f} %")
+            share = _share(u)
             rows.append(f'<tr><td class="{"mark-ok" if ok else "mark-bad"}">{"pass" if ok else "FAIL"}'
                         f'</td><td>{_e((ctl + ": ") if ctl else "")}{_e(cr.get("name", ""))}</td>'
                         f'<td class="num">{_num(cr.get("value"))}</td>'
@@ -538,7 +554,7 @@ def write_html_report(records: Iterable[Mapping[str, Any]], path: str | os.PathL
               if not math.isnan(u)]
         el = sorted(float(r["elapsed_s"]) for r in scen_recs[s]
                     if isinstance(r.get("elapsed_s"), (int, float)))
-        worst = ("&infin;" if math.isinf(max(us)) else f"{100 * max(us):.0f} %") if us else "&ndash;"
+        worst = _share(max(us)) if us else "&ndash;"
         med = f"{el[len(el) // 2]:.2f} s" if el else "&ndash;"
         rows.append(f"<tr><td>{_e(s)}</td><td class='num'>{sum(c.values())}</td>"
                     f"<td class='num'>{c['passed']}</td><td class='num'>{c['failed']}</td>"
@@ -576,7 +592,9 @@ def write_html_report(records: Iterable[Mapping[str, Any]], path: str | os.PathL
             png = _chart_utilisation(s, rs)
             if png:
                 figs.append(_img(png, f"criterion use, {s}",
-                                 "Each dot is one case; green within the limit, orange beyond it."))
+                                 "Each dot is one case; green within the limit, orange beyond it. "
+                                 "Checks on the level of a variable (highest or lowest value) have "
+                                 "no ratio: their margins are in the case tables."))
             png = _chart_parameters(s, rs)
             if png:
                 figs.append(_img(png, f"criteria against parameters, {s}",
