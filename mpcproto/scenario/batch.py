@@ -47,7 +47,7 @@ from typing import Any, TextIO
 
 from ..exceptions import SettingsError
 from ..report.summary import case_verdict as verdict
-from .executors import executor_slots, local_pool
+from .executors import default_workers, executor_slots, local_pool
 
 __all__ = ["run_batch", "BatchOutcome", "iter_results", "load_results", "verdict", "case_id_of",
            "case_fingerprint",
@@ -763,7 +763,7 @@ def _cmd_batch(args) -> int:
             where = f"Dask scheduler {args.scheduler}"
         else:
             outcome = run_batch(cases, out_dir, workers=args.workers, resume=args.resume)
-            where = f"{args.workers or 'all'} local worker(s)"
+            where = f"{args.workers or default_workers()} local worker process(es)"
     except KeyboardInterrupt:
         done = sum(1 for _ in iter_results(out_dir / RESULTS_FILE)) \
             if (out_dir / RESULTS_FILE).exists() else 0
