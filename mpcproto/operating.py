@@ -108,6 +108,8 @@ class OperatingPoint:
         p = model.p
         xdot = model.rhs(x, u, d, z, p)
         A = np.asarray(model.jac_(x, u, d, z, p)[0], float)
+        if not np.all(np.isfinite(A)):
+            raise OperatingPointError(_non_finite_message(model, A, p))
         ev = np.linalg.eigvals(A) if A.size else np.zeros(0, complex)
         return cls(
             model=model.name, x=x, u=u, d=d, y=model.output(x, u, d, z, p), p=p,
@@ -119,6 +121,21 @@ class OperatingPoint:
 
 # ---------------------------------------------------------------------------------------------
 # helpers
+
+
+def _non_finite_message(model, A: np.ndarray, p: np.ndarray) -> str:
+    """Name the non-finite Jacobian entries d(dx_i/dt)/dx_j and any extreme parameter values."""
+    names = list(model.state_names)
+    bad = np.argwhere(~np.isfinite(A))
+    shown = [f"d(d{names[i]}/dt)/d({names[j]}) = {A[i, j]:g}" for i, j in bad[:6]]
+    more = f" and {len(bad) - 6} more" if len(bad) > 6 else ""
+    pnames = list(model.names("parameter"))
+    extreme = [f"{n} = {v:g}" for n, v in zip(pnames, np.asarray(p, float).reshape(-1))
+               if not math.isfinite(v) or abs(v) > 1e100]
+    hint = (f"; parameters with extreme values: {', '.join(extreme)}" if extreme else "")
+    return (f"OperatingPoint.at(): model '{model.name}' has non-finite Jacobian entries at this "
+            f"point (expected finite derivatives; found {', '.join(shown)}{more}){hint}. Check the "
+            f"model's parameter values and the state, MV and DV values of the point.")
 
 
 def _require(model, what: str) -> None:

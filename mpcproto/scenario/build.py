@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 import scipy.linalg as sla
 
-from ..exceptions import MpcprotoError, ScenarioError
+from ..exceptions import MpcprotoError, OperatingPointError, ScenarioError
 from ..model import Model, suggest
 from .schema import Scenario
 
@@ -160,13 +160,11 @@ def operating_point(scn: Scenario, model: Model | None = None):
     except ScenarioError:
         raise
     except MpcprotoError as e:
-        raise ScenarioError(str(e), file=scn.file, key="operating_point") from None
-    except np.linalg.LinAlgError as e:
-        # non-finite derivatives at the point found (absurd parameter values)
-        raise ScenarioError(
-            f"expected a steady state where model '{model.name}' has finite derivatives; found "
-            f"non-finite values ({e}). Check the parameter values in [plant] and "
-            f"[controller_model].", file=scn.file, key="operating_point") from None
+        # includes OperatingPointError for non-finite derivatives (absurd parameter values):
+        # its message names the model, the entries and the extreme parameters
+        hint = (" Parameter values come from [plant] and [controller_model]."
+                if isinstance(e, OperatingPointError) and "non-finite" in str(e) else "")
+        raise ScenarioError(str(e) + hint, file=scn.file, key="operating_point") from None
 
 
 def _pick(scn: Scenario, found: list, pick: str, xg: np.ndarray | None):
