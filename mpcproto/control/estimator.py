@@ -66,7 +66,15 @@ class DisturbanceEstimator:
         Disturbance model per CV (a single string applies to every CV).  ``"auto"`` (default):
         ``"input"`` for a CV that integrates (a level), ``"output"`` otherwise.
     state_noise : float
-        Process noise variance on every plant state (delay states get none: they are exact).
+        Process noise variance on every plant state, per squared ``state_scale`` (delay states
+        get none: they are exact).
+    state_scale : array_like (nx,) or None
+        Size of one unit of each state (the state noise of state *i* is
+        ``state_noise * state_scale[i]**2``).  None: 1 for every state (engineering units).  A
+        single variance in engineering units is wrong for a unit whose states differ in size
+        (a mass fraction of 0.02 next to a temperature of 350 K): the small state then gets a
+        noise of its own size per sample and the filter explains every CV error as a state jump
+        that the model lets decay, instead of as a lasting disturbance (no integral action).
     disturbance_noise : mapping of CV name to float, or float
         Variance of the per-sample change of each disturbance state: larger = faster integral action.
     measurement_noise : mapping of CV name to float, or float
@@ -83,8 +91,10 @@ class DisturbanceEstimator:
 
     def __init__(self, dmodel, *, disturbance: Mapping[str, str] | str = "auto",
                  state_noise: float = 1e-4, disturbance_noise: Mapping[str, float] | float = 1e-2,
-                 measurement_noise: Mapping[str, float] | float = 1e-3, history: int = 60):
+                 measurement_noise: Mapping[str, float] | float = 1e-3, history: int = 60,
+                 state_scale=None):
         self.dmodel = dmodel
+        self.state_scale = state_scale
         self.disturbance = disturbance
         self.state_noise = state_noise
         self.disturbance_noise = disturbance_noise
@@ -176,7 +186,14 @@ class DisturbanceEstimator:
         Ca = np.hstack([C, Cw])
         Q = np.zeros((na, na))
         npl = m.n_plant_states
-        Q[np.arange(npl), np.arange(npl)] = qx
+        if self.state_scale is None:
+            sxs = np.ones(nx)
+        else:
+            sxs = np.asarray(self.state_scale, float).reshape(-1)
+            if sxs.shape != (nx,) or not np.all(np.isfinite(sxs)) or np.any(sxs <= 0):
+                raise SettingsError(f"DisturbanceEstimator: 'state_scale' must hold {nx} finite "
+                                    f"numbers > 0 (one per state); got {self.state_scale!r}.")
+        Q[np.arange(npl), np.arange(npl)] = qx * sxs[:npl] ** 2
         Q[nx + np.arange(ny), nx + np.arange(ny)] = qw
         R = np.diag(rv)
         try:

@@ -83,6 +83,10 @@ MV_KEYS: dict[str, Any] = {
 #: per-DV keys and defaults
 DV_KEYS: dict[str, Any] = {"feedforward": True}
 
+#: in the steady target the MV resting values only break ties: their weights are this much smaller
+#: than in the dynamic problem, so a reachable CV setpoint is never traded for an MV's rest value
+_TARGET_REST_FACTOR = 1e-4
+
 SOLVERS = ("osqp", "clarabel")
 FALLBACKS = ("shift", "hold")
 _OSQP_OPTIONS = ("eps_abs", "eps_rel", "eps_prim_inf", "eps_dual_inf", "max_iter", "polishing",
@@ -427,19 +431,20 @@ class PredictiveController:
                       np.asarray(m.D, float))
         nx, nu, ny = A.shape[0], B.shape[1], C.shape[0]
         N, M = r["N"], r["M"]
+        # -- scaling: the QPs work in scaled deviations (one MV/CV scale = 1; states scaled by how
+        # far the MVs move them within the horizon), so OSQP sees a well-balanced problem
+        su, sy = r["mv_scale"], r["cv_scale"]
+        sx = self._state_scales(A, B, C, su, sy, min(N, 50))
+        # the estimator's state noise is per scaled state too (see DisturbanceEstimator)
         self.estimator_ = DisturbanceEstimator(
             m, disturbance=r["disturbance"], state_noise=float(self.state_noise),
             disturbance_noise=r["dist_noise"], measurement_noise=r["meas_noise"],
-            history=int(self.history)).build()
+            history=int(self.history), state_scale=sx).build()
         Bw, Cw = self.estimator_.Bw_, self.estimator_.Cw_
         opts = r["solver_options"]
         osqp_opts = dict(opts) if self.solver == "osqp" else {}
         Bd, Dd = np.asarray(m.Bd, float), np.asarray(m.Dd, float)
         nd = m.nd
-        # -- scaling: the QPs work in scaled deviations (one MV/CV scale = 1; states scaled by how
-        # far the MVs move them within the horizon), so OSQP sees a well-balanced problem
-        su, sy = r["mv_scale"], r["cv_scale"]
-        sx = self._state_scales(A, B, C, su, sy, min(N, 50))
         self.scales_ = {"x": sx, "u": su, "y": sy}
         As = A * (1 / sx)[:, None] * sx[None, :]
         Bs = B * (1 / sx)[:, None] * su[None, :]
@@ -461,7 +466,7 @@ class PredictiveController:
                 A, B, C, D, Bd, Dd, Bw, Cw,
                 band_weight=r["cv_weight"] + 1e-9 / sy ** 2, limit_linear=r["lim_lin"],
                 limit_quadratic=r["lim_quad"],
-                rest_weight=np.maximum(r["rest_weight"], 1e-6 / su ** 2),
+                rest_weight=np.maximum(_TARGET_REST_FACTOR * r["rest_weight"], 1e-6 / su ** 2),
                 solver_options=osqp_opts, scales=(sx, su, sy)).build()
         else:
             self.target_ = None
