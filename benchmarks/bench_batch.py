@@ -60,7 +60,7 @@ STUDY = """
 [scenario]
 name = "bench_blend"
 sample_time = 10.0
-duration = 3000.0
+duration = {duration}
 seed = 4242
 
 [plant]
@@ -334,6 +334,8 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true", help="8 cases instead of 32 (smoke run)")
     ap.add_argument("--memory-child", type=int, default=None, help=argparse.SUPPRESS)
     ap.add_argument("--skip-dask", action="store_true", help="leave out the Dask LocalCluster")
+    ap.add_argument("--duration", type=float, default=9000.0,
+                    help="simulated seconds per case (Ts = 10 s; default 9000: about 1 s of CPU)")
     ap.add_argument("--rounds", type=int, default=2,
                     help="interleaved repetitions; the best round of each set-up is reported")
     args = ap.parse_args(argv)
@@ -347,13 +349,14 @@ def main(argv=None) -> int:
     draws = 2 if args.quick else 8
     report: dict = {"machine": {"cpus": os.cpu_count(), "python": platform.python_version(),
                                 "platform": platform.platform()},
-                    "workload": "real closed-loop cases (MPC + PID on the blending tank, 3000 s at "
-                                "Ts = 10 s), our own study 'bench_blend'; memory part: cheap CasADi "
-                                "tank integrations"}
+                    "workload": f"real closed-loop cases (MPC + PID on the blending tank, "
+                                f"{args.duration:g} s at Ts = 10 s), our own study 'bench_blend'; "
+                                "memory part: cheap CasADi tank integrations"}
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         study = tmp / "bench_blend.toml"
-        study.write_text(STUDY.replace("{draws}", str(draws)))
+        study.write_text(STUDY.replace("{draws}", str(draws))
+                         .replace("{duration}", f"{float(args.duration):.1f}"))
         scenario = load_scenario(study)
         cases = expand(scenario)
         report["cases"] = len(cases)
