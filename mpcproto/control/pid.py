@@ -121,6 +121,10 @@ def pid_loop_from_spec(spec: Mapping[str, Any] | PIDLoop, *, what: str) -> PIDLo
     for k in ("cv", "mv", "gain"):
         if k not in spec:
             raise SettingsError(f"{what}: a PID loop needs '{k}'; found keys: {', '.join(spec)}.")
+    for k in ("cv", "mv"):
+        if not isinstance(spec[k], str) or not spec[k]:
+            raise SettingsError(f"{what}: '{k}' must be a variable name (a string); found "
+                                f"{spec[k]!r:.60}.")
     kw = dict(spec)
     if kw.get("integral_time") is None:
         kw.pop("integral_time", None)
@@ -131,8 +135,8 @@ def pid_loop_from_spec(spec: Mapping[str, Any] | PIDLoop, *, what: str) -> PIDLo
                 if isinstance(kw[k], bool):
                     raise TypeError
                 kw[k] = float(kw[k])
-            except (TypeError, ValueError):
-                raise SettingsError(f"{what}: '{k}' must be a number; found {spec[k]!r}.") from None
+            except (TypeError, ValueError, OverflowError):
+                raise SettingsError(f"{what}: '{k}' must be a number; found {spec[k]!r:.60}.") from None
     if "on_fresh" in kw and not isinstance(kw["on_fresh"], bool):
         raise SettingsError(f"{what}: 'on_fresh' must be true or false; found {kw['on_fresh']!r}.")
     try:

@@ -52,6 +52,7 @@ from typing import Any
 import numpy as np
 from scipy.optimize import brentq
 
+from .._specs import as_float, choice, shown
 from ..exceptions import SettingsError
 from ..model import suggest
 from .pid import PIDLoop
@@ -470,9 +471,86 @@ _SETTINGS_KEYS = ("loops", "pairs", "rule", "tau_c", "lam", "mode", "step_fracti
                   "derivative_filter", "on_fresh")
 
 
+_RULE_KEYS = {"simc": ("tau_c",), "imc": ("lam", "mode"), "ziegler_nichols": ("mode",)}
+_MODES = ("P", "PI", "PID")
+FIT_CHOICES = ("auto", "fopdt", "sopdt", "integrating")
+
+
 def _per_cv(v: Any, cv: str, what: str, key: str) -> Any:
     if isinstance(v, Mapping):
         return v.get(cv)
+    return v
+
+
+def _check_number(v: Any, where: str, *, low: float, strict: bool, high: float = math.inf) -> float:
+
+    f = as_float(v)
+    ok = f is not None and math.isfinite(f) and (f > low if strict else f >= low) and f <= high
+    if not ok:
+        rel = ">" if strict else ">="
+        rng = f"{rel} {low:g}" + (f" and <= {high:g}" if math.isfinite(high) else "")
+        raise SettingsError(f"{where} must be a finite number {rng}; found {shown(v)}.")
+    return float(f)
+
+
+def _check_per_cv(settings: Mapping[str, Any], key: str, model: Any, what: str, check) -> None:
+    """A number/string for every CV, or a table per CV (``"*"`` = the others)."""
+
+    v = settings[key]
+    if not isinstance(v, Mapping):
+        check(v, f"{what}.{key}")
+        return
+    names = list(getattr(model, "cv_names", ()))
+    for c, x in v.items():
+        if not isinstance(c, str) or (c != "*" and c not in names):
+            raise SettingsError(f"{what}.{key}: {shown(c)} is not a CV of model "
+                                f"'{getattr(model, 'name', '?')}'{suggest(str(c), names)}; expected "
+                                f"one value or a table keyed by CV names ({', '.join(names)} or "
+                                f"'*').")
+        check(x, f"{what}.{key}.{c}")
+
+
+def _check_settings(model: Any, settings: Mapping[str, Any], what: str) -> None:
+    """Types and ranges of every key of :func:`pid_from_settings` (before any step test)."""
+
+    rule = choice(settings.get("rule", "simc"), RULES, what=what, key="rule", noun="rule")
+    for key in ("tau_c", "lam", "mode"):
+        if key in settings and key not in _RULE_KEYS[rule]:
+            users = [r for r, ks in _RULE_KEYS.items() if key in ks]
+            raise SettingsError(f"{what}.{key}: applies to rule {' / '.join(users)}, but the rule "
+                                f"is '{rule}'; remove '{key}' or set rule = '{users[0]}'.")
+    pos = lambda v, w: _check_number(v, w, low=0.0, strict=True)  # noqa: E731
+    if "tau_c" in settings:
+        _check_per_cv(settings, "tau_c", model, what, pos)
+    if "lam" in settings:
+        _check_per_cv(settings, "lam", model, what, pos)
+    if "mode" in settings:
+        _check_per_cv(settings, "mode", model, what,
+                      lambda v, w: choice(v, _MODES, what=w.rsplit(".", 1)[0], key=w.rsplit(".", 1)[1],
+                                          noun="mode"))
+    choice(settings.get("fit", "auto"), FIT_CHOICES, what=what, key="fit", noun="fit")
+    if "step_fraction" in settings:
+        _check_number(settings["step_fraction"], f"{what}.step_fraction", low=0.0, strict=True,
+                      high=0.5)
+    if settings.get("test_duration") is not None:
+        _check_number(settings["test_duration"], f"{what}.test_duration", low=0.0, strict=True)
+    if "extra_dead_time" in settings:
+        _check_per_cv(settings, "extra_dead_time", model, what,
+                      lambda v, w: _check_number(v, w, low=0.0, strict=False))
+    if "setpoint_weight" in settings:
+        _check_number(settings["setpoint_weight"], f"{what}.setpoint_weight", low=0.0, strict=False,
+                      high=1.0)
+    if "derivative_filter" in settings:
+        _check_number(settings["derivative_filter"], f"{what}.derivative_filter", low=0.0, strict=True)
+    if "on_fresh" in settings and not isinstance(settings["on_fresh"], bool):
+        raise SettingsError(f"{what}.on_fresh: must be true or false; found {shown(settings['on_fresh'])}.")
+
+
+def _name(v: Any, where: str, role: str, names: Sequence[str]) -> str:
+
+    if not isinstance(v, str):
+        raise SettingsError(f"{where}: must be the name of a{'n' if role == 'MV' else ''} {role} "
+                            f"(a string: {', '.join(names) or '...'}); found {shown(v)}.")
     return v
 
 
@@ -563,73 +641,104 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
                        its cycle): a number or a table per CV; added, with half a sample for the
                        hold, to the fitted dead time before the rule is applied
     ``setpoint_weight``, ``derivative_filter``, ``on_fresh``: applied to every tuned loop
+
+    ``tau_c`` belongs to SIMC, ``lam`` to IMC, ``mode`` to IMC and Ziegler-Nichols: a key the
+    chosen rule does not use is refused.  Every value is checked (type and range) before any step
+    test runs; a wrong one raises :class:`SettingsError` starting with *what* and the key path.
     """
     from .pid import PIDController, pid_loop_from_spec, suggest_pairing
 
     if not isinstance(settings, Mapping):
-        raise SettingsError(f"{what}: PID settings must be a table; found {settings!r}.")
+        raise SettingsError(f"{what}: PID settings must be a table; found {shown(settings)}.")
     for k in settings:
         if k not in _SETTINGS_KEYS:
-            raise SettingsError(f"{what}: unknown key '{k}'{suggest(str(k), _SETTINGS_KEYS)}; "
+            raise SettingsError(f"{what}: unknown key {shown(k)}{suggest(str(k), _SETTINGS_KEYS)}; "
                                 f"allowed keys: {', '.join(_SETTINGS_KEYS)}.")
+    cv_names = list(getattr(model, "cv_names", ()))
+    mv_names = list(getattr(model, "mv_names", ()))
     given: dict[tuple[str, str], PIDLoop] = {}
     to_tune: list[tuple[str, str]] = []
     loop_specs = settings.get("loops")
     if loop_specs is not None:
-        if not isinstance(loop_specs, (list, tuple)):
-            raise SettingsError(f"{what}.loops: expected a list of loop tables; found {loop_specs!r}.")
+        if not isinstance(loop_specs, (list, tuple)) or not loop_specs:
+            raise SettingsError(f"{what}.loops: expected a non-empty list of loop tables; found "
+                                f"{shown(loop_specs)}.")
         for i, spec in enumerate(loop_specs):
-            if isinstance(spec, Mapping) and "gain" not in spec:
-                for k in ("cv", "mv"):
-                    if k not in spec:
-                        raise SettingsError(f"{what}.loops[{i}]: needs '{k}'.")
+            w = f"{what}.loops[{i}]"
+            if isinstance(spec, PIDLoop):
+                given[(spec.cv, spec.mv)] = spec
+                continue
+            if not isinstance(spec, Mapping):
+                raise SettingsError(f"{w}: expected a loop table (cv, mv and gain or none to tune "
+                                    f"it); found {shown(spec)}.")
+            for k, names, role in (("cv", cv_names, "CV"), ("mv", mv_names, "MV")):
+                if k not in spec:
+                    raise SettingsError(f"{w}: needs '{k}'; found keys: "
+                                        f"{', '.join(map(str, spec)) or '(none)'}.")
+                _name(spec[k], f"{w}.{k}", role, names)
+            if "gain" not in spec:
+                for k in spec:
+                    if k not in ("cv", "mv"):
+                        raise SettingsError(
+                            f"{w}: a loop without 'gain' is tuned by the rule and takes only cv "
+                            f"and mv; found {shown(k)}. Give 'gain' (and the other settings) or "
+                            f"set them at the top of the PID settings.")
                 to_tune.append((spec["cv"], spec["mv"]))
             else:
-                lp = pid_loop_from_spec(spec, what=f"{what}.loops[{i}]")
+                lp = pid_loop_from_spec(spec, what=w)
                 given[(lp.cv, lp.mv)] = lp
     pairs_spec = settings.get("pairs")
     if pairs_spec is not None:
+        w = f"{what}.pairs"
         if isinstance(pairs_spec, Mapping):
-            pairs = [(str(c), str(m)) for c, m in pairs_spec.items()]
-        elif isinstance(pairs_spec, (list, tuple)) and all(
+            pairs = [(_name(c, f"{w} key", "CV", cv_names), _name(m, f"{w}.{c}", "MV", mv_names))
+                     for c, m in pairs_spec.items()]
+        elif isinstance(pairs_spec, (list, tuple)) and pairs_spec and all(
                 isinstance(p, (list, tuple)) and len(p) == 2 for p in pairs_spec):
-            pairs = [(str(c), str(m)) for c, m in pairs_spec]
+            pairs = [(_name(c, f"{w}[{i}][0]", "CV", cv_names), _name(m, f"{w}[{i}][1]", "MV", mv_names))
+                     for i, (c, m) in enumerate(pairs_spec)]
         else:
-            raise SettingsError(f"{what}.pairs: expected a list of [cv, mv] pairs or a table "
-                                f"{{cv = mv}}; found {pairs_spec!r}.")
+            raise SettingsError(f"{w}: expected a non-empty list of [cv, mv] pairs or a table "
+                                f"{{cv = mv}}; found {shown(pairs_spec)}.")
         to_tune += [p for p in pairs if p not in given and p not in to_tune]
-    elif loop_specs is None:
-        from ..linear import linearize
-
-        to_tune = suggest_pairing(linearize(model, op)).pairs
+    _check_settings(model, settings, what)
     for i, (c, m) in enumerate(to_tune):
-        for v, names, role in ((c, model.cv_names, "CV"), (m, model.mv_names, "MV")):
+        for v, names, role in ((c, cv_names, "CV"), (m, mv_names, "MV")):
             if v not in names:
                 raise SettingsError(f"{what}: pair {i} ({c}, {m}): '{v}' is not a {role} of model "
                                     f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.")
+    if pairs_spec is None and loop_specs is None:
+        from ..linear import linearize
+
+        to_tune = suggest_pairing(linearize(model, op)).pairs
     rule = settings.get("rule", "simc")
     ropts: dict[str, dict[str, Any]] = {}
     for c, _ in to_tune:
         kw: dict[str, Any] = {}
-        for key in ("tau_c", "lam", "mode"):
+        for key in _RULE_KEYS[rule]:
             if key in settings:
                 v = _per_cv(settings[key], c, what, key)
+                if v is None and isinstance(settings[key], Mapping):
+                    v = settings[key].get("*")
                 if v is not None:
                     kw[key] = v
         ropts[c] = kw
     lopts = {k: settings[k] for k in ("setpoint_weight", "derivative_filter", "on_fresh")
              if k in settings}
     tuned: list[PIDLoop] = []
-    if to_tune:
-        ed = settings.get("extra_dead_time", {})
-        if not isinstance(ed, Mapping):
-            ed = {"*": ed}
-        for c in ed:
-            if c != "*" and c not in model.cv_names:
-                raise SettingsError(f"{what}.extra_dead_time: '{c}' is not a CV of model "
-                                    f"'{model.name}'{suggest(str(c), model.cv_names)}.")
-        tuned, _ = tune_pid_loops(model, op, Ts, to_tune, rule=rule, fit=settings.get("fit", "auto"),
-                                  step_fraction=settings.get("step_fraction", 0.05),
-                                  test_duration=settings.get("test_duration"), rule_options=ropts,
-                                  loop_options=lopts, extra_dead_time=ed, what=what)
-    return PIDController.for_model(model, list(given.values()) + tuned)
+    try:
+        if to_tune:
+            ed = settings.get("extra_dead_time", {})
+            if not isinstance(ed, Mapping):
+                ed = {"*": ed}
+            tuned, _ = tune_pid_loops(model, op, Ts, to_tune, rule=rule,
+                                      fit=settings.get("fit", "auto"),
+                                      step_fraction=settings.get("step_fraction", 0.05),
+                                      test_duration=settings.get("test_duration"),
+                                      rule_options=ropts, loop_options=lopts, extra_dead_time=ed,
+                                      what=what)
+        return PIDController.for_model(model, list(given.values()) + tuned)
+    except SettingsError as exc:
+        if str(exc).startswith(what):
+            raise
+        raise SettingsError(f"{what}: {exc}") from None

@@ -49,7 +49,7 @@ from typing import Any
 
 from ..exceptions import SettingsError
 from ..model import suggest
-from .signals import check_keys, number
+from .._specs import check_keys, choice, number, shown
 
 __all__ = ["Instrument", "Actuator", "Fault", "instrument_from_spec", "actuator_from_spec",
            "fault_from_spec", "FAULT_KINDS", "SENSOR_FAULTS", "VALVE_FAULTS"]
@@ -146,7 +146,7 @@ def instrument_from_spec(spec: Mapping[str, Any] | Instrument, *, what: str) -> 
     if isinstance(spec, Instrument):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"{what}: an instrument must be a table/dict; found {spec!r}.")
+        raise SettingsError(f"{what}: an instrument must be a table/dict; found {shown(spec)}.")
     keys = ("noise_std", "bias", "lag", "dead_time", "period")
     check_keys(spec, keys, (), what=what, kind="instrument")
     return Instrument(
@@ -162,7 +162,7 @@ def actuator_from_spec(spec: Mapping[str, Any] | Actuator, *, what: str) -> Actu
     if isinstance(spec, Actuator):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"{what}: an actuator must be a table/dict; found {spec!r}.")
+        raise SettingsError(f"{what}: an actuator must be a table/dict; found {shown(spec)}.")
     check_keys(spec, ("low", "high", "rate"), (), what=what, kind="actuator")
     low = number(spec, "low", what=what, default=-math.inf, allow_inf=True)
     high = number(spec, "high", what=what, default=math.inf, allow_inf=True)
@@ -191,19 +191,15 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
     if isinstance(spec, Fault):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"{what}: a fault must be a table/dict with a 'kind'; found {spec!r}.")
-    kind = spec.get("kind")
-    if kind not in FAULT_KINDS:
-        raise SettingsError(
-            f"{what}: unknown fault kind {kind!r}{suggest(str(kind), FAULT_KINDS)}; "
-            f"expected one of: {', '.join(FAULT_KINDS)}.")
+        raise SettingsError(f"{what}: a fault must be a table/dict with a 'kind'; found {shown(spec)}.")
+    kind = choice(spec.get("kind"), FAULT_KINDS, what=what, key="kind", noun="fault kind")
     req, opt = _FAULT_EXTRA[kind]
     body = {k: v for k, v in spec.items() if k != "kind"}
     check_keys(body, ("variable", "at", "until") + req + opt, ("variable", "at") + req,
                what=what, kind=kind)
     var = body["variable"]
     if not isinstance(var, str) or not var:
-        raise SettingsError(f"{what}: 'variable' must be a variable name; found {var!r}.")
+        raise SettingsError(f"{what}: 'variable' must be a variable name (a string); found {shown(var)}.")
     w = f"{what} ({kind} on '{var}')"
     at = number(body, "at", what=w)
     until = number(body, "until", what=w, default=None)

@@ -42,12 +42,14 @@ from __future__ import annotations
 
 import csv
 import math
+import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from .._specs import as_float, check_keys, choice, number, shown
 from ..exceptions import SettingsError
 from ..model import suggest
 
@@ -248,40 +250,6 @@ _KEYS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
 SIGNAL_KINDS = tuple(_KEYS)
 
 
-def check_keys(spec: Mapping[str, Any], allowed: Sequence[str], required: Sequence[str], *,
-               what: str, kind: str) -> None:
-    """Raise :class:`SettingsError` for a missing or unknown key of a spec dict."""
-    for k in spec:
-        if k not in allowed:
-            raise SettingsError(
-                f"{what}: unknown key '{k}' for kind '{kind}'{suggest(str(k), list(allowed))}; "
-                f"allowed keys: {', '.join(allowed)}.")
-    for k in required:
-        if k not in spec:
-            raise SettingsError(
-                f"{what}: kind '{kind}' needs the key '{k}'; found keys: {', '.join(map(str, spec))}.")
-
-
-def number(spec: Mapping[str, Any], key: str, *, what: str, low: float = -math.inf,
-           strict_low: bool = False, default: Any = None, allow_inf: bool = False) -> float:
-    """Read ``spec[key]`` as a float in range, or raise a :class:`SettingsError` naming it."""
-    if key not in spec:
-        return default
-    v = spec[key]
-    try:
-        if isinstance(v, bool):
-            raise TypeError
-        f = float(v)
-    except (TypeError, ValueError):
-        raise SettingsError(f"{what}: '{key}' must be a number; found {v!r}.") from None
-    if math.isnan(f) or (math.isinf(f) and not allow_inf):
-        raise SettingsError(f"{what}: '{key}' must be a finite number; found {v!r}.")
-    if (f <= low) if strict_low else (f < low):
-        rel = ">" if strict_low else ">="
-        raise SettingsError(f"{what}: '{key}' must be {rel} {low:g}; found {f:g}.")
-    return f
-
-
 def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
                      base_dir: str | Path | None = None) -> Signal:
     """Build a :class:`Signal` from a plain spec (dict, list of dicts, number or Signal).
@@ -305,10 +273,11 @@ def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
     """
     if isinstance(spec, Signal):
         return spec
-    if isinstance(spec, (int, float)) and not isinstance(spec, bool):
-        if not math.isfinite(float(spec)):
-            raise SettingsError(f"{what}: a constant signal must be finite; found {spec!r}.")
-        return Constant(float(spec))
+    f = as_float(spec)
+    if f is not None:
+        if not math.isfinite(f):
+            raise SettingsError(f"{what}: a constant signal must be finite; found {shown(spec)}.")
+        return Constant(f)
     if isinstance(spec, (list, tuple)):
         if not spec:
             raise SettingsError(f"{what}: an empty list is not a signal; give at least one spec.")
@@ -322,12 +291,8 @@ def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
     if not isinstance(spec, Mapping):
         raise SettingsError(
             f"{what}: a signal must be a table/dict with a 'kind', a list of them or a number; "
-            f"found {type(spec).__name__} {spec!r}.")
-    kind = spec.get("kind")
-    if kind not in _KEYS:
-        raise SettingsError(
-            f"{what}: unknown signal kind {kind!r}{suggest(str(kind), SIGNAL_KINDS)}; "
-            f"expected one of: {', '.join(SIGNAL_KINDS)}.")
+            f"found {type(spec).__name__} {shown(spec)}.")
+    kind = choice(spec.get("kind"), SIGNAL_KINDS, what=what, key="kind", noun="signal kind")
     req, opt = _KEYS[kind]
     body = {k: v for k, v in spec.items() if k != "kind"}
     check_keys(body, req + opt, req, what=what, kind=kind)
@@ -359,16 +324,13 @@ def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
                 f"high={high:g}.")
         seed = body.get("seed")
         if seed is not None and (isinstance(seed, bool) or not isinstance(seed, int) or seed < 0):
-            raise SettingsError(f"{w}: 'seed' must be a non-negative integer; found {seed!r}.")
+            raise SettingsError(f"{w}: 'seed' must be a non-negative integer; found {shown(seed)}.")
         return RandomWalk(number(body, "step_std", what=w, low=0.0),
                           number(body, "interval", what=w, low=0.0, strict_low=True),
                           start=number(body, "start", what=w, default=0.0), low=low, high=high,
                           rng=seed if seed is not None else rng, base=base)
-    interp = body.get("interpolation", "linear")
-    if interp not in ("linear", "hold"):
-        raise SettingsError(
-            f"{w}: 'interpolation' must be 'linear' or 'hold'; found {interp!r}"
-            f"{suggest(str(interp), ['linear', 'hold'])}.")
+    interp = choice(body.get("interpolation", "linear"), ("linear", "hold"), what=w,
+                    key="interpolation", noun="interpolation")
     if kind == "table":
         times = _float_list(body["times"], "times", what=w)
         values = _float_list(body["values"], "values", what=w)
@@ -378,7 +340,14 @@ def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
                 f"and {len(values)} values.")
         _check_times(times, what=w, where="'times'")
         return Table(times, values, interpolation=interp, base=base)
-    path = Path(str(body["path"]))
+    if not isinstance(body["path"], (str, os.PathLike)) or not str(body["path"]):
+        raise SettingsError(f"{w}: 'path' must be a file name (a string); found {shown(body['path'])}.")
+    for key in ("time_column", "value_column"):
+        c = body.get(key, 0)
+        if isinstance(c, bool) or not isinstance(c, (int, str)):
+            raise SettingsError(f"{w}: '{key}' must be a column name (a string) or a 0-based "
+                                f"index (an integer); found {shown(c)}.")
+    path = Path(body["path"])
     if base_dir is not None and not path.is_absolute():
         path = Path(base_dir) / path
     max_gap = number(body, "max_gap", what=w, low=0.0, strict_low=True)
@@ -390,17 +359,14 @@ def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
 
 def _float_list(v: Any, key: str, *, what: str) -> list[float]:
     if isinstance(v, (str, bytes)) or not isinstance(v, Sequence):
-        raise SettingsError(f"{what}: '{key}' must be a list of numbers; found {v!r}.")
+        raise SettingsError(f"{what}: '{key}' must be a list of numbers; found {shown(v)}.")
     out = []
     for i, x in enumerate(v):
-        try:
-            if isinstance(x, bool):
-                raise TypeError
-            f = float(x)
-        except (TypeError, ValueError):
-            raise SettingsError(f"{what}: '{key}'[{i}] must be a number; found {x!r}.") from None
+        f = as_float(x)
+        if f is None:
+            raise SettingsError(f"{what}: '{key}'[{i}] must be a number; found {shown(x)}.")
         if not math.isfinite(f):
-            raise SettingsError(f"{what}: '{key}'[{i}] must be finite; found {x!r}.")
+            raise SettingsError(f"{what}: '{key}'[{i}] must be finite; found {shown(x)}.")
         out.append(f)
     if not out:
         raise SettingsError(f"{what}: '{key}' is empty; give at least one point.")

@@ -1,0 +1,88 @@
+"""Reading plain-dict specs (scenario tables, keyword dicts) with errors that name the key.
+
+Shared by every factory that takes a user spec (signals, instruments, actuators, faults, PID
+settings): each check raises :class:`~mpcproto.exceptions.SettingsError` whose message starts with
+*what* (the key path), says what was expected and shows what was found.  Layer 0: imports nothing
+of the package but the exceptions and :func:`~mpcproto.model.suggest`.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from .exceptions import SettingsError
+from .model import suggest
+
+__all__ = ["shown", "as_float", "choice", "number", "check_keys"]
+
+
+def check_keys(spec: Mapping[str, Any], allowed: Sequence[str], required: Sequence[str], *,
+               what: str, kind: str) -> None:
+    """Raise :class:`SettingsError` for a missing or unknown key of a spec dict."""
+    for k in spec:
+        if k not in allowed:
+            raise SettingsError(
+                f"{what}: unknown key '{k}' for kind '{kind}'{suggest(str(k), list(allowed))}; "
+                f"allowed keys: {', '.join(allowed)}.")
+    for k in required:
+        if k not in spec:
+            raise SettingsError(
+                f"{what}: kind '{kind}' needs the key '{k}'; found keys: {', '.join(map(str, spec))}.")
+
+
+def shown(v: Any, limit: int = 60) -> str:
+    """``repr(v)`` cut to *limit* characters, with its type when that is not obvious."""
+    r = repr(v)
+    if len(r) > limit:
+        r = r[:limit - 3] + "..."
+    if isinstance(v, (list, tuple, dict, Mapping)) or v is None or isinstance(v, bool):
+        return r
+    if isinstance(v, (str, int, float)):
+        return r
+    return f"{type(v).__name__} {r}"
+
+
+def as_float(v: Any) -> float | None:
+    """*v* as a float if it is a real number (not a bool, not a string), else None.
+
+    Integers too large for a float give +-inf (refused later as not finite).
+    """
+    if isinstance(v, bool) or not isinstance(v, numbers.Real):
+        return None
+    try:
+        return float(v)
+    except OverflowError:
+        return math.inf if v > 0 else -math.inf
+    except (TypeError, ValueError):
+        return None
+
+
+def choice(value: Any, options: Sequence[str], *, what: str, key: str, noun: str) -> str:
+    """*value* if it is one of the strings *options*, else a :class:`SettingsError` naming *key*."""
+    if isinstance(value, str) and value in options:
+        return value
+    if isinstance(value, str):
+        raise SettingsError(f"{what}: unknown {noun} {value!r}{suggest(value, list(options))}; "
+                            f"expected one of: {', '.join(options)}.")
+    raise SettingsError(f"{what}: '{key}' must be one of: {', '.join(options)}; found "
+                        f"{shown(value)}.")
+
+
+def number(spec: Mapping[str, Any], key: str, *, what: str, low: float = -math.inf,
+           strict_low: bool = False, default: Any = None, allow_inf: bool = False) -> float:
+    """Read ``spec[key]`` as a float in range, or raise a :class:`SettingsError` naming it."""
+    if key not in spec:
+        return default
+    v = spec[key]
+    f = as_float(v)
+    if f is None:
+        raise SettingsError(f"{what}: '{key}' must be a number; found {shown(v)}.")
+    if math.isnan(f) or (math.isinf(f) and not allow_inf):
+        raise SettingsError(f"{what}: '{key}' must be a finite number; found {shown(v)}.")
+    if (f <= low) if strict_low else (f < low):
+        rel = ">" if strict_low else ">="
+        raise SettingsError(f"{what}: '{key}' must be {rel} {low:g}; found {f:g}.")
+    return f
