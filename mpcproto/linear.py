@@ -140,12 +140,7 @@ class LinearModel:
         integrates (a level); an integrating channel gives ``inf`` (with the sign of its ramp).
         """
         Bf, Df = self.folded_inputs(role)
-        ny, nu = self.C.shape[0], Bf.shape[1]
-        K = np.zeros((ny, nu))
-        for i in range(ny):
-            for j in range(nu):
-                K[i, j] = _channel(self.A, Bf[:, j], self.C[i], Df[i, j])["gain"]
-        return K
+        return _gain_matrix(self.A, Bf, self.C, Df, discrete=False)
 
     def poles(self) -> np.ndarray:
         """Eigenvalues of A (delay-free part)."""
@@ -372,6 +367,18 @@ def _ss_gain(Am: np.ndarray, bm: np.ndarray, cm: np.ndarray, d: float, *,
     return gain, True, ramp
 
 
+def _gain_matrix(A: np.ndarray, B: np.ndarray, C: np.ndarray, D: np.ndarray, *,
+                 discrete: bool) -> np.ndarray:
+    """Steady-state gains channel by channel (minimal SISO realization of each; see
+    :func:`_ss_gain`): ``inf`` only where that channel integrates."""
+    K = np.zeros((C.shape[0], B.shape[1]))
+    for i in range(C.shape[0]):
+        for j in range(B.shape[1]):
+            Am, bm, cm = minimal_realization(A, B[:, [j]], C[[i]])
+            K[i, j] = _ss_gain(Am, bm, cm, D[i, j], discrete=discrete)[0]
+    return K
+
+
 def _channel(A: np.ndarray, b: np.ndarray, c: np.ndarray, d: float) -> dict[str, Any]:
     """Minimal SISO realization of one channel with its gain, poles, zeros and (num, den)."""
     Am, bm, cm = minimal_realization(A, b.reshape(-1, 1), c.reshape(1, -1))
@@ -496,15 +503,15 @@ class DiscreteLinearModel:
         """Steady-state gain ``C (I - A)^-1 B + D`` (or for DVs), channel by channel.
 
         Each channel is reduced to its minimal realization first, so only channels that really
-        integrate give ``inf`` (signed by the direction of their ramp).
+        integrate give ``inf`` (signed by the direction of their ramp); a self-regulating channel
+        keeps its finite gain even when a level elsewhere in the unit integrates.  The delay
+        states do not change a gain: the result equals :meth:`LinearModel.gain` of the model this
+        one was discretized from (ZOH step invariance).
         """
+        if role not in ("mv", "dv"):
+            raise SettingsError(f"DiscreteLinearModel.gain(): role must be 'mv' or 'dv'; got {role!r}.")
         B, D = (self.B, self.D) if role == "mv" else (self.Bd, self.Dd)
-        K = np.zeros((self.ny, B.shape[1]))
-        for i in range(self.ny):
-            for j in range(B.shape[1]):
-                Am, bm, cm = minimal_realization(self.A, B[:, [j]], self.C[[i]])
-                K[i, j] = _ss_gain(Am, bm, cm, D[i, j], discrete=True)[0]
-        return K
+        return _gain_matrix(self.A, B, self.C, D, discrete=True)
 
     def poles(self) -> np.ndarray:
         return np.linalg.eigvals(self.A)
