@@ -429,11 +429,11 @@ def test_steady_target_active_set_reuse_matches_an_interior_point_solve():
         b = tgt.solve(z, fast=False, solver="CLARABEL",
                       options={"tol_gap_abs": 1e-10, "tol_gap_rel": 1e-10, "tol_feas": 1e-10})
         assert a.accepted and b.accepted
-        # the MV resting values only break ties in the target (weight 1e-4 of the dynamic one):
+        # the MV resting values only break ties in the target (weights 1e-6 of the CV weights):
         # the objective is nearly flat along the tie, where a gap tolerance eps allows a
-        # distance of sqrt(2 eps / curvature) ~ 1e-3; the setpoint CV is pinned exactly, the
-        # zone CV and the MVs move along the tie and agree to 1e-5
+        # distance of sqrt(2 eps / curvature) ~ 1e-2; the setpoint CV is pinned exactly, the
+        # zone CV and the MVs move along the tie and agree to 1e-4
         np.testing.assert_allclose(a.values["ys"][0], b.values["ys"][0], atol=1e-7)
         for key in ("us", "ys"):
-            np.testing.assert_allclose(a.values[key], b.values[key], atol=1e-5)
+            np.testing.assert_allclose(a.values[key], b.values[key], atol=1e-4)
     assert explicit >= 6

@@ -365,6 +365,20 @@ class CompiledQP:
         self._solver.update_settings(**settings)
         self._opts.update(settings)
 
+    def restart(self) -> None:
+        """Forget everything a previous run left in the solvers, so a rerun repeats it exactly.
+
+        The fast path's OSQP object is set up afresh (the warm start *and* the step size that
+        adaptive rho tuned during the last run are both state: zeroing the iterate alone does not
+        repeat a run), the kept duals are dropped and cvxpy's own warm-start cache is cleared.
+        """
+        if self._solver is not None:
+            self.setup(self._opts)
+        self.last_duals = None
+        cache = getattr(self.problem, "_solver_cache", None)
+        if isinstance(cache, dict):
+            cache.clear()
+
     def reset_warm_start(self) -> None:
         """Forget the previous solution (the next solve starts cold)."""
         if self._solver is not None:

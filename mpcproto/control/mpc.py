@@ -83,9 +83,10 @@ MV_KEYS: dict[str, Any] = {
 #: per-DV keys and defaults
 DV_KEYS: dict[str, Any] = {"feedforward": True}
 
-#: in the steady target the MV resting values only break ties: their weights are this much smaller
-#: than in the dynamic problem, so a reachable CV setpoint is never traded for an MV's rest value
-_TARGET_REST_FACTOR = 1e-4
+#: in the steady target the MV resting values only break ties: the largest rest weight is this
+#: fraction of the smallest CV weight (scaled units), so a reachable CV setpoint is never traded
+#: for an MV's resting value
+_TARGET_REST_FACTOR = 1e-6
 
 SOLVERS = ("osqp", "clarabel")
 FALLBACKS = ("shift", "hold")
@@ -466,7 +467,7 @@ class PredictiveController:
                 A, B, C, D, Bd, Dd, Bw, Cw,
                 band_weight=r["cv_weight"] + 1e-9 / sy ** 2, limit_linear=r["lim_lin"],
                 limit_quadratic=r["lim_quad"],
-                rest_weight=np.maximum(_TARGET_REST_FACTOR * r["rest_weight"], 1e-6 / su ** 2),
+                rest_weight=self._target_rest_weight(r["rest_weight"], wq_s, su),
                 solver_options=osqp_opts, scales=(sx, su, sy)).build()
         else:
             self.target_ = None
@@ -611,6 +612,21 @@ class PredictiveController:
         return self
 
     @staticmethod
+    def _target_rest_weight(rest_weight, wq_s, su):
+        """MV rest weights for the steady target (engineering units): tie-breakers only.
+
+        In scaled units the largest is ``_TARGET_REST_FACTOR`` times the smallest positive CV
+        weight, the others keep their ratios to it; never below 1e-6 (a unique target).  So a
+        reachable CV setpoint is never traded for an MV's resting value, whatever the units.
+        """
+        rs = np.asarray(rest_weight, float) * su ** 2
+        pos = wq_s[wq_s > 0]
+        ref = float(pos.min()) if pos.size else 1.0
+        top = float(rs.max()) if rs.size else 0.0
+        rel = rs / top if top > 0 else np.zeros_like(rs)
+        return np.maximum(_TARGET_REST_FACTOR * ref * rel, 1e-6) / su ** 2
+
+    @staticmethod
     def _state_scales(A, B, C, su, sy, T):
         """Per state: the largest change one scaled MV step causes within T samples.
 
@@ -659,6 +675,12 @@ class PredictiveController:
                 elif src in m.dv_names:
                     x0[i] = op.d[m.dv_names.index(src)] - m.op.d[m.dv_names.index(src)]
         self.estimator_.reset(x0, t0)
+        # solver state of a previous run (warm start, adaptive step size, learned active sets)
+        # must not leak into this one: a rerun from the same point repeats the run exactly
+        self.qp_.restart()
+        if self.target_ is not None:
+            self.target_.restart()
+        self._last_inputs = None
         self._op = op
         self._op_u = np.asarray(m.op.u, float)
         self._op_d = np.asarray(m.op.d, float)

@@ -149,6 +149,15 @@ class SteadyTarget:
         self.is_built = True
         return self
 
+    def restart(self) -> None:
+        """Forget the solver's warm start and the learned active sets (a rerun repeats a run)."""
+        if not self.is_built:
+            raise NotBuiltError("SteadyTarget is not built; call .build() first.")
+        self.qp_.restart()
+        self._active.clear()
+        self._last_key = None
+        self.explicit_solves = 0
+
     # -- re-using the active set: for a fixed set of active constraints the QP's solution is an
     # affine function of its data (the KKT system), so while the same constraints stay active the
     # target is one matrix-vector product; it is accepted only when it satisfies every KKT
