@@ -16,17 +16,25 @@ from typing import Any
 from .exceptions import SettingsError
 from .model import suggest
 
-__all__ = ["shown", "as_float", "choice", "number", "check_keys"]
+__all__ = ["shown", "as_float", "choice", "number", "check_keys", "refuse_unknown_keys"]
+
+
+def refuse_unknown_keys(spec: Mapping[Any, Any], allowed: Sequence[str], *, what: str,
+                       context: str = "", error: type[Exception] = SettingsError,
+                       remedy: str = "") -> None:
+    """Raise *error* (default :class:`SettingsError`) for the first key of *spec* not in
+    *allowed*: ``"<what>: unknown key 'k'<context> (did you mean ...?); allowed keys: ..."``."""
+    names = list(allowed)
+    for k in spec:
+        if k not in names:
+            raise error(f"{what}: unknown key {shown(k)}{context}{suggest(str(k), names)}; "
+                        f"allowed keys: {', '.join(names)}.{remedy}")
 
 
 def check_keys(spec: Mapping[str, Any], allowed: Sequence[str], required: Sequence[str], *,
                what: str, kind: str) -> None:
     """Raise :class:`SettingsError` for a missing or unknown key of a spec dict."""
-    for k in spec:
-        if k not in allowed:
-            raise SettingsError(
-                f"{what}: unknown key '{k}' for kind '{kind}'{suggest(str(k), list(allowed))}; "
-                f"allowed keys: {', '.join(allowed)}.")
+    refuse_unknown_keys(spec, allowed, what=what, context=f" for kind '{kind}'")
     for k in required:
         if k not in spec:
             raise SettingsError(
@@ -34,15 +42,13 @@ def check_keys(spec: Mapping[str, Any], allowed: Sequence[str], required: Sequen
 
 
 def shown(v: Any, limit: int = 60) -> str:
-    """``repr(v)`` cut to *limit* characters, with its type when that is not obvious."""
+    """Short rendering of a found value for messages: ``repr`` cut to *limit* characters; a
+    table as ``a table {key, ...}``."""
+    if isinstance(v, Mapping):
+        keys = [str(k) for k in list(v)[:4]]
+        return "a table {" + ", ".join(keys) + (", ..." if len(v) > 4 else "") + "}"
     r = repr(v)
-    if len(r) > limit:
-        r = r[:limit - 3] + "..."
-    if isinstance(v, (list, tuple, dict, Mapping)) or v is None or isinstance(v, bool):
-        return r
-    if isinstance(v, (str, int, float)):
-        return r
-    return f"{type(v).__name__} {r}"
+    return r if len(r) <= limit else r[:limit - 3] + "..."
 
 
 def as_float(v: Any) -> float | None:

@@ -223,7 +223,6 @@ class LinearModel:
         if isinstance(Ts, bool) or not (isinstance(Ts, numbers.Real) and math.isfinite(Ts) and Ts > 0):
             raise SettingsError(f"discretize(): the sample time Ts must be a finite number > 0; got {Ts!r}.")
         nx, nu, nd = self.A.shape[0], self.B.shape[1], self.Bd.shape[1]
-        nz = len(self.delays)
         # exact ZOH of the delay-free part, all inputs at once: expm of the augmented matrix
         Ball = np.hstack([self.B, self.Bd, self.Bz])
         M = np.zeros((nx + Ball.shape[1],) * 2)
@@ -386,8 +385,6 @@ def _channel(A: np.ndarray, b: np.ndarray, c: np.ndarray, d: float) -> dict[str,
     d = float(d)
     scale = max(1.0, float(np.max(np.abs(Am)))) if n else 1.0
     connected = bool(n > 0 or abs(d) > 0)
-    integrating = False
-    ramp = None
     gain, integrating, ramp = _ss_gain(Am, bm, cm, d, discrete=False)
     poles = np.linalg.eigvals(Am) if n else np.zeros(0, complex)
     poles = np.where(np.abs(poles) <= 1e-10 * scale, 0.0, poles)  # integrators exactly at 0
@@ -407,8 +404,7 @@ def _channel(A: np.ndarray, b: np.ndarray, c: np.ndarray, d: float) -> dict[str,
 
 def _pencil_zeros(A: np.ndarray, B: np.ndarray, C: np.ndarray, D: np.ndarray) -> np.ndarray:
     """Finite generalized eigenvalues of the square Rosenbrock pencil."""
-    nx, m = A.shape[0], B.shape[1]
-    p = C.shape[0]
+    nx = A.shape[0]
     M = np.block([[A, B], [C, D]])
     N = np.zeros_like(M)
     N[:nx, :nx] = np.eye(nx)

@@ -39,7 +39,7 @@ from typing import Any
 import casadi as ca
 import numpy as np
 
-from .exceptions import ModelError, NotBuiltError, OperatingPointError
+from .exceptions import NotBuiltError, OperatingPointError
 from .model import suggest
 
 __all__ = ["OperatingPoint", "TargetResult", "steady_states", "steady_state", "solve_targets"]

@@ -52,7 +52,7 @@ from typing import Any
 import numpy as np
 from scipy.optimize import brentq
 
-from .._specs import as_float, choice, shown
+from .._specs import as_float, choice, refuse_unknown_keys, shown
 from ..exceptions import SettingsError
 from ..model import suggest
 from .pid import PIDLoop
@@ -650,10 +650,7 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
 
     if not isinstance(settings, Mapping):
         raise SettingsError(f"{what}: PID settings must be a table; found {shown(settings)}.")
-    for k in settings:
-        if k not in _SETTINGS_KEYS:
-            raise SettingsError(f"{what}: unknown key {shown(k)}{suggest(str(k), _SETTINGS_KEYS)}; "
-                                f"allowed keys: {', '.join(_SETTINGS_KEYS)}.")
+    refuse_unknown_keys(settings, _SETTINGS_KEYS, what=what)
     cv_names = list(getattr(model, "cv_names", ()))
     mv_names = list(getattr(model, "mv_names", ()))
     given: dict[tuple[str, str], PIDLoop] = {}

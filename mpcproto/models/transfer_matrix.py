@@ -34,6 +34,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+from .._specs import refuse_unknown_keys
 from ..exceptions import ModelError
 from ..model import Model, suggest
 
@@ -69,12 +70,8 @@ class TransferElement:
         if isinstance(spec, TransferElement):
             el = spec
         elif isinstance(spec, Mapping):
-            allowed = {"gain", "time_constants", "tau", "lead", "dead_time"}
-            for k in spec:
-                if k not in allowed:
-                    raise ModelError(
-                        f"{where}: unknown key {k!r}{suggest(str(k), sorted(allowed))}; an element "
-                        f"takes gain, time_constants (or tau), lead, dead_time.")
+            refuse_unknown_keys(spec, ("gain", "time_constants", "tau", "lead", "dead_time"),
+                                what=where, error=ModelError)
             if "gain" not in spec:
                 raise ModelError(f"{where}: an element needs a 'gain'; got {dict(spec)!r}.")
             taus = spec.get("time_constants", spec.get("tau", ()))
@@ -122,16 +119,14 @@ def _spec_list(items: Any, role: str, what: str) -> list[dict[str, Any]]:
     if isinstance(items, Mapping):
         items = [dict({"name": k}, **(v or {})) for k, v in items.items()]
     out = []
-    allowed = {"name", "unit", "nominal", "low", "high", "description"} | ({"measured"} if role == "dv" else set())
+    allowed = ("name", "unit", "nominal", "low", "high", "description") + (("measured",) if role == "dv" else ())
     for it in items:
         if isinstance(it, str):
             it = {"name": it}
         if not isinstance(it, Mapping) or "name" not in it:
             raise ModelError(f"{what}: each {role} must be a name or a dict with a 'name'; got {it!r}.")
-        for k in it:
-            if k not in allowed:
-                raise ModelError(f"{what}: {role} '{it['name']}' has unknown key {k!r}"
-                                 f"{suggest(str(k), sorted(allowed))}; allowed: {', '.join(sorted(allowed))}.")
+        refuse_unknown_keys(it, allowed, what=what, context=f" in {role} '{it['name']}'",
+                            error=ModelError)
         out.append(dict(it))
     return out
 

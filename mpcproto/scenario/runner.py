@@ -162,25 +162,24 @@ def _check_specs(scn: Scenario, plant: Any = None) -> dict[str, Any]:
 
     d = scn.data
     base_dir = Path(scn.file).parent if scn.file and scn.file != "<dict>" else None
-    dvs: dict[str, Any] = {}
-    for k, spec in d["disturbances"].items():
-        spec = _csv_paths(spec, base_dir)
+
+    def made(factory, key: str, spec: Any, **kw: Any) -> Any:
+        """factory(spec, what=key) with its SettingsError turned into the scenario's error."""
         try:
-            signal_from_spec(spec, what=f"disturbances.{k}", rng=0)
+            return factory(spec, what=key, **kw)
         except SettingsError as e:
-            raise settings_error(e, scn, f"disturbances.{k}", spec) from None
-        dvs[k] = spec
-    setpoints: dict[str, Any] = {}
-    for k, spec in d["setpoints"].items():
-        if spec == "none":
-            setpoints[k] = None
-            continue
-        spec = _csv_paths(spec, base_dir)
-        try:
-            signal_from_spec(spec, what=f"setpoints.{k}", rng=0)
-        except SettingsError as e:
-            raise settings_error(e, scn, f"setpoints.{k}", spec) from None
-        setpoints[k] = spec
+            raise settings_error(e, scn, key, spec) from None
+
+    signals: dict[str, dict[str, Any]] = {"disturbances": {}, "setpoints": {}}
+    for section, out in signals.items():
+        for k, spec in d[section].items():
+            if section == "setpoints" and spec == "none":
+                out[k] = None
+                continue
+            spec = _csv_paths(spec, base_dir)
+            made(signal_from_spec, f"{section}.{k}", spec, rng=0)  # checked here, built per run
+            out[k] = spec
+    dvs, setpoints = signals["disturbances"], signals["setpoints"]
     cv_limits: dict[str, Any] = {}
     mv_limits: dict[str, Any] = {}
     for k, lim in d["limits"].items():
@@ -194,24 +193,13 @@ def _check_specs(scn: Scenario, plant: Any = None) -> dict[str, Any]:
             if "rate" in lim:
                 entry["rate"] = lim["rate"]
             mv_limits[k] = entry
-    instruments = {}
-    for k, spec in d["instruments"].items():
-        try:
-            instruments[k] = instrument_from_spec(spec, what=f"instruments.{k}")
-        except SettingsError as e:
-            raise settings_error(e, scn, f"instruments.{k}", spec) from None
-    actuators = {}
-    for k, spec in d["actuators"].items():
-        try:
-            actuators[k] = actuator_from_spec(spec, what=f"actuators.{k}")
-        except SettingsError as e:
-            raise settings_error(e, scn, f"actuators.{k}", spec) from None
+    instruments = {k: made(instrument_from_spec, f"instruments.{k}", spec)
+                   for k, spec in d["instruments"].items()}
+    actuators = {k: made(actuator_from_spec, f"actuators.{k}", spec)
+                 for k, spec in d["actuators"].items()}
     faults = []
     for k, spec in d["faults"].items():
-        try:
-            f = fault_from_spec(spec, what=f"faults.{k}")
-        except SettingsError as e:
-            raise settings_error(e, scn, f"faults.{k}", spec) from None
+        f = made(fault_from_spec, f"faults.{k}", spec)
         if plant is None:
             faults.append(f)
             continue

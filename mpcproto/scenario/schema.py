@@ -25,6 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from ..exceptions import ScenarioError
+from .._specs import as_float, shown as _show
 from ..model import suggest
 
 if sys.version_info >= (3, 11):
@@ -98,12 +99,9 @@ def _type_name(v: Any) -> str:
     return f"a {type(v).__name__}"
 
 
-def _show(v: Any) -> str:
-    """Short rendering of a found value for messages."""
-    if isinstance(v, Mapping):
-        return "a table {" + ", ".join(list(v)[:4]) + (", ..." if len(v) > 4 else "") + "}"
-    r = repr(v)
-    return r if len(r) <= 60 else r[:57] + "..."
+def _found(v: Any) -> str:
+    """What was found, for messages: its type and a short rendering (a table shows its keys)."""
+    return _show(v) if isinstance(v, Mapping) else f"{_type_name(v)} ({_show(v)})"
 
 
 class _Ctx:
@@ -120,7 +118,7 @@ class _Ctx:
 
     def table(self, v: Any, key: str) -> dict:
         if not isinstance(v, Mapping):
-            self.fail(key, "a table", f"{_type_name(v)} ({_show(v)})")
+            self.fail(key, "a table", _found(v))
         return dict(v)
 
     def keys(self, d: Mapping, key: str, allowed: tuple[str, ...] | set[str],
@@ -140,8 +138,8 @@ class _Ctx:
                strict_low: bool = False, integer: bool = False) -> float:
         ok_type = isinstance(v, int) if integer else isinstance(v, (int, float))
         if isinstance(v, bool) or not ok_type:
-            self.fail(key, "an integer" if integer else "a number", f"{_type_name(v)} ({_show(v)})")
-        fv = float(v)
+            self.fail(key, "an integer" if integer else "a number", _found(v))
+        fv = as_float(v)  # an integer too large for a float is inf, refused below
         if not math.isfinite(fv):
             self.fail(key, "a finite number", _show(v))
         if (strict_low and fv <= low) or (not strict_low and fv < low) or fv > high:
@@ -156,10 +154,16 @@ class _Ctx:
     def string(self, v: Any, key: str, choices: tuple[str, ...] | None = None) -> str:
         if not isinstance(v, str):
             self.fail(key, "a string" + (f" (one of {', '.join(choices)})" if choices else ""),
-                      f"{_type_name(v)} ({_show(v)})")
+                      _found(v))
         if choices is not None and v not in choices:
             self.fail(key, f"one of {', '.join(repr(c) for c in choices)}",
                       f"{v!r}{suggest(v, choices)}")
+        return v
+
+    def table_array(self, v: Any, key: str) -> list:
+        """An array of tables (``[[key]]`` entries); the entries are checked by the caller."""
+        if not isinstance(v, list):
+            self.fail(key, f"an array of tables ([[{key}]] entries)", _type_name(v))
         return v
 
     def name_map(self, v: Any, key: str, *, values: str = "number") -> dict:
@@ -393,7 +397,7 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         if isinstance(v, (Mapping, list)) and not (isinstance(v, list) and
                                                    all(isinstance(x, (int, float, str)) for x in v)):
             c.fail(f"plant.options.{k}", "a number, string, boolean or array of them",
-                   f"{_type_name(v)} ({_show(v)})")
+                   _found(v))
     data["plant"] = {"model": model, "options": options,
                      "parameters": c.name_map(pl.get("parameters", {}), "plant.parameters")}
 
@@ -457,7 +461,7 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
                 if not isinstance(v, Mapping):
                     c.fail(key, "a signal table (with 'kind'), an array of them, a number"
                            + (' or "none"' if section == "setpoints" else ""),
-                           f"{_type_name(v)} ({_show(v)})")
+                           _found(v))
                 out[k] = dict(v)
                 if "kind" in v:
                     c.string(v["kind"], f"{key}.kind")
@@ -493,9 +497,7 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
     data["limits"] = limits
 
     # [[criteria]]
-    crit_raw = raw.get("criteria", [])
-    if not isinstance(crit_raw, list):
-        c.fail("criteria", "an array of tables ([[criteria]] entries)", f"{_type_name(crit_raw)}")
+    crit_raw = c.table_array(raw.get("criteria", []), "criteria")
     criteria = []
     names_seen: set[str] = set()
     for i, cr in enumerate(crit_raw):
@@ -537,9 +539,7 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
     draws = c.number(st.get("draws", 0), "study.draws", low=0, integer=True)
     full_draws = c.number(st.get("full_draws", draws), "study.full_draws", low=0, integer=True)
     sweeps = []
-    sw_raw = st.get("sweep", [])
-    if not isinstance(sw_raw, list):
-        c.fail("study.sweep", "an array of tables ([[study.sweep]] entries)", _type_name(sw_raw))
+    sw_raw = c.table_array(st.get("sweep", []), "study.sweep")
     for i, sw in enumerate(sw_raw):
         key = f"study.sweep[{i}]"
         sw = c.table(sw, key)
@@ -565,9 +565,7 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
                        "full_values": vals.get("full_values", vals["values"]),
                        "label": c.string(sw.get("label", keys[0]), f"{key}.label")})
     draw_specs = []
-    dr_raw = st.get("draw", [])
-    if not isinstance(dr_raw, list):
-        c.fail("study.draw", "an array of tables ([[study.draw]] entries)", _type_name(dr_raw))
+    dr_raw = c.table_array(st.get("draw", []), "study.draw")
     for i, dr in enumerate(dr_raw):
         key = f"study.draw[{i}]"
         dr = c.table(dr, key)
@@ -614,7 +612,7 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
 
 def _bool(c: _Ctx, v: Any, key: str) -> bool:
     if not isinstance(v, bool):
-        c.fail(key, "true or false", f"{_type_name(v)} ({_show(v)})")
+        c.fail(key, "true or false", _found(v))
     return v
 
 
