@@ -12,10 +12,18 @@ Conventions
 * A measurement carries the time it was *taken* (``taken_at``), which for a slow analyzer with a dead
   time is earlier than the time it arrives; ``fresh`` marks values that arrived at this sample.
   A NaN value is a bad or missing reading.
+* MV readback (common practice, no source): ``step`` may take the keyword ``u_applied``, the MV
+  values the actuators actually applied over the previous sample (valve position feedback; NaN
+  where unknown).  A stuck, saturated or rate-limited valve then shows up at once: a PID loop uses
+  it for its anti-windup tracking, the MPC as the previous MV of its move penalties and rate
+  limits and as the input its estimator predicts with.  The keyword is optional on both sides:
+  the simulator passes it only to controllers whose ``step`` accepts it
+  (:func:`accepts_readback`), and a controller must work when it is None (no feedback).
 """
 
 from __future__ import annotations
 
+import inspect
 from dataclasses import dataclass, field
 from typing import Any, Protocol, runtime_checkable
 
@@ -23,7 +31,7 @@ import numpy as np
 
 from ..operating import OperatingPoint
 
-__all__ = ["Measurement", "Targets", "ControlOutput", "Controller",
+__all__ = ["Measurement", "Targets", "ControlOutput", "Controller", "accepts_readback",
            "STATUS_OK", "STATUS_INACCURATE", "STATUS_FALLBACK", "STATUS_HOLD", "STATUS_FAILED",
            "ACCEPTED", "FALLBACK", "FATAL"]
 
@@ -84,5 +92,27 @@ class Controller(Protocol):
         """Start (bumplessly) at operating point *op* at time *t0*."""
 
     def step(self, t: float, meas: Measurement, dv: np.ndarray, targets: Targets,
-             dv_forecast: np.ndarray | None = None) -> ControlOutput:
-        """One sample: return the MVs to hold until the next sample."""
+             dv_forecast: np.ndarray | None = None, *,
+             u_applied: np.ndarray | None = None) -> ControlOutput:
+        """One sample: return the MVs to hold until the next sample.
+
+        ``u_applied`` (optional, keyword only): the MVs actually applied over the previous sample
+        (absolute, MV order, NaN where unknown); None when there is no readback.
+        """
+
+
+def accepts_readback(controller: Any) -> bool:
+    """Does ``controller.step`` take the ``u_applied`` keyword (or any keyword, ``**kwargs``)?
+
+    Controllers written before the readback keyword existed keep working: the simulator asks
+    this once and leaves the keyword out for them.
+    """
+    step = getattr(controller, "step", None)
+    if step is None:
+        return False
+    try:
+        params = inspect.signature(step).parameters.values()
+    except (TypeError, ValueError):
+        return False
+    return any(p.name == "u_applied" and p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD)
+               or p.kind == p.VAR_KEYWORD for p in params)

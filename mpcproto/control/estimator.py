@@ -363,6 +363,24 @@ class DisturbanceEstimator:
         self._ymask[nxt] = False
         self._u_prev = np.asarray(u_dev, float).copy()
 
+    def revise_input(self, u_dev: np.ndarray) -> None:
+        """Replace the MVs of the last :meth:`predict` by those actually applied (readback).
+
+        Call after :meth:`predict` and before the next :meth:`update`: the prior of the coming
+        sample is recomputed with *u_dev* (deviation), and a re-run for a late measurement uses
+        it too, so a stuck or clipped valve does not show up as a disturbance.
+        """
+        self._check()
+        H = self._prior.shape[0]
+        s = self._k % H
+        u_dev = np.asarray(u_dev, float)
+        self._u[s] = u_dev
+        xn = self.A_ @ self._post[s] + self.Ba_ @ u_dev
+        if self._has_Bd:
+            xn += self.Bda_ @ self._d[s]
+        self._prior[(self._k + 1) % H] = xn
+        self._u_prev = u_dev.copy()
+
     @property
     def state(self) -> np.ndarray:
         """Current filtered plant (and delay) state, deviation variables."""

@@ -200,7 +200,8 @@ class PredictiveController:
     target_ : SteadyTarget or None
     counts : dict
         Running totals since :meth:`reset`: steps, fallbacks, holds, inaccurate, failed solves,
-        target fallbacks, rejected measurements, late measurements used.
+        target fallbacks, rejected measurements, late measurements used, samples whose MV
+        readback differed from the command (``readback_differs``).
     """
 
     name = "mpc"
@@ -700,7 +701,7 @@ class PredictiveController:
         self._target = None
         self.counts = {"steps": 0, "fallbacks": 0, "holds": 0, "inaccurate": 0, "failed_solves": 0,
                        "target_fallbacks": 0, "rejected_measurements": 0, "late_measurements": 0,
-                       "backup_solves": 0}
+                       "backup_solves": 0, "readback_differs": 0}
 
     def _vec(self, v, n: int, what: str, fill: float) -> np.ndarray:
         if v is None:
@@ -755,7 +756,8 @@ class PredictiveController:
         return mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_
 
     def step(self, t: float, meas: Measurement, dv: np.ndarray, targets: Targets,
-             dv_forecast: np.ndarray | None = None) -> ControlOutput:
+             dv_forecast: np.ndarray | None = None, *,
+             u_applied: np.ndarray | None = None) -> ControlOutput:
         """One sample: estimate, target, solve, return the MVs (absolute) and diagnostics.
 
         Parameters
@@ -772,6 +774,12 @@ class PredictiveController:
         dv_forecast : ndarray (n, nd) or None
             Expected DV values at t, t+Ts, ... (absolute); rows past its end repeat the last one,
             NaN entries take the current value.  None: DVs held at their current values.
+        u_applied : ndarray (nu,) or None
+            MV readback: the MVs actually applied over the previous sample (absolute; NaN where
+            unknown).  They replace the commanded ones as the previous MVs of the move
+            penalties and rate limits and as the input of the estimator's last prediction, so a
+            stuck, saturated or rate-limited valve neither biases the disturbance estimates nor
+            makes the plan start from a position the valve never reached.
 
         Returns
         -------
@@ -798,6 +806,16 @@ class PredictiveController:
         # ---- inputs checked before anything changes state
         mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_ = self._limits(targets)
         dv_forecast = self._forecast(dv_forecast)
+        if u_applied is not None:
+            ua = self._vec(u_applied, nu, "u_applied", np.nan)
+            known = np.isfinite(ua)
+            if known.any():
+                ua = np.where(known, ua, self._u_prev)
+                if not np.array_equal(ua, self._u_prev):
+                    if self.counts["steps"] > 0:      # the estimator has predicted with u_prev
+                        self.estimator_.revise_input(ua - op_u)
+                    self._u_prev = ua
+                    self.counts["readback_differs"] += 1
         # ---- measured DVs (deviation); unknown / not fed forward -> 0
         dv = np.full(nd, np.nan) if dv is None else self._vec(dv, nd, "dv", np.nan)
         use = r["feedforward"] & np.isfinite(dv)

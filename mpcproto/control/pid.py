@@ -21,8 +21,12 @@ Astrom & Hagglund (*Advanced PID Control*, ISA 2006, section 3.6, from memory), 
 acts only when a fresh result arrives (``on_fresh=True``, the default) and holds its output in
 between, so it neither integrates a stale error nor winds up.  A NaN reading holds the output and
 reports the status ``fallback_hold``.  The limits applied are the operating limits and the rate
-limit the simulator passes in ``Targets``; the simulator's actuator may clip further (a stuck
-valve), which the loop does not see.
+limit the simulator passes in ``Targets``; the actuator may clip further (a stuck or saturated
+valve, an actuator rate limit).  With MV readback (``step(..., u_applied=...)``, the valve
+positions actually applied over the last sample; common practice, no source) the tracking term
+uses the *applied* value instead of the loop's own limited output: ``(u_applied - v)``, so the
+integral does not wind up behind a valve that does not follow.  Without readback (None or NaN)
+the loop only knows its own limits.
 
 PID loop spec keys (:func:`pid_loop_from_spec`)
 ------------------------------------------------
@@ -154,6 +158,7 @@ class _LoopState:
     u: float = math.nan
     e_prev: float = 0.0
     aw_prev: float = 0.0
+    v_prev: float = math.nan
     started: bool = False
 
 
@@ -212,9 +217,20 @@ class PIDController:
         return np.array([s.i for s in self._state])
 
     def step(self, t: float, meas: Measurement, dv: np.ndarray, targets: Targets,
-             dv_forecast: np.ndarray | None = None) -> ControlOutput:
+             dv_forecast: np.ndarray | None = None, *,
+             u_applied: np.ndarray | None = None) -> ControlOutput:
+        """One sample of every loop; ``u_applied`` (optional): the MVs applied over the last
+        sample (readback, NaN = unknown), used by the anti-windup tracking."""
         if not self._state:
             raise SettingsError(f"PIDController '{self.name}': call reset(op) before step().")
+        ua = None
+        if u_applied is not None:
+            ua = np.asarray(u_applied, float).reshape(-1)
+            if ua.shape != (len(self.mv_names),):
+                raise SettingsError(f"PIDController '{self.name}'.step(): u_applied must have "
+                                    f"{len(self.mv_names)} entries (MV order); got shape "
+                                    f"{np.shape(u_applied)}.")
+            ua = ua.tolist()
         u_out = self._u0.copy()
         status = STATUS_OK
         held = 0
@@ -245,6 +261,9 @@ class PIDController:
                 st.d, st.y_prev, st.t_last, st.started = 0.0, y, t, True
                 st.e_prev = st.aw_prev = 0.0
             h = t - st.t_last if t > st.t_last else 0.0
+            if ua is not None and math.isfinite(ua[mj]) and math.isfinite(st.v_prev):
+                # readback: track what the valve did, not what the loop asked for
+                st.aw_prev = ua[mj] - st.v_prev
             if h > 0 and math.isfinite(lp.integral_time):
                 # forward Euler over the interval just ended, with back-calculation of the
                 # limited output (anti-windup): I += K h/Ti e + h/Tt (u - v)
@@ -254,7 +273,7 @@ class PIDController:
             v = K * (lp.setpoint_weight * r - y) + st.i + st.d
             u = min(max(v, lo), hi)
             saturated += u != v
-            st.e_prev, st.aw_prev = r - y, u - v
+            st.e_prev, st.aw_prev, st.v_prev = r - y, u - v, v
             st.y_prev, st.t_last, st.u = y, t, u
             u_out[mj] = u
         if held:

@@ -11,6 +11,9 @@ Order of one sample ``k`` (time ``t = t0 + k*Ts``)
 3. Each instrument turns its true CV into a reading (lag, bias, noise, sensor faults, dead time,
    analyzer sample-and-hold) -> :class:`mpcproto.Measurement` with ``taken_at``/``fresh``.
 4. The controller's ``step`` answers with MVs; its wall time is recorded as ``diag.step_ms``.
+   With ``readback=True`` (default) a controller whose ``step`` takes the ``u_applied`` keyword
+   is also told the MVs the actuators applied over the previous sample (after limits, rate
+   limits and valve faults), as a valve position feedback would tell it.
 5. Each actuator applies limits, rate limits and valve faults -> the MVs applied to the plant.
 6. The row is recorded; the plant integrates over the sample with MVs and DVs held.
 
@@ -34,7 +37,7 @@ from typing import Any
 
 import numpy as np
 
-from ..control.base import Measurement, Targets, ControlOutput
+from ..control.base import Measurement, Targets, ControlOutput, accepts_readback
 from ..exceptions import MpcprotoError, SettingsError, SimulationError
 from ..linear import delay_samples
 from ..model import suggest
@@ -106,6 +109,10 @@ class ClosedLoop:
         Pass the true future measured DVs over the next ``forecast_steps`` samples as
         ``dv_forecast`` (a perfect forecast, for studies of feedforward); default False (None).
     forecast_steps : int
+    readback : bool
+        Pass the applied MVs of the previous sample as ``u_applied`` to a controller that takes
+        it (see :mod:`mpcproto.control.base`); default True.  False: the controller only knows
+        what it commanded.
     """
 
     def __init__(self, plant_model: Any, controller: Any, *, op: OperatingPoint, Ts: float,
@@ -118,9 +125,13 @@ class ClosedLoop:
                  faults: Sequence[Any] | None = None, rng: Any = None,
                  plant_parameters: Mapping[str, float] | None = None,
                  integrator: str | None = None, integrator_options: Mapping[str, Any] | None = None,
-                 t0: float = 0.0, forecast: bool = False, forecast_steps: int = 0):
+                 t0: float = 0.0, forecast: bool = False, forecast_steps: int = 0,
+                 readback: bool = True):
         self.model = plant_model.with_parameters(plant_parameters) if plant_parameters else plant_model
         self.controller = controller
+        if not isinstance(readback, (bool, np.bool_)):
+            raise SettingsError(f"ClosedLoop: 'readback' must be true or false; found {readback!r}.")
+        self._readback = bool(readback) and accepts_readback(controller)
         self.op = op
         for meth in ("reset", "step"):
             if not callable(getattr(controller, meth, None)):
@@ -403,7 +414,11 @@ class ClosedLoop:
             fc = np.where(self._dv_mask, self.D[k:k + self.forecast_steps], np.nan)
         t_start = time.perf_counter()
         try:
-            out = self.controller.step(t, meas, dv_seen, targets, fc)
+            if self._readback:
+                out = self.controller.step(t, meas, dv_seen, targets, fc,
+                                           u_applied=self.u_prev.copy())
+            else:
+                out = self.controller.step(t, meas, dv_seen, targets, fc)
         except MpcprotoError as exc:
             return self._fail(k, f"controller '{getattr(self.controller, 'name', '?')}' raised "
                                  f"{type(exc).__name__} at t={t:g}: {exc}", rows=k)
@@ -508,7 +523,8 @@ def simulate(plant_model: Any, controller: Any, *, op: OperatingPoint, Ts: float
              actuators: Mapping[str, Any] | None = None, faults: Sequence[Any] | None = None,
              rng: Any = None, plant_parameters: Mapping[str, float] | None = None,
              integrator: str | None = None, integrator_options: Mapping[str, Any] | None = None,
-             t0: float = 0.0, forecast: bool = False, forecast_steps: int = 0) -> Trajectory:
+             t0: float = 0.0, forecast: bool = False, forecast_steps: int = 0,
+             readback: bool = True) -> Trajectory:
     """Run a closed loop from *op* for *duration* and return its :class:`mpcproto.Trajectory`.
 
     A convenience over ``ClosedLoop(plant_model, controller, op=op, Ts=Ts, duration=duration,
@@ -520,4 +536,4 @@ def simulate(plant_model: Any, controller: Any, *, op: OperatingPoint, Ts: float
                       instruments=instruments, actuators=actuators, faults=faults, rng=rng,
                       plant_parameters=plant_parameters, integrator=integrator,
                       integrator_options=integrator_options, t0=t0, forecast=forecast,
-                      forecast_steps=forecast_steps).run()
+                      forecast_steps=forecast_steps, readback=readback).run()
