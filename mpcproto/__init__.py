@@ -11,7 +11,7 @@ Open-loop tests (layer 2)
 Built-in models (layer 1)
     models, make_model, available_models, transfer_matrix_model, TransferElement
 Controller protocol (layer 3)
-    Controller, Measurement, Targets, ControlOutput
+    Controller, Measurement, Targets, ControlOutput, accepts_readback
 PID loops and tuning (layer 3)
     PIDLoop, PIDController, pid_loop_from_spec, pid_from_settings, suggest_pairing, ProcessFit,
     StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating, fit_step, ultimate_point, simc,
@@ -41,7 +41,7 @@ from .exceptions import (
 from .model import Model, Variable, Delay
 from .operating import OperatingPoint, TargetResult, steady_states, steady_state, solve_targets
 from .linear import LinearModel, DiscreteLinearModel, linearize, rga
-from .control.base import Controller, Measurement, Targets, ControlOutput
+from .control.base import Controller, Measurement, Targets, ControlOutput, accepts_readback
 from .responses import (
     ResponseTest, open_loop_test, plot_response_test, linearity_sweep, StepFit, fit_step_response,
     step_model_response,
@@ -80,7 +80,7 @@ __all__ = [
     "OperatingPointError", "SimulationError",
     "Model", "Variable", "Delay",
     "OperatingPoint", "LinearModel", "DiscreteLinearModel", "linearize", "rga",
-    "Controller", "Measurement", "Targets", "ControlOutput",
+    "Controller", "Measurement", "Targets", "ControlOutput", "accepts_readback",
     "TargetResult", "steady_states", "steady_state", "solve_targets",
     "ResponseTest", "open_loop_test", "plot_response_test", "linearity_sweep",
     "StepFit", "fit_step_response", "step_model_response",
