@@ -185,10 +185,27 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 # ----------------------------------------------------------------------------------------- run
+def _check_out_dir(out: str) -> None:
+    """Refuse an --out that cannot become a results directory, before anything runs."""
+    from pathlib import Path
+
+    from .exceptions import SettingsError
+
+    p = Path(out)
+    if p.exists() and not p.is_dir():
+        raise SettingsError(f"--out {out}: expected a directory for the results (created if "
+                            f"missing); found a file of that name. Give another path.")
+    parent = next((q for q in [p, *p.parents] if q.exists()), None)
+    if parent is not None and not parent.is_dir():
+        raise SettingsError(f"--out {out}: expected a directory for the results; found that "
+                            f"'{parent}' is a file, so no directory can be made below it.")
+
+
 def _cmd_run(args: argparse.Namespace) -> int:
     from .scenario import load_scenario, run_scenario
 
     scn = load_scenario(args.scenario)
+    _check_out_dir(args.out)
     summary = run_scenario(scn, args.out, plots=not args.no_plots, ci=args.ci, case_id=args.case)
     for w in summary.get("warnings", []):
         print(f"mpcproto run: warning: {w}", file=sys.stderr)
@@ -291,6 +308,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except MpcprotoError as e:
         print(f"mpcproto {args.command}: error: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except BrokenPipeError:
+        # the reader went away (`mpcproto linearize x.toml | head`): stop quietly, as a shell
+        # tool killed by SIGPIPE would (128 + 13)
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 141
     except OSError as e:
         where = f" '{e.filename}'" if getattr(e, "filename", None) else ""
         print(f"mpcproto {args.command}: error: cannot use the file{where}: {e.strerror or e}.",

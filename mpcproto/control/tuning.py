@@ -489,7 +489,7 @@ def _check_number(v: Any, where: str, *, low: float, strict: bool, high: float =
     if not ok:
         rel = ">" if strict else ">="
         rng = f"{rel} {low:g}" + (f" and <= {high:g}" if math.isfinite(high) else "")
-        raise SettingsError(f"{where} must be a finite number {rng}; found {shown(v)}.")
+        raise SettingsError(f"{where}: must be a finite number {rng}; found {shown(v)}.")
     return float(f)
 
 

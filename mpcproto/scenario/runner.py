@@ -83,9 +83,14 @@ def settings_error(err: Exception, scn: Scenario, base_key: str, spec: Any = Non
                 if m.group(1) in keys:
                     key = f"{base_key}.{m.group(1)}"
                     break
-    m = re.match(re.escape(base_key) + r"(?:\[\d+\])?(?: (\([^)]*\)))?:\s*", msg)
+    # a message that starts with a longer key path ("controllers.pid.loops[0].cv: ...") names the
+    # exact key: use it and do not repeat it
+    m = re.match(re.escape(base_key) + r"((?:\[\d+\])?(?:(?:\.[A-Za-z_*][A-Za-z0-9_*]*)(?:\[\d+\])?)*)"
+                 r"(?: (\([^)]*\)))?:\s*", msg)
     if m:
-        msg = ((m.group(1) + " ") if m.group(1) else "") + msg[m.end():]
+        if "." in m.group(1):
+            key = base_key + m.group(1)
+        msg = ((m.group(2) + " ") if m.group(2) else "") + msg[m.end():]
     return ScenarioError(msg, file=scn.file, key=key)
 
 
@@ -384,10 +389,11 @@ def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
             use_ci = case.ci if ci is None else ci
         else:
             scn, base, use_ci = case, None, bool(ci)
+        # the models and names first: an unknown model is a more basic error than no controllers
+        prep = prepare(scn, base_parameters=base, ci=use_ci)
         if not scn.data["controllers"]:
             raise ScenarioError("expected at least one [controllers.<label>] table to run; found none.",
                                 file=scn.file, key="controllers")
-        prep = prepare(scn, base_parameters=base, ci=use_ci)
         blocks: dict[str, Any] = {}
         for label, spec in scn.data["controllers"].items():
             ctl = build_controller(label, spec, prep)
@@ -444,15 +450,17 @@ def find_case(scn: Scenario, case_id: str) -> Case:
     """The case of *scn*'s study called *case_id* (CI-sized or full study)."""
     from .study import iter_cases
 
+    ids: list[str] = []
     for full in (False, True):
         for c in iter_cases(scn, full=full):
             if c.case_id == case_id:
                 return c
-    from .study import count_cases
-
+            if c.case_id not in ids:
+                ids.append(c.case_id)
+    shown = ", ".join(ids[:6]) + (f", ... ({len(ids)} in all)" if len(ids) > 6 else "")
     raise ScenarioError(
-        f"expected the id of a case of this study (e.g. {next(iter_cases(scn)).case_id}; "
-        f"{count_cases(scn, full=True)} cases with --full); found {case_id!r}.", file=scn.file)
+        f"expected, for --case, the id of a case of this study ({shown}); found {case_id!r}"
+        f"{suggest(str(case_id), ids)}.", file=scn.file)
 
 
 def run_scenario(scn: Scenario | str | Path, out_dir: str | Path, *, plots: bool = True,

@@ -337,11 +337,21 @@ def load_scenario(path: str | Path) -> Scenario:
         The message names the file, the key path, what was expected and what was found.
     """
     p = Path(path)
+    if p.is_dir():
+        tomls = sorted(q.name for q in p.glob("*.toml"))
+        hint = (f" It holds {', '.join(tomls[:5])}{', ...' if len(tomls) > 5 else ''}: give one of "
+                f"them." if tomls else " Give the path of a .toml file.")
+        raise ScenarioError(f"expected a readable scenario file (TOML); found a directory.{hint}",
+                            file=str(p))
     try:
         raw_bytes = p.read_bytes()
-    except OSError as e:
-        raise ScenarioError(f"expected a readable scenario file; found {e.strerror or e}.",
+    except FileNotFoundError:
+        raise ScenarioError("expected a readable scenario file (TOML); found no file at this path "
+                            f"(looked in {p.resolve().parent}). Check the spelling.",
                             file=str(p)) from None
+    except OSError as e:
+        raise ScenarioError(f"expected a readable scenario file; found it cannot be read "
+                            f"({e.strerror or e}).", file=str(p)) from None
     try:
         raw = tomllib.loads(raw_bytes.decode("utf-8"))
     except UnicodeDecodeError as e:

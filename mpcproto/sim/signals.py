@@ -405,8 +405,17 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
     try:
         with path.open(newline="") as fh:
             rows = [r for r in csv.reader(fh) if r and not r[0].lstrip().startswith("#")]
-    except OSError as exc:
-        raise SettingsError(f"{w} cannot be read: {exc.strerror or exc}.") from None
+    except FileNotFoundError:
+        raise SettingsError(f"{what}: 'path': expected a readable CSV file; found that '{path}' "
+                            f"cannot be read: there is no file there ({path.resolve()}; a "
+                            f"relative path is taken from the scenario's folder).") from None
+    except IsADirectoryError:
+        raise SettingsError(f"{what}: 'path': expected a readable CSV file; found that '{path}' "
+                            f"cannot be read: it is a directory.") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        raise SettingsError(f"{what}: 'path': expected a readable CSV text file; found that "
+                            f"'{path}' cannot be read ({why}).") from None
     if len(rows) < 2:
         raise SettingsError(f"{w} needs a header row and at least one data row; found {len(rows)} rows.")
     header = [h.strip() for h in rows[0]]
