@@ -177,7 +177,10 @@ class PredictiveController:
         Solver settings (OSQP names such as ``eps_abs``, ``eps_rel``, ``max_iter``,
         ``polishing``, ``adaptive_rho``; Clarabel's own names with Clarabel).
     state_noise : float
-        Estimator process noise on the plant states (>= 0).
+        Estimator process noise on the plant states (>= 0), per squared state unit where one
+        unit of a state moves a CV by one CV ``scale`` (a mass fraction read as wt% thus gets
+        1e-4 of a level's noise); keep it well below ``disturbance_noise`` so that lasting
+        errors go to the disturbance estimates (integral action).
     history : int
         Samples of estimator history for late measurements (>= 1).
     priority_ratio : float
@@ -437,11 +440,11 @@ class PredictiveController:
         # far the MVs move them within the horizon), so OSQP sees a well-balanced problem
         su, sy = r["mv_scale"], r["cv_scale"]
         sx = self._state_scales(A, B, C, su, sy, min(N, 50))
-        # the estimator's state noise is per scaled state too (see DisturbanceEstimator)
+        # the estimator's state noise is per state in CV units (see DisturbanceEstimator)
         self.estimator_ = DisturbanceEstimator(
             m, disturbance=r["disturbance"], state_noise=float(self.state_noise),
             disturbance_noise=r["dist_noise"], measurement_noise=r["meas_noise"],
-            history=int(self.history), state_scale=sx).build()
+            history=int(self.history), state_scale=self._noise_scales(C, sy, sx)).build()
         Bw, Cw = self.estimator_.Bw_, self.estimator_.Cw_
         opts = r["solver_options"]
         osqp_opts = dict(opts) if self.solver == "osqp" else {}
@@ -611,6 +614,23 @@ class PredictiveController:
         self.is_built = True
         self.compile_s_ = time.perf_counter() - t_start
         return self
+
+    @staticmethod
+    def _noise_scales(C, sy, sx):
+        """Per state, the size of one CV scale in that state's units (``sy_i / |C_ij|``, the
+        smallest over the CVs that see it); states no CV sees directly take ``sx``.
+
+        The estimator's ``state_noise`` is per squared such unit: a mass fraction read as wt%
+        (C = 100) gets a noise 1e4 times smaller than a level read in m, so that both mean the
+        same in the CVs.  (Not the QP's reach-based scales: on an open-loop unstable unit those
+        grow with the unstable mode and would drown the disturbance estimates.)
+        """
+        absC = np.abs(C)
+        tiny = 1e-12 * max(1.0, float(absC.max()) if absC.size else 1.0)
+        with np.errstate(divide="ignore"):
+            via_c = np.min(np.where(absC > tiny, sy[:, None] / np.where(absC > tiny, absC, 1.0),
+                                    np.inf), axis=0) if absC.size else np.full(len(sx), np.inf)
+        return np.where(np.isfinite(via_c), via_c, sx)
 
     @staticmethod
     def _target_rest_weight(rest_weight, wq_s, su):
