@@ -32,10 +32,13 @@ from ..exceptions import SettingsError
 __all__ = ["CompiledQP", "QPResult", "OSQP_DEFAULTS"]
 
 # OSQP settings used by both the fast path and the benchmark floor (cvxpy's own defaults for the
-# tolerances; polishing off because it costs a factorization per call).
+# tolerances; polishing off because it costs a factorization per call).  OSQP's default
+# adaptive_rho_interval=0 decides when to adapt rho from measured *time*, so a run under load could
+# differ from the same run on an idle machine; a fixed iteration interval keeps every run
+# reproducible from its seed.
 OSQP_DEFAULTS: dict[str, Any] = {
     "eps_abs": 1e-5, "eps_rel": 1e-5, "max_iter": 10000, "polishing": False,
-    "warm_starting": True, "verbose": False,
+    "warm_starting": True, "verbose": False, "adaptive_rho_interval": 25,
 }
 
 OSQP_INFTY = 1e30   # OSQP's infinity: bounds at or beyond it are treated as absent
