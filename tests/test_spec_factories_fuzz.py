@@ -114,3 +114,29 @@ def test_the_reported_cases():
         signal_from_spec({"kind": {}}, what="dvs.feed")
     with pytest.raises(mp.SettingsError, match=r"pid.loops\[0\].cv: must be the name of a CV \(a string.*found 3"):
         mp.pid_from_settings(None, None, 1.0, {"loops": [{"cv": 3, "mv": "u"}]}, what="pid")
+
+
+# model layer: transfer elements and the model registry refuse junk with a ModelError
+ELEMENT_KEYS = ["gain", "time_constants", "tau", "lead", "dead_time"]
+
+
+@FUZZ
+@given(spec=st.one_of(JUNK, spec_of(ELEMENT_KEYS, good=[1.0, 2.0, [3.0, 1.0], 0.0]),
+                      st.lists(JUNK, min_size=3, max_size=3)))
+def test_transfer_element_refuses_junk_cleanly(spec):
+    try:
+        mp.TransferElement.coerce(spec, "elements['y']['u']")
+    except mp.ModelError as exc:
+        assert str(exc).startswith("elements['y']['u']"), str(exc)
+
+
+@settings(max_examples=120, deadline=None, derandomize=True,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(name=st.one_of(JUNK, st.sampled_from(["blending_tank", "quadruple_tank"])),
+       options=st.one_of(JUNK, st.dictionaries(st.sampled_from(["outflow", "setting", "x"]), JUNK, max_size=2)),
+       parameters=st.one_of(JUNK, st.dictionaries(st.sampled_from(["area", "a1", "y"]), JUNK, max_size=2)))
+def test_make_model_refuses_junk_cleanly(name, options, parameters):
+    try:
+        mp.make_model(name, options=options, parameters=parameters)
+    except mp.ModelError:
+        pass

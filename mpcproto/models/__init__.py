@@ -35,11 +35,11 @@ nominal steady state) are computed in ``build``.
 from __future__ import annotations
 
 import math
-import numbers
 from collections.abc import Mapping
 from types import ModuleType
 from typing import Any
 
+from .._specs import as_float, shown
 from ..exceptions import ModelError
 from ..model import Model, suggest
 from . import blending_tank, henson_seborg_cstr, quadruple_tank, wood_berry
@@ -111,12 +111,16 @@ def make(name: str, *, parameters: Mapping[str, float] | None = None,
         For an unknown model, option, option value or parameter, or a non-finite parameter value;
         the message names it, lists what is allowed and suggests the closest name.
     """
-    if name not in _REGISTRY:
+    if not isinstance(name, str) or name not in _REGISTRY:
         raise ModelError(
-            f"unknown model {name!r}{suggest(str(name), list(_REGISTRY))}; "
+            f"unknown model {shown(name)}{suggest(str(name), list(_REGISTRY))}; "
             f"built-in models are: {', '.join(_REGISTRY)}.")
     mod = _REGISTRY[name]
     opts = _default_options(mod)
+    for what, given in (("options", options), ("parameters", parameters)):
+        if given is not None and not isinstance(given, Mapping):
+            raise ModelError(f"model '{name}': {what} must be a table of name = value; got "
+                             f"{shown(given)}.")
     for k, v in dict(options or {}).items():
         if k not in mod.OPTIONS:
             allowed = ", ".join(mod.OPTIONS) or "(none)"
@@ -124,11 +128,12 @@ def make(name: str, *, parameters: Mapping[str, float] | None = None,
                 f"model '{name}' has no option {k!r}{suggest(str(k), list(mod.OPTIONS))}; "
                 f"its options are: {allowed}.")
         allowed_vals = mod.OPTIONS[k]["allowed"]
-        if v not in allowed_vals or isinstance(v, bool) != any(isinstance(a, bool) for a in allowed_vals):
+        if (isinstance(v, (list, dict, Mapping)) or v not in allowed_vals
+                or isinstance(v, bool) != any(isinstance(a, bool) for a in allowed_vals)):
             hint = suggest(str(v), [str(a) for a in allowed_vals])
             raise ModelError(
                 f"model '{name}': option '{k}' must be one of "
-                f"{', '.join(repr(a) for a in allowed_vals)}; got {v!r}{hint}.")
+                f"{', '.join(repr(a) for a in allowed_vals)}; got {shown(v)}{hint}.")
         opts[k] = v
     params = dict(mod.default_parameters(opts))
     for k, v in dict(parameters or {}).items():
@@ -136,10 +141,11 @@ def make(name: str, *, parameters: Mapping[str, float] | None = None,
             raise ModelError(
                 f"model '{name}' has no parameter {k!r}{suggest(str(k), list(params))}"
                 f" (with options {opts}); its parameters are: {', '.join(params) or '(none)'}.")
-        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(float(v)):
+        f = as_float(v)
+        if f is None or not math.isfinite(f):
             raise ModelError(
-                f"model '{name}': parameter '{k}' must be a finite number; got {v!r}.")
-        params[k] = float(v)
+                f"model '{name}': parameter '{k}' must be a finite number; got {shown(v)}.")
+        params[k] = f
     model = mod.build(params, opts)
     if not model.is_built:
         model.build()

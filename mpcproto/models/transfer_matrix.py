@@ -34,7 +34,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from .._specs import refuse_unknown_keys
+from .._specs import as_float, refuse_unknown_keys, shown
 from ..exceptions import ModelError
 from ..model import Model, suggest
 
@@ -74,15 +74,11 @@ class TransferElement:
                                 what=where, error=ModelError)
             if "gain" not in spec:
                 raise ModelError(f"{where}: an element needs a 'gain'; got {dict(spec)!r}.")
-            taus = spec.get("time_constants", spec.get("tau", ()))
-            if isinstance(taus, numbers.Real):
-                taus = (taus,)
-            el = cls(gain=spec["gain"], time_constants=tuple(taus), lead=spec.get("lead", 0.0),
+            taus = _taus(spec.get("time_constants", spec.get("tau", ())), where)
+            el = cls(gain=spec["gain"], time_constants=taus, lead=spec.get("lead", 0.0),
                      dead_time=spec.get("dead_time", 0.0))
         elif isinstance(spec, Sequence) and not isinstance(spec, str) and len(spec) == 3:
-            taus = spec[1]
-            taus = (taus,) if isinstance(taus, numbers.Real) else tuple(taus)
-            el = cls(gain=spec[0], time_constants=taus, dead_time=spec[2])
+            el = cls(gain=spec[0], time_constants=_taus(spec[1], where), dead_time=spec[2])
         else:
             raise ModelError(
                 f"{where}: expected a TransferElement, a dict (gain, time_constants, lead, dead_time), "
@@ -92,9 +88,8 @@ class TransferElement:
 
     def _check(self, where: str) -> None:
         def num(v, what, low=-math.inf, strict=False):
-            ok = isinstance(v, numbers.Real) and not isinstance(v, bool) and math.isfinite(float(v))
-            if ok:
-                ok = float(v) > low if strict else float(v) >= low
+            f = as_float(v)
+            ok = f is not None and math.isfinite(f) and (f > low if strict else f >= low)
             if not ok:
                 rel = ">" if strict else ">="
                 rng = "" if low == -math.inf else f" {rel} {low:g}"
@@ -111,6 +106,16 @@ class TransferElement:
         if self.lead != 0 and not self.time_constants:
             raise ModelError(f"{where}: a lead needs at least one time constant (the element would "
                              f"be improper); got lead={self.lead!r} and no time constant.")
+
+
+def _taus(v: Any, where: str) -> tuple:
+    """Time constants as a tuple: one number or a list of them."""
+    if isinstance(v, numbers.Real) and not isinstance(v, bool):
+        return (v,)
+    if isinstance(v, Sequence) and not isinstance(v, (str, bytes)):
+        return tuple(v)
+    raise ModelError(f"{where}: the time constants must be a number or a list of one or two "
+                     f"numbers; got {shown(v)}.")
 
 
 def _spec_list(items: Any, role: str, what: str) -> list[dict[str, Any]]:
