@@ -588,6 +588,10 @@ def fit_step_response(t: Sequence[float], y: Sequence[float], *, size: float, or
         raise SettingsError(f"{what}: t must be strictly increasing.")
     if isinstance(size, bool) or not isinstance(size, numbers.Real) or not math.isfinite(size) or size == 0:
         raise SettingsError(f"{what}: size must be a finite non-zero number; got {size!r}.")
+    for key, v in (("t_step", t_step), ("y0", y0)):
+        if (v is not None or key == "t_step") and (isinstance(v, bool) or not isinstance(v, numbers.Real)
+                                                   or not math.isfinite(v)):
+            raise SettingsError(f"{what}: {key} must be a finite number; got {v!r:.60}.")
     if y0 is None:
         before = np.nonzero(t <= t_step)[0]
         y0 = float(y[before[-1]] if before.size else y[0])

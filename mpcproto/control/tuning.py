@@ -200,13 +200,25 @@ def step_test(model: Any, op: Any, mv: str, *, size: float, Ts: float, duration:
 
 
 def _prep(t, y, at, size, y0, what):
-    t = np.asarray(t, float).reshape(-1)
-    y = np.asarray(y, float).reshape(-1)
+    try:
+        t = np.asarray(t, float).reshape(-1)
+        y = np.asarray(y, float).reshape(-1)
+    except (TypeError, ValueError):
+        raise SettingsError(f"{what}: t and y must be sequences of numbers; found "
+                            f"{shown(t)} and {shown(y)}.") from None
     if t.shape != y.shape or t.size < 5:
         raise SettingsError(f"{what}: t and y must be 1-D of the same length (>= 5); found "
                             f"{t.shape} and {y.shape}.")
-    if not (math.isfinite(size) and size != 0):
-        raise SettingsError(f"{what}: the step size must be finite and non-zero; found {size!r}.")
+    fs = as_float(size)
+    if fs is None or not math.isfinite(fs) or fs == 0:
+        raise SettingsError(f"{what}: the step size must be finite and non-zero; found {shown(size)}.")
+    fa = as_float(at)
+    if fa is None or not math.isfinite(fa):
+        raise SettingsError(f"{what}: 'at' (the time of the step) must be a finite number; found "
+                            f"{shown(at)}.")
+    if y0 is not None and (as_float(y0) is None or not math.isfinite(as_float(y0))):
+        raise SettingsError(f"{what}: 'y0' must be a finite number or None; found {shown(y0)}.")
+    size, at = fs, fa
     ok = np.isfinite(y)
     if ok.sum() < 5:
         raise SettingsError(f"{what}: fewer than 5 finite samples of the response.")
