@@ -88,6 +88,9 @@ DV_KEYS: dict[str, Any] = {"feedforward": True}
 #: for an MV's resting value
 _TARGET_REST_FACTOR = 1e-6
 
+#: samples an MV that did not follow its command stays limited at its position (readback)
+_NOT_FOLLOWING_HOLD = 5
+
 SOLVERS = ("osqp", "clarabel")
 FALLBACKS = ("shift", "hold")
 _OSQP_OPTIONS = ("eps_abs", "eps_rel", "eps_prim_inf", "eps_dual_inf", "max_iter", "polishing",
@@ -204,7 +207,8 @@ class PredictiveController:
     counts : dict
         Running totals since :meth:`reset`: steps, fallbacks, holds, inaccurate, failed solves,
         target fallbacks, rejected measurements, late measurements used, samples whose MV
-        readback differed from the command (``readback_differs``).
+        readback differed from the command (``readback_differs``), MVs found not following
+        their command (``mv_not_following``; limited at their position for 5 samples).
     """
 
     name = "mpc"
@@ -719,9 +723,14 @@ class PredictiveController:
         self._plan_scaled = None
         self._plan_age = 0
         self._target = None
+        nu = m.nu
+        self._ua_prev = self._u_prev.copy()
+        self._clamp_hi = np.full(nu, np.inf)
+        self._clamp_lo = np.full(nu, -np.inf)
+        self._clamp_left = np.zeros(nu, int)
         self.counts = {"steps": 0, "fallbacks": 0, "holds": 0, "inaccurate": 0, "failed_solves": 0,
                        "target_fallbacks": 0, "rejected_measurements": 0, "late_measurements": 0,
-                       "backup_solves": 0, "readback_differs": 0}
+                       "backup_solves": 0, "readback_differs": 0, "mv_not_following": 0}
 
     def _vec(self, v, n: int, what: str, fill: float) -> np.ndarray:
         if v is None:
@@ -834,8 +843,13 @@ class PredictiveController:
                 if not np.array_equal(ua, self._u_prev):
                     if self.counts["steps"] > 0:      # the estimator has predicted with u_prev
                         self.estimator_.revise_input(ua - op_u)
+                        self._note_not_following(self._u_prev, ua)
                     self._u_prev = ua
                     self.counts["readback_differs"] += 1
+                self._ua_prev = ua.copy()
+        if self._clamp_left.any():
+            mv_lo, mv_hi = self._clamped(mv_lo, mv_hi)
+            diag["mvs_not_following"] = [self._mv_names[j] for j in np.flatnonzero(self._clamp_left)]
         # ---- measured DVs (deviation); unknown / not fed forward -> 0
         dv = np.full(nd, np.nan) if dv is None else self._vec(dv, nd, "dv", np.nan)
         use = r["feedforward"] & np.isfinite(dv)
@@ -1122,6 +1136,32 @@ class PredictiveController:
         if self._plan is None:
             self._plan = self._plan_scaled * self._su_col + self._op_u[:, None]
         return self._plan.copy()
+
+    def _note_not_following(self, cmd, ua):
+        """Readback: an MV that did not move at all although a move was asked for (a stuck or
+        saturated valve) is limited at its position, in the direction it failed to go, for the
+        next ``_NOT_FOLLOWING_HOLD`` samples; then the plan may try it again (common practice of
+        MV readback, no source).  An actuator that moves but slowly is left alone."""
+        tol = 1e-6 * np.maximum(1.0, np.abs(ua))
+        still = np.abs(ua - self._ua_prev) <= tol
+        up = still & (cmd - ua > tol)
+        down = still & (ua - cmd > tol)
+        if up.any() or down.any():
+            self._clamp_hi = np.where(up, ua, self._clamp_hi)
+            self._clamp_lo = np.where(down, ua, self._clamp_lo)
+            self._clamp_left = np.where(up | down, _NOT_FOLLOWING_HOLD + 1, self._clamp_left)
+            self.counts["mv_not_following"] += int(up.sum() + down.sum())
+
+    def _clamped(self, lo, hi):
+        """MV limits with the not-following clamps applied (and counted down)."""
+        on = self._clamp_left > 0
+        hi2 = np.where(on, np.fmin(hi, self._clamp_hi), hi)
+        lo2 = np.where(on, np.fmax(lo, self._clamp_lo), lo)
+        lo2 = np.minimum(lo2, hi2)            # a clamp never makes the limits cross
+        self._clamp_left = np.maximum(self._clamp_left - 1, 0)
+        self._clamp_hi = np.where(self._clamp_left > 0, self._clamp_hi, np.inf)
+        self._clamp_lo = np.where(self._clamp_left > 0, self._clamp_lo, -np.inf)
+        return lo2, np.maximum(hi2, lo2)
 
     def _apply_limits(self, u, lo, hi, rate):
         up = self._u_prev
