@@ -181,8 +181,9 @@ class PredictiveController:
         ``polishing``, ``adaptive_rho``; Clarabel's own names with Clarabel).
     state_noise : float
         Estimator process noise on the plant states (>= 0), per squared state unit where one
-        unit of a state moves a CV by one CV ``scale`` (a mass fraction read as wt% thus gets
-        1e-4 of a level's noise); keep it well below ``disturbance_noise`` so that lasting
+        unit of a state a CV reads directly moves that CV by one CV ``scale`` (a mass fraction
+        read as wt% thus gets 1e-4 of a level's noise; states mixed into the CVs keep their
+        engineering unit); keep it well below ``disturbance_noise`` so that lasting
         errors go to the disturbance estimates (integral action).
     history : int
         Samples of estimator history for late measurements (>= 1).
@@ -621,20 +622,26 @@ class PredictiveController:
 
     @staticmethod
     def _noise_scales(C, sy, sx):
-        """Per state, the size of one CV scale in that state's units (``sy_i / |C_ij|``, the
-        smallest over the CVs that see it); states no CV sees directly take ``sx``.
+        """Per state, the size of one CV scale in that state's units, for a state that a CV reads
+        directly (the CV's row of ``C`` is mostly that state): ``sy_j / |C_ji|``; other states 1.
 
         The estimator's ``state_noise`` is per squared such unit: a mass fraction read as wt%
         (C = 100) gets a noise 1e4 times smaller than a level read in m, so that both mean the
-        same in the CVs.  (Not the QP's reach-based scales: on an open-loop unstable unit those
-        grow with the unstable mode and would drown the disturbance estimates.)
+        same in the CVs.  States mixed into the CVs (a realization's internal states) keep the
+        engineering unit.  (Not the QP's reach-based scales ``sx``: on an open-loop unstable
+        unit those grow with the unstable mode and would drown the disturbance estimates.)
         """
+        out = np.full(C.shape[1], np.inf)
         absC = np.abs(C)
-        tiny = 1e-12 * max(1.0, float(absC.max()) if absC.size else 1.0)
-        with np.errstate(divide="ignore"):
-            via_c = np.min(np.where(absC > tiny, sy[:, None] / np.where(absC > tiny, absC, 1.0),
-                                    np.inf), axis=0) if absC.size else np.full(len(sx), np.inf)
-        return np.where(np.isfinite(via_c), via_c, sx)
+        for j in range(absC.shape[0]):
+            row = absC[j]
+            tot = row.sum()
+            if tot <= 0:
+                continue
+            i = int(np.argmax(row))
+            if row[i] >= 0.9 * tot:                 # CV j reads state i (nearly) alone
+                out[i] = min(out[i], sy[j] / row[i])
+        return np.where(np.isfinite(out), out, 1.0)
 
     @staticmethod
     def _target_rest_weight(rest_weight, wq_s, su):
