@@ -13,10 +13,13 @@ import numbers
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+import numpy as np
+
 from .exceptions import SettingsError
 from .model import suggest
 
-__all__ = ["shown", "as_float", "choice", "number", "check_keys", "refuse_unknown_keys"]
+__all__ = ["shown", "as_float", "choice", "number", "check_keys", "refuse_unknown_keys",
+           "paired_series"]
 
 
 def refuse_unknown_keys(spec: Mapping[Any, Any], allowed: Sequence[str], *, what: str,
@@ -92,3 +95,25 @@ def number(spec: Mapping[str, Any], key: str, *, what: str, low: float = -math.i
         rel = ">" if strict_low else ">="
         raise SettingsError(f"{what}: '{key}' must be {rel} {low:g}; found {f:g}.")
     return f
+
+
+def paired_series(t: Any, y: Any, *, what: str, min_len: int = 5,
+                  finite_y: bool = True) -> tuple[np.ndarray, np.ndarray]:
+    """Sample times *t* and values *y* as 1-D float arrays of the same length (>= *min_len*).
+
+    *t* must be finite; *y* too unless *finite_y* is False (NaN readings are then left to the
+    caller).  Raises :class:`SettingsError` naming *what*, the expected form and what was found.
+    """
+    try:
+        ta = np.asarray(t, float).reshape(-1)
+        ya = np.asarray(y, float).reshape(-1)
+    except (TypeError, ValueError, OverflowError):
+        raise SettingsError(f"{what}: t and y must be sequences of numbers; found {shown(t)} and "
+                            f"{shown(y)}.") from None
+    if ta.shape != ya.shape or ta.size < min_len:
+        raise SettingsError(f"{what}: t and y must be 1-D of the same length (>= {min_len}); "
+                            f"found shapes {ta.shape} and {ya.shape}.")
+    if not np.all(np.isfinite(ta)) or (finite_y and not np.all(np.isfinite(ya))):
+        raise SettingsError(f"{what}: t{'' if not finite_y else ' and y'} must be finite; found "
+                            f"NaN or inf.")
+    return ta, ya

@@ -44,6 +44,7 @@ from typing import Any
 import casadi as ca
 import numpy as np
 
+from ._specs import paired_series
 from .exceptions import SettingsError, SimulationError
 from .linear import delay_samples, linearize
 from .model import suggest
@@ -575,15 +576,7 @@ def fit_step_response(t: Sequence[float], y: Sequence[float], *, size: float, or
     elif kind not in FIT_KINDS:
         raise SettingsError(f"{what}: kind must be one of {', '.join(FIT_KINDS)}; got {kind!r}"
                             f"{suggest(str(kind), FIT_KINDS)}.")
-    try:
-        t = np.asarray(t, float).reshape(-1)
-        y = np.asarray(y, float).reshape(-1)
-    except (TypeError, ValueError):
-        raise SettingsError(f"{what}: t and y must be sequences of numbers; got {type(t).__name__} "
-                            f"and {type(y).__name__}.") from None
-    if t.shape != y.shape or t.size < 5 or not (np.all(np.isfinite(t)) and np.all(np.isfinite(y))):
-        raise SettingsError(f"{what}: t and y must be finite and of the same length >= 5; "
-                            f"got shapes {t.shape} and {y.shape}.")
+    t, y = paired_series(t, y, what=what)
     if np.any(np.diff(t) <= 0):
         raise SettingsError(f"{what}: t must be strictly increasing.")
     if isinstance(size, bool) or not isinstance(size, numbers.Real) or not math.isfinite(size) or size == 0:

@@ -52,7 +52,7 @@ from typing import Any
 import numpy as np
 from scipy.optimize import brentq
 
-from .._specs import as_float, choice, refuse_unknown_keys, shown
+from .._specs import as_float, choice, paired_series, refuse_unknown_keys, shown
 from ..exceptions import SettingsError
 from ..model import suggest
 from .pid import PIDLoop
@@ -200,15 +200,7 @@ def step_test(model: Any, op: Any, mv: str, *, size: float, Ts: float, duration:
 
 
 def _prep(t, y, at, size, y0, what):
-    try:
-        t = np.asarray(t, float).reshape(-1)
-        y = np.asarray(y, float).reshape(-1)
-    except (TypeError, ValueError):
-        raise SettingsError(f"{what}: t and y must be sequences of numbers; found "
-                            f"{shown(t)} and {shown(y)}.") from None
-    if t.shape != y.shape or t.size < 5:
-        raise SettingsError(f"{what}: t and y must be 1-D of the same length (>= 5); found "
-                            f"{t.shape} and {y.shape}.")
+    t, y = paired_series(t, y, what=what, finite_y=False)
     fs = as_float(size)
     if fs is None or not math.isfinite(fs) or fs == 0:
         raise SettingsError(f"{what}: the step size must be finite and non-zero; found {shown(size)}.")
