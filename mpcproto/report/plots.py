@@ -77,18 +77,24 @@ def _unit(tr: Trajectory, name: str) -> str:
     return f" [{u}]" if u else ""
 
 
+def _panels(runs, kind: str, wanted, what: str, role: str, height: float):
+    """Checked runs, the first run, the panel names and a figure with one panel per name."""
+    items = _check(runs)
+    first = items[0][1]
+    names = list(wanted) if wanted is not None else first.names(kind)
+    if not names:
+        raise SettingsError(f"{what}: the trajectories have no {role} series ('{kind}.*').")
+    plt = _plt()
+    scale, tu = _time_axis(first)
+    fig, axes = plt.subplots(len(names), 1, figsize=(9, height * len(names) + 0.8), sharex=True,
+                             squeeze=False)
+    return items, first, names, plt, scale, tu, fig, axes
+
+
 def plot_cvs(runs: Mapping[str, Trajectory], path: str | Path, *, title: str | None = None,
              cvs: Sequence[str] | None = None, show_measured: bool = True) -> Path:
     """CVs of one or more runs with setpoints and shaded limit zones; returns the PNG path."""
-    items = _check(runs)
-    first = items[0][1]
-    names = list(cvs) if cvs is not None else first.names("y")
-    if not names:
-        raise SettingsError("plot_cvs: the trajectories have no CV series ('y.*').")
-    plt = _plt()
-    scale, tu = _time_axis(first)
-    fig, axes = plt.subplots(len(names), 1, figsize=(9, 2.3 * len(names) + 0.8), sharex=True,
-                             squeeze=False)
+    items, first, names, plt, scale, tu, fig, axes = _panels(runs, "y", cvs, "plot_cvs", "CV", 2.3)
     for ax, name in zip(axes[:, 0], names):
         lo = first.series("lo", name) if first.has("lo", name) else None
         hi = first.series("hi", name) if first.has("hi", name) else None
@@ -149,15 +155,7 @@ def plot_cvs(runs: Mapping[str, Trajectory], path: str | Path, *, title: str | N
 def plot_mvs(runs: Mapping[str, Trajectory], path: str | Path, *, title: str | None = None,
              mvs: Sequence[str] | None = None) -> Path:
     """Applied MVs of one or more runs with their operating limits; returns the PNG path."""
-    items = _check(runs)
-    first = items[0][1]
-    names = list(mvs) if mvs is not None else first.names("u")
-    if not names:
-        raise SettingsError("plot_mvs: the trajectories have no MV series ('u.*').")
-    plt = _plt()
-    scale, tu = _time_axis(first)
-    fig, axes = plt.subplots(len(names), 1, figsize=(9, 2.0 * len(names) + 0.8), sharex=True,
-                             squeeze=False)
+    items, first, names, plt, scale, tu, fig, axes = _panels(runs, "u", mvs, "plot_mvs", "MV", 2.0)
     for ax, name in zip(axes[:, 0], names):
         for i, (label, tr) in enumerate(items):
             c = PALETTE[i % len(PALETTE)]
