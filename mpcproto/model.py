@@ -459,6 +459,33 @@ class Model:
         """CV values at the given point."""
         return np.asarray(self.out_(*self._args(x, u, d, z, p)), float).reshape(-1)
 
+    def sampled_integrator(self, Ts: float, *, plugin: str | None = None,
+                           options: Mapping[str, Any] | None = None, label: str = "step") -> Any:
+        """CasADi integrator over one sample with the inputs held (zero-order hold).
+
+        The Function maps ``x0`` and the packed vector ``p = [u; d; z; parameters]`` to ``xf``.
+        *plugin* defaults to the model's own integrator (``model.integrator``); *options* are the
+        plugin's CasADi options.  An integrator that CasADi refuses raises
+        :class:`~mpcproto.exceptions.SettingsError` naming the plugin and options.
+        """
+        from .exceptions import SettingsError
+
+        self._require_built("sampled_integrator()")
+        plugin = plugin or self.integrator or "cvodes"
+        nx, nu, nd, nz = self.nx, self.nu, self.nd, self.nz
+        x = ca.SX.sym("x", nx)
+        pv = ca.SX.sym("p", nu + nd + nz + len(self.names("parameter")))
+        u, d = pv[:nu], pv[nu:nu + nd]
+        z, p = pv[nu + nd:nu + nd + nz], pv[nu + nd + nz:]
+        try:
+            return ca.integrator(f"{self.name}_{label}", plugin,
+                                 {"x": x, "p": pv, "ode": self.ode_(x, u, d, z, p)},
+                                 0.0, float(Ts), dict(options or {}))
+        except RuntimeError as exc:
+            raise SettingsError(
+                f"Model '{self.name}': cannot build the CasADi integrator {plugin!r} with options "
+                f"{dict(options or {})}: {str(exc).splitlines()[-1]}") from None
+
     def describe(self) -> dict[str, Any]:
         """Plain-data description: name, time unit, variables by role, delays."""
         return {

@@ -134,16 +134,9 @@ class ResponseTest:
 
 
 def _integrator(model, Ts: float):
-    nx, nu, nd, nz = model.nx, model.nu, model.nd, model.nz
-    npar = len(model.p)
-    x = ca.SX.sym("x", nx)
-    pv = ca.SX.sym("p", nu + nd + nz + npar)
-    u, d = pv[:nu], pv[nu:nu + nd]
-    z, p = pv[nu + nd:nu + nd + nz], pv[nu + nd + nz:]
     plugin = getattr(model, "integrator", "cvodes") or "cvodes"
     opts = {"abstol": 1e-11, "reltol": 1e-10} if plugin in ("cvodes", "idas") else {}
-    return ca.integrator(f"{model.name}_response", plugin,
-                         {"x": x, "p": pv, "ode": model.ode_(x, u, d, z, p)}, 0.0, float(Ts), opts)
+    return model.sampled_integrator(Ts, options=opts, label="response")
 
 
 def _positive(v: Any, what: str) -> float:

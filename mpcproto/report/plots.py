@@ -91,6 +91,15 @@ def _panels(runs, kind: str, wanted, what: str, role: str, height: float):
     return items, first, names, plt, scale, tu, fig, axes
 
 
+def _save(fig, plt, path: str | Path) -> Path:
+    fig.tight_layout()
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
+
+
 def plot_cvs(runs: Mapping[str, Trajectory], path: str | Path, *, title: str | None = None,
              cvs: Sequence[str] | None = None, show_measured: bool = True) -> Path:
     """CVs of one or more runs with setpoints and shaded limit zones; returns the PNG path."""
@@ -144,12 +153,7 @@ def plot_cvs(runs: Mapping[str, Trajectory], path: str | Path, *, title: str | N
     axes[-1, 0].set_xlabel(f"time [{tu}]")
     fig.suptitle(title or f"{first.meta.get('model', '')}: controlled variables "
                  f"(solid: true, faint: measured, dashed: setpoint)", fontsize=10)
-    fig.tight_layout()
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return path
+    return _save(fig, plt, path)
 
 
 def plot_mvs(runs: Mapping[str, Trajectory], path: str | Path, *, title: str | None = None,
@@ -173,12 +177,7 @@ def plot_mvs(runs: Mapping[str, Trajectory], path: str | Path, *, title: str | N
     axes[-1, 0].set_xlabel(f"time [{tu}]")
     fig.suptitle(title or f"{first.meta.get('model', '')}: manipulated variables "
                  f"(dotted: operating limits)", fontsize=10)
-    fig.tight_layout()
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return path
+    return _save(fig, plt, path)
 
 
 def plot_comparison(runs: Mapping[str, Trajectory], out_dir: str | Path, *,

@@ -104,27 +104,15 @@ class Plant:
 
     def _build(self, model: Any, opts: dict[str, Any]) -> tuple[Any, Any, Any]:
         nx, nu, nd, nz = model.nx, model.nu, model.nd, model.nz
-        npar = len(model.parameter_names)
-        x = ca.SX.sym("x", nx)
-        pv = ca.SX.sym("p", nu + nd + nz + npar)
-        u, d = pv[:nu], pv[nu:nu + nd]
-        z, p = pv[nu + nd:nu + nd + nz], pv[nu + nd + nz:]
-        ode = model.ode_(x, u, d, z, p)
-        try:
-            F = ca.integrator(f"{model.name}_plant", self.plugin, {"x": x, "p": pv, "ode": ode},
-                              0.0, self.Ts, opts)
-        except RuntimeError as exc:
-            raise SettingsError(
-                f"Plant: cannot build the CasADi integrator {self.plugin!r} for model "
-                f"'{model.name}' with options {opts}: {str(exc).splitlines()[-1]}") from None
+        F = model.sampled_integrator(self.Ts, plugin=self.plugin, options=opts, label="plant")
+        npv = nu + nd + nz + len(model.parameter_names)
         X0 = ca.MX.sym("x0", nx)
-        P = ca.MX.sym("p", pv.numel())
+        P = ca.MX.sym("p", npv)
         xf = F(x0=X0, p=P)["xf"]
         step = ca.Function(f"{model.name}_plant_step", [X0, P], [xf], ["x0", "p"], ["xf"])
         # one call per sample: integrate and evaluate the CVs at the end of the sample, with the
         # inputs q = [u; d; z; parameters] that will act at the start of the next one
         # one packed input and one packed output: each Python<->CasADi conversion costs time
-        npv = pv.numel()
         W = ca.MX.sym("w", nx + 2 * npv)
         X0w, Pw, Q = W[:nx], W[nx:nx + npv], W[nx + npv:]
         xfw = F(x0=X0w, p=Pw)["xf"]
