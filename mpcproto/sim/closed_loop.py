@@ -40,6 +40,7 @@ import numpy as np
 from ..control.base import Measurement, Targets, ControlOutput, accepts_readback
 from ..exceptions import MpcprotoError, SettingsError, SimulationError
 from ..linear import delay_samples
+from .._specs import refuse_unknown_keys
 from ..model import suggest
 from ..operating import OperatingPoint
 from ..trajectory import RUN_FAILED, RUN_OK, Trajectory
@@ -206,18 +207,14 @@ class ClosedLoop:
                 self.SP[:, j] = np.nan if sps[n] is None else self._series(sps[n], op.y[j], f"setpoints.{n}")
         self.LO, self.HI = self._limit_series(cv_limits, "cv", "cv_limits")
         self.MVLO, self.MVHI = self._limit_series(mv_limits, "mv", "mv_limits", allow_rate=True)
-        bad = np.argwhere(self.LO > self.HI)
-        if bad.size:
-            k, j = bad[0]
-            raise SettingsError(
-                f"cv_limits.{m.cv_names[j]}: low ({self.LO[k, j]:g}) is above high "
-                f"({self.HI[k, j]:g}) at t={self.times[k]:g}.")
-        bad = np.argwhere(self.MVLO > self.MVHI)
-        if bad.size:
-            k, j = bad[0]
-            raise SettingsError(
-                f"mv_limits.{m.mv_names[j]}: low ({self.MVLO[k, j]:g}) is above high "
-                f"({self.MVHI[k, j]:g}) at t={self.times[k]:g}.")
+        for arg, names, LO, HI in (("cv_limits", m.cv_names, self.LO, self.HI),
+                                   ("mv_limits", m.mv_names, self.MVLO, self.MVHI)):
+            bad = np.argwhere(LO > HI)
+            if bad.size:
+                k, j = bad[0]
+                raise SettingsError(
+                    f"{arg}.{names[j]}: low ({LO[k, j]:g}) is above high "
+                    f"({HI[k, j]:g}) at t={self.times[k]:g}.")
 
     def _limit_series(self, spec: Mapping[str, Any] | None, role: str, arg: str,
                       allow_rate: bool = False) -> tuple[np.ndarray, np.ndarray]:
@@ -235,10 +232,7 @@ class ClosedLoop:
             if not isinstance(s, Mapping):
                 raise SettingsError(f"{arg}.{n}: expected a table with keys {', '.join(allowed)}; "
                                     f"found {s!r}.")
-            for k in s:
-                if k not in allowed:
-                    raise SettingsError(f"{arg}.{n}: unknown key '{k}'{suggest(str(k), allowed)}; "
-                                        f"allowed keys: {', '.join(allowed)}.")
+            refuse_unknown_keys(s, allowed, what=f"{arg}.{n}")
             if "low" in s and s["low"] is not None:
                 LO[:, j] = self._series(s["low"], plo[j], f"{arg}.{n}.low")
             if "high" in s and s["high"] is not None:
