@@ -13,21 +13,11 @@ import numpy as np
 import pytest
 
 import mpcproto as mp
+from _plants import first_order, op0
 
 STUCK = {"kind": "valve_stuck", "variable": "u", "at": 5.0, "until": 150.0, "position": 0.0}
 
 
-def first_order(K=1.0, tau=10.0):
-    m = mp.Model("lag1", time_unit="s")
-    x = m.state("x", nominal=0.0)
-    u = m.mv("u", nominal=0.0, low=-5, high=5)
-    m.derivative(x, (K * u - x) / tau)
-    m.cv("y", x)
-    return m.build()
-
-
-def op0(m):
-    return mp.OperatingPoint.at(m, m.nominal("state"), m.nominal("mv"), m.nominal("dv"))
 
 
 def pid_run(readback):

@@ -105,6 +105,15 @@ def png_data_uri(png: bytes) -> str:
     return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
 
 
+def _plain_axes(ax, grid_axis: str, grid_width: float, label_size: int) -> None:
+    """The report's chart style: light grid behind the data, no top/right frame, ink ticks."""
+    ax.grid(True, axis=grid_axis, color=COLOURS["grid"], linewidth=grid_width)
+    ax.set_axisbelow(True)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.tick_params(labelsize=label_size, colors=COLOURS["ink"])
+
+
 def _fig_png(fig) -> bytes:
     from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: PLC0415 - lazy, Agg only
 
@@ -251,11 +260,7 @@ def _chart_parameters(scen: str, recs: Sequence[Mapping[str, Any]], max_params: 
             if j == 0:
                 ax.set_ylabel(lab if len(lab) <= 28 else lab[:27] + "\u2026", fontsize=9,
                               color=COLOURS["ink"])
-            ax.grid(True, color=COLOURS["grid"], linewidth=0.7)
-            ax.set_axisbelow(True)
-            for side in ("top", "right"):
-                ax.spines[side].set_visible(False)
-            ax.tick_params(labelsize=8, colors=COLOURS["ink"])
+            _plain_axes(ax, "both", 0.7, 8)
     fig.suptitle(f"{scen}: key criteria against the study parameters (dashed: the limit)",
                  x=0.01, ha="left", fontsize=11, color=COLOURS["ink"])
     return _fig_png(fig)
@@ -298,11 +303,7 @@ def _chart_iae(scen: str, recs: Sequence[Mapping[str, Any]], max_cvs: int = 4) -
             ax.set_xlim(0.4, len(ctls) + 0.6)
             ax.set_ylim(bottom=0)
         ax.set_title(f"IAE of {cv}", fontsize=10, color=COLOURS["ink"])
-        ax.grid(True, axis="y", color=COLOURS["grid"], linewidth=0.8)
-        ax.set_axisbelow(True)
-        for side in ("top", "right"):
-            ax.spines[side].set_visible(False)
-        ax.tick_params(labelsize=9, colors=COLOURS["ink"])
+        _plain_axes(ax, "y", 0.8, 9)
     fig.suptitle(f"{scen}: integral of absolute error over the cases (lower is better)",
                  x=0.01, ha="left", fontsize=11, color=COLOURS["ink"])
     return _fig_png(fig)
