@@ -299,10 +299,32 @@ def _unavailable(cmd: str, why: str) -> int:
     return EXIT_INTERNAL
 
 
+def _plain_warnings(prefix: str) -> None:
+    """Show each distinct warning once as ``<prefix>: warning: <message>`` (no source lines).
+
+    A user of the command line wants the message (a dead time rounded to whole samples, a draw
+    clipped to its bounds), not the line of mpcproto that raised it.  Forked batch workers inherit
+    this, so their warnings read the same.
+    """
+    import warnings
+
+    seen: set[str] = set()
+
+    def show(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
+        text = str(message)
+        if text in seen:
+            return
+        seen.add(text)
+        print(f"{prefix}: warning: {text}", file=file or sys.stderr)
+
+    warnings.showwarning = show
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``mpcproto`` command; returns the exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
+    _plain_warnings(f"mpcproto {args.command}")
     try:
         return int(args.handler(args))
     except MpcprotoError as e:
