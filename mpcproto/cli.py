@@ -201,6 +201,35 @@ def _check_out_dir(out: str) -> None:
                             f"'{parent}' is a file, so no directory can be made below it.")
 
 
+#: What the number printed beside each check is (the limit is in the same terms).
+_VALUE_MEANS = {
+    "iae_below": "IAE, CV unit x time unit",
+    "ise_below": "ISE, CV unit squared x time unit",
+    "itae_below": "ITAE, CV unit x time unit squared",
+    "max_error_below": "largest |setpoint - CV|, CV unit",
+    "settling_time_below": "time unit",
+    "overshoot_below": "fraction of the setpoint step",
+    "peak_below": "highest true value, variable's unit",
+    "low_above": "lowest true value, variable's unit",
+    "travel_below": "total MV travel, MV unit",
+    "no_limit_violation": "number of limit-violation events",
+    "no_solver_failure": "number of failed or fallback steps",
+    "solve_time_below": "slowest step as a fraction of the sample time",
+    "better_than": "% by which the KPI is lower than the other controller's",
+    "run_completed": "the simulation ended early",
+}
+
+
+def _print_verdict(cr: dict[str, Any], label: str) -> None:
+    mark = "pass" if cr["passed"] else "FAIL"
+    who = f"{label:<10s} " if label else ""
+    means = _VALUE_MEANS.get(str(cr.get("check", "")))
+    print(f"{mark}  {who}{cr['name']}: {_fmt(cr['value'])} (limit {_fmt(cr['limit'])}"
+          f"{'; ' + means if means else ''})")
+    if cr.get("message"):
+        print(f"      {cr['message']}")
+
+
 def _cmd_run(args: argparse.Namespace) -> int:
     from .scenario import load_scenario, run_scenario
 
@@ -214,11 +243,9 @@ def _cmd_run(args: argparse.Namespace) -> int:
         return EXIT_BAD_INPUT
     for label, res in summary["controllers"].items():
         for cr in res["criteria"]:
-            mark = "pass" if cr["passed"] else "FAIL"
-            print(f"{mark}  {label:<10s} {cr['name']}: {_fmt(cr['value'])} (limit {_fmt(cr['limit'])})")
+            _print_verdict(cr, label)
     for cr in summary.get("comparisons", []):
-        mark = "pass" if cr["passed"] else "FAIL"
-        print(f"{mark}  {cr['name']}: {_fmt(cr['value'])} (limit {_fmt(cr['limit'])})")
+        _print_verdict(cr, "")
     print(f"{'PASSED' if summary['passed'] else 'FAILED'}: {summary['scenario']} "
           f"({summary['elapsed_s']:.1f} s); results in {args.out}")
     from .scenario import count_cases

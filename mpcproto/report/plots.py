@@ -151,8 +151,9 @@ def plot_cvs(runs: Mapping[str, Trajectory], path: str | Path, *, title: str | N
         ax.grid(True, lw=0.3, alpha=0.6)
     axes[0, 0].legend(loc="best", fontsize=8, ncol=min(4, len(items) + 1))
     axes[-1, 0].set_xlabel(f"time [{tu}]")
-    fig.suptitle(title or f"{first.meta.get('model', '')}: controlled variables "
+    fig.suptitle(f"{title or first.meta.get('model', '')}: controlled variables "
                  f"(solid: true, faint: measured, dashed: setpoint)", fontsize=10)
+    _caution_note(fig)
     return _save(fig, plt, path)
 
 
@@ -175,9 +176,16 @@ def plot_mvs(runs: Mapping[str, Trajectory], path: str | Path, *, title: str | N
         ax.grid(True, lw=0.3, alpha=0.6)
     axes[0, 0].legend(loc="best", fontsize=8, ncol=min(4, len(items)))
     axes[-1, 0].set_xlabel(f"time [{tu}]")
-    fig.suptitle(title or f"{first.meta.get('model', '')}: manipulated variables "
+    fig.suptitle(f"{title or first.meta.get('model', '')}: manipulated variables "
                  f"(dotted: operating limits)", fontsize=10)
+    _caution_note(fig)
     return _save(fig, plt, path)
+
+
+def _caution_note(fig) -> None:
+    """A one-line footnote: a figure lifted out of its report still says what it is."""
+    fig.text(0.995, 0.003, "simulation of a model only, not evidence that a controller is safe "
+             "on a real unit", ha="right", va="bottom", fontsize=6.5, color="#666666")
 
 
 def plot_comparison(runs: Mapping[str, Trajectory], out_dir: str | Path, *,
