@@ -326,32 +326,46 @@ def _unavailable(cmd: str, why: str) -> int:
     return EXIT_INTERNAL
 
 
-def _plain_warnings(prefix: str) -> None:
+def _plain_warnings(prefix: str):
     """Show each distinct warning once as ``<prefix>: warning: <message>`` (no source lines).
 
     A user of the command line wants the message (a dead time rounded to whole samples, a draw
-    clipped to its bounds), not the line of mpcproto that raised it.  Forked batch workers inherit
-    this, so their warnings read the same.
+    clipped to its bounds), not the line of mpcproto that raised it.  Only the *format* is
+    replaced, so a caller that records warnings (``warnings.catch_warnings(record=True)``,
+    ``pytest.warns``) still receives them; :func:`main` restores the previous format on return.
+    Forked batch workers inherit this, so their warnings read the same.  Returns the previous
+    ``warnings.formatwarning``.
     """
     import warnings
 
     seen: set[str] = set()
+    previous = warnings.formatwarning
 
-    def show(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
+    def fmt(message, category, filename, lineno, line=None):  # noqa: ARG001
         text = str(message)
         if text in seen:
-            return
+            return ""
         seen.add(text)
-        print(f"{prefix}: warning: {text}", file=file or sys.stderr)
+        return f"{prefix}: warning: {text}\n"
 
-    warnings.showwarning = show
+    warnings.formatwarning = fmt
+    return previous
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``mpcproto`` command; returns the exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
-    _plain_warnings(f"mpcproto {args.command}")
+    import warnings
+
+    previous_format = _plain_warnings(f"mpcproto {args.command}")
+    try:
+        return _run_handler(args)
+    finally:
+        warnings.formatwarning = previous_format
+
+
+def _run_handler(args: argparse.Namespace) -> int:
     try:
         return int(args.handler(args))
     except MpcprotoError as e:
