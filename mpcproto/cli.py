@@ -101,12 +101,14 @@ def _fmt(v: Any) -> str:
     return f"{v:.4g}"
 
 
-def _print_matrix(title: str, M: list, rows: Sequence[str], cols: Sequence[str]) -> None:
+def _print_matrix(title: str, M: list, rows: Sequence[str], cols: Sequence[str],
+                  none: str = "inf") -> None:
     print(f"{title}:")
     if not M or not cols or not rows:
         print("    (empty)")
         return
-    table = [("",) + tuple(cols)] + [(r,) + tuple(_fmt(v) for v in row) for r, row in zip(rows, M)]
+    table = [("",) + tuple(cols)] + [(r,) + tuple(none if v is None else _fmt(v) for v in row)
+                                     for r, row in zip(rows, M)]
     widths = [max(len(str(t[i])) for t in table) for i in range(len(table[0]))]
     for t in table:
         print("    " + "  ".join(str(c).ljust(w) if i == 0 else str(c).rjust(w)
@@ -150,23 +152,33 @@ def _cmd_linearize(args: argparse.Namespace) -> int:
     dsc = rep["discrete"]
     _print_matrix(f"A (discrete, Ts={dsc['Ts']:g})", dsc["A"], n["discrete_states"], n["discrete_states"])
     _print_matrix("B (discrete)", dsc["B"], n["discrete_states"], n["mvs"])
-    _print_matrix("steady-state gain dCV/dMV (inf: integrating)", rep["gain"], n["cvs"], n["mvs"])
+    _print_matrix("steady-state gain dCV/dMV (integ: the CV integrates, no steady-state gain)",
+                  rep["gain"], n["cvs"], n["mvs"], none="integ")
     if n["dvs"]:
-        _print_matrix("steady-state gain dCV/dDV", rep["dv_gain"], n["cvs"], n["dvs"])
+        _print_matrix("steady-state gain dCV/dDV", rep["dv_gain"], n["cvs"], n["dvs"], none="integ")
     print(f"poles: {_cplx_str(rep['poles'])}")
     print(f"transmission zeros: {_cplx_str(rep['zeros'])}")
     if rep["rga"] is not None:
         _print_matrix("relative gain array", rep["rga"], n["cvs"], n["mvs"])
     else:
         print(f"relative gain array: {rep['rga_note']}")
-    print("pairs (CV <- MV): gain, time constants, dead time")
+    tu = rep["time_unit"]
+    print(f"pairs (CV <- MV): steady-state gain, time constants [{tu}], dead time [{tu}]")
     for p in rep["pairs"]:
         if not p["connected"]:
             continue
         taus = ", ".join(f"{t:.4g}" for t in p["time_constants"]) or "-"
-        integ = any(abs(re_) < 1e-12 and abs(im) < 1e-12 for re_, im in p["poles"])
-        print(f"    {p['cv']:<16s} <- {p['mv']:<16s} gain {_fmt(p['gain']):>10s}   "
-              f"tau [{taus}]   dead time {p['dead_time']:g}" + ("   integrating" if integ else ""))
+        integ = p.get("integrating")
+        if integ is None:
+            integ = any(abs(re_) < 1e-12 and abs(im) < 1e-12 for re_, im in p["poles"])
+        gain = "integ" if p["gain"] is None else _fmt(p["gain"])
+        tail = ""
+        if integ:
+            rate = p.get("ramp_rate")
+            tail = ("   integrating" + (f" (ramp rate {rate:.4g} per unit MV per {tu})"
+                                         if isinstance(rate, (int, float)) else ""))
+        print(f"    {p['cv']:<16s} <- {p['mv']:<16s} gain {gain:>10s}   "
+              f"tau [{taus}]   dead time {p['dead_time']:g}" + tail)
     return EXIT_OK
 
 

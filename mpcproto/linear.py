@@ -71,7 +71,8 @@ def rga(K: np.ndarray) -> np.ndarray:
     if K.ndim != 2 or K.shape[0] != K.shape[1]:
         raise SettingsError(f"rga(): the gain matrix must be square; got shape {K.shape}.")
     if not np.all(np.isfinite(K)):
-        raise SettingsError("rga(): the gain matrix has non-finite entries (an integrating channel?).")
+        raise SettingsError("rga(): the RGA is not defined: the steady-state gain matrix has "
+                                "non-finite entries (a CV that integrates has no steady-state gain).")
     if np.linalg.cond(K) > 1e12:
         raise SettingsError("rga(): the gain matrix is singular; no relative gain array exists.")
     return K * np.linalg.inv(K).T
