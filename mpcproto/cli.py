@@ -186,9 +186,20 @@ def _cmd_linearize(args: argparse.Namespace) -> int:
 def _cmd_check(args: argparse.Namespace) -> int:
     from .scenario import check_scenario, count_cases, load_scenario
 
+    import warnings
+
     for path in args.scenarios:
         scn = load_scenario(path)
-        check_scenario(scn, build_controllers=not args.no_controllers)
+        # several files in one call: say which file each warning belongs to
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            check_scenario(scn, build_controllers=not args.no_controllers)
+        shown: set[str] = set()
+        for w in caught:
+            text = str(w.message)
+            if text not in shown:
+                shown.add(text)
+                print(f"mpcproto check: warning: {path}: {text}", file=sys.stderr)
         n, nf = count_cases(scn), count_cases(scn, full=True)
         print(f"ok: {path}: scenario {scn.name}, model {scn.data['plant']['model']}, "
               f"{len(scn.data['controllers'])} controller(s), {len(scn.data['criteria'])} "
