@@ -548,8 +548,9 @@ def write_html_report(records: Iterable[Mapping[str, Any]], path: str | os.PathL
 
     # per scenario
     rows = ["<table><tr><th>scenario</th><th class='num'>cases</th><th class='num'>passed</th>"
-            "<th class='num'>failed</th><th class='num'>errors</th><th class='num'>closest to a limit"
-            "</th><th class='num'>median run time</th></tr>"]
+            "<th class='num'>failed</th><th class='num'>errors</th><th class='num' title='the largest "
+            "share of a limit any criterion uses in any case (value / limit; 100 % is at the limit)'>"
+            "most of a limit used</th><th class='num'>median run time</th></tr>"]
     for s, c in by_scen.items():
         us = [u for u in (_worst_criterion(r)[0] for r in scen_recs[s] if case_verdict(r) != "error")
               if not math.isnan(u)]
@@ -561,7 +562,9 @@ def write_html_report(records: Iterable[Mapping[str, Any]], path: str | os.PathL
                     f"<td class='num'>{c['passed']}</td><td class='num'>{c['failed']}</td>"
                     f"<td class='num'>{c['error']}</td><td class='num'>{worst}</td>"
                     f"<td class='num'>{med}</td></tr>")
-    rows.append("</table>")
+    rows.append("</table><p class='small'>most of a limit used: the largest value / limit of any "
+                "criterion in any case of the scenario (100 % is at the limit; checks on the highest or "
+                "lowest value of a variable are not counted).</p>")
     parts.append("<section><h2>Scenarios</h2>" + "".join(rows) + "</section>")
 
     if baseline is not None:
