@@ -336,10 +336,19 @@ def check_scenario(scn: Scenario | str | Path, *, build_controllers: bool = True
         for label, spec in scn.data["controllers"].items():
             build_controller(label, spec, prep)
     if scn.data["study"]["sweep"] or scn.data["study"]["draw"]:
-        from .study import check_case, iter_cases
+        from .build import controller_model, plant_model
+        from .study import _blame, check_case, iter_cases
 
         for i, c in enumerate(iter_cases(scn, full=True)):
-            check_case(c)
+            sc = check_case(c)
+            if any(k.startswith(("plant.", "controller_model.")) for k in c.params):
+                # a swept or drawn parameter must exist and lie within its bounds (the models are
+                # cheap to make; the operating point of every case is left to the run)
+                try:
+                    plant_model(sc)
+                    controller_model(sc)
+                except ScenarioError as e:
+                    raise _blame(e, c) from None
             if i >= 1000:
                 break
     return prep
