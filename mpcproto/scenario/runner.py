@@ -214,6 +214,16 @@ def _check_specs(scn: Scenario, plant: Any = None) -> dict[str, Any]:
                 f"expected {'an' if role == 'mv' else 'a'} {role.upper()} of model '{plant.name}' for a {f.kind} fault "
                 f"({', '.join(names)}); found '{f.variable}'{suggest(f.variable, names)}.",
                 file=scn.file, key=f"faults.{k}.variable")
+        pos = getattr(f, "position", None)
+        if f.kind == "valve_stuck" and pos is not None:
+            lo, hi = plant.bounds("mv")
+            j = list(plant.mv_names).index(f.variable)
+            if (math.isfinite(lo[j]) and pos < lo[j]) or (math.isfinite(hi[j]) and pos > hi[j]):
+                unit = plant.variables("mv")[j].unit
+                raise ScenarioError(
+                    f"expected a stuck position within the physical range of '{f.variable}' "
+                    f"[{lo[j]:g}, {hi[j]:g}] {unit} (a valve cannot stick beyond its travel); "
+                    f"found {pos:g}.", file=scn.file, key=f"faults.{k}.position")
         faults.append(f)
     return {"dvs": dvs, "setpoints": setpoints, "cv_limits": cv_limits, "mv_limits": mv_limits,
             "instruments": instruments, "actuators": actuators, "faults": faults}

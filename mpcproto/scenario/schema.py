@@ -613,6 +613,10 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         for ck in ("clip_low", "clip_high"):
             if ck in dr:
                 entry[ck] = c.number(dr[ck], f"{key}.{ck}")
+        if ("clip_low" in entry and "clip_high" in entry and isinstance(entry["clip_low"], float)
+                and isinstance(entry["clip_high"], float) and not entry["clip_low"] < entry["clip_high"]):
+            c.fail(f"{key}.clip_high", f"a value above clip_low ({entry['clip_low']:g})",
+                   _show(dr["clip_high"]))
         draw_specs.append(entry)
     if draw_specs and draws == 0 and full_draws == 0:
         c.fail("study.draws", "a number of Monte Carlo draws >= 1 (study.draw entries are given)", "0")

@@ -424,7 +424,10 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
         if isinstance(c, int) and not isinstance(c, bool):
             if 0 <= c < len(header):
                 return c
-            raise SettingsError(f"{w}: {key} {c} is out of range; the file has {len(header)} columns.")
+            hint = (" (is the file separated by something other than commas? mpcproto reads "
+                    "comma-separated values)" if len(header) == 1 else "")
+            raise SettingsError(f"{w}: {key} {c} is out of range; the file has {len(header)} "
+                                f"column(s){hint}.")
         if c in header:
             return header.index(c)
         raise SettingsError(
