@@ -141,6 +141,19 @@ def operating_point(scn: Scenario, model: Model | None = None):
     check_names(scn, model, "operating_point.dvs", "dv", op["dvs"])
     check_names(scn, model, "operating_point.targets", "cv", op["targets"])
     check_names(scn, model, "operating_point.state_guess", "state", op["state_guess"])
+    for section, role in (("mvs", "mv"), ("dvs", "dv")):
+        # a value outside the variable's physical range cannot be an operating point
+        for v in model.variables(role):
+            if v.name not in op[section]:
+                continue
+            val = float(op[section][v.name])
+            lo = v.low if v.low is not None else -np.inf
+            hi = v.high if v.high is not None else np.inf
+            if (np.isfinite(lo) and val < lo) or (np.isfinite(hi) and val > hi):
+                raise ScenarioError(
+                    f"expected a value within the physical range of '{v.name}' [{lo:g}, {hi:g}] "
+                    f"{v.unit} (mpcproto models lists it); found {val:g}.",
+                    file=scn.file, key=f"operating_point.{section}.{v.name}")
     u = model.vector("mv", op["mvs"])
     d = model.vector("dv", op["dvs"])
     xg = model.vector("state", op["state_guess"]) if op["state_guess"] else None
