@@ -742,6 +742,16 @@ def _cmd_batch(args) -> int:
     if args.baseline is not None and not Path(args.baseline).is_file():
         raise ScenarioError("expected the results.jsonl of an earlier batch (--baseline); found no "
                             "such file.", file=args.baseline)
+    if args.baseline is not None:
+        # a wrong file given as the baseline would otherwise compare nothing and pass
+        with warnings.catch_warnings(record=True) as skipped:
+            warnings.simplefilter("always")
+            n_base = len(load_results(args.baseline))
+        if n_base == 0:
+            raise ScenarioError(
+                "expected the results.jsonl of an earlier batch (--baseline): one JSON record with "
+                f"a '{ID_KEY}' per line; found no such record ({len(skipped)} line(s) skipped).",
+                file=args.baseline)
     files = _scenario_files(args.paths)
     cases, _ = _load_cases(files, args.full)
     ids = [case_id_of(c) for c in cases]
@@ -780,6 +790,9 @@ def _cmd_batch(args) -> int:
         comparison = compare_with_baseline(records, args.baseline, rtol=args.tolerance,
                                            atol=args.abs_tolerance)
         comparison.baseline_file = str(args.baseline)
+        if comparison.cases_compared == 0:
+            print(f"mpcproto batch: warning: the baseline {args.baseline} has none of these cases' "
+                  f"ids; nothing was compared with it.", file=sys.stderr)
     if args.junit:
         write_junit(records, args.junit, baseline=comparison)
     images = [] if args.no_trajectories else _worst_case_images(records, cases)
