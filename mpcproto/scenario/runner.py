@@ -476,6 +476,7 @@ def find_case(scn: Scenario, case_id: str) -> Case:
                 return c
             if c.case_id not in ids:
                 ids.append(c.case_id)
+    ids.sort()
     shown = ", ".join(ids[:6]) + (f", ... ({len(ids)} in all)" if len(ids) > 6 else "")
     raise ScenarioError(
         f"expected, for --case, the id of a case of this study ({shown}); found {case_id!r}"
