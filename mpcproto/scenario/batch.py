@@ -813,8 +813,14 @@ def _cmd_batch(args) -> int:
     for cid in outcome.error_ids[:10]:
         rec = next((r for r in records if r.get("case_id") == cid), {})
         print(f"  error  {cid}: {rec.get('message', '')}")
+    from ..report.summary import criteria_of  # noqa: PLC0415
+
     for cid in outcome.failed_ids[:10]:
-        print(f"  FAIL   {cid}")
+        rec = next((r for r in records if r.get("case_id") == cid), {})
+        failed = [f"{label + ': ' if label else ''}{cr.get('name')}" for label, cr in criteria_of(rec)
+                  if cr.get("passed") is False]
+        print(f"  FAIL   {cid}" + (f": {', '.join(failed[:4])}" + (", ..." if len(failed) > 4 else "")
+                                   if failed else ""))
     if comparison:
         for r in comparison.regressions[:10]:
             print(f"  WORSE  {r.describe()}")
