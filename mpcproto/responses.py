@@ -245,8 +245,9 @@ def open_loop_test(model, op: OperatingPoint, mv: str, *, kind: str = "step", si
         dlin = lin.discretize(Ts, dead_time="round")
     if rec:
         notes.extend(sorted({str(r.message) for r in rec}))
-        warnings.warn(f"open_loop_test(): {len(rec)} dead time(s) rounded to whole samples of "
-                      f"Ts = {Ts:g}; see ResponseTest.notes.", stacklevel=2)
+        n_dt = sum(1 for dl in model.delays if abs(dl.dead_time / Ts - round(dl.dead_time / Ts)) > 1e-9)
+        warnings.warn(f"open_loop_test(): the step tests round {n_dt or len(rec)} dead time(s) to "
+                      f"whole samples of Ts = {Ts:g} (listed in ResponseTest.notes).", stacklevel=2)
     src = [(dl.source_role, model.names(dl.source_role).index(dl.source)) for dl in model.delays]
     U = np.tile(op.u, (N, 1))
     D = np.tile(op.d, (N, 1))
