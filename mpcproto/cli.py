@@ -61,7 +61,8 @@ def _models_data() -> list[dict[str, Any]]:
 def _cmd_models(args: argparse.Namespace) -> int:
     data = _models_data()
     if args.json:
-        print(json.dumps(data, indent=2))
+        # standard JSON has no NaN/Infinity: a CV has no nominal value (null), an open bound is null
+        print(json.dumps(_finite_or_null(data), indent=2, allow_nan=False))
         return EXIT_OK
     for d in data:
         print(f"{d['name']}  ({d['time_unit']})  {d['description']}")
@@ -84,6 +85,17 @@ def _cmd_models(args: argparse.Namespace) -> int:
         _print_table(rows, indent=4)
         print()
     return EXIT_OK
+
+
+def _finite_or_null(obj: Any) -> Any:
+    """A copy of *obj* (dicts, lists, numbers) with NaN and infinite floats replaced by None."""
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: _finite_or_null(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite_or_null(v) for v in obj]
+    return obj
 
 
 def _print_table(rows: Sequence[Sequence[str]], indent: int = 0) -> None:
