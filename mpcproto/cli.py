@@ -272,7 +272,9 @@ def _cmd_run(args: argparse.Namespace) -> int:
     _check_out_dir(args.out)
     summary = run_scenario(scn, args.out, plots=not args.no_plots, ci=args.ci, case_id=args.case)
     for w in summary.get("warnings", []):
-        print(f"mpcproto run: warning: {w}", file=sys.stderr)
+        # summary.json keeps the warning's category ("UserWarning: ..."); a reader wants the text
+        text = w.split(": ", 1)[1] if w.split(": ", 1)[0].endswith("Warning") else w
+        print(f"mpcproto run: warning: {text}", file=sys.stderr)
     if summary["status"] != "ok":
         print(f"mpcproto run: error: {summary['message']}", file=sys.stderr)
         return EXIT_BAD_INPUT

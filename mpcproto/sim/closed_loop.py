@@ -254,7 +254,7 @@ class ClosedLoop:
         ins = [self.instruments[n] for n in m.cv_names]
         self._alpha = np.array([math.exp(-Ts / i.lag) if i.lag > 0 else 0.0 for i in ins])
         self._bias = np.array([i.bias for i in ins])
-        self._dl = [delay_samples(i.dead_time, Ts, what=f"instrument dead time on {n}")
+        self._dl = [delay_samples(i.dead_time, Ts, what=f"instrument dead time on '{n}'")
                     for i, n in zip(ins, m.cv_names)]
         self._per = [max(1, delay_samples(i.period, Ts, what=f"analyzer period on {n}"))
                      if i.period else 1 for i, n in zip(ins, m.cv_names)]

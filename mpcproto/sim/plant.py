@@ -88,7 +88,8 @@ class Plant:
             if len(_CACHE) >= _CACHE_SIZE:
                 _CACHE.pop(next(iter(_CACHE)))
             _CACHE[key] = (model.ode_, model.out_, self.integrator_, self.step_, self.step_out_)
-        self.delay_steps_ = [delay_samples(dl.dead_time, self.Ts, what=f"dead time on {dl.source}")
+        self.delay_steps_ = [delay_samples(dl.dead_time, self.Ts,
+                                           what=f"plant simulation's dead time on '{dl.source}'")
                              for dl in model.delays]
         self._z_src = [(dl.source_role, model.names(dl.source_role).index(dl.source))
                        for dl in model.delays]
