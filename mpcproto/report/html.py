@@ -392,7 +392,10 @@ def _case_table(recs: Sequence[Mapping[str, Any]], max_rows: int, linked: int = 
             crit_cell = f'<span class="msg">{_e(rec.get("message", ""))}</span>'
             val = lim = share = "&ndash;"
         elif cr is None:
-            crit_cell, val, lim, share = "(no criteria)", "&ndash;", "&ndash;", "&ndash;"
+            n_cr = len(criteria_of(rec))
+            crit_cell = ("(no criteria)" if not n_cr else
+                         f"({n_cr} criteria; none has a value / limit ratio)")
+            val, lim, share = "&ndash;", "&ndash;", "&ndash;"
         else:
             crit_cell = _e((f"{ctl}: " if ctl else "") + str(cr.get("name") or "criterion"))
             val, lim = _num(cr.get("value")), _num(cr.get("limit"))
