@@ -394,7 +394,7 @@ def _case_table(recs: Sequence[Mapping[str, Any]], max_rows: int, linked: int = 
         elif cr is None:
             n_cr = len(criteria_of(rec))
             crit_cell = ("(no criteria)" if not n_cr else
-                         f"({n_cr} criteria; none has a value / limit ratio)")
+                         f"({n_cr} verdicts, none with a value / limit ratio)")
             val, lim, share = "&ndash;", "&ndash;", "&ndash;"
         else:
             crit_cell = _e((f"{ctl}: " if ctl else "") + str(cr.get("name") or "criterion"))
