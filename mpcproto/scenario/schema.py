@@ -382,12 +382,15 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         dur = c.number(s["duration"], "scenario.duration", low=0.0, strict_low=True)
         if dur < ts:
             c.fail("scenario.duration", f"a duration of at least one sample time ({ts:g})", _show(s["duration"]))
+        _check_samples(c, "scenario.duration", dur, ts, s["duration"])
     seed = c.number(s.get("seed", 0), "scenario.seed", low=0, integer=True)
     ci = s.get("ci", {})
     ci = c.table(ci, "scenario.ci")
     c.keys(ci, "scenario.ci", ("duration",))
     if "duration" in ci:
-        ci["duration"] = c.number(ci["duration"], "scenario.ci.duration", low=ts)
+        raw_ci = ci["duration"]
+        ci["duration"] = c.number(raw_ci, "scenario.ci.duration", low=ts)
+        _check_samples(c, "scenario.ci.duration", ci["duration"], ts, raw_ci)
     data["scenario"] = {
         "name": name,
         "description": c.string(s.get("description", ""), "scenario.description"),
@@ -622,6 +625,19 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         c.fail("study.draws", "a number of Monte Carlo draws >= 1 (study.draw entries are given)", "0")
     data["study"] = {"draws": draws, "full_draws": full_draws, "sweep": sweeps, "draw": draw_specs}
     return Scenario(name=name, data=data, file=file, raw=copy.deepcopy(dict(raw)))
+
+
+#: Most samples one run may have.  A run keeps every sample of every signal in memory, so a
+#: duration typed in the wrong unit (hours as seconds, a misplaced exponent) would otherwise fill
+#: the machine's memory before anything is reported.  Ten days at a 1 s sample time fit.
+MAX_SAMPLES = 1_000_000
+
+
+def _check_samples(c: _Ctx, key: str, dur: float, ts: float, raw: Any) -> None:
+    if dur / ts > MAX_SAMPLES:
+        c.fail(key, f"at most {MAX_SAMPLES:,} samples per run (duration / sample_time; here at "
+               f"most {MAX_SAMPLES * ts:g} in the model's time unit: is the duration in the "
+               f"model's time unit?)", f"{_show(raw)}, {dur / ts:.3g} samples")
 
 
 def _bool(c: _Ctx, v: Any, key: str) -> bool:
