@@ -423,6 +423,13 @@ def _run_handler(args: argparse.Namespace) -> int:
     except KeyboardInterrupt:
         print(f"mpcproto {args.command}: interrupted.", file=sys.stderr)
         return 130
+    except MemoryError as e:
+        # almost always a size in the input: a prediction horizon, a duration / sample time or a
+        # table far larger than meant
+        print(f"mpcproto {args.command}: error: out of memory ({e}). Check the sizes in the "
+              f"input: the MPC horizon and control_horizon (samples), duration / sample_time, "
+              f"the number of study cases.", file=sys.stderr)
+        return EXIT_BAD_INPUT
     except Exception:  # noqa: BLE001 - an internal error: show the traceback so it can be reported
         traceback.print_exc()
         print(f"mpcproto {args.command}: internal error (exit {EXIT_INTERNAL}); please report it "
