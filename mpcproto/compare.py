@@ -106,7 +106,16 @@ class Comparison:
                 for r in rows]
         widths = [max(len(str(x)) for x in col) for col in zip(head, *body)]
         line = lambda cells: "  ".join(str(c).ljust(w) for c, w in zip(cells, widths))  # noqa: E731
-        return "\n".join([line(head), line(["-" * w for w in widths])] + [line(b) for b in body])
+        first = next(iter(self.trajectories.values()), None)
+        tu = self.meta.get("time_unit") or (first.meta.get("time_unit") if first is not None
+                                             else None) or "time unit"
+        key = (f"units: iae = CV unit x {tu}; ise = CV unit squared x {tu}; itae = CV unit x {tu} "
+               f"squared; settling_time, time_at_limit in {tu}; overshoot as a fraction of the "
+               f"setpoint step; max_abs_error, peak_excess in the CV unit; total_travel in the MV "
+               f"unit; violation integral in CV unit x {tu}; *_solve_ms in ms, worst_fraction of the "
+               f"sample time. Simulation results only.")
+        return "\n".join([line(head), line(["-" * w for w in widths])] + [line(b) for b in body]
+                         + [key])
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-able: per-label summaries plus the scorecard rows."""
