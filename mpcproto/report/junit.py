@@ -110,7 +110,8 @@ def junit_tree(records: Iterable[Mapping[str, Any]], *, name: str = "mpcproto ba
                 text = (f"{_criterion_label(controller, cr)}: value {_num(cr.get('value'))}, "
                         f"limit {_num(cr.get('limit'))}")
                 f = ET.SubElement(tc, "failure", message=_text(text), type="criterion")
-                f.text = _text(text + (f"\nparams: {rec.get('params')}" if rec.get("params") else "")
+                f.text = _text(text + (f"\n{cr['message']}" if cr.get("message") else "")
+                               + (f"\nparams: {rec.get('params')}" if rec.get("params") else "")
                                + (f"\nseed: {rec.get('seed')}" if rec.get("seed") is not None else ""))
                 suite["failures"] += 1
     if baseline is not None:
