@@ -498,13 +498,27 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
         record(rec, fh)
         return isinstance(exc, BrokenProcessPool)
 
+    pool_broken = [False]   # the owned pool broke before a finished future told us
+
     def submit(cid: str, case: Any, alone: bool, fp: str) -> None:
-        pending[ex.submit(_guarded_call, run_fn, case, cid)] = (cid, case, alone, fp)
+        try:
+            pending[ex.submit(_guarded_call, run_fn, case, cid)] = (cid, case, alone, fp)
+        except BrokenProcessPool:
+            if not own:
+                raise
+            # a worker died between two submissions: this case never started; run it (on its
+            # own, like the other cases that were about) once the pool has been replaced
+            suspects.append((cid, case, fp))
+            pool_broken[0] = True
 
     try:
         with path.open("a", encoding="utf-8") as fh:
             try:
                 while True:
+                    if pool_broken[0] and not pending:
+                        ex.shutdown(wait=False, cancel_futures=True)
+                        ex = local_pool(workers)
+                        pool_broken[0] = False
                     if suspects:
                         # after a worker died: re-run each case that was in flight on its own,
                         # so that a crash is pinned on the case that causes it
@@ -543,13 +557,14 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
                     broken = False
                     for fut in finished:
                         broken |= collect(fut, fh)
-                    if broken and own:
+                    if (broken or pool_broken[0]) and own:
                         # a dead worker breaks the whole pool: the other futures fail too
                         for fut in list(pending):
                             wait([fut])
                             collect(fut, fh)
                         ex.shutdown(wait=False, cancel_futures=True)
                         ex = local_pool(workers)
+                        pool_broken[0] = False
             except KeyboardInterrupt:
                 outcome.interrupted = True
                 for fut in list(pending):  # keep whatever finished before the interrupt
