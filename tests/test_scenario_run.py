@@ -182,3 +182,25 @@ def test_nominal_run_equals_the_batch_case_of_a_studyless_scenario(tmp_path):
     a, b = run_case(scn), run_case(case)
     assert a["case_id"] == b["case_id"] and a["seed"] == b["seed"]
     assert a["controllers"]["pid"]["kpi"] == b["controllers"]["pid"]["kpi"]
+
+
+def test_a_cached_predictive_controller_repeats_a_fresh_one_exactly(tmp_path):
+    # The runner keeps one compiled controller per worker process and the simulator resets it at
+    # the start of every run; reset() restarts the solvers and the estimator, so a case run with
+    # the reused controller must give the very numbers of a freshly built one (reproducibility of
+    # a seeded run: common practice, no source).
+    from mpcproto.scenario import runner
+
+    scn = load_scenario(write(tmp_path, text=SHORT))
+    (case,) = expand(scn)
+    runner._CONTROLLER_CACHE.clear()
+    fresh = run_case(case)
+    cached = [c for c in runner._CONTROLLER_CACHE.values()
+              if isinstance(c, mp.PredictiveController)]
+    assert len(cached) == 1, "the predictive controller is kept for the next case"
+    again = run_case(case)
+    assert [c for c in runner._CONTROLLER_CACHE.values()
+            if isinstance(c, mp.PredictiveController)] == cached, "and reused, not rebuilt"
+    for label in ("mpc", "pid"):
+        assert again["controllers"][label]["kpi"] == fresh["controllers"][label]["kpi"]
+        assert again["controllers"][label]["violations"] == fresh["controllers"][label]["violations"]

@@ -282,14 +282,13 @@ def build_controller(label: str, spec: Mapping[str, Any], prep: Prepared, *,
                      cache: bool = True) -> Any:
     """The controller *label* of the scenario, built from its ``[controllers.<label>]`` table.
 
-    PID controllers are cached per process, keyed by their settings, the controller's model (name,
+    Controllers are cached per process, keyed by their settings, the controller's model (name,
     options, parameter values), its operating point and the sample time: the cases of a Monte Carlo
-    study on the *plant* share one set of tuned loops (the step tests run once), which the simulator
-    resets at the start of every run.  Predictive controllers are built afresh for every run: a
-    reused one would start its solver warm from the previous run, and the same case would not give
-    the same numbers in every worker.
+    study on the *plant* share one set of tuned PID loops (the step tests run once) and one compiled
+    predictive controller.  The simulator resets the controller at the start of every run, and
+    ``reset()`` restarts its solvers and estimator, so a reused controller gives the same numbers,
+    to the last bit, as a fresh one in any worker.
     """
-    cache = cache and spec.get("kind") == "pid"
     key = _controller_key(label, spec, prep) if cache else ""
     if cache and key in _CONTROLLER_CACHE:
         return _CONTROLLER_CACHE[key]
