@@ -105,7 +105,7 @@ class Floor:
         n = nX + 2 * nU + 2 * nE
         self.n = n
         count = np.array([1.0] * (M - 1) + [N - M + 1.0])
-        ws = np.kron(count, r["rest_weight"])
+        ws = np.kron(count, r["preferred_weight"])
         self.sc = ctrl.scales_
         self.ws = ws
         P = sp.block_diag([sp.csc_matrix((nX, nX)),
@@ -150,7 +150,7 @@ class Floor:
         sx, su, sy = self.sc["x"], self.sc["u"], self.sc["y"]
         S = c.scaled_
         raw = lambda k: z[zs[k]]                           # noqa: E731
-        scale = {"band_lo": sy, "band_hi": sy, "lim_lo": sy, "lim_hi": sy, "rate": su, "rest": su,
+        scale = {"band_lo": sy, "band_hi": sy, "lim_lo": sy, "lim_hi": sy, "rate": su, "pref": su,
                  "u_prev": su, "x0": sx}
         g = lambda k: raw(k) / scale[k] if k in scale else raw(k)    # noqa: E731
         x0, u_prev, w = g("x0"), g("u_prev"), raw("w")
@@ -164,7 +164,7 @@ class Floor:
         inf = np.inf
         q = np.zeros(self.n)
         o = self.off
-        q[o["U"]:o["dU"]] = -2 * self.ws * rep(g("rest"), M)
+        q[o["U"]:o["dU"]] = -2 * self.ws * rep(g("pref"), M)
         q[o["S"]:] = self.q_S
         mvrow = np.zeros(nu * M)
         mvrow[:nu] = -u_prev

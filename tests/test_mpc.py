@@ -92,7 +92,7 @@ def test_unconstrained_with_riccati_terminal_weight_is_lqr(N):
     ctrl = mp.PredictiveController(
         dm, horizon=N, terminal_cost=True, steady_target=True, solver_options=TIGHT,
         cv={f"y{i}": {"weight": float(qw[i])} for i in range(3)},
-        mv={f"u{j}": {"rest_weight": float(rw[j]), "move_weight": 0.0} for j in range(2)}).build()
+        mv={f"u{j}": {"preferred_weight": float(rw[j]), "move_weight": 0.0} for j in range(2)}).build()
     P = sla.solve_discrete_are(A, B, np.diag(qw), np.diag(rw))
     K = np.linalg.solve(np.diag(rw) + B.T @ P @ B, B.T @ P @ A)
     for _ in range(3):
@@ -110,7 +110,7 @@ def test_lqr_equivalence_through_clarabel_plain_path():
     dm = make_dlm(A, B, np.eye(2))
     ctrl = mp.PredictiveController(
         dm, horizon=6, terminal_cost=True, solver="clarabel",
-        mv={"u0": {"rest_weight": 0.5, "move_weight": 0.0}}).build()
+        mv={"u0": {"preferred_weight": 0.5, "move_weight": 0.0}}).build()
     P = sla.solve_discrete_are(A, B, np.eye(2), 0.5 * np.eye(1))
     K = np.linalg.solve(0.5 + B.T @ P @ B, B.T @ P @ A)
     x = np.array([0.7, -1.1])
@@ -127,7 +127,7 @@ def test_fast_path_equals_cvxpy_solve_on_random_steps():
     kw = dict(horizon=12, control_horizon=5,
               cv={"y0": {"weight": 2.0, "high": 0.8}, "y1": {"low": -0.5, "priority": 2},
                   "y2": {"disturbance": "input"}},
-              mv={"u0": {"low": -1.0, "high": 1.0, "max_move": 0.3, "rest_weight": 0.1},
+              mv={"u0": {"low": -1.0, "high": 1.0, "max_move": 0.3, "preferred_weight": 0.1},
                   "u1": {"low": -2.0, "high": 0.5}})
     fast = mp.PredictiveController(
         dm, solver_options={"eps_abs": 1e-6, "eps_rel": 1e-6, "polishing": True,
@@ -286,7 +286,7 @@ def test_problem_is_dpp_never_recompiles_and_constraints_do_not_grow():
     counts = []
     for N in (5, 40):
         ctrl = mp.PredictiveController(dm, horizon=N, fast_path=False, terminal_cost=True,
-                                       mv={"u0": {"rest_weight": 0.1}, "u1": {"rest_weight": 0.1}}
+                                       mv={"u0": {"preferred_weight": 0.1}, "u1": {"preferred_weight": 0.1}}
                                        ).build()
         prob = ctrl.qp_.problem
         assert prob.is_dpp()
@@ -410,7 +410,7 @@ def test_steady_target_active_set_reuse_matches_an_interior_point_solve():
     A, B, C, Bd = random_stable(rng, 3, 2, 2, nd=1)
     dm = make_dlm(A, B, C, Bd=Bd)
     ctrl = mp.PredictiveController(dm, horizon=8, mv={"u0": {"low": -0.4, "high": 0.4},
-                                                      "u1": {"rest_weight": 0.2}}).build()
+                                                      "u1": {"preferred_weight": 0.2}}).build()
     tgt = ctrl.target_
     lay = tgt.layout_
     explicit = 0
@@ -419,7 +419,7 @@ def test_steady_target_active_set_reuse_matches_an_interior_point_solve():
                  "band_lo": np.array([rng.normal(), -np.inf]), "band_hi": np.array([np.nan, 0.3]),
                  "lim_lo": np.full(2, -np.inf), "lim_hi": np.array([np.inf, 1.0]),
                  "mv_lo": np.array([-0.4, -np.inf]), "mv_hi": np.array([0.4, np.inf]),
-                 "rest": np.zeros(2)}
+                 "pref": np.zeros(2)}
         parts["band_hi"][0] = parts["band_lo"][0]          # a setpoint on y0, a zone on y1
         z = np.concatenate([np.asarray(parts[k], float).reshape(lay[k]) for k in lay])
         for _rep in range(2):                              # the second solve re-uses the set
@@ -429,7 +429,7 @@ def test_steady_target_active_set_reuse_matches_an_interior_point_solve():
         b = tgt.solve(z, fast=False, solver="CLARABEL",
                       options={"tol_gap_abs": 1e-10, "tol_gap_rel": 1e-10, "tol_feas": 1e-10})
         assert a.accepted and b.accepted
-        # the MV resting values only break ties in the target (weights 1e-6 of the CV weights):
+        # the MV preferred values only break ties in the target (weights 1e-6 of the CV weights):
         # the objective is nearly flat along the tie, where a gap tolerance eps allows a
         # distance of sqrt(2 eps / curvature) ~ 1e-2; the setpoint CV is pinned exactly, the
         # zone CV and the MVs move along the tie and agree to 1e-4

@@ -80,14 +80,14 @@ def test_estimator_state_noise_is_per_scaled_state():
 
 def test_level_setpoint_reached_with_resting_values_on_the_mvs():
     # Reference: the two-layer arrangement (Muske & Rawlings 1993, from memory): the steady
-    # target reaches every CV setpoint the MVs can reach; MV resting values only break ties.
+    # target reaches every CV setpoint the MVs can reach; MV preferred values only break ties.
     # Tank with an outlet valve (self-regulating level), a level setpoint step and a colder
     # water supply (unmeasured): the level must settle at its new setpoint (noise std 0.002 m).
     tank = mp.make_model("blending_tank", options={"outflow": "valve"},
                          parameters={"area": 0.9, "valve_coefficient": 1.3})
     op = mp.steady_state(tank)
     dm = mp.linearize(tank, op).discretize(TS)
-    mv = {k: dict(v, rest_weight=0.01) for k, v in SCALES.items()}
+    mv = {k: dict(v, preferred_weight=0.01) for k, v in SCALES.items()}
     ctl = mp.PredictiveController.from_settings(dm, {
         "horizon": 60, "control_horizon": 6, "terminal_cost": True, "mv": mv,
         "cv": {"level": {"scale": 0.02}}}).build()
@@ -101,11 +101,11 @@ def test_level_setpoint_reached_with_resting_values_on_the_mvs():
     assert abs(_last(tr, "level")) < 0.005
     assert abs(_last(tr, "concentration")) < 0.005
     assert abs(_last(tr, "temperature")) < 0.05
-    # strong resting values: the steady target still asks for the new level (the rest values
+    # strong preferred values: the steady target still asks for the new level (the preferred values
     # only break ties there); before, it settled on a compromise 0.1 m short of the setpoint
     heavy = mp.PredictiveController.from_settings(dm, {
         "horizon": 60, "control_horizon": 6,
-        "mv": {k: dict(v, rest_weight=10.0) for k, v in SCALES.items()}}).build()
+        "mv": {k: dict(v, preferred_weight=10.0) for k, v in SCALES.items()}}).build()
     heavy.reset(op)
     sp = op.y + np.array([0.15, 0.0, 0.0])
     tg = mp.Targets(setpoint=sp, cv_low=np.full(3, -np.inf), cv_high=np.full(3, np.inf),

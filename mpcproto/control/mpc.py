@@ -15,7 +15,7 @@ j = 0..M-1 moves, the MVs are held after the control horizon M)::
 
     minimize   sum_k  q_i e_ik^2                         CV outside its band (setpoint or zone)
              + sum_j  r_m du_mj^2                        move suppression
-             + sum_k  s_m (u_mk - rest_m)^2              MV resting values (steady-target MVs)
+             + sum_k  s_m (u_mk - pref_m)^2              MV preferred values (steady-target MVs)
              + sum_k  l_i sl_ik + h_i sl_ik^2            soft CV limits (exact penalty)
              + (x_N - x_s)' P_t (x_N - x_s)              optional terminal cost (Riccati)
     subject to x_{k+1} = A x_k + B u_k + W_k             W: measured DVs + disturbance estimates
@@ -77,16 +77,18 @@ CV_KEYS: dict[str, Any] = {
 }
 #: per-MV keys and defaults
 MV_KEYS: dict[str, Any] = {
-    "move_weight": 0.1, "rest_weight": 0.0, "rest_value": None, "low": -math.inf,
+    "move_weight": 0.1, "preferred_weight": 0.0, "preferred_value": None, "low": -math.inf,
     "high": math.inf, "max_move": math.inf, "scale": 1.0,
 }
+#: keys of earlier versions that were renamed: refused with a message naming the new key
+_RENAMED_KEYS = {f"rest_{k}": f"preferred_{k}" for k in ("value", "weight")}
 #: per-DV keys and defaults
 DV_KEYS: dict[str, Any] = {"feedforward": True}
 
-#: in the steady target the MV resting values only break ties: the largest rest weight is this
+#: in the steady target the MV preferred values only break ties: the largest preferred weight is this
 #: fraction of the smallest CV weight (scaled units), so a reachable CV setpoint is never traded
-#: for an MV's resting value
-_TARGET_REST_FACTOR = 1e-6
+#: for an MV's preferred value
+_TARGET_PREF_FACTOR = 1e-6
 
 #: samples an MV that did not follow its command stays limited at its position (readback)
 _NOT_FOLLOWING_HOLD = 5
@@ -157,10 +159,10 @@ class PredictiveController:
         "output" otherwise), ``measurement_noise`` (> 0, variance), ``disturbance_noise``
         (> 0, variance of the per-sample disturbance change).
     mv : mapping of MV name to dict
-        Per-MV settings: ``move_weight`` (>= 0, per squared ``scale``), ``rest_weight`` (>= 0,
-        weight pulling the MV to its resting value), ``rest_value`` (engineering units; default:
+        Per-MV settings: ``move_weight`` (>= 0, per squared ``scale``), ``preferred_weight`` (>= 0,
+        weight pulling the MV to its preferred value), ``preferred_value`` (engineering units; default:
         the operating point; with the steady target on, the dynamic problem rests at the target
-        and ``rest_value`` only breaks ties in the target), ``low``/``high`` (hard limits,
+        and ``preferred_value`` only breaks ties in the target), ``low``/``high`` (hard limits,
         intersected with the run-time ones), ``max_move`` (> 0, largest move per sample),
         ``scale`` (> 0).
     dv : mapping of DV name to dict
@@ -298,9 +300,9 @@ class PredictiveController:
         for name, row in zip(m.mv_names, mvs):
             p = f"mv.{name}"
             _number(f"{p}.move_weight", row["move_weight"], low=0)
-            _number(f"{p}.rest_weight", row["rest_weight"], low=0)
-            if row["rest_value"] is not None:
-                _number(f"{p}.rest_value", row["rest_value"])
+            _number(f"{p}.preferred_weight", row["preferred_weight"], low=0)
+            if row["preferred_value"] is not None:
+                _number(f"{p}.preferred_value", row["preferred_value"])
             _number(f"{p}.low", row["low"], allow_inf=True)
             _number(f"{p}.high", row["high"], allow_inf=True)
             if row["low"] > row["high"]:
@@ -351,9 +353,9 @@ class PredictiveController:
             meas_noise={n: float(row["measurement_noise"]) for n, row in zip(m.cv_names, cvs)},
             dist_noise={n: float(row["disturbance_noise"]) for n, row in zip(m.cv_names, cvs)},
             move_weight=arr(mvs, "move_weight") / arr(mvs, "scale") ** 2,
-            rest_weight=arr(mvs, "rest_weight") / arr(mvs, "scale") ** 2,
+            preferred_weight=arr(mvs, "preferred_weight") / arr(mvs, "scale") ** 2,
             mv_scale=arr(mvs, "scale"),
-            rest_value=np.array([m.op.u[j] if row["rest_value"] is None else float(row["rest_value"])
+            preferred_value=np.array([m.op.u[j] if row["preferred_value"] is None else float(row["preferred_value"])
                                  for j, row in enumerate(mvs)]),
             mv_low=arr(mvs, "low"), mv_high=arr(mvs, "high"), max_move=arr(mvs, "max_move"),
             feedforward=np.array([bool(row["feedforward"]) for row in dvs], bool),
@@ -375,6 +377,10 @@ class PredictiveController:
             if not isinstance(row, Mapping):
                 raise _err(f"{role}.{n}", "a mapping of setting names to values", row)
             for k in row:
+                if k in _RENAMED_KEYS:
+                    raise SettingsError(f"PredictiveController: the setting '{role}.{n}.{k}' is now "
+                                        f"called '{_RENAMED_KEYS[k]}'; rename the key "
+                                        f"'{role}.{n}.{k}' to '{role}.{n}.{_RENAMED_KEYS[k]}'.")
                 if k not in keys:
                     raise SettingsError(f"PredictiveController: unknown setting '{role}.{n}.{k}'"
                                         f"{suggest(k, list(keys))}; known: {sorted(keys)}.")
@@ -464,11 +470,11 @@ class PredictiveController:
         Bws, Cws = Bw / sx[:, None], Cw / sy[:, None]
         wq_s = r["cv_weight"] * sy ** 2            # weights per scaled unit
         wr_s = r["move_weight"] * su ** 2
-        wrest_s = r["rest_weight"] * su ** 2
+        wpref_s = r["preferred_weight"] * su ** 2
         wl_s = r["lim_lin"] * sy
         wh_s = r["lim_quad"] * sy ** 2
         self.scaled_ = {"A": As, "B": Bs, "C": Cs, "D": Ds, "Bd": Bds, "Dd": Dds, "Bw": Bws,
-                        "Cw": Cws, "cv_weight": wq_s, "move_weight": wr_s, "rest_weight": wrest_s,
+                        "Cw": Cws, "cv_weight": wq_s, "move_weight": wr_s, "preferred_weight": wpref_s,
                         "limit_linear": wl_s, "limit_quadratic": wh_s}
         # -- steady target (state-space steady-state form: works for integrating units too)
         if self.steady_target:
@@ -476,20 +482,20 @@ class PredictiveController:
                 A, B, C, D, Bd, Dd, Bw, Cw,
                 band_weight=r["cv_weight"] + 1e-9 / sy ** 2, limit_linear=r["lim_lin"],
                 limit_quadratic=r["lim_quad"],
-                rest_weight=self._target_rest_weight(r["rest_weight"], wq_s, su),
+                preferred_weight=self._target_preferred_weight(r["preferred_weight"], wq_s, su),
                 solver_options=osqp_opts, scales=(sx, su, sy)).build()
         else:
             self.target_ = None
         # -- terminal weight from the discrete Riccati equation of the plant (and delay) states
         Pt = None
         if self.terminal_cost:
-            if np.any(r["rest_weight"] <= 0):
-                raise _err("mv.*.rest_weight", "> 0 for every MV when terminal_cost is true (the "
+            if np.any(r["preferred_weight"] <= 0):
+                raise _err("mv.*.preferred_weight", "> 0 for every MV when terminal_cost is true (the "
                            "Riccati terminal weight needs a positive input weight)",
-                           list(r["rest_weight"]))
+                           list(r["preferred_weight"]))
             Qx = Cs.T @ np.diag(wq_s) @ Cs
             try:
-                P = sla.solve_discrete_are(As, Bs, Qx, np.diag(wrest_s))
+                P = sla.solve_discrete_are(As, Bs, Qx, np.diag(wpref_s))
             except (np.linalg.LinAlgError, ValueError) as exc:
                 raise _err("terminal_cost", "false for this model (no stabilizing Riccati solution: "
                            f"{exc})", True) from None
@@ -515,7 +521,7 @@ class PredictiveController:
             "lim_hi": cp.Parameter((ny, N), name="lim_hi"),
             "u_lo": cp.Parameter((nu, M), name="u_lo"), "u_hi": cp.Parameter((nu, M), name="u_hi"),
             "du_lo": cp.Parameter((nu, M), name="du_lo"), "du_hi": cp.Parameter((nu, M), name="du_hi"),
-            "rest": cp.Parameter((nu, M), name="rest"),
+            "pref": cp.Parameter((nu, M), name="pref"),
         }
         e1N = np.zeros((1, N))
         e1N[0, 0] = 1.0
@@ -536,13 +542,13 @@ class PredictiveController:
             Y = Y + D @ (U @ sel_out)
         wq = np.repeat(wq_s[:, None], N, axis=1)
         wr = np.repeat(wr_s[:, None], M, axis=1)
-        ws = wrest_s[:, None] * count[None, :]
+        ws = wpref_s[:, None] * count[None, :]
         wl = np.repeat(wl_s[:, None], N, axis=1)
         wh = np.repeat(wh_s[:, None], N, axis=1)
         obj = (cp.sum(cp.multiply(wq, cp.square(E)))
                + cp.sum(cp.multiply(wr, cp.square(dU)))
                + cp.sum(cp.multiply(ws, cp.square(U)))
-               - 2 * cp.sum(cp.multiply(cp.multiply(ws, par["rest"]), U))
+               - 2 * cp.sum(cp.multiply(cp.multiply(ws, par["pref"]), U))
                + cp.sum(cp.multiply(wl, S)) + cp.sum(cp.multiply(wh, cp.square(S))))
         if Pt is not None:
             par["x_term"] = cp.Parameter(nx, name="x_term")
@@ -564,7 +570,7 @@ class PredictiveController:
         layout = {"x0": nx, "u_prev": nu, "d_now": nd, "dtraj": nd * (N + 1), "w": ny,
                   "band_lo": ny,
                   "band_hi": ny, "lim_lo": ny, "lim_hi": ny, "u_lo": nu * M, "u_hi": nu * M,
-                  "rate": nu, "rest": nu}
+                  "rate": nu, "pref": nu}
         # the inputs stay in engineering deviation units: the scaling is folded into the maps
         oneN, oneM = np.ones((N, 1)), np.ones((M, 1))
         iy, iu, ix = sp.diags(1 / sy), sp.diags(1 / su), sp.diags(1 / sx)
@@ -583,7 +589,7 @@ class PredictiveController:
             "lim_lo": {"lim_lo": rep_y}, "lim_hi": {"lim_hi": rep_y},
             "u_lo": {"u_lo": sp.kron(sp.identity(M), iu)},
             "u_hi": {"u_hi": sp.kron(sp.identity(M), iu)},
-            "du_lo": {"rate": -rep_u}, "du_hi": {"rate": rep_u}, "rest": {"rest": rep_u},
+            "du_lo": {"rate": -rep_u}, "du_hi": {"rate": rep_u}, "pref": {"pref": rep_u},
         }
         if Pt is not None:
             layout["x_term"] = nx
@@ -644,19 +650,19 @@ class PredictiveController:
         return np.where(np.isfinite(out), out, 1.0)
 
     @staticmethod
-    def _target_rest_weight(rest_weight, wq_s, su):
-        """MV rest weights for the steady target (engineering units): tie-breakers only.
+    def _target_preferred_weight(preferred_weight, wq_s, su):
+        """MV preferred weights for the steady target (engineering units): tie-breakers only.
 
-        In scaled units the largest is ``_TARGET_REST_FACTOR`` times the smallest positive CV
+        In scaled units the largest is ``_TARGET_PREF_FACTOR`` times the smallest positive CV
         weight, the others keep their ratios to it; never below 1e-6 (a unique target).  So a
-        reachable CV setpoint is never traded for an MV's resting value, whatever the units.
+        reachable CV setpoint is never traded for an MV's preferred value, whatever the units.
         """
-        rs = np.asarray(rest_weight, float) * su ** 2
+        rs = np.asarray(preferred_weight, float) * su ** 2
         pos = wq_s[wq_s > 0]
         ref = float(pos.min()) if pos.size else 1.0
         top = float(rs.max()) if rs.size else 0.0
         rel = rs / top if top > 0 else np.zeros_like(rs)
-        return np.maximum(_TARGET_REST_FACTOR * ref * rel, 1e-6) / su ** 2
+        return np.maximum(_TARGET_PREF_FACTOR * ref * rel, 1e-6) / su ** 2
 
     @staticmethod
     def _state_scales(A, B, C, su, sy, T):
@@ -718,7 +724,7 @@ class PredictiveController:
         self._op_d = np.asarray(m.op.d, float)
         self._op_y = np.asarray(m.op.y, float)
         r = self._resolved
-        self._rest_dev = r["rest_value"] - self._op_u
+        self._pref_dev = r["preferred_value"] - self._op_u
         self._slack_tol = 1e-4 * r["cv_scale"]
         self._slack_tol_list = self._slack_tol.tolist()
         self._mv_names = list(m.mv_names)
@@ -997,7 +1003,7 @@ class PredictiveController:
             tz[ts["lim_hi"]] = chi
             tz[ts["mv_lo"]] = lo_dev
             tz[ts["mv_hi"]] = hi_dev
-            tz[ts["rest"]] = self._rest_dev
+            tz[ts["pref"]] = self._pref_dev
             res = self.target_.solve(tz, fast=fast, solver=self._cvxpy_solver,
                                      options=self._cvxpy_opts)
             t_target = res.solve_ms
@@ -1020,13 +1026,13 @@ class PredictiveController:
             us, ys, _xs = self._target
             band_lo = np.where(has_sp, ys, np.fmin(zone_lo, ys))
             band_hi = np.where(has_sp, ys, np.fmax(zone_hi, ys))
-            rest = us
+            pref = us
             diag["target_u"] = (us + op_u).tolist()
             diag["target_y"] = (ys + op_y).tolist()
         else:
             band_lo = np.where(has_sp, spd, zone_lo)
             band_hi = np.where(has_sp, spd, zone_hi)
-            rest = self._rest_dev
+            pref = self._pref_dev
         # ---- MV limits reachable under the rate limits (keeps the QP feasible when a limit moved
         # past the current MV: the plan then moves towards it as fast as allowed)
         reach = self._steps * rate[:, None]
@@ -1042,7 +1048,7 @@ class PredictiveController:
         z[zs["u_lo"]] = ulo.ravel(order="F")
         z[zs["u_hi"]] = uhi.ravel(order="F")
         z[zs["rate"]] = rate
-        z[zs["rest"]] = rest
+        z[zs["pref"]] = pref
         if self.terminal_weight_ is not None:
             z[zs["x_term"]] = self._target[2]
         if fast:

@@ -6,7 +6,7 @@ Rawlings 1999)::
 
     minimize    sum_i  c_i * e_i^2                    (CV outside its setpoint band; c_i by priority)
               + sum_i  l_i * s_i + h_i * s_i^2         (soft CV limits, exact penalty)
-              + sum_j  r_j * (us_j - rest_j)^2         (MV resting values; small: picks among ties)
+              + sum_j  r_j * (us_j - pref_j)^2         (MV preferred values; small: picks among ties)
     subject to  (I - A) xs = B us + Bd d + Bw w        (steady state of the model)
                 ys = C xs + D us + Dd d + Cw w
                 band_lo <= ys - e <= band_hi
@@ -47,8 +47,8 @@ class SteadyTarget:
         How the disturbance states enter the states and the CVs.
     band_weight, limit_linear, limit_quadratic : ndarray (ny,)
         Weights per CV (already scaled by priority and engineering scale).
-    rest_weight : ndarray (nu,)
-        Weight of the MV resting values (strictly positive keeps the target unique).
+    preferred_weight : ndarray (nu,)
+        Weight of the MV preferred values (strictly positive keeps the target unique).
     solver_options : dict
         OSQP settings for the fast path.
     scales : tuple of ndarray (x, u, y) or None
@@ -59,17 +59,17 @@ class SteadyTarget:
     -----
     The input vector of :meth:`solve` is the concatenation, in ``layout_`` order, of ``d`` (nd),
     ``w`` (nw), ``band_lo``, ``band_hi``, ``lim_lo``, ``lim_hi`` (ny each), ``mv_lo``, ``mv_hi``
-    and ``rest`` (nu each).
+    and ``pref`` (nu each).
     """
 
     def __init__(self, A, B, C, D, Bd, Dd, Bw, Cw, band_weight, limit_linear, limit_quadratic,
-                 rest_weight, solver_options=None, scales=None):
+                 preferred_weight, solver_options=None, scales=None):
         self.A, self.B, self.C, self.D = (np.asarray(M, float) for M in (A, B, C, D))
         self.Bd, self.Dd, self.Bw, self.Cw = (np.asarray(M, float) for M in (Bd, Dd, Bw, Cw))
         self.band_weight = np.asarray(band_weight, float)
         self.limit_linear = np.asarray(limit_linear, float)
         self.limit_quadratic = np.asarray(limit_quadratic, float)
-        self.rest_weight = np.asarray(rest_weight, float)
+        self.preferred_weight = np.asarray(preferred_weight, float)
         self.solver_options = dict(solver_options or {})
         self.scales = scales
         self.is_built = False
@@ -104,14 +104,14 @@ class SteadyTarget:
             "band_lo": cp.Parameter(ny, name="band_lo"), "band_hi": cp.Parameter(ny, name="band_hi"),
             "lim_lo": cp.Parameter(ny, name="lim_lo"), "lim_hi": cp.Parameter(ny, name="lim_hi"),
             "mv_lo": cp.Parameter(nu, name="mv_lo"), "mv_hi": cp.Parameter(nu, name="mv_hi"),
-            "rest": cp.Parameter(nu, name="rest"),
+            "pref": cp.Parameter(nu, name="pref"),
         }
-        rw = self.rest_weight * su ** 2
+        rw = self.preferred_weight * su ** 2
         obj = (cp.sum(cp.multiply(self.band_weight * sy ** 2, cp.square(e)))
                + (self.limit_linear * sy) @ s
                + cp.sum(cp.multiply(self.limit_quadratic * sy ** 2, cp.square(s)))
                + cp.sum(cp.multiply(rw, cp.square(us)))
-               - 2 * (cp.multiply(rw, par["rest"]) @ us))
+               - 2 * (cp.multiply(rw, par["pref"]) @ us))
         # scaled model: x = sx * xs', u = su * us', y = sy * ys'
         IA = (np.eye(nx) - A) * (1 / sx)[:, None] * sx[None, :]
         Bs = B * (1 / sx)[:, None] * su[None, :]
@@ -129,14 +129,14 @@ class SteadyTarget:
                               owner="SteadyTarget").compile()
         eye_y, eye_u = sp.diags(1 / sy), sp.diags(1 / su)
         self.layout_ = {"d": nd, "w": nw, "band_lo": ny, "band_hi": ny, "lim_lo": ny, "lim_hi": ny,
-                        "mv_lo": nu, "mv_hi": nu, "rest": nu}
+                        "mv_lo": nu, "mv_hi": nu, "pref": nu}
         self.qp_.set_inputs(
             self.layout_,
             {"dx": {"d": self.Bd / sx[:, None], "w": self.Bw / sx[:, None]},
              "dy": {"d": self.Dd / sy[:, None], "w": self.Cw / sy[:, None]},
              "band_lo": {"band_lo": eye_y}, "band_hi": {"band_hi": eye_y},
              "lim_lo": {"lim_lo": eye_y}, "lim_hi": {"lim_hi": eye_y},
-             "mv_lo": {"mv_lo": eye_u}, "mv_hi": {"mv_hi": eye_u}, "rest": {"rest": eye_u}},
+             "mv_lo": {"mv_lo": eye_u}, "mv_hi": {"mv_hi": eye_u}, "pref": {"pref": eye_u}},
             inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi", "mv_lo", "mv_hi"))
         self.qp_.setup(self.solver_options)
         self.qp_.keep_duals = True
