@@ -21,7 +21,8 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from ..exceptions import SettingsError
-from .summary import case_verdict, flat_numbers
+from ..store import case_verdict, load_results
+from .summary import flat_numbers
 
 __all__ = ["Regression", "BaselineComparison", "compare_with_baseline", "compared_numbers"]
 
@@ -126,8 +127,6 @@ def _check_tol(name: str, v: Any) -> float:
 
 def _records(source: str | os.PathLike | Iterable[Mapping[str, Any]]) -> dict[str, Mapping[str, Any]]:
     if isinstance(source, (str, os.PathLike)):
-        from ..scenario.batch import load_results  # noqa: PLC0415 - avoid an import cycle
-
         if not os.path.isfile(source):
             raise SettingsError(f"The baseline file '{os.fspath(source)}' does not exist. Expected "
                                 "the results.jsonl of an earlier batch run.")

@@ -30,7 +30,8 @@ from pathlib import Path
 from typing import Any
 
 from .baseline import BaselineComparison
-from .summary import ABSOLUTE_CHECKS, case_verdict, criteria_of, margin, utilisation
+from ..store import case_verdict, criterion_passed, incomplete_note
+from .summary import ABSOLUTE_CHECKS, criteria_of, margin, utilisation
 
 __all__ = ["write_html_report", "SAFETY_CAUTION", "sort_worst_first", "png_data_uri"]
 
@@ -178,7 +179,7 @@ def _chart_utilisation(scen: str, recs: Sequence[Mapping[str, Any]], max_rows: i
             if math.isnan(u):
                 continue
             label = (f"{ctl}: " if ctl else "") + str(cr.get("name") or "criterion")
-            per[label].append((u, cr.get("passed") is not False))
+            per[label].append((u, criterion_passed(cr)))
     if not per:
         return None
     labels = sorted(per, key=lambda k: -max(u for u, _ in per[k]))[:max_rows]
@@ -247,7 +248,7 @@ def _chart_parameters(scen: str, recs: Sequence[Mapping[str, Any]], max_params: 
     for i, lab in enumerate(labels):
         for j, key in enumerate(params):
             ax = axes[i][j]
-            pts = [(float(r["params"][key]), float(cr["value"]), cr.get("passed") is not False)
+            pts = [(float(r["params"][key]), float(cr["value"]), criterion_passed(cr))
                    for r, cr in per[lab] if key in (r.get("params") or {})
                    and isinstance(r["params"][key], (int, float))]
             if pts:
@@ -389,7 +390,7 @@ def _case_table(recs: Sequence[Mapping[str, Any]], max_rows: int, linked: int = 
         v = case_verdict(rec)
         u, ctl, cr = _worst_criterion(rec)
         if v == "error":
-            crit_cell = f'<span class="msg">{_e(rec.get("message", ""))}</span>'
+            crit_cell = f'<span class="msg">{_e(rec.get("message") or incomplete_note(rec))}</span>'
             val = lim = share = "&ndash;"
         elif cr is None:
             n_cr = len(criteria_of(rec))
@@ -425,7 +426,7 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
            f'<span class="small">{_e(rec.get("scenario", ""))} &middot; seed {_e(rec.get("seed", ""))}'
            f'{" &middot; " + _params_text(rec, 8) if rec.get("params") else ""}</span></h3>']
     if v == "error":
-        out.append(f'<p class="msg">{_e(rec.get("message", ""))}'
+        out.append(f'<p class="msg">{_e(rec.get("message") or incomplete_note(rec))}'
                    f'{" (" + _e(rec["error_at"]) + ")" if rec.get("error_at") else ""}</p></div>')
         return "".join(out)
     ctls = rec.get("controllers") or {}
@@ -458,7 +459,7 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
                 '</th><th class="num">limit</th><th class="num">margin</th><th class="num">share of limit</th>'
                 '</tr>']
         for ctl, cr in crit:
-            ok = cr.get("passed") is not False
+            ok = criterion_passed(cr)
             u = utilisation(cr)
             share = _share(u)
             rows.append(f'<tr><td class="{"mark-ok" if ok else "mark-bad"}">{"pass" if ok else "FAIL"}'

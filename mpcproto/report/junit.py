@@ -31,7 +31,8 @@ from pathlib import Path
 from typing import Any
 
 from .baseline import BaselineComparison
-from .summary import case_verdict, criteria_of
+from ..store import case_verdict, criterion_passed, incomplete_note
+from .summary import criteria_of
 
 __all__ = ["write_junit", "junit_tree"]
 
@@ -86,7 +87,7 @@ def junit_tree(records: Iterable[Mapping[str, Any]], *, name: str = "mpcproto ba
         cls = _classname(scen, cid)
         if case_verdict(rec) == "error":
             tc = _case(suite, cls, "run", elapsed)
-            msg = str(rec.get("message") or "the case did not complete")
+            msg = str(rec.get("message") or incomplete_note(rec) or "the case did not complete")
             err = ET.SubElement(tc, "error", message=_text(msg.splitlines()[0] if msg else msg),
                                 type=_text(rec.get("error_type") or "CaseError"))
             detail = [msg]
@@ -100,13 +101,22 @@ def junit_tree(records: Iterable[Mapping[str, Any]], *, name: str = "mpcproto ba
             suite["errors"] += 1
             continue
         crit = criteria_of(rec)
+        if case_verdict(rec) == "failed" and all(criterion_passed(cr) for _, cr in crit):
+            # the record says the case did not pass (or says nothing) but names no failed
+            # criterion: one failing test case, never a pass
+            tc = _case(suite, cls, "verdict", elapsed)
+            text = incomplete_note(rec) or "the case's verdict is 'not passed'"
+            f = ET.SubElement(tc, "failure", message=_text(text), type="verdict")
+            f.text = _text(text)
+            suite["failures"] += 1
+            continue
         if not crit:
             _case(suite, cls, "completed", elapsed)
             continue
         share = elapsed / len(crit)
         for controller, cr in crit:
             tc = _case(suite, cls, _criterion_label(controller, cr), share)
-            if cr.get("passed") is False:
+            if not criterion_passed(cr):
                 text = (f"{_criterion_label(controller, cr)}: value {_num(cr.get('value'))}, "
                         f"limit {_num(cr.get('limit'))}")
                 f = ET.SubElement(tc, "failure", message=_text(text), type="criterion")

@@ -18,6 +18,8 @@ from collections.abc import Iterable, Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
+from ..store import case_verdict, criterion_passed, incomplete_note, iter_results
+
 __all__ = ["flat_rows", "flat_numbers", "criteria_of", "write_summary_csv", "LEAD_COLUMNS",
            "case_verdict", "utilisation", "margin", "ABSOLUTE_CHECKS"]
 
@@ -25,13 +27,6 @@ __all__ = ["flat_rows", "flat_numbers", "criteria_of", "write_summary_csv", "LEA
 LEAD_COLUMNS = ("case_id", "scenario", "verdict", "status", "passed", "controller",
                 "controller_passed", "criteria_total", "criteria_failed", "worst_utilisation",
                 "seed", "elapsed_s", "message")
-
-
-def case_verdict(record: Mapping[str, Any]) -> str:
-    """``"error"`` (the case did not complete), ``"failed"`` (a criterion failed) or ``"passed"``."""
-    if record.get("status", "ok") != "ok":
-        return "error"
-    return "failed" if record.get("passed", True) is False else "passed"
 
 
 def _is_num(v: Any) -> bool:
@@ -145,10 +140,10 @@ def flat_rows(record: Mapping[str, Any]) -> list[dict[str, Any]]:
     verdict = case_verdict(record)
     base: dict[str, Any] = {
         "case_id": record.get("case_id", ""), "scenario": record.get("scenario", ""),
-        "verdict": verdict, "status": record.get("status", "ok"),
-        "passed": bool(record.get("passed", verdict == "passed")),
+        "verdict": verdict, "status": record.get("status") or "",
+        "passed": verdict == "passed",
         "seed": record.get("seed", ""), "elapsed_s": record.get("elapsed_s", ""),
-        "message": record.get("message", "") or "",
+        "message": record.get("message", "") or incomplete_note(record),
     }
     params = record.get("params") or {}
     if isinstance(params, Mapping):
@@ -159,7 +154,7 @@ def flat_rows(record: Mapping[str, Any]) -> list[dict[str, Any]]:
     if not controllers:
         row = dict(base, controller="", controller_passed=verdict == "passed",
                    criteria_total=len(shared),
-                   criteria_failed=sum(1 for c in shared if c.get("passed") is False))
+                   criteria_failed=sum(1 for c in shared if not criterion_passed(c)))
         row["worst_utilisation"] = _worst(shared)
         return [row]
     rows = []
@@ -168,8 +163,8 @@ def flat_rows(record: Mapping[str, Any]) -> list[dict[str, Any]]:
         crit = list(res.get("criteria") or []) + shared
         row = dict(base, controller=str(label))
         row["criteria_total"] = len(crit)
-        row["criteria_failed"] = sum(1 for c in crit if c.get("passed") is False)
-        row["controller_passed"] = row["criteria_failed"] == 0 and verdict != "error"
+        row["criteria_failed"] = sum(1 for c in crit if not criterion_passed(c))
+        row["controller_passed"] = row["criteria_failed"] == 0 and verdict == "passed"
         row["worst_utilisation"] = _worst(crit)
         row.update(flat_numbers(res.get("kpi") or {}, "kpi"))
         row.update(_violation_numbers(res.get("violations")))
@@ -186,8 +181,6 @@ def _worst(crit: Iterable[Mapping[str, Any]]) -> float:
 def _iter_records(source: str | os.PathLike | Iterable[Mapping[str, Any]],
                   ids: set[str] | None) -> Iterator[Mapping[str, Any]]:
     if isinstance(source, (str, os.PathLike)):
-        from ..scenario.batch import iter_results  # noqa: PLC0415 - avoid an import cycle
-
         seen: set[str] = set()
         # the last record per id wins: first pass finds, per id, the line number of its last record
         last: dict[str, int] = {}

@@ -28,7 +28,9 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import signal
 import threading
+import time
 from concurrent.futures import Executor, ProcessPoolExecutor
 from contextlib import contextmanager
 from typing import Iterator
@@ -36,7 +38,7 @@ from typing import Iterator
 from ..exceptions import SettingsError
 
 __all__ = ["local_pool", "dask_executor", "executor_slots", "default_start_method", "default_workers",
-           "limit_blas_threads",
+           "limit_blas_threads", "end_with_parent",
            "DASK_INSTALL_HINT", "START_METHODS"]
 
 DASK_INSTALL_HINT = 'pip install "mpcproto[dask]"'
@@ -112,7 +114,63 @@ def limit_blas_threads(n: int = 1) -> int:
     return count
 
 
-def _worker_start(blas_threads: int | None, initializer, initargs: tuple) -> None:
+#: Seconds between two checks of a worker's watchdog thread that its batch process is still there.
+PARENT_POLL_S = 0.5
+_PR_SET_PDEATHSIG = 1   # from <linux/prctl.h>
+
+
+def _set_parent_death_signal(signum: int) -> bool:
+    """Ask Linux to send *signum* to this process when its parent ends; False elsewhere."""
+    import ctypes  # noqa: PLC0415
+    import sys  # noqa: PLC0415
+
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        return libc.prctl(_PR_SET_PDEATHSIG, ctypes.c_ulong(signum), 0, 0, 0) == 0
+    except (OSError, AttributeError):
+        return False
+
+
+def _watch_parent(first_ppid: int, batch_pid: int, poll_s: float) -> None:
+    from ..store import pid_running  # noqa: PLC0415
+
+    while True:
+        time.sleep(poll_s)
+        if os.getppid() != first_ppid or not pid_running(batch_pid):
+            os._exit(1)   # the batch is gone: nothing will read this worker's result
+
+
+def end_with_parent(batch_pid: int, *, poll_s: float = PARENT_POLL_S) -> None:
+    """Make this worker process end soon after the batch process *batch_pid* does.
+
+    Run at the start of every worker of :func:`local_pool` (``fork`` or ``forkserver``):
+
+    * SIGTERM gets its default action back (a forked worker inherits the batch's SIGTERM handler);
+    * on Linux, ``prctl(PR_SET_PDEATHSIG, SIGKILL)``: the kernel kills the worker when its parent
+      ends, even by ``kill -9`` (with ``fork`` the parent is the batch process, more exactly the
+      thread that made the first submission; with ``forkserver`` it is the fork server, which ends
+      when the batch process does);
+    * everywhere, a daemon thread checks every *poll_s* seconds that the parent process is the same
+      and that *batch_pid* still runs, and ends the worker otherwise (covers other platforms and a
+      parent that died before the signal was set).
+    """
+    from ..store import pid_running  # noqa: PLC0415
+
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    first_ppid = os.getppid()
+    _set_parent_death_signal(signal.SIGKILL)
+    if first_ppid == 1 or not pid_running(batch_pid):   # the batch died before the line above
+        os._exit(1)
+    threading.Thread(target=_watch_parent, args=(first_ppid, batch_pid, poll_s), daemon=True,
+                     name="mpcproto-parent-watch").start()
+
+
+def _worker_start(blas_threads: int | None, initializer, initargs: tuple,
+                  batch_pid: int | None = None) -> None:
+    if batch_pid is not None:
+        end_with_parent(batch_pid)
     if blas_threads is not None:
         limit_blas_threads(blas_threads)
     if initializer is not None:
@@ -121,7 +179,8 @@ def _worker_start(blas_threads: int | None, initializer, initargs: tuple) -> Non
 
 def local_pool(workers: int | None = None, *, start_method: str | None = None,
                preload: list[str] | None = None, initializer=None,
-               initargs: tuple = (), blas_threads: int | None = 1) -> ProcessPoolExecutor:
+               initargs: tuple = (), blas_threads: int | None = 1,
+               end_with_batch: bool = True) -> ProcessPoolExecutor:
     """A process pool for a batch, workers kept alive across cases.
 
     Parameters
@@ -140,6 +199,10 @@ def local_pool(workers: int | None = None, *, start_method: str | None = None,
     blas_threads : int or None
         Threads each worker's BLAS may use (default 1: the pool already runs one case per core;
         see :func:`limit_blas_threads`); None leaves the libraries' defaults.
+    end_with_batch : bool
+        Workers end within about a second when this process ends, even by ``kill -9``
+        (:func:`end_with_parent`), so a cancelled CI job leaves no orphans.  With ``"fork"`` they
+        are tied to the thread that submits first: submit from a thread that outlives the pool.
 
     Returns
     -------
@@ -158,7 +221,8 @@ def local_pool(workers: int | None = None, *, start_method: str | None = None,
     if start_method == "forkserver":
         ctx.set_forkserver_preload(list(_PRELOAD if preload is None else preload))
     return ProcessPoolExecutor(max_workers=n, mp_context=ctx, initializer=_worker_start,
-                               initargs=(blas_threads, initializer, tuple(initargs)))
+                               initargs=(blas_threads, initializer, tuple(initargs),
+                                         os.getpid() if end_with_batch else None))
 
 
 def _import_distributed():
