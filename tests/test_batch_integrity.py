@@ -388,3 +388,37 @@ def test_plain_progress_lines_when_stderr_is_not_a_terminal(tmp_path, capsys):
     assert len(lines) >= 2     # at least one on the interval and one at the end
     assert lines[-1].startswith("mpcproto batch: progress 4/4 cases done, 0 failed, 1 error, ")
     assert "ETA 0:00" in lines[-1]
+
+
+# ------------------------------------------------------------------------------- import direction
+def _mpcproto_imports(path: Path) -> set[str]:
+    """Every mpcproto module a file imports, at module level or inside a function."""
+    import ast
+
+    pkg = ".".join(path.relative_to(REPO).with_suffix("").parts)
+    here = pkg.split(".")[:-1] if path.name != "__init__.py" else pkg.split(".")
+    found: set[str] = set()
+    for node in ast.walk(ast.parse(path.read_text())):
+        if isinstance(node, ast.ImportFrom):
+            base = here[:len(here) - node.level + 1] if node.level else []
+            mod = ".".join(base + ([node.module] if node.module else []))
+            names = [mod] + [f"{mod}.{a.name}" for a in node.names]
+        elif isinstance(node, ast.Import):
+            names = [a.name for a in node.names]
+        else:
+            continue
+        found.update(n for n in names if n.startswith("mpcproto"))
+    return found
+
+
+def test_the_store_sits_below_the_batch_engine_and_the_reports():
+    # one direction: cli -> scenario.batch -> store, cli -> report -> store; no circle between them
+    store = _mpcproto_imports(REPO / "mpcproto" / "store.py")
+    assert store <= {"mpcproto.exceptions", "mpcproto.exceptions.SettingsError"}, store
+    for f in sorted((REPO / "mpcproto" / "report").glob("*.py")):
+        bad = {m for m in _mpcproto_imports(f) if m.startswith(("mpcproto.scenario", "mpcproto.cli"))}
+        assert not bad, f"{f.name} imports {bad}"
+    for name in ("batch.py", "executors.py"):
+        bad = {m for m in _mpcproto_imports(REPO / "mpcproto" / "scenario" / name)
+               if m.startswith(("mpcproto.report", "mpcproto.cli"))}
+        assert not bad, f"scenario/{name} imports {bad}"

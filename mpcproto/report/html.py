@@ -29,8 +29,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
-from .baseline import BaselineComparison
 from ..store import case_verdict, criterion_passed, incomplete_note
+from .baseline import BaselineComparison
 from .summary import ABSOLUTE_CHECKS, criteria_of, margin, utilisation
 
 __all__ = ["write_html_report", "SAFETY_CAUTION", "sort_worst_first", "png_data_uri"]

@@ -30,8 +30,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
-from .baseline import BaselineComparison
 from ..store import case_verdict, criterion_passed, incomplete_note
+from .baseline import BaselineComparison
 from .summary import criteria_of
 
 __all__ = ["write_junit", "junit_tree"]
