@@ -6,66 +6,13 @@ from __future__ import annotations
 import json
 import shutil
 import xml.etree.ElementTree as ET
-from pathlib import Path
 
 import pytest
 
 from mpcproto.cli import main
+from test_batch_workload import SMALL_STUDY, write_study
 
 pd = pytest.importorskip("pandas")
-
-# A study of our own: the package's blending tank under a draw-off step, PID loops tuned by SIMC,
-# 2 sweep values x 2 Monte Carlo draws of the outlet loss coefficient = 4 cases.
-SMALL_STUDY = """
-[scenario]
-name = "{name}"
-sample_time = 10.0
-duration = 200.0
-seed = 11
-
-[plant]
-model = "blending_tank"
-options = {{ outflow = "dv" }}
-
-[operating_point]
-dvs = {{ draw_off = 1.6 }}
-targets = {{ level = 1.1, concentration = 2.5, temperature = 72.0 }}
-
-[disturbances]
-draw_off = {{ kind = "step", at = 50.0, size = 0.3 }}
-
-[instruments]
-level = {{ noise_std = 0.002 }}
-
-[controllers.pid]
-rule = "simc"
-pairs = {{ level = "water_flow", concentration = "caustic_flow", temperature = "heater_duty" }}
-
-[[criteria]]
-check = "iae_below"
-cv = "level"
-limit = {limit}
-
-[study]
-draws = 2
-full_draws = 3
-
-[[study.sweep]]
-key = "disturbances.draw_off.size"
-values = [0.2, 0.4]
-
-[[study.draw]]
-key = "plant.parameters.loss_coefficient"
-distribution = "uniform"
-low = 0.03
-high = 0.04
-"""
-
-
-def write_study(folder: Path, name: str = "small_tank", limit: float = 1.0e6) -> Path:
-    p = folder / f"{name}.toml"
-    p.write_text(SMALL_STUDY.format(name=name, limit=limit))
-    return p
 
 
 def test_batch_end_to_end_resume_and_baseline(tmp_path, capsys):

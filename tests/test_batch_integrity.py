@@ -27,7 +27,7 @@ from mpcproto.cli import main
 from mpcproto.report.summary import write_summary_csv
 from mpcproto.store import (FINGERPRINT_KEY, LOCK_FILE, OutputInUseError, case_fingerprint,
                             case_verdict, is_complete, lock_output)
-from test_batch_workload import make_cases, run_tank_case
+from test_batch_workload import make_cases, run_tank_case, write_study
 
 TESTS_DIR = Path(__file__).resolve().parent
 REPO = TESTS_DIR.parent
@@ -38,50 +38,14 @@ pytestmark = pytest.mark.skipif(not Path("/proc/self/stat").exists(),
 #: Deadline for the workers of a stopped or killed batch to be gone (see the module docstring).
 GONE_WITHIN_S = 15.0
 
-# A study of our own: the package's blending tank under a draw-off step, PID loops tuned by SIMC,
-# 6 Monte Carlo draws of the outlet loss coefficient; long enough (a few seconds per case) that a
-# signal lands while cases are running.
-SLOW_STUDY = """
-[scenario]
-name = "slow_tank"
-sample_time = 1.0
-duration = {duration}
-seed = 5
-
-[plant]
-model = "blending_tank"
-options = {{ outflow = "dv" }}
-
-[operating_point]
-dvs = {{ draw_off = 1.6 }}
-targets = {{ level = 1.1, concentration = 2.5, temperature = 72.0 }}
-
-[disturbances]
-draw_off = {{ kind = "step", at = 50.0, size = 0.3 }}
-
-[controllers.pid]
-rule = "simc"
-pairs = {{ level = "water_flow", concentration = "caustic_flow", temperature = "heater_duty" }}
-
-[[criteria]]
-check = "iae_below"
-cv = "level"
-limit = 1.0e6
-
-[study]
-draws = {draws}
-
-[[study.draw]]
-key = "plant.parameters.loss_coefficient"
-distribution = "uniform"
-low = 0.03
-high = 0.04
-"""
-
-
-def _write_study(folder: Path, duration: float = 6000.0, draws: int = 6) -> Path:
-    p = folder / "slow_tank.toml"
-    p.write_text(SLOW_STUDY.format(duration=duration, draws=draws))
+def _write_study(folder: Path) -> Path:
+    """The small blending-tank study of the CLI tests (4 cases), sampled every second over 6000 s:
+    a few seconds per case, so that a signal lands while cases are running."""
+    p = write_study(folder, name="slow_tank")
+    text = p.read_text()
+    assert "sample_time = 10.0\nduration = 200.0" in text
+    p.write_text(text.replace("sample_time = 10.0\nduration = 200.0",
+                              "sample_time = 1.0\nduration = 6000.0"))
     return p
 
 
@@ -177,11 +141,11 @@ def test_sigterm_stops_the_batch_cleanly_and_leaves_no_worker(tmp_path):
     # every line on disk is a whole, complete record of this batch
     recs = _lines(results)
     assert recs and all(is_complete(r) for r in recs)
-    assert len({r["case_id"] for r in recs}) == len(recs) < 6
+    assert len({r["case_id"] for r in recs}) == len(recs) < 4
     # plain progress lines in the (non-terminal) log, no carriage returns
     progress = [ln for ln in text.splitlines() if ln.startswith("mpcproto batch: progress ")]
     assert progress and "\r" not in text
-    assert "/6 cases done" in progress[-1] and "ETA" in progress[-1]
+    assert "/4 cases done" in progress[-1] and "ETA" in progress[-1]
 
 
 def test_kill_9_of_the_cli_batch_leaves_no_worker(tmp_path):
@@ -204,7 +168,7 @@ def test_kill_9_of_the_cli_batch_leaves_no_worker(tmp_path):
 
 _KILL_SCRIPT = """
 import sys
-from test_batch_workload import make_cases, run_tank_case
+from test_batch_workload import make_cases, run_tank_case, write_study
 from mpcproto import local_pool, run_batch
 
 if __name__ == "__main__":
@@ -238,7 +202,7 @@ def test_kill_9_leaves_no_worker_of_a_fork_server_pool(tmp_path, method):
 
 # ------------------------------------------------------------------------------ the output lock
 _HOLD_SCRIPT = """
-from test_batch_workload import make_cases, run_tank_case
+from test_batch_workload import make_cases, run_tank_case, write_study
 from mpcproto import run_batch
 
 if __name__ == "__main__":
