@@ -524,7 +524,7 @@ def _cmd_batch(args) -> int:
     from pathlib import Path
 
     from .exceptions import ScenarioError, SettingsError
-    from .store import ID_KEY, RESULTS_FILE, is_complete, load_results, lock_output
+    from .store import ID_KEY, RESULTS_FILE, is_complete, load_results, lock_output, missing_fields
 
     if args.workers is not None and args.workers < 1:
         raise SettingsError(f"The '--workers' option must be an int in the range [1, inf). "
@@ -544,12 +544,12 @@ def _cmd_batch(args) -> int:
         # a wrong file given as the baseline would otherwise compare nothing and pass
         with warnings.catch_warnings(record=True) as skipped:
             warnings.simplefilter("always")
-            n_base = len(load_results(args.baseline))
+            n_base = sum(1 for r in load_results(args.baseline) if not missing_fields(r))
         if n_base == 0:
             raise ScenarioError(
                 "expected the results.jsonl of an earlier batch (--baseline): one JSON record with "
-                f"a '{ID_KEY}' per line; found no such record ({len(skipped)} line(s) skipped).",
-                file=args.baseline)
+                f"a '{ID_KEY}', a 'status' and a 'passed' verdict per line; found no such record "
+                f"({len(skipped)} line(s) skipped).", file=args.baseline)
     files = _scenario_files(args.paths)
     out_dir = Path(args.out)
     with lock_output(out_dir):   # refused at once when another batch writes there

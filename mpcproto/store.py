@@ -353,10 +353,15 @@ def lock_output(out_dir: str | os.PathLike, *, what: str = "mpcproto batch") -> 
     except OSError:
         info = _read_holder(fh)
         fh.close()
+        ended = ""
+        if isinstance(info.get("pid"), int) and info.get("host") == socket.gethostname() \
+                and not pid_running(info["pid"]):
+            ended = " That process has ended; its worker processes are still stopping: try again " \
+                    "in a few seconds."
         raise OutputInUseError(
             f"The output folder '{out}' is in use by another batch ({_describe_holder(info)}); "
             f"expected a folder no other batch is writing to. Wait for that run to end, stop it, "
-            f"or give another --out.") from None
+            f"or give another --out.{ended}") from None
     try:
         old = _read_holder(fh)
         if old.get("pid") is not None:

@@ -341,6 +341,18 @@ def test_reports_treat_a_missing_status_or_verdict_as_failure(tmp_path):
         ["no-verdict", "only-id"]
 
 
+def test_a_baseline_of_incomplete_records_is_refused(tmp_path, capsys):
+    # a baseline whose records carry no status or verdict would compare nothing and pass
+    base = tmp_path / "old.jsonl"
+    base.write_text('{"case_id": "slow_tank/0000"}\n{"case_id": "slow_tank/0001"}\n')
+    code = main(["batch", str(_write_study(tmp_path)), "--out", str(tmp_path / "out"),
+                 "--baseline", str(base)])
+    err = capsys.readouterr().err
+    assert code == 2 and "Traceback" not in err
+    assert "a 'status' and a 'passed' verdict per line; found no such record" in err
+    assert str(base) in err
+
+
 # ------------------------------------------------------------------------------------ progress
 def test_plain_progress_lines_when_stderr_is_not_a_terminal(tmp_path, capsys):
     cases = make_cases(4, steps=1500, bad=(1,))

@@ -22,6 +22,12 @@ in the server (``"spawn"`` where the platform has no fork server).  ``benchmarks
 measures the start-up cost of each method; on the 2-core test machine a pool of 2 workers was
 ready and through its first cases in 1.3 s with ``fork``, 2.9 s with a warm fork server (8.6 s when
 the server itself had to start and import everything) and 13.7 s with ``spawn``.
+
+No orphans
+----------
+Every worker of :func:`local_pool` ends with the batch process that made the pool, with either start
+method and even after ``kill -9`` of the batch (:func:`end_with_parent`): a cancelled CI job leaves
+no process behind.
 """
 
 from __future__ import annotations
