@@ -24,8 +24,10 @@ Output lock
 :func:`lock_output` holds an exclusive :func:`fcntl.flock` on ``DIR/batch.lock`` for the length of a
 batch, with the holder's pid, host and start time written in it.  A second batch on the same folder
 is refused at once with :class:`OutputInUseError` naming that run.  The kernel drops the lock when its
-holder dies (even by ``kill -9``); the next batch then finds the dead run's details in the file and
-takes the folder over with a warning.
+holder dies (even by ``kill -9``) and its workers have ended (a forked worker shares the lock; it
+ends within about a second of the batch); the next batch then finds the dead run's details in the
+file and takes the folder over with a warning, waiting up to :data:`STALE_WAIT_S` seconds for those
+workers when the holder's pid is already gone.
 """
 
 from __future__ import annotations
@@ -316,6 +318,18 @@ def _read_holder(fh) -> dict[str, Any]:
     return info if isinstance(info, dict) else {}
 
 
+#: Seconds a new batch waits for the lock of a batch that has died (its workers are ending).
+STALE_WAIT_S = 10.0
+
+
+def _try_lock(fh, fcntl) -> bool:
+    try:
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        return False
+    return True
+
+
 @contextmanager
 def lock_output(out_dir: str | os.PathLike, *, what: str = "mpcproto batch") -> Iterator[Path]:
     """Hold the output folder *out_dir* for one batch (see the module docstring).
@@ -348,20 +362,23 @@ def lock_output(out_dir: str | os.PathLike, *, what: str = "mpcproto batch") -> 
                 _held[key][1] -= 1
         return
     fh = open(path, "a+", encoding="utf-8")   # never truncated before the lock is ours
-    try:
-        fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except OSError:
+    if not _try_lock(fh, fcntl):
         info = _read_holder(fh)
-        fh.close()
-        ended = ""
-        if isinstance(info.get("pid"), int) and info.get("host") == socket.gethostname() \
-                and not pid_running(info["pid"]):
-            ended = " That process has ended; its worker processes are still stopping: try again " \
-                    "in a few seconds."
-        raise OutputInUseError(
-            f"The output folder '{out}' is in use by another batch ({_describe_holder(info)}); "
-            f"expected a folder no other batch is writing to. Wait for that run to end, stop it, "
-            f"or give another --out.{ended}") from None
+        ended = (isinstance(info.get("pid"), int) and info.get("host") == socket.gethostname()
+                 and not pid_running(info["pid"]))
+        # the holder has died: what still holds the lock are its workers, which end within about
+        # a second of it (mpcproto.scenario.executors.end_with_parent); wait for them
+        deadline = time.monotonic() + (STALE_WAIT_S if ended else 0.0)
+        while not (locked := _try_lock(fh, fcntl)) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        if not locked:
+            fh.close()
+            raise OutputInUseError(
+                f"The output folder '{out}' is in use by another batch ({_describe_holder(info)}"
+                + ("; that process has ended but processes it started still hold the folder after "
+                   f"{STALE_WAIT_S:g} s" if ended else "")
+                + "); expected a folder no other batch is writing to. Wait for that run to end, "
+                  "stop it, or give another --out.")
     try:
         old = _read_holder(fh)
         if old.get("pid") is not None:
