@@ -210,3 +210,29 @@ def test_pure_gain_and_dead_time_elements_need_no_state():
         bare.mv("u", nominal=0.0)
         bare.cv("y", 2.0)
         bare.build()
+
+
+@pytest.mark.filterwarnings("ignore:the dead time on 'feed'")
+def test_dead_time_mismatch_study_runs_and_shows_the_cost_of_the_mismatch():
+    # scenarios/wood_berry_dead_time_mismatch.toml: controllers designed on the published dead
+    # times; the study runs the matched plant and one whose dead times are 20 % longer
+    from pathlib import Path
+
+    from mpcproto.scenario import expand, load_scenario, plant_model, run_case
+
+    path = Path(__file__).resolve().parents[1] / "scenarios" / "wood_berry_dead_time_mismatch.toml"
+    scn = load_scenario(path)
+    plant = plant_model(scn)
+    # one delay per (input, dead time): steam reaches both compositions after the same 3 min
+    assert sorted(dl.dead_time for dl in plant.delays) == pytest.approx(
+        sorted(1.2 * t for t in (1.0, 3.0, 7.0, 8.1, 3.4)))
+    cases = {c.params["plant.parameters.dead_time_scale"]: c for c in expand(scn)}
+    assert sorted(cases) == [1.0, 1.2]
+    rec = {s: run_case(c) for s, c in cases.items()}
+    assert all(r["status"] == "ok" and r["passed"] for r in rec.values())
+    iae = {s: {lab: r["controllers"][lab]["kpi"]["cv"]["top_composition"]["iae"] for lab in ("mpc", "pid")}
+           for s, r in rec.items()}
+    # the MPC's prediction is off by the extra dead time: its setpoint tracking gets worse
+    assert iae[1.2]["mpc"] > 1.2 * iae[1.0]["mpc"]
+    # it still beats the PI loops on the top composition
+    assert iae[1.2]["mpc"] < iae[1.2]["pid"]
