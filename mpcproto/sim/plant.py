@@ -100,9 +100,15 @@ class Plant:
                              dtype=int)
         n = np.array([s[0] for s in self.delay_split_], dtype=int)
         frac = np.array([s[1] > 0 for s in self.delay_split_], dtype=bool)
-        self._lag_after = n
-        self._lag_before = n + frac                 # = n where there is no switch
-        self._ring = np.zeros((int(self._lag_before.max(initial=0)) + 2, nu + nd))
+        lag_before = n + frac                       # = n where there is no switch
+        L = int(lag_before.max(initial=0)) + 2
+        self._ring = np.zeros((L, nu + nd))
+        self._flat = self._ring.reshape(-1)         # a view: rows written in _ring are seen here
+        # flat positions of [z_before; z_after] in the ring for each k mod L: one take() per read
+        rows = np.arange(L)[:, None]
+        self._tab = np.hstack([((rows - lag_before) % L) * (nu + nd) + self._col,
+                               ((rows - n) % L) * (nu + nd) + self._col])
+        self._nz = len(self._col)
         self._p = model.p
         self.step_ = self.step_out_ = self.integrator_ = None
         if self.plugin == "exact":
@@ -177,9 +183,8 @@ class Plant:
         y0 = np.asarray(model.out_(*zero), float).reshape(ny, 1)
         Phi, G = zoh(A, np.hstack([B, Bd, c]), self.Ts)
         after, before = split_sample_inputs(A, Bz, self.Ts, [f for _, f in self.delay_split_])
-        # x+ = Phi x + G_in [u; d; z_before; z_after; 1];  y = C x + H [u; d; z; 1]
-        self._Phi = Phi
-        self._Gin = np.hstack([G[:, :nu + nd], before, after, G[:, nu + nd:]])
+        # x+ = M [x; u; d; z_before; z_after; 1];  y = C x + H [u; d; z; 1]
+        self._M = np.hstack([Phi, G[:, :nu + nd], before, after, G[:, nu + nd:]])
         self._C = C
         self._H = np.hstack([D, Dd, Dz, y0])
 
@@ -200,17 +205,15 @@ class Plant:
         row[:nu] = u
         row[nu:] = d
 
-    def _z_pair(self) -> tuple[np.ndarray, np.ndarray]:
-        """Delayed inputs over sample k before and after their switch (the row of k already put)."""
-        L = len(self._ring)
-        zb = self._ring[(self.k - self._lag_before) % L, self._col]
-        za = self._ring[(self.k - self._lag_after) % L, self._col]
-        return zb, za
+    def _z_pair(self) -> np.ndarray:
+        """``[z_before; z_after]``: delayed inputs over sample k before and after their switch
+        (the row of sample k already put)."""
+        return self._flat.take(self._tab[self.k % len(self._ring)])
 
     def z(self, u: np.ndarray, d: np.ndarray) -> np.ndarray:
         """Delayed inputs at the start of the current sample if *u*, *d* are applied now."""
         self._put(self.k, np.asarray(u, float), np.asarray(d, float))
-        return self._z_pair()[0]
+        return self._z_pair()[:self._nz]
 
     def inputs(self, u: np.ndarray, d: np.ndarray) -> np.ndarray:
         """The packed input ``b = [u; d; z_before; z_after; parameters]`` of :attr:`step_` for the
@@ -218,8 +221,7 @@ class Plant:
         u = np.asarray(u, float)
         d = np.asarray(d, float)
         self._put(self.k, u, d)
-        zb, za = self._z_pair()
-        return np.concatenate([u, d, zb, za, self._p])
+        return np.concatenate([u, d, self._z_pair(), self._p])
 
     def output(self, u: np.ndarray, d: np.ndarray) -> np.ndarray:
         """True CVs at the current state with inputs *u*, *d*."""
@@ -236,17 +238,17 @@ class Plant:
         d = np.asarray(d, float)
         dn = d if d_next is None else np.asarray(d_next, float)
         self._put(self.k, u, d)
-        zb, za = self._z_pair()
+        zz = self._z_pair()                          # [z_before; z_after] over this sample
         self.k += 1
         self._put(self.k, u, dn)                    # the next sample's start, as far as known
-        zq = self._z_pair()[0]
+        zq = self._z_pair()[:self._nz]
         if self.plugin == "exact":
-            xf = self._Phi @ self.x + self._Gin @ np.concatenate([u, d, zb, za, (1.0,)])
+            xf = self._M @ np.concatenate([self.x, u, d, zz, (1.0,)])
             y = self._C @ xf + self._H @ np.concatenate([u, dn, zq, (1.0,)])
         else:
             try:
                 out = np.array(self.step_out_(np.concatenate(
-                    [self.x, u, d, zb, za, self._p, u, dn, zq, self._p])).elements(), float)
+                    [self.x, u, d, zz, self._p, u, dn, zq, self._p])).elements(), float)
                 xf, y = out[:self._nx], out[self._nx:]
             except RuntimeError as exc:
                 self.k -= 1
