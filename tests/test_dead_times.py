@@ -195,16 +195,25 @@ def test_pure_gain_and_dead_time_elements_need_no_state():
                                            "w": {"v": {"gain": -1.0, "dead_time": 0.3}}})
     assert m.nx == 0 and m.nz == 3 and m.is_linear_
     op = mp.steady_state(m)
-    tr = mp.simulate(m, OpenLoop(m.mv_names, {"u": {"kind": "step", "at": 0.0, "size": 1.0},
-                                              "v": {"kind": "step", "at": 2.0, "size": 2.0}}),
-                     op=op, Ts=1.0, duration=8.0)
-    t = tr.t
-    # held inputs are right-continuous: u(t - theta) at t = 3 is v's value from t = 2 on
-    np.testing.assert_allclose(tr.series("y", "y"), 3.0 * (t >= 2.5) + 2.0 * (t >= 3.0))
-    np.testing.assert_allclose(tr.series("y", "w"), -2.0 * (t >= 2.3))
+    for integrator in ("exact", "cvodes"):        # cvodes: no state to integrate, outputs only
+        tr = mp.simulate(m, OpenLoop(m.mv_names, {"u": {"kind": "step", "at": 0.0, "size": 1.0},
+                                                  "v": {"kind": "step", "at": 2.0, "size": 2.0}}),
+                         op=op, Ts=1.0, duration=8.0, integrator=integrator)
+        t = tr.t
+        # held inputs are right-continuous: v(t - 1) at t = 3 is v's value from t = 2 on
+        np.testing.assert_allclose(tr.series("y", "y"), 3.0 * (t >= 2.5) + 2.0 * (t >= 3.0))
+        np.testing.assert_allclose(tr.series("y", "w"), -2.0 * (t >= 2.3))
     dm = mp.linearize(m, op).discretize(1.0)
     _, Y = dm.simulate(np.tile([1.0, 0.0], (6, 1)))
     np.testing.assert_allclose(Y[:, 0], 3.0 * (np.arange(6) > 2.5))
+    # an MPC on the stateless model (delay taps only) reaches a setpoint through the dead times
+    # (offset-free MPC, Pannocchia & Rawlings 2003, as in tests/test_mpc.py)
+    ctrl = mp.PredictiveController(dm, horizon=20, control_horizon=4).build()
+    tr = mp.simulate(m, ctrl, op=op, Ts=1.0, duration=40.0,
+                     setpoints={"y": {"kind": "step", "at": 2.0, "size": 1.0}})
+    assert tr.success
+    assert tr.series("y", "y")[-1] == pytest.approx(1.0, abs=1e-5)
+    assert tr.series("y", "w")[-1] == pytest.approx(0.0, abs=1e-5)
     with pytest.raises(mp.ModelError, match="declares no state"):
         bare = mp.Model("nothing")
         bare.mv("u", nominal=0.0)

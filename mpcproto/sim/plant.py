@@ -134,8 +134,9 @@ class Plant:
     def _build(self, model: Any, opts: dict[str, Any]) -> tuple[Any, Any, Any]:
         nx, nu, nd, nz = model.nx, model.nu, model.nd, model.nz
         npar = len(model.parameter_names)
+        # a model of pure dead times has no state to integrate: only its outputs are evaluated
         F = model.sampled_integrator(self.Ts, plugin=self.plugin, options=opts, label="plant",
-                                     scaled=True)
+                                     scaled=True) if nx else None
         nb = nu + nd + 2 * nz + npar
         fr = [f for _, f in self.delay_split_]
         bounds = (0.0, *self.switches_, 1.0)
@@ -147,7 +148,7 @@ class Plant:
             za = [b[nu + nd + nz + i] for i in range(nz)]
             par = [b[i] for i in range(nu + nd + 2 * nz, nb)]
             x = x0
-            for s0, s1 in zip(bounds[:-1], bounds[1:]):
+            for s0, s1 in zip(bounds[:-1], bounds[1:]) if nx else ():
                 z = [za[i] if fr[i] <= s0 else zb[i] for i in range(nz)]
                 x = F(x0=x, p=ca.vertcat((s1 - s0) * self.Ts, *ud, *z, *par))["xf"]
             return x
