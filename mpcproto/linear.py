@@ -47,7 +47,8 @@ __all__ = ["LinearModel", "DiscreteLinearModel", "linearize", "rga", "delay_samp
 DEAD_TIME_POLICIES = ("exact", "round", "refuse")
 
 
-def delay_samples(dead_time: float, Ts: float, *, policy: str = "round", what: str = "dead time") -> int:
+def delay_samples(dead_time: float, Ts: float, *, policy: str = "round", what: str = "dead time",
+                  stacklevel: int = 3) -> int:
     """Whole number of samples for *dead_time* at sample time *Ts*.
 
     A dead time that is not a whole number of samples is rounded to the nearest one (half a sample
@@ -65,7 +66,7 @@ def delay_samples(dead_time: float, Ts: float, *, policy: str = "round", what: s
         if policy == "refuse":
             raise SettingsError(
                 f"{msg}; choose a sample time that divides it, or pass dead_time='exact' (or 'round').")
-        warnings.warn(f"{msg}; rounded to {n} samples.", stacklevel=3)
+        warnings.warn(f"{msg}; rounded to {n} samples.", stacklevel=stacklevel)
     return n
 
 
@@ -99,7 +100,8 @@ def delay_splits(delays: Any, Ts: float, names: Any, *, policy: str = "exact",
         if policy == "exact":
             out.append(delay_split(dt, Ts))
         else:
-            out.append((delay_samples(dt, Ts, policy=policy, what=f"{what} on '{names[r][i]}'"), 0.0))
+            out.append((delay_samples(dt, Ts, policy=policy, what=f"{what} on '{names[r][i]}'",
+                                      stacklevel=5), 0.0))
     return out
 
 
