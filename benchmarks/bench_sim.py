@@ -15,6 +15,13 @@ Run ``python benchmarks/bench_sim.py``; prints tables and writes
    cvodes reference at tight tolerances (abstol = reltol = 1e-12), for the default cvodes
    settings and for the fixed-step plugins.
 3. Which integrator each built-in model uses, and why.
+4. Exact dead times: cost per sample of the plant stepper (``Plant.advance`` on a fixed input
+   sequence) on Wood & Berry at Ts = 1 min, whose feed dead times 8.1 and 3.4 min end part-way
+   through a sample (each sample integrated in 3 pieces), against the floor of today's cost: the
+   same plant with its dead times rounded to whole samples (one piece per sample), both cvodes;
+   and the exact discrete map of the same linear plant (the default of transfer-matrix models).
+   Also the speed-up of the exact map over cvodes on an invented 8 x 12 FOPDT matrix (our own
+   numbers, fixed seed: time constants 3-30 min, dead times 2-10 min with one decimal).
 """
 
 from __future__ import annotations
@@ -77,15 +84,13 @@ def bench_stepping():
         n = len(tr)
         plant = loop.plant
         F = plant.step_
-        # the p vector each sample used: [u; d; z; parameters]
+        # the packed input each sample used
         U = np.column_stack([tr.series("u", v) for v in model.mv_names])
         D = np.column_stack([tr.series("d", v) for v in model.dv_names])
         plant.reset(kw["op"].x, kw["op"].u, kw["op"].d)
         P = []
         for k in range(n):
-            P.append(np.concatenate([U[k], D[k], plant.z(U[k], D[k]), plant._p]))
-            plant._hist_u.append(U[k])
-            plant._hist_d.append(D[k])
+            P.append(plant.inputs(U[k], D[k]))     # [u; d; z before/after their switch; parameters]
             plant.k += 1
         x0 = np.asarray(kw["op"].x, float)
         X = np.column_stack([tr.series("x", v) for v in model.state_names])
@@ -171,6 +176,70 @@ def bench_accuracy():
     return rows, span
 
 
+def _advance_cost(model, Ts, U, D, integrator):
+    """Median wall time per sample of Plant.advance over the input sequence (REPEATS runs)."""
+    plant = mp.sim.Plant(model, Ts, integrator=integrator)
+    op = mp.steady_state(model)
+    per, Y = [], None
+    for _ in range(REPEATS):
+        plant.reset(op.x, op.u, op.d)
+        ys = []
+        t0 = time.perf_counter()
+        for k in range(len(U)):
+            plant.advance(U[k], D[k])
+            ys.append(plant.y_next)
+        per.append((time.perf_counter() - t0) / len(U))
+        Y = np.array(ys)
+    return float(np.median(per)), Y
+
+
+def _fopdt_matrix(rng):
+    """An invented 8 MV x 12 CV matrix of FOPDT elements (our own numbers)."""
+    mvs = [f"mv{j}" for j in range(8)]
+    cvs = [f"cv{i}" for i in range(12)]
+    el = {}
+    for i, c in enumerate(cvs):
+        el[c] = {}
+        for j, m in enumerate(mvs):
+            if rng.random() < 0.6:
+                el[c][m] = {"gain": float(rng.uniform(-2, 2)), "tau": float(rng.uniform(3, 30)),
+                            "dead_time": float(np.round(rng.uniform(2, 10), 1))}
+    return mp.transfer_matrix_model("fopdt_8x12", mvs=mvs, cvs=cvs, elements=el)
+
+
+def bench_dead_times():
+    rows = []
+    wb = mp.make_model("wood_berry")
+    whole = mp.make_model("wood_berry", parameters={"theta_xD_F": 8.0, "theta_xB_F": 3.0})
+    rng = np.random.default_rng(7)
+    n = 400
+    U = wb.nominal("mv") + np.repeat(rng.uniform(-0.1, 0.1, (n // 20, 2)), 20, axis=0)
+    D = wb.nominal("dv") + np.repeat(rng.uniform(-0.2, 0.2, (n // 20, 1)), 20, axis=0)
+    floor, _ = _advance_cost(whole, 1.0, U, D, "cvodes")
+    split, Ys = _advance_cost(wb, 1.0, U, D, "cvodes")
+    exact, Ye = _advance_cost(wb, 1.0, U, D, "exact")
+    pieces = len(mp.sim.Plant(wb, 1.0, integrator="cvodes").switches_) + 1
+    rows.append({"plant": "wood_berry, Ts 1 min", "pieces_per_sample": pieces,
+                 "floor_rounded_cvodes_us": floor * 1e6, "exact_dead_times_cvodes_us": split * 1e6,
+                 "exact_map_us": exact * 1e6, "cvodes_ratio_to_floor": split / floor,
+                 "exact_map_ratio_to_floor": exact / floor,
+                 "max_abs_diff_cvodes_vs_exact_map": float(np.max(np.abs(Ys - Ye)))})
+    big = _fopdt_matrix(np.random.default_rng(19))
+    n = 200
+    U = big.nominal("mv") + np.repeat(rng.uniform(-0.1, 0.1, (n // 20, 8)), 20, axis=0)
+    D = np.zeros((n, 0))
+    cv, Yc = _advance_cost(big, 1.0, U, D, "cvodes")
+    ex, Yx = _advance_cost(big, 1.0, U, D, "exact")
+    pieces = len(mp.sim.Plant(big, 1.0, integrator="exact").switches_) + 1
+    rows.append({"plant": f"fopdt_8x12 ({big.nx} states, {big.nz} delays), Ts 1 min",
+                 "pieces_per_sample": pieces, "floor_rounded_cvodes_us": None,
+                 "exact_dead_times_cvodes_us": cv * 1e6, "exact_map_us": ex * 1e6,
+                 "cvodes_ratio_to_floor": None, "exact_map_ratio_to_floor": None,
+                 "exact_map_speedup_vs_cvodes": cv / ex,
+                 "max_abs_diff_cvodes_vs_exact_map": float(np.max(np.abs(Yc - Yx)))})
+    return rows
+
+
 def integrator_choices():
     out = []
     for info in mp.available_models():
@@ -179,18 +248,20 @@ def integrator_choices():
     return out
 
 
-WHY = ("Every built-in model uses CasADi's cvodes (SUNDIALS adaptive-order, adaptive-step BDF): "
+WHY = ("Every built-in balance model uses CasADi's cvodes (SUNDIALS adaptive-order, adaptive-step BDF): "
        "the CSTR is stiff and runs away through an ignition transient where fixed-step rk and "
        "collocation with few steps per sample are off by whole kelvins or fail (table above); "
        "cvodes keeps to its tolerances on every model at a cost per call close to the "
        "fixed-step plugins, so it is the one default. Fixed-step plugins may be chosen per run "
-       "(ClosedLoop(integrator=..., integrator_options=...)) after this accuracy check.")
+       "(ClosedLoop(integrator=..., integrator_options=...)) after this accuracy check. "
+       "Transfer-matrix models (wood_berry) are linear: they use 'exact', their exact discrete map.")
 
 
 def main() -> int:
     step_rows = bench_stepping()
     acc_rows, span = bench_accuracy()
     choices = integrator_choices()
+    dead_rows = bench_dead_times()
     print("Closed-loop stepping cost per sample (PID controller, instruments, DV signals)")
     print(f"{'model':<20}{'samples':>8}{'closed us':>11}{'bare us':>10}{'ratio':>7}{'range':>13}"
           f"{'PID us':>8}  target<=2")
@@ -212,10 +283,23 @@ def main() -> int:
     for c in choices:
         print(f"{c['model']:<22} integrator {c['integrator']}  (time unit {c['time_unit']})")
     print(WHY)
+    print()
+    print("Exact dead times: plant stepper cost per sample (Plant.advance), floor = the same plant with "
+          "whole-sample dead times on cvodes (today's cost)")
+    print(f"{'plant':<48}{'pieces':>7}{'floor us':>10}{'cvodes us':>11}{'exact map us':>14}"
+          f"{'cvodes/floor':>14}{'map/floor':>11}{'max|dy|':>10}")
+    for r in dead_rows:
+        f = "" if r["floor_rounded_cvodes_us"] is None else f"{r['floor_rounded_cvodes_us']:.1f}"
+        rc = "" if r["cvodes_ratio_to_floor"] is None else f"{r['cvodes_ratio_to_floor']:.2f}"
+        rm = "" if r["exact_map_ratio_to_floor"] is None else f"{r['exact_map_ratio_to_floor']:.3f}"
+        print(f"{r['plant']:<48}{r['pieces_per_sample']:>7}{f:>10}{r['exact_dead_times_cvodes_us']:>11.1f}"
+              f"{r['exact_map_us']:>14.1f}{rc:>14}{rm:>11}{r['max_abs_diff_cvodes_vs_exact_map']:>10.1e}")
+        if "exact_map_speedup_vs_cvodes" in r:
+            print(f"{'':<48}exact map {r['exact_map_speedup_vs_cvodes']:.0f}x faster than cvodes per sample")
     RESULTS.mkdir(parents=True, exist_ok=True)
     out = {"benchmark": "bench_sim", "python": sys.version.split()[0], "machine": platform.machine(),
            "repeats": REPEATS, "stepping": step_rows, "accuracy": {"transient": span, "rows": acc_rows},
-           "integrators": choices, "why": WHY}
+           "integrators": choices, "why": WHY, "dead_times": dead_rows}
     (RESULTS / "bench_sim.json").write_text(json.dumps(out, indent=2))
     print(f"\nwritten {RESULTS / 'bench_sim.json'}")
     return 0

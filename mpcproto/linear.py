@@ -9,11 +9,15 @@ deviation variables::
 where ``z`` are the model's delayed inputs (each the value of one MV or DV a dead time ago).
 
 :meth:`LinearModel.discretize` applies a zero-order hold (inputs held over each sample, the exact
-discretization for a sampled controller) and turns every dead time into a chain of integer-sample
-delay states.  A dead time that is not a multiple of the sample time is **rounded to the nearest
-whole number of samples with a warning** (``dead_time="round"``, the default) or **refused**
-(``dead_time="refuse"``); half a sample rounds up.  The nonlinear simulator rounds the same way
-(:func:`delay_samples`), so controller model and plant agree.
+discretization for a sampled controller) and turns every dead time into a chain of delay states.
+A dead time ``(n + f) Ts`` that is not a whole number of samples is represented **exactly**
+(``dead_time="exact"``, the default): over a sample the delayed input switches from ``u[k-n-1]`` to
+``u[k-n]`` at the fraction ``f`` of the sample, so it enters through two taps of the delay chain
+with split input matrices (the modified-z-transform / split-sample ZOH; for a first-order element
+the numerator ``b1 z^-(n+1) + b2 z^-(n+2)``).  The simulated plant switches at the same instants
+(:mod:`mpcproto.sim.plant`), so controller model and plant agree.  ``dead_time="round"`` rounds to
+the nearest whole number of samples with a warning (half a sample rounds up) and
+``dead_time="refuse"`` refuses a fractional dead time.
 
 Analysis (:class:`LinearModel`): steady-state gains, poles, transmission zeros, the relative gain
 array and a per-pair view.  Channels and zeros are computed on *minimal* realizations (controllable
@@ -36,17 +40,24 @@ import scipy.linalg as sla
 from .exceptions import SettingsError
 from .operating import OperatingPoint
 
-__all__ = ["LinearModel", "DiscreteLinearModel", "linearize", "rga", "delay_samples",
+__all__ = ["LinearModel", "DiscreteLinearModel", "linearize", "rga", "delay_samples", "delay_split",
            "minimal_realization", "transmission_zeros"]
 
 
-def delay_samples(dead_time: float, Ts: float, *, policy: str = "round", what: str = "dead time") -> int:
+DEAD_TIME_POLICIES = ("exact", "round", "refuse")
+
+
+def delay_samples(dead_time: float, Ts: float, *, policy: str = "round", what: str = "dead time",
+                  stacklevel: int = 3) -> int:
     """Whole number of samples for *dead_time* at sample time *Ts*.
 
     A dead time that is not a whole number of samples is rounded to the nearest one (half a sample
     rounds up) with a ``UserWarning`` (``policy="round"``), or refused with :class:`SettingsError`
-    (``policy="refuse"``).
+    (``policy="refuse"``).  :func:`delay_split` gives the exact split instead.
     """
+    if policy not in ("round", "refuse"):
+        raise SettingsError(f"dead_time policy must be one of {', '.join(map(repr, DEAD_TIME_POLICIES))}; "
+                            f"got {policy!r}.")
     n_exact = dead_time / Ts
     n = int(math.floor(n_exact + 0.5))  # half a sample rounds up (2.5 -> 3), not to even
     if abs(n - n_exact) > 1e-9 * max(1.0, n_exact):
@@ -54,11 +65,44 @@ def delay_samples(dead_time: float, Ts: float, *, policy: str = "round", what: s
                f"({n_exact:.4g} samples)")
         if policy == "refuse":
             raise SettingsError(
-                f"{msg}; choose a sample time that divides it, or pass dead_time='round'.")
-        if policy != "round":
-            raise SettingsError(f"dead_time policy must be 'round' or 'refuse'; got {policy!r}.")
-        warnings.warn(f"{msg}; rounded to {n} samples.", stacklevel=3)
+                f"{msg}; choose a sample time that divides it, or pass dead_time='exact' (or 'round').")
+        warnings.warn(f"{msg}; rounded to {n} samples.", stacklevel=stacklevel)
     return n
+
+
+def delay_split(dead_time: float, Ts: float) -> tuple[int, float]:
+    """``(n, f)`` with ``dead_time = (n + f) Ts``, ``n`` whole and ``0 <= f < 1``.
+
+    Over the sample ``[k Ts, (k+1) Ts)`` an input delayed by this dead time equals the held input
+    of sample ``k-n-1`` until ``f`` of the sample has passed, then that of sample ``k-n``.  A
+    fraction within 1e-9 (relative) of a whole number of samples counts as whole (``f = 0``), the
+    same tolerance :func:`delay_samples` uses.
+    """
+    r = float(dead_time) / float(Ts)
+    tol = 1e-9 * max(1.0, r)
+    n = int(math.floor(r + tol))
+    f = r - n
+    return n, (0.0 if f <= tol else float(f))
+
+
+def delay_splits(delays: Any, Ts: float, names: Any, *, policy: str = "exact",
+                 what: str = "dead time") -> list[tuple[int, float]]:
+    """``(n, f)`` per ``(role, index, dead_time)`` delay under a dead-time *policy*.
+
+    ``"exact"`` keeps the fraction (:func:`delay_split`); ``"round"`` and ``"refuse"`` go through
+    :func:`delay_samples` (``f = 0``).  *names* maps a role to its variable names (for messages).
+    """
+    if policy not in DEAD_TIME_POLICIES:
+        raise SettingsError(f"dead_time policy must be one of {', '.join(map(repr, DEAD_TIME_POLICIES))}; "
+                            f"got {policy!r}.")
+    out = []
+    for r, i, dt in delays:
+        if policy == "exact":
+            out.append(delay_split(dt, Ts))
+        else:
+            out.append((delay_samples(dt, Ts, policy=policy, what=f"{what} on '{names[r][i]}'",
+                                      stacklevel=5), 0.0))
+    return out
 
 
 def rga(K: np.ndarray) -> np.ndarray:
@@ -219,26 +263,31 @@ class LinearModel:
                 })
         return out
 
-    def discretize(self, Ts: float, *, dead_time: str = "round") -> "DiscreteLinearModel":
-        """Zero-order-hold discretization with integer-sample delay states (see module docstring)."""
+    def discretize(self, Ts: float, *, dead_time: str = "exact") -> "DiscreteLinearModel":
+        """Zero-order-hold discretization with delay states (see module docstring).
+
+        Parameters
+        ----------
+        Ts : float
+            Sample time (model time unit).
+        dead_time : {"exact", "round", "refuse"}
+            How a dead time that is not a whole number of samples is represented: exactly (split
+            sample, two delay taps), rounded to whole samples with a warning, or refused.
+        """
         if isinstance(Ts, bool) or not (isinstance(Ts, numbers.Real) and math.isfinite(Ts) and Ts > 0):
             raise SettingsError(f"discretize(): the sample time Ts must be a finite number > 0; got {Ts!r}.")
         nx, nu, nd = self.A.shape[0], self.B.shape[1], self.Bd.shape[1]
         # exact ZOH of the delay-free part, all inputs at once: expm of the augmented matrix
-        Ball = np.hstack([self.B, self.Bd, self.Bz])
-        M = np.zeros((nx + Ball.shape[1],) * 2)
-        M[:nx, :nx] = self.A * Ts
-        M[:nx, nx:] = Ball * Ts
-        E = sla.expm(M)
-        Phi, Gam = E[:nx, :nx], E[:nx, nx:]
+        Phi, Gam = zoh(self.A, np.hstack([self.B, self.Bd, self.Bz]), Ts)
         Gu, Gd, Gz = Gam[:, :nu], Gam[:, nu:nu + nd], Gam[:, nu + nd:]
-        # delay chains: one chain per source (mv j or dv j), as long as its longest delay
-        nsamp = [delay_samples(dt, Ts, policy=dead_time,
-                               what=f"dead time on '{(self.mv_names if r == 'mv' else self.dv_names)[i]}'")
-                 for (r, i, dt) in self.delays]
+        split = delay_splits(self.delays, Ts, {"mv": self.mv_names, "dv": self.dv_names},
+                             policy=dead_time)
+        # a delay (n + f) Ts acts over a sample through u[k-n] ("after" the switch at f Ts) and,
+        # if f > 0, u[k-n-1] ("before" it); tap i is u[k-i] (tap 0: the input itself)
+        after, before = split_sample_inputs(self.A, self.Bz, Ts, [f for _, f in split], Gz)
         chains: dict[tuple[str, int], int] = {}
-        for (r, i, _), n in zip(self.delays, nsamp):
-            chains[(r, i)] = max(chains.get((r, i), 0), n)
+        for (r, i, _), (n, f) in zip(self.delays, split):
+            chains[(r, i)] = max(chains.get((r, i), 0), n + (1 if f > 0 else 0))
         offset: dict[tuple[str, int], int] = {}
         nxi = 0
         for key, n in chains.items():
@@ -265,14 +314,26 @@ class LinearModel:
                     (B if r == "mv" else Bd)[o, i] = 1.0
                 else:
                     A[o + k, o + k - 1] = 1.0
-        for col, ((r, i, _), n) in enumerate(zip(self.delays, nsamp)):
-            if n == 0:  # rounded to no delay: acts like the source itself
-                (B if r == "mv" else Bd)[:nx, i] += Gz[:, col]
-                (D if r == "mv" else Dd)[:, i] += self.Dz[:, col]
-            else:
-                tap = nx + offset[(r, i)] + n - 1
-                A[:nx, tap] += Gz[:, col]
-                C[:, tap] += self.Dz[:, col]
+
+        def tap(r: str, i: int, t: int, g: np.ndarray | None, c: np.ndarray | None) -> None:
+            if t == 0:  # the input itself
+                if g is not None:
+                    (B if r == "mv" else Bd)[:nx, i] += g
+                if c is not None:
+                    (D if r == "mv" else Dd)[:, i] += c
+                return
+            col = nx + offset[(r, i)] + t - 1
+            if g is not None:
+                A[:nx, col] += g
+            if c is not None:
+                C[:, col] += c
+
+        for col, ((r, i, _), (n, f)) in enumerate(zip(self.delays, split)):
+            tap(r, i, n, after[:, col], None)
+            if f > 0:
+                tap(r, i, n + 1, before[:, col], None)
+            # at a sampling instant the delayed input still has its value from before the switch
+            tap(r, i, n + 1 if f > 0 else n, None, self.Dz[:, col])
         return DiscreteLinearModel(A=A, B=B, Bd=Bd, C=C, D=D, Dd=Dd, Ts=float(Ts), op=self.op,
                                    state_names=tuple(names), n_plant_states=nx,
                                    time_unit=self.time_unit)
@@ -465,6 +526,49 @@ def _controllability_reach(A: np.ndarray, b: np.ndarray) -> np.ndarray:
     for _ in range(max(n - 1, 0)):
         cols.append(A @ cols[-1])
     return np.column_stack(cols) if cols else np.zeros((0, 0))
+
+
+def zoh(A: np.ndarray, B: np.ndarray, h: float) -> tuple[np.ndarray, np.ndarray]:
+    """Exact zero-order hold over a time *h*: ``(e^{A h}, int_0^h e^{A s} ds B)``.
+
+    One matrix exponential of the augmented matrix ``[[A, B], [0, 0]] h`` (Van Loan's method,
+    common practice).
+    """
+    nx, nb = A.shape[0], B.shape[1]
+    M = np.zeros((nx + nb, nx + nb))
+    M[:nx, :nx] = A * h
+    M[:nx, nx:] = B * h
+    E = sla.expm(M)
+    return E[:nx, :nx], E[:nx, nx:]
+
+
+def split_sample_inputs(A: np.ndarray, Bz: np.ndarray, Ts: float, fractions: Any,
+                        whole: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Input matrices of delayed inputs whose value switches at a fraction of the sample.
+
+    Column ``j`` of *Bz* is an input held at ``v_before`` over ``[0, f_j Ts)`` and at ``v_after``
+    over ``[f_j Ts, Ts)``; over one sample ``x+ = e^{A Ts} x + G_after v_after + G_before v_before``
+    with ``G_after = int_0^{(1-f) Ts} e^{A s} ds Bz`` and
+    ``G_before = e^{A (1-f) Ts} int_0^{f Ts} e^{A s} ds Bz`` (split-sample zero-order hold, the
+    state-space form of the modified z-transform).  ``f = 0`` gives ``(whole, 0)``, *whole* being
+    the one-sample ZOH input matrix of *Bz* (computed if not given).
+    """
+    nx, nz = Bz.shape
+    after = np.zeros((nx, nz))
+    before = np.zeros((nx, nz))
+    fr = [float(f) for f in fractions]
+    if whole is None and any(f == 0 for f in fr):
+        whole = zoh(A, Bz, Ts)[1]
+    for f in sorted(set(fr)):
+        cols = [j for j, fj in enumerate(fr) if fj == f]
+        if f == 0:
+            after[:, cols] = whole[:, cols]
+            continue
+        Phi_a, G_a = zoh(A, Bz[:, cols], (1.0 - f) * Ts)
+        G_b = zoh(A, Bz[:, cols], f * Ts)[1]
+        after[:, cols] = G_a
+        before[:, cols] = Phi_a @ G_b
+    return after, before
 
 
 @dataclass

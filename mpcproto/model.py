@@ -122,7 +122,9 @@ class Model:
         One line saying what the unit is.
     integrator : str
         CasADi integrator plugin the simulator should use for this model (``"cvodes"`` by default:
-        adaptive BDF, safe for stiff units such as an exothermic reactor).
+        adaptive BDF, safe for stiff units such as an exothermic reactor), or ``"exact"`` for a
+        model linear in its states and inputs (stepped by its exact discrete map, see
+        :class:`mpcproto.sim.Plant`).
     """
 
     def __init__(self, name: str, *, time_unit: str = "s", description: str = "",
@@ -315,7 +317,7 @@ class Model:
         """Validate the definition and compile it once into CasADi Functions; returns ``self``."""
         errs: list[str] = []
         states = self.names("state")
-        if not states:
+        if not states and not self._delays:  # pure dead times (y = K u(t - theta)) need no state
             errs.append("it declares no state")
         if not self.names("cv"):
             errs.append("it declares no CV (controlled/measured output)")
@@ -374,6 +376,9 @@ class Model:
             ["A", "B", "Bd", "Bz", "C", "D", "Dd", "Dz"])
         # where each delayed input takes its value from, for steady states (z = source value)
         self._z_src = [(d.source_role, self.names(d.source_role).index(d.source)) for d, _ in self._delays]
+        # linear (affine) in states and inputs whatever the parameters: the plant may then be
+        # stepped by its exact discrete map (integrator "exact")
+        self.is_linear_ = bool(ca.is_linear(ca.vertcat(xdot, y), ca.vertcat(x, u, d, z)))
         self._p_values = self.nominal("parameter")
         self._built = True
         return self
@@ -460,26 +465,36 @@ class Model:
         return np.asarray(self.out_(*self._args(x, u, d, z, p)), float).reshape(-1)
 
     def sampled_integrator(self, Ts: float, *, plugin: str | None = None,
-                           options: Mapping[str, Any] | None = None, label: str = "step") -> Any:
+                           options: Mapping[str, Any] | None = None, label: str = "step",
+                           scaled: bool = False) -> Any:
         """CasADi integrator over one sample with the inputs held (zero-order hold).
 
         The Function maps ``x0`` and the packed vector ``p = [u; d; z; parameters]`` to ``xf``.
-        *plugin* defaults to the model's own integrator (``model.integrator``); *options* are the
-        plugin's CasADi options.  An integrator that CasADi refuses raises
+        With ``scaled=True`` it integrates over the unit interval with the duration as the first
+        entry of ``p`` (``p = [h; u; d; z; parameters]``, ``dx/ds = h f``): one integrator for
+        every interval length (the plant splits a sample where a dead time ends; *Ts* is then
+        ignored).  *plugin* defaults to the model's own integrator (``model.integrator``;
+        ``"exact"`` -- the exact discrete map of a linear model -- means cvodes here); *options*
+        are the plugin's CasADi options.  An integrator that CasADi refuses raises
         :class:`~mpcproto.exceptions.SettingsError` naming the plugin and options.
         """
         from .exceptions import SettingsError
 
         self._require_built("sampled_integrator()")
         plugin = plugin or self.integrator or "cvodes"
+        if plugin == "exact":
+            plugin = "cvodes"
         nx, nu, nd, nz = self.nx, self.nu, self.nd, self.nz
         x = ca.SX.sym("x", nx)
         pv = ca.SX.sym("p", nu + nd + nz + len(self.names("parameter")))
         u, d = pv[:nu], pv[nu:nu + nd]
         z, p = pv[nu + nd:nu + nd + nz], pv[nu + nd + nz:]
+        rhs = self.ode_(x, u, d, z, p)
+        if scaled:
+            h = ca.SX.sym("h")
+            pv, rhs, Ts = ca.vertcat(h, pv), h * rhs, 1.0
         try:
-            return ca.integrator(f"{self.name}_{label}", plugin,
-                                 {"x": x, "p": pv, "ode": self.ode_(x, u, d, z, p)},
+            return ca.integrator(f"{self.name}_{label}", plugin, {"x": x, "p": pv, "ode": rhs},
                                  0.0, float(Ts), dict(options or {}))
         except RuntimeError as exc:
             raise SettingsError(

@@ -299,7 +299,7 @@ def steady_states(model, u: Mapping[str, float] | Sequence[float] | np.ndarray |
     sc = _scale(lo, hi, model.nominal("state"))
     unique: list[np.ndarray] = []
     for xs in found:
-        if not any(np.max(np.abs(xs - q) / sc) < 1e-6 for q in unique):
+        if not any(np.max(np.abs(xs - q) / sc, initial=0.0) < 1e-6 for q in unique):
             unique.append(xs)
     unique.sort(key=lambda v: tuple(v))
     return [OperatingPoint.at(model, xs, u, d) for xs in unique]
@@ -334,7 +334,7 @@ def steady_state(model, u: Mapping[str, float] | Sequence[float] | np.ndarray | 
             f"Check the MV and DV values, or use solve_targets() to find consistent MVs.")
     lo, hi = model.bounds("state")
     sc = _scale(lo, hi, model.nominal("state"))
-    return min(ops, key=lambda op: float(np.max(np.abs(op.x - xg) / sc)))
+    return min(ops, key=lambda op: float(np.max(np.abs(op.x - xg) / sc, initial=0.0)))
 
 
 # ---------------------------------------------------------------------------------------------

@@ -18,11 +18,11 @@ Inputs (held between samples of ``Ts``, zero-order hold):
     rectangular pulse of height ``size / Ts`` -- the sampled form of an impulse a plant test can
     actually apply.  Keep ``Ts`` short against the unit's time constants.
 
-The nonlinear response comes from a CasADi integrator (the model's plugin, cvodes by default,
-tolerances abstol 1e-11, reltol 1e-10) built once per call; dead times are whole-sample delays, rounded as
-:func:`mpcproto.linear.delay_samples` rounds them.  The linear response is the exact ZOH
-discretization of the linearization (:meth:`~mpcproto.LinearModel.discretize`), so for a linear
-plant the two agree to integrator accuracy.
+The nonlinear response comes from the closed loop's plant stepper (:class:`mpcproto.sim.Plant`:
+the model's plugin, cvodes by default with tolerances abstol 1e-11, reltol 1e-10 here, or the exact
+discrete map of a linear model); dead times are exact, whole samples or not.  The linear response
+is the exact ZOH discretization of the linearization (:meth:`~mpcproto.LinearModel.discretize`,
+fractional dead times exact too), so for a linear plant the two agree to integrator accuracy.
 
 Linearity report: per CV, the largest deviation between the nonlinear and the linear response,
 relative to the largest change of the linear response,
@@ -35,18 +35,16 @@ from __future__ import annotations
 
 import math
 import numbers
-import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import casadi as ca
 import numpy as np
 
 from ._specs import paired_series
 from .exceptions import SettingsError, SimulationError
-from .linear import delay_samples, linearize
+from .linear import linearize
 from .model import suggest
 from .operating import OperatingPoint
 
@@ -133,10 +131,8 @@ class ResponseTest:
         }
 
 
-def _integrator(model, Ts: float):
-    plugin = getattr(model, "integrator", "cvodes") or "cvodes"
-    opts = {"abstol": 1e-11, "reltol": 1e-10} if plugin in ("cvodes", "idas") else {}
-    return model.sampled_integrator(Ts, options=opts, label="response")
+# tolerances of the adaptive plugins for open-loop tests (tighter than the closed loop's)
+_TOLERANCES = {"abstol": 1e-11, "reltol": 1e-10}
 
 
 def _positive(v: Any, what: str) -> float:
@@ -235,56 +231,29 @@ def open_loop_test(model, op: OperatingPoint, mv: str, *, kind: str = "step", si
         notes.append(f"{mv} leaves its physical range [{lo[j]:g}, {hi[j]:g}] during the test "
                      f"(reaches {vals.min():g}..{vals.max():g}); the model is evaluated there anyway")
 
-    # nonlinear: whole-sample delays fed from an input history (steady past = op values)
-    F = _integrator(model, Ts)
-    nsteps = []
-    with warnings.catch_warnings(record=True) as rec:
-        warnings.simplefilter("always")
-        for dl in model.delays:
-            nsteps.append(delay_samples(dl.dead_time, Ts, what=f"dead time on '{dl.source}'"))
-        dlin = lin.discretize(Ts, dead_time="round")
-    if rec:
-        notes.extend(sorted({str(r.message) for r in rec}))
-        n_dt = sum(1 for dl in model.delays if abs(dl.dead_time / Ts - round(dl.dead_time / Ts)) > 1e-9)
-        warnings.warn(f"open_loop_test(): the step tests round {n_dt or len(rec)} dead time(s) to "
-                      f"whole samples of Ts = {Ts:g} (listed in ResponseTest.notes).", stacklevel=2)
-    src = [(dl.source_role, model.names(dl.source_role).index(dl.source)) for dl in model.delays]
+    # nonlinear: the plant stepper of the closed loop (exact dead times, split samples)
+    from .sim.plant import Plant  # lazy: the stepper lives with the simulator
+
+    plugin = getattr(model, "integrator", "cvodes") or "cvodes"
+    plant = Plant(model, Ts, options=_TOLERANCES if plugin in ("cvodes", "idas") else None)
+    dlin = lin.discretize(Ts, dead_time="exact")
     U = np.tile(op.u, (N, 1))
     D = np.tile(op.d, (N, 1))
     (U if role == "mv" else D)[:, j] = vals
-    p = model.p
     X = np.zeros((N + 1, model.nx))
     Y = np.zeros((N + 1, model.ny))
     X[0] = op.x
-
-    def zk(k: int) -> np.ndarray:
-        out = np.empty(len(src))
-        for i, ((r, jj), n) in enumerate(zip(src, nsteps)):
-            kk = k - n
-            if kk < 0:
-                out[i] = (op.u if r == "mv" else op.d)[jj]
-            else:
-                out[i] = (U if r == "mv" else D)[kk, jj]
-        return out
-
+    plant.reset(op.x, op.u, op.d)
     for k in range(N):
-        z = zk(k)
-        Y[k] = model.output(X[k], U[k], D[k], z, p)
+        Y[k] = plant.output(U[k], D[k])
         try:
-            xf = np.asarray(F(x0=X[k], p=np.concatenate([U[k], D[k], z, p]))["xf"], float).reshape(-1)
-        except RuntimeError as exc:
-            last = [ln for ln in str(exc).splitlines() if ln.strip()]
+            X[k + 1] = plant.advance(U[k], D[k])
+        except SimulationError as exc:
             raise SimulationError(
                 f"open_loop_test(): the nonlinear model '{model.name}' could not be integrated past "
-                f"t = {k * Ts:g} {model.time_unit} ({kind} of {size:g} on {mv}): "
-                f"{last[-1] if last else exc}. Try a smaller size.") from None
-        if not np.all(np.isfinite(xf)):
-            raise SimulationError(
-                f"open_loop_test(): the nonlinear model '{model.name}' state became non-finite after "
-                f"t = {k * Ts:g} ({kind} of {size:g} on {mv}); try a smaller size.")
-        X[k + 1] = xf
-    U_last, D_last = U[-1], D[-1]
-    Y[N] = model.output(X[N], U_last, D_last, zk(N), p)
+                f"t = {k * Ts:g} {model.time_unit} ({kind} of {size:g} on {mv}): {exc}. "
+                f"Try a smaller size.") from None
+    Y[N] = plant.output(U[-1], D[-1])
     lo_x, hi_x = model.bounds("state")
     out_of = [n for i, n in enumerate(model.state_names)
               if np.any(X[:, i] < lo_x[i] - 1e-9) or np.any(X[:, i] > hi_x[i] + 1e-9)]

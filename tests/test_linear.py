@@ -115,10 +115,10 @@ def test_zoh_step_invariance_against_scipy_step(cstr_lin):
 
 def test_dead_time_delay_states_and_analytic_fopdt_step(wood_berry_lin):
     # Wood & Berry at Ts = 1 min: the 1, 3, 7 min dead times on the MVs are whole samples;
-    # the feed's 8.1 and 3.4 min are rounded (with a warning naming the feed)
+    # with dead_time="round" the feed's 8.1 and 3.4 min are rounded (with a warning naming the feed)
     with warnings.catch_warnings(record=True) as rec:
         warnings.simplefilter("always")
-        d = wood_berry_lin.discretize(1.0)
+        d = wood_berry_lin.discretize(1.0, dead_time="round")
     msgs = sorted(str(r.message) for r in rec)
     assert len(msgs) == 2
     assert "dead time on 'feed' = 3.4 is not a multiple of the sample time 1" in msgs[0]
@@ -144,11 +144,12 @@ def test_dead_time_delay_states_and_analytic_fopdt_step(wood_berry_lin):
 def test_dead_time_refuse_and_half_sample_rounding(wood_berry_lin):
     with pytest.raises(mp.SettingsError, match=r"dead time on 'reflux' = 1 is not a multiple of the sample time 2"):
         wood_berry_lin.discretize(2.0, dead_time="refuse")
-    with pytest.raises(mp.SettingsError, match=r"dead_time policy must be 'round' or 'refuse'; got 'nearest'"):
+    with pytest.raises(mp.SettingsError,
+                       match=r"dead_time policy must be one of 'exact', 'round', 'refuse'; got 'nearest'"):
         wood_berry_lin.discretize(0.7, dead_time="nearest")
     with warnings.catch_warnings(record=True) as rec:
         warnings.simplefilter("always")
-        d = wood_berry_lin.discretize(2.0)
+        d = wood_berry_lin.discretize(2.0, dead_time="round")
     assert any("'reflux' = 1" in str(r.message) and "rounded to 1 samples" in str(r.message) for r in rec)
     assert sum(n.startswith("reflux[k-") for n in d.state_names) == 4  # 7 min -> 3.5 -> 4 samples
     for bad in (0, -1.0, math.nan, "1"):
@@ -161,7 +162,7 @@ def test_dead_time_rounded_to_zero_acts_directly():
                                  elements={"y": {"u": {"gain": 2.0, "tau": 5.0, "dead_time": 0.3}}})
     lin = mp.linearize(m, mp.steady_state(m))
     with pytest.warns(UserWarning, match="rounded to 0 samples"):
-        d = lin.discretize(1.0)
+        d = lin.discretize(1.0, dead_time="round")
     assert d.nx == 1
     _, Y = d.simulate(np.ones((3, 1)))
     # analytic first-order ZOH step: y[k] = K (1 - exp(-k Ts / tau))

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import warnings
 
 import numpy as np
 import pytest
@@ -50,20 +51,29 @@ def test_first_order_step_matches_analytic_solution():
     assert np.allclose(tr.series("u", "u"), np.where(t >= t1, du, 0.0))
 
 
-def test_plant_dead_time_is_whole_samples_like_the_linear_model():
-    # Reference: pure transport delay shifts the analytic response by the dead time; the rounding
-    # to whole samples is mpcproto.linear.delay_samples (the controller's discretization)
+def test_plant_dead_time_is_exact_whatever_the_sample_time():
+    # Reference: a pure transport delay shifts the analytic first-order step response by the dead
+    # time: y = K du (1 - exp(-(t - t1 - theta)/tau)) for t > t1 + theta (common practice, no
+    # source).  40 s is 4 samples of 10 s but 2.67 samples of 15 s and 5.71 of 7 s: the plant
+    # splits the sample in which the delayed step arrives, for the cvodes and the exact stepper.
     K, tau, theta, du = 1.0, 30.0, 40.0, 1.0
     m = first_order(K, tau, dead_time=theta)
-    tr = mp.simulate(m, OpenLoop(m.mv_names, {"u": {"kind": "step", "at": 10.0, "size": du}}),
-                     op=op_of(m), Ts=10.0, duration=300.0)
-    t, y = tr.t, tr.series("y", "y")
-    s = t - 10.0 - theta
-    exact = np.where(s > 0, K * du * (1 - np.exp(-s / tau)), 0.0)
-    assert np.allclose(y, exact, atol=1e-6)
-    assert mp.sim.Plant(m, 10.0).delay_steps_ == [4]
-    with pytest.warns(UserWarning, match="not a multiple"):
-        assert mp.sim.Plant(m, 15.0).delay_steps_ == [mp.linear.delay_samples(40.0, 15.0)]
+    for Ts in (10.0, 15.0, 7.0):
+        for integrator in ("cvodes", "exact"):
+            with warnings.catch_warnings():
+                warnings.simplefilter("error")      # nothing is rounded
+                tr = mp.simulate(m, OpenLoop(m.mv_names, {"u": {"kind": "step", "at": 0.0, "size": du}}),
+                                 op=op_of(m), Ts=Ts, duration=300.0, integrator=integrator)
+            t, y = tr.t, tr.series("y", "y")
+            exact = np.where(t > theta, K * du * (1 - np.exp(-(t - theta) / tau)), 0.0)
+            # cvodes at its default tolerances (abstol 1e-9, reltol 1e-8); the exact map to rounding
+            tol = 1e-6 if integrator == "cvodes" else 1e-13
+            np.testing.assert_allclose(y, exact, atol=tol)
+    assert mp.sim.Plant(m, 10.0).delay_split_ == [(4, 0.0)]
+    n, f = mp.sim.Plant(m, 15.0).delay_split_[0]
+    assert n == 2 and f == pytest.approx(2.0 / 3.0)
+    with pytest.raises(mp.SettingsError, match="integrator 'exact'.*not linear"):
+        mp.sim.Plant(mp.make_model("henson_seborg_cstr"), 1.0, integrator="exact")
 
 
 def test_blending_tank_composition_responds_exponentially_with_time_constant_M_over_w():

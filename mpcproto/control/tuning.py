@@ -157,8 +157,8 @@ def step_test(model: Any, op: Any, mv: str, *, size: float, Ts: float, duration:
 
     Other MVs and the DVs stay at *op* (which should be a steady state: the samples before the
     step are its CVs).  The nonlinear response comes from
-    :func:`mpcproto.responses.open_loop_test` (the model's own CasADi integrator, MVs held over each
-    sample).  ``noise_std`` (one number or per CV) adds white measurement noise drawn from *rng*
+    :func:`mpcproto.responses.open_loop_test` (the closed loop's plant stepper: MVs held over each
+    sample, dead times exact).  ``noise_std`` (one number or per CV) adds white measurement noise drawn from *rng*
     (an int seed or a ``numpy.random.Generator``).
     """
     from ..exceptions import SimulationError

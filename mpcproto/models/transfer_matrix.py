@@ -16,7 +16,8 @@ lags, so each state has a plain meaning) fed by the input delayed with :meth:`Mo
     y_{ij} = \xi_2 + \tau_a\dot\xi_2
 
 (with one lag, :math:`y_{ij} = \xi_1 + \tau_a\dot\xi_1`; with no lag, a pure gain with dead time
-:math:`y_{ij} = K (u(t-\theta) - u_0)`).  Laplace-transforming :math:`\xi_1 = K U/(\tau_1 s + 1)`,
+:math:`y_{ij} = K (u(t-\theta) - u_0)`, which needs no state: a matrix of such elements is a model
+without states).  Laplace-transforming :math:`\xi_1 = K U/(\tau_1 s + 1)`,
 :math:`\xi_2 = \xi_1/(\tau_2 s + 1)`, :math:`y = (\tau_a s + 1)\xi_2` gives back :math:`g_{ij}`.
 Each CV is its nominal value plus the sum of its elements' contributions:
 :math:`y_i = y_{i,0} + \sum_j y_{ij}`, so the nominal MVs/DVs and states 0 form a steady state.
@@ -177,7 +178,7 @@ def _matrix(elements: Any, rows: list[str], cols: list[str], what: str, model: s
 
 def transfer_matrix_model(name: str, mvs: Any, cvs: Any, elements: Any, *, dvs: Any = None,
                           dv_elements: Any = None, time_unit: str = "min", description: str = "",
-                          integrator: str = "cvodes") -> Model:
+                          integrator: str = "exact") -> Model:
     """Build a linear plant from a matrix of FOPDT/SOPDT elements.
 
     Parameters
@@ -195,7 +196,9 @@ def transfer_matrix_model(name: str, mvs: Any, cvs: Any, elements: Any, *, dvs: 
     time_unit : {"s", "min", "h"}
         Unit of time constants and dead times.
     description, integrator : str
-        Passed to :class:`~mpcproto.Model`.
+        Passed to :class:`~mpcproto.Model`.  The default integrator ``"exact"`` steps the plant by
+        its exact discrete map (the model is linear; see :class:`mpcproto.sim.Plant`), with every
+        dead time kept exactly, whole samples or not.
 
     Returns
     -------

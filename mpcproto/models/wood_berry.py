@@ -43,6 +43,9 @@ def default_parameters(options: dict[str, Any]) -> dict[str, float]:
         p[f"K_{c}_{i}"] = k
         p[f"tau_{c}_{i}"] = tau
         p[f"theta_{c}_{i}"] = th
+    # every dead time times this factor: a plant slower to answer than its identified model
+    # (dead-time mismatch studies; 1 = the published dead times)
+    p["dead_time_scale"] = 1.0
     return p
 
 
@@ -51,12 +54,13 @@ def build(params: dict[str, float], options: dict[str, Any]) -> Model:
 
     The gains, time constants and dead times are structural here (each dead time sets a delay, each
     time constant a state), so they are baked into the model; the registry passes overrides in.
+    ``dead_time_scale`` multiplies every dead time (a dead-time mismatch in one number).
     """
     names = {"xD": "top_composition", "xB": "bottom_composition", "R": "reflux", "S": "steam", "F": "feed"}
 
     def el(c, i):
         return {"gain": params[f"K_{c}_{i}"], "time_constants": [params[f"tau_{c}_{i}"]],
-                "dead_time": params[f"theta_{c}_{i}"]}
+                "dead_time": params[f"theta_{c}_{i}"] * params["dead_time_scale"]}
 
     return transfer_matrix_model(
         "wood_berry",
