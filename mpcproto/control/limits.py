@@ -1,0 +1,108 @@
+"""The one projection of an MV command onto its hard limits and its rate limit.
+
+Every controller forms its command through :func:`project_command` (the predictive controller
+after a solve, a shifted plan, a hold or a failed estimate; the PID loops after their
+algorithm), so no command outside a hard limit is ever sent, whatever a solver returned, however
+far a limit stepped, wherever the run started and whatever the valve readback said.
+
+The rule, per MV (``u`` asked, ``p`` the previous MV, ``[lo, hi]`` the hard limits, ``r`` the
+largest move per sample)::
+
+    v   = p                        where u is NaN (no request: hold)
+    w   = min(max(v, p - r), p + r)                       the rate limit
+    out = min(max(w, lo), hi)                             the hard limits, applied LAST
+
+**Hard limits win.**  When both cannot hold -- the previous MV lies outside ``[lo, hi]`` by more
+than ``r`` (a limit stepped past the MV, a run that starts outside a limit, a valve read back
+beyond a limit) -- the command goes to the nearest hard limit in one move, larger than ``r``.
+A rate limit protects equipment from fast moves; a hard limit is the range the MV may take at
+all, and a command outside it is never sent.  Inside the limits the rate limit holds as usual.
+
+Other cases: a limit of +-inf or NaN is no limit; a rate of inf or NaN is no rate limit; where
+the previous MV is unknown (NaN) the rate limit cannot apply and only the hard limits do; where
+neither a request nor a previous MV exists the result is NaN (no command: the actuator holds).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..exceptions import SettingsError
+
+__all__ = ["project_command", "limit_activity"]
+
+
+def project_command(u, u_prev, lo, hi, max_move, *, what: str = "project_command") -> np.ndarray:
+    """The MV command sent: *u* projected onto the rate limit, then onto the hard limits.
+
+    Parameters
+    ----------
+    u : array_like (nu,) or float
+        The command asked for (absolute; NaN: none, hold the previous MV).
+    u_prev : array_like
+        The previous MV (absolute; the last command, or the valve position read back).
+    lo, hi : array_like
+        Hard limits (absolute; +-inf or NaN: none).  ``lo <= hi`` where both are given.
+    max_move : array_like
+        Largest move per sample (>= 0; inf or NaN: none).
+    what : str
+        Named in the error message.
+
+    Returns
+    -------
+    ndarray
+        The command, inside ``[lo, hi]`` wherever it is finite; see the module docstring for
+        the rule when the rate limit and the hard limits cannot both hold (hard limits win).
+
+    Raises
+    ------
+    SettingsError
+        A low limit above its high limit, or a negative rate.
+
+    Examples
+    --------
+    >>> project_command([3.0], [3.0], [0.0], [1.4], [0.1]).tolist()     # hard limits win
+    [1.4]
+    >>> project_command([0.9], [0.5], [0.0], [1.4], [0.1]).tolist()     # rate limit inside
+    [0.6]
+    """
+    u = np.asarray(u, float)
+    p = np.broadcast_to(np.asarray(u_prev, float), u.shape)
+    lo = np.asarray(lo, float)
+    hi = np.asarray(hi, float)
+    r = np.asarray(max_move, float)
+    if np.any(lo > hi):
+        j = int(np.flatnonzero(np.broadcast_to(lo > hi, u.shape))[0])
+        raise SettingsError(f"{what}: the low limit of MV {j} ({np.broadcast_to(lo, u.shape)[j]:g}) is "
+                            f"above its high limit ({np.broadcast_to(hi, u.shape)[j]:g}); expected "
+                            f"low <= high.")
+    if np.any(r < 0):
+        j = int(np.flatnonzero(np.broadcast_to(r < 0, u.shape))[0])
+        raise SettingsError(f"{what}: the rate limit of MV {j} must be >= 0; found "
+                            f"{np.broadcast_to(r, u.shape)[j]:g}.")
+    v = np.where(np.isnan(u), p, u)
+    # rate limit only where both the previous MV and the rate are known (fmin/fmax skip NaN)
+    w = np.fmin(np.fmax(v, p - r), p + r)
+    w = np.where(np.isnan(v), np.nan, w)
+    # hard limits last: they win over the rate (fmin/fmax: a NaN limit is no limit)
+    out = np.fmin(np.fmax(w, lo), hi)
+    return np.where(np.isnan(w), np.nan, out)
+
+
+def limit_activity(u, u_prev, lo, hi, max_move, *, rel_tol: float = 1e-6
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Which MVs of a projected command sit at a hard limit, at the rate limit, or moved more
+    than the rate limit because the hard limits won (all boolean arrays, MV order).
+
+    The tolerance is ``rel_tol * max(1, |u|)`` (the solver tolerance scale).
+    """
+    u = np.asarray(u, float)
+    p = np.asarray(u_prev, float)
+    r = np.asarray(max_move, float)
+    tol = rel_tol * np.maximum(1.0, np.abs(u))
+    with np.errstate(invalid="ignore"):
+        at_limit = (np.abs(u - lo) <= tol) | (np.abs(u - hi) <= tol)
+        move = np.abs(u - p)
+        at_rate = np.abs(move - r) <= tol
+        over_rate = move > r + tol
+    return at_limit, at_rate, over_rate
