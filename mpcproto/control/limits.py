@@ -25,11 +25,13 @@ neither a request nor a previous MV exists the result is NaN (no command: the ac
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from ..exceptions import SettingsError
 
-__all__ = ["project_command", "limit_activity"]
+__all__ = ["project_command", "project_value", "limit_activity"]
 
 
 def project_command(u, u_prev, lo, hi, max_move, *, what: str = "project_command") -> np.ndarray:
@@ -67,26 +69,47 @@ def project_command(u, u_prev, lo, hi, max_move, *, what: str = "project_command
     [0.6]
     """
     u = np.asarray(u, float)
-    p = np.broadcast_to(np.asarray(u_prev, float), u.shape)
-    lo = np.asarray(lo, float)
-    hi = np.asarray(hi, float)
-    r = np.asarray(max_move, float)
-    if np.any(lo > hi):
-        j = int(np.flatnonzero(np.broadcast_to(lo > hi, u.shape))[0])
-        raise SettingsError(f"{what}: the low limit of MV {j} ({np.broadcast_to(lo, u.shape)[j]:g}) is "
-                            f"above its high limit ({np.broadcast_to(hi, u.shape)[j]:g}); expected "
-                            f"low <= high.")
-    if np.any(r < 0):
-        j = int(np.flatnonzero(np.broadcast_to(r < 0, u.shape))[0])
-        raise SettingsError(f"{what}: the rate limit of MV {j} must be >= 0; found "
-                            f"{np.broadcast_to(r, u.shape)[j]:g}.")
-    v = np.where(np.isnan(u), p, u)
-    # rate limit only where both the previous MV and the rate are known (fmin/fmax skip NaN)
-    w = np.fmin(np.fmax(v, p - r), p + r)
-    w = np.where(np.isnan(v), np.nan, w)
-    # hard limits last: they win over the rate (fmin/fmax: a NaN limit is no limit)
-    out = np.fmin(np.fmax(w, lo), hi)
-    return np.where(np.isnan(w), np.nan, out)
+    shape = u.shape
+    cols = [_floats(a, shape) for a in (u, u_prev, lo, hi, max_move)]
+    # a handful of MVs: plain Python floats are much cheaper here than numpy calls
+    out = [project_value(*row, what=f"{what} (MV {j})") for j, row in enumerate(zip(*cols))]
+    return np.array(out, float).reshape(shape)
+
+
+def _floats(a, shape) -> list[float]:
+    """*a* as a flat list of floats of the shape of the command (a scalar is repeated)."""
+    a = np.asarray(a, float)
+    if a.shape == shape:
+        return a.ravel().tolist()
+    if a.ndim == 0:
+        return [float(a)] * math.prod(shape)
+    return np.broadcast_to(a, shape).ravel().tolist()
+
+
+def project_value(u: float, p: float, lo: float, hi: float, r: float, *,
+                  what: str = "project_value") -> float:
+    """:func:`project_command` for one MV, on plain floats (the PID loops' per-loop path).
+
+    The rule of the module docstring; a NaN compares False, so a NaN limit or rate is none.
+    """
+    if lo > hi:
+        raise SettingsError(f"{what}: the low limit ({lo:g}) is above the high limit ({hi:g}); "
+                            f"expected low <= high.")
+    if r < 0:
+        raise SettingsError(f"{what}: the rate limit must be >= 0; found {r:g}.")
+    if u != u:                      # no request: hold the previous MV
+        u = p
+        if u != u:
+            return math.nan         # nothing known: no command
+    if u > p + r:                   # the rate limit (skipped where p or r is NaN)
+        u = p + r
+    elif u < p - r:
+        u = p - r
+    if u < lo:                      # the hard limits last: they win
+        u = lo
+    elif u > hi:
+        u = hi
+    return u
 
 
 def limit_activity(u, u_prev, lo, hi, max_move, *, rel_tol: float = 1e-6

@@ -22,7 +22,7 @@ acts only when a fresh result arrives (``on_fresh=True``, the default) and holds
 between, so it neither integrates a stale error nor winds up.  A NaN reading holds the output and
 reports the status ``fallback_hold``.  The limits applied are the operating limits and the rate
 limit the simulator passes in ``Targets``, through the one projection of
-:func:`mpcproto.control.limits.project_command` (every MV, held outputs and MVs without a loop too:
+:func:`mpcproto.control.limits.project_value` (every MV, held outputs and MVs without a loop too:
 a command outside a hard limit is never sent; where a limit stepped past the output by more than
 the rate allows, the hard limit wins); the actuator may clip further (a stuck or saturated
 valve, an actuator rate limit).  With MV readback (``step(..., u_applied=...)``, the valve
@@ -59,7 +59,7 @@ from ..model import suggest
 from ..operating import OperatingPoint
 from .base import (STATUS_HOLD, STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutput, Measurement,
                    Targets)
-from .limits import project_command
+from .limits import project_value
 
 __all__ = ["PIDLoop", "PIDController", "pid_loop_from_spec", "pid_from_settings", "suggest_pairing", "Pairing",
            "low_frequency_gain"]
@@ -217,7 +217,7 @@ class PIDController:
     def reset(self, op: OperatingPoint, t0: float = 0.0) -> None:
         self._u0 = np.asarray(op.u, float).copy()
         self._state = [_LoopState(u=float(self._u0[j])) for _, j in self._idx]
-        self._u_last = self._u0.copy()                 # the last command sent, every MV
+        self._u_last = self._u0.tolist()               # the last command sent, every MV
         self._cmd_prev = self._u0.tolist()
         self._ua_prev = [math.nan] * len(self.mv_names)
 
@@ -280,16 +280,18 @@ class PIDController:
             acted.append((st, mj, v))
         # every MV (acting, held or without a loop) through the one projection: rate limit from
         # the last command, then the hard limits, which win (mpcproto.control.limits)
-        rate = targets.mv_rate if targets.mv_rate is not None else np.inf
-        u_out = project_command(u_ask, self._u_last, targets.mv_low, targets.mv_high, rate,
-                                what=f"PIDController '{self.name}'")
-        ul = u_out.tolist()
+        lo, hi = targets.mv_low.tolist(), targets.mv_high.tolist()
+        rate = targets.mv_rate.tolist() if targets.mv_rate is not None else [math.inf] * len(lo)
+        ul = [project_value(a, p, lo[j], hi[j], rate[j],
+                            what=f"PIDController '{self.name}' ({self.mv_names[j]})")
+              for j, (a, p) in enumerate(zip(u_ask.tolist(), self._u_last))]
+        u_out = np.array(ul)
         for st, mj, v in acted:
             saturated += ul[mj] != v
             st.aw_prev = ul[mj] - v
         for st, (_, mj) in zip(self._state, self._idx):
             st.u = ul[mj]
-        self._u_last = u_out.copy()
+        self._u_last = ul
         not_following = 0
         if ua is not None:
             # a valve that did not move although the loop moved its command (stuck, saturated)
