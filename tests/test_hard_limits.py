@@ -336,3 +336,35 @@ def test_no_command_outside_a_hard_limit_over_random_setups():
     # the set-ups really exercised the hard cases: failed solves, holds and faults seen
     assert {"fallback_hold", "fallback_shifted_plan", "ok"} <= statuses
     assert statuses & {"mv_not_following", "measurement_rejected"}
+
+
+def test_faults_show_in_the_status_and_the_health_block():
+    # A transmitter that drops out for 10 samples and a valve stuck for 20: the predictive
+    # controller's status says so at those samples (it used to stay "ok"), and summarize()'s
+    # solver block counts them; the PID loop holds on the dropped reading and sees its valve
+    # not following.  (Common practice, no source: a bad reading is rejected, not used.)
+    m = first_order()
+    dm = mp.linearize(m, op0(m)).discretize(1.0)
+    mpc = mp.PredictiveController.from_settings(dm, {"horizon": 10, "control_horizon": 3}).build()
+    pid = mp.PIDController.for_model(m, [mp.PIDLoop("y", "u", gain=1.0, integral_time=10.0)])
+    faults = [{"kind": "sensor_nan", "variable": "y", "at": 20.0, "until": 30.0},
+              {"kind": "valve_stuck", "variable": "u", "at": 50.0, "until": 70.0}]
+    sp = {"y": [{"kind": "step", "at": 5.0, "size": 1.0}, {"kind": "step", "at": 45.0, "size": 1.0}]}
+    for ctl in (mpc, pid):
+        tr = mp.simulate(m, ctl, op=op0(m), Ts=1.0, duration=90.0, faults=faults, setpoints=sp)
+        status = np.array(tr.text["status"])
+        health = mp.summarize(tr)["solver"]
+        dropped = (tr.t >= 20) & (tr.t < 30)
+        stuck = (tr.t > 50) & (tr.t < 70)
+        if ctl is mpc:
+            assert np.all(status[dropped] == "measurement_rejected")
+            assert health["rejected_measurements"] == 10
+            assert np.all(tr.series("diag", "n_rejected_measurements")[dropped] == 1)
+        else:
+            assert np.all(status[dropped] == "fallback_hold")
+            assert health["held_loops"] == 10
+        assert "mv_not_following" in set(status[stuck])
+        assert health["mvs_not_following"] > 0
+        assert health["degraded_steps"] == int(np.isin(status, ["measurement_rejected",
+                                                                 "mv_not_following"]).sum()) > 0
+        assert {"ok"} == set(status[tr.t < 20])
