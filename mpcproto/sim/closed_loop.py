@@ -212,8 +212,8 @@ class ClosedLoop:
         self.MVLO, self.MVHI = self._limit_series(mv_limits, "mv", "mv_limits", allow_rate=True)
         # the MV limits a controller gets are hard: never beyond the physical travel
         plo, phi = m.bounds("mv")
-        for side, arr, bound, beyond in (("low", self.MVLO, phi, self.MVLO > phi),
-                                         ("high", self.MVHI, plo, self.MVHI < plo)):
+        for side, arr, beyond in (("low", self.MVLO, self.MVLO > phi),
+                                  ("high", self.MVHI, self.MVHI < plo)):
             if beyond.any():
                 k, j = np.argwhere(beyond)[0]
                 raise SettingsError(
