@@ -120,12 +120,13 @@ def limit_activity(u, u_prev, lo, hi, max_move, *, rel_tol: float = 1e-6
     The tolerance is ``rel_tol * max(1, |u|)`` (the solver tolerance scale).
     """
     u = np.asarray(u, float)
-    p = np.asarray(u_prev, float)
-    r = np.asarray(max_move, float)
-    tol = rel_tol * np.maximum(1.0, np.abs(u))
-    with np.errstate(invalid="ignore"):
-        at_limit = (np.abs(u - lo) <= tol) | (np.abs(u - hi) <= tol)
-        move = np.abs(u - p)
-        at_rate = np.abs(move - r) <= tol
-        over_rate = move > r + tol
-    return at_limit, at_rate, over_rate
+    shape = u.shape
+    at_limit, at_rate, over_rate = [], [], []
+    for v, p, a, b, r in zip(*(_floats(x, shape) for x in (u, u_prev, lo, hi, max_move))):
+        tol = rel_tol * max(1.0, abs(v))
+        move = abs(v - p)
+        at_limit.append(abs(v - a) <= tol or abs(v - b) <= tol)
+        at_rate.append(abs(move - r) <= tol)
+        over_rate.append(move > r + tol)
+    return (np.array(at_limit, bool).reshape(shape), np.array(at_rate, bool).reshape(shape),
+            np.array(over_rate, bool).reshape(shape))
