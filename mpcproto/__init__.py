@@ -22,8 +22,8 @@ Closed-loop simulation (layer 4)
     simulate, ClosedLoop, Plant, OpenLoop, Signal, signal_from_spec, Instrument, Actuator, Fault,
     instrument_from_spec, actuator_from_spec, fault_from_spec
 Trajectory and analysis (layer 5)
-    Trajectory, cv_performance, mv_usage, kpis, violations, controller_health, summarize,
-    compare, Comparison
+    Trajectory, cv_performance, mv_usage, kpis, violations, mv_violations, controller_health,
+    summarize, compare, Comparison
 Scenario files and studies (layer 6)
     scenario, Scenario, load_scenario, parse_scenario, check_scenario, Case, expand, run_case,
     run_scenario, linear_report
@@ -51,7 +51,8 @@ from .models import TransferElement, transfer_matrix_model
 from .trajectory import Trajectory
 from .sim import (Signal, signal_from_spec, Instrument, Actuator, Fault, instrument_from_spec,
                   actuator_from_spec, fault_from_spec, Plant, ClosedLoop, simulate, OpenLoop)
-from .analysis import cv_performance, mv_usage, kpis, violations, controller_health, summarize
+from .analysis import (cv_performance, mv_usage, kpis, violations, mv_violations, controller_health,
+                       summarize)
 from .control.pid import PIDLoop, PIDController, pid_loop_from_spec, pid_from_settings, suggest_pairing
 from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating,
                              fit_step, ultimate_point, simc, imc, ziegler_nichols, tune_loop,
@@ -88,7 +89,8 @@ __all__ = [
     "Trajectory", "Signal", "signal_from_spec", "Instrument", "Actuator", "Fault",
     "instrument_from_spec", "actuator_from_spec", "fault_from_spec", "Plant", "ClosedLoop",
     "simulate", "OpenLoop",
-    "cv_performance", "mv_usage", "kpis", "violations", "controller_health", "summarize",
+    "cv_performance", "mv_usage", "kpis", "violations", "mv_violations", "controller_health",
+    "summarize",
     "PIDLoop", "PIDController", "pid_loop_from_spec", "pid_from_settings", "suggest_pairing",
     "ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating", "fit_step",
     "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",

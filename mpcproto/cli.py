@@ -252,6 +252,7 @@ _VALUE_MEANS = {
     "solve_time_below": "slowest step as a fraction of the sample time",
     "better_than": "% by which the KPI is lower than the other controller's",
     "run_completed": "the simulation ended early",
+    "mv_commands_within_limits": "number of events of an MV command outside its hard limits",
 }
 
 

@@ -37,9 +37,9 @@ def test_violation_events_on_a_hand_made_trajectory():
     tr = traj(y, lo=-5.0, hi=5.0, Ts=2.0)
     ev = mp.violations(tr)
     assert ev == [
-        {"variable": "c", "side": "high", "start": 6.0, "end": 12.0, "peak_excess": 3.0, "integral": 12.0},
-        {"variable": "c", "side": "low", "start": 16.0, "end": 18.0, "peak_excess": 0.5, "integral": 1.0},
-        {"variable": "c", "side": "high", "start": 20.0, "end": 22.0, "peak_excess": 1.0, "integral": 2.0},
+        {"variable": "c", "side": "high", "signal": "true", "start": 6.0, "end": 12.0, "peak_excess": 3.0, "integral": 12.0},
+        {"variable": "c", "side": "low", "signal": "true", "start": 16.0, "end": 18.0, "peak_excess": 0.5, "integral": 1.0},
+        {"variable": "c", "side": "high", "signal": "true", "start": 20.0, "end": 22.0, "peak_excess": 1.0, "integral": 2.0},
     ]
     # a tolerance hides the small ones
     assert [e["peak_excess"] for e in mp.violations(tr, tolerance=1.0)] == [3.0]
@@ -127,7 +127,8 @@ def test_summary_matches_the_summary_json_contract():
     assert set(s) >= {"kpi", "violations", "solver"}
     assert set(s["kpi"]["cv"]["c"]) == {"iae", "ise", "itae", "settling_time", "overshoot", "max_abs_error"}
     assert "total_travel" in s["kpi"]["mv"]["m"]
-    assert set(s["violations"][0]) == {"variable", "side", "start", "end", "peak_excess", "integral"}
+    assert set(s["violations"][0]) == {"variable", "side", "signal", "start", "end", "peak_excess",
+                                       "integral"}
     assert {"steps", "failures", "fallbacks", "median_solve_ms", "p95_solve_ms", "worst_fraction"} <= set(s["solver"])
     json.dumps(s, allow_nan=False)      # plain JSON, no NaN/inf
 

@@ -115,7 +115,9 @@ def test_non_finite_values_are_rejected_and_flagged_by_the_controller():
         y = np.array([0.0, bad])
         out = ctrl.step(float(k), mp.Measurement.now(y, float(k)), [0.0], tg)
         assert out.diagnostics["rejected_measurements"] == ["purity"]
-        assert np.all(np.isfinite(out.u)) and out.status == "ok"
+        # the step's answer is accepted, and its status says a reading was rejected
+        assert np.all(np.isfinite(out.u)) and out.status == "measurement_rejected"
+        assert out.diagnostics["n_rejected_measurements"] == 1
         assert np.all(np.isfinite(ctrl.estimator_.state))
     assert ctrl.counts["rejected_measurements"] == 3
 

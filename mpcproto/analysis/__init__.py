@@ -1,8 +1,10 @@
 """Analysis (layer 5): pure functions from a Trajectory to KPIs, violation events and health.
 
-cv_performance, mv_usage, kpis, violations, controller_health, summarize
+cv_performance, mv_usage, kpis, violations, mv_violations, controller_health, summarize
 """
 
-from .kpi import cv_performance, mv_usage, kpis, violations, controller_health, summarize
+from .kpi import (controller_health, cv_performance, kpis, mv_usage, mv_violations, summarize,
+                  violations)
 
-__all__ = ["cv_performance", "mv_usage", "kpis", "violations", "controller_health", "summarize"]
+__all__ = ["cv_performance", "mv_usage", "kpis", "violations", "mv_violations", "controller_health",
+           "summarize"]

@@ -33,12 +33,13 @@ from typing import Any
 
 import numpy as np
 
-from ..control.base import FALLBACK, FATAL
+from ..control.base import DEGRADED, FALLBACK, FATAL
 from ..exceptions import SettingsError
 from ..model import TIME_UNITS
 from ..trajectory import Trajectory
 
-__all__ = ["cv_performance", "mv_usage", "kpis", "violations", "controller_health", "summarize"]
+__all__ = ["cv_performance", "mv_usage", "kpis", "violations", "mv_violations", "controller_health",
+           "summarize"]
 
 
 def _none(v: float) -> float | None:
@@ -139,10 +140,12 @@ def violations(traj: Trajectory, *, tolerance: float | Mapping[str, float] = 0.0
     """Constraint-violation events of the TRUE CVs against their low/high limits.
 
     An event is a run of consecutive samples where ``y > hi + tol`` (side ``"high"``) or
-    ``y < lo - tol`` (side ``"low"``).  Each is reported as ``{"variable", "side", "start", "end",
-    "peak_excess", "integral"}``: ``start`` is the time of the first violating sample, ``end`` the
-    end of the last one (its time + Ts), ``peak_excess`` the largest distance beyond the limit,
-    ``integral`` the sum of the excess times Ts.  Sorted by start time.
+    ``y < lo - tol`` (side ``"low"``).  Each is reported as ``{"variable", "side", "signal",
+    "start", "end", "peak_excess", "integral"}`` (``signal`` = ``"true"``: the true CV; MV events
+    of :func:`mv_violations` say ``"commanded"`` or ``"applied"``): ``start`` is the time of the
+    first violating sample, ``end`` the end of the last one (its time + Ts), ``peak_excess`` the
+    largest distance beyond the limit, ``integral`` the sum of the excess times Ts.  Sorted by
+    start time.
     """
     Ts = traj.Ts
     t = traj.t
@@ -156,17 +159,57 @@ def violations(traj: Trajectory, *, tolerance: float | Mapping[str, float] = 0.0
             lim = traj.series(kind, cv)
             with np.errstate(invalid="ignore"):
                 exc = (y - lim) if side == "high" else (lim - y)
-            bad = np.isfinite(exc) & (exc > tol)
-            if not bad.any():
-                continue
-            idx = np.flatnonzero(bad)
-            splits = np.flatnonzero(np.diff(idx) > 1) + 1
-            for run in np.split(idx, splits):
-                ex = exc[run]
-                events.append({"variable": cv, "side": side, "start": float(t[run[0]]),
-                               "end": float(t[run[-1]] + Ts), "peak_excess": float(ex.max()),
-                               "integral": float(ex.sum() * Ts)})
+            events += _events(t, Ts, exc, tol, cv, side, "true")
     events.sort(key=lambda e: (e["start"], e["variable"], e["side"]))
+    return events
+
+
+def _events(t: np.ndarray, Ts: float, exc: np.ndarray, tol: float, variable: str, side: str,
+            signal: str) -> list[dict[str, Any]]:
+    """Runs of consecutive samples with ``exc > tol`` as violation events."""
+    bad = np.isfinite(exc) & (exc > tol)
+    if not bad.any():
+        return []
+    idx = np.flatnonzero(bad)
+    out = []
+    for run in np.split(idx, np.flatnonzero(np.diff(idx) > 1) + 1):
+        ex = exc[run]
+        out.append({"variable": variable, "side": side, "signal": signal,
+                    "start": float(t[run[0]]), "end": float(t[run[-1]] + Ts),
+                    "peak_excess": float(ex.max()), "integral": float(ex.sum() * Ts)})
+    return out
+
+
+def mv_violations(traj: Trajectory) -> list[dict[str, Any]]:
+    """MV hard-limit events: the commanded (``ucmd``) and the applied (``u``) MVs against the hard
+    MV limits, the run-time operating limits ``mvlo``/``mvhi`` intersected with the physical
+    bounds (``meta["mv_bounds"]``).
+
+    Events have the keys of :func:`violations` with ``signal`` = ``"commanded"`` or ``"applied"``;
+    ``integral`` is in MV unit x time unit.  No tolerance: a command is projected exactly onto
+    its limits (:mod:`mpcproto.control.limits`), so any excess at all is an event.  A commanded
+    event means the controller sent a command outside a hard limit: a failure.  An applied event
+    with no commanded one is the final element's doing (a valve stuck beyond a limit that moved).
+    """
+    Ts, t, n = traj.Ts, traj.t, len(traj)
+    bounds = traj.meta.get("mv_bounds") or {}
+    events: list[dict[str, Any]] = []
+    for mv in traj.names("u"):
+        b = bounds.get(mv, (-math.inf, math.inf))
+        lo = np.full(n, float(b[0]))
+        hi = np.full(n, float(b[1]))
+        if traj.has("mvlo", mv):
+            lo = np.fmax(lo, traj.series("mvlo", mv))
+        if traj.has("mvhi", mv):
+            hi = np.fmin(hi, traj.series("mvhi", mv))
+        for signal, kind in (("commanded", "ucmd"), ("applied", "u")):
+            if not traj.has(kind, mv):
+                continue
+            u = traj.series(kind, mv)
+            with np.errstate(invalid="ignore"):
+                events += _events(t, Ts, u - hi, 0.0, mv, "high", signal)
+                events += _events(t, Ts, lo - u, 0.0, mv, "low", signal)
+    events.sort(key=lambda e: (e["start"], e["variable"], e["side"], e["signal"]))
     return events
 
 
@@ -178,6 +221,13 @@ def controller_health(traj: Trajectory, *, slow_fraction: float = 0.5) -> dict[s
     solve time as a fraction of the sample time (converted to seconds with the model's time unit);
     a step is *slow* above ``slow_fraction`` of the sample time.  ``events`` lists runs of
     consecutive fallback, failure and slow steps as ``{"kind", "start", "end", "steps"}``.
+
+    Faults the controller saw: ``degraded_steps`` (accepted steps whose status says a reading was
+    rejected or an MV did not follow, :data:`mpcproto.control.base.DEGRADED`; events of kind
+    ``"measurement_rejected"`` / ``"mv_not_following"``), and the totals of the per-step
+    counters ``rejected_measurements`` (``diag.n_rejected_measurements``), ``mvs_not_following``
+    (``diag.n_mvs_not_following``) and ``held_loops`` (PID, ``diag.loops_held``); a counter the
+    controller does not report is None.
     """
     if not slow_fraction > 0:
         raise SettingsError(f"controller_health: slow_fraction must be > 0; found {slow_fraction!r}.")
@@ -196,7 +246,9 @@ def controller_health(traj: Trajectory, *, slow_fraction: float = 0.5) -> dict[s
     slow = np.isfinite(frac) & (frac > slow_fraction)
     fin = ms[np.isfinite(ms)]
     events: list[dict[str, Any]] = []
-    for kind, mask in (("failure", fail), ("fallback", fall), ("slow_solve", slow)):
+    kinds = [("failure", fail), ("fallback", fall), ("slow_solve", slow)]
+    kinds += [(st, np.array([s == st for s in status], bool)) for st in sorted(DEGRADED)]
+    for kind, mask in kinds:
         idx = np.flatnonzero(mask)
         if idx.size == 0:
             continue
@@ -207,6 +259,11 @@ def controller_health(traj: Trajectory, *, slow_fraction: float = 0.5) -> dict[s
     return {
         "steps": int(n), "failures": int(fail.sum()), "fallbacks": int(fall.sum()),
         "slow_steps": int(slow.sum()),
+        "degraded_steps": int(sum(s in DEGRADED for s in status)),
+        **{name: (int(np.nansum(traj.columns[col])) if col in traj.columns else None)
+           for name, col in (("rejected_measurements", "diag.n_rejected_measurements"),
+                             ("mvs_not_following", "diag.n_mvs_not_following"),
+                             ("held_loops", "diag.loops_held"))},
         "median_solve_ms": _none(np.median(fin)) if fin.size else None,
         "p95_solve_ms": _none(np.percentile(fin, 95)) if fin.size else None,
         "worst_fraction": _none(np.nanmax(frac)) if fin.size else None,
@@ -219,12 +276,16 @@ def summarize(traj: Trajectory, *, bands: Mapping[str, float] | None = None,
               slow_fraction: float = 0.5) -> dict[str, Any]:
     """The per-controller block of ``summary.json``: ``kpi``, ``violations``, ``solver``, ``run``.
 
+    ``violations`` holds the CV events (:func:`violations`, ``signal`` ``"true"``) and the MV
+    hard-limit events (:func:`mv_violations`, ``signal`` ``"commanded"`` / ``"applied"``).
+
     ``run`` carries the run's ``status`` (``"completed"``/``"failed"``), ``message``,
     ``failed_at`` and the controller name.  Every value is JSON-able (no NaN or inf).
     """
     return {
         "kpi": kpis(traj, bands=bands, band_fraction=band_fraction),
-        "violations": violations(traj, tolerance=tolerance),
+        "violations": sorted(violations(traj, tolerance=tolerance) + mv_violations(traj),
+                             key=lambda e: (e["start"], e["variable"], e["side"], e["signal"])),
         "solver": controller_health(traj, slow_fraction=slow_fraction),
         "run": {"controller": traj.meta.get("controller"), "status": traj.status,
                 "message": traj.message, "failed_at": traj.meta.get("failed_at"),

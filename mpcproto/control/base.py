@@ -33,15 +33,21 @@ from ..operating import OperatingPoint
 
 __all__ = ["Measurement", "Targets", "ControlOutput", "Controller", "accepts_readback",
            "STATUS_OK", "STATUS_INACCURATE", "STATUS_FALLBACK", "STATUS_HOLD", "STATUS_FAILED",
-           "ACCEPTED", "FALLBACK", "FATAL"]
+           "STATUS_MEASUREMENT_REJECTED", "STATUS_MV_NOT_FOLLOWING",
+           "ACCEPTED", "DEGRADED", "FALLBACK", "FATAL"]
 
-# Status strings, grouped like a solver's: accepted, fallback, fatal.
+# Status strings, grouped like a solver's: accepted, degraded, fallback, fatal.
 STATUS_OK = "ok"
+# the step's answer was accepted but the controller saw a fault at that sample: a reading it had
+# to reject (NaN, dropped signal) or an MV that did not follow its command (readback)
+STATUS_MEASUREMENT_REJECTED = "measurement_rejected"
+STATUS_MV_NOT_FOLLOWING = "mv_not_following"
 STATUS_INACCURATE = "inaccurate"   # solver answered but not to tolerance: treated as a fallback
 STATUS_FALLBACK = "fallback_shifted_plan"
 STATUS_HOLD = "fallback_hold"
 STATUS_FAILED = "failed"
 ACCEPTED = frozenset({STATUS_OK})
+DEGRADED = frozenset({STATUS_MEASUREMENT_REJECTED, STATUS_MV_NOT_FOLLOWING})
 FALLBACK = frozenset({STATUS_INACCURATE, STATUS_FALLBACK, STATUS_HOLD})
 FATAL = frozenset({STATUS_FAILED})
 

@@ -55,9 +55,10 @@ import scipy.sparse as sp
 from ..exceptions import NotBuiltError, SettingsError
 from ..model import suggest
 from ._qp import CompiledQP
-from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_OK, ControlOutput,
-                   Measurement, Targets)
+from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_MEASUREMENT_REJECTED,
+                   STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutput, Measurement, Targets)
 from .estimator import DISTURBANCE_MODELS, DisturbanceEstimator
+from .limits import limit_activity, project_command
 from .steady_target import SteadyTarget
 
 __all__ = ["PredictiveController", "SETTINGS_KEYS", "CV_KEYS", "MV_KEYS", "DV_KEYS"]
@@ -826,11 +827,16 @@ class PredictiveController:
         Returns
         -------
         ControlOutput
-            ``u`` (absolute MVs), ``status`` (``STATUS_OK``, ``STATUS_FALLBACK``, ``STATUS_HOLD``
-            or ``STATUS_FAILED``) and ``diagnostics`` with ``solve_ms``, ``step_ms``,
+            ``u`` (absolute MVs, always inside the hard MV limits: see
+            :mod:`mpcproto.control.limits`), ``status`` (``STATUS_OK``,
+            ``STATUS_MEASUREMENT_REJECTED`` or ``STATUS_MV_NOT_FOLLOWING`` for an accepted step
+            that saw a fault, ``STATUS_FALLBACK``, ``STATUS_HOLD`` or ``STATUS_FAILED``) and
+            ``diagnostics`` with ``solve_ms``, ``step_ms``,
             ``target_ms``, ``solver_status``, ``iterations``, ``fallback``, ``slack_max``,
             ``cv_limits_relaxed``, ``relaxed_cvs``, ``active_mv_limits``,
-            ``active_mv_limit_names``, ``active_rate_limits``, ``rejected_measurements``,
+            ``active_mv_limit_names``, ``active_rate_limits``, ``limits_over_rate`` (MVs moved
+            more than their rate limit because a hard limit won), ``rejected_measurements``,
+            ``n_rejected_measurements``, ``mvs_not_following``, ``n_mvs_not_following``,
             ``late_measurements``, ``target_status``, ``target_u``, ``target_y``, ``clipped``
             and ``counts``.
         """
@@ -930,28 +936,16 @@ class PredictiveController:
                 u = self._u_prev.copy()
                 status = STATUS_HOLD
                 self.counts["holds"] += 1
-        # ---- exact limits on what is applied (solver tolerance or a stale plan must not break them)
-        # (plain Python floats: a handful of MVs is faster this way than through numpy)
-        ul, up = u.tolist(), self._u_prev.tolist()
-        lo, hi, rt = mv_lo.tolist(), mv_hi.tolist(), rate.tolist()
-        out, active, n_rate, clipped = [], [], 0, 0.0
-        for j in range(nu):
-            v, p = ul[j], up[j]
-            w_ = min(max(v, p - rt[j]), p + rt[j])
-            if lo[j] <= p <= hi[j]:       # limits win over rates where the MV is inside them
-                w_ = min(max(w_, lo[j]), hi[j])
-            clipped = max(clipped, abs(w_ - v))
-            tol = 1e-6 * max(1.0, abs(w_))
-            if abs(w_ - lo[j]) <= tol or abs(w_ - hi[j]) <= tol:
-                active.append(self._mv_names[j])
-            if abs(abs(w_ - p) - rt[j]) <= tol:
-                n_rate += 1
-            out.append(w_)
-        u = np.array(out)
-        diag["clipped"] = clipped
-        diag["active_mv_limits"] = len(active)
-        diag["active_mv_limit_names"] = active
-        diag["active_rate_limits"] = n_rate
+        # ---- exact limits on what is applied (solver tolerance, a stale plan, a hold or a limit
+        # that stepped past the MV must not break them): the one projection, hard limits win
+        asked = u
+        u = self._apply_limits(asked, mv_lo, mv_hi, rate)
+        at_limit, at_rate, over_rate = limit_activity(u, self._u_prev, mv_lo, mv_hi, rate)
+        diag["clipped"] = float(np.max(np.abs(u - asked), initial=0.0))
+        diag["active_mv_limits"] = int(at_limit.sum())
+        diag["active_mv_limit_names"] = [self._mv_names[j] for j in np.flatnonzero(at_limit)]
+        diag["active_rate_limits"] = int(at_rate.sum())
+        diag["limits_over_rate"] = int(over_rate.sum())
         return self._finish(u, status, diag, t_start)
 
     def _optimize(self, x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
@@ -1166,28 +1160,36 @@ class PredictiveController:
             self.counts["mv_not_following"] += int(up.sum() + down.sum())
 
     def _clamped(self, lo, hi):
-        """MV limits with the not-following clamps applied (and counted down)."""
+        """MV limits with the not-following clamps applied (and counted down).
+
+        A clamp only narrows the hard limits, never widens them: a valve read back beyond a hard
+        limit clamps the MV at that limit, not at the valve's position."""
         on = self._clamp_left > 0
-        hi2 = np.where(on, np.fmin(hi, self._clamp_hi), hi)
-        lo2 = np.where(on, np.fmax(lo, self._clamp_lo), lo)
+        hi2 = np.clip(np.where(on, np.fmin(hi, self._clamp_hi), hi), lo, hi)
+        lo2 = np.clip(np.where(on, np.fmax(lo, self._clamp_lo), lo), lo, hi)
         lo2 = np.minimum(lo2, hi2)            # a clamp never makes the limits cross
         self._clamp_left = np.maximum(self._clamp_left - 1, 0)
         self._clamp_hi = np.where(self._clamp_left > 0, self._clamp_hi, np.inf)
         self._clamp_lo = np.where(self._clamp_left > 0, self._clamp_lo, -np.inf)
-        return lo2, np.maximum(hi2, lo2)
+        return lo2, hi2
 
     def _apply_limits(self, u, lo, hi, rate):
-        up = self._u_prev
-        u = np.minimum(np.maximum(u, up - rate), up + rate)
-        inside = (up >= lo) & (up <= hi)
-        # limits win over rates only where the previous MV is already inside them
-        return np.where(inside, np.minimum(np.maximum(u, lo), hi), u)
+        """The command sent: :func:`~mpcproto.control.limits.project_command` from the previous
+        MV (hard limits win over the rate limit)."""
+        return project_command(u, self._u_prev, lo, hi, rate, what="PredictiveController")
 
     def _hold(self, lo, hi, rate):
         self.counts["holds"] += 1
         return self._apply_limits(self._u_prev.copy(), lo, hi, rate)
 
     def _finish(self, u, status, diag, t_start) -> ControlOutput:
+        # faults the controller saw show in the status of an otherwise accepted step
+        diag["n_rejected_measurements"] = len(diag.get("rejected_measurements", ()))
+        diag["n_mvs_not_following"] = len(diag.get("mvs_not_following", ()))
+        if status == STATUS_OK and diag["n_rejected_measurements"]:
+            status = STATUS_MEASUREMENT_REJECTED
+        elif status == STATUS_OK and diag["n_mvs_not_following"]:
+            status = STATUS_MV_NOT_FOLLOWING
         self.estimator_.predict(u - self._op_u)
         self._u_prev = np.asarray(u, float).copy()
         diag["step_ms"] = (time.perf_counter() - t_start) * 1e3

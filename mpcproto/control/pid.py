@@ -21,12 +21,17 @@ Astrom & Hagglund (*Advanced PID Control*, ISA 2006, section 3.6, from memory), 
 acts only when a fresh result arrives (``on_fresh=True``, the default) and holds its output in
 between, so it neither integrates a stale error nor winds up.  A NaN reading holds the output and
 reports the status ``fallback_hold``.  The limits applied are the operating limits and the rate
-limit the simulator passes in ``Targets``; the actuator may clip further (a stuck or saturated
+limit the simulator passes in ``Targets``, through the one projection of
+:func:`mpcproto.control.limits.project_value` (every MV, held outputs and MVs without a loop too:
+a command outside a hard limit is never sent; where a limit stepped past the output by more than
+the rate allows, the hard limit wins); the actuator may clip further (a stuck or saturated
 valve, an actuator rate limit).  With MV readback (``step(..., u_applied=...)``, the valve
 positions actually applied over the last sample; common practice, no source) the tracking term
 uses the *applied* value instead of the loop's own limited output: ``(u_applied - v)``, so the
 integral does not wind up behind a valve that does not follow.  Without readback (None or NaN)
-the loop only knows its own limits.
+the loop only knows its own limits.  With readback, a valve that did not move although its
+command differs from its position (stuck or saturated) is counted (``n_mvs_not_following``) and
+gives the status ``mv_not_following``.
 
 PID loop spec keys (:func:`pid_loop_from_spec`)
 ------------------------------------------------
@@ -52,7 +57,9 @@ from ..exceptions import SettingsError
 from ..linear import rga as _rga
 from ..model import suggest
 from ..operating import OperatingPoint
-from .base import STATUS_HOLD, STATUS_OK, ControlOutput, Measurement, Targets
+from .base import (STATUS_HOLD, STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutput, Measurement,
+                   Targets)
+from .limits import project_value
 
 __all__ = ["PIDLoop", "PIDController", "pid_loop_from_spec", "pid_from_settings", "suggest_pairing", "Pairing",
            "low_frequency_gain"]
@@ -210,6 +217,9 @@ class PIDController:
     def reset(self, op: OperatingPoint, t0: float = 0.0) -> None:
         self._u0 = np.asarray(op.u, float).copy()
         self._state = [_LoopState(u=float(self._u0[j])) for _, j in self._idx]
+        self._u_last = self._u0.tolist()               # the last command sent, every MV
+        self._cmd_prev = self._u0.tolist()
+        self._ua_prev = [math.nan] * len(self.mv_names)
 
     @property
     def integrals(self) -> np.ndarray:
@@ -231,29 +241,22 @@ class PIDController:
                                     f"{len(self.mv_names)} entries (MV order); got shape "
                                     f"{np.shape(u_applied)}.")
             ua = ua.tolist()
-        u_out = self._u0.copy()
-        status = STATUS_OK
+        u_ask = self._u0.copy()           # MVs without a loop stay at the operating point
         held = 0
         saturated = 0
         # plain Python floats: scalar arithmetic on them is much cheaper than on numpy scalars
         ys, sps = meas.y.tolist(), targets.setpoint.tolist()
         fresh = meas.fresh.tolist()
-        mv_lo, mv_hi = targets.mv_low.tolist(), targets.mv_high.tolist()
-        rate = targets.mv_rate.tolist() if targets.mv_rate is not None else None
+        acted: list[tuple[_LoopState, int, float]] = []
         for lp, (ci, mj), st in zip(self.loops, self._idx, self._state):
             y = ys[ci]
             r = sps[ci]
-            lo, hi = mv_lo[mj], mv_hi[mj]
-            if rate is not None and math.isfinite(rate[mj]):
-                lo, hi = max(lo, st.u - rate[mj]), min(hi, st.u + rate[mj])
-                if lo > hi:   # operating limit moved faster than the rate allows: rate wins
-                    lo = hi = min(max(st.u, mv_lo[mj]), mv_hi[mj])
             if not math.isfinite(y) or not math.isfinite(r):
                 held += not math.isfinite(y)
-                u_out[mj] = st.u
+                u_ask[mj] = st.u
                 continue
             if lp.on_fresh and not fresh[ci] and st.started:
-                u_out[mj] = st.u
+                u_ask[mj] = st.u
                 continue
             K, Td, N = lp.gain, lp.derivative_time, lp.derivative_filter
             if not st.started:
@@ -271,14 +274,42 @@ class PIDController:
             if Td > 0 and h > 0:
                 st.d = Td / (Td + N * h) * st.d - K * Td * N / (Td + N * h) * (y - st.y_prev)
             v = K * (lp.setpoint_weight * r - y) + st.i + st.d
-            u = min(max(v, lo), hi)
-            saturated += u != v
-            st.e_prev, st.aw_prev, st.v_prev = r - y, u - v, v
-            st.y_prev, st.t_last, st.u = y, t, u
-            u_out[mj] = u
+            st.e_prev, st.v_prev = r - y, v
+            st.y_prev, st.t_last = y, t
+            u_ask[mj] = v
+            acted.append((st, mj, v))
+        # every MV (acting, held or without a loop) through the one projection: rate limit from
+        # the last command, then the hard limits, which win (mpcproto.control.limits)
+        lo, hi = targets.mv_low.tolist(), targets.mv_high.tolist()
+        rate = targets.mv_rate.tolist() if targets.mv_rate is not None else [math.inf] * len(lo)
+        ul = [project_value(a, p, lo[j], hi[j], rate[j],
+                            what=f"PIDController '{self.name}' ({self.mv_names[j]})")
+              for j, (a, p) in enumerate(zip(u_ask.tolist(), self._u_last))]
+        u_out = np.array(ul)
+        for st, mj, v in acted:
+            saturated += ul[mj] != v
+            st.aw_prev = ul[mj] - v
+        for st, (_, mj) in zip(self._state, self._idx):
+            st.u = ul[mj]
+        self._u_last = ul
+        not_following = 0
+        if ua is not None:
+            # a valve that did not move although the loop moved its command (stuck, saturated)
+            for (_, mj), st in zip(self._idx, self._state):
+                a = ua[mj]
+                if (math.isfinite(a) and math.isfinite(self._ua_prev[mj])
+                        and abs(a - self._ua_prev[mj]) <= 1e-9 * max(1.0, abs(a))
+                        and abs(self._cmd_prev[mj] - a) > 1e-6 * max(1.0, abs(a))):
+                    not_following += 1
+            self._ua_prev = list(ua)
+        self._cmd_prev = ul
+        status = STATUS_OK
         if held:
             status = STATUS_HOLD
-        diag: dict[str, float] = {"loops_held": held, "loops_saturated": saturated}
+        elif not_following:
+            status = STATUS_MV_NOT_FOLLOWING
+        diag: dict[str, float] = {"loops_held": held, "loops_saturated": saturated,
+                                  "n_mvs_not_following": not_following}
         for key, st in zip(self._diag_keys, self._state):
             diag[key] = st.i
         return ControlOutput(u=u_out, status=status, diagnostics=diag)

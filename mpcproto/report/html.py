@@ -472,7 +472,9 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
     viol = [(ctl, ev) for ctl, res in ctls.items() for ev in ((res or {}).get("violations") or [])]
     if viol:
         out.append(f'<p class="small">{len(viol)} limit-violation event(s): ' + "; ".join(
-            f'{_e(ctl)} {_e(ev.get("variable", "?"))} {_e(ev.get("side", ev.get("bound", "")))} '
+            f'{_e(ctl)} {_e(ev.get("variable", "?"))}'
+            f'{_e(" (MV " + ev["signal"] + ")") if ev.get("signal") in ("commanded", "applied") else ""} '
+            f'{_e(ev.get("side", ev.get("bound", "")))} '
             f'peak excess {_num(ev.get("peak_excess"))}' for ctl, ev in viol[:6])
             + (" &hellip;" if len(viol) > 6 else "") + "</p>")
     out.append("</div>")

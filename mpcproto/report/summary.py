@@ -76,7 +76,8 @@ def _upper(criterion: Mapping[str, Any]) -> bool | None:
     """True for an upper limit, False for a lower one, None when unknown (read from the verdict)."""
     v, lim, ok = criterion.get("value"), criterion.get("limit"), criterion.get("passed")
     chk = _check_of(criterion)
-    if chk.endswith("_below") or chk == "no_limit_violation" or chk == "no_solver_failure":
+    if chk.endswith("_below") or chk in ("no_limit_violation", "no_solver_failure",
+                                         "mv_commands_within_limits"):
         return True
     if chk.endswith("_above") or chk == "better_than":
         return False

@@ -7,7 +7,10 @@ Each verdict is plain data ``{"name", "check", "value", "limit", "passed"}`` (pl
 CV that has no setpoint), and a criterion on a missing figure fails.
 
 The figures come from :func:`mpcproto.analysis.summarize` (KPIs, violation events, solver health)
-and, for ``peak_below`` / ``low_above``, from the trajectory's true values.
+and, for ``peak_below`` / ``low_above``, from the trajectory's true values.  ``no_limit_violation``
+counts CV events and MV hard-limit events (commanded and applied).  Besides the scenario's own
+criteria, a controller that sent an MV command outside a hard limit always gets the failed verdict
+``mv_commands_within_limits`` (as a run that did not complete gets ``run_completed``).
 """
 
 from __future__ import annotations
@@ -82,6 +85,15 @@ def evaluate_controller(criteria: Sequence[Mapping[str, Any]], label: str, block
     if run.get("status", "completed") != "completed":
         out.append({"name": "run_completed", "check": "run_completed", "value": 0.0, "limit": 1.0,
                     "passed": False, "message": run.get("message", "")})
+    sent = [e for e in block.get("violations", []) if e.get("signal") == "commanded"]
+    if sent:          # a command outside a hard MV limit fails the run, criteria or not
+        worst = max(sent, key=lambda e: e.get("peak_excess") or 0.0)
+        out.append({"name": "mv_commands_within_limits", "check": "mv_commands_within_limits",
+                    "value": float(len(sent)), "limit": 0.0, "passed": False,
+                    "message": f"{len(sent)} event(s) of an MV command outside its hard limits; "
+                               f"worst: {worst['variable']} beyond its {worst['side']} limit by "
+                               f"{worst['peak_excess']:.4g} from t={worst['start']:g} to "
+                               f"{worst['end']:g}"})
     for cr in criteria:
         if not applies_to(cr, label):
             continue
@@ -103,7 +115,9 @@ def evaluate_controller(criteria: Sequence[Mapping[str, Any]], label: str, block
             extra = {}
             if events:
                 worst = max(events, key=lambda e: e.get("peak_excess") or 0.0)
-                extra["message"] = (f"{len(events)} event(s); worst: {worst['variable']} beyond its "
+                what = worst["variable"] + (f" ({worst['signal']})" if worst.get("signal") in
+                                            ("commanded", "applied") else "")
+                extra["message"] = (f"{len(events)} event(s); worst: {what} beyond its "
                                     f"{worst['side']} limit by {worst['peak_excess']:.4g} from "
                                     f"t={worst['start']:g} to {worst['end']:g}")
             out.append(_verdict(cr, v, 0.0, v == 0.0, **extra))

@@ -94,6 +94,9 @@ class ClosedLoop:
         offsets from the model's physical bound on that side.  Default: the physical bounds.
     mv_limits : mapping MV name -> {"low": spec, "high": spec, "rate": float}, optional
         Operating limits given to the controller (``rate`` per time unit).  Default: physical.
+        They are hard limits, intersected with the physical bounds (recorded as ``mvlo``/``mvhi``);
+        a limit wholly beyond the physical range is refused.  A controller's command outside them
+        is recorded as asked (``ucmd``) and reported by :func:`mpcproto.analysis.mv_violations`.
     instruments : mapping CV name -> Instrument or spec, optional
     actuators : mapping MV name -> Actuator or spec, optional
     faults : sequence of Fault or spec, optional
@@ -207,6 +210,16 @@ class ClosedLoop:
                 self.SP[:, j] = np.nan if sps[n] is None else self._series(sps[n], op.y[j], f"setpoints.{n}")
         self.LO, self.HI = self._limit_series(cv_limits, "cv", "cv_limits")
         self.MVLO, self.MVHI = self._limit_series(mv_limits, "mv", "mv_limits", allow_rate=True)
+        # the MV limits a controller gets are hard: never beyond the physical travel
+        plo, phi = m.bounds("mv")
+        for side, arr, beyond in (("low", self.MVLO, self.MVLO > phi),
+                                  ("high", self.MVHI, self.MVHI < plo)):
+            if beyond.any():
+                k, j = np.argwhere(beyond)[0]
+                raise SettingsError(
+                    f"mv_limits.{m.mv_names[j]}.{side}: expected a limit within the physical range "
+                    f"[{plo[j]:g}, {phi[j]:g}]; found {arr[k, j]:g} at t={self.times[k]:g}.")
+        self.MVLO, self.MVHI = np.maximum(self.MVLO, plo), np.minimum(self.MVHI, phi)
         for arg, names, LO, HI in (("cv_limits", m.cv_names, self.LO, self.HI),
                                    ("mv_limits", m.mv_names, self.MVLO, self.MVHI)):
             bad = np.argwhere(LO > HI)
@@ -506,6 +519,7 @@ class ClosedLoop:
             "integrator": self.plant.plugin, "status": self.status, "message": self.message,
             "failed_at": self.failed_at, "faults": [f.as_dict() for f in self.faults],
             "instruments": {n: vars(i) for n, i in self.instruments.items()},
+            "mv_bounds": {n: [float(lo), float(hi)] for n, lo, hi in zip(m.mv_names, *m.bounds("mv"))},
         }
         return Trajectory(self.times[:n], cols, {"status": self._status[:n]}, meta)
 

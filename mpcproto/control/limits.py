@@ -1,0 +1,132 @@
+"""The one projection of an MV command onto its hard limits and its rate limit.
+
+Every controller forms its command through :func:`project_command` (the predictive controller
+after a solve, a shifted plan, a hold or a failed estimate; the PID loops after their
+algorithm), so no command outside a hard limit is ever sent, whatever a solver returned, however
+far a limit stepped, wherever the run started and whatever the valve readback said.
+
+The rule, per MV (``u`` asked, ``p`` the previous MV, ``[lo, hi]`` the hard limits, ``r`` the
+largest move per sample)::
+
+    v   = p                        where u is NaN (no request: hold)
+    w   = min(max(v, p - r), p + r)                       the rate limit
+    out = min(max(w, lo), hi)                             the hard limits, applied LAST
+
+**Hard limits win.**  When both cannot hold -- the previous MV lies outside ``[lo, hi]`` by more
+than ``r`` (a limit stepped past the MV, a run that starts outside a limit, a valve read back
+beyond a limit) -- the command goes to the nearest hard limit in one move, larger than ``r``.
+A rate limit protects equipment from fast moves; a hard limit is the range the MV may take at
+all, and a command outside it is never sent.  Inside the limits the rate limit holds as usual.
+
+Other cases: a limit of +-inf or NaN is no limit; a rate of inf or NaN is no rate limit; where
+the previous MV is unknown (NaN) the rate limit cannot apply and only the hard limits do; where
+neither a request nor a previous MV exists the result is NaN (no command: the actuator holds).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..exceptions import SettingsError
+
+__all__ = ["project_command", "project_value", "limit_activity"]
+
+
+def project_command(u, u_prev, lo, hi, max_move, *, what: str = "project_command") -> np.ndarray:
+    """The MV command sent: *u* projected onto the rate limit, then onto the hard limits.
+
+    Parameters
+    ----------
+    u : array_like (nu,) or float
+        The command asked for (absolute; NaN: none, hold the previous MV).
+    u_prev : array_like
+        The previous MV (absolute; the last command, or the valve position read back).
+    lo, hi : array_like
+        Hard limits (absolute; +-inf or NaN: none).  ``lo <= hi`` where both are given.
+    max_move : array_like
+        Largest move per sample (>= 0; inf or NaN: none).
+    what : str
+        Named in the error message.
+
+    Returns
+    -------
+    ndarray
+        The command, inside ``[lo, hi]`` wherever it is finite; see the module docstring for
+        the rule when the rate limit and the hard limits cannot both hold (hard limits win).
+
+    Raises
+    ------
+    SettingsError
+        A low limit above its high limit, or a negative rate.
+
+    Examples
+    --------
+    >>> project_command([3.0], [3.0], [0.0], [1.4], [0.1]).tolist()     # hard limits win
+    [1.4]
+    >>> project_command([0.9], [0.5], [0.0], [1.4], [0.1]).tolist()     # rate limit inside
+    [0.6]
+    """
+    u = np.asarray(u, float)
+    shape = u.shape
+    cols = [_floats(a, shape) for a in (u, u_prev, lo, hi, max_move)]
+    # a handful of MVs: plain Python floats are much cheaper here than numpy calls
+    out = [project_value(*row, what=f"{what} (MV {j})") for j, row in enumerate(zip(*cols))]
+    return np.array(out, float).reshape(shape)
+
+
+def _floats(a, shape) -> list[float]:
+    """*a* as a flat list of floats of the shape of the command (a scalar is repeated)."""
+    a = np.asarray(a, float)
+    if a.shape == shape:
+        return a.ravel().tolist()
+    if a.ndim == 0:
+        return [float(a)] * math.prod(shape)
+    return np.broadcast_to(a, shape).ravel().tolist()
+
+
+def project_value(u: float, p: float, lo: float, hi: float, r: float, *,
+                  what: str = "project_value") -> float:
+    """:func:`project_command` for one MV, on plain floats (the PID loops' per-loop path).
+
+    The rule of the module docstring; a NaN compares False, so a NaN limit or rate is none.
+    """
+    if lo > hi:
+        raise SettingsError(f"{what}: the low limit ({lo:g}) is above the high limit ({hi:g}); "
+                            f"expected low <= high.")
+    if r < 0:
+        raise SettingsError(f"{what}: the rate limit must be >= 0; found {r:g}.")
+    if u != u:                      # no request: hold the previous MV
+        u = p
+        if u != u:
+            return math.nan         # nothing known: no command
+    if u > p + r:                   # the rate limit (skipped where p or r is NaN)
+        u = p + r
+    elif u < p - r:
+        u = p - r
+    if u < lo:                      # the hard limits last: they win
+        u = lo
+    elif u > hi:
+        u = hi
+    return u
+
+
+def limit_activity(u, u_prev, lo, hi, max_move, *, rel_tol: float = 1e-6
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Which MVs of a projected command sit at a hard limit, at the rate limit, or moved more
+    than the rate limit because the hard limits won (all boolean arrays, MV order).
+
+    The tolerance is ``rel_tol * max(1, |u|)`` (the solver tolerance scale).
+    """
+    u = np.asarray(u, float)
+    shape = u.shape
+    at_limit, at_rate, over_rate = [], [], []
+    for v, p, a, b, r in zip(*(_floats(x, shape) for x in (u, u_prev, lo, hi, max_move))):
+        tol = rel_tol * max(1.0, abs(v))
+        move = abs(v - p)
+        at_limit.append(abs(v - a) <= tol or abs(v - b) <= tol)
+        at_rate.append(abs(move - r) <= tol)
+        over_rate.append(move > r + tol)
+    return (np.array(at_limit, bool).reshape(shape), np.array(at_rate, bool).reshape(shape),
+            np.array(over_rate, bool).reshape(shape))
