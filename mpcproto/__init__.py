@@ -5,6 +5,9 @@ Model (layer 1)
 Operating points and linear models (layer 2)
     OperatingPoint, LinearModel, DiscreteLinearModel, linearize, rga,
     steady_states, steady_state, solve_targets, TargetResult
+Design checks (layer 2)
+    gain_matrix_analysis, GainAnalysis, niederlinski_index, rga_at_frequency, sampling_advice,
+    steady_state_locus, SteadyStateLocus, loop_margins, LoopMargins, half_rule
 Open-loop tests (layer 2)
     open_loop_test, plot_response_test, linearity_sweep, ResponseTest, fit_step_response, StepFit,
     step_model_response
@@ -58,6 +61,10 @@ from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sop
                              fit_step, ultimate_point, simc, imc, ziegler_nichols, tune_loop,
                              tune_pid_loops)
 from .compare import compare, Comparison
+from .design import (GainAnalysis, gain_matrix_analysis, niederlinski_index, rga_at_frequency,
+                     sampling_advice)
+from .continuation import SteadyStateLocus, steady_state_locus
+from .control.loop_analysis import LoopMargins, loop_margins, half_rule
 from .control.mpc import PredictiveController
 from .control.estimator import DisturbanceEstimator
 from .control.steady_target import SteadyTarget
@@ -95,6 +102,9 @@ __all__ = [
     "ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating", "fit_step",
     "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",
     "compare", "Comparison",
+    "GainAnalysis", "gain_matrix_analysis", "niederlinski_index", "rga_at_frequency",
+    "sampling_advice", "SteadyStateLocus", "steady_state_locus", "LoopMargins", "loop_margins",
+    "half_rule",
     "PredictiveController", "DisturbanceEstimator", "SteadyTarget",
     "scenario", "Scenario", "load_scenario", "parse_scenario", "check_scenario", "Case", "expand",
     "run_case", "run_scenario", "linear_report",

@@ -7,6 +7,10 @@ Commands
 ``mpcproto linearize SCENARIO.toml [--json] [--model plant|controller]``
     Operating point, continuous and discrete matrices, steady-state gains, poles, transmission
     zeros, RGA (square systems) and a per-pair view.
+``mpcproto assess SCENARIO.toml [--json] [--locus NAME LOW HIGH [--plot FILE.png]]``
+    Design checks of the controller's model: gain-matrix conditioning and directions, RGA at
+    steady state and at frequency, Niederlinski index and margins of the PID loops, horizons and
+    sample time; optionally the steady-state locus against one variable, with its folds.
 ``mpcproto check SCENARIO.toml...``
     Validate scenario files as deeply as possible without running them (models, operating point,
     names, signal specs, controllers, every study case).
@@ -194,6 +198,34 @@ def _cmd_linearize(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# ---------------------------------------------------------------------------------------- assess
+def _cmd_assess(args: argparse.Namespace) -> int:
+    from .scenario import load_scenario
+    from .scenario.assess import design_report, print_design_report, scenario_locus
+
+    scn = load_scenario(args.scenario)
+    rep = design_report(scn)
+    if args.locus:
+        name, low, high = args.locus
+        rep["locus"] = scenario_locus(scn, name, low, high, plot=args.plot)
+    if args.json:
+        print(json.dumps(_finite_or_null(rep), indent=2))
+        return EXIT_OK
+    print_design_report(rep)
+    loc = rep.get("locus")
+    if loc is not None:
+        print(f"\nsteady states against {loc['variable']} [{loc['unit']}]: {len(loc['values'])} "
+              f"points, {sum(loc['stable'])} stable")
+        for f in loc["folds"]:
+            states = ", ".join(f"{k}={v:.6g}" for k, v in f["states"].items())
+            print(f"  fold at {loc['variable']} = {f['value']:.6g} ({states})")
+        if not loc["folds"]:
+            print("  no fold in the range: one steady state for every value")
+        if args.plot:
+            print(f"plot: {args.plot}")
+    return EXIT_OK
+
+
 # ----------------------------------------------------------------------------------------- check
 def _cmd_check(args: argparse.Namespace) -> int:
     from .scenario import check_scenario, count_cases, load_scenario
@@ -330,6 +362,24 @@ def build_parser() -> argparse.ArgumentParser:
     lz.add_argument("--model", choices=("plant", "controller"), default="plant",
                     help="linearize the plant (default) or the controller's model")
     lz.set_defaults(handler=_cmd_linearize)
+
+    ax = sub.add_parser("assess", help="design checks of a scenario's controller model",
+                        description="Check the controller's model of a scenario before trusting a "
+                                    "design: singular values and condition number of the gain "
+                                    "matrix (scaled by the variables' ranges), weak CV and MV "
+                                    "directions, collinear MVs, det G(0), RGA at steady state "
+                                    "and at frequency, the Niederlinski index and the gain/phase "
+                                    "margins and peak sensitivity of the scenario's PID loops, and "
+                                    "suggested horizons and a sample-time check. With --locus, the "
+                                    "steady states against one MV, DV or parameter with their "
+                                    "folds and stability. Exit 0, or 2 on bad input.")
+    ax.add_argument("scenario", metavar="SCENARIO.toml", help="the scenario file")
+    ax.add_argument("--json", action="store_true", help="print JSON instead of tables")
+    ax.add_argument("--locus", nargs=3, metavar=("NAME", "LOW", "HIGH"),
+                    help="follow the plant's steady states while NAME (an MV, DV or parameter) "
+                         "moves from LOW to HIGH")
+    ax.add_argument("--plot", metavar="FILE.png", help="with --locus: draw the locus to this PNG")
+    ax.set_defaults(handler=_cmd_assess)
 
     ck = sub.add_parser("check", help="validate scenario files without running them",
                         description="Validate scenario files as deeply as possible without "
