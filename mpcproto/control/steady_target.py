@@ -18,8 +18,9 @@ Stage 1, the CVs::
 Stage 2, the MVs: with every CV kept at least as close to its band and inside its limits as stage 1
 left it (``band_lo + min(e1, 0) <= ys <= band_hi + max(e1, 0)``, the same for the limits with
 ``s1``; a tolerance of 1e-10 of the value in scaled units), minimize
-``sum_j r_j (us_j - pref_j)^2`` plus a 1e-9 pull of the scaled states and MVs towards the operating
-point (a unique target).  A reachable setpoint has ``e1 = 0`` and is therefore met exactly (to the
+``sum_j r_j (us_j - pref_j)^2`` (an MV without a preferred weight gets 1e-6 of the largest) plus,
+where the MVs leave a state free (an integrating state no CV pins), a 1e-9 pull of that state
+towards the operating point (a unique target).  A reachable setpoint has ``e1 = 0`` and is therefore met exactly (to the
 solver's precision); an unreachable one keeps stage 1's compromise (closest in the weighted sense,
 priority classes through the weights).  The MV preferred weights act only through their ratios.
 
@@ -185,11 +186,18 @@ class SteadyTarget:
         # -- stage 2: phi only; preferred values through their ratios (scaled), a tiny min-norm
         rs = self.preferred_weight * su ** 2
         top = float(rs.max()) if rs.size else 0.0
-        wrel = np.maximum(rs / top, _PREF_FLOOR) if top > 0 else np.full(nu, _PREF_FLOOR)
+        wrel = np.where(rs > 0, rs / top, _PREF_FLOOR) if top > 0 else np.full(nu, _PREF_FLOOR)
         self._wrel = wrel
-        TT = T.T @ T
-        self._H2 = 2 * (self._Uphi.T @ (wrel[:, None] * self._Uphi) + _MIN_NORM * TT)
+        # the min-norm pull acts only where the MVs do not move (a free integrating state), so the
+        # preferred values decide exactly wherever the MVs decide
+        Un = N[nx:]
+        _, su_, vt_ = np.linalg.svd(Un) if k else (None, np.zeros(0), np.zeros((0, 0)))
+        ru = int(np.sum(su_ > 1e-12 * max(su_[0], 1e-300))) if su_.size else 0
+        Zf = vt_[ru:].T                               # theta directions that leave the MVs alone
+        self._H2 = 2 * (self._Uphi.T @ (wrel[:, None] * self._Uphi)
+                        + _MIN_NORM * (T.T @ Zf) @ (Zf.T @ T))
         self._H2 = 0.5 * (self._H2 + self._H2.T)
+        self._Zf = Zf
         self._A2 = np.vstack([self._Yphi, self._Uphi])
         self._sense2 = np.zeros(ny + nu, dtype=np.intc)
         self.layout_ = {"d": nd, "w": nw, "band_lo": ny, "band_hi": ny, "lim_lo": ny, "lim_hi": ny,
@@ -364,8 +372,10 @@ class SteadyTarget:
         stage1 = cp.Problem(cp.Minimize(obj1), model + [
             p["band_lo"] <= ys - e, ys - e <= p["band_hi"],
             ys + s >= p["lim_lo"], ys - s <= p["lim_hi"], s >= 0])
+        # (the states' pull as the reduced form's, through the projection onto the free states)
+        Zx = self._N[:nx] @ self._Zf
         obj2 = (cp.sum(cp.multiply(self._wrel, cp.square(us - p["pref"])))
-                + _MIN_NORM * (cp.sum_squares(xs) + cp.sum_squares(us)))
+                + _MIN_NORM * cp.sum_squares(Zx.T @ xs))
         stage2 = cp.Problem(cp.Minimize(obj2), model + [ys >= p["y_lo"], ys <= p["y_hi"]])
         self._ref = (stage1, stage2, p, xs, us, ys)
         return self._ref
