@@ -13,7 +13,9 @@ ways to find one:
     Jacobian, e.g. a level that integrates, whose steady states are not isolated), a bounded
     least-squares solve (scipy) from the nominal state and the given starts is used instead.
 :func:`steady_state`
-    the steady state nearest a guess (default: the nominal state).
+    the steady state nearest a guess (default: the nominal state; Euclidean distance in units of the
+    states' ranges).  A state that is free at steady state (an integrating level) keeps its guessed
+    value; Newton's method solves for the others.
 :func:`solve_targets`
     the target problem: the MVs (within their bounds) and states that put the CVs at given targets at
     steady state, as a least-squares problem solved by IPOPT (compiled once per model)::
@@ -24,9 +26,12 @@ ways to find one:
 
     with ``s_i``, ``r_j``, ``q_k`` the spans of the physical bounds (or the magnitudes) of CV i, MV j
     and state k, and the references the guesses (default nominal).  The tiny second term picks one
-    answer when the targets leave MVs or states free (more MVs than targets, an integrating level).  When a target
-    cannot be reached, the answer is the least-squares compromise and the message says which target
-    missed by how much and which MVs sit at a bound.
+    answer when the targets leave MVs or states free (more MVs than targets, an integrating level).
+    IPOPT's answer is then finished by Newton's method (minimum-norm steps) on the balances and the
+    targets it reached, in the free MVs off their bounds, so a reached target is met to rounding; a
+    reached target left above ``EXACT`` (1e-10) of its value or scale is named in the message.  When
+    a target cannot be reached, the answer is the least-squares compromise and the message says which
+    target missed by how much and which MVs sit at a bound.
 """
 
 from __future__ import annotations
