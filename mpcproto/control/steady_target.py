@@ -330,7 +330,7 @@ class SteadyTarget:
         objective is flat the iterate stays where it is, elsewhere the error shrinks by
         ``rho / (rho + curvature)`` per iteration (Rockafellar 1976, proximal point algorithm;
         from memory).  Done here rather than with DAQP's ``eps_prox`` option so that the stopping
-        rule is ours (a step below 1e-12 relative: with rho = 1e-6 the error left is about 1e-6 of
+        rule is ours (a step below 1e-10 relative: with rho = 1e-6 the error left is about 1e-6 of
         that last step).
         """
         x = self._x1_last.copy()
@@ -345,7 +345,7 @@ class SteadyTarget:
             xp = np.array(xp)       # copy: DAQP's result may point into its workspace
             step = np.abs(xp - x).max()
             x = xp
-            if step <= 1e-12 * (1.0 + np.abs(x).max()):
+            if step <= 1e-10 * (1.0 + np.abs(x).max()):
                 break
         self._x1_last = x
         return x, 1, iters
