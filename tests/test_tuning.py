@@ -67,18 +67,67 @@ def test_simc_on_the_half_rule_example():
 
 
 def test_imc_pid_gives_the_imc_loop_transfer_function():
-    # Reference: Rivera, Morari & Skogestad (1986): with a first-order Pade approximation of the
-    # dead time, the IMC-PID times the FOPDT gives the loop L(s) = (1 - theta s/2)/((lambda+theta) s)
+    # Reference: Rivera, Morari & Skogestad (1986), Table 1, FOPDT PID row (from memory; the same
+    # as the brief's Kc k = (2 tau + theta)/(2 lambda + theta)).  Checked here against the IMC
+    # construction itself, computed numerically: with the first-order Pade approximation
+    # G = k (1 - theta s/2)/((tau s + 1)(1 + theta s/2)), the IMC controller
+    # q = (tau s + 1)(1 + theta s/2)/(k (lambda s + 1)) and the feedback controller q/(1 - G q)
+    # must equal the ideal PID K (1 + 1/(Ti s) + Td s) at every s.  (The library's earlier test
+    # asserted the loop (1 - theta s/2)/((lambda + theta) s), which is not this construction.)
     k, tau, th, lam = 1.7, 12.0, 3.0, 4.0
     c = mp.imc(mp.ProcessFit.fopdt(k, tau, th), lam=lam, cv="y", mv="u")
     s = np.array([0.01j, 0.1j, 1j, 0.3 + 0.2j, 2.0])
     C = c.gain * (1 + 1 / (c.integral_time * s) + c.derivative_time * s)
     G = k * (1 - th * s / 2) / ((tau * s + 1) * (1 + th * s / 2))
-    assert np.allclose(C * G, (1 - th * s / 2) / ((lam + th) * s), rtol=1e-12)
-    # PI form: Kc k = (2 tau + theta)/(2 lambda), Ti = tau + theta/2
+    q = (tau * s + 1) * (1 + th * s / 2) / (k * (lam * s + 1))
+    assert np.allclose(C, q / (1 - G * q), rtol=1e-12)
+    assert np.allclose(C * G, (1 - th * s / 2) / ((lam + th / 2) * s), rtol=1e-12)
+    # the issue's numbers: k = 2, tau = 10, theta = 1 -> Kc = 21/(2*3) = 3.5 at lambda = 1 and
+    # 21/(2*5) = 2.1 at lambda = 2 (was 2.625 and 1.75)
+    for lam_, K in ((1.0, 3.5), (2.0, 2.1)):
+        pid = mp.imc(mp.ProcessFit.fopdt(2.0, 10.0, 1.0), lam=lam_, mode="PID")
+        assert pid.gain == pytest.approx(K, rel=1e-12)
+        assert pid.integral_time == pytest.approx(10.5) and pid.derivative_time == pytest.approx(10 / 21)
+    # PI form ("improved PI", Rivera et al. 1986 Table 1, from memory):
+    # Kc k = (2 tau + theta)/(2 lambda), Ti = tau + theta/2
     pi = mp.imc(mp.ProcessFit.fopdt(k, tau, th), lam=lam, mode="PI", cv="y", mv="u")
     assert pi.gain * k == pytest.approx((2 * tau + th) / (2 * lam)) and pi.integral_time == tau + th / 2
+    assert pi.derivative_time == 0.0
 
+
+def test_simc_series_pid_is_converted_to_the_ideal_form_exactly():
+    # Reference: Skogestad (2003), SOPDT rule gives the series (cascade) PID
+    # Kc (1 + 1/(tauI s))(tauD s + 1); the loops here are ideal K (1 + 1/(Ti s) + Td s); the two
+    # transfer functions must be equal at every s (algebra, checked numerically)
+    f = mp.ProcessFit.sopdt(2.0, 8.0, 3.0, 1.0)
+    pid = mp.simc(f, tau_c=1.5)
+    Kc, tI, tD = 8.0 / (2.0 * (1.5 + 1.0)), min(8.0, 4 * 2.5), 3.0
+    s = np.array([0.02j, 0.5j, 3j, 0.1 + 1j])
+    series = Kc * (1 + 1 / (tI * s)) * (tD * s + 1)
+    ideal = pid.gain * (1 + 1 / (pid.integral_time * s) + pid.derivative_time * s)
+    assert np.allclose(series, ideal, rtol=1e-12)
+
+
+def test_ziegler_nichols_reaction_curve():
+    # Reference: Ziegler & Nichols (1942), step-response method (table from memory, also in
+    # Astrom & Hagglund's PID books): a = R L with R the steepest slope per unit step (k/tau for
+    # a FOPDT) and L the apparent dead time; P: K = 1/a; PI: K = 0.9/a, Ti = 3 L;
+    # PID: K = 1.2/a, Ti = 2 L, Td = L/2.
+    f = mp.ProcessFit.fopdt(2.0, 10.0, 1.5)
+    a = 2.0 * 1.5 / 10.0
+    p = mp.ziegler_nichols(f, mode="P", method="reaction_curve")
+    assert p.gain == pytest.approx(1 / a) and math.isinf(p.integral_time)
+    pi = mp.ziegler_nichols(f, mode="PI", method="reaction_curve")
+    assert (pi.gain, pi.integral_time, pi.derivative_time) == pytest.approx((0.9 / a, 4.5, 0.0))
+    pid = mp.ziegler_nichols(f, method="reaction_curve")
+    assert (pid.gain, pid.integral_time, pid.derivative_time) == pytest.approx((1.2 / a, 3.0, 0.75))
+    # a negative gain reverses the action
+    neg = mp.ziegler_nichols(mp.ProcessFit.fopdt(-2.0, 10.0, 1.5), method="reaction_curve")
+    assert neg.gain == pytest.approx(-1.2 / a)
+    with pytest.raises(mp.SettingsError, match="method must be one of ultimate, reaction_curve"):
+        mp.ziegler_nichols(f, method="curve")
+    with pytest.raises(mp.SettingsError, match="reaction_curve' needs a FOPDT fit"):
+        mp.ziegler_nichols(ultimate=(8.0, 3.6), method="reaction_curve")
 
 def test_fopdt_fit_recovers_gain_time_constant_and_dead_time_from_noisy_data():
     # Reference: the simulated plant itself (known K, tau, theta) -- the fit must give them back
@@ -174,3 +223,17 @@ def test_tuning_adds_half_a_sample_and_the_analyzer_delay_to_the_dead_time():
     assert ctl.loops[0].gain == pytest.approx(loops[0].gain, rel=1e-6)
     with pytest.raises(mp.SettingsError, match=r"extra_dead_time: 'yy' is not a CV"):
         mp.pid_from_settings(m, op0(m), Ts, {"pairs": {"y": "u"}, "extra_dead_time": {"yy": 1.0}})
+
+
+def test_reaction_curve_method_is_a_setting_of_the_ziegler_nichols_rule_only():
+    # the settings table refuses 'method' for another rule, naming the rule it belongs to
+    # (error-message convention of the project; no outside source)
+    tank = mp.make_model("blending_tank")
+    with pytest.raises(mp.SettingsError, match=r"tank.pid.method: applies to rule ziegler_nichols"):
+        mp.pid_from_settings(tank, op0(tank), 10.0, {"rule": "simc", "method": "reaction_curve"},
+                             what="tank.pid")
+    with pytest.raises(mp.SettingsError, match=r"tank.pid.*method"):
+        mp.pid_from_settings(tank, op0(tank), 10.0,
+                             {"rule": "ziegler_nichols", "method": "curve"}, what="tank.pid")
+    f = mp.ProcessFit.fopdt(2.0, 10.0, 1.5)
+    assert mp.tune_loop(f, "ziegler_nichols", method="reaction_curve").gain == pytest.approx(4.0)

@@ -86,10 +86,6 @@ _RENAMED_KEYS = {f"rest_{k}": f"preferred_{k}" for k in ("value", "weight")}
 #: per-DV keys and defaults
 DV_KEYS: dict[str, Any] = {"feedforward": True}
 
-#: in the steady target the MV preferred values only break ties: the largest preferred weight is this
-#: fraction of the smallest CV weight (scaled units), so a reachable CV setpoint is never traded
-#: for an MV's preferred value
-_TARGET_PREF_FACTOR = 1e-6
 
 #: samples an MV that did not follow its command stays limited at its position (readback)
 _NOT_FOLLOWING_HOLD = 5
@@ -652,18 +648,15 @@ class PredictiveController:
 
     @staticmethod
     def _target_preferred_weight(preferred_weight, wq_s, su):
-        """MV preferred weights for the steady target (engineering units): tie-breakers only.
+        """MV preferred weights for the steady target (engineering units).
 
-        In scaled units the largest is ``_TARGET_PREF_FACTOR`` times the smallest positive CV
-        weight, the others keep their ratios to it; never below 1e-6 (a unique target).  So a
-        reachable CV setpoint is never traded for an MV's preferred value, whatever the units.
+        The target is lexicographic (:mod:`~mpcproto.control.steady_target`): the CVs first,
+        then the preferred values among the MV combinations that do as well for the CVs, so the
+        weights go through as given; only their ratios matter there.  (A single QP with the
+        preferred weights scaled down to 1e-6 of the CV weights traded a reachable setpoint for
+        them when an MV moved a CV only slightly, and made weights 1 and 100 act alike.)
         """
-        rs = np.asarray(preferred_weight, float) * su ** 2
-        pos = wq_s[wq_s > 0]
-        ref = float(pos.min()) if pos.size else 1.0
-        top = float(rs.max()) if rs.size else 0.0
-        rel = rs / top if top > 0 else np.zeros_like(rs)
-        return np.maximum(_TARGET_PREF_FACTOR * ref * rel, 1e-6) / su ** 2
+        return np.asarray(preferred_weight, float).copy()
 
     @staticmethod
     def _state_scales(A, B, C, su, sy, T):

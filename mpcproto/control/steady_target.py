@@ -1,23 +1,39 @@
 """Steady-state target calculation: where should the MVs and CVs settle?
 
-A small QP on the steady-state form of the model, solved every sample before the dynamic problem
-(the usual two-layer arrangement of industrial predictive control; Muske & Rawlings 1993, Rao &
-Rawlings 1999)::
+Two small QPs on the steady-state form of the model, solved every sample before the dynamic
+problem (the usual two-layer arrangement of industrial predictive control; Muske & Rawlings 1993,
+Rao & Rawlings 1999).  The target is *lexicographic*: first the CVs, then the MVs' preferred values
+among the MV combinations that do as well for the CVs.
+
+Stage 1, the CVs::
 
     minimize    sum_i  c_i * e_i^2                    (CV outside its setpoint band; c_i by priority)
               + sum_i  l_i * s_i + h_i * s_i^2         (soft CV limits, exact penalty)
-              + sum_j  r_j * (us_j - pref_j)^2         (MV preferred values; small: picks among ties)
     subject to  (I - A) xs = B us + Bd d + Bw w        (steady state of the model)
                 ys = C xs + D us + Dd d + Cw w
                 band_lo <= ys - e <= band_hi
                 lim_lo <= ys + s,  ys - s <= lim_hi,  s >= 0
                 mv_lo <= us <= mv_hi                   (hard)
 
-All in deviation variables; ``d`` are the measured DVs, ``w`` the disturbance estimates.  Written
-with the state (not a gain matrix) so that integrating units work: a level's steady state asks for
-balanced flows and leaves the level itself to its setpoint.  Priorities enter through the weights:
-a CV of a higher priority class gets weights larger by a factor per class, so a lower-priority CV
-gives way first when the MVs cannot satisfy every CV.
+Stage 2, the MVs: with every CV kept at least as close to its band and inside its limits as stage 1
+left it (``band_lo + min(e1, 0) <= ys <= band_hi + max(e1, 0)``, the same for the limits with
+``s1``; a tolerance of 1e-10 of the value in scaled units), minimize
+``sum_j r_j (us_j - pref_j)^2`` (an MV without a preferred weight gets 1e-6 of the largest) plus,
+where the MVs leave a state free (an integrating state no CV pins), a 1e-9 pull of that state
+towards the operating point (a unique target).  A reachable setpoint has ``e1 = 0`` and is therefore met exactly (to the
+solver's precision); an unreachable one keeps stage 1's compromise (closest in the weighted sense,
+priority classes through the weights).  The MV preferred weights act only through their ratios.
+
+Both stages are solved by DAQP (a dual active-set method: exact, no iteration tolerance on the
+answer) in reduced coordinates: the steady-state equations are eliminated once at build time
+(``[xs; us] = v0(d, w) + N theta`` with ``N`` an orthonormal basis of the null space of
+``[I - A, -B]``), and ``theta`` is rescaled along the singular directions of its map to the CVs so
+that a CV that an MV moves only slightly (gain 1e-3 per MV scale) is as well conditioned as any
+other.  Stage 1 is only semidefinite in ``theta`` (the CVs do not pin every MV): proximal
+iterations of strictly convex DAQP solves solve it.  All in deviation variables and scaled units (one MV/CV scale = 1); ``d`` are
+the measured DVs, ``w`` the disturbance estimates.  Written with the state (not a gain matrix) so
+that integrating units work: a level's steady state asks for balanced flows and leaves the level
+itself to its setpoint.
 """
 
 from __future__ import annotations
@@ -26,16 +42,33 @@ import time
 from typing import Any
 
 import numpy as np
-import scipy.sparse as sp
 
 from ..exceptions import NotBuiltError, SettingsError
-from ._qp import CompiledQP, QPResult
+from ._qp import QPResult
 
 __all__ = ["SteadyTarget"]
 
+_INF = 1e30           # DAQP's infinity
+_CV_TOL = 1e-12       # stage 2 keeps each CV within this (relative, scaled units) of stage 1
+_MIN_NORM = 1e-9      # stage 2's pull of the scaled states/MVs to the operating point
+_PREF_FLOOR = 1e-6    # relative preferred weight of an MV without one (ties between MVs)
+_DAQP_SETTINGS = {"primal_tol": 1e-11, "iter_limit": 2000}
+_PROX_RHO = 1e-6      # stage 1's proximal weight (scaled units)
+_PROX_MAX = 40        # at most this many proximal iterations
+
+
+def _finite(v):
+    """+-inf -> DAQP's infinity (NaN bounds were replaced by +-inf in ``_unpack``)."""
+    return np.minimum(np.maximum(v, -_INF), _INF)
+
+
+def _fill_nan(v, value):
+    """*v* with NaN (an absent bound) replaced by *value*."""
+    return np.where(v != v, value, v)
+
 
 class SteadyTarget:
-    """The steady-state target QP, compiled once (cvxpy, DPP) and re-solved each sample.
+    """The lexicographic steady-state target (CVs first, then MV preferences), solved each sample.
 
     Parameters
     ----------
@@ -46,14 +79,14 @@ class SteadyTarget:
     Bw, Cw : ndarray (nx, nw), (ny, nw)
         How the disturbance states enter the states and the CVs.
     band_weight, limit_linear, limit_quadratic : ndarray (ny,)
-        Weights per CV (already scaled by priority and engineering scale).
+        Weights per CV (already scaled by priority and engineering scale), stage 1.
     preferred_weight : ndarray (nu,)
-        Weight of the MV preferred values (strictly positive keeps the target unique).
+        Weights of the MV preferred values (engineering units), stage 2; only their ratios matter.
     solver_options : dict
-        OSQP settings for the fast path.
+        Accepted for compatibility; DAQP's settings are fixed (see the module).
     scales : tuple of ndarray (x, u, y) or None
-        Engineering size of one unit of each state, MV and CV: the QP is written in these scaled
-        units (a well-balanced problem for OSQP); inputs and results stay in engineering units.
+        Engineering size of one unit of each state, MV and CV: the QPs are written in these scaled
+        units; inputs and results stay in engineering units.
 
     Notes
     -----
@@ -75,9 +108,7 @@ class SteadyTarget:
         self.is_built = False
 
     def build(self) -> "SteadyTarget":
-        """Write the QP in cvxpy and compile it once."""
-        import cvxpy as cp
-
+        """Eliminate the steady-state equations, set up both stages (and the cvxpy reference)."""
         A, B, C, D = self.A, self.B, self.C, self.D
         nx, nu, ny = A.shape[0], B.shape[1], C.shape[0]
         nd, nw = self.Bd.shape[1], self.Bw.shape[1]
@@ -94,140 +125,298 @@ class SteadyTarget:
                                ("Cw", self.Cw, (ny, nw))):
             if M.shape != shape:
                 raise SettingsError(f"SteadyTarget: {name} must have shape {shape}; got {M.shape}.")
-        xs = cp.Variable(nx, name="xs")
-        us = cp.Variable(nu, name="us")
-        ys = cp.Variable(ny, name="ys")
-        e = cp.Variable(ny, name="e")
-        s = cp.Variable(ny, name="s")
-        par = {
-            "dx": cp.Parameter(nx, name="dx"), "dy": cp.Parameter(ny, name="dy"),
-            "band_lo": cp.Parameter(ny, name="band_lo"), "band_hi": cp.Parameter(ny, name="band_hi"),
-            "lim_lo": cp.Parameter(ny, name="lim_lo"), "lim_hi": cp.Parameter(ny, name="lim_hi"),
-            "mv_lo": cp.Parameter(nu, name="mv_lo"), "mv_hi": cp.Parameter(nu, name="mv_hi"),
-            "pref": cp.Parameter(nu, name="pref"),
-        }
-        rw = self.preferred_weight * su ** 2
-        obj = (cp.sum(cp.multiply(self.band_weight * sy ** 2, cp.square(e)))
-               + (self.limit_linear * sy) @ s
-               + cp.sum(cp.multiply(self.limit_quadratic * sy ** 2, cp.square(s)))
-               + cp.sum(cp.multiply(rw, cp.square(us)))
-               - 2 * (cp.multiply(rw, par["pref"]) @ us))
-        # scaled model: x = sx * xs', u = su * us', y = sy * ys'
+        for name, v, n in (("band_weight", self.band_weight, ny),
+                           ("limit_linear", self.limit_linear, ny),
+                           ("limit_quadratic", self.limit_quadratic, ny),
+                           ("preferred_weight", self.preferred_weight, nu)):
+            if v.shape != (n,) or not np.all(np.isfinite(v)) or np.any(v < 0):
+                raise SettingsError(f"SteadyTarget: {name} must be {n} finite values >= 0; "
+                                    f"got {v!r}.")
+        self.nx, self.nu, self.ny = nx, nu, ny
+        # -- scaled model: x = sx * x', u = su * u', y = sy * y'
         IA = (np.eye(nx) - A) * (1 / sx)[:, None] * sx[None, :]
         Bs = B * (1 / sx)[:, None] * su[None, :]
         Cs = C * (1 / sy)[:, None] * sx[None, :]
         Ds = D * (1 / sy)[:, None] * su[None, :]
-        cons = [IA @ xs - Bs @ us == par["dx"],
-                ys == Cs @ xs + Ds @ us + par["dy"],
-                par["band_lo"] <= ys - e, ys - e <= par["band_hi"],
-                ys + s >= par["lim_lo"], ys - s <= par["lim_hi"], s >= 0,
-                us >= par["mv_lo"], us <= par["mv_hi"]]
-        prob = cp.Problem(cp.Minimize(obj), cons)
-        self.qp_ = CompiledQP(prob, par, {"xs": xs, "us": us, "ys": ys, "e": e, "s": s},
-                              inf_parameters=("band_lo", "band_hi", "lim_lo", "lim_hi", "mv_lo",
-                                              "mv_hi"),
-                              owner="SteadyTarget").compile()
-        eye_y, eye_u = sp.diags(1 / sy), sp.diags(1 / su)
+        self._scaled = (IA, Bs, Cs, Ds)
+        # -- steady states v = [x; u] = v0 + N theta with E v = dx, E = [I - A, -B]
+        E = np.hstack([IA, -Bs])
+        Ue, se, Vte = np.linalg.svd(E)
+        tol = max(E.shape) * np.finfo(float).eps * (se[0] if se.size else 1.0) * 10
+        r = int(np.sum(se > tol))
+        self._Epinv = Vte[:r].T @ (Ue[:, :r].T / se[:r, None])
+        self._Erange = Ue[:, :r]                      # dx must lie in range(E)
+        N = Vte[r:].T                                 # (nx + nu, k), orthonormal
+        Cy = np.hstack([Cs, Ds])
+        Y = Cy @ N
+        # -- theta = T phi: unit gain to the CVs along the singular directions of Y
+        k = N.shape[1]
+        if k and ny:
+            P, sv, Qt = np.linalg.svd(Y)
+            ry = int(np.sum(sv > 1e-12 * max(sv[0], 1e-300))) if sv.size else 0
+            T = np.hstack([Qt[:ry].T / sv[:ry], Qt[ry:].T])
+        else:
+            T = np.eye(k)
+        self._N, self._T, self._k = N, T, k
+        self._Vphi = N @ T                            # v = v0 + Vphi @ phi
+        self._Yphi = Cy @ self._Vphi
+        self._Uphi = self._Vphi[nx:]
+        self._Cy = Cy
+        # -- the inputs: dx = Bd d + Bw w, dy = Dd d + Cw w (scaled)
+        self._dxd, self._dxw = self.Bd / sx[:, None], self.Bw / sx[:, None]
+        self._dyd, self._dyw = self.Dd / sy[:, None], self.Cw / sy[:, None]
+        # -- stage 1: w1 = [s (ny), e (ny), phi (k)]; s >= 0 as DAQP's simple bounds
+        c = self.band_weight * sy ** 2
+        h = self.limit_quadratic * sy ** 2
+        lin = self.limit_linear * sy
+        n1 = 2 * ny + k
+        self._H1 = np.diag(np.concatenate([2 * h, 2 * c, np.zeros(k)]))
+        self._f1 = np.concatenate([lin, np.zeros(ny + k)])
+        Z, I = np.zeros((ny, ny)), np.eye(ny)
+        self._A1 = np.vstack([
+            np.hstack([Z, -I, self._Yphi]),            # band:  ys - e
+            np.hstack([I, Z, self._Yphi]),             # low limit:  ys + s
+            np.hstack([-I, Z, self._Yphi]),            # high limit: ys - s
+            np.hstack([np.zeros((nu, 2 * ny)), self._Uphi]),   # MVs
+        ]) if n1 else np.zeros((0, 0))
+        self._sense1 = np.zeros(2 * ny + 3 * ny + nu, dtype=np.intc)   # bounds + rows
+        self._x1_start = np.zeros(n1)
+        self._x1_last = self._x1_start
+        self._H1p = self._H1 + _PROX_RHO * np.eye(n1)
+        # -- stage 2: phi only; preferred values through their ratios (scaled), a tiny min-norm
+        rs = self.preferred_weight * su ** 2
+        top = float(rs.max()) if rs.size else 0.0
+        wrel = np.where(rs > 0, rs / top, _PREF_FLOOR) if top > 0 else np.full(nu, _PREF_FLOOR)
+        self._wrel = wrel
+        # the min-norm pull acts only where the MVs do not move (a free integrating state), so the
+        # preferred values decide exactly wherever the MVs decide
+        Un = N[nx:]
+        _, su_, vt_ = np.linalg.svd(Un) if k else (None, np.zeros(0), np.zeros((0, 0)))
+        ru = int(np.sum(su_ > 1e-12 * max(su_[0], 1e-300))) if su_.size else 0
+        Zf = vt_[ru:].T                               # theta directions that leave the MVs alone
+        self._H2 = 2 * (self._Uphi.T @ (wrel[:, None] * self._Uphi)
+                        + _MIN_NORM * (T.T @ Zf) @ (Zf.T @ T))
+        self._H2 = 0.5 * (self._H2 + self._H2.T)
+        self._Zf = Zf
+        self._A2 = np.vstack([self._Yphi, self._Uphi])
+        self._sense2 = np.zeros(ny + nu, dtype=np.intc)
         self.layout_ = {"d": nd, "w": nw, "band_lo": ny, "band_hi": ny, "lim_lo": ny, "lim_hi": ny,
                         "mv_lo": nu, "mv_hi": nu, "pref": nu}
-        self.qp_.set_inputs(
-            self.layout_,
-            {"dx": {"d": self.Bd / sx[:, None], "w": self.Bw / sx[:, None]},
-             "dy": {"d": self.Dd / sy[:, None], "w": self.Cw / sy[:, None]},
-             "band_lo": {"band_lo": eye_y}, "band_hi": {"band_hi": eye_y},
-             "lim_lo": {"lim_lo": eye_y}, "lim_hi": {"lim_hi": eye_y},
-             "mv_lo": {"mv_lo": eye_u}, "mv_hi": {"mv_hi": eye_u}, "pref": {"pref": eye_u}},
-            inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi", "mv_lo", "mv_hi"))
-        self.qp_.setup(self.solver_options)
-        self.qp_.keep_duals = True
-        Pu = np.triu(self.qp_.P_.toarray())          # OSQP reads the upper triangle
-        self._P = Pu + np.triu(Pu, 1).T
-        self._A = self.qp_.A_.toarray()
-        self._active: dict[bytes, Any] = {}
-        self._last_key = None
-        self.explicit_solves = 0
+        off, o = {}, 0
+        for key, size in self.layout_.items():
+            off[key] = slice(o, o + size)
+            o += size
+        self._zsl, self._nz = off, o
+        self._ref = None                              # cvxpy reference problems, made on first use
+        self.stage2_failures = 0
         self.is_built = True
         return self
 
     def restart(self) -> None:
-        """Forget the solver's warm start and the learned active sets (a rerun repeats a run)."""
+        """Forget any state kept between solves (a rerun repeats a run)."""
         if not self.is_built:
             raise NotBuiltError("SteadyTarget is not built; call .build() first.")
-        self.qp_.restart()
-        self._active.clear()
-        self._last_key = None
-        self.explicit_solves = 0
+        self.stage2_failures = 0
+        self._x1_last = self._x1_start
 
-    # -- re-using the active set: for a fixed set of active constraints the QP's solution is an
-    # affine function of its data (the KKT system), so while the same constraints stay active the
-    # target is one matrix-vector product; it is accepted only when it satisfies every KKT
-    # condition (primal bounds, signs of the multipliers), else OSQP solves and teaches the new set.
-    def _learn_active_set(self, q, l, u):
-        y = self.qp_.last_duals
-        if y is None:
-            return
-        eq = l == u
-        up = (y > 1e-9) & ~eq
-        lo = (y < -1e-9) & ~eq
-        key = np.concatenate([eq, up, lo]).tobytes()
-        if key not in self._active:
-            S = np.flatnonzero(eq | up | lo)
-            AS = self._A[S]
-            K = np.block([[self._P, AS.T], [AS, np.zeros((len(S), len(S)))]])
-            entry = None
-            if np.linalg.cond(K) < 1e10:
-                # sign each multiplier must have: + on an active upper bound, - on a lower one,
-                # free on an equality
-                sign = np.where(up[S], 1.0, np.where(lo[S], -1.0, 0.0))
-                entry = (np.linalg.inv(K), S, lo[S], eq, self._P.shape[0], sign)
-            if len(self._active) > 256:
-                self._active.clear()
-            self._active[key] = entry
-        self._last_key = key
+    # ------------------------------------------------------------------ the data of one sample
+    def _unpack(self, z):
+        z = np.asarray(z, float)
+        if z.shape != (self._nz,):
+            raise SettingsError(f"SteadyTarget.solve: the input vector must have {self._nz} "
+                                f"values (layout {self.layout_}); got shape {z.shape}.")
+        g = {key: z[sl] for key, sl in self._zsl.items()}
+        sy, su = self._sy, self._su
+        dx = self._dxd @ g["d"] + self._dxw @ g["w"]
+        dy = self._dyd @ g["d"] + self._dyw @ g["w"]
+        v0 = self._Epinv @ dx
+        resid = dx - self._Erange @ (self._Erange.T @ dx)
+        ok = float(np.max(np.abs(resid), initial=0.0)) <= 1e-9 * (1 + float(
+            np.max(np.abs(dx), initial=0.0)))
+        y0 = self._Cy @ v0 + dy
+        u0 = v0[self.nx:]
+        lo, hi = -np.inf, np.inf
+        data = {"band_lo": _fill_nan(g["band_lo"] / sy, lo), "band_hi": _fill_nan(g["band_hi"] / sy, hi),
+                "lim_lo": _fill_nan(g["lim_lo"] / sy, lo), "lim_hi": _fill_nan(g["lim_hi"] / sy, hi),
+                "mv_lo": _fill_nan(g["mv_lo"] / su, lo), "mv_hi": _fill_nan(g["mv_hi"] / su, hi),
+                "pref": g["pref"] / su}
+        return data, v0, y0, u0, ok
 
-    def _reuse_active_set(self, q, l, u):
-        if self._last_key is None:
-            return None
-        entry = self._active.get(self._last_key)
-        if entry is None:
-            return None
-        Kinv, S, loS, eq, n, sign = entry
-        if ((l == u) != eq).any():
-            return None
-        t0 = time.perf_counter()
-        sol = Kinv @ np.concatenate([-q, np.where(loS, l[S], u[S])])
-        x = sol[:n]
-        Ax = self._A @ x
-        # the scaled problem has O(1) values: absolute tolerances are meaningful
-        if (Ax - u > 1e-8).any() or (l - Ax > 1e-8).any() or (sign * sol[n:] < -1e-9).any():
-            return None
-        self.explicit_solves += 1
-        vals = {name: x[sl] for name, (sl, _shape) in self.qp_._vslices.items()}
-        return QPResult(status="optimal", accepted=True, values=vals, iterations=0,
-                        solve_ms=(time.perf_counter() - t0) * 1e3)
+    def _stage2_bounds(self, data, ys1):
+        """Stage 2's CV bounds: each CV at least as close to its band/limits as stage 1 left it."""
+        blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
+        e1 = ys1 - np.clip(ys1, blo, np.maximum(blo, bhi))
+        s1 = np.maximum(np.maximum(llo - ys1, ys1 - lhi), 0.0)
+        lo = np.fmax(blo + np.minimum(e1, 0.0), llo - s1)
+        hi = np.fmin(bhi + np.maximum(e1, 0.0), lhi + s1)
+        with np.errstate(over="ignore", invalid="ignore"):
+            lo = lo - _CV_TOL * (1 + np.abs(lo))
+            hi = hi + _CV_TOL * (1 + np.abs(hi))
+        return lo, hi
 
+    def _values(self, v, dy_s):
+        """Engineering-unit values from the scaled steady state v = [x; u]."""
+        nx = self.nx
+        ys = self._Cy @ v + dy_s
+        return {"xs": v[:nx] * self._sx, "us": v[nx:] * self._su, "ys": ys * self._sy}
+
+    # ------------------------------------------------------------------ solve
     def solve(self, z: np.ndarray, fast: bool = True, solver: str = "OSQP", options=None):
         """Solve for the input vector *z* (blocks in ``layout_`` order, deviation variables).
 
-        Returns a :class:`~mpcproto.control._qp.QPResult` with ``xs``, ``us``, ``ys`` and ``s``
-        in engineering deviation units (``e`` stays scaled).
+        ``fast=True`` solves both stages with DAQP; ``fast=False`` solves the same two stages
+        with cvxpy and *solver* (a reference and a second opinion).  Returns a
+        :class:`~mpcproto.control._qp.QPResult` with ``xs``, ``us``, ``ys`` and ``s`` in
+        engineering deviation units and ``e`` (scaled).
         """
         if not self.is_built:
             raise NotBuiltError("SteadyTarget is not built; call .build() first.")
+        t0 = time.perf_counter()
+        data, v0, y0, u0, in_range = self._unpack(z)
+        if not in_range:
+            return QPResult(status="infeasible", accepted=False,
+                            solve_ms=(time.perf_counter() - t0) * 1e3)
         if fast:
-            q, l, u = self.qp_.data_inputs(z)
-            res = self._reuse_active_set(q, l, u)
-            if res is None:
-                res = self.qp_.solve_data(q, l, u)
-                if res.accepted:
-                    self._learn_active_set(q, l, u)
+            res = self._solve_daqp(data, v0, y0, u0)
         else:
-            res = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=solver,
-                                       options=options)
-        v = res.values
-        if v:       # back to engineering units
-            v["xs"] = v["xs"] * self._sx
-            v["us"] = v["us"] * self._su
-            v["ys"] = v["ys"] * self._sy
-            v["s"] = v["s"] * self._sy
+            res = self._solve_cvxpy(data, v0, y0, u0, solver, options)
+        res.solve_ms = (time.perf_counter() - t0) * 1e3
+        if res.accepted:
+            ys_s = res.values["ys"] / self._sy
+            blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
+            res.values["e"] = ys_s - np.clip(ys_s, blo, np.maximum(blo, bhi))
+            res.values["s"] = np.maximum(np.maximum(llo - ys_s, ys_s - lhi), 0.0) * self._sy
         return res
+
+    def _solve_daqp(self, data, v0, y0, u0):
+        import daqp
+
+        ny, nu, k = self.ny, self.nu, self._k
+        b1lo = np.concatenate([
+            np.zeros(ny), np.full(ny, -_INF),                                  # s >= 0, e free
+            _finite(data["band_lo"] - y0),
+            _finite(data["lim_lo"] - y0), np.full(ny, -_INF), _finite(data["mv_lo"] - u0)])
+        b1hi = np.concatenate([
+            np.full(2 * ny, _INF),
+            _finite(data["band_hi"] - y0), np.full(ny, _INF),
+            _finite(data["lim_hi"] - y0), _finite(data["mv_hi"] - u0)])
+        x1, flag1, iters = self._stage1_prox(daqp, b1lo, b1hi)
+        if flag1 != 1:
+            return QPResult(status=_daqp_status(flag1), accepted=False)
+        phi1 = np.array(x1[2 * ny:])     # copy: DAQP's result may point into its workspace
+        ys1 = y0 + self._Yphi @ phi1
+        lo, hi = self._stage2_bounds(data, ys1)
+        b2lo = np.concatenate([_finite(lo - y0), _finite(data["mv_lo"] - u0)])
+        b2hi = np.concatenate([_finite(hi - y0), _finite(data["mv_hi"] - u0)])
+        f2 = -2 * self._Uphi.T @ (self._wrel * (data["pref"] - u0)) if k else np.zeros(0)
+        phi = phi1
+        if k:
+            x2, _f2, flag2, info2 = daqp.solve(self._H2, f2, self._A2, b2hi, b2lo,
+                                               self._sense2.copy(), **_DAQP_SETTINGS)
+            iters += int(info2["iterations"])
+            if flag2 == 1:
+                phi = np.array(x2)
+            else:                 # rounding made stage 2 infeasible: stage 1's answer stands
+                self.stage2_failures += 1
+        v = v0 + self._Vphi @ phi
+        vals = self._values(v, y0 - self._Cy @ v0)
+        return QPResult(status="optimal", accepted=True, values=vals, iterations=iters)
+
+    def _stage1_prox(self, daqp, b1lo, b1hi):
+        """Stage 1 by proximal iterations: each a strictly convex QP (the objective plus
+        ``rho/2 |x - x_k|^2``) solved exactly by DAQP, until the iterate stops moving.
+
+        Stage 1 is only semidefinite (the CVs need not pin every MV); in a direction where the
+        objective is flat the iterate stays where it is, elsewhere the error shrinks by
+        ``rho / (rho + curvature)`` per iteration (Rockafellar 1976, proximal point algorithm;
+        from memory).  Done here rather than with DAQP's ``eps_prox`` option so that the stopping
+        rule is ours (a step below 1e-10 relative: with rho = 1e-6 the error left is about 1e-6 of
+        that last step).
+        """
+        x = self._x1_last.copy()
+        H = self._H1p
+        iters = 0
+        for _ in range(_PROX_MAX):
+            xp, _f, flag, info = daqp.solve(H, self._f1 - _PROX_RHO * x, self._A1, b1hi, b1lo,
+                                            self._sense1.copy(), **_DAQP_SETTINGS)
+            iters += int(info["iterations"])
+            if flag != 1:
+                return x, flag, iters
+            xp = np.array(xp)       # copy: DAQP's result may point into its workspace
+            step = np.abs(xp - x).max()
+            x = xp
+            if step <= 1e-10 * (1.0 + np.abs(x).max()):
+                break
+        self._x1_last = x
+        return x, 1, iters
+
+    # ------------------------------------------------------------------ the cvxpy reference
+    def _reference(self):
+        """Both stages written in cvxpy on the full (not reduced) variables, made once."""
+        import cvxpy as cp
+
+        IA, Bs, Cs, Ds = self._scaled
+        nx, nu, ny = self.nx, self.nu, self.ny
+        sy = self._sy
+        xs, us, ys = cp.Variable(nx), cp.Variable(nu), cp.Variable(ny)
+        e, s = cp.Variable(ny), cp.Variable(ny)
+        p = {key: cp.Parameter(n) for key, n in (("dx", nx), ("dy", ny), ("band_lo", ny),
+                                                 ("band_hi", ny), ("lim_lo", ny), ("lim_hi", ny),
+                                                 ("mv_lo", nu), ("mv_hi", nu), ("pref", nu),
+                                                 ("y_lo", ny), ("y_hi", ny))}
+        model = [IA @ xs - Bs @ us == p["dx"], ys == Cs @ xs + Ds @ us + p["dy"],
+                 us >= p["mv_lo"], us <= p["mv_hi"]]
+        obj1 = (cp.sum(cp.multiply(self.band_weight * sy ** 2, cp.square(e)))
+                + (self.limit_linear * sy) @ s
+                + cp.sum(cp.multiply(self.limit_quadratic * sy ** 2, cp.square(s))))
+        stage1 = cp.Problem(cp.Minimize(obj1), model + [
+            p["band_lo"] <= ys - e, ys - e <= p["band_hi"],
+            ys + s >= p["lim_lo"], ys - s <= p["lim_hi"], s >= 0])
+        # (the states' pull as the reduced form's, through the projection onto the free states)
+        Zx = self._N[:nx] @ self._Zf
+        obj2 = (cp.sum(cp.multiply(self._wrel, cp.square(us - p["pref"])))
+                + _MIN_NORM * cp.sum_squares(Zx.T @ xs))
+        stage2 = cp.Problem(cp.Minimize(obj2), model + [ys >= p["y_lo"], ys <= p["y_hi"]])
+        self._ref = (stage1, stage2, p, xs, us, ys)
+        return self._ref
+
+    def _solve_cvxpy(self, data, v0, y0, u0, solver, options):
+        import cvxpy as cp
+
+        stage1, stage2, p, xs, us, ys = self._ref or self._reference()
+        big = 1e20            # cvxpy parameters must be finite
+        p["dx"].value = np.hstack([self._scaled[0], -self._scaled[1]]) @ v0
+        p["dy"].value = y0 - self._Cy @ v0
+        for key in ("band_lo", "lim_lo", "mv_lo"):
+            p[key].value = np.clip(data[key], -big, big)
+        for key in ("band_hi", "lim_hi", "mv_hi"):
+            p[key].value = np.clip(data[key], -big, big)
+        p["pref"].value = data["pref"]
+        opts = dict(options or {})
+        iters = 0
+        for stage in (stage1, stage2):
+            try:
+                stage.solve(solver=solver, **opts)
+                status = str(stage.status)
+            except cp.error.SolverError as exc:
+                status = f"solver_error: {exc}"
+            if status != cp.OPTIMAL:
+                return QPResult(status=status, accepted=False)
+            st = stage.solver_stats
+            iters += int(getattr(st, "num_iters", 0) or 0) if st is not None else 0
+            if stage is stage1:
+                lo, hi = self._stage2_bounds(data, np.asarray(ys.value, float))
+                # an interior-point solve is good to its tolerance only: widen by that much
+                slack = 1e-8 * (1 + np.abs(np.asarray(ys.value, float)))
+                p["y_lo"].value = np.clip(lo - slack, -big, big)
+                p["y_hi"].value = np.clip(hi + slack, -big, big)
+        v = np.concatenate([np.asarray(xs.value, float), np.asarray(us.value, float)])
+        vals = self._values(v, y0 - self._Cy @ v0)
+        return QPResult(status="optimal", accepted=True, values=vals, iterations=iters)
+
+
+def _daqp_status(flag: int) -> str:
+    """DAQP's exit flag -> our solver status word."""
+    return {1: "optimal", 2: "optimal", -1: "infeasible", -2: "cycling", -3: "unbounded",
+            -4: "max_iterations", -5: "not_convex", -6: "overdetermined"}.get(int(flag),
+                                                                          f"daqp_exit_{flag}")

@@ -23,20 +23,34 @@ tuning", J. Process Control 13:291-309.  With closed-loop time constant :math:`\
   :math:`\tau_I = 4(\tau_c + \theta)`.
 
 :func:`imc` -- Rivera, Morari & Skogestad (1986), "Internal model control. 4. PID controller
-design", Ind. Eng. Chem. Process Des. Dev. 25:252-265 (table values from memory), FOPDT with a
-first-order Pade approximation of the dead time and filter time constant :math:`\lambda`:
+design", Ind. Eng. Chem. Process Des. Dev. 25:252-265, Table 1 (from memory), FOPDT
+:math:`k e^{-\theta s}/(\tau s + 1)` with filter time constant :math:`\lambda`:
 
-* PID: :math:`K k = \frac{2\tau + \theta}{2(\lambda + \theta)}`, :math:`T_i = \tau + \theta/2`,
-  :math:`T_d = \frac{\tau\theta}{2\tau + \theta}` (advised :math:`\lambda > 0.8\theta`; default
-  :math:`\lambda = \max(\theta, 0.1\tau)`);
-* PI: :math:`K k = \frac{2\tau + \theta}{2\lambda}`, :math:`T_i = \tau + \theta/2`
-  (advised :math:`\lambda > 1.7\theta`; default :math:`\lambda = \max(1.7\theta, 0.1\tau)`).
+* PID, with a first-order Pade approximation of the dead time
+  :math:`e^{-\theta s} \approx (1 - \theta s/2)/(1 + \theta s/2)`:
+  :math:`K k = \frac{2\tau + \theta}{2\lambda + \theta}`, :math:`T_i = \tau + \theta/2`,
+  :math:`T_d = \frac{\tau\theta}{2\tau + \theta}`, already in the ideal form (derived: the IMC
+  controller :math:`q = (\tau s + 1)(1 + \theta s/2)/(k(\lambda s + 1))` gives the feedback
+  controller :math:`q/(1 - G q) = \frac{(\tau s + 1)(1 + \theta s/2)}{k(\lambda + \theta/2)s}`,
+  whose loop is :math:`L(s) = \frac{1 - \theta s/2}{(\lambda + \theta/2) s}`; the same entry as the
+  FOPDT PID row of Seborg, Edgar & Mellichamp's IMC table, from memory).  Advised
+  :math:`\lambda > 0.8\theta`; default :math:`\lambda = \max(\theta, 0.1\tau)`.
+* PI ("improved PI"): :math:`K k = \frac{2\tau + \theta}{2\lambda}`, :math:`T_i = \tau + \theta/2`
+  (advised :math:`\lambda > 1.7\theta`; default :math:`\lambda = \max(1.7\theta, 0.1\tau)`;
+  from memory).
 
 :func:`ziegler_nichols` -- Ziegler & Nichols (1942), "Optimum settings for automatic
-controllers", Trans. ASME 64:759-768, ultimate-sensitivity method with ultimate gain
-:math:`K_u` and period :math:`P_u` (from :func:`ultimate_point` of the fitted model):
-P: :math:`K = 0.5K_u`; PI: :math:`K = 0.45K_u, T_i = P_u/1.2`; PID: :math:`K = 0.6K_u,
-T_i = P_u/2, T_d = P_u/8`.
+controllers", Trans. ASME 64:759-768 (tables from memory; applied in the ideal form, as Astrom &
+Hagglund present them):
+
+* ultimate-sensitivity method (``method="ultimate"``, the default) with ultimate gain :math:`K_u`
+  and period :math:`P_u` (measured, or from :func:`ultimate_point` of the fitted model):
+  P: :math:`K = 0.5K_u`; PI: :math:`K = 0.45K_u, T_i = P_u/1.2`; PID: :math:`K = 0.6K_u,
+  T_i = P_u/2, T_d = P_u/8`;
+* step-response (reaction-curve) method (``method="reaction_curve"``) with the apparent dead time
+  :math:`L = \theta` and the steepest slope per unit step :math:`R = k/\tau` of a FOPDT fit
+  (:math:`a = RL = k\theta/\tau`): P: :math:`K = 1/a`; PI: :math:`K = 0.9/a, T_i = 3L`;
+  PID: :math:`K = 1.2/a, T_i = 2L, T_d = L/2`.
 
 Each rule refuses a model it was not derived for (an integrating process for IMC, an inverse
 response, a model without a phase crossover for Ziegler-Nichols) with a :class:`SettingsError`.
@@ -62,6 +76,7 @@ __all__ = ["ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit
            "tune_pid_loops", "pid_from_settings"]
 
 RULES = ("simc", "imc", "ziegler_nichols")
+ZN_METHODS = ("ultimate", "reaction_curve")
 
 
 @dataclass(frozen=True)
@@ -371,8 +386,8 @@ def imc(fit: ProcessFit, *, lam: float | None = None, mode: str = "PID", cv: str
     if not (isinstance(lam, (int, float)) and math.isfinite(lam) and lam > 0):
         raise SettingsError(f"imc: lam (the IMC filter time constant) must be > 0; found {lam!r}.")
     Ti = tau + th / 2.0
-    if mode == "PID":
-        return _loop(fit, (2 * tau + th) / (2 * k * (lam + th)), Ti, tau * th / (2 * tau + th),
+    if mode == "PID":     # Rivera, Morari & Skogestad (1986), Table 1, PID row (Pade)
+        return _loop(fit, (2 * tau + th) / (k * (2 * lam + th)), Ti, tau * th / (2 * tau + th),
                      "imc", cv, mv, **loop_kw)
     return _loop(fit, (2 * tau + th) / (2 * k * lam), Ti, 0.0, "imc", cv, mv, **loop_kw)
 
@@ -432,16 +447,23 @@ def ultimate_point(fit_or_num: Any, den: Sequence[float] | None = None, dead_tim
 
 
 def ziegler_nichols(fit: ProcessFit | None = None, *, ultimate: tuple[float, float] | None = None,
-                    mode: str = "PID", cv: str | None = None, mv: str | None = None,
-                    **loop_kw: Any) -> PIDLoop:
-    """Ziegler-Nichols (1942) ultimate-sensitivity settings (formulas in the module docstring).
+                    mode: str = "PID", method: str = "ultimate", cv: str | None = None,
+                    mv: str | None = None, **loop_kw: Any) -> PIDLoop:
+    """Ziegler-Nichols (1942) settings (formulas in the module docstring).
 
-    Give a :class:`ProcessFit` (its ultimate point is computed) or ``ultimate=(Ku, Pu)`` measured
-    on the plant.
+    ``method="ultimate"``: give a :class:`ProcessFit` (its ultimate point is computed) or
+    ``ultimate=(Ku, Pu)`` measured on the plant.  ``method="reaction_curve"``: give a FOPDT
+    :class:`ProcessFit` (its dead time is the apparent dead time L, gain / time constant the
+    steepest slope R).
     """
     table = {"P": (0.5, None, 0.0), "PI": (0.45, 1 / 1.2, 0.0), "PID": (0.6, 0.5, 0.125)}
     if mode not in table:
         raise SettingsError(f"ziegler_nichols: mode must be one of P, PI, PID; found {mode!r}.")
+    if method not in ZN_METHODS:
+        raise SettingsError(f"ziegler_nichols: method must be one of {', '.join(ZN_METHODS)}; "
+                            f"found {method!r}.")
+    if method == "reaction_curve":
+        return _zn_reaction_curve(fit, ultimate, mode, cv, mv, **loop_kw)
     if (fit is None) == (ultimate is None):
         raise SettingsError("ziegler_nichols: give either a fitted model or ultimate=(Ku, Pu).")
     sign = 1.0
@@ -460,6 +482,25 @@ def ziegler_nichols(fit: ProcessFit | None = None, *, ultimate: tuple[float, flo
                  cv, mv, **loop_kw)
 
 
+def _zn_reaction_curve(fit, ultimate, mode, cv, mv, **loop_kw) -> PIDLoop:
+    """Ziegler & Nichols (1942) step-response rule on a FOPDT fit (module docstring)."""
+    if fit is None or ultimate is not None or fit.kind != "fopdt":
+        raise SettingsError("ziegler_nichols: method 'reaction_curve' needs a FOPDT fit (the "
+                            "apparent dead time and steepest slope of a step response); "
+                            + ("ultimate=(Ku, Pu) belongs to method 'ultimate'." if ultimate
+                               is not None else f"found {'no fit' if fit is None else fit.kind}."))
+    _refuse_inverse(fit, "ziegler_nichols")
+    L = fit.dead_time
+    if L <= 0:
+        raise SettingsError("ziegler_nichols: the reaction-curve rule needs an apparent dead time "
+                            "> 0 (its gains are 1/(R L)); the fit has none. Use simc or imc.")
+    a = abs(fit.gain) * L / fit.time_constants[0]          # R L, R = k / tau
+    sign = math.copysign(1.0, fit.gain)
+    K, Ti, Td = {"P": (1.0 / a, math.inf, 0.0), "PI": (0.9 / a, 3.0 * L, 0.0),
+                 "PID": (1.2 / a, 2.0 * L, 0.5 * L)}[mode]
+    return _loop(fit, sign * K, Ti, Td, "ziegler_nichols", cv, mv, **loop_kw)
+
+
 def tune_loop(fit: ProcessFit, rule: str, **kw: Any) -> PIDLoop:
     """Apply the rule called *rule* (``"simc"``, ``"imc"`` or ``"ziegler_nichols"``) to *fit*."""
     fns = {"simc": simc, "imc": imc, "ziegler_nichols": ziegler_nichols}
@@ -470,12 +511,12 @@ def tune_loop(fit: ProcessFit, rule: str, **kw: Any) -> PIDLoop:
 
 
 # ---------------------------------------------------------------------------------- settings
-_SETTINGS_KEYS = ("loops", "pairs", "rule", "tau_c", "lam", "mode", "step_fraction",
+_SETTINGS_KEYS = ("loops", "pairs", "rule", "tau_c", "lam", "mode", "method", "step_fraction",
                   "test_duration", "fit", "extra_dead_time", "setpoint_weight",
                   "derivative_filter", "on_fresh")
 
 
-_RULE_KEYS = {"simc": ("tau_c",), "imc": ("lam", "mode"), "ziegler_nichols": ("mode",)}
+_RULE_KEYS = {"simc": ("tau_c",), "imc": ("lam", "mode"), "ziegler_nichols": ("mode", "method")}
 _MODES = ("P", "PI", "PID")
 FIT_CHOICES = ("auto", "fopdt", "sopdt", "integrating")
 
@@ -518,7 +559,7 @@ def _check_settings(model: Any, settings: Mapping[str, Any], what: str) -> None:
     """Types and ranges of every key of :func:`pid_from_settings` (before any step test)."""
 
     rule = choice(settings.get("rule", "simc"), RULES, what=what, key="rule", noun="rule")
-    for key in ("tau_c", "lam", "mode"):
+    for key in ("tau_c", "lam", "mode", "method"):
         if key in settings and key not in _RULE_KEYS[rule]:
             users = [r for r, ks in _RULE_KEYS.items() if key in ks]
             raise SettingsError(f"{what}.{key}: applies to rule {' / '.join(users)}, but the rule "
@@ -532,6 +573,10 @@ def _check_settings(model: Any, settings: Mapping[str, Any], what: str) -> None:
         _check_per_cv(settings, "mode", model, what,
                       lambda v, w: choice(v, _MODES, what=w.rsplit(".", 1)[0], key=w.rsplit(".", 1)[1],
                                           noun="mode"))
+    if "method" in settings:
+        _check_per_cv(settings, "method", model, what,
+                      lambda v, w: choice(v, ZN_METHODS, what=w.rsplit(".", 1)[0],
+                                          key=w.rsplit(".", 1)[1], noun="method"))
     choice(settings.get("fit", "auto"), FIT_CHOICES, what=what, key="fit", noun="fit")
     if "step_fraction" in settings:
         _check_number(settings["step_fraction"], f"{what}.step_fraction", low=0.0, strict=True,
