@@ -36,7 +36,7 @@ from typing import Any
 
 import numpy as np
 
-from ..exceptions import MpcprotoError, ScenarioError
+from ..exceptions import ScenarioError
 from .schema import Scenario, _split, get_path, load_scenario, parse_scenario, set_path
 
 __all__ = ["Case", "expand", "iter_cases", "count_cases", "case_scenario", "check_case",
