@@ -57,7 +57,7 @@ from ..exceptions import ModelError
 from ..model import Model, suggest
 
 __all__ = ["ENTRY_POINT_GROUP", "Reference", "parse_reference", "resolve_model", "registered",
-           "model_options", "clear_cache"]
+           "model_options", "describe_reference", "clear_cache"]
 
 #: Entry-point group under which installed packages register models.
 ENTRY_POINT_GROUP = "mpcproto.models"
@@ -311,14 +311,14 @@ def _attr(mod: ModuleType, r: Reference, where: str, what: str) -> Any:
                    f"(its functions: {', '.join(found) or 'none'}).")
     if not callable(fn):
         raise _err(what, f"expected {where} to be a function returning a Model; found "
-                   f"{type(fn).__name__} {shown(fn)}.")
+                   f"a {type(fn).__name__} ({_short_repr(fn)}).")
     return fn
 
 
 def _call(fn: Any, where: str, options: dict, parameters: dict, what: str) -> Model:
     if not callable(fn):
         raise _err(what, f"expected {where} to be a function returning a Model; found "
-                   f"{type(fn).__name__} {shown(fn)}.")
+                   f"a {type(fn).__name__} ({_short_repr(fn)}).")
     try:
         sig = inspect.signature(fn)
         sig.bind(**options)
@@ -336,13 +336,20 @@ def _call(fn: Any, where: str, options: dict, parameters: dict, what: str) -> Mo
                    f"line:\n{_last_line(e)}", _tb(e)) from None
     if not isinstance(model, Model):
         raise _err(what, f"expected {where} to return an mpcproto Model; found it returned "
-                   f"{type(model).__name__} {shown(model)}.")
+                   f"a {type(model).__name__} ({_short_repr(model)}).")
     try:
         if not model.is_built:
             model.build()
-        return model.with_parameters(parameters) if parameters else model
     except ModelError as e:
         raise _err(what, f"the model {where} returned is not usable: {e}") from None
+    try:
+        return model.with_parameters(parameters) if parameters else model
+    except ModelError as e:
+        err = _err(what, f"expected parameters the model of {where} declares: {e}")
+        bad = next((k for k in parameters if f"'{k}'" in str(e)), None)
+        if bad is not None and what.endswith(".model"):
+            err.key = f"{what[:-len('.model')]}.parameters.{bad}"
+        raise err from None
 
 
 def _option_params(fn: Any) -> list[inspect.Parameter]:
@@ -393,6 +400,11 @@ def _dist_name(ep: Any) -> str:
     return f"the package {dist.name} {dist.version}" if dist is not None else "an installed package"
 
 
+def _short_repr(v: Any) -> str:
+    r = repr(v)
+    return r if len(r) <= 60 else r[:57] + "..."
+
+
 def _last_line(e: BaseException) -> str:
     return "".join(traceback.format_exception_only(type(e), e)).strip().splitlines()[-1]
 
@@ -404,3 +416,42 @@ def _tb(e: BaseException) -> str:
 def _short_path() -> str:
     shown_path = [p for p in sys.path if p][:4]
     return "sys.path starts " + ", ".join(shown_path) + (", ..." if len(sys.path) > 4 else "")
+
+
+def describe_reference(ref: Any, *, options: Mapping[str, Any] | None = None,
+                       parameters: Mapping[str, Any] | None = None,
+                       base_dir: str | Path | None = None, what: str = "model") -> dict[str, Any]:
+    """Plain-data description of a referenced model, with what each other option value changes.
+
+    Returns
+    -------
+    dict
+        :meth:`Model.describe` of the model built with *options* (``name``, ``description``,
+        ``time_unit``, ``variables``, ``delays``) plus ``reference`` (the label), ``options``
+        (see :func:`model_options`) and ``option_variants``: for every other allowed value of
+        every option, ``{"option", "value", "added": [variable dicts], "removed": [names]}``
+        (the variables that value adds or removes).
+    """
+    r = parse_reference(ref, base_dir=base_dir, what=what)
+    options = dict(options or {})
+    model = resolve_model(r, options=options, parameters=parameters, what=what)
+    out = model.describe()
+    out["reference"] = r.label
+    opts = model_options(r, what=what)
+    out["options"] = opts
+    base = {(v["name"], v["role"]) for v in out["variables"]}
+    variants = []
+    for k, spec in opts.items():
+        current = options.get(k, spec["default"])
+        for value in spec["allowed"]:
+            if value == current:
+                continue
+            other = resolve_model(r, options={**options, k: value}, what=what).describe()
+            names = {(v["name"], v["role"]) for v in other["variables"]}
+            variants.append({
+                "option": k, "value": value,
+                "added": [v for v in other["variables"] if (v["name"], v["role"]) not in base],
+                "removed": [f"{role} {n}" for n, role in sorted(base - names)],
+            })
+    out["option_variants"] = variants
+    return out

@@ -58,8 +58,10 @@ def scenario_folder(scn: Scenario) -> Path:
 
 def _wrap(scn: Scenario, key: str, err: Exception) -> ScenarioError:
     text = str(err)
-    if text.startswith(key + ": "):
-        text = text[len(key) + 2:]
+    for prefix in (key + ": ", "plant.model: ", "controller_model.model: "):
+        if text.startswith(prefix):  # the resolver's messages start with the key they concern
+            text = text[len(prefix):]
+            break
     out = ScenarioError(text, file=scn.file, key=getattr(err, "key", None) or key)
     out.detail = getattr(err, "detail", "")
     return out

@@ -436,6 +436,8 @@ def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
     except MpcprotoError as e:
         rec.update({"status": "error", "message": str(e), "error_type": type(e).__name__,
                     "controllers": {}, "comparisons": [], "passed": False})
+        if getattr(e, "detail", ""):  # the traceback of a user's model function (--debug)
+            rec["error_detail"] = e.detail
 
 
 def run_case(case: Case | Scenario) -> dict[str, Any]:
