@@ -104,7 +104,7 @@ def test_a_fractional_dead_time_stays_exact_in_the_plant():
 def test_a_matrix_of_pure_gain_and_dead_time_elements():
     m = one_element("{ gain = 0.5, dead_time = 3.0 }")
     t, y = plant_step(m, 2.0, 1.0, 8)
-    np.testing.assert_allclose(y, np.where(t > 3.0 + 1e-9, 1.0, 0.0), atol=1e-9)
+    np.testing.assert_allclose(y, np.where(t >= 3.0 - 1e-9, 1.0, 0.0), atol=1e-9)
 
 
 def test_a_dv_element_and_a_file_reference(tmp_path):
