@@ -105,7 +105,6 @@ def _scenario_models_data(path: str) -> list[dict[str, Any]]:
                                    what=f"{section}.model")
         except MpcprotoError as e:
             raise _wrap(scn, getattr(e, "key", None) or f"{section}.model", e) from None
-        d["name"] = d.pop("name")
         d["section"] = section
         d["options"] = {k: dict(o, default=sec["options"].get(k, o["default"]))
                         for k, o in d["options"].items()}
