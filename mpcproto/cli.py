@@ -415,6 +415,24 @@ def _cmd_new(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _add_new_parser(sub: Any) -> None:
+    n = sub.add_parser("new", help="write a commented starter scenario for a model",
+                       description="Write a commented starter scenario for MODEL: every MV, DV and "
+                                   "CV with units and ranges, a setpoint step, a disturbance "
+                                   "step, an MPC and SIMC PID loops with settings scaled from the "
+                                   "variables' ranges, and two criteria. MODEL is a built-in or "
+                                   "registered name, package.module:function, file.py:function or "
+                                   "a transfer-matrix file.toml (files relative to the current "
+                                   "directory; the scenario refers to them relative to its own "
+                                   "folder). Exit 0, or 2 on bad input.")
+    n.add_argument("model", metavar="MODEL", help="the model reference")
+    n.add_argument("--out", required=True, metavar="STUDY.toml", help="the scenario file to write")
+    n.add_argument("--option", action="append", metavar="NAME=VALUE",
+                   help="a model option (repeatable), e.g. --option outflow=valve")
+    n.add_argument("--force", action="store_true", help="overwrite an existing file")
+    n.set_defaults(handler=_cmd_new)
+
+
 # ----------------------------------------------------------------------------------------- parser
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``mpcproto`` command (one sub-command per step of a study)."""
@@ -426,6 +444,9 @@ def build_parser() -> argparse.ArgumentParser:
     from . import __version__
 
     p.add_argument("--version", action="version", version=f"mpcproto {__version__}")
+    p.add_argument("--debug", action="store_true",
+                   help="on an error raised by a user's model function, also print its traceback "
+                        "(accepted anywhere on the command line)")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
@@ -505,24 +526,6 @@ def build_parser() -> argparse.ArgumentParser:
         b = sub.add_parser("batch", help="run every case of one or more studies (not available)")
         b.set_defaults(handler=lambda a, why=_batch_error: _unavailable("batch", why))
     return p
-
-
-def _add_new_parser(sub: Any) -> None:
-    n = sub.add_parser("new", help="write a commented starter scenario for a model",
-                       description="Write a commented starter scenario for MODEL: every MV, DV and "
-                                   "CV with units and ranges, a setpoint step, a disturbance "
-                                   "step, an MPC and SIMC PID loops with settings scaled from the "
-                                   "variables' ranges, and two criteria. MODEL is a built-in or "
-                                   "registered name, package.module:function, file.py:function or "
-                                   "a transfer-matrix file.toml (files relative to the current "
-                                   "directory; the scenario refers to them relative to its own "
-                                   "folder). Exit 0, or 2 on bad input.")
-    n.add_argument("model", metavar="MODEL", help="the model reference")
-    n.add_argument("--out", required=True, metavar="STUDY.toml", help="the scenario file to write")
-    n.add_argument("--option", action="append", metavar="NAME=VALUE",
-                   help="a model option (repeatable), e.g. --option outflow=valve")
-    n.add_argument("--force", action="store_true", help="overwrite an existing file")
-    n.set_defaults(handler=_cmd_new)
 
 
 def _unavailable(cmd: str, why: str) -> int:
