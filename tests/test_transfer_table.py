@@ -147,7 +147,20 @@ inflow = { gain = -0.5, time_constants = [2.0] }
     ("valve = { time_constants = [1.0] }", "controller_model.elements.y.valve.gain", "the key 'gain'"),
 ])
 def test_a_bad_element_in_a_scenario_names_its_key(edit, key, fragment, tmp_path, capsys):
-    base = '''
+    p = tmp_path / "s.toml"
+    p.write_text(TM_SCENARIO.replace("EDIT", edit))
+    rc = main(["check", str(p)])
+    err = capsys.readouterr().err
+    if fragment is None:       # the valid file: a TOML plant and a TOML controller's model
+        assert rc == 0, err
+        assert main(["run", str(p), "--out", str(tmp_path / "o"), "--no-plots"]) == 0
+        return
+    assert rc == 2
+    assert f"key '{key}'" in err and fragment in err, err
+    assert "Traceback" not in err
+
+
+TM_SCENARIO = '''
 [scenario]
 sample_time = 1.0
 duration = 30.0
@@ -169,19 +182,14 @@ valve = { unit = "%", nominal = 50.0, low = 0.0, high = 100.0 }
 y = { unit = "degC", nominal = 80.0, low = 0.0, high = 200.0 }
 [controller_model.elements.y]
 EDIT
+[setpoints]
+y = { kind = "step", at = 2.0, size = 1.0 }
 [controllers.mpc]
 horizon = 20
+[[criteria]]
+check = "no_solver_failure"
+controller = "mpc"
 '''
-    p = tmp_path / "s.toml"
-    p.write_text(base.replace("EDIT", edit))
-    rc = main(["check", str(p)])
-    err = capsys.readouterr().err
-    if fragment is None:       # the valid file: a TOML plant and a TOML controller's model
-        assert rc == 0, err
-        return
-    assert rc == 2
-    assert f"key '{key}'" in err and fragment in err, err
-    assert "Traceback" not in err
 
 
 def test_missing_and_unknown_variables_are_named(tmp_path):
