@@ -2,8 +2,11 @@
 
 Commands
 --------
-``mpcproto models [--json]``
-    List the built-in models with their variables, roles and units.
+``mpcproto models [--json] [--scenario SCENARIO.toml]``
+    List the built-in and registered models with their variables, roles and units, and what every
+    option value adds or removes; with ``--scenario``, the model(s) that scenario names.
+``mpcproto new MODEL --out STUDY.toml [--option NAME=VALUE]``
+    Write a commented starter scenario for any model reference.
 ``mpcproto linearize SCENARIO.toml [--json] [--model plant|controller]``
     Operating point, continuous and discrete matrices, steady-state gains, poles, transmission
     zeros, RGA (square systems) and a per-pair view.
@@ -21,7 +24,8 @@ Commands
     Run every case of one or more studies (see ``mpcproto batch --help``).
 
 Exit codes: 0 success (every pass/fail criterion holds), 1 a criterion failed, 2 bad input (a
-one-paragraph message naming the file, key, expected and found; no traceback), 3 an unexpected
+one-paragraph message naming the file, key, expected and found; no traceback -- ``--debug`` adds
+the traceback of an exception a user's model function raised), 3 an unexpected
 internal error (with its traceback, so it can be reported).
 
 Every command is a thin wrapper over a documented function: :func:`mpcproto.models.available`,
@@ -50,30 +54,86 @@ EXIT_INTERNAL = 3
 # ----------------------------------------------------------------------------------------- models
 def _models_data() -> list[dict[str, Any]]:
     from . import models
+    from .models.resolve import describe_reference
 
     out = []
     for entry in models.available():
-        m = models.make(entry["name"])
         d = dict(entry)
-        desc = m.describe()
+        desc = describe_reference(entry["name"])
         d["variables"] = desc["variables"]
         d["delays"] = desc["delays"]
+        d["option_variants"] = desc["option_variants"]
+        out.append(d)
+    return out + _registered_models_data()
+
+
+def _registered_models_data() -> list[dict[str, Any]]:
+    """Models registered by installed packages (entry-point group ``mpcproto.models``); one that
+    cannot be built is listed with its error instead of stopping the listing."""
+    from .models import resolve
+
+    out = []
+    for name, ep in sorted(resolve.registered().items()):
+        try:
+            desc = resolve.describe_reference(resolve.Reference("registered", name, text=name))
+        except MpcprotoError as e:
+            out.append({"name": name, "registered_by": ep.value, "error": str(e), "options": {},
+                        "variables": [], "delays": [], "option_variants": [],
+                        "description": "", "time_unit": ""})
+            continue
+        out.append({"name": name, "registered_by": ep.value, "description": desc["description"],
+                    "time_unit": desc["time_unit"], "options": desc["options"],
+                    "parameters": {v["name"]: v["nominal"] for v in desc["variables"]
+                                   if v["role"] == "parameter"},
+                    "variables": desc["variables"], "delays": desc["delays"],
+                    "option_variants": desc["option_variants"]})
+    return out
+
+
+def _scenario_models_data(path: str) -> list[dict[str, Any]]:
+    """The plant's model (and the controller's, when it has its own) a scenario names, with the
+    options and parameters the scenario gives and what every other option value changes."""
+    from .models.resolve import describe_reference
+    from .scenario import load_scenario
+    from .scenario.build import _wrap, scenario_folder
+
+    scn = load_scenario(path)
+    out = []
+    for section in ("plant", "controller_model"):
+        sec = scn.data[section]
+        if sec.get("model") is None:
+            continue
+        try:
+            d = describe_reference(sec["model"], options=sec["options"],
+                                   parameters=sec["parameters"], base_dir=scenario_folder(scn),
+                                   what=f"{section}.model")
+        except MpcprotoError as e:
+            raise _wrap(scn, getattr(e, "key", None) or f"{section}.model", e) from None
+        d["section"] = section
+        d["options"] = {k: dict(o, default=sec["options"].get(k, o["default"]))
+                        for k, o in d["options"].items()}
         out.append(d)
     return out
 
 
 def _cmd_models(args: argparse.Namespace) -> int:
-    data = _models_data()
+    data = _scenario_models_data(args.scenario) if args.scenario else _models_data()
     if args.json:
         # standard JSON has no NaN/Infinity: a CV has no nominal value (null), an open bound is null
         print(json.dumps(_finite_or_null(data), indent=2, allow_nan=False))
         return EXIT_OK
     for d in data:
-        print(f"{d['name']}  ({d['time_unit']})  {d['description']}")
+        where = (f"  [{d['section']}: {d['reference']}]" if "section" in d
+                 else f"  [registered: {d['registered_by']}]" if "registered_by" in d else "")
+        print(f"{d['name']}  ({d['time_unit']})  {d['description']}{where}")
+        if d.get("error"):
+            print(f"    cannot be built: {d['error']}")
+            print()
+            continue
         if d["options"]:
             for k, o in d["options"].items():
-                print(f"    option {k} = {o['default']!r}  (allowed: "
-                      f"{', '.join(repr(a) for a in o['allowed'])})  {o['description']}")
+                allowed = ", ".join(repr(a) for a in o["allowed"]) or "any value"
+                print(f"    option {k} = {o['default']!r}  (allowed: {allowed})  {o['description']}")
         rows = [("role", "name", "unit", "nominal", "low", "high", "description")]
         for v in d["variables"]:
             role = v["role"]
@@ -87,8 +147,19 @@ def _cmd_models(args: argparse.Namespace) -> int:
         for dl in d["delays"]:
             rows.append(("dead time", dl["source"], "", f"{dl['dead_time']:.4g}", "", "", ""))
         _print_table(rows, indent=4)
+        _print_option_variants(d.get("option_variants", []))
         print()
     return EXIT_OK
+
+
+def _print_option_variants(variants: list[dict[str, Any]]) -> None:
+    """What each other option value adds or removes (a variable only one option has)."""
+    for v in variants:
+        added = ", ".join(f"{a['role']} {a['name']} [{a['unit'] or '-'}]" for a in v["added"])
+        removed = ", ".join(v["removed"])
+        parts = ([f"adds {added}"] if added else []) + ([f"removes {removed}"] if removed else [])
+        print(f"    with option {v['option']} = {v['value']!r}: "
+              f"{'; '.join(parts) or 'the same variables'}")
 
 
 def _finite_or_null(obj: Any) -> Any:
@@ -245,10 +316,16 @@ def _cmd_check(args: argparse.Namespace) -> int:
                 shown.add(text)
                 print(f"mpcproto check: warning: {path}: {text}", file=sys.stderr)
         n, nf = count_cases(scn), count_cases(scn, full=True)
-        print(f"ok: {path}: scenario {scn.name}, model {scn.data['plant']['model']}, "
+        print(f"ok: {path}: scenario {scn.name}, model {_model_label(scn.data['plant']['model'])}, "
               f"{len(scn.data['controllers'])} controller(s), {len(scn.data['criteria'])} "
               f"criteria, {n} case(s) ({nf} with --full)")
     return EXIT_OK
+
+
+def _model_label(ref: Any) -> str:
+    from .models.resolve import parse_reference
+
+    return parse_reference(ref).label if isinstance(ref, dict) else str(ref)
 
 
 # ----------------------------------------------------------------------------------------- run
@@ -309,6 +386,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
         text = w.split(": ", 1)[1] if w.split(": ", 1)[0].endswith("Warning") else w
         print(f"mpcproto run: warning: {text}", file=sys.stderr)
     if summary["status"] != "ok":
+        if getattr(args, "debug", False) and summary.get("error_detail"):
+            print(summary["error_detail"].rstrip(), file=sys.stderr)
         print(f"mpcproto run: error: {summary['message']}", file=sys.stderr)
         return EXIT_BAD_INPUT
     for label, res in summary["controllers"].items():
@@ -328,6 +407,65 @@ def _cmd_run(args: argparse.Namespace) -> int:
     return EXIT_OK if summary["passed"] else EXIT_FAILED
 
 
+# ----------------------------------------------------------------------------------------- new
+def _option_value(text: str) -> Any:
+    """A --option value: a TOML value (number, true/false, "string", [array]) or a bare string."""
+    from .scenario.schema import tomllib
+
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
+def _cmd_new(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from .exceptions import SettingsError
+    from .scenario import check_scenario
+    from .scenario.starter import starter_scenario
+
+    out = Path(args.out)
+    if out.exists() and not args.force:
+        raise SettingsError(f"--out {out}: expected a new file; found one already there. Give "
+                            f"another name or --force to overwrite it.")
+    if out.suffix != ".toml":
+        raise SettingsError(f"--out {out}: expected a scenario file name ending in .toml; found "
+                            f"{out.suffix or 'no suffix'}.")
+    options = {}
+    for item in args.option or []:
+        k, sep, v = item.partition("=")
+        if not sep or not k.strip().isidentifier():
+            raise SettingsError(f"--option {item}: expected NAME=VALUE (e.g. outflow=valve); "
+                                f"found {item!r}.")
+        options[k.strip()] = _option_value(v.strip())
+    text = starter_scenario(args.model, out, options=options)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(text)
+    check_scenario(out, build_controllers=False)
+    print(f"wrote {out}: a starter study for {args.model}. Next:\n"
+          f"    mpcproto check {out}\n    mpcproto run {out} --out {out.with_suffix('')}-results")
+    return EXIT_OK
+
+
+def _add_new_parser(sub: Any) -> None:
+    n = sub.add_parser("new", help="write a commented starter scenario for a model",
+                       description="Write a commented starter scenario for MODEL: every MV, DV and "
+                                   "CV with units and ranges, a setpoint step, a disturbance "
+                                   "step, an MPC and SIMC PID loops with settings scaled from the "
+                                   "variables' ranges, and two criteria. MODEL is a built-in or "
+                                   "registered name, package.module:function, file.py:function or "
+                                   "a transfer-matrix file.toml (files relative to the current "
+                                   "directory; the scenario refers to them relative to its own "
+                                   "folder). Exit 0, or 2 on bad input.")
+    n.add_argument("model", metavar="MODEL", help="the model reference")
+    n.add_argument("--out", required=True, metavar="STUDY.toml", help="the scenario file to write")
+    n.add_argument("--option", action="append", metavar="NAME=VALUE",
+                   help="a model option (repeatable), e.g. --option outflow=valve")
+    n.add_argument("--force", action="store_true", help="overwrite an existing file")
+    n.set_defaults(handler=_cmd_new)
+
+
 # ----------------------------------------------------------------------------------------- parser
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``mpcproto`` command (one sub-command per step of a study)."""
@@ -339,6 +477,9 @@ def build_parser() -> argparse.ArgumentParser:
     from . import __version__
 
     p.add_argument("--version", action="version", version=f"mpcproto {__version__}")
+    p.add_argument("--debug", action="store_true",
+                   help="on an error raised by a user's model function, also print its traceback "
+                        "(accepted anywhere on the command line)")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
@@ -348,7 +489,11 @@ def build_parser() -> argparse.ArgumentParser:
                                    "value and physical bounds, and the dead times. Scenario files "
                                    "name models and variables as listed here.")
     m.add_argument("--json", action="store_true", help="print JSON instead of tables")
+    m.add_argument("--scenario", metavar="SCENARIO.toml", default=None,
+                   help="show the model(s) this scenario names (plant, and the controller's model "
+                        "when it has its own), with what every option value changes")
     m.set_defaults(handler=_cmd_models)
+    _add_new_parser(sub)
 
     lz = sub.add_parser("linearize", help="operating point and linear model of a scenario",
                         description="Find the scenario's operating point and print the linear "
@@ -724,9 +869,16 @@ def _plain_warnings(prefix: str):
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of the ``mpcproto`` command; returns the exit code."""
+    """Entry point of the ``mpcproto`` command; returns the exit code.
+
+    ``--debug`` anywhere on the line also prints the traceback of an exception a user's model
+    function raised (otherwise only its last line is in the error message).
+    """
     parser = build_parser()
-    args = parser.parse_args(argv)
+    argv = list(sys.argv[1:] if argv is None else argv)
+    debug = "--debug" in argv
+    args = parser.parse_args([a for a in argv if a != "--debug"])
+    args.debug = debug
     import warnings
 
     previous_format = _plain_warnings(f"mpcproto {args.command}")
@@ -740,6 +892,8 @@ def _run_handler(args: argparse.Namespace) -> int:
     try:
         return int(args.handler(args))
     except MpcprotoError as e:
+        if getattr(args, "debug", False) and getattr(e, "detail", ""):
+            print(e.detail.rstrip(), file=sys.stderr)
         print(f"mpcproto {args.command}: error: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except BrokenPipeError:

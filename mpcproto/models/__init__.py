@@ -11,6 +11,10 @@ their defaults); :func:`make` builds one by name with parameter overrides and op
 >>> tank.mv_names
 ('caustic_flow', 'water_flow', 'heater_duty', 'draw_off')
 
+Any model reference (a built-in name, ``"package.module:function"``, ``"file.py:function"``, a
+model registered by an installed package, a transfer-matrix table or ``.toml`` file) is turned into
+a model by :func:`resolve_model` (:mod:`mpcproto.models.resolve`).
+
 Linear transfer-function-matrix plants of first- or second-order-plus-dead-time elements (models
 identified from plant step tests) are built with :func:`transfer_matrix_model`.
 
@@ -45,7 +49,8 @@ from ..model import Model, suggest
 from . import blending_tank, henson_seborg_cstr, quadruple_tank, wood_berry
 from .transfer_matrix import TransferElement, transfer_matrix_model
 
-__all__ = ["available", "make", "transfer_matrix_model", "TransferElement"]
+__all__ = ["available", "make", "make_from_module", "transfer_matrix_model", "TransferElement",
+           "resolve_model", "registered", "transfer_table_model"]
 
 # name -> module; every module defines DESCRIPTION, OPTIONS, default_parameters(options), build(p, options)
 _REGISTRY: dict[str, ModuleType] = {
@@ -54,6 +59,9 @@ _REGISTRY: dict[str, ModuleType] = {
     "quadruple_tank": quadruple_tank,
     "wood_berry": wood_berry,
 }
+
+from .resolve import registered, resolve_model  # noqa: E402 - needs _REGISTRY
+from .transfer_table import transfer_table_model  # noqa: E402
 
 
 def _default_options(mod: ModuleType) -> dict[str, Any]:
@@ -115,7 +123,13 @@ def make(name: str, *, parameters: Mapping[str, float] | None = None,
         raise ModelError(
             f"unknown model {shown(name)}{suggest(str(name), list(_REGISTRY))}; "
             f"built-in models are: {', '.join(_REGISTRY)}.")
-    mod = _REGISTRY[name]
+    return make_from_module(name, _REGISTRY[name], parameters=parameters, options=options)
+
+
+def make_from_module(name: str, mod: ModuleType, *, parameters: Mapping[str, float] | None = None,
+                     options: Mapping[str, Any] | None = None) -> Model:
+    """Build the model a module written like a built-in one defines (see "Adding a model"):
+    options and parameters checked against its ``OPTIONS`` and ``default_parameters``."""
     opts = _default_options(mod)
     for what, given in (("options", options), ("parameters", parameters)):
         if given is not None and not isinstance(given, Mapping):

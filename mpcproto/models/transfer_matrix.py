@@ -56,12 +56,16 @@ class TransferElement:
         Lead time constant (numerator); needs at least one time constant.
     dead_time : float
         Dead time >= 0, in the model's time unit.
+    integrating : bool
+        An integrating element ``K / s`` times the rest: *gain* is then the ramp rate (CV units
+        per time unit per input unit).
     """
 
     gain: float
     time_constants: tuple[float, ...] = ()
     lead: float = 0.0
     dead_time: float = 0.0
+    integrating: bool = False
 
     @classmethod
     def coerce(cls, spec: Any, where: str) -> "TransferElement | None":
@@ -71,13 +75,15 @@ class TransferElement:
         if isinstance(spec, TransferElement):
             el = spec
         elif isinstance(spec, Mapping):
-            refuse_unknown_keys(spec, ("gain", "time_constants", "tau", "lead", "dead_time"),
+            refuse_unknown_keys(spec, ("gain", "time_constants", "tau", "lead", "dead_time",
+                                       "integrating"),
                                 what=where, error=ModelError)
             if "gain" not in spec:
                 raise ModelError(f"{where}: an element needs a 'gain'; got {dict(spec)!r}.")
             taus = _taus(spec.get("time_constants", spec.get("tau", ())), where)
             el = cls(gain=spec["gain"], time_constants=taus, lead=spec.get("lead", 0.0),
-                     dead_time=spec.get("dead_time", 0.0))
+                     dead_time=spec.get("dead_time", 0.0),
+                     integrating=spec.get("integrating", False))
         elif isinstance(spec, Sequence) and not isinstance(spec, str) and len(spec) == 3:
             el = cls(gain=spec[0], time_constants=_taus(spec[1], where), dead_time=spec[2])
         else:
@@ -104,6 +110,8 @@ class TransferElement:
             num(t, "a time constant", 0.0, strict=True)
         num(self.lead, "the lead time constant")
         num(self.dead_time, "the dead time", 0.0)
+        if not isinstance(self.integrating, bool):
+            raise ModelError(f"{where}: 'integrating' must be true or false; got {self.integrating!r}.")
         if self.lead != 0 and not self.time_constants:
             raise ModelError(f"{where}: a lead needs at least one time constant (the element would "
                              f"be improper); got lead={self.lead!r} and no time constant.")
@@ -246,6 +254,8 @@ def transfer_matrix_model(name: str, mvs: Any, cvs: Any, elements: Any, *, dvs: 
     for (cv, inp), el in list(mv_el.items()) + list(dv_el.items()):
         src = m.delayed(inp, float(el.dead_time)) - nominal[inp]
         drive = float(el.gain) * src
+        if el.integrating:
+            drive = _integrated(m, cv, inp, drive)
         if not el.time_constants:
             contributions[cv].append(drive)
             continue
@@ -267,3 +277,11 @@ def transfer_matrix_model(name: str, mvs: Any, cvs: Any, elements: Any, *, dvs: 
         m.cv(s["name"], expr, unit=str(s.get("unit", "")), low=fnum(s, "low", -math.inf),
              high=fnum(s, "high", math.inf), description=str(s.get("description", "")))
     return m.build()
+
+
+def _integrated(m: Model, cv: str, inp: str, rate: Any) -> Any:
+    """The integrating part of an element: a state (0 at the nominal point) whose rate is *rate*."""
+    xi = m.state(f"{cv}__{inp}_int", nominal=0.0,
+                 description=f"integral of the {inp} -> {cv} element")
+    m.derivative(xi, rate)
+    return xi

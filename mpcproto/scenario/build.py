@@ -1,21 +1,22 @@
 """From a validated :class:`~mpcproto.scenario.schema.Scenario` to models, an operating point and a
 linear model.
 
-No numerics of its own: it calls the model library (:func:`mpcproto.models.make`), the steady-state
+No numerics of its own: it calls the model resolver (:func:`mpcproto.models.resolve_model`), the steady-state
 and target solvers (:mod:`mpcproto.operating`) and :func:`mpcproto.linearize`.  Errors raised by those
 layers on behalf of a scenario key are re-raised as :class:`~mpcproto.exceptions.ScenarioError` naming
 the file and the key path.
 
-Compiled models are cached per process (keyed by model name, options and parameter values), so a
-pool worker that runs many cases of one study builds each distinct model once.
+Compiled models are cached per process by the resolver (keyed by the full reference -- a file's
+path and content hash --, options and parameter values), so a pool worker that runs many cases of
+one study builds each distinct model once.
 """
 
 from __future__ import annotations
 
-import json
 import math
 import warnings
 from collections.abc import Mapping
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -26,79 +27,146 @@ from ..model import Model, suggest
 from .schema import Scenario
 
 __all__ = ["get_model", "plant_model", "controller_model", "operating_point", "linear_report",
-           "clear_model_cache"]
-
-_MODEL_CACHE: dict[str, Model] = {}
-_MODEL_CACHE_LIMIT = 256
-
+           "clear_model_cache", "check_same_variables", "scenario_folder"]
 
 def clear_model_cache() -> None:
     """Forget every compiled model of this process."""
-    _MODEL_CACHE.clear()
+    from ..models.resolve import clear_cache
+
+    clear_cache()
 
 
-def get_model(name: str, *, options: Mapping[str, Any] | None = None,
-              parameters: Mapping[str, float] | None = None) -> Model:
-    """The built model *name* with *options* and *parameters*, compiled once per process.
+def get_model(name: Any, *, options: Mapping[str, Any] | None = None,
+              parameters: Mapping[str, float] | None = None, base_dir: str | Path | None = None,
+              what: str = "model") -> Model:
+    """The built model *name* (any model reference, see :mod:`mpcproto.models.resolve`) with
+    *options* and *parameters*, compiled once per process.
 
     Same arguments, same (shared) :class:`~mpcproto.model.Model` object: treat it as read-only.
     """
-    from .. import models
+    from ..models.resolve import resolve_model
 
-    key = json.dumps([name, dict(options or {}), dict(parameters or {})], sort_keys=True, default=str)
-    m = _MODEL_CACHE.get(key)
-    if m is None:
-        m = models.make(name, parameters=dict(parameters or {}), options=dict(options or {}))
-        if len(_MODEL_CACHE) >= _MODEL_CACHE_LIMIT:
-            _MODEL_CACHE.pop(next(iter(_MODEL_CACHE)))
-        _MODEL_CACHE[key] = m
-    return m
+    return resolve_model(name, options=options, parameters=parameters, base_dir=base_dir, what=what)
+
+
+def scenario_folder(scn: Scenario) -> Path:
+    """The folder a scenario's relative file references (model files, CSV tables) are read from."""
+    if scn.file and scn.file != "<dict>":
+        return Path(scn.file).resolve().parent
+    return Path.cwd()
 
 
 def _wrap(scn: Scenario, key: str, err: Exception) -> ScenarioError:
-    return ScenarioError(str(err), file=scn.file, key=key)
+    text = str(err)
+    for prefix in (key + ": ", "plant.model: ", "controller_model.model: "):
+        if text.startswith(prefix):  # the resolver's messages start with the key they concern
+            text = text[len(prefix):]
+            break
+    out = ScenarioError(text, file=scn.file, key=getattr(err, "key", None) or key)
+    out.detail = getattr(err, "detail", "")
+    return out
+
+
+def _section_model(scn: Scenario, section: str, ref: Any, options: Mapping[str, Any],
+                   params: Mapping[str, Any], user_keys: Mapping[str, Any]) -> Model:
+    """Resolve one section's model; errors name the section's key (a parameter or option if the
+    message quotes one of *user_keys*' names, else ``<section>.model``)."""
+    try:
+        return get_model(ref, options=options, parameters=params, base_dir=scenario_folder(scn),
+                         what=f"{section}.model")
+    except MpcprotoError as e:
+        if getattr(e, "key", None):
+            raise _wrap(scn, e.key, e) from None
+        raise _wrap(scn, _guess_key(str(e), section, options, user_keys), e) from None
 
 
 def plant_model(scn: Scenario) -> Model:
     """The plant: ``[plant] model`` with its ``options`` and ``parameters``."""
     pl = scn.data["plant"]
-    try:
-        return get_model(pl["model"], options=pl["options"], parameters=pl["parameters"])
-    except MpcprotoError as e:
-        key = _guess_plant_key(str(e), pl)
-        raise _wrap(scn, key, e) from None
+    return _section_model(scn, "plant", pl["model"], pl["options"], pl["parameters"],
+                          pl["parameters"])
 
 
-def _guess_plant_key(msg: str, pl: Mapping) -> str:
-    for k in pl["parameters"]:
-        if f"'{k}'" in msg:
-            return f"plant.parameters.{k}"
-    for k in pl["options"]:
-        if f"'{k}'" in msg:
-            return f"plant.options.{k}"
-    return "plant.model"
+def _guess_key(msg: str, section: str, options: Mapping, parameters: Mapping) -> str:
+    if not msg.startswith(f"{section}.model: "):
+        for k in parameters:
+            if f"'{k}'" in msg:
+                return f"{section}.parameters.{k}"
+        for k in options:
+            if f"'{k}'" in msg:
+                return f"{section}.options.{k}"
+    return f"{section}.model"
 
 
 def controller_model(scn: Scenario, base: Mapping[str, float] | None = None) -> Model:
-    """The controller's model: the plant's model and options with the parameter values the
-    controller believes.
+    """The controller's model.
 
-    Those are the plant's parameters as written in the file (*base*, by default
+    Without ``[controller_model] model``: the plant's model and options with the parameter values
+    the controller believes -- the plant's parameters as written in the file (*base*, by default
     ``plant.parameters``) updated with ``[controller_model] parameters``.  A study that changes
     ``plant.parameters.x`` therefore changes the plant only -- model mismatch -- unless it also
     addresses ``controller_model.parameters.x``.
+
+    With ``[controller_model] model`` (or ``kind = "transfer_matrix"``): that model, of any
+    structure, with its own ``options`` and ``parameters``; its MVs, DVs and CVs must be the
+    plant's (same names, same order, same units), see :func:`check_same_variables`.
     """
     pl = scn.data["plant"]
+    cm = scn.data["controller_model"]
+    if cm.get("model") is not None:
+        model = _section_model(scn, "controller_model", cm["model"], cm.get("options", {}),
+                               cm["parameters"], cm["parameters"])
+        check_same_variables(scn, plant_model(scn), model)
+        return model
     params = dict(pl["parameters"] if base is None else base)
-    cm = scn.data["controller_model"]["parameters"]
-    params.update(cm)
+    params.update(cm["parameters"])
     try:
-        return get_model(pl["model"], options=pl["options"], parameters=params)
+        return get_model(pl["model"], options=pl["options"], parameters=params,
+                         base_dir=scenario_folder(scn), what="plant.model")
     except MpcprotoError as e:
-        for k in cm:
+        for k in cm["parameters"]:
             if f"'{k}'" in str(e):
                 raise _wrap(scn, f"controller_model.parameters.{k}", e) from None
-        raise _wrap(scn, _guess_plant_key(str(e), pl), e) from None
+        raise _wrap(scn, getattr(e, "key", None) or _guess_key(str(e), "plant", pl["options"],
+                                                               pl["parameters"]), e) from None
+
+
+def check_same_variables(scn: Scenario, plant: Model, model: Model) -> None:
+    """A controller's model of another structure must speak the plant's variables.
+
+    The controller reads the plant's CVs and measured DVs and moves its MVs, vector by vector, so
+    the MVs, DVs and CVs must have the same names in the same order, and the same units.  Raises
+    :class:`ScenarioError` at ``controller_model.model`` naming both lists.
+    """
+    for role, word in (("mv", "MVs"), ("dv", "DVs"), ("cv", "CVs")):
+        pn, cn = list(plant.names(role)), list(model.names(role))
+        if pn != cn:
+            missing = [n for n in pn if n not in cn]
+            extra = [n for n in cn if n not in pn]
+            why = []
+            if missing:
+                why.append(f"missing {', '.join(missing)}")
+            if extra:
+                why.append(f"not in the plant: {', '.join(extra)}")
+            if not why:
+                why.append("the same names in another order")
+            raise ScenarioError(
+                f"expected the controller's model '{model.name}' to have the plant's {word} in the "
+                f"plant's order ({', '.join(pn) or 'none'}: model '{plant.name}' from plant.model); "
+                f"found {', '.join(cn) or 'none'} ({'; '.join(why)}).", file=scn.file,
+                key="controller_model.model")
+        for pv, cv in zip(plant.variables(role), model.variables(role)):
+            if pv.unit != cv.unit:
+                raise ScenarioError(
+                    f"expected the unit of {role.upper()} '{pv.name}' in the controller's model "
+                    f"'{model.name}' to be the plant's ({pv.unit!r}); found {cv.unit!r}.",
+                    file=scn.file, key="controller_model.model")
+            if role == "dv" and pv.measured != cv.measured:
+                raise ScenarioError(
+                    f"expected DV '{pv.name}' to be {'measured' if pv.measured else 'unmeasured'} "
+                    f"in the controller's model '{model.name}' as in the plant; found it "
+                    f"{'measured' if cv.measured else 'unmeasured'}.", file=scn.file,
+                    key="controller_model.model")
 
 
 def _names(model: Model, role: str) -> tuple[str, ...]:

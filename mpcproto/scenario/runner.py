@@ -271,7 +271,8 @@ _CONTROLLER_CACHE_LIMIT = 16
 def _controller_key(label: str, spec: Mapping[str, Any], prep: Prepared) -> str:
     scn = prep.scenario
     model = prep.model
-    return json.dumps([label, spec, model.name, scn.data["plant"]["options"], model.parameters,
+    # the model's full reference (file content hash included) from the resolver, its parameters
+    return json.dumps([label, spec, getattr(model, "origin", model.name), model.parameters,
                        [list(map(float, v)) for v in (prep.model_op.x, prep.model_op.u,
                                                       prep.model_op.d)],
                        scn.sample_time, scn.data["scenario"]["dead_time"]],
@@ -435,6 +436,8 @@ def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
     except MpcprotoError as e:
         rec.update({"status": "error", "message": str(e), "error_type": type(e).__name__,
                     "controllers": {}, "comparisons": [], "passed": False})
+        if getattr(e, "detail", ""):  # the traceback of a user's model function (--debug)
+            rec["error_detail"] = e.detail
 
 
 def run_case(case: Case | Scenario) -> dict[str, Any]:

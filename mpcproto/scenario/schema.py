@@ -73,8 +73,8 @@ DRAW_OPTIONAL = {"relative", "clip_low", "clip_high"}
 TOP_KEYS = ("scenario", "plant", "controller_model", "operating_point", "controllers", "setpoints",
             "limits", "disturbances", "instruments", "actuators", "faults", "criteria", "study")
 SCENARIO_KEYS = ("name", "description", "duration", "sample_time", "seed", "dead_time", "ci")
-PLANT_KEYS = ("model", "options", "parameters")
-CONTROLLER_MODEL_KEYS = ("parameters",)
+PLANT_KEYS = ("model", "kind", "options", "parameters")
+CONTROLLER_MODEL_KEYS = PLANT_KEYS
 OP_KEYS = ("mvs", "dvs", "targets", "state_guess", "pick")
 OP_PICKS = ("nearest", "stable", "unstable")
 CONTROLLER_KINDS = ("mpc", "pid")
@@ -401,24 +401,10 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         "ci": ci,
     }
 
-    # [plant]
-    pl = c.table(raw["plant"], "plant")
-    c.keys(pl, "plant", PLANT_KEYS, required=("model",))
-    model = c.string(pl["model"], "plant.model")
-    options = c.table(pl.get("options", {}), "plant.options")
-    for k, v in options.items():
-        if isinstance(v, (Mapping, list)) and not (isinstance(v, list) and
-                                                   all(isinstance(x, (int, float, str)) for x in v)):
-            c.fail(f"plant.options.{k}", "a number, string, boolean or array of them",
-                   _found(v))
-    data["plant"] = {"model": model, "options": options,
-                     "parameters": c.name_map(pl.get("parameters", {}), "plant.parameters")}
-
-    # [controller_model]
-    cm = c.table(raw.get("controller_model", {}), "controller_model")
-    c.keys(cm, "controller_model", CONTROLLER_MODEL_KEYS)
-    data["controller_model"] = {
-        "parameters": c.name_map(cm.get("parameters", {}), "controller_model.parameters")}
+    # [plant] and [controller_model]: the model references (mpcproto.models.resolve)
+    data["plant"] = _model_section(c, raw["plant"], "plant", required=True)
+    data["controller_model"] = _model_section(c, raw.get("controller_model", {}), "controller_model",
+                                              required=False)
 
     # [operating_point]
     op = c.table(raw.get("operating_point", {}), "operating_point")
@@ -625,6 +611,39 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         c.fail("study.draws", "a number of Monte Carlo draws >= 1 (study.draw entries are given)", "0")
     data["study"] = {"draws": draws, "full_draws": full_draws, "sweep": sweeps, "draw": draw_specs}
     return Scenario(name=name, data=data, file=file, raw=copy.deepcopy(dict(raw)))
+
+
+def _model_section(c: _Ctx, v: Any, section: str, *, required: bool) -> dict[str, Any]:
+    """``[plant]`` / ``[controller_model]``: ``model`` (a reference string) with ``options`` and
+    ``parameters``, or ``kind = "transfer_matrix"`` with the matrix's keys.  Only the form is
+    checked here (no code runs, no file is read); :mod:`mpcproto.models.resolve` builds it."""
+    from ..exceptions import ModelError
+    from ..models.transfer_table import check_transfer_table
+
+    tbl = c.table(v, section)
+    kind = c.string(tbl.get("kind", "model"), f"{section}.kind", ("model", "transfer_matrix"))
+    if kind == "transfer_matrix":
+        try:
+            check_transfer_table(tbl, what=section)
+        except ModelError as e:
+            key = getattr(e, "key", section)
+            raise ScenarioError(str(e)[len(key) + 2:] if str(e).startswith(key + ": ") else str(e),
+                                file=c.file, key=key) from None
+        return {"model": tbl, "options": {}, "parameters": {}}
+    c.keys(tbl, section, PLANT_KEYS, required=("model",) if required else ())
+    if "model" not in tbl and ("options" in tbl):
+        c.fail(f"{section}.model", "the key 'model' (options belong to a model named here)", "nothing")
+    model = c.string(tbl["model"], f"{section}.model") if "model" in tbl else None
+    if model is not None and not model.strip():
+        c.fail(f"{section}.model", "a model reference (see mpcproto models)", "an empty string")
+    options = c.table(tbl.get("options", {}), f"{section}.options")
+    for k, x in options.items():
+        if isinstance(x, (Mapping, list)) and not (isinstance(x, list) and
+                                                   all(isinstance(y, (int, float, str)) for y in x)):
+            c.fail(f"{section}.options.{k}", "a number, string, boolean or array of them", _found(x))
+    # a [controller_model] without 'model' is the plant's model with other parameter values
+    return {"model": model, "options": options,
+            "parameters": c.name_map(tbl.get("parameters", {}), f"{section}.parameters")}
 
 
 #: Most samples one run may have.  A run keeps every sample of every signal in memory, so a

@@ -36,7 +36,7 @@ from typing import Any
 
 import numpy as np
 
-from ..exceptions import MpcprotoError, ScenarioError
+from ..exceptions import ScenarioError
 from .schema import Scenario, _split, get_path, load_scenario, parse_scenario, set_path
 
 __all__ = ["Case", "expand", "iter_cases", "count_cases", "case_scenario", "check_case",
@@ -100,14 +100,12 @@ def _base_value(scn: Scenario, key: str) -> Any:
         return get_path(scn.data, key, file=scn.file)
     except ScenarioError:
         pass
-    from .build import get_model
+    from .build import controller_model, plant_model
 
     head, sub, name = (parts + [None, None, None])[:3]
-    pl = scn.data["plant"]
-    try:
-        m = get_model(pl["model"], options=pl["options"], parameters=pl["parameters"])
-    except MpcprotoError as e:
-        raise ScenarioError(str(e), file=scn.file, key="plant.model") from None
+    # a controller's model of its own structure has its own parameters
+    own = head == "controller_model" and scn.data["controller_model"].get("model") is not None
+    m = controller_model(scn) if own else plant_model(scn)
     if head in ("plant", "controller_model") and sub == "parameters" and name in m.parameters:
         return m.parameters[name]
     if head == "operating_point" and sub in ("mvs", "dvs"):
