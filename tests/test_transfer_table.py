@@ -91,16 +91,12 @@ def test_an_integrating_element_ramps_at_its_rate(taus):
     np.testing.assert_allclose(y, 2.0 * exact, atol=1e-6)
 
 
-@pytest.mark.xfail(strict=True, reason="the plant rounds a dead time to whole samples on this "
-                                       "branch; exact (fractional) dead times land with issue 9")
 def test_a_fractional_dead_time_stays_exact_in_the_plant():
     m = one_element("{ gain = 2.0, time_constants = [5.0], dead_time = 2.5 }")
     t, y = plant_step(m, 1.0, 1.0, 20)
     np.testing.assert_allclose(y, fopdt(t, 2.0, 5.0, 2.5), atol=1e-6)
 
 
-@pytest.mark.xfail(strict=True, reason="a matrix of pure gain + dead-time elements declares no "
-                                       "state on this branch; made to work with issue 9")
 def test_a_matrix_of_pure_gain_and_dead_time_elements():
     m = one_element("{ gain = 0.5, dead_time = 3.0 }")
     t, y = plant_step(m, 2.0, 1.0, 8)
