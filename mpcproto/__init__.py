@@ -56,10 +56,10 @@ from .sim import (Signal, signal_from_spec, Instrument, Actuator, Fault, instrum
                   actuator_from_spec, fault_from_spec, Plant, ClosedLoop, simulate, OpenLoop)
 from .analysis import (cv_performance, mv_usage, kpis, violations, mv_violations, controller_health,
                        summarize)
-from .control.pid import PIDLoop, PIDController, pid_loop_from_spec, pid_from_settings, suggest_pairing
+from .control.pid import PIDLoop, PIDController, pid_loop_from_spec, suggest_pairing
 from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating,
                              fit_step, ultimate_point, simc, imc, ziegler_nichols, tune_loop,
-                             tune_pid_loops)
+                             tune_pid_loops, pid_from_settings)
 from .compare import compare, Comparison
 from .design import (GainAnalysis, gain_matrix_analysis, niederlinski_index, rga_at_frequency,
                      sampling_advice)
@@ -81,7 +81,7 @@ from .report.html import write_html_report
 make_model = models.make
 available_models = models.available
 
-__version__ = "0.1.0"
+from ._version import __version__  # noqa: E402
 
 __all__ = [
     "MpcprotoError", "ModelError", "NotBuiltError", "SettingsError", "ScenarioError",

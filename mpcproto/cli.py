@@ -474,7 +474,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Prototype model-predictive controllers for process units and run closed-loop "
                     "studies. Simulation only: a real plant needs its own independent safety "
                     "systems, management of change, local codes and licensed engineers.")
-    from . import __version__
+    from ._version import __version__
 
     p.add_argument("--version", action="version", version=f"mpcproto {__version__}")
     p.add_argument("--debug", action="store_true",

@@ -18,7 +18,7 @@ Inputs (held between samples of ``Ts``, zero-order hold):
     rectangular pulse of height ``size / Ts`` -- the sampled form of an impulse a plant test can
     actually apply.  Keep ``Ts`` short against the unit's time constants.
 
-The nonlinear response comes from the closed loop's plant stepper (:class:`mpcproto.sim.Plant`:
+The nonlinear response comes from the closed loop's plant stepper (:class:`mpcproto.stepper.Plant`:
 the model's plugin, cvodes by default with tolerances abstol 1e-11, reltol 1e-10 here, or the exact
 discrete map of a linear model); dead times are exact, whole samples or not.  The linear response
 is the exact ZOH discretization of the linearization (:meth:`~mpcproto.LinearModel.discretize`,
@@ -232,7 +232,7 @@ def open_loop_test(model, op: OperatingPoint, mv: str, *, kind: str = "step", si
                      f"(reaches {vals.min():g}..{vals.max():g}); the model is evaluated there anyway")
 
     # nonlinear: the plant stepper of the closed loop (exact dead times, split samples)
-    from .sim.plant import Plant  # lazy: the stepper lives with the simulator
+    from .stepper import Plant
 
     plugin = getattr(model, "integrator", "cvodes") or "cvodes"
     plant = Plant(model, Ts, options=_TOLERANCES if plugin in ("cvodes", "idas") else None)

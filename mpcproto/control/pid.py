@@ -61,7 +61,7 @@ from .base import (STATUS_HOLD, STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutpu
                    Targets)
 from .limits import project_value
 
-__all__ = ["PIDLoop", "PIDController", "pid_loop_from_spec", "pid_from_settings", "suggest_pairing", "Pairing",
+__all__ = ["PIDLoop", "PIDController", "pid_loop_from_spec", "suggest_pairing", "Pairing",
            "low_frequency_gain"]
 
 
@@ -407,12 +407,3 @@ def suggest_pairing(lin: Any, *, cvs: Sequence[str] | None = None,
     rel = {f"{cvs[i]}<-{mvs[best[i]]}": float(L[i, best[i]]) for i in range(n)}
     return Pairing(pairs=pairs, rga=L, cv_names=cvs, mv_names=mvs, relative_gains=rel,
                    low_frequency=low)
-
-
-def pid_from_settings(model: Any, op: OperatingPoint, Ts: float, settings: Mapping[str, Any], *,
-                      what: str = "pid") -> PIDController:
-    """A tuned :class:`PIDController` from a plain settings dict; see
-    :func:`mpcproto.control.tuning.pid_from_settings` for the keys."""
-    from .tuning import pid_from_settings as build
-
-    return build(model, op, Ts, settings, what=what)

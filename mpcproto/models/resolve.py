@@ -119,7 +119,7 @@ def _forms_hint() -> str:
 def parse_reference(ref: Any, *, base_dir: str | Path | None = None,
                     what: str = "model") -> Reference:
     """Tell which form *ref* has (no code runs, no file is read); relative files join *base_dir*."""
-    from . import _REGISTRY
+    from .library import _REGISTRY
 
     if isinstance(ref, Reference):
         return ref
@@ -233,7 +233,7 @@ def resolve_model(ref: Any, *, options: Mapping[str, Any] | None = None,
 
 
 def _build(r: Reference, options: dict, parameters: dict, what: str) -> Model:
-    from . import _REGISTRY, make_from_module
+    from .library import _REGISTRY, make_from_module
 
     if r.form == "builtin":
         return make_from_module(r.target, _REGISTRY[r.target], parameters=parameters,
@@ -369,7 +369,7 @@ def model_options(ref: Any, *, base_dir: str | Path | None = None,
     function, the options are its keyword arguments: ``allowed`` comes from a ``Literal[...]``
     annotation or a boolean default, else it is empty (any value).  A transfer matrix has none.
     """
-    from . import _REGISTRY
+    from .library import _REGISTRY
 
     r = parse_reference(ref, base_dir=base_dir, what=what)
     if r.form in ("table", "toml"):

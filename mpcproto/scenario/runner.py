@@ -324,7 +324,7 @@ def _build_controller(label: str, spec: Mapping[str, Any], prep: Prepared) -> An
 
 
 def _build_pid(settings: Mapping[str, Any], prep: Prepared, key: str) -> Any:
-    from ..control.pid import pid_from_settings
+    from ..control.tuning import pid_from_settings
 
     return pid_from_settings(prep.model, prep.model_op, prep.scenario.sample_time, settings,
                              what=key)
