@@ -255,9 +255,7 @@ def _cmd_linearize(args: argparse.Namespace) -> int:
         if not p["connected"]:
             continue
         taus = ", ".join(f"{t:.4g}" for t in p["time_constants"]) or "-"
-        integ = p.get("integrating")
-        if integ is None:
-            integ = any(abs(re_) < 1e-12 and abs(im) < 1e-12 for re_, im in p["poles"])
+        integ = bool(p.get("integrating"))       # classified by the linear layer
         gain = "integ" if p["gain"] is None else _fmt(p["gain"])
         tail = ""
         if integ:

@@ -45,6 +45,7 @@ from typing import Any
 import numpy as np
 
 from .exceptions import SettingsError
+from .linear import INTEGRATOR_TOL, open_loop_class
 from .linear import rga as _rga
 
 __all__ = ["GainAnalysis", "gain_matrix_analysis", "niederlinski_index", "rga_at_frequency",
@@ -348,12 +349,13 @@ def sampling_advice(lin: Any, Ts: float) -> SamplingAdvice:
     if not (isinstance(Ts, (int, float)) and math.isfinite(Ts) and Ts > 0):
         raise SettingsError(f"sampling_advice(): Ts must be a finite number > 0; got {Ts!r}.")
     poles = np.linalg.eigvals(np.asarray(lin.A, float)) if np.size(lin.A) else np.zeros(0)
-    stable = poles[poles.real < -1e-12]
+    tol = INTEGRATOR_TOL * max(1.0, float(np.max(np.abs(poles)))) if poles.size else 0.0
+    stable = poles[poles.real < -tol]
     taus = -1.0 / stable.real if stable.size else np.zeros(0)
     dead = [float(th) for (r, _, th) in lin.delays if r == "mv"]
     theta = max(dead) if dead else 0.0
     warns: list[str] = []
-    if np.any(np.abs(poles) <= 1e-12) or np.any(poles.real > 1e-12):
+    if open_loop_class(poles) in ("integrating", "unstable"):
         warns.append("the unit has integrating or unstable modes: no settling time; choose the "
                      "prediction horizon from how fast those CVs must be brought back")
     if not taus.size:

@@ -41,7 +41,27 @@ from .exceptions import SettingsError
 from .operating import OperatingPoint
 
 __all__ = ["LinearModel", "DiscreteLinearModel", "linearize", "rga", "delay_samples", "delay_split",
-           "minimal_realization", "transmission_zeros"]
+           "minimal_realization", "transmission_zeros", "INTEGRATOR_TOL", "open_loop_class"]
+
+#: relative size (to the largest eigenvalue magnitude, at least 1) below which an eigenvalue counts
+#: as an integrator (s = 0), and the real part above which a mode counts as unstable: the one
+#: classification of the package (linear models, reports, tuning)
+INTEGRATOR_TOL = 1e-10
+
+
+def open_loop_class(eigenvalues) -> str:
+    """``"static"`` (no states), ``"unstable"`` (an eigenvalue with a positive real part),
+    ``"integrating"`` (one at the origin or on the imaginary axis) or ``"stable"``, with the
+    tolerance :data:`INTEGRATOR_TOL` relative to the largest eigenvalue magnitude (at least 1)."""
+    ev = np.asarray(eigenvalues)
+    if ev.size == 0:
+        return "static"
+    tol = INTEGRATOR_TOL * max(1.0, float(np.max(np.abs(ev))))
+    if np.any(ev.real > tol):
+        return "unstable"
+    if np.any(ev.real > -tol):
+        return "integrating"
+    return "stable"
 
 
 DEAD_TIME_POLICIES = ("exact", "round", "refuse")
@@ -419,7 +439,7 @@ def _ss_gain(Am: np.ndarray, bm: np.ndarray, cm: np.ndarray, d: float, *,
     M = (np.eye(n) - Am) if discrete else -Am
     scale = max(1.0, float(np.max(np.abs(M))))
     U, sv, Vt = np.linalg.svd(M)
-    if sv[-1] > 1e-10 * scale:
+    if sv[-1] > INTEGRATOR_TOL * scale:
         return float(d + (cm @ np.linalg.solve(M, bm)).item()), False, None
     v, w = Vt[-1], U[:, -1]
     denom = float(w @ v)
@@ -449,7 +469,7 @@ def _channel(A: np.ndarray, b: np.ndarray, c: np.ndarray, d: float) -> dict[str,
     connected = bool(n > 0 or abs(d) > 0)
     gain, integrating, ramp = _ss_gain(Am, bm, cm, d, discrete=False)
     poles = np.linalg.eigvals(Am) if n else np.zeros(0, complex)
-    poles = np.where(np.abs(poles) <= 1e-10 * scale, 0.0, poles)  # integrators exactly at 0
+    poles = np.where(np.abs(poles) <= INTEGRATOR_TOL * scale, 0.0, poles)  # integrators at 0
     if n:
         from scipy.signal import ss2tf
 

@@ -644,7 +644,7 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
         if dur is None:
             ch = [p for p in lin.pairs() if p["cv"] == cv and p["mv"] == mv][0]
             taus = ch["time_constants"]
-            integrating = any(abs(complex(p)) < 1e-9 for p in ch["poles"])
+            integrating = bool(ch["integrating"])
             dur = 50 * Ts if integrating or not taus else 5 * max(taus) + ch["dead_time"]
             dur = float(min(max(dur, 20 * Ts), 2000 * Ts))
         data = step_test(model, op, mv, size=size, Ts=Ts, duration=dur)

@@ -311,15 +311,9 @@ def linear_report(scn: Scenario, *, which: str = "plant") -> dict[str, Any]:
 
 
 def _open_loop(eigenvalues) -> str:
-    ev = np.asarray(eigenvalues)
-    if ev.size == 0:
-        return "static"
-    scale = max(1.0, float(np.max(np.abs(ev))))
-    if np.any(ev.real > 1e-9 * scale):
-        return "unstable"
-    if np.any(ev.real > -1e-9 * scale):
-        return "integrating"
-    return "stable"
+    from ..linear import open_loop_class
+
+    return open_loop_class(eigenvalues)
 
 
 def _report(scn, which, model, op, lin) -> dict[str, Any]:
