@@ -21,6 +21,7 @@ main { max-width: 1240px; }
 dl.facts { display: grid; grid-template-columns: max-content 1fr; gap: 3px 16px; margin: 6px 0; }
 dl.facts dt { color: var(--muted); } dl.facts dd { margin: 0; }
 td.unit { color: var(--muted); white-space: nowrap; }
+th { white-space: normal; vertical-align: bottom; }
 th.grp { background: #e3e9ee; }
 .none { color: #8a96a3; }
 nav { font-size: 13px; margin: 4px 0 0; } nav a { color: #c4d0da; margin-right: 12px; }
@@ -40,6 +41,13 @@ def _n(v: Any, digits: int = 4, none: str = "none") -> str:
             return f'<span class="none">{_e(none)}</span>'
         return f"{v:.{digits}g}"
     return _e(v)
+
+
+def _pct(v: Any) -> str:
+    """A fit error in percent; below 0.01 % the fit is exact for every practical purpose."""
+    if not isinstance(v, (int, float)):
+        return _n(v)
+    return "&lt; 0.01 %" if v < 0.01 else f"{v:.2g} %"
 
 
 def _table(head: Sequence[str], rows: Sequence[Sequence[str]], num_from: int = 1) -> str:
@@ -151,13 +159,13 @@ def _fits(doc: Mapping[str, Any]) -> str:
         p = f["fits"][rec]
         g = _n(p["gain"]) + (f" /{_e(tu)}" if rec == "integrating" else "")
         other = [k for k in f["fits"] if k != rec and "error" not in f["fits"][k]]
-        alt = "; ".join(f"{k.upper()} {_n(f['fits'][k]['rms_error_percent'], 2)} %" for k in other)
+        alt = "; ".join(f"{k.upper()} fit error {_pct(f['fits'][k]['rms_error_percent'])}" for k in other)
         rows.append([_e(f"{f['cv']} ← {f['input']}"), _e(f["input_role"].upper()),
                      _e(rec.upper()), f"{g} <span class='unit'>{_e(unit)}</span>",
                      ", ".join(_n(x) for x in p["time_constants"]) or "&ndash;", _n(p["dead_time"]),
-                     _n(p["rms_error_percent"], 2) + " %",
+                     _pct(p["rms_error_percent"]),
                      f'<span class="small">{_e(f.get("note", ""))}'
-                     f'{(" (" + _e(alt) + ")") if alt else ""}</span>'])
+                     f'{(" (" + alt + ")") if alt else ""}</span>'])
     return _table(["pair (CV ← input)", "input", "fitted model", "gain",
                    f"time constants [{_e(tu)}]", f"dead time [{_e(tu)}]", "fit error",
                    "remarks"], rows, 3)
@@ -274,7 +282,8 @@ def write_design_sheet(doc: Mapping[str, Any], path: str | Path, *, matrix_png: 
         (sr["file"], "step-response coefficients, one column per CV <- input pair"),
         (proof["file"], "the recorded closed-loop run: every controller input and move (test vectors)"),
         (scn["copy"], "the scenario file the design came from"),
-        ("study/summary.json", "the study's KPIs and verdicts")))
+        ("study/summary.json", "the study's KPIs and verdicts"))
+        if f != "study/summary.json" or f in doc.get("files", {}) or doc["study"]["status"] != "not run")
     body = [
         f"<header><h1>{_e(title)}</h1><div class='sub'>Hand-off of a predictive controller "
         f"design for implementation on the plant's control system. Simulation only.</div></header>"
@@ -288,8 +297,9 @@ def write_design_sheet(doc: Mapping[str, Any], path: str | Path, *, matrix_png: 
         f"nominal closed-loop run ({proof['samples']} samples). Every move must equal the "
         f"original's to {proof['tolerance']:g} of the MV's scale. Result: "
         f"<b>{'passed' if proof['passed'] else 'FAILED'}</b>"
-        + (f", largest difference {proof['max_deviation']:.2g} of a scale" if
-           isinstance(proof.get("max_deviation"), (int, float)) else "")
+        + ((", every move bit-identical" if proof["max_deviation"] == 0 else
+            f", largest difference {proof['max_deviation']:.2g} of a scale")
+           if isinstance(proof.get("max_deviation"), (int, float)) else "")
         + ". Re-run it with <code>mpcproto export --check DIR</code>. A vendor's implementation "
           f"can be tested against the same record (<code>{_e(proof['file'])}</code>).</p></section>",
         f"<section><h2>Files in this bundle</h2><table><tbody>{files}</tbody></table></section>",

@@ -33,6 +33,9 @@ __all__ = ["step_coefficients", "settling_samples", "pair_columns", "fit_pairs",
 
 #: a self-regulating channel is settled once it stays within this fraction of its gain
 SETTLE_FRACTION = 0.01
+#: a fit this close (RMS error, % of the response's largest change) is exact for practical purposes:
+#: no SOPDT is fitted after an FOPDT this good
+EXACT_PERCENT = 0.1
 #: the longest settling horizon looked at (samples)
 MAX_SAMPLES = 4000
 
@@ -101,7 +104,8 @@ def fit_pairs(S: np.ndarray, Ts: float, gains: np.ndarray, columns: Sequence[dic
     ``rms_error_percent`` is the RMS residual over the largest change of the response (0 % = the
     fit reproduces the coefficients).  The ``recommended`` fit is the SOPDT when it halves the
     FOPDT's error, else the FOPDT (common practice, no source: keep the simpler model unless the
-    extra lag clearly earns its place).  A pair the input does not move has ``kind == "none"``;
+    extra lag clearly earns its place); no SOPDT is fitted when the FOPDT is exact to
+    ``EXACT_PERCENT``.  A pair the input does not move has ``kind == "none"``;
     an open-loop unstable unit is not fitted (a stable low-order model would mislead).
     """
     t = np.arange(S.shape[0]) * float(Ts)
@@ -126,10 +130,17 @@ def fit_pairs(S: np.ndarray, Ts: float, gains: np.ndarray, columns: Sequence[dic
             continue
         final = y[-1] if math.isfinite(g) else y[-1] - y[-2]
         entry["inverse_response"] = bool(np.min(y * np.sign(final)) < -0.02 * span)
+        # at most ~200 points: the coefficients are exact samples, more points add time, not
+        # information (the dead time stays a continuous parameter of the fit)
+        stride = max(1, math.ceil(len(y) / 200))
+        ts, ys = t[::stride], y[::stride]
         kinds = ("integrating",) if not math.isfinite(g) else ("fopdt", "sopdt")
         for kind in kinds:
+            if kind == "sopdt" and "error" not in entry["fits"].get("fopdt", {"error": ""}) and \
+                    entry["fits"]["fopdt"]["rms_error_percent"] < EXACT_PERCENT:
+                break           # the FOPDT is exact already: a second lag has nothing to add
             try:
-                f = fit_step_response(t, y, size=1.0, t_step=0.0, y0=0.0, kind=kind,
+                f = fit_step_response(ts, ys, size=1.0, t_step=0.0, y0=0.0, kind=kind,
                                       what=f"fit of {col['column']}")
             except SettingsError as exc:
                 entry["fits"][kind] = {"error": str(exc)}
@@ -171,7 +182,9 @@ def plot_step_matrix(S: np.ndarray, Ts: float, path: str | Path, *, cv_names: Se
     import matplotlib.pyplot as plt
 
     ny, ni = S.shape[1], S.shape[2]
-    t = np.arange(S.shape[0]) * float(Ts)
+    stride = max(1, math.ceil(S.shape[0] / 400))          # a small plot needs no more points
+    S = S[::stride]
+    t = np.arange(0, stride * S.shape[0], stride)[:S.shape[0]] * float(Ts)
     w = min(2.3 * ni + 1.2, 30.0)
     h = min(1.75 * ny + 1.3, 40.0)
     fig, axes = plt.subplots(ny, ni, figsize=(w, h), squeeze=False, sharex=True)
@@ -199,7 +212,7 @@ def plot_step_matrix(S: np.ndarray, Ts: float, path: str | Path, *, cv_names: Se
                 p = f["fits"][rec]
                 ax.plot(t, step_model_response(t, p["gain"], p["time_constants"], p["dead_time"],
                                                integrating=rec == "integrating"),
-                        color=fit_col, linewidth=1.0, linestyle="--")
+                        color=fit_col, linewidth=1.0, linestyle=(0, (4, 3)))
                 taus = ", ".join(_short(x) for x in p["time_constants"])
                 txt = (f"K={_short(p['gain'])}" + ("/" + (time_unit or "t") if rec == "integrating" else "")
                        + (f"\nτ={taus}" if taus else "") + f"\nθ={_short(p['dead_time'])}")
@@ -218,13 +231,17 @@ def plot_step_matrix(S: np.ndarray, Ts: float, path: str | Path, *, cv_names: Se
             ax.set_ylabel(f"{cv_names[i]}{u}", fontsize=8, color=ink)
         if i == ny - 1:
             ax.set_xlabel(f"time [{time_unit}]" if time_unit else "time", fontsize=7)
+    import textwrap
+
     head = title or "Step-response matrix"
-    fig.suptitle(f"{head}\nCV change per unit step of each input (solid); recommended "
-                 f"low-order fit (dashed). K gain, τ time constants, θ dead time.",
-                 fontsize=9, color=ink)
+    sub = textwrap.fill("CV change per unit step of each input (solid); recommended low-order fit "
+                        "(dashed). K gain, τ time constants, θ dead time.", width=int(w * 13))
+    fig.suptitle(f"{head}\n{sub}", fontsize=9, color=ink)
     fig.text(0.995, 0.003, "simulation of a model only, not evidence that a controller is safe "
              "on a real unit", ha="right", va="bottom", fontsize=6.5, color="#666666")
-    fig.tight_layout(rect=(0, 0.015, 1, 0.99))
+    # fixed margins in inches (tight_layout draws the whole grid twice more)
+    fig.subplots_adjust(left=1.0 / w, right=1 - 0.15 / w, bottom=0.65 / h, top=1 - 1.35 / h,
+                        wspace=0.35, hspace=0.3)
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path, dpi=dpi)

@@ -267,7 +267,7 @@ def _study(summary: Mapping[str, Any], source: str) -> dict[str, Any]:
 # ------------------------------------------------------------------------------------- export
 def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None = None,
                   summary: str | Path | Mapping[str, Any] | None = None, ci: bool = False,
-                  tolerance: float = TOLERANCE) -> dict[str, Any]:
+                  run_study: bool = True, tolerance: float = TOLERANCE) -> dict[str, Any]:
     """Write the hand-off bundle of one predictive controller of *scenario* to *out_dir*.
 
     Parameters
@@ -283,6 +283,10 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
         KPIs are copied); default: the nominal case is run now.
     ci : bool
         Use the scenario's CI-sized run length for the study and the recorded run.
+    run_study : bool
+        Without *summary*: run the nominal case for the verdicts (default).  False leaves the
+        study out: the bundle then says so and its study verdict is "not passed" (a verdict
+        defaults to failure when its input is missing).
     tolerance : float
         Round-trip tolerance as a fraction of each MV's ``scale``.
 
@@ -323,7 +327,11 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
     # the study's verdicts and KPIs
     study_dir = out / "study"
     study_dir.mkdir(exist_ok=True)
-    if summary is None:
+    if summary is None and not run_study:
+        summ = {"scenario": scn.name, "status": "not run",
+                "message": "the study was not run for this bundle (export without a study)"}
+        source = "not run"
+    elif summary is None:
         summ = run_scenario(scn, study_dir, plots=False, ci=ci)
         source = "nominal case run at export" + (" (CI-sized run length)" if ci else "")
     else:
@@ -353,14 +361,8 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
     model, dmodel = prep.model, prep.dmodel
     lin = linearize(model, prep.model_op)
     N = int(ctl.horizon)
-    n, settle_note = settling_samples(dmodel, at_least=N)
-    S = step_coefficients(dmodel, n)
-    cols = pair_columns(dmodel.cv_names, dmodel.mv_names, dmodel.dv_names)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        gains = np.hstack([dmodel.gain("mv"), dmodel.gain("dv")])
-    unstable = bool(np.any(np.abs(np.linalg.eigvals(dmodel.A)) > 1 + 1e-9)) if dmodel.nx else False
-    fits = fit_pairs(S, dmodel.Ts, gains, cols, unstable=unstable)
+    sm = _step_model(dmodel, at_least=N)
+    n, S, cols, gains, fits = sm["n"], sm["S"], sm["columns"], sm["gains"], sm["fits"]
     t = np.arange(n + 1) * dmodel.Ts
     flat = S.reshape(n + 1, -1)
     head = [f"time_{model.time_unit}"] + [c["column"] for c in cols]
@@ -368,14 +370,8 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
                                 for k in range(n + 1)]
     (out / STEP_CSV).write_text("\n".join(lines) + "\n")
     var = _variables(model, dmodel)
-    unit = {v["name"]: v["unit"] for role in ("mvs", "dvs", "cvs") for v in var[role]}
-    inputs = list(dmodel.mv_names) + list(dmodel.dv_names)
-    plot_step_matrix(S, dmodel.Ts, out / MATRIX_PNG, cv_names=dmodel.cv_names, input_names=inputs,
-                     cv_units=[unit[c] for c in dmodel.cv_names],
-                     input_units=[unit[m] for m in inputs],
-                     input_roles=["mv"] * dmodel.nu + ["dv"] * dmodel.nd,
-                     time_unit=model.time_unit, fits=fits,
-                     title=f"Step-response matrix: {scn.name}, controller '{label}'")
+    _plot_model(sm, dmodel, model, out / MATRIX_PNG,
+                f"Step-response matrix: {scn.name}, controller '{label}'")
     cont = lin.as_dict()
     cont["delays"] = [{**d, "dead_time": float(d["dead_time"])} for d in cont["delays"]]
 
@@ -412,9 +408,9 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
                          **{k: np.asarray(getattr(dmodel, k), float).tolist()
                             for k in ("A", "B", "Bd", "C", "D", "Dd")}},
             "gain_mv": _finite(gains[:, :dmodel.nu]), "gain_dv": _finite(gains[:, dmodel.nu:]),
-            "open_loop_unstable": unstable,
+            "open_loop_unstable": sm["unstable"],
             "step_response": {"file": STEP_CSV, "plot": MATRIX_PNG, "samples": int(n),
-                              "settling_time": float(n * dmodel.Ts), "settling_note": settle_note,
+                              "settling_time": float(n * dmodel.Ts), "settling_note": sm["note"],
                               "time_column": head[0], "columns": cols},
             "fits": _finite(fits),
         },
@@ -452,3 +448,57 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
     doc["proof"]["elapsed_s"] = round(time.perf_counter() - t_start, 3)
     _write_json(out / BUNDLE_FILE, doc)
     return {"bundle": doc, "proof": proof, "dir": str(out)}
+
+
+def plot_scenario_step_matrix(scenario: Any, path: str | Path, *, which: str = "plant",
+                              fits: bool = True) -> Path:
+    """The step-response matrix plot of a scenario's plant (or controller's) model on its own.
+
+    The model is linearized at the scenario's operating point and discretized at its sample time
+    (dead times as the scenario rounds them); the responses run over the settling horizon, at least
+    the horizon of the scenario's first predictive controller.  With *fits* the recommended
+    low-order fit is drawn over each response.  The ``mpcproto linearize --plot`` option.
+    """
+    from ..linear import linearize
+    from ..scenario import load_scenario
+    from ..scenario.build import controller_model, operating_point, plant_model
+    from ..scenario.schema import Scenario
+
+    scn = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
+    if which not in ("plant", "controller"):
+        raise SettingsError(f"plot_scenario_step_matrix(): which must be 'plant' or 'controller'; "
+                            f"found {which!r}.")
+    model = plant_model(scn) if which == "plant" else controller_model(scn)
+    op = operating_point(scn, model)
+    try:
+        dmodel = linearize(model, op).discretize(scn.sample_time,
+                                                 dead_time=scn.data["scenario"]["dead_time"])
+    except SettingsError as e:
+        raise ScenarioError(str(e), file=scn.file, key="scenario.sample_time") from None
+    horizons = [int(s.get("horizon", 30)) for s in scn.data["controllers"].values()
+                if s["kind"] == "mpc" and isinstance(s.get("horizon", 30), int)]
+    sm = _step_model(dmodel, at_least=horizons[0] if horizons else 1, fits=fits)
+    return _plot_model(sm, dmodel, model, path, f"Step-response matrix: {scn.name} ({which} model)")
+
+
+def _step_model(dmodel: Any, *, at_least: int, fits: bool = True) -> dict[str, Any]:
+    """Settling horizon, step-response coefficients, pair columns, gains and fits of *dmodel*."""
+    n, note = settling_samples(dmodel, at_least=at_least)
+    S = step_coefficients(dmodel, n)
+    cols = pair_columns(dmodel.cv_names, dmodel.mv_names, dmodel.dv_names)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")      # an integrating channel: inf gain, by design
+        gains = np.hstack([dmodel.gain("mv"), dmodel.gain("dv")])
+    unstable = bool(np.any(np.abs(np.linalg.eigvals(dmodel.A)) > 1 + 1e-9)) if dmodel.nx else False
+    return {"n": n, "note": note, "S": S, "columns": cols, "gains": gains, "unstable": unstable,
+            "fits": fit_pairs(S, dmodel.Ts, gains, cols, unstable=unstable) if fits else None}
+
+
+def _plot_model(sm: Mapping[str, Any], dmodel: Any, model: Any, path: str | Path, title: str) -> Path:
+    unit = {v.name: v.unit for v in model.variables()}
+    inputs = list(dmodel.mv_names) + list(dmodel.dv_names)
+    return plot_step_matrix(sm["S"], dmodel.Ts, path, cv_names=dmodel.cv_names, input_names=inputs,
+                            cv_units=[unit[c] for c in dmodel.cv_names],
+                            input_units=[unit[m] for m in inputs],
+                            input_roles=["mv"] * dmodel.nu + ["dv"] * dmodel.nd,
+                            time_unit=model.time_unit, fits=sm["fits"], title=title)
