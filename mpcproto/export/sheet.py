@@ -21,7 +21,7 @@ main { max-width: 1240px; }
 dl.facts { display: grid; grid-template-columns: max-content 1fr; gap: 3px 16px; margin: 6px 0; }
 dl.facts dt { color: var(--muted); } dl.facts dd { margin: 0; }
 td.unit { color: var(--muted); white-space: nowrap; }
-th { white-space: normal; vertical-align: bottom; }
+th, th.num { white-space: normal; vertical-align: bottom; }
 th.grp { background: #e3e9ee; }
 .none { color: #8a96a3; }
 nav { font-size: 13px; margin: 4px 0 0; } nav a { color: #c4d0da; margin-right: 12px; }
@@ -50,10 +50,14 @@ def _pct(v: Any) -> str:
     return "&lt; 0.01 %" if v < 0.01 else f"{v:.2g} %"
 
 
-def _table(head: Sequence[str], rows: Sequence[Sequence[str]], num_from: int = 1) -> str:
-    h = "".join(f'<th class="{"num" if i >= num_from else ""}">{x}</th>' for i, x in enumerate(head))
+def _table(head: Sequence[str], rows: Sequence[Sequence[str]], num_from: int = 1,
+           num_to: int | None = None) -> str:
+    """A table; columns num_from..num_to-1 hold numbers (right-aligned, not wrapped)."""
+    num_to = len(head) if num_to is None else num_to
+    num = lambda i: num_from <= i < num_to  # noqa: E731
+    h = "".join(f'<th class="{"num" if num(i) else ""}">{x}</th>' for i, x in enumerate(head))
     body = "".join("<tr>" + "".join(
-        f'<td class="{"num" if i >= num_from else ("id" if i == 0 else "")}">{c}</td>'
+        f'<td class="{"num" if num(i) else ("id" if i == 0 else "")}">{c}</td>'
         for i, c in enumerate(r)) + "</tr>" for r in rows)
     return f"<table><thead><tr>{h}</tr></thead><tbody>{body}</tbody></table>"
 
@@ -63,53 +67,68 @@ def _units(doc: Mapping[str, Any]) -> dict[str, str]:
             for v in doc["variables"][role]}
 
 
+def _range(low: Any, high: Any, none: str = "none") -> str:
+    """"low … high" with an open side shown as such; both open: *none*."""
+    if low is None and high is None:
+        return f'<span class="none">{_e(none)}</span>'
+    lo = "&minus;&infin;" if low is None else _n(low)
+    hi = "+&infin;" if high is None else _n(high)
+    return f"{lo} &hellip; {hi}"
+
+
 def _limits(doc: Mapping[str, Any]) -> str:
     s, tu = doc["settings"], doc["time_unit"]
-    units = _units(doc)
     ts = doc["sample_time"]
     eff = doc.get("effective_weights", {})
+    op_lim = doc.get("operating_limits", {"mvs": {}, "cvs": {}})
     rows = []
     for v in doc["variables"]["mvs"]:
         m = s["mv"][v["name"]]
+        ol = op_lim["mvs"].get(v["name"], {})
         pref = m["preferred_value"]
+        rate = ol.get("rate")
         rows.append([_e(v["name"]), f'<span class="unit">{_e(v["unit"])}</span>', _n(v["value"]),
-                     _n(m["low"]), _n(m["high"]),
-                     _n(m["max_move"]) + ("" if m["max_move"] is None else
-                                          f' <span class="small">(= {m["max_move"] / ts:.3g}/{_e(tu)})</span>'),
-                     _n(v["physical_low"], none="open"), _n(v["physical_high"], none="open"),
+                     _range(v["physical_low"], v["physical_high"], none="open"),
+                     _range(ol.get("low"), ol.get("high"), none="physical range"),
+                     _n(rate) + ("" if rate is None else f" /{_e(tu)} <span class='small'>(= "
+                                                         f"{rate * ts:.3g} per sample)</span>"),
+                     _range(m["low"], m["high"]), _n(m["max_move"]),
                      _n(m["scale"]), _n(m["move_weight"]),
                      _n(pref, none="operating point") if m["preferred_weight"] else
                      '<span class="none">not used</span>'])
-    mv = _table(["MV", "unit", "operating value", "hard low", "hard high", "max move per sample",
-                 "physical low", "physical high", "scale", "move weight", "preferred value"], rows, 2)
+    mv = _table(["MV", "unit", "operating value", "physical range", "operating limits (study)",
+                 "rate limit (study)", "controller hard limits", "controller max move per sample",
+                 "scale", "move weight", "preferred value"], rows, 2)
     rows = []
     for v in doc["variables"]["cvs"]:
         c = s["cv"][v["name"]]
-        rows.append([_e(v["name"]), f'<span class="unit">{_e(units[v["name"]])}</span>',
-                     _n(v["value"]), _n(c["low"]), _n(c["high"]), str(c["priority"]),
-                     _n(c["weight"]), _n(c["scale"]),
-                     _n(eff.get("cv_weight", {}).get(v["name"])),
-                     _n(c["limit_penalty"]), _n(c["limit_penalty_quadratic"])])
-    cv = _table(["CV", "unit", "operating value", "soft low", "soft high", "priority", "weight",
-                 "scale", "weight used in the QP", "limit penalty (linear)",
-                 "limit penalty (quadratic)"], rows, 2)
+        ol = op_lim["cvs"].get(v["name"], {})
+        rows.append([_e(v["name"]), f'<span class="unit">{_e(v["unit"])}</span>',
+                     _n(v["value"]), _range(ol.get("low"), ol.get("high")),
+                     _range(c["low"], c["high"]), str(c["priority"]), _n(c["weight"]),
+                     _n(c["scale"]), _n(eff.get("cv_weight", {}).get(v["name"])),
+                     f'{_n(c["limit_penalty"])} / {_n(c["limit_penalty_quadratic"])}'])
+    cv = _table(["CV", "unit", "operating value", "limits, zone (study)", "controller soft limits",
+                 "priority", "weight", "scale", "weight used in the QP",
+                 "limit penalty linear / quadratic"], rows, 2)
     rows = [[_e(v["name"]), f'<span class="unit">{_e(v["unit"])}</span>', _n(v["value"]),
              "measured" if v.get("measured", True) else "not measured",
              "yes" if s["dv"][v["name"]]["feedforward"] and v.get("measured", True) else "no"]
             for v in doc["variables"]["dvs"]]
-    dv = _table(["DV", "unit", "operating value", "measurement", "feedforward"], rows, 2) if rows \
-        else "<p class='small'>No disturbance variables.</p>"
+    dv = _table(["DV", "unit", "operating value", "measurement", "feedforward"], rows, 2, 3) \
+        if rows else "<p class='small'>No disturbance variables.</p>"
     return (f"<h3>Manipulated variables (MVs)</h3>{mv}"
-            "<p class='small'>Hard limits are never exceeded by the controller's moves; the "
-            "operator's run-time limits are intersected with them. Scale: the size of a typical "
-            "move, used to make the MVs comparable (weights are per squared scale). "
-            "<i>none</i> = no limit set in the controller (the physical range and the operator's "
-            "limits still apply).</p>"
+            "<p class='small'>Operating limits are what the operator gave the controller at every "
+            "sample of the study (the scenario's limits; none given: the physical range). The "
+            "controller's own hard limits and largest move per sample are intersected with them; "
+            "the moves never exceed any of them. Scale: the size of a typical move, which makes "
+            "the MVs comparable (weights are per squared scale). <i>none</i> = no limit set.</p>"
             f"<h3>Controlled variables (CVs)</h3>{cv}"
-            "<p class='small'>Soft limits (zones) may be exceeded when nothing else is feasible, at "
-            "the cost of the limit penalties. Priority 1 is the most important; each class above "
-            f"the least important multiplies its weights by {_n(s['priority_ratio'])}. The weight "
-            "used in the QP = weight / scale&sup2; &times; the priority factor.</p>"
+            "<p class='small'>CV limits are soft: the controller keeps the CV inside them unless "
+            "nothing else is feasible, at the cost of the limit penalties (per scale). Priority 1 "
+            "is the most important; each class above the least important multiplies its weights "
+            f"by {_n(s['priority_ratio'])}. Weight used in the QP = weight / scale&sup2; &times; "
+            "the priority factor.</p>"
             f"<h3>Disturbance variables (DVs)</h3>{dv}")
 
 
@@ -149,15 +168,18 @@ def _fits(doc: Mapping[str, Any]) -> str:
     tu = doc["time_unit"]
     rows = []
     for f in doc["model"]["fits"]:
-        unit = f"{units.get(f['cv'], '')} per {units.get(f['input'], '')}".strip()
         rec = f.get("recommended")
+        per = f"/{tu}" if rec == "integrating" else ""
+        unit = f"{units.get(f['cv'], '')}{per} per {units.get(f['input'], '')}".strip()
         if not rec:
+            kind = {"none": "no effect"}.get(f.get("kind"), f.get("kind"))
             rows.append([_e(f"{f['cv']} ← {f['input']}"), _e(f["input_role"].upper()),
-                         f'<span class="none">{_e(f.get("kind"))}</span>', "", "", "", "",
+                         f'<span class="none">{_e(kind)}</span>', "", "", "", "",
+                         "" if f.get("kind") == "none" else
                          f'<span class="small">{_e(f.get("note", ""))}</span>'])
             continue
         p = f["fits"][rec]
-        g = _n(p["gain"]) + (f" /{_e(tu)}" if rec == "integrating" else "")
+        g = _n(p["gain"])
         other = [k for k in f["fits"] if k != rec and "error" not in f["fits"][k]]
         alt = "; ".join(f"{k.upper()} fit error {_pct(f['fits'][k]['rms_error_percent'])}" for k in other)
         rows.append([_e(f"{f['cv']} ← {f['input']}"), _e(f["input_role"].upper()),
@@ -168,7 +190,7 @@ def _fits(doc: Mapping[str, Any]) -> str:
                      f'{(" (" + alt + ")") if alt else ""}</span>'])
     return _table(["pair (CV ← input)", "input", "fitted model", "gain",
                    f"time constants [{_e(tu)}]", f"dead time [{_e(tu)}]", "fit error",
-                   "remarks"], rows, 3)
+                   "remarks"], rows, 3, 7)
 
 
 def _pid(doc: Mapping[str, Any]) -> str:

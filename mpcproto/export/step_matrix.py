@@ -36,6 +36,8 @@ SETTLE_FRACTION = 0.01
 #: a fit this close (RMS error, % of the response's largest change) is exact for practical purposes:
 #: no SOPDT is fitted after an FOPDT this good
 EXACT_PERCENT = 0.1
+#: a recommended fit worse than this (RMS error, %) is flagged as rough (common practice, no source)
+ROUGH_PERCENT = 5.0
 #: the longest settling horizon looked at (samples)
 MAX_SAMPLES = 4000
 
@@ -157,6 +159,8 @@ def fit_pairs(S: np.ndarray, Ts: float, gains: np.ndarray, columns: Sequence[dic
         if entry["inverse_response"]:
             entry["note"] = "inverse response (the CV first moves the wrong way): a low-order fit " \
                             "without a zero misses it; use the coefficients"
+        elif entry["recommended"] and (good[entry["recommended"]]["rms_error_percent"] or 0) > ROUGH_PERCENT:
+            entry["note"] = "rough fit (an oscillating or higher-order response): use the coefficients"
         out.append(entry)
     return out
 
@@ -240,7 +244,8 @@ def plot_step_matrix(S: np.ndarray, Ts: float, path: str | Path, *, cv_names: Se
     fig.text(0.995, 0.003, "simulation of a model only, not evidence that a controller is safe "
              "on a real unit", ha="right", va="bottom", fontsize=6.5, color="#666666")
     # fixed margins in inches (tight_layout draws the whole grid twice more)
-    fig.subplots_adjust(left=1.0 / w, right=1 - 0.15 / w, bottom=0.65 / h, top=1 - 1.35 / h,
+    top = 0.2 + 0.17 * (2 + sub.count("\n")) + 0.45          # suptitle lines + column titles
+    fig.subplots_adjust(left=1.0 / w, right=1 - 0.15 / w, bottom=0.65 / h, top=1 - top / h,
                         wspace=0.35, hspace=0.3)
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)

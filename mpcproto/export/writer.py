@@ -187,6 +187,17 @@ def _variables(model: Any, dmodel: Any) -> dict[str, list[dict[str, Any]]]:
     return out
 
 
+def _operating_limits(scn: Any, dmodel: Any) -> dict[str, Any]:
+    """The scenario's ``[limits]`` for the controller's variables: what the operator gave the
+    controllers at every sample of the study (MV rates per time unit)."""
+    lim = scn.data["limits"]
+    return _finite({
+        "mvs": {n: {"low": lim.get(n, {}).get("low"), "high": lim.get(n, {}).get("high"),
+                    "rate": lim.get(n, {}).get("rate")} for n in dmodel.mv_names},
+        "cvs": {n: {"low": lim.get(n, {}).get("low"), "high": lim.get(n, {}).get("high")}
+                for n in dmodel.cv_names}})
+
+
 def _estimator(ctl: Any) -> dict[str, Any]:
     est = getattr(ctl, "estimator_", None)
     m = ctl.dmodel
@@ -417,6 +428,7 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
         "settings": settings_to_plain(ctl),
         "effective_weights": _effective(ctl),
         "estimator": _estimator(ctl),
+        "operating_limits": _operating_limits(scn, dmodel),
         "horizons": {"prediction": N, "moves": int(ctl.control_horizon or N),
                      "move_blocking": f"{int(ctl.control_horizon or N)} moves at samples 0.."
                                       f"{int(ctl.control_horizon or N) - 1}; the MVs are held "
