@@ -21,7 +21,6 @@ and proves the round trip: the controller is rebuilt from the written bundle alo
 from __future__ import annotations
 
 import json
-import math
 import shutil
 import time
 import warnings
@@ -110,22 +109,10 @@ class RecordingController:
 
 # ------------------------------------------------------------------------------------- helpers
 def _finite(v: Any) -> Any:
-    """JSON-able copy: numpy to Python, non-finite floats to null."""
-    if isinstance(v, Mapping):
-        return {str(k): _finite(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [_finite(x) for x in v]
-    if isinstance(v, np.ndarray):
-        return _finite(v.tolist())
-    if isinstance(v, (np.bool_, bool)):
-        return bool(v)
-    if isinstance(v, (np.integer, int)):
-        return int(v)
-    if isinstance(v, (np.floating, float)):
-        return float(v) if math.isfinite(v) else None
-    if isinstance(v, complex):
-        return [v.real, v.imag]
-    return v
+    """JSON-able copy: numpy to Python, non-finite floats to null (the runner's summary rule)."""
+    from ..scenario.runner import _plain
+
+    return _plain(v)
 
 
 def _write_json(path: Path, doc: Any) -> None:
