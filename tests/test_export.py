@@ -269,3 +269,32 @@ def test_cli_export_check_and_plot(wood_berry, tmp_path, capsys):
                  "--plot", str(png)]) == 0
     json.loads(capsys.readouterr().out)          # stdout stays pure JSON
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_a_scenario_runs_the_controller_of_a_bundle(wood_berry, tmp_path):
+    # [controllers.mpc] bundle = "DIR": the nominal run of the bundle's controller scores exactly
+    # what the original scored in the study the bundle carries (same moves, same plant, same seed)
+    out, res = wood_berry
+    text = (ROOT / "scenarios" / "wood_berry_column.toml").read_text()
+    head, tail = text.split("[controllers.mpc]\n", 1)
+    tail = tail.split("\n\n", 1)[1]
+    f = tmp_path / "from_bundle.toml"
+    f.write_text(head + f'[controllers.mpc]\nbundle = "{out.name}"\n\n' + tail)
+    shutil.copytree(out, tmp_path / out.name)       # a relative path: beside the scenario file
+    from mpcproto.scenario.runner import _run
+
+    rec, _ = _run(mp.load_scenario(f), ci=True)
+    assert rec["status"] == "ok", rec["message"]
+    want = res["bundle"]["study"]["controllers"]["mpc"]["kpi"]["cv"]
+    got = rec["controllers"]["mpc"]["kpi"]["cv"]
+    for cv in want:
+        assert got[cv]["iae"] == pytest.approx(want[cv]["iae"], rel=1e-12, abs=1e-12), cv
+    # a bundle of another unit is refused, naming the key
+    other = tmp_path / "other.toml"
+    qt = (ROOT / "scenarios" / "quadruple_tank_nmp.toml").read_text()
+    h, t = qt.split("[controllers.mpc]\n", 1)
+    other.write_text(h + f'[controllers.mpc]\nbundle = "{out}"\n\n' + t.split("\n\n", 1)[1])
+    with pytest.raises(mp.ScenarioError, match=r"controllers\.mpc\.bundle"):
+        from mpcproto.scenario.runner import check_scenario
+
+        check_scenario(other)

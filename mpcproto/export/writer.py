@@ -187,20 +187,17 @@ def _operating_limits(scn: Any, dmodel: Any) -> dict[str, Any]:
 
 def _estimator(ctl: Any) -> dict[str, Any]:
     est = getattr(ctl, "estimator_", None)
-    m = ctl.dmodel
-    cv = ctl.cv or {}
+    cv = settings_to_plain(ctl)["cv"]
     out: dict[str, Any] = {
         "kind": "steady-state Kalman filter on the model augmented with one disturbance state per "
                 "CV (offset-free); late analyzer values are fused at the time they were taken",
         "state_noise": float(ctl.state_noise), "history_samples": int(ctl.history),
         "disturbance_models": {}, "measurement_noise": {}, "disturbance_noise": {}}
     kinds = getattr(est, "kinds_", None)
-    for i, n in enumerate(m.cv_names):
-        row = {**{"disturbance": "auto", "measurement_noise": 1e-3, "disturbance_noise": 1e-2},
-               **cv.get(n, {})}
-        out["disturbance_models"][n] = kinds[i] if kinds is not None else row["disturbance"]
-        out["measurement_noise"][n] = float(row["measurement_noise"])
-        out["disturbance_noise"][n] = float(row["disturbance_noise"])
+    for i, n in enumerate(ctl.dmodel.cv_names):
+        out["disturbance_models"][n] = kinds[i] if kinds is not None else cv[n]["disturbance"]
+        out["measurement_noise"][n] = float(cv[n]["measurement_noise"])
+        out["disturbance_noise"][n] = float(cv[n]["disturbance_noise"])
     for key, attr in (("disturbance_input_matrix", "Bw_"), ("disturbance_output_matrix", "Cw_"),
                       ("kalman_gain", "gain_")):
         M = getattr(est, attr, None)
