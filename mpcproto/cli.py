@@ -4,10 +4,9 @@ Commands
 --------
 ``mpcproto models [--json]``
     List the built-in models with their variables, roles and units.
-``mpcproto linearize SCENARIO.toml [--json] [--model plant|controller] [--plot FILE.png]``
+``mpcproto linearize SCENARIO.toml [--json] [--model plant|controller]``
     Operating point, continuous and discrete matrices, steady-state gains, poles, transmission
-    zeros, RGA (square systems) and a per-pair view; ``--plot`` also draws the step-response
-    matrix (CVs down, MVs/DVs across).
+    zeros, RGA (square systems) and a per-pair view.
 ``mpcproto check SCENARIO.toml...``
     Validate scenario files as deeply as possible without running them (models, operating point,
     names, signal specs, controllers, every study case).
@@ -18,7 +17,8 @@ Commands
     Run every case of one or more studies (see ``mpcproto batch --help``).
 ``mpcproto export SCENARIO.toml --out DIR`` / ``mpcproto export --check DIR``
     Write the hand-off bundle of a predictive controller and prove the round trip, or re-run the
-    proof of an existing bundle (:mod:`mpcproto.export`).
+    proof of an existing bundle; ``mpcproto linearize ... --plot FILE.png`` draws the
+    step-response matrix (both from :mod:`mpcproto.export.cli`).
 
 Exit codes: 0 success (every pass/fail criterion holds), 1 a criterion failed, 2 bad input (a
 one-paragraph message naming the file, key, expected and found; no traceback), 3 an unexpected
@@ -198,16 +198,6 @@ def _cmd_linearize(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _cmd_linearize_and_plot(args: argparse.Namespace) -> int:
-    """``linearize`` and, with ``--plot FILE.png``, the step-response matrix plot."""
-    code = _cmd_linearize(args)
-    if getattr(args, "plot", None):
-        from .export.cli import linearize_plot
-
-        linearize_plot(args)
-    return code
-
-
 # ----------------------------------------------------------------------------------------- check
 def _cmd_check(args: argparse.Namespace) -> int:
     from .scenario import check_scenario, count_cases, load_scenario
@@ -342,9 +332,7 @@ def build_parser() -> argparse.ArgumentParser:
     lz.add_argument("--json", action="store_true", help="print JSON instead of tables")
     lz.add_argument("--model", choices=("plant", "controller"), default="plant",
                     help="linearize the plant (default) or the controller's model")
-    lz.add_argument("--plot", metavar="FILE.png", default=None,
-                    help="also write the step-response matrix plot (CVs down, MVs/DVs across)")
-    lz.set_defaults(handler=_cmd_linearize_and_plot)
+    lz.set_defaults(handler=_cmd_linearize)
 
     ck = sub.add_parser("check", help="validate scenario files without running them",
                         description="Validate scenario files as deeply as possible without "
@@ -358,6 +346,10 @@ def build_parser() -> argparse.ArgumentParser:
     ck.add_argument("--no-controllers", action="store_true",
                     help="do not build the controllers (faster; their settings are not checked)")
     ck.set_defaults(handler=_cmd_check)
+
+    from .export.cli import register_cli as _register_export
+
+    _register_export(sub)       # `export`, and `--plot` on `linearize`
 
     r = sub.add_parser("run", help="run a scenario's nominal case and check its criteria",
                        description="Simulate the scenario's nominal case (sweeps and Monte Carlo "
@@ -377,10 +369,6 @@ def build_parser() -> argparse.ArgumentParser:
                    help="run one case of the scenario's study (an id from mpcproto batch) instead "
                         "of the nominal case")
     r.set_defaults(handler=_cmd_run)
-
-    from .export.cli import register_cli as _register_export
-
-    _register_export(sub)
 
     _batch_error = ""
     try:

@@ -11,6 +11,7 @@ Bad input (a scenario error, a missing or malformed bundle) exits 2 through the 
 from __future__ import annotations
 
 import argparse
+import functools
 from typing import Any
 
 from ..exceptions import SettingsError
@@ -64,7 +65,13 @@ def _cmd_export(args: argparse.Namespace) -> int:
 
 
 def register_cli(sub: Any) -> None:
-    """Add the ``export`` sub-command to the ``mpcproto`` parser's sub-parsers."""
+    """Add the ``export`` sub-command to the ``mpcproto`` parser's sub-parsers, and the
+    ``--plot FILE.png`` option to ``linearize`` when that command is there."""
+    lz = sub.choices.get("linearize")
+    if lz is not None:
+        lz.add_argument("--plot", metavar="FILE.png", default=None,
+                        help="also write the step-response matrix plot (CVs down, MVs/DVs across)")
+        lz.set_defaults(handler=functools.partial(_linearize_then_plot, lz.get_default("handler")))
     e = sub.add_parser(
         "export", help="write the hand-off bundle of a predictive controller (or check one)",
         description="Write a versioned bundle for the control vendor: the operating point, the "
@@ -86,6 +93,14 @@ def register_cli(sub: Any) -> None:
     e.add_argument("--check", metavar="DIR", default=None,
                    help="re-run the round-trip proof of an existing bundle instead of exporting")
     e.set_defaults(handler=_cmd_export)
+
+
+def _linearize_then_plot(linearize: Any, args: argparse.Namespace) -> int:
+    """The ``linearize`` command, then (with ``--plot``) the step-response matrix plot."""
+    code = linearize(args)
+    if args.plot:
+        linearize_plot(args)
+    return code
 
 
 def linearize_plot(args: argparse.Namespace) -> None:
