@@ -22,6 +22,10 @@ Commands
     PNG plots.
 ``mpcproto batch PATHS... --out DIR ...``
     Run every case of one or more studies (see ``mpcproto batch --help``).
+``mpcproto export SCENARIO.toml --out DIR`` / ``mpcproto export --check DIR``
+    Write the hand-off bundle of a predictive controller and prove the round trip, or re-run the
+    proof of an existing bundle; ``mpcproto linearize ... --plot FILE.png`` draws the
+    step-response matrix (both from :mod:`mpcproto.export.cli`).
 
 Exit codes: 0 success (every pass/fail criterion holds), 1 a criterion failed, 2 bad input (a
 one-paragraph message naming the file, key, expected and found; no traceback -- ``--debug`` adds
@@ -536,6 +540,10 @@ def build_parser() -> argparse.ArgumentParser:
     ck.add_argument("--no-controllers", action="store_true",
                     help="do not build the controllers (faster; their settings are not checked)")
     ck.set_defaults(handler=_cmd_check)
+
+    from .export.cli import register_cli as _register_export
+
+    _register_export(sub)       # `export`, and `--plot` on `linearize`
 
     r = sub.add_parser("run", help="run a scenario's nominal case and check its criteria",
                        description="Simulate the scenario's nominal case (sweeps and Monte Carlo "

@@ -1188,3 +1188,11 @@ class PredictiveController:
         diag["step_ms"] = (time.perf_counter() - t_start) * 1e3
         diag["counts"] = dict(self.counts)
         return ControlOutput(u=np.asarray(u, float).copy(), status=status, diagnostics=diag)
+
+    @classmethod
+    def from_bundle(cls, path) -> "PredictiveController":
+        """The controller of a bundle written by ``mpcproto export`` (built), from the bundle alone:
+        its discrete model, names, operating point and settings (see ``docs/export-bundle.md``)."""
+        from ..export.bundle import controller_from_bundle
+
+        return controller_from_bundle(cls, path)

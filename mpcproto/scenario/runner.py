@@ -306,7 +306,9 @@ def _build_controller(label: str, spec: Mapping[str, Any], prep: Prepared) -> An
     settings = {k: v for k, v in spec.items() if k != "kind"}
     key = f"controllers.{label}"
     try:
-        if spec["kind"] == "mpc":
+        if spec["kind"] == "mpc" and "bundle" in settings:
+            ctl = _mpc_from_bundle(settings, prep, key)
+        elif spec["kind"] == "mpc":
             from ..control.mpc import PredictiveController
 
             ctl = PredictiveController.from_settings(prep.dmodel, settings).build()
@@ -320,6 +322,40 @@ def _build_controller(label: str, spec: Mapping[str, Any], prep: Prepared) -> An
         ctl.name = label
     except AttributeError:
         pass
+    return ctl
+
+
+def _mpc_from_bundle(settings: Mapping[str, Any], prep: Prepared, key: str) -> Any:
+    """``bundle = "DIR"``: the predictive controller of an export bundle (``mpcproto export``),
+    rebuilt from the bundle alone; its variables and sample time must be the scenario's."""
+    from ..control.mpc import PredictiveController
+
+    scn = prep.scenario
+    for k in settings:
+        if k != "bundle":
+            raise ScenarioError(f"expected only 'bundle' for a controller taken from a bundle (its "
+                                f"settings are in the bundle); found '{k}' as well.",
+                                file=scn.file, key=f"{key}.{k}")
+    path = settings["bundle"]
+    if not isinstance(path, str) or not path:
+        raise ScenarioError(f"expected the path of a bundle directory (a string); found {path!r}.",
+                            file=scn.file, key=f"{key}.bundle")
+    p = Path(path)
+    if not p.is_absolute() and scn.file and scn.file != "<dict>":
+        p = Path(scn.file).parent / p
+    try:
+        ctl = PredictiveController.from_bundle(p)
+    except SettingsError as e:
+        raise ScenarioError(str(e), file=scn.file, key=f"{key}.bundle") from None
+    m, b = prep.dmodel, ctl.dmodel
+    for role in ("mv", "dv", "cv"):
+        ours, theirs = list(getattr(m, f"{role}_names")), list(getattr(b, f"{role}_names"))
+        if ours != theirs:
+            raise ScenarioError(f"expected a bundle for this scenario's {role.upper()}s {ours}; the "
+                                f"bundle {p} has {theirs}.", file=scn.file, key=f"{key}.bundle")
+    if b.Ts != m.Ts:
+        raise ScenarioError(f"expected a bundle at this scenario's sample time {m.Ts:g}; the bundle "
+                            f"{p} was made at {b.Ts:g}.", file=scn.file, key=f"{key}.bundle")
     return ctl
 
 
