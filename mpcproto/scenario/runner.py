@@ -160,11 +160,38 @@ def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None
     sim = _check_specs(scn, plant)
     _check_criteria_names(scn, plant)
     duration = _duration(scn, ci)
+    _check_run_size(scn, plant, duration, ci)
     if ci:
         _warn_ci_dropped(scn)
     _warn_outside_limits(scn, plant, op, sim, duration)
     return Prepared(scenario=scn, plant=plant, model=model, op=op, model_op=model_op, dmodel=dmodel,
                     sim=sim, duration=duration)
+
+
+#: Most values the closed loops of one case may record (samples x controllers x recorded series).
+#: A recorded value costs up to about 64 bytes with its per-sample diagnostics (measured: 40-62 on
+#: the blending tank), so this keeps the trajectories of one case under about 1 GB.
+MAX_RUN_VALUES = 16_000_000
+_BYTES_PER_VALUE = 64
+
+
+def _check_run_size(scn: Scenario, plant: Any, duration: float, ci: bool) -> None:
+    """Estimate what the runs of a case record, before any is simulated: samples x controllers x
+    series (states, 4 per MV, DVs, 6 per CV and about 20 diagnostics per controller)."""
+    n_ctl = max(1, len(scn.data["controllers"]))
+    series = (len(plant.state_names) + 4 * len(plant.mv_names) + len(plant.dv_names)
+              + 6 * len(plant.cv_names) + 20)
+    samples = int(round(duration / scn.sample_time))
+    values = samples * n_ctl * series
+    if values > MAX_RUN_VALUES:
+        key = "scenario.ci.duration" if ci and "duration" in scn.data["scenario"]["ci"] else \
+            "scenario.duration"
+        raise ScenarioError(
+            f"expected runs that record at most {MAX_RUN_VALUES:,} values per case (samples x "
+            f"controllers x recorded series; about {MAX_RUN_VALUES * _BYTES_PER_VALUE / 1e9:.1f} "
+            f"GB); found {samples:,} samples x {n_ctl} controller(s) x {series} series = "
+            f"{values:.3g} values (about {values * _BYTES_PER_VALUE / 1e9:.3g} GB). Shorten the "
+            f"duration or lengthen the sample time.", file=scn.file, key=key)
 
 
 def _event_times(spec: Any, key: str) -> list[tuple[str, float]]:
