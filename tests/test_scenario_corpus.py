@@ -184,12 +184,13 @@ def test_csv_that_is_not_a_regular_file_or_too_large_is_refused_unread(tmp_path)
     big = tmp_path / "big.csv"
     with big.open("wb") as fh:            # sparse: no disk space used
         fh.truncate(MAX_CSV_BYTES + 1)
-    for name, frag in (("pipe.csv", "is not a regular file"), ("big.csv", "found 64.0 MB")):
+    mb = MAX_CSV_BYTES // 2**20
+    for name, frag in (("pipe.csv", "is not a regular file"), ("big.csv", f"found {mb}.0 MB")):
         scn = _write(tmp_path, "s", rest=f'[disturbances]\ndraw_off = {{ kind = "csv", path = "{name}" }}\n')
         with pytest.raises(mp.ScenarioError) as ei:
             check_scenario(scn, build_controllers=False)
         assert "disturbances.draw_off.path" in str(ei.value) and frag in str(ei.value)
-        assert "at most 64 MB" in str(ei.value)
+        assert f"at most {mb} MB" in str(ei.value)
 
 
 # ------------------------------------------------------------------------- accepted, with a warning

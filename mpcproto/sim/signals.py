@@ -44,6 +44,7 @@ import csv
 import math
 import os
 import stat
+from array import array
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -409,9 +410,9 @@ def _cut(text: str, limit: int = 120) -> str:
     return text if len(text) <= limit else text[:limit - 3] + "..."
 
 
-#: Largest CSV table a signal may read (bytes).  A million rows of time and value fit in a few
-#: tens of MB; the limit keeps a wrong path (a device, a log file) from filling the memory.
-MAX_CSV_BYTES = 64 * 1024 * 1024
+#: Largest CSV table a signal may read (bytes): about a million rows of a time and a value.  The
+#: limit keeps a wrong path (a log file, a data dump) from taking the memory and minutes to read.
+MAX_CSV_BYTES = 16 * 1024 * 1024
 
 
 def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column: int | str = 1,
@@ -444,26 +445,16 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
                             f"or a socket).")
     if st.st_size > MAX_CSV_BYTES:
         raise SettingsError(f"{cant}; found {st.st_size / 2**20:.1f} MB in '{path}'.")
-    rows: list[list[str]] = []
-    n_line = 0
-    try:
+    line = [0]
+
+    def rows():
+        # streamed: only the two chosen columns are kept, as floats
         with path.open(newline="") as fh:
             reader = csv.reader(fh)
             for r in reader:
-                n_line = reader.line_num
+                line[0] = reader.line_num
                 if r and not r[0].lstrip().startswith("#"):
-                    rows.append(r)
-    except csv.Error as exc:
-        raise SettingsError(f"{w}: line {n_line + 1} cannot be read as CSV ({exc}): a cell "
-                            f"longer than {csv.field_size_limit():,} characters or a stray "
-                            f"quote?") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
-        raise SettingsError(f"{what}: 'path': expected a readable CSV text file; found that "
-                            f"'{path}' cannot be read ({why}).") from None
-    if len(rows) < 2:
-        raise SettingsError(f"{w} needs a header row and at least one data row; found {len(rows)} rows.")
-    header = [h.strip() for h in rows[0]]
+                    yield r
 
     def col(c: int | str, key: str) -> int:
         if isinstance(c, int) and not isinstance(c, bool):
@@ -479,20 +470,38 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
             f"{w}: no column named {c!r} for {key}{suggest(str(c), header)}; "
             f"columns: {_cut(', '.join(header))}.")
 
-    ti, vi = col(time_column, "time_column"), col(value_column, "value_column")
-    times, values = [], []
-    for n, r in enumerate(rows[1:], start=2):
-        for idx, dest in ((ti, times), (vi, values)):
-            cell = r[idx].strip() if idx < len(r) else ""
-            try:
-                f = float(cell)
-                if not math.isfinite(f):
-                    raise ValueError
-            except ValueError:
-                raise SettingsError(
-                    f"{w}: row {n}, column '{_cut(header[idx])}' must hold a finite number; "
-                    f"found {shown(cell)} (a gap in the table?).") from None
-            dest.append(f)
+    times, values = array("d"), array("d")
+    n = 0
+    try:
+        it = rows()
+        first = next(it, None)
+        if first is None:
+            raise SettingsError(f"{w} needs a header row and at least one data row; found 0 rows.")
+        header = [h.strip() for h in first]
+        ti, vi = col(time_column, "time_column"), col(value_column, "value_column")
+        n = 1
+        for n, r in enumerate(it, start=2):
+            for idx, dest in ((ti, times), (vi, values)):
+                cell = r[idx].strip() if idx < len(r) else ""
+                try:
+                    f = float(cell)
+                    if not math.isfinite(f):
+                        raise ValueError
+                except ValueError:
+                    raise SettingsError(
+                        f"{w}: row {n}, column '{_cut(header[idx])}' must hold a finite number; "
+                        f"found {shown(cell)} (a gap in the table?).") from None
+                dest.append(f)
+    except csv.Error as exc:
+        raise SettingsError(f"{w}: line {line[0] + 1} cannot be read as CSV ({exc}): a cell "
+                            f"longer than {csv.field_size_limit():,} characters or a stray "
+                            f"quote?") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        raise SettingsError(f"{what}: 'path': expected a readable CSV text file; found that "
+                            f"'{path}' cannot be read ({why}).") from None
+    if n < 2:
+        raise SettingsError(f"{w} needs a header row and at least one data row; found {n} rows.")
     _check_times(times, what=w, where=f"column '{header[ti]}'", max_gap=max_gap,
                  row_of=lambda i: f"row {i + 2}")
-    return times, values
+    return times.tolist(), values.tolist()
