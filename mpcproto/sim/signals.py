@@ -25,7 +25,7 @@ table          ``times`` (strictly increasing), ``values``; *interpolation* = ``
                ``"hold"`` (flat before the first and after the last point)
 csv            ``path``; *time_column* / *value_column* (name or 0-based index; default the
                first and second columns), *interpolation*, *max_gap* (largest allowed time
-               step between rows)
+               step between rows); a regular file of at most 16 MB
 =============  ============================================================================
 
 A list of specs is their sum.  A bare number is an absolute constant.
