@@ -230,7 +230,8 @@ def _warn_ci_dropped(scn: Scenario) -> None:
         if t >= ci and (s["duration"] is None or t < s["duration"]):
             warnings.warn(f"key '{key}': the event at {t:g} is dropped in CI-sized runs "
                           f"(scenario.ci.duration = {ci:g}; mpcproto run --ci, mpcproto batch "
-                          f"without --full): only a full run reaches it.", UserWarning, stacklevel=2)
+                          f"without --full): only a full run reaches it.", UserWarning,
+                          stacklevel=2)
 
 
 def _warn_outside_limits(scn: Scenario, plant: Any, op: Any, sim: Mapping[str, Any],
@@ -263,17 +264,19 @@ def _warn_outside_limits(scn: Scenario, plant: Any, op: Any, sim: Mapping[str, A
             continue
         sig = signal_from_spec(spec, what=f"setpoints.{n}", rng=0)
         sp = np.asarray(sig.value(times), float) + sig.resolve(op.y[j])
-        zone = {"low": lims.get(n, {}).get("low", lo[j]), "high": lims.get(n, {}).get("high", hi[j])}
+        given = lims.get(n, {})
+        zone = {"low": given.get("low", lo[j]), "high": given.get("high", hi[j])}
         for side, bad in (("low", sp < zone["low"]), ("high", sp > zone["high"])):
             if np.any(bad):
                 i = int(np.argmax(bad))
-                src = f"limits.{n}.{side}" if side in lims.get(n, {}) else \
+                src = f"limits.{n}.{side}" if side in given else \
                     f"the physical {side} bound of '{n}'"
                 warnings.warn(
                     f"key 'setpoints.{n}': the setpoint reaches {sp[i]:.6g} "
                     f"{plant.variable(n).unit} at t = {times[i]:g}, "
                     f"{'below' if side == 'low' else 'above'} the CV's {side} limit "
-                    f"{zone[side]:g} {plant.variable(n).unit} ({src}): the controller cannot follow it inside its limits.",
+                    f"{zone[side]:g} {plant.variable(n).unit} ({src}): the controller cannot "
+                    f"follow it inside its limits.",
                     UserWarning, stacklevel=2)
 
 
@@ -615,10 +618,12 @@ def _check_solver_options(scn: Scenario, settings: Mapping[str, Any], key: str) 
         where = f"{key}.solver_options.{name}"
         if kind == "a string":
             if not isinstance(v, str) or not _clarabel_accepts(name, v):
+                import clarabel
+
+                default = getattr(clarabel.DefaultSettings(), name)
                 raise ScenarioError(f"expected a value Clarabel accepts for its option '{name}' "
-                                    f"(its default is "
-                                    f"{getattr(__import__('clarabel').DefaultSettings(), name)!r}); "
-                                    f"found {v!r}.", file=scn.file, key=where)
+                                    f"(its default is {default!r}); found {_shown(v)}.",
+                                    file=scn.file, key=where)
             continue
         if kind == _BOOL:
             ok = isinstance(v, bool)
@@ -627,7 +632,7 @@ def _check_solver_options(scn: Scenario, settings: Mapping[str, Any], key: str) 
         else:
             ok = isinstance(v, (int, float)) and not isinstance(v, bool) and \
                 (math.isfinite(v) or (v == math.inf and name == "time_limit"))
-        in_range = ok and kind == _BOOL or (ok and (v > low if low_open else v >= low) and v <= high)
+        in_range = ok and (kind == _BOOL or ((v > low if low_open else v >= low) and v <= high))
         if not ok or not in_range:
             rng = ("" if kind == _BOOL else
                    f" {'>' if low_open else '>='} {low:g}" + (
