@@ -257,3 +257,27 @@ def test_non_utf8_file_name_gives_readable_csv_and_parsable_junit(tmp_path):
     assert "caf\\udce9" in ET.parse(tmp_path / "j2.xml").getroot()[0].get("name")
     write_summary_csv([rec], tmp_path / "s2.csv")
     assert "caf\\udce9" in (tmp_path / "s2.csv").read_text(encoding="utf-8")
+
+
+# ------------------------------------------------------------------------- solver options
+@pytest.mark.parametrize("solver, options, fragment", [
+    ("osqp", '{ alpha = 2.0 }', "solver_options.alpha': expected a number > 0 and < 2"),
+    ("osqp", '{ rho = 0 }', "solver_options.rho': expected a number > 0"),
+    ("osqp", '{ polishing = 1 }', "solver_options.polishing': expected true or false"),
+    ("clarabel", '{ direct_solve_method = "bogus" }',
+     "solver_options.direct_solve_method': expected a value Clarabel accepts"),
+    ("clarabel", '{ tol_feas = -1.0 }', "solver_options.tol_feas': expected a number >= 0"),
+    ("clarabel", '{ max_iter = 0 }', "solver_options.max_iter': expected an integer >= 1"),
+], ids=lambda v: str(v)[:24])
+def test_solver_options_are_typed_per_solver(tmp_path, solver, options, fragment):
+    scn = _write(tmp_path, "s", rest=f'[controllers.mpc]\nhorizon = 10\nsolver = "{solver}"\n'
+                                     f'solver_options = {options}\n')
+    with pytest.raises(mp.ScenarioError) as ei:
+        check_scenario(scn)
+    assert "key 'controllers.mpc." + fragment in str(ei.value)
+
+
+def test_valid_solver_options_pass(tmp_path):
+    scn = _write(tmp_path, "s", rest='[controllers.mpc]\nhorizon = 10\nsolver_options = '
+                                     '{ eps_abs = 1e-5, max_iter = 200, polishing = true }\n')
+    check_scenario(scn)
