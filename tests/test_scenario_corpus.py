@@ -281,3 +281,17 @@ def test_valid_solver_options_pass(tmp_path):
     scn = _write(tmp_path, "s", rest='[controllers.mpc]\nhorizon = 10\nsolver_options = '
                                      '{ eps_abs = 1e-5, max_iter = 200, polishing = true }\n')
     check_scenario(scn)
+
+
+def test_a_case_that_shortens_the_run_warns_about_the_events_it_cuts_off(tmp_path, capsys):
+    # the file's own duration (600) holds the step at 400; the case with duration 300 drops it:
+    # a warning for that case, not a refusal of the study
+    scn = _write(tmp_path, "s", rest='[disturbances]\ndraw_off = { kind = "step", at = 400.0, size = 0.2 }\n'
+                                     '[controllers.pid]\n[study]\n[[study.sweep]]\n'
+                                     'key = "scenario.duration"\nvalues = [600.0, 300.0]\n')
+    assert main(["check", "--no-controllers", str(scn)]) == 0
+    capsys.readouterr()
+    assert main(["run", str(scn), "--no-plots", "--case", "ok-s001", "--out", str(tmp_path / "o")]) == 0
+    err = capsys.readouterr().err
+    assert "key 'disturbances.draw_off[0].at'" not in err
+    assert "key 'disturbances.draw_off.at': the event at 400 is dropped in this run (it ends at 300)" in err

@@ -161,8 +161,7 @@ def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None
     _check_criteria_names(scn, plant)
     duration = _duration(scn, ci)
     _check_run_size(scn, plant, duration, ci)
-    if ci:
-        _warn_ci_dropped(scn)
+    _warn_events_cut(scn, duration, ci)
     _warn_outside_limits(scn, plant, op, sim, duration)
     return Prepared(scenario=scn, plant=plant, model=model, op=op, model_op=model_op, dmodel=dmodel,
                     sim=sim, duration=duration)
@@ -218,6 +217,18 @@ def _events(scn: Scenario) -> list[tuple[str, float]]:
     out += [(f"faults.{k}.at", float(f["at"])) for k, f in d["faults"].items()
             if isinstance(f.get("at"), (int, float)) and not isinstance(f.get("at"), bool)]
     return out
+
+
+def _warn_events_cut(scn: Scenario, duration: float, ci: bool) -> None:
+    """Warn about every event this run ends before: the CI-sized run length, or a run length a
+    study or a shortened case sets (the file's own duration is checked by check_scenario)."""
+    if ci and "duration" in scn.data["scenario"]["ci"]:
+        _warn_ci_dropped(scn)
+        return
+    for key, t in _events(scn):
+        if t >= duration:
+            warnings.warn(f"key '{key}': the event at {t:g} is dropped in this run (it ends at "
+                          f"{duration:g}).", UserWarning, stacklevel=2)
 
 
 def _warn_ci_dropped(scn: Scenario) -> None:
@@ -305,7 +316,6 @@ def _check_specs(scn: Scenario, plant: Any = None) -> dict[str, Any]:
             sig = made(signal_from_spec, f"{section}.{k}", spec, rng=0)  # checked, built per run
             _check_signal_size(scn, sig, spec, f"{section}.{k}")
             out[k] = spec
-    _check_event_times(scn)
     dvs, setpoints = signals["disturbances"], signals["setpoints"]
     cv_limits: dict[str, Any] = {}
     mv_limits: dict[str, Any] = {}
@@ -397,7 +407,8 @@ def _check_signal_size(scn: Scenario, sig: Any, spec: Any, key: str) -> None:
 
 
 def _check_event_times(scn: Scenario) -> None:
-    """An event at or after the end of the run never happens: refuse it naming its key."""
+    """An event at or after the end of the file's run never happens: refuse it naming its key.
+    (A case that shortens the run only warns, see _warn_events_cut.)"""
     dur = scn.data["scenario"]["duration"]
     if dur is None:
         return
@@ -662,6 +673,7 @@ def check_scenario(scn: Scenario | str | Path, *, build_controllers: bool = True
     """
     if not isinstance(scn, Scenario):
         scn = load_scenario(scn)
+    _check_event_times(scn)
     prep = prepare(scn)
     _warn_ci_dropped(scn)
     if build_controllers:
@@ -829,6 +841,7 @@ def run_scenario(scn: Scenario | str | Path, out_dir: str | Path, *, plots: bool
     """
     if not isinstance(scn, Scenario):
         scn = load_scenario(scn)
+    _check_event_times(scn)
     check_study(scn)   # the study's errors are the file's errors, even when one case runs
     target: Case | Scenario = scn if case_id is None else find_case(scn, case_id)
     out = Path(out_dir)
