@@ -41,7 +41,9 @@ _BAD_XML = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\ufffe\uffff]")
 
 
 def _text(s: Any) -> str:
-    return _BAD_XML.sub("?", str(s))
+    # surrogate escapes (a file name that is not valid UTF-8) become \udcXX, which XML can hold
+    text = str(s).encode("utf-8", "backslashreplace").decode("utf-8")
+    return _BAD_XML.sub("?", text)
 
 
 def _num(v: Any) -> str:

@@ -92,6 +92,12 @@ def _panels(runs, kind: str, wanted, what: str, role: str, height: float):
 
 
 def _save(fig, plt, path: str | Path) -> Path:
+    from matplotlib.text import Text
+
+    for t in fig.findobj(Text):
+        # names come from the user's files: a '$' in a scenario or controller name is text, not
+        # the start of a formula
+        t.set_parse_math(False)
     fig.tight_layout()
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)

@@ -229,7 +229,8 @@ def write_summary_csv(source: str | os.PathLike | Iterable[Mapping[str, Any]],
     n = 0
     path = Path(csv_path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    with path.open("w", newline="", encoding="utf-8") as fh:
+    # a file name that is not valid UTF-8 reaches Python with surrogate escapes: written as \udcXX
+    with path.open("w", newline="", encoding="utf-8", errors="backslashreplace") as fh:
         w = csv.DictWriter(fh, fieldnames=columns, restval="", extrasaction="ignore")
         w.writeheader()
         for rec in _iter_records(source, wanted):

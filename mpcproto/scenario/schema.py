@@ -19,6 +19,7 @@ import json
 import math
 import re
 import sys
+import unicodedata
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -359,13 +360,25 @@ def load_scenario(path: str | Path) -> Scenario:
                             f"byte {e.start}).", file=str(p)) from None
     except tomllib.TOMLDecodeError as e:
         raise ScenarioError(f"expected valid TOML; found a syntax error: {e}.", file=str(p)) from None
-    return parse_scenario(raw, file=str(p), default_name=p.stem)
+    except RecursionError:
+        # the standard TOML reader recurses once per nested array / inline table
+        raise ScenarioError(f"expected tables and arrays nested at most {MAX_DEPTH} deep; found "
+                            f"nesting too deep for the TOML reader (hundreds of '[' or '{{').",
+                            file=str(p)) from None
+    if not raw:
+        raise ScenarioError("expected a scenario (at least the [scenario] and [plant] tables); "
+                            "found an empty file (no keys: only blanks or comments).", file=str(p))
+    # a file name that is not valid UTF-8 reaches Python with surrogate escapes: the default name
+    # shows those bytes as U+FFFD so that it can be written to CSV, JSON and XML
+    stem = p.stem.encode("utf-8", "surrogateescape").decode("utf-8", "replace")
+    return parse_scenario(raw, file=str(p), default_name=stem)
 
 
 def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "scenario") -> Scenario:
     """Validate a scenario given as a (TOML-parsed) mapping; see :func:`load_scenario`."""
     c = _Ctx(file)
     raw = c.table(raw, "")
+    _check_depth(c, raw)
     c.keys(raw, "", TOP_KEYS, required=("plant", "scenario"))
     data: dict[str, Any] = {}
 
@@ -376,6 +389,10 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
     if not name or any(ch in name for ch in "/\\:*?\"<>|") or name.strip() != name:
         c.fail("scenario.name", "a name usable in a file name (no / \\ : * ? \" < > |, no "
                "surrounding blanks)", repr(name))
+    if any(unicodedata.category(ch) in ("Cc", "Cs", "Zl", "Zp") for ch in name):
+        c.fail("scenario.name", "a name on one line without control characters (newline, tab, ...)"
+               + ("" if "name" in s else "; it defaults to the file name: give scenario.name"),
+               ascii(name))
     ts = c.number(s["sample_time"], "scenario.sample_time", low=0.0, strict_low=True)
     dur = None
     if "duration" in s:
@@ -609,6 +626,7 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         draw_specs.append(entry)
     if draw_specs and draws == 0 and full_draws == 0:
         c.fail("study.draws", "a number of Monte Carlo draws >= 1 (study.draw entries are given)", "0")
+    _check_study_size(c, st, sweeps, draws if draw_specs else 0, full_draws if draw_specs else 0)
     data["study"] = {"draws": draws, "full_draws": full_draws, "sweep": sweeps, "draw": draw_specs}
     return Scenario(name=name, data=data, file=file, raw=copy.deepcopy(dict(raw)))
 
@@ -657,6 +675,46 @@ def _check_samples(c: _Ctx, key: str, dur: float, ts: float, raw: Any) -> None:
         c.fail(key, f"at most {MAX_SAMPLES:,} samples per run (duration / sample_time; here at "
                f"most {MAX_SAMPLES * ts:g} in the model's time unit: is the duration in the "
                f"model's time unit?)", f"{_show(raw)}, {dur / ts:.3g} samples")
+
+
+#: Most cases one study may have (grid points x draws, CI-sized or full).  Every case is listed
+#: and checked before the first one runs; a misplaced exponent in ``draws`` would otherwise keep
+#: the batch busy for hours before anything is reported.
+MAX_CASES = 100_000
+
+#: Deepest nesting of tables and arrays a scenario file may have (the deepest real key path,
+#: ``controllers.pid.loops[0].tau_c``, is five deep).
+MAX_DEPTH = 20
+
+
+def _check_study_size(c: _Ctx, st: Mapping, sweeps: list, draws: int, full_draws: int) -> None:
+    for full in (True, False):
+        grid = 1
+        for sw in sweeps:
+            grid *= len(sw["full_values"] if full else sw["values"])
+        n_draw = full_draws if full else draws
+        if grid * max(n_draw, 1) <= MAX_CASES:
+            continue
+        key = ("study.sweep" if grid > MAX_CASES else
+               "study.full_draws" if full and "full_draws" in st else "study.draws")
+        c.fail(key, f"at most {MAX_CASES:,} cases per study (grid points x draws"
+               f"{', with --full' if full else ''})",
+               f"{grid:,} grid point(s) x {max(n_draw, 1):,} draw(s) = {grid * max(n_draw, 1):,} "
+               f"cases")
+
+
+def _check_depth(c: _Ctx, raw: Mapping) -> None:
+    """Refuse tables/arrays nested deeper than MAX_DEPTH (checked without recursion)."""
+    stack: list[tuple[Any, str, int]] = [(raw, "", 0)]
+    while stack:
+        v, key, depth = stack.pop()
+        if depth > MAX_DEPTH:
+            c.fail(key.split("[")[0] or None, f"tables and arrays nested at most {MAX_DEPTH} deep",
+                   f"deeper nesting below '{key[:80]}{'...' if len(key) > 80 else ''}'")
+        if isinstance(v, Mapping):
+            stack.extend((x, f"{key}.{k}" if key else str(k), depth + 1) for k, x in v.items())
+        elif isinstance(v, list):
+            stack.extend((x, f"{key}[{i}]", depth + 1) for i, x in enumerate(v))
 
 
 def _bool(c: _Ctx, v: Any, key: str) -> bool:

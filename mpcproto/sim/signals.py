@@ -25,7 +25,7 @@ table          ``times`` (strictly increasing), ``values``; *interpolation* = ``
                ``"hold"`` (flat before the first and after the last point)
 csv            ``path``; *time_column* / *value_column* (name or 0-based index; default the
                first and second columns), *interpolation*, *max_gap* (largest allowed time
-               step between rows)
+               step between rows); a regular file of at most 16 MB
 =============  ============================================================================
 
 A list of specs is their sum.  A bare number is an absolute constant.
@@ -43,6 +43,8 @@ from __future__ import annotations
 import csv
 import math
 import os
+import stat
+from array import array
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -81,6 +83,11 @@ class Signal:
 
     def __call__(self, t: Any) -> Any:
         return self.value(t)
+
+    def stored_values(self, t_end: float) -> int:
+        """How many values the signal keeps in memory to be evaluated up to *t_end* (a size
+        estimate made before anything is allocated; 0 for a closed-form shape)."""
+        return 0
 
     def resolve(self, reference: float) -> float:
         """Offset to add to :meth:`value`: *reference* for a relative signal, 0 otherwise."""
@@ -191,6 +198,10 @@ class RandomWalk(Signal):
             out[i] = v
         self._path = out
 
+    def stored_values(self, t_end: float) -> int:
+        steps = (float(t_end) - self.start) / self.interval
+        return 0 if not steps > 0 else (int(min(steps, 1e18)) + 1)
+
     def shape(self, t):
         k = np.floor((t - self.start) / self.interval).astype(np.int64)
         k = np.clip(k, -1, None)
@@ -227,6 +238,9 @@ class Sum(Signal):
         bases = [p.base for p in parts if p.base is not None]
         super().__init__(bases[0] if bases else None)
         self.parts = list(parts)
+
+    def stored_values(self, t_end: float) -> int:
+        return sum(p.stored_values(t_end) for p in self.parts)
 
     def shape(self, t):
         out = np.zeros(t.shape)
@@ -392,33 +406,55 @@ def _check_times(times: Sequence[float], *, what: str, where: str, max_gap: floa
                 f"{t[i + 1]:g} ({row_of(i + 1)}), more than max_gap={max_gap:g}.")
 
 
+def _cut(text: str, limit: int = 120) -> str:
+    return text if len(text) <= limit else text[:limit - 3] + "..."
+
+
+#: Largest CSV table a signal may read (bytes): about a million rows of a time and a value.  The
+#: limit keeps a wrong path (a log file, a data dump) from taking the memory and minutes to read.
+MAX_CSV_BYTES = 16 * 1024 * 1024
+
+
 def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column: int | str = 1,
                    what: str = "csv table", max_gap: float | None = None
                    ) -> tuple[list[float], list[float]]:
     """Read (times, values) from a CSV file with a header row.
 
     Empty or non-numeric cells, unsorted or repeated times and (with *max_gap*) time gaps larger
-    than *max_gap* raise :class:`SettingsError` naming the file, the row and the column.
+    than *max_gap* raise :class:`SettingsError` naming the file, the row and the column.  Only a
+    regular file of at most :data:`MAX_CSV_BYTES` is read (not a device, a pipe or a folder), and
+    a cell longer than the CSV reader's field limit is refused naming its row.
     """
     path = Path(path)
     w = f"{what}: file '{path}'"
+    cant = f"{what}: 'path': expected a readable CSV file of at most {MAX_CSV_BYTES // 2**20} MB"
     try:
-        with path.open(newline="") as fh:
-            rows = [r for r in csv.reader(fh) if r and not r[0].lstrip().startswith("#")]
+        st = path.stat()
     except FileNotFoundError:
         raise SettingsError(f"{what}: 'path': expected a readable CSV file; found that '{path}' "
                             f"cannot be read: there is no file there ({path.resolve()}; a "
                             f"relative path is taken from the scenario's folder).") from None
-    except IsADirectoryError:
+    except OSError as exc:
+        raise SettingsError(f"{cant}; found that '{path}' cannot be read "
+                            f"({exc.strerror or exc}).") from None
+    if stat.S_ISDIR(st.st_mode):
         raise SettingsError(f"{what}: 'path': expected a readable CSV file; found that '{path}' "
-                            f"cannot be read: it is a directory.") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
-        raise SettingsError(f"{what}: 'path': expected a readable CSV text file; found that "
-                            f"'{path}' cannot be read ({why}).") from None
-    if len(rows) < 2:
-        raise SettingsError(f"{w} needs a header row and at least one data row; found {len(rows)} rows.")
-    header = [h.strip() for h in rows[0]]
+                            f"cannot be read: it is a directory.")
+    if not stat.S_ISREG(st.st_mode):
+        raise SettingsError(f"{cant}; found that '{path}' is not a regular file (a device, a pipe "
+                            f"or a socket).")
+    if st.st_size > MAX_CSV_BYTES:
+        raise SettingsError(f"{cant}; found {st.st_size / 2**20:.1f} MB in '{path}'.")
+    line = [0]
+
+    def rows():
+        # streamed: only the two chosen columns are kept, as floats
+        with path.open(newline="") as fh:
+            reader = csv.reader(fh)
+            for r in reader:
+                line[0] = reader.line_num
+                if r and not r[0].lstrip().startswith("#"):
+                    yield r
 
     def col(c: int | str, key: str) -> int:
         if isinstance(c, int) and not isinstance(c, bool):
@@ -432,22 +468,40 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
             return header.index(c)
         raise SettingsError(
             f"{w}: no column named {c!r} for {key}{suggest(str(c), header)}; "
-            f"columns: {', '.join(header)}.")
+            f"columns: {_cut(', '.join(header))}.")
 
-    ti, vi = col(time_column, "time_column"), col(value_column, "value_column")
-    times, values = [], []
-    for n, r in enumerate(rows[1:], start=2):
-        for idx, dest in ((ti, times), (vi, values)):
-            cell = r[idx].strip() if idx < len(r) else ""
-            try:
-                f = float(cell)
-                if not math.isfinite(f):
-                    raise ValueError
-            except ValueError:
-                raise SettingsError(
-                    f"{w}: row {n}, column '{header[idx]}' must hold a finite number; found "
-                    f"{cell!r} (a gap in the table?).") from None
-            dest.append(f)
+    times, values = array("d"), array("d")
+    n = 0
+    try:
+        it = rows()
+        first = next(it, None)
+        if first is None:
+            raise SettingsError(f"{w} needs a header row and at least one data row; found 0 rows.")
+        header = [h.strip() for h in first]
+        ti, vi = col(time_column, "time_column"), col(value_column, "value_column")
+        n = 1
+        for n, r in enumerate(it, start=2):
+            for idx, dest in ((ti, times), (vi, values)):
+                cell = r[idx].strip() if idx < len(r) else ""
+                try:
+                    f = float(cell)
+                    if not math.isfinite(f):
+                        raise ValueError
+                except ValueError:
+                    raise SettingsError(
+                        f"{w}: row {n}, column '{_cut(header[idx])}' must hold a finite number; "
+                        f"found {shown(cell)} (a gap in the table?).") from None
+                dest.append(f)
+    except csv.Error as exc:
+        raise SettingsError(f"{w}: line {line[0] + 1} cannot be read as CSV ({exc}): a cell "
+                            f"longer than {csv.field_size_limit():,} characters or a stray "
+                            f"quote?") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        raise SettingsError(f"{what}: 'path': expected a readable CSV text file; found that "
+                            f"'{path}' cannot be read ({why}).") from None
+    if n < 2:
+        raise SettingsError(f"{w} needs a header row and at least one data row; found {n} rows.")
     _check_times(times, what=w, where=f"column '{header[ti]}'", max_gap=max_gap,
                  row_of=lambda i: f"row {i + 2}")
-    return times, values
+    return times.tolist(), values.tolist()
