@@ -97,18 +97,16 @@ def test_real_process_exit_code_and_stderr(tmp_path):
     assert "Traceback" not in r.stderr
 
 
-@pytest.mark.filterwarnings("ignore:the dead time on 'feed' = 3.4")
 def test_linearize_wood_berry_rga(capsys):
     # Wood & Berry (1973) column: relative gain of the top <- reflux pair 2.01 (widely quoted, e.g.
     # Skogestad & Postlethwaite, Multivariable Feedback Control -- from memory)
-    with pytest.warns(UserWarning, match="8.1 is not a multiple of the sample time 1"):
-        code, out, err = run_cli(capsys, "linearize", "scenarios/wood_berry_column.toml", "--json")
+    code, out, err = run_cli(capsys, "linearize", "scenarios/wood_berry_column.toml", "--json")
     assert code == 0, err
     rep = json.loads(out)
     assert rep["names"]["cvs"] == ["top_composition", "bottom_composition"]
     assert rep["rga"][0][0] == pytest.approx(2.01, abs=0.01)
     np.testing.assert_allclose(rep["gain"], [[12.8, -18.9], [6.6, -19.4]], rtol=1e-9)  # published
-    # dead times rounded to whole samples are reported as delay states of the discrete model
+    # dead times are delay states of the discrete model (the fractional feed dead times exact)
     assert any(s.startswith("steam[k-") for s in rep["names"]["discrete_states"])
 
 

@@ -47,8 +47,10 @@ def test_linearize_text_names_integrating_entries(capsys):
     assert "integrating (ramp rate" in out
 
 
-def test_check_warnings_name_their_file(capsys):
-    f = ROOT / "scenarios" / "wood_berry_column.toml"
+def test_check_warnings_name_their_file(capsys, tmp_path):
+    f = tmp_path / "wb_round.toml"              # asks the controllers to round its dead times
+    text = (ROOT / "scenarios" / "wood_berry_column.toml").read_text()
+    f.write_text(text.replace("[scenario]\n", '[scenario]\ndead_time = "round"\n', 1))
     code, _, err = run_cli(capsys, "check", "--no-controllers", str(f))
     assert code == 0
     warns = [ln for ln in err.splitlines() if "warning" in ln]
@@ -74,13 +76,16 @@ def test_run_says_what_each_verdict_number_is(capsys, tmp_path):
     assert code in (0, 1)
 
 
-def test_recorded_warnings_reach_the_caller_and_the_format_is_restored(capsys):
+def test_recorded_warnings_reach_the_caller_and_the_format_is_restored(capsys, tmp_path):
     import warnings
 
     before = warnings.formatwarning
     with warnings.catch_warnings(record=True) as rec:
         warnings.simplefilter("always")
-        main(["linearize", str(ROOT / "scenarios" / "wood_berry_column.toml")])
+        text = (ROOT / "scenarios" / "wood_berry_column.toml").read_text()
+        path = tmp_path / "wb_round.toml"        # asks the controllers to round its dead times
+        path.write_text(text.replace("[scenario]\n", '[scenario]\ndead_time = "round"\n', 1))
+        main(["linearize", str(path)])
     capsys.readouterr()
     assert any("8.1" in str(w.message) for w in rec)
     assert warnings.formatwarning is before

@@ -414,7 +414,7 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         "duration": dur,
         "sample_time": ts,
         "seed": seed,
-        "dead_time": c.string(s.get("dead_time", "round"), "scenario.dead_time", ("round", "refuse")),
+        "dead_time": c.string(s.get("dead_time", "exact"), "scenario.dead_time", ("exact", "round", "refuse")),
         "ci": ci,
     }
 
