@@ -837,8 +837,11 @@ class PredictiveController:
             ``active_mv_limit_names``, ``active_rate_limits``, ``limits_over_rate`` (MVs moved
             more than their rate limit because a hard limit won), ``rejected_measurements``,
             ``n_rejected_measurements``, ``mvs_not_following``, ``n_mvs_not_following``,
-            ``late_measurements``, ``target_status``, ``target_u``, ``target_y``, ``clipped``
-            and ``counts``.
+            ``late_measurements``, ``dropped_measurements`` / ``n_dropped_measurements``
+            (readings older than the estimator's history: dropped, and the step's status says
+            ``measurement_rejected``), ``backup_solves`` (0-2: solves of this step the backup
+            solver rescued), ``target_status``, ``target_u``, ``target_y``, ``clipped`` and
+            ``counts``.
         """
         if not self.is_built:
             self._check_built("step")
@@ -887,6 +890,8 @@ class PredictiveController:
             self.counts["late_measurements"] += len(info["late"])
         diag["rejected_measurements"] = [names[i] for i in info["rejected"]]
         diag["late_measurements"] = [names[i] for i in info["late"]]
+        diag["dropped_measurements"] = [names[i] for i in info["too_old"]]
+        diag["backup_solves"] = 0
         x = self.estimator_.state
         w = self.estimator_.disturbance_estimate
         self.counts["steps"] += 1
@@ -1006,6 +1011,7 @@ class PredictiveController:
                                           options=self._backup_opts)
                 if res2.accepted:
                     self.counts["backup_solves"] += 1
+                    diag["backup_solves"] = diag.get("backup_solves", 0) + 1
                     res = res2
             diag["target_iterations"] = res.iterations     # 0: the active set was re-used
             if res.accepted:
@@ -1054,6 +1060,7 @@ class PredictiveController:
                 diag["first_solver_status"] = res.status
                 if res2.accepted:
                     self.counts["backup_solves"] += 1
+                    diag["backup_solves"] = diag.get("backup_solves", 0) + 1
                     res2.solve_ms += res.solve_ms
                     res = res2
         else:
@@ -1186,7 +1193,9 @@ class PredictiveController:
         # faults the controller saw show in the status of an otherwise accepted step
         diag["n_rejected_measurements"] = len(diag.get("rejected_measurements", ()))
         diag["n_mvs_not_following"] = len(diag.get("mvs_not_following", ()))
-        if status == STATUS_OK and diag["n_rejected_measurements"]:
+        diag["n_dropped_measurements"] = len(diag.get("dropped_measurements", ()))
+        if status == STATUS_OK and (diag["n_rejected_measurements"]
+                                    or diag["n_dropped_measurements"]):
             status = STATUS_MEASUREMENT_REJECTED
         elif status == STATUS_OK and diag["n_mvs_not_following"]:
             status = STATUS_MV_NOT_FOLLOWING
