@@ -890,7 +890,10 @@ class PredictiveController:
             self.counts["late_measurements"] += len(info["late"])
         diag["rejected_measurements"] = [names[i] for i in info["rejected"]]
         diag["late_measurements"] = [names[i] for i in info["late"]]
-        diag["dropped_measurements"] = [names[i] for i in info["too_old"]]
+        # readings older than the estimator's history (one taken before the run started, the
+        # steady state an analyzer reports first, is no loss)
+        diag["dropped_measurements"] = [names[i] for i in info["too_old"]
+                                        if self.estimator_.sample_index(taken[i]) >= 0]
         diag["backup_solves"] = 0
         x = self.estimator_.state
         w = self.estimator_.disturbance_estimate
