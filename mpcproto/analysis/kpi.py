@@ -11,13 +11,25 @@ Definitions (sums over samples, each sample of length ``Ts``; ``e = setpoint - y
 ``ise``            sum e^2 Ts                       (integral of squared error)
 ``itae``           sum (t - t0) |e| Ts              (time-weighted; t0 = start of the run)
 ``max_abs_error``  max |e|
-``settling_time``  time from the last setpoint change (if the setpoint never moves: from the
-                   first sample where |e| leaves the band, i.e. the upset) until |e| stays inside
-                   the band for good; 0 if it never leaves; ``None`` if it never settles.  Band: ``band_fraction * |setpoint step|`` after a step, otherwise
-                   ``band_fraction * |setpoint|``, unless given per CV in ``bands``.
-``overshoot``      after the last setpoint step, the largest excursion beyond the new setpoint in
-                   the direction of the step, as a fraction of the step (0.1 = 10 %); ``None``
-                   without a step
+``steps``          one entry per setpoint change of the CV (a ramp is one change); its WINDOW
+                   runs from the change to the next setpoint change of ANY CV (or the end):
+                   ``at``, ``size``, ``window_end``, ``band``, ``settling_time``, ``overshoot``,
+                   ``iae`` of the window
+``settling_time``  per change: time from the change until |e| stays inside the band up to the
+                   end of its window (0 if it never leaves; None if still outside at the end of
+                   the window); reported: the worst change (None if any is None).  Band:
+                   ``band_fraction * |setpoint step|``.  A CV whose setpoint never moves (an
+                   upset): from the first sample where |e| leaves the band, band
+                   ``band_fraction *`` the CV's physical range (``meta["cv_bounds"]``), None when
+                   the range is unbounded.  A band given per CV in ``bands`` replaces both.
+                   ``settling_band`` / ``settling_band_basis`` say which band was used.
+                   (IAE/ISE/ITAE and the 2 % settling band: Seborg, Edgar & Mellichamp, Process
+                   Dynamics and Control; from memory)
+``overshoot``      per change: the largest excursion beyond the new setpoint in the direction of
+                   the step within its window, as a fraction of the step (0.1 = 10 %); reported:
+                   the worst change; ``None`` without a change
+``interaction``    the CV's largest |e| in the windows opened by ANOTHER CV's setpoint change
+                   (``max_deviation``, ``caused_by``, ``at``); None when no other CV moved
 ``total_travel``   sum |u[k] - u[k-1]| of an applied MV
 ``time_at_limit``  time an applied MV spends at its operating limit (within a small tolerance)
 
