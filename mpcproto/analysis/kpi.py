@@ -385,7 +385,7 @@ def controller_health(traj: Trajectory, *, slow_fraction: float = 0.5) -> dict[s
 
 #: thresholds of :func:`run_flags` (common practice, no source: judgement, tune as needed)
 CHATTER_REVERSALS = 0.5      # share of samples where the move reverses sign
-CHATTER_MOVE = 0.01          # ... with a mean reversing move above this fraction of the MV range
+CHATTER_MOVE = 0.02          # ... with a mean reversing move above this fraction of the MV range
 TRAVEL_RATIO = 20.0          # travel above this multiple of the MV's net excursion (max - min)
 OFF_SETPOINT = 0.05          # mean |error| over the last fifth of the run, fraction of the scale
 
