@@ -47,6 +47,19 @@ def test_settling_of_an_upset_does_not_depend_on_the_unit_zero():
     free = traj(c.series("y", "c"), sp=60.0, Ts=10.0)
     pf = mp.cv_performance(free, "c")
     assert pf["settling_time"] is None and pf["settling_band"] is None
+    # an operating zone of 55-65 degC, narrower than the range: 2 % of 10 = 0.2 degC;
+    # 5.4 exp(-s/300) <= 0.2 from s = 300 ln(27) = 989 s -> the sample at 990 s
+    zoned = traj(c.series("y", "c"), sp=60.0, lo=55.0, hi=65.0, Ts=10.0, cv_bounds=(0.0, 150.0))
+    pz = mp.cv_performance(zoned, "c")
+    assert pz["settling_band"] == pytest.approx(0.2) and pz["settling_band_basis"] == "0.02 x CV limit zone"
+    assert pz["settling_time"] == 990.0
+    # a criterion states its own band (CV units): 5.4 exp(-s/300) <= 1.0 from s = 506 s -> 510 s
+    block = mp.summarize(c)
+    crit = [{"check": "settling_time_below", "cv": "c", "limit": 600.0, "band": 1.0, "name": "st"}]
+    (v,) = evaluate_controller(crit, "hand", block, c)
+    assert v["value"] == 510.0 and v["passed"] and v["band"] == 1.0
+    (v,) = evaluate_controller(crit, "hand", block, None)      # no trajectory: no figure, a failure
+    assert v["value"] is None and not v["passed"]
 
 
 # ------------------------------------------------------------------ 2. overshoot versus interaction
@@ -111,6 +124,9 @@ def test_criterion_tolerance_is_validated(tmp_path):
     assert load_scenario(p).data["criteria"][0]["tolerance"] == 0.001
     p.write_text(base + 'check = "iae_below"\ncv = "level"\nlimit = 1.0\ntolerance = 0.1\n')
     with pytest.raises(mp.ScenarioError, match=r"criteria\[0\]\.tolerance.*no_limit_violation"):
+        load_scenario(p)
+    p.write_text(base + 'check = "settling_time_below"\ncv = "level"\nlimit = 1.0\nband = 0.0\n')
+    with pytest.raises(mp.ScenarioError, match=r"criteria\[0\]\.band"):
         load_scenario(p)
 
 
@@ -238,6 +254,8 @@ def test_mpc_diagnostics_reach_the_trajectory_and_the_summary():
     block = mp.summarize(tr)
     assert block["solver"]["controller_counts"]["steps"] == len(tr)
     assert block["solver"]["backup_solver_rescues"] == counts["backup_solves"]
+    assert block["solver"]["relaxed_cv_steps"] == {
+        cv: int(tr["diag.relaxed_cvs." + cv].sum()) for cv in tr.meta["cvs"]}
 
 
 def test_backup_solver_rescues_are_counted_not_hidden_behind_ok():

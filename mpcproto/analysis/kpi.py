@@ -20,8 +20,10 @@ Definitions (sums over samples, each sample of length ``Ts``; ``e = setpoint - y
                    the window); reported: the worst change (None if any is None).  Band:
                    ``band_fraction * |setpoint step|``.  A CV whose setpoint never moves (an
                    upset): from the first sample where |e| leaves the band, band
-                   ``band_fraction *`` the CV's physical range (``meta["cv_bounds"]``), None when
-                   the range is unbounded.  A band given per CV in ``bands`` replaces both.
+                   ``band_fraction *`` the width of the CV's limit zone (``hi - lo``, narrowest
+                   over the run) where it is finite and narrower than the physical range, else
+                   of the physical range (``meta["cv_bounds"]``); None when both are unbounded.
+                   A band given per CV in ``bands`` replaces all of these.
                    ``settling_band`` / ``settling_band_basis`` say which band was used.
                    (IAE/ISE/ITAE and the 2 % settling band: Seborg, Edgar & Mellichamp, Process
                    Dynamics and Control; from memory)
@@ -88,6 +90,16 @@ def cv_range(traj: Trajectory, cv: str) -> float | None:
         return None
     span = float(b[1]) - float(b[0])
     return span if math.isfinite(span) and span > 0 else None
+
+
+def _zone_width(traj: Trajectory, cv: str) -> float | None:
+    """The narrowest finite width ``hi - lo`` of the CV's limit zone over the run (None if none)."""
+    if not (traj.has("lo", cv) and traj.has("hi", cv)):
+        return None
+    with np.errstate(invalid="ignore"):
+        w = traj.series("hi", cv) - traj.series("lo", cv)
+    w = w[np.isfinite(w) & (w > 0)]
+    return float(w.min()) if w.size else None
 
 
 def _all_moves(traj: Trajectory) -> dict[str, list[tuple[int, float]]]:
@@ -158,13 +170,16 @@ def cv_performance(traj: Trajectory, cv: str, *, band: float | None = None,
         out["settling_band_basis"] = "given" if band is not None else \
             f"{band_fraction:g} x |setpoint step|"
     else:   # regulatory: from the first time the error leaves the band (the upset) on
+        zone = _zone_width(traj, cv)
         span = cv_range(traj, cv)
         if band is not None:
             b, basis = band, "given"
+        elif zone is not None and (span is None or zone < span):
+            b, basis = band_fraction * zone, f"{band_fraction:g} x CV limit zone"
         elif span is not None:
             b, basis = band_fraction * span, f"{band_fraction:g} x CV range"
         else:
-            b, basis = None, "none: the CV has no finite range; give a band"
+            b, basis = None, "none: the CV has no finite range or limits; give a band"
         out["settling_band"], out["settling_band_basis"] = b, basis
         if b is not None:
             first_out = np.flatnonzero(ae > b)
@@ -335,7 +350,9 @@ def controller_health(traj: Trajectory, *, slow_fraction: float = 0.5) -> dict[s
     ``dropped_measurements`` (readings older than the estimator's history,
     ``diag.n_dropped_measurements``) and ``backup_solver_rescues`` (steps where the first
     solver failed and the backup solver's answer was used, ``diag.backup_solves``); a counter
-    the controller does not report is None.  ``controller_counts`` is the controller's own
+    the controller does not report is None.  ``relaxed_cv_steps`` counts, per CV, the steps whose
+    plan relaxed that CV's soft limits (``diag.relaxed_cvs.<cv>``; None when not reported).
+    ``controller_counts`` is the controller's own
     running count at the end of the run (``meta["controller_counts"]``), where it keeps one.
     """
     if not slow_fraction > 0:
@@ -378,6 +395,9 @@ def controller_health(traj: Trajectory, *, slow_fraction: float = 0.5) -> dict[s
                              ("backup_solver_rescues", "diag.backup_solves"))},
         "median_step_ms": med_s, "p95_step_ms": p95_s, "worst_fraction": worst_s,
         "median_solve_ms": med_q, "p95_solve_ms": p95_q, "worst_qp_fraction": worst_q,
+        "relaxed_cv_steps": ({c: int(np.nansum(traj.columns[f"diag.relaxed_cvs.{c}"]))
+                              for c in traj.names("y") if f"diag.relaxed_cvs.{c}" in traj.columns}
+                             or None),
         "controller_counts": dict(traj.meta.get("controller_counts") or {}),
         "events": events,
     }

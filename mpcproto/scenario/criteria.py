@@ -7,7 +7,8 @@ Each verdict is plain data ``{"name", "check", "value", "limit", "passed"}`` (pl
 CV that has no setpoint), and a criterion on a missing figure fails.
 
 The figures come from :func:`mpcproto.analysis.summarize` (KPIs, violation events, solver health)
-and, for ``peak_below`` / ``low_above``, from the trajectory's true values.  ``no_limit_violation``
+and, for ``peak_below`` / ``low_above`` and a ``settling_time_below`` with its own ``band``, from
+the trajectory's true values.  ``no_limit_violation``
 counts CV events and MV hard-limit events (commanded and applied) whose peak excess passes the
 criterion's ``tolerance`` (a fraction of the variable's physical range, default
 :data:`LIMIT_TOLERANCE`); its message gives the worst excess.  Besides the scenario's own
@@ -116,8 +117,16 @@ def evaluate_controller(criteria: Sequence[Mapping[str, Any]], label: str, block
             continue
         check = cr["check"]
         if check in _KPI_OF:
-            v = _num(kpi.get("cv", {}).get(cr["cv"], {}).get(_KPI_OF[check]))
-            out.append(_verdict(cr, v, cr["limit"], v is not None and v <= cr["limit"]))
+            extra = {}
+            if "band" in cr:      # a settling band stated by the criterion (CV units)
+                from ..analysis import cv_performance
+
+                v = None if traj is None else _num(
+                    cv_performance(traj, cr["cv"], band=cr["band"])["settling_time"])
+                extra["band"] = cr["band"]
+            else:
+                v = _num(kpi.get("cv", {}).get(cr["cv"], {}).get(_KPI_OF[check]))
+            out.append(_verdict(cr, v, cr["limit"], v is not None and v <= cr["limit"], **extra))
         elif check == "travel_below":
             v = _num(kpi.get("mv", {}).get(cr["mv"], {}).get("total_travel"))
             out.append(_verdict(cr, v, cr["limit"], v is not None and v <= cr["limit"]))
