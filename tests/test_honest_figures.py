@@ -334,3 +334,56 @@ def test_chattering_mv_and_a_cv_left_off_setpoint_are_flagged():
     smooth = dict(cols, **{"u.heater": 100.0 + 500.0 * (1 - np.exp(-np.arange(n) / 20.0)),
                            "y.temp": np.full(n, 72.0)})
     assert run_flags(mp.Trajectory(t, smooth, {}, meta)) == []
+
+
+SATURATED = """
+[scenario]
+name = "hot_wash"
+sample_time = 10.0
+duration = 600.0
+seed = 3
+
+[plant]
+model = "blending_tank"
+
+[operating_point]
+dvs = { draw_off = 1.5 }
+targets = { level = 1.2, concentration = 2.0, temperature = 75.0 }
+
+[setpoints]
+temperature = { kind = "step", at = 100.0, size = 20.0 }
+
+[controllers.pid]
+rule = "simc"
+pairs = { level = "water_flow", concentration = "caustic_flow", temperature = "heater_duty" }
+tau_c = 120.0
+
+[[criteria]]
+check = "iae_below"
+cv = "level"
+limit = 100.0
+"""
+
+
+def test_a_cv_left_off_setpoint_is_noted_in_console_summary_and_report(tmp_path, capsys):
+    """The heater saturates (it sits at its high limit) and the temperature cannot follow a +20 degC
+    step within the run; the criteria only look at the level, so the run passes -- and says so."""
+    import json
+
+    from mpcproto.cli import main
+    from mpcproto.report.html import write_html_report
+
+    p = tmp_path / "hot.toml"
+    p.write_text(SATURATED)
+    code = main(["run", str(p), "--out", str(tmp_path / "out"), "--no-plots"])
+    out = capsys.readouterr().out
+    assert code == 0                                          # every verdict passed
+    assert "note  pid: CV temperature ends" in out and "(no criterion checks it)" in out
+    rec = json.loads((tmp_path / "out" / "summary.json").read_text())
+    (flag,) = [f for f in rec["controllers"]["pid"]["flags"] if f["kind"] == "cv_off_setpoint"]
+    # threshold: 5 % of the temperature CV's range 0-100 degC (the model's bounds)
+    assert flag["variable"] == "temperature" and flag["value"] > 5.0
+    assert rec["controllers"]["pid"]["kpi"]["mv"]["heater_duty"]["time_at_high"] > 0
+    html = tmp_path / "r.html"
+    write_html_report([rec], html)
+    assert "To notice" in html.read_text() and "CV temperature ends" in html.read_text()
