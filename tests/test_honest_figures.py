@@ -350,6 +350,9 @@ model = "blending_tank"
 dvs = { draw_off = 1.5 }
 targets = { level = 1.2, concentration = 2.0, temperature = 75.0 }
 
+[disturbances]
+draw_off = { kind = "step", at = 100.0, size = 0.3 }
+
 [setpoints]
 temperature = { kind = "step", at = 100.0, size = 20.0 }
 
@@ -366,8 +369,8 @@ limit = 100.0
 
 
 def test_a_cv_left_off_setpoint_is_noted_in_console_summary_and_report(tmp_path, capsys):
-    """The heater saturates (it sits at its high limit) and the temperature cannot follow a +20 degC
-    step within the run; the criteria only look at the level, so the run passes -- and says so."""
+    """The draw-off rises by 0.3 kg/s and the temperature setpoint by 20 degC: the heater saturates
+    (it sits at its high limit) and the temperature cannot follow within the run; the criteria only look at the level, so the run passes -- and says so."""
     import json
 
     from mpcproto.cli import main
