@@ -316,7 +316,10 @@ class ClosedLoop:
         }
         self._status: list[str] = []
         self._diag: list[dict[str, Any]] = []
-        self._counts: dict[str, Any] = {}
+        self._counts: Mapping[str, Any] = {}
+        self._role_names = {"cv": list(m.cv_names), "mv": list(m.mv_names)}
+        self._diag_cols = {key: [f"{key}.{n}" for n in self._role_names[role]]
+                           for key, role in {**_VECTOR_DIAG, **_NAMES_DIAG}.items()}
         self._fault_flags = np.zeros((N, len(self._fault_vars())))
         self.status, self.message, self.failed_at = RUN_OK, "", None
         self.done = False
@@ -475,7 +478,7 @@ class ClosedLoop:
         ``counts`` as the last value (``meta["controller_counts"]``).  ``step_ms`` is the
         simulator's wall time of the whole ``step`` call (it replaces a controller's own)."""
         diag: dict[str, Any] = {}
-        m = self.model
+        cols = self._diag_cols
         for key, v in (raw or {}).items():
             key = str(key)
             if isinstance(v, _SCALARS):
@@ -483,16 +486,22 @@ class ClosedLoop:
             elif isinstance(v, str):
                 diag["text:" + key] = v
             elif key == "counts" and isinstance(v, Mapping):
-                self._counts = dict(v)
+                self._counts = v
             elif key in _VECTOR_DIAG and isinstance(v, (list, tuple, np.ndarray)):
-                names = m.names(_VECTOR_DIAG[key])
+                names = cols[key]
                 if len(v) == len(names):
                     for n, x in zip(names, v):
-                        diag[f"{key}.{n}"] = float(x)
+                        diag[n] = float(x)
             elif key in _NAMES_DIAG and isinstance(v, (list, tuple)):
-                on = set(map(str, v))
-                for n in m.names(_NAMES_DIAG[key]):
-                    diag[f"{key}.{n}"] = float(n in on)
+                names = cols[key]
+                if v:
+                    on = set(map(str, v))
+                    role = self._role_names[_NAMES_DIAG[key]]
+                    for n, c in zip(role, names):
+                        diag[c] = float(n in on)
+                else:
+                    for c in names:
+                        diag[c] = 0.0
         diag["step_ms"] = step_ms
         return diag
 
