@@ -22,8 +22,9 @@ Every numeric series is a column called ``"<kind>.<variable>"``:
 ``mvlo.NAME``   MV low operating limit given to the controller
 ``mvhi.NAME``   MV high operating limit given to the controller
 ``fault.NAME``  1 while a fault acts on variable NAME, else 0 (only for variables with faults)
-``diag.KEY``    numeric controller diagnostic per step (``diag.solve_ms`` is the wall time of the
-                controller's ``step`` call, measured by the simulator)
+``diag.KEY``    numeric controller diagnostic per step (``diag.step_ms`` is the wall time of the
+                whole ``step`` call, measured by the simulator; ``diag.solve_ms`` the QP alone,
+                where the controller reports it; per-variable ones as ``diag.KEY.NAME``)
 ==============  ===========================================================================
 
 Text series (one string per step) live in :attr:`Trajectory.text`; ``status`` holds the

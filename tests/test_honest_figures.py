@@ -336,36 +336,17 @@ def test_chattering_mv_and_a_cv_left_off_setpoint_are_flagged():
     assert run_flags(mp.Trajectory(t, smooth, {}, meta)) == []
 
 
-SATURATED = """
-[scenario]
-name = "hot_wash"
-sample_time = 10.0
-duration = 600.0
-seed = 3
+def _hot_wash() -> str:
+    """The short tank scenario of test_scenario_run with the PID only, its criteria on the level
+    only, and a +20 degC temperature setpoint step with the draw-off step."""
+    from test_scenario_run import SHORT
 
-[plant]
-model = "blending_tank"
-
-[operating_point]
-dvs = { draw_off = 1.5 }
-targets = { level = 1.2, concentration = 2.0, temperature = 75.0 }
-
-[disturbances]
-draw_off = { kind = "step", at = 100.0, size = 0.3 }
-
-[setpoints]
-temperature = { kind = "step", at = 100.0, size = 20.0 }
-
-[controllers.pid]
-rule = "simc"
-pairs = { level = "water_flow", concentration = "caustic_flow", temperature = "heater_duty" }
-tau_c = 120.0
-
-[[criteria]]
-check = "iae_below"
-cv = "level"
-limit = 100.0
-"""
+    text = SHORT.replace("LEVEL_LIMIT", "100.0")
+    text = text[:text.index("[controllers.mpc]")] + text[text.index("[controllers.pid]"):]
+    text = text[:text.index("[[criteria]]")] + (
+        '[[criteria]]\ncheck = "iae_below"\ncv = "level"\nlimit = 100.0\n')
+    return text.replace("[instruments]", '[setpoints]\ntemperature = { kind = "step", at = 100.0, '
+                                         'size = 20.0 }\n\n[instruments]')
 
 
 def test_a_cv_left_off_setpoint_is_noted_in_console_summary_and_report(tmp_path, capsys):
@@ -377,7 +358,7 @@ def test_a_cv_left_off_setpoint_is_noted_in_console_summary_and_report(tmp_path,
     from mpcproto.report.html import write_html_report
 
     p = tmp_path / "hot.toml"
-    p.write_text(SATURATED)
+    p.write_text(_hot_wash())
     code = main(["run", str(p), "--out", str(tmp_path / "out"), "--no-plots"])
     out = capsys.readouterr().out
     assert code == 0                                          # every verdict passed
