@@ -111,6 +111,7 @@ high = 0.04
 """
 
 TIMING_KEYS = {"elapsed_s", "worker_pid", "median_solve_ms", "p95_solve_ms", "worst_fraction",
+               "median_step_ms", "p95_step_ms", "worst_qp_fraction",
                "slow_steps", "solve_ms", "cpu_s"}
 
 

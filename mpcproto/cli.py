@@ -397,6 +397,9 @@ def _cmd_run(args: argparse.Namespace) -> int:
             _print_verdict(cr, label)
     for cr in summary.get("comparisons", []):
         _print_verdict(cr, "")
+    for label, res in summary["controllers"].items():
+        for fl in res.get("flags", []):   # what to notice even when every verdict passed
+            print(f"note  {label}: {fl['message']}")
     print(f"{'PASSED' if summary['passed'] else 'FAILED'}: {summary['scenario']} "
           f"({summary['elapsed_s']:.1f} s); results in {args.out}")
     from .scenario import count_cases

@@ -35,6 +35,7 @@ from __future__ import annotations
 
 import math
 import numbers
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -378,6 +379,12 @@ class StepFit:
         fit (a transfer element has no pure integrator).
     kind : str
         ``"fopdt"``, ``"sopdt"`` or ``"integrating"``.
+    noise_level : float
+        Noise level of the record (CV unit), from the residual's successive differences.
+    explains_record : bool
+        False when the residual is well above the noise level and a few % of the response's
+        change (see :data:`FIT_NOISE_RATIO`): the fit warned that the model does not explain
+        the data (more than one step in the record, a disturbance, another order).
     """
 
     gain: float
@@ -386,6 +393,8 @@ class StepFit:
     rms_error: float
     element: Any
     kind: str = "fopdt"
+    noise_level: float = 0.0
+    explains_record: bool = True
 
 
 def step_model_response(t: Any, gain: float, time_constants: Sequence[float], dead_time: float,
@@ -563,5 +572,33 @@ def fit_step_response(t: Sequence[float], y: Sequence[float], *, size: float, or
     span = float(ta[-1])
     theta = 0.0 if theta < 1e-9 * span else theta
     rms = float(np.sqrt(np.mean(res ** 2))) * abs(size)
+    noise = _residual_noise(res) * abs(size)
+    change = float(np.max(dy) - np.min(dy))
+    explains = not (rms > FIT_NOISE_RATIO * noise and rms > FIT_CHANGE_FRACTION * change)
+    if not explains:
+        warnings.warn(
+            f"{what}: the {kind.upper()} model does not explain the record: residual rms "
+            f"{rms:.3g} against a noise level of {noise:.3g} ({100 * rms / change:.0f} % of the "
+            f"response's change {change:.3g}); the record may hold more than one step, a "
+            f"disturbance, or dynamics of another order. Check the record before using the fit "
+            f"(gain {K:.4g}, dead time {theta:.4g}).", UserWarning, stacklevel=2)
     el = None if kind == "integrating" else TransferElement(gain=K, time_constants=taus, dead_time=theta)
-    return StepFit(gain=K, time_constants=taus, dead_time=theta, rms_error=rms, element=el, kind=kind)
+    return StepFit(gain=K, time_constants=taus, dead_time=theta, rms_error=rms, element=el, kind=kind,
+                   noise_level=noise, explains_record=explains)
+
+
+#: a fit "explains" a record unless its residual rms is above BOTH this multiple of the noise level
+#: and this fraction of the response's change (common practice, no source: a residual at the noise
+#: level is all a right model can do; a few % of the change is what a model of the wrong order
+#: leaves on a clean record)
+FIT_NOISE_RATIO = 3.0
+FIT_CHANGE_FRACTION = 0.05
+
+
+def _residual_noise(res: np.ndarray) -> float:
+    """Noise level of a record from its fit residual: the robust (median absolute deviation)
+    spread of successive differences / sqrt(2); a jump the model missed moves the median little."""
+    d = np.diff(np.asarray(res, float))
+    if d.size == 0:
+        return 0.0
+    return float(1.4826 * np.median(np.abs(d - np.median(d))) / math.sqrt(2))

@@ -22,8 +22,9 @@ Every numeric series is a column called ``"<kind>.<variable>"``:
 ``mvlo.NAME``   MV low operating limit given to the controller
 ``mvhi.NAME``   MV high operating limit given to the controller
 ``fault.NAME``  1 while a fault acts on variable NAME, else 0 (only for variables with faults)
-``diag.KEY``    numeric controller diagnostic per step (``diag.solve_ms`` is the wall time of the
-                controller's ``step`` call, measured by the simulator)
+``diag.KEY``    numeric controller diagnostic per step (``diag.step_ms`` is the wall time of the
+                whole ``step`` call, measured by the simulator; ``diag.solve_ms`` the QP alone,
+                where the controller reports it; per-variable ones as ``diag.KEY.NAME``)
 ==============  ===========================================================================
 
 Text series (one string per step) live in :attr:`Trajectory.text`; ``status`` holds the
@@ -46,12 +47,15 @@ import numpy as np
 
 from .exceptions import SettingsError
 
-__all__ = ["Trajectory", "KINDS", "RUN_OK", "RUN_FAILED"]
+__all__ = ["Trajectory", "KINDS", "RUN_OK", "RUN_FAILED", "RUN_LEFT_RANGE", "valid_range_events"]
 
 KINDS = ("x", "u", "ucmd", "d", "y", "ym", "taken", "sp", "lo", "hi", "mvlo", "mvhi", "fault", "diag")
 
 RUN_OK = "completed"
 RUN_FAILED = "failed"
+#: run outcome (``meta["outcome"]``) of a completed run whose true plant left its model's
+#: physical bounds: the numbers after that point describe no real unit
+RUN_LEFT_RANGE = "left_valid_range"
 
 _META_PREFIX = "# mpcproto-trajectory "
 
@@ -103,6 +107,12 @@ class Trajectory:
     def status(self) -> str:
         """``"completed"`` or ``"failed"`` (a run that ended early keeps what it recorded)."""
         return str(self.meta.get("status", RUN_OK))
+
+    @property
+    def outcome(self) -> str:
+        """``status``, or ``"left_valid_range"`` for a completed run whose true plant left its
+        model's physical bounds (``meta["range_events"]``, :func:`valid_range_events`)."""
+        return str(self.meta.get("outcome", self.status))
 
     @property
     def success(self) -> bool:
@@ -212,6 +222,39 @@ class Trajectory:
     def __repr__(self) -> str:
         return (f"Trajectory({len(self)} samples, {len(self.columns)} series, "
                 f"status={self.status!r})")
+
+
+def valid_range_events(traj: Trajectory, *, rel_tol: float = 1e-6) -> list[dict[str, Any]]:
+    """Where the TRUE plant left its model's physical bounds (``meta["state_bounds"]`` for the
+    ``x.*`` columns, ``meta["cv_bounds"]`` for ``y.*``): one event per variable and side,
+    ``{"variable", "kind", "side", "time", "value", "bound", "samples"}`` with the first
+    sample beyond the bound (``time``), the farthest value reached (``value``) and the number of
+    samples beyond.  A value counts as beyond when it passes the bound by more than *rel_tol*
+    of the variable's range (of ``max(1, |bound|)`` for an unbounded range), so integrator
+    round-off at a bound is no event.  Sorted by time."""
+    out: list[dict[str, Any]] = []
+    for kind, key in (("x", "state_bounds"), ("y", "cv_bounds")):
+        for name, b in (traj.meta.get(key) or {}).items():
+            if not traj.has(kind, name):
+                continue
+            lo, hi = float(b[0]), float(b[1])
+            v = traj.series(kind, name)
+            span = hi - lo if math.isfinite(hi - lo) and hi > lo else None
+            for side, bound in (("low", lo), ("high", hi)):
+                if not math.isfinite(bound):
+                    continue
+                tol = rel_tol * (span if span is not None else max(1.0, abs(bound)))
+                with np.errstate(invalid="ignore"):
+                    bad = (v < bound - tol) if side == "low" else (v > bound + tol)
+                if not bad.any():
+                    continue
+                idx = np.flatnonzero(bad)
+                worst = float(v[idx].min() if side == "low" else v[idx].max())
+                out.append({"variable": name, "kind": "state" if kind == "x" else "cv",
+                            "side": side, "time": float(traj.t[idx[0]]), "value": worst,
+                            "bound": bound, "samples": int(idx.size)})
+    out.sort(key=lambda e: (e["time"], e["variable"]))
+    return out
 
 
 def _fmt(v: float) -> str:

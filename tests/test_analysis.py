@@ -11,7 +11,7 @@ import mpcproto as mp
 
 
 def traj(y, sp=None, lo=None, hi=None, Ts=1.0, status=None, diag=None, u=None, mvlo=None,
-         mvhi=None, time_unit="s"):
+         mvhi=None, time_unit="s", cv_bounds=None):
     n = len(y)
     t = np.arange(n) * Ts
     cols = {"y.c": np.asarray(y, float)}
@@ -28,7 +28,10 @@ def traj(y, sp=None, lo=None, hi=None, Ts=1.0, status=None, diag=None, u=None, m
     for k, v in (diag or {}).items():
         cols[f"diag.{k}"] = np.asarray(v, float)
     text = {"status": status} if status is not None else {}
-    return mp.Trajectory(t, cols, text, {"Ts": Ts, "time_unit": time_unit, "controller": "hand"})
+    meta = {"Ts": Ts, "time_unit": time_unit, "controller": "hand"}
+    if cv_bounds is not None:
+        meta["cv_bounds"] = {"c": list(cv_bounds)}
+    return mp.Trajectory(t, cols, text, meta)
 
 
 def test_violation_events_on_a_hand_made_trajectory():
@@ -37,9 +40,9 @@ def test_violation_events_on_a_hand_made_trajectory():
     tr = traj(y, lo=-5.0, hi=5.0, Ts=2.0)
     ev = mp.violations(tr)
     assert ev == [
-        {"variable": "c", "side": "high", "signal": "true", "start": 6.0, "end": 12.0, "peak_excess": 3.0, "integral": 12.0},
-        {"variable": "c", "side": "low", "signal": "true", "start": 16.0, "end": 18.0, "peak_excess": 0.5, "integral": 1.0},
-        {"variable": "c", "side": "high", "signal": "true", "start": 20.0, "end": 22.0, "peak_excess": 1.0, "integral": 2.0},
+        {"variable": "c", "side": "high", "signal": "true", "start": 6.0, "end": 12.0, "peak_excess": 3.0, "integral": 12.0, "scale": 5.0},
+        {"variable": "c", "side": "low", "signal": "true", "start": 16.0, "end": 18.0, "peak_excess": 0.5, "integral": 1.0, "scale": 5.0},
+        {"variable": "c", "side": "high", "signal": "true", "start": 20.0, "end": 22.0, "peak_excess": 1.0, "integral": 2.0, "scale": 5.0},
     ]
     # a tolerance hides the small ones
     assert [e["peak_excess"] for e in mp.violations(tr, tolerance=1.0)] == [3.0]
@@ -81,8 +84,8 @@ def test_overshoot_and_settling_after_a_setpoint_step():
 def test_settling_after_an_upset_counts_from_the_upset():
     e = np.zeros(40)
     e[10:20] = [1.0, 0.8, 0.6, 0.4, 0.2, 0.1, 0.05, 0.03, 0.01, 0.0]
-    tr = traj(1.0 - e, sp=1.0, Ts=2.0)
-    # band 2 % of the setpoint = 0.02: out from sample 10 to 17, in for good from sample 18
+    tr = traj(1.0 - e, sp=1.0, Ts=2.0, cv_bounds=(0.0, 1.0))
+    # band 2 % of the CV's range = 0.02: out from sample 10 to 17, in for good from sample 18
     assert mp.cv_performance(tr, "c")["settling_time"] == (18 - 10) * 2.0
 
 
@@ -115,9 +118,10 @@ def test_controller_health_counts_and_timing():
     # minutes: a 700 ms step is a tiny fraction of a 1-minute sample
     trm = traj(np.zeros(8), status=status, diag={"step_ms": ms}, Ts=1.0, time_unit="min")
     assert mp.controller_health(trm)["worst_fraction"] == pytest.approx(0.7 / 60)
-    # the controller's own solve time wins over the simulator's wall time where it reports one
+    # the QP time (diag.solve_ms) is its own figure; the audit (worst_fraction) reads the whole step
     tr2 = traj(np.zeros(8), status=status, diag={"step_ms": ms, "solve_ms": np.full(8, 0.25)})
     assert mp.controller_health(tr2)["median_solve_ms"] == 0.25
+    assert mp.controller_health(tr2)["worst_fraction"] == pytest.approx(0.7)
 
 
 def test_summary_matches_the_summary_json_contract():
@@ -125,10 +129,11 @@ def test_summary_matches_the_summary_json_contract():
               u=[0, 1, 2, 3, 3], mvlo=0.0, mvhi=3.0)
     s = mp.summarize(tr)
     assert set(s) >= {"kpi", "violations", "solver"}
-    assert set(s["kpi"]["cv"]["c"]) == {"iae", "ise", "itae", "settling_time", "overshoot", "max_abs_error"}
+    assert set(s["kpi"]["cv"]["c"]) == {"iae", "ise", "itae", "settling_time", "overshoot", "max_abs_error",
+                                        "settling_band", "settling_band_basis", "steps", "interaction"}
     assert "total_travel" in s["kpi"]["mv"]["m"]
     assert set(s["violations"][0]) == {"variable", "side", "signal", "start", "end", "peak_excess",
-                                       "integral"}
+                                       "integral", "scale"}
     assert {"steps", "failures", "fallbacks", "median_solve_ms", "p95_solve_ms", "worst_fraction"} <= set(s["solver"])
     json.dumps(s, allow_nan=False)      # plain JSON, no NaN/inf
 

@@ -17,6 +17,7 @@ distributed = pytest.importorskip("distributed")
 
 # measured on the machine, not part of the closed-loop result
 TIMING = {"elapsed_s", "worker_pid", "median_solve_ms", "p95_solve_ms", "worst_fraction",
+          "median_step_ms", "p95_step_ms", "worst_qp_fraction",
           "slow_steps", "solve_ms", "cpu_s"}
 
 

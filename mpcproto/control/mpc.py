@@ -830,8 +830,11 @@ class PredictiveController:
             ``active_mv_limit_names``, ``active_rate_limits``, ``limits_over_rate`` (MVs moved
             more than their rate limit because a hard limit won), ``rejected_measurements``,
             ``n_rejected_measurements``, ``mvs_not_following``, ``n_mvs_not_following``,
-            ``late_measurements``, ``target_status``, ``target_u``, ``target_y``, ``clipped``
-            and ``counts``.
+            ``late_measurements``, ``dropped_measurements`` / ``n_dropped_measurements``
+            (readings older than the estimator's history: dropped, and the step's status says
+            ``measurement_rejected``), ``backup_solves`` (0-2: solves of this step the backup
+            solver rescued), ``target_status``, ``target_u``, ``target_y``, ``clipped`` and
+            ``counts``.
         """
         if not self.is_built:
             self._check_built("step")
@@ -880,6 +883,11 @@ class PredictiveController:
             self.counts["late_measurements"] += len(info["late"])
         diag["rejected_measurements"] = [names[i] for i in info["rejected"]]
         diag["late_measurements"] = [names[i] for i in info["late"]]
+        # readings older than the estimator's history (one taken before the run started, the
+        # steady state an analyzer reports first, is no loss)
+        diag["dropped_measurements"] = [names[i] for i in info["too_old"]
+                                        if self.estimator_.sample_index(taken[i]) >= 0]
+        diag["backup_solves"] = 0
         x = self.estimator_.state
         w = self.estimator_.disturbance_estimate
         self.counts["steps"] += 1
@@ -999,6 +1007,7 @@ class PredictiveController:
                                           options=self._backup_opts)
                 if res2.accepted:
                     self.counts["backup_solves"] += 1
+                    diag["backup_solves"] = diag.get("backup_solves", 0) + 1
                     res = res2
             diag["target_iterations"] = res.iterations     # 0: the active set was re-used
             if res.accepted:
@@ -1047,6 +1056,7 @@ class PredictiveController:
                 diag["first_solver_status"] = res.status
                 if res2.accepted:
                     self.counts["backup_solves"] += 1
+                    diag["backup_solves"] = diag.get("backup_solves", 0) + 1
                     res2.solve_ms += res.solve_ms
                     res = res2
         else:
@@ -1179,7 +1189,9 @@ class PredictiveController:
         # faults the controller saw show in the status of an otherwise accepted step
         diag["n_rejected_measurements"] = len(diag.get("rejected_measurements", ()))
         diag["n_mvs_not_following"] = len(diag.get("mvs_not_following", ()))
-        if status == STATUS_OK and diag["n_rejected_measurements"]:
+        diag["n_dropped_measurements"] = len(diag.get("dropped_measurements", ()))
+        if status == STATUS_OK and (diag["n_rejected_measurements"]
+                                    or diag["n_dropped_measurements"]):
             status = STATUS_MEASUREMENT_REJECTED
         elif status == STATUS_OK and diag["n_mvs_not_following"]:
             status = STATUS_MV_NOT_FOLLOWING

@@ -472,6 +472,7 @@ def ziegler_nichols(fit: ProcessFit | None = None, *, ultimate: tuple[float, flo
         sign = math.copysign(1.0, fit.gain)
         pos = ProcessFit(fit.kind, abs(fit.gain), fit.time_constants, fit.dead_time)
         Ku, Pu = ultimate_point(pos)
+        _warn_zn_range(fit)
     else:
         Ku, Pu = map(float, ultimate)
         if not (Ku > 0 and Pu > 0 and math.isfinite(Ku) and math.isfinite(Pu)):
@@ -494,11 +495,36 @@ def _zn_reaction_curve(fit, ultimate, mode, cv, mv, **loop_kw) -> PIDLoop:
     if L <= 0:
         raise SettingsError("ziegler_nichols: the reaction-curve rule needs an apparent dead time "
                             "> 0 (its gains are 1/(R L)); the fit has none. Use simc or imc.")
+    _warn_zn_range(fit)
     a = abs(fit.gain) * L / fit.time_constants[0]          # R L, R = k / tau
     sign = math.copysign(1.0, fit.gain)
     K, Ti, Td = {"P": (1.0 / a, math.inf, 0.0), "PI": (0.9 / a, 3.0 * L, 0.0),
                  "PID": (1.2 / a, 2.0 * L, 0.5 * L)}[mode]
     return _loop(fit, sign * K, Ti, Td, "ziegler_nichols", cv, mv, **loop_kw)
+
+
+#: dead time / time constant ratios for which the Ziegler-Nichols rules are meant (from memory:
+#: the range usually quoted for them, e.g. in Seborg, Edgar & Mellichamp, Process Dynamics and
+#: Control; outside it they give poorly damped or sluggish loops)
+ZN_RATIO_RANGE = (0.1, 1.0)
+
+
+def _warn_zn_range(fit: ProcessFit) -> None:
+    """Warn when the fitted dead time / time constant ratio is outside :data:`ZN_RATIO_RANGE`."""
+    import warnings
+
+    if fit.kind == "integrating" or not fit.time_constants:
+        return
+    tau = float(sum(fit.time_constants))
+    ratio = fit.dead_time / tau if tau > 0 else math.inf
+    lo, hi = ZN_RATIO_RANGE
+    if not lo <= ratio <= hi:
+        warnings.warn(
+            f"ziegler_nichols{f' ({fit.cv}<-{fit.mv})' if fit.cv else ''}: dead time / time "
+            f"constant = {ratio:.3g}, outside the range {lo:g}-{hi:g} the Ziegler-Nichols rules "
+            f"are meant for (from memory, as usually quoted, e.g. Seborg, Edgar & Mellichamp); "
+            f"expect a {'poorly damped' if ratio < lo else 'sluggish or unstable'} loop. SIMC or "
+            f"IMC settings hold over a wider range.", UserWarning, stacklevel=3)
 
 
 def tune_loop(fit: ProcessFit, rule: str, **kw: Any) -> PIDLoop:

@@ -28,6 +28,8 @@ __all__ = ["Regression", "BaselineComparison", "compare_with_baseline", "compare
 
 #: Solver counters that are compared (lower is better); timings are left out on purpose.
 SOLVER_COUNTERS = ("failures", "fallbacks", "inaccurate", "infeasible")
+#: KPI leaves that describe how a figure was taken (a band, a time), not a figure to lower
+_DESCRIPTIVE = (".settling_band", ".interaction.at")
 
 
 @dataclass(frozen=True)
@@ -105,7 +107,8 @@ class BaselineComparison:
 
 def compared_numbers(controller_result: Mapping[str, Any]) -> dict[str, float]:
     """The lower-is-better numbers of one controller's result that a baseline comparison checks."""
-    out = flat_numbers(controller_result.get("kpi") or {}, "kpi")
+    out = {k: v for k, v in flat_numbers(controller_result.get("kpi") or {}, "kpi").items()
+           if not k.endswith(_DESCRIPTIVE)}
     events = list(controller_result.get("violations") or [])
     out["violations.count"] = float(len(events))
     out["violations.integral"] = float(sum(float(e.get("integral") or 0.0) for e in events

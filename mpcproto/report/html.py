@@ -477,6 +477,11 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
             f'{_e(ev.get("side", ev.get("bound", "")))} '
             f'peak excess {_num(ev.get("peak_excess"))}' for ctl, ev in viol[:6])
             + (" &hellip;" if len(viol) > 6 else "") + "</p>")
+    flags = [(ctl, f) for ctl, res in ctls.items() for f in ((res or {}).get("flags") or [])]
+    if flags:      # what a reader should notice even when every verdict passed (analysis.run_flags)
+        out.append('<p class="small msg">To notice: ' + "; ".join(
+            f'{_e(ctl)}: {_e(f.get("message", f.get("kind", "")))}' for ctl, f in flags[:8])
+            + (" &hellip;" if len(flags) > 8 else "") + "</p>")
     out.append("</div>")
     return "".join(out)
 

@@ -7,10 +7,14 @@ Each verdict is plain data ``{"name", "check", "value", "limit", "passed"}`` (pl
 CV that has no setpoint), and a criterion on a missing figure fails.
 
 The figures come from :func:`mpcproto.analysis.summarize` (KPIs, violation events, solver health)
-and, for ``peak_below`` / ``low_above``, from the trajectory's true values.  ``no_limit_violation``
-counts CV events and MV hard-limit events (commanded and applied).  Besides the scenario's own
+and, for ``peak_below`` / ``low_above`` and a ``settling_time_below`` with its own ``band``, from
+the trajectory's true values.  ``no_limit_violation``
+counts CV events and MV hard-limit events (commanded and applied) whose peak excess passes the
+criterion's ``tolerance`` (a fraction of the variable's physical range, default
+:data:`LIMIT_TOLERANCE`); its message gives the worst excess.  Besides the scenario's own
 criteria, a controller that sent an MV command outside a hard limit always gets the failed verdict
-``mv_commands_within_limits`` (as a run that did not complete gets ``run_completed``).
+``mv_commands_within_limits`` (as a run that did not complete gets ``run_completed`` and a run
+whose true plant left its model's physical bounds gets ``within_valid_range``).
 """
 
 from __future__ import annotations
@@ -21,7 +25,13 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["evaluate_controller", "evaluate_comparisons", "applies_to"]
+__all__ = ["evaluate_controller", "evaluate_comparisons", "applies_to", "LIMIT_TOLERANCE"]
+
+#: default tolerance of ``no_limit_violation``: an excess counts when it passes the limit by more
+#: than this fraction of the variable's physical range (``max(1, |limit|)`` where unbounded).  A
+#: controller that rides a soft limit sits on it within its solver's tolerance; 1e-4 of the range
+#: is far below any instrument's resolution (common practice, no source).
+LIMIT_TOLERANCE = 1e-4
 
 _KPI_OF = {"iae_below": "iae", "ise_below": "ise", "itae_below": "itae",
            "max_error_below": "max_abs_error", "settling_time_below": "settling_time",
@@ -85,6 +95,14 @@ def evaluate_controller(criteria: Sequence[Mapping[str, Any]], label: str, block
     if run.get("status", "completed") != "completed":
         out.append({"name": "run_completed", "check": "run_completed", "value": 0.0, "limit": 1.0,
                     "passed": False, "message": run.get("message", "")})
+    left = run.get("range_events") or []
+    if left:          # the true plant left its model's physical bounds: the figures describe no unit
+        ev = left[0]
+        out.append({"name": "within_valid_range", "check": "within_valid_range",
+                    "value": float(len(left)), "limit": 0.0, "passed": False,
+                    "message": f"{len(left)} variable(s) left their physical range; first: "
+                               f"{ev['kind']} {ev['variable']} at t={ev['time']:g} reached "
+                               f"{ev['value']:.4g} against its {ev['side']} bound {ev['bound']:g}"})
     sent = [e for e in block.get("violations", []) if e.get("signal") == "commanded"]
     if sent:          # a command outside a hard MV limit fails the run, criteria or not
         worst = max(sent, key=lambda e: e.get("peak_excess") or 0.0)
@@ -99,8 +117,16 @@ def evaluate_controller(criteria: Sequence[Mapping[str, Any]], label: str, block
             continue
         check = cr["check"]
         if check in _KPI_OF:
-            v = _num(kpi.get("cv", {}).get(cr["cv"], {}).get(_KPI_OF[check]))
-            out.append(_verdict(cr, v, cr["limit"], v is not None and v <= cr["limit"]))
+            extra = {}
+            if "band" in cr:      # a settling band stated by the criterion (CV units)
+                from ..analysis import cv_performance
+
+                v = None if traj is None else _num(
+                    cv_performance(traj, cr["cv"], band=cr["band"])["settling_time"])
+                extra["band"] = cr["band"]
+            else:
+                v = _num(kpi.get("cv", {}).get(cr["cv"], {}).get(_KPI_OF[check]))
+            out.append(_verdict(cr, v, cr["limit"], v is not None and v <= cr["limit"], **extra))
         elif check == "travel_below":
             v = _num(kpi.get("mv", {}).get(cr["mv"], {}).get("total_travel"))
             out.append(_verdict(cr, v, cr["limit"], v is not None and v <= cr["limit"]))
@@ -109,16 +135,22 @@ def evaluate_controller(criteria: Sequence[Mapping[str, Any]], label: str, block
             ok = v is not None and (v < cr["limit"] if check == "peak_below" else v > cr["limit"])
             out.append(_verdict(cr, v, cr["limit"], ok))
         elif check == "no_limit_violation":
+            rel = cr.get("tolerance", LIMIT_TOLERANCE)
             events = [e for e in block.get("violations", [])
-                      if "variable" not in cr or e.get("variable") == cr["variable"]]
+                      if ("variable" not in cr or e.get("variable") == cr["variable"])
+                      and (e.get("peak_excess") or 0.0) > rel * (e.get("scale") or 1.0)]
             v = float(len(events))
-            extra = {}
+            extra: dict[str, Any] = {"tolerance": rel}
             if events:
-                worst = max(events, key=lambda e: e.get("peak_excess") or 0.0)
+                worst = max(events, key=lambda e: (e.get("peak_excess") or 0.0)
+                            / (e.get("scale") or 1.0))
                 what = worst["variable"] + (f" ({worst['signal']})" if worst.get("signal") in
                                             ("commanded", "applied") else "")
-                extra["message"] = (f"{len(events)} event(s); worst: {what} beyond its "
-                                    f"{worst['side']} limit by {worst['peak_excess']:.4g} from "
+                scale = worst.get("scale") or 1.0
+                extra["message"] = (f"{len(events)} event(s) beyond the tolerance ({rel:g} x "
+                                    f"{scale:.4g}); worst: {what} beyond its {worst['side']} "
+                                    f"limit by {worst['peak_excess']:.4g} "
+                                    f"({worst['peak_excess'] / scale:.3g} of {scale:.4g}) from "
                                     f"t={worst['start']:g} to {worst['end']:g}")
             out.append(_verdict(cr, v, 0.0, v == 0.0, **extra))
         elif check == "no_solver_failure":

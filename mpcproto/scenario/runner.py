@@ -496,8 +496,11 @@ def build_controller(label: str, spec: Mapping[str, Any], prep: Prepared, *,
     """
     key = _controller_key(label, spec, prep) if cache else ""
     if cache and key in _CONTROLLER_CACHE:
-        return _CONTROLLER_CACHE[key]
+        ctl = _CONTROLLER_CACHE[key]
+        _check_history(ctl, prep, f"controllers.{label}")   # the instruments may differ
+        return ctl
     ctl = _build_controller(label, spec, prep)
+    _check_history(ctl, prep, f"controllers.{label}")
     if cache:
         if len(_CONTROLLER_CACHE) >= _CONTROLLER_CACHE_LIMIT:
             _CONTROLLER_CACHE.pop(next(iter(_CONTROLLER_CACHE)))
@@ -692,6 +695,28 @@ def _check_solver_options(scn: Scenario, settings: Mapping[str, Any], key: str) 
                                 f"{found}.", file=scn.file, key=where)
 
 
+def _check_history(ctl: Any, prep: Prepared, key: str) -> None:
+    """Refuse an estimator history shorter than an instrument's dead time (in samples): every
+    reading of that instrument would arrive too old and be dropped, silently."""
+    history = getattr(ctl, "history", None)
+    if not isinstance(history, int) or isinstance(history, bool):
+        return
+    from ..linear import delay_samples
+
+    Ts = prep.scenario.sample_time
+    for cv, ins in (prep.sim.get("instruments") or {}).items():
+        dead = float(getattr(ins, "dead_time", 0.0) or 0.0)
+        if dead <= 0:
+            continue
+        nd = delay_samples(dead, Ts, what=f"instrument dead time on '{cv}'")
+        if nd > history:
+            raise ScenarioError(
+                f"expected an estimator history of at least {nd} samples (the dead time "
+                f"{dead:g} of the instrument on '{cv}' is {nd} samples of {Ts:g}): with a shorter "
+                f"history every reading of '{cv}' arrives too old and is dropped; found "
+                f"history = {history}.", file=prep.scenario.file, key=f"{key}.history")
+
+
 def _build_pid(settings: Mapping[str, Any], prep: Prepared, key: str) -> Any:
     from ..control.tuning import pid_from_settings
 
@@ -801,7 +826,9 @@ def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
                 raise ScenarioError(str(e), file=scn.file, key=f"controllers.{label}") from None
             traj.meta["controller"] = label
             trajs[label] = traj
-            block = summarize(traj)
+            compared = {cr[k] for cr in scn.data["criteria"] for k in ("cv", "variable")
+                        if k in cr}
+            block = summarize(traj, compared=compared if scn.data["criteria"] else None)
             block["criteria"] = evaluate_controller(scn.data["criteria"], label, block, traj)
             blocks[label] = block
         comparisons = evaluate_comparisons(scn.data["criteria"], blocks)

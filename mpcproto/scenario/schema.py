@@ -46,19 +46,21 @@ CRITERION_CHECKS: dict[str, dict[str, Any]] = {
     "ise_below": {"needs": ("cv", "limit"), "doc": "integral of squared error of a CV below limit"},
     "itae_below": {"needs": ("cv", "limit"), "doc": "time-weighted IAE of a CV below limit"},
     "max_error_below": {"needs": ("cv", "limit"), "doc": "largest |setpoint - CV| below limit"},
-    "settling_time_below": {"needs": ("cv", "limit"), "doc": "settling time of a CV below limit"},
+    "settling_time_below": {"needs": ("cv", "limit"), "doc": "settling time of a CV below limit "
+                                                             "(optional 'band', CV units)"},
     "overshoot_below": {"needs": ("cv", "limit"), "doc": "overshoot of a CV (fraction) below limit"},
     "peak_below": {"needs": ("variable", "limit"), "doc": "highest value a variable reaches below limit"},
     "low_above": {"needs": ("variable", "limit"), "doc": "lowest value a variable reaches above limit"},
     "travel_below": {"needs": ("mv", "limit"), "doc": "total travel of an MV below limit"},
-    "no_limit_violation": {"needs": (), "doc": "no hard-limit violation event (any variable, or one)"},
+    "no_limit_violation": {"needs": (), "doc": "no limit violation event beyond 'tolerance' x the "
+                                               "variable's range (any variable, or one)"},
     "no_solver_failure": {"needs": (), "doc": "the controller never failed nor fell back"},
     "solve_time_below": {"needs": ("fraction",), "doc": "worst solve time below this fraction of Ts"},
     "better_than": {"needs": ("than", "kpi", "cv", "by_percent"),
                     "doc": "this controller's KPI of a CV at least by_percent % lower than the other's"},
 }
 CRITERION_KEYS = {"check", "controller", "cv", "mv", "variable", "limit", "fraction", "than", "kpi",
-                  "by_percent", "name"}
+                  "by_percent", "name", "tolerance", "band"}
 BETTER_KPIS = ("iae", "ise", "itae", "max_abs_error", "settling_time", "overshoot")
 
 #: Distributions a Monte Carlo ``[[study.draw]]`` may use, with their parameter keys.
@@ -535,6 +537,16 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
             entry["fraction"] = c.number(cr["fraction"], f"{key}.fraction", low=0.0, strict_low=True)
         if "by_percent" in cr:
             entry["by_percent"] = c.number(cr["by_percent"], f"{key}.by_percent", high=100.0)
+        if "tolerance" in cr:
+            if check != "no_limit_violation":
+                c.fail(f"{key}.tolerance", "'tolerance' only with the check 'no_limit_violation'",
+                       f"the check '{check}'")
+            entry["tolerance"] = c.number(cr["tolerance"], f"{key}.tolerance", low=0.0, high=1.0)
+        if "band" in cr:
+            if check != "settling_time_below":
+                c.fail(f"{key}.band", "'band' only with the check 'settling_time_below'",
+                       f"the check '{check}'")
+            entry["band"] = c.number(cr["band"], f"{key}.band", low=0.0, strict_low=True)
         if "kpi" in cr:
             entry["kpi"] = c.string(cr["kpi"], f"{key}.kpi", BETTER_KPIS)
         if check == "better_than" and "controller" not in entry:

@@ -43,7 +43,7 @@ from ..linear import delay_samples
 from .._specs import refuse_unknown_keys
 from ..model import suggest
 from ..operating import OperatingPoint
-from ..trajectory import RUN_FAILED, RUN_OK, Trajectory
+from ..trajectory import RUN_FAILED, RUN_LEFT_RANGE, RUN_OK, Trajectory, valid_range_events
 from .instruments import (Actuator, Instrument, actuator_from_spec, fault_from_spec,
                           instrument_from_spec)
 from .plant import Plant
@@ -52,6 +52,12 @@ from .signals import signal_from_spec
 __all__ = ["ClosedLoop", "simulate", "split_rng"]
 
 _SCALARS = (bool, int, float, np.bool_, np.integer, np.floating)
+#: list diagnostics kept per variable: key -> role of the names (values in the role's order)
+_VECTOR_DIAG = {"target_u": "mv", "target_y": "cv"}
+#: list diagnostics of variable names, kept as 0/1 flags per variable: key -> role
+_NAMES_DIAG = {"relaxed_cvs": "cv", "rejected_measurements": "cv", "late_measurements": "cv",
+               "dropped_measurements": "cv", "active_mv_limit_names": "mv",
+               "mvs_not_following": "mv"}
 
 
 def split_rng(rng: Any, n: int) -> tuple[list[np.random.Generator], int | None]:
@@ -309,7 +315,11 @@ class ClosedLoop:
             "ym": np.full((N, m.ny), np.nan), "taken": np.full((N, m.ny), np.nan),
         }
         self._status: list[str] = []
-        self._diag: list[dict[str, float]] = []
+        self._diag: list[dict[str, Any]] = []
+        self._counts: Mapping[str, Any] = {}
+        self._role_names = {"cv": list(m.cv_names), "mv": list(m.mv_names)}
+        self._diag_cols = {key: [f"{key}.{n}" for n in self._role_names[role]]
+                           for key, role in {**_VECTOR_DIAG, **_NAMES_DIAG}.items()}
         self._fault_flags = np.zeros((N, len(self._fault_vars())))
         self.status, self.message, self.failed_at = RUN_OK, "", None
         self.done = False
@@ -444,11 +454,7 @@ class ClosedLoop:
         rec["x"][k], rec["u"][k], rec["ucmd"][k] = self.plant.x, u, ucmd
         rec["y"][k], rec["ym"][k], rec["taken"][k] = y, meas.y, meas.taken_at
         self._status.append(str(out.status))
-        diag = {"step_ms": step_ms}
-        for key, v in (out.diagnostics or {}).items():
-            if isinstance(v, _SCALARS):
-                diag[str(key)] = float(v)
-        self._diag.append(diag)
+        self._diag.append(self._keep_diagnostics(out.diagnostics, step_ms))
         if self.faults:
             for i, var in enumerate(self._fault_vars()):
                 self._fault_flags[k, i] = float(any(f.variable == var and f.active(t)
@@ -463,6 +469,41 @@ class ClosedLoop:
             self.done = True
             return False
         return True
+
+    def _keep_diagnostics(self, raw: Mapping[str, Any] | None, step_ms: float) -> dict[str, Any]:
+        """The per-step diagnostics kept in the Trajectory: numbers as ``diag.KEY``, per-variable
+        vectors (``target_u``, ``target_y``) as ``diag.KEY.NAME``, lists of CV/MV names
+        (``relaxed_cvs``, ``rejected_measurements``...) as 0/1 flags ``diag.KEY.NAME``, words
+        (``solver_status``, ``target_status``) as text series; the controller's running
+        ``counts`` as the last value (``meta["controller_counts"]``).  ``step_ms`` is the
+        simulator's wall time of the whole ``step`` call (it replaces a controller's own)."""
+        diag: dict[str, Any] = {}
+        cols = self._diag_cols
+        for key, v in (raw or {}).items():
+            key = str(key)
+            if isinstance(v, _SCALARS):
+                diag[key] = float(v)
+            elif isinstance(v, str):
+                diag["text:" + key] = v
+            elif key == "counts" and isinstance(v, Mapping):
+                self._counts = v
+            elif key in _VECTOR_DIAG and isinstance(v, (list, tuple, np.ndarray)):
+                names = cols[key]
+                if len(v) == len(names):
+                    for n, x in zip(names, v):
+                        diag[n] = float(x)
+            elif key in _NAMES_DIAG and isinstance(v, (list, tuple)):
+                names = cols[key]
+                if v:
+                    on = set(map(str, v))
+                    role = self._role_names[_NAMES_DIAG[key]]
+                    for n, c in zip(role, names):
+                        diag[c] = float(n in on)
+                else:
+                    for c in names:
+                        diag[c] = 0.0
+        diag["step_ms"] = step_ms
+        return diag
 
     def _fail(self, k: int, message: str, rows: int) -> bool:
         self.status, self.message, self.failed_at = RUN_FAILED, message, float(self.times[k])
@@ -507,8 +548,12 @@ class ClosedLoop:
             for key in dg:
                 if key not in keys:
                     keys.append(key)
+        text = {"status": self._status[:n]}
         for key in keys:
-            cols[f"diag.{key}"] = np.array([dg.get(key, np.nan) for dg in self._diag[:n]])
+            if key.startswith("text:"):
+                text[f"diag.{key[5:]}"] = [str(dg.get(key, "")) for dg in self._diag[:n]]
+            else:
+                cols[f"diag.{key}"] = np.array([dg.get(key, np.nan) for dg in self._diag[:n]])
         units = {v.name: v.unit for v in m.variables() if v.role != "parameter"}
         meta = {
             "model": m.name, "controller": getattr(self.controller, "name", type(self.controller).__name__),
@@ -520,8 +565,16 @@ class ClosedLoop:
             "failed_at": self.failed_at, "faults": [f.as_dict() for f in self.faults],
             "instruments": {n: vars(i) for n, i in self.instruments.items()},
             "mv_bounds": {n: [float(lo), float(hi)] for n, lo, hi in zip(m.mv_names, *m.bounds("mv"))},
+            "cv_bounds": {n: [float(lo), float(hi)] for n, lo, hi in zip(m.cv_names, *m.bounds("cv"))},
+            "state_bounds": {n: [float(lo), float(hi)]
+                             for n, lo, hi in zip(m.state_names, *m.bounds("state"))},
+            "controller_counts": dict(self._counts),
         }
-        return Trajectory(self.times[:n], cols, {"status": self._status[:n]}, meta)
+        traj = Trajectory(self.times[:n], cols, text, meta)
+        events = valid_range_events(traj)
+        meta["range_events"] = events
+        meta["outcome"] = RUN_LEFT_RANGE if events and self.status == RUN_OK else self.status
+        return traj
 
 
 def simulate(plant_model: Any, controller: Any, *, op: OperatingPoint, Ts: float, duration: float,
