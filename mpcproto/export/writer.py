@@ -291,7 +291,7 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
         ``bundle`` (the content of ``bundle.json``), ``proof`` (see
         :func:`~mpcproto.export.bundle.check_bundle`), ``dir``.
     """
-    from .. import __version__
+    from .._version import __version__
     from ..linear import linearize
     from ..scenario import load_scenario, run_scenario
     from ..scenario.runner import CAUTION, build_controller, prepare

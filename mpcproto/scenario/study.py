@@ -250,7 +250,7 @@ def expand(scn: Scenario | str, *, full: bool = False, ci: bool | None = None,
 def check_case(case: Case) -> Scenario:
     """:func:`case_scenario` plus the simulator's checks of its signal, instrument, actuator and
     fault specs (no model needed); errors on a key the case sets name the case."""
-    from .runner import _check_specs
+    from .checks import _check_specs
 
     sc = case_scenario(case)
     try:
