@@ -55,6 +55,8 @@ import scipy.sparse as sp
 from ..exceptions import NotBuiltError, SettingsError
 from ..model import suggest
 from ._qp import CompiledQP
+from .condensed import DAQP_OPTIONS, CondensedQP
+from .dynamic_qp import input_layout, state_dynamic_qp
 from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_OK, ControlOutput,
                    Measurement, Targets)
 from .estimator import DISTURBANCE_MODELS, DisturbanceEstimator
@@ -65,7 +67,7 @@ __all__ = ["PredictiveController", "SETTINGS_KEYS", "CV_KEYS", "MV_KEYS", "DV_KE
 #: top-level settings keys and their defaults (see :class:`PredictiveController`)
 SETTINGS_KEYS: dict[str, Any] = {
     "horizon": 30, "control_horizon": None, "cv": None, "mv": None, "dv": None,
-    "terminal_cost": False, "steady_target": True, "solver": "osqp", "fast_path": True,
+    "terminal_cost": False, "steady_target": True, "solver": "auto", "fast_path": True,
     "solver_options": None, "state_noise": 1e-4, "history": 60, "priority_ratio": 10.0,
     "fallback": "shift", "backup_solver": "clarabel",
 }
@@ -93,7 +95,15 @@ _TARGET_PREF_FACTOR = 1e-6
 #: samples an MV that did not follow its command stays limited at its position (readback)
 _NOT_FOLLOWING_HOLD = 5
 
-SOLVERS = ("osqp", "clarabel")
+SOLVERS = ("auto", "daqp", "osqp", "clarabel")
+#: backup solvers (through cvxpy on the sparse statement)
+BACKUP_SOLVERS = ("clarabel", "osqp", "daqp")
+#: ``solver="auto"`` takes the condensed QP with DAQP while it has at most this many variables
+#: (nu * M) and its dense prediction matrix (ny*N rows by nu*M columns) at most this many
+#: entries (64 MB); beyond that the sparse form with OSQP (its cost grows with the horizon
+#: instead of the square of it).  A size rule of ours, from the benchmark in benchmarks/bench_mpc.py.
+CONDENSED_MAX_VARIABLES = 1000
+CONDENSED_MAX_ENTRIES = 8_000_000
 FALLBACKS = ("shift", "hold")
 _OSQP_OPTIONS = ("eps_abs", "eps_rel", "eps_prim_inf", "eps_dual_inf", "max_iter", "polishing",
                  "polish_refine_iter", "warm_starting", "adaptive_rho", "adaptive_rho_interval",
@@ -220,7 +230,7 @@ class PredictiveController:
                  cv: Mapping[str, Mapping[str, Any]] | None = None,
                  mv: Mapping[str, Mapping[str, Any]] | None = None,
                  dv: Mapping[str, Mapping[str, Any]] | None = None,
-                 terminal_cost: bool = False, steady_target: bool = True, solver: str = "osqp",
+                 terminal_cost: bool = False, steady_target: bool = True, solver: str = "auto",
                  fast_path: bool = True, solver_options: Mapping[str, Any] | None = None,
                  state_noise: float = 1e-4, history: int = 60, priority_ratio: float = 10.0,
                  fallback: str = "shift", backup_solver: str | None = "clarabel"):
@@ -316,10 +326,17 @@ class PredictiveController:
         _bool("fast_path", self.fast_path)
         if self.solver not in SOLVERS:
             raise _err("solver", f"one of {SOLVERS}", self.solver)
+        kind = self.solver
+        if kind == "auto":
+            nvar = m.nu * M
+            small = (nvar <= CONDENSED_MAX_VARIABLES
+                     and nvar * m.ny * N <= CONDENSED_MAX_ENTRIES)
+            kind = "daqp" if small else "osqp"
+        r["solver"] = kind
         if self.backup_solver == "none":          # the spelling a TOML file can give
             self.backup_solver = None
-        if self.backup_solver is not None and self.backup_solver not in SOLVERS:
-            raise _err("backup_solver", f"one of {SOLVERS} or 'none'", self.backup_solver)
+        if self.backup_solver is not None and self.backup_solver not in BACKUP_SOLVERS:
+            raise _err("backup_solver", f"one of {BACKUP_SOLVERS} or 'none'", self.backup_solver)
         if self.fallback not in FALLBACKS:
             raise _err("fallback", f"one of {FALLBACKS}", self.fallback)
         if self.terminal_cost and not self.steady_target:
@@ -328,15 +345,17 @@ class PredictiveController:
         opts = {} if self.solver_options is None else self.solver_options
         if not isinstance(opts, Mapping):
             raise _err("solver_options", "a mapping of solver setting names to values", opts)
-        if self.solver == "osqp":
+        if kind == "osqp":
             known = _OSQP_OPTIONS
+        elif kind == "daqp":
+            known = DAQP_OPTIONS
         else:
             import clarabel
 
             known = tuple(k for k in dir(clarabel.DefaultSettings()) if not k.startswith("_"))
         for k in opts:
             if k not in known:
-                raise SettingsError(f"PredictiveController: unknown {self.solver} option "
+                raise SettingsError(f"PredictiveController: unknown {kind} option "
                                     f"'solver_options.{k}'{suggest(k, known)}; known: "
                                     f"{sorted(known)}.")
         _number("state_noise", self.state_noise, low=0)
@@ -438,8 +457,6 @@ class PredictiveController:
                 gc.enable()
 
     def _build(self) -> "PredictiveController":
-        import cvxpy as cp
-
         t_start = time.perf_counter()
         r = self.validate()
         m = self.dmodel
@@ -458,7 +475,7 @@ class PredictiveController:
             history=int(self.history), state_scale=self._noise_scales(C, sy, sx)).build()
         Bw, Cw = self.estimator_.Bw_, self.estimator_.Cw_
         opts = r["solver_options"]
-        osqp_opts = dict(opts) if self.solver == "osqp" else {}
+        osqp_opts = dict(opts) if r["solver"] == "osqp" else {}
         Bd, Dd = np.asarray(m.Bd, float), np.asarray(m.Dd, float)
         nd = m.nd
         self.scales_ = {"x": sx, "u": su, "y": sy}
@@ -506,96 +523,10 @@ class PredictiveController:
             self.riccati_ = P / sx[:, None] / sx[None, :]          # engineering units
         self.terminal_weight_ = Pt
         A, B, C, D = As, Bs, Cs, Ds
-        # -- the dynamic QP, whole-horizon variables and matrix constraints
-        X = cp.Variable((nx, N), name="x")
-        U = cp.Variable((nu, M), name="u")
-        dU = cp.Variable((nu, M), name="du")
-        E = cp.Variable((ny, N), name="e")
-        S = cp.Variable((ny, N), name="slack")
-        par = {
-            "x0": cp.Parameter(nx, name="x0"), "u_prev": cp.Parameter(nu, name="u_prev"),
-            "W": cp.Parameter((nx, N), name="W"), "V": cp.Parameter((ny, N), name="V"),
-            "band_lo": cp.Parameter((ny, N), name="band_lo"),
-            "band_hi": cp.Parameter((ny, N), name="band_hi"),
-            "lim_lo": cp.Parameter((ny, N), name="lim_lo"),
-            "lim_hi": cp.Parameter((ny, N), name="lim_hi"),
-            "u_lo": cp.Parameter((nu, M), name="u_lo"), "u_hi": cp.Parameter((nu, M), name="u_hi"),
-            "du_lo": cp.Parameter((nu, M), name="du_lo"), "du_hi": cp.Parameter((nu, M), name="du_hi"),
-            "pref": cp.Parameter((nu, M), name="pref"),
-        }
-        e1N = np.zeros((1, N))
-        e1N[0, 0] = 1.0
-        e1M = np.zeros((1, M))
-        e1M[0, 0] = 1.0
-        shiftN = np.eye(N, k=1)                  # X @ shiftN: column k holds X[:, k-1]
-        shiftM = np.eye(M, k=1)
-        sel_now = np.zeros((M, N))               # u applied over sample k (k = 0..N-1)
-        sel_out = np.zeros((M, N))               # u seen by the output at k = 1..N
-        for k in range(N):
-            sel_now[min(k, M - 1), k] = 1.0
-            sel_out[min(k + 1, M - 1), k] = 1.0
-        count = sel_now.sum(axis=1)              # samples each planned move is held
-        x0c = cp.reshape(par["x0"], (nx, 1), order="F")
-        upc = cp.reshape(par["u_prev"], (nu, 1), order="F")
-        Y = C @ X + par["V"]
-        if np.any(D != 0):
-            Y = Y + D @ (U @ sel_out)
-        wq = np.repeat(wq_s[:, None], N, axis=1)
-        wr = np.repeat(wr_s[:, None], M, axis=1)
-        ws = wpref_s[:, None] * count[None, :]
-        wl = np.repeat(wl_s[:, None], N, axis=1)
-        wh = np.repeat(wh_s[:, None], N, axis=1)
-        obj = (cp.sum(cp.multiply(wq, cp.square(E)))
-               + cp.sum(cp.multiply(wr, cp.square(dU)))
-               + cp.sum(cp.multiply(ws, cp.square(U)))
-               - 2 * cp.sum(cp.multiply(cp.multiply(ws, par["pref"]), U))
-               + cp.sum(cp.multiply(wl, S)) + cp.sum(cp.multiply(wh, cp.square(S))))
-        if Pt is not None:
-            par["x_term"] = cp.Parameter(nx, name="x_term")
-            xN = X[:, N - 1]
-            obj = obj + cp.quad_form(xN, cp.psd_wrap(Pt)) - 2 * (par["x_term"] @ (Pt @ xN))
-        cons = [
-            X == A @ (X @ shiftN) + (A @ x0c) @ e1N + B @ (U @ sel_now) + par["W"],
-            dU == U - U @ shiftM - upc @ e1M,
-            par["band_lo"] <= Y - E, Y - E <= par["band_hi"],
-            Y + S >= par["lim_lo"], Y - S <= par["lim_hi"], S >= 0,
-            U >= par["u_lo"], U <= par["u_hi"],
-            dU >= par["du_lo"], dU <= par["du_hi"],
-        ]
-        prob = cp.Problem(cp.Minimize(obj), cons)
-        self.qp_ = CompiledQP(prob, par, {"x": X, "u": U, "du": dU, "e": E, "slack": S},
-                              inf_parameters=("band_lo", "band_hi", "lim_lo", "lim_hi", "u_lo",
-                                              "u_hi", "du_lo", "du_hi"),
-                              owner="PredictiveController").compile()
-        layout = {"x0": nx, "u_prev": nu, "d_now": nd, "dtraj": nd * (N + 1), "w": ny,
-                  "band_lo": ny,
-                  "band_hi": ny, "lim_lo": ny, "lim_hi": ny, "u_lo": nu * M, "u_hi": nu * M,
-                  "rate": nu, "pref": nu}
-        # the inputs stay in engineering deviation units: the scaling is folded into the maps
-        oneN, oneM = np.ones((N, 1)), np.ones((M, 1))
-        iy, iu, ix = sp.diags(1 / sy), sp.diags(1 / su), sp.diags(1 / sx)
-        rep_y = sp.kron(oneN, iy)
-        rep_u = sp.kron(oneM, iu)
-        maps = {
-            "x0": {"x0": ix}, "u_prev": {"u_prev": iu},
-            # DVs: their value now, plus a forecast's departure from it (zero without forecast)
-            "W": {"d_now": sp.kron(oneN, Bds),
-                  "dtraj": sp.hstack([sp.kron(sp.identity(N), Bds), sp.csc_matrix((nx * N, nd))]),
-                  "w": sp.kron(oneN, Bws)},
-            "V": {"d_now": sp.kron(oneN, Dds),
-                  "dtraj": sp.hstack([sp.csc_matrix((ny * N, nd)), sp.kron(sp.identity(N), Dds)]),
-                  "w": sp.kron(oneN, Cws)},
-            "band_lo": {"band_lo": rep_y}, "band_hi": {"band_hi": rep_y},
-            "lim_lo": {"lim_lo": rep_y}, "lim_hi": {"lim_hi": rep_y},
-            "u_lo": {"u_lo": sp.kron(sp.identity(M), iu)},
-            "u_hi": {"u_hi": sp.kron(sp.identity(M), iu)},
-            "du_lo": {"rate": -rep_u}, "du_hi": {"rate": rep_u}, "pref": {"pref": rep_u},
-        }
-        if Pt is not None:
-            layout["x_term"] = nx
-            maps["x_term"] = {"x_term": ix}
-        self.qp_.set_inputs(layout, maps, inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi",
-                                                      "u_lo", "u_hi", "rate"))
+        # -- the dynamic QP: condensed (DAQP) or the sparse cvxpy statement (OSQP / cvxpy)
+        self._statement_args = (self.scaled_, (sx, su, sy), N, M, Pt)
+        self._qp = None
+        layout = input_layout(nx, nu, nd, ny, N, M, Pt is not None)
         off, o = {}, 0
         for k, s_ in layout.items():
             off[k] = slice(o, o + s_)
@@ -611,12 +542,22 @@ class PredictiveController:
         self._tz = np.zeros(o)
         self._steps = np.arange(1, M + 1)[None, :].astype(float)
         self._plan_idx = np.minimum(np.arange(N), M - 1)
-        if self.solver == "osqp" and self.fast_path:
-            self.qp_.setup(osqp_opts)
-        self._cvxpy_solver = "OSQP" if self.solver == "osqp" else "CLARABEL"
+        kind = r["solver"]
+        self.solver_ = kind
+        self._osqp_opts = osqp_opts
+        self.condensed_ = None
+        if kind == "daqp" and self.fast_path:
+            self.condensed_ = CondensedQP(
+                m.A, m.B, m.C, m.D, Bd, Dd, Bw, Cw, N=N, M=M, scales=(sx, su, sy),
+                weights=self.scaled_, terminal=Pt, inputs=off, options=opts).build()
+        else:
+            self._qp = state_dynamic_qp(*self._statement_args)
+            if kind == "osqp" and self.fast_path:
+                self._qp.setup(osqp_opts)
+        self._cvxpy_solver = kind.upper()
         self._cvxpy_opts = dict(opts)
         self._backup = None if self.backup_solver is None else self.backup_solver.upper()
-        self._backup_opts = dict(opts) if self.backup_solver == self.solver else {}
+        self._backup_opts = dict(opts) if self.backup_solver == kind else {}
         self._N, self._M = N, M
         self._Bd, self._Dd = Bd, Dd
         self._Bw, self._Cw = Bw, Cw
@@ -625,6 +566,19 @@ class PredictiveController:
         self.is_built = True
         self.compile_s_ = time.perf_counter() - t_start
         return self
+
+    @property
+    def qp_(self) -> CompiledQP:
+        """The dynamic QP stated in cvxpy (sparse form), compiled on first use.
+
+        The OSQP path and the cvxpy paths build it in :meth:`build`; with the condensed DAQP
+        path it is compiled only when needed (the backup solver, a comparison), because at long
+        horizons its compilation costs seconds and hundreds of MB.
+        """
+        if self._qp is None:
+            self._check_built("qp_")
+            self._qp = state_dynamic_qp(*self._statement_args)
+        return self._qp
 
     @staticmethod
     def _noise_scales(C, sy, sx):
@@ -715,7 +669,10 @@ class PredictiveController:
         self.estimator_.reset(x0, t0)
         # solver state of a previous run (warm start, adaptive step size, learned active sets)
         # must not leak into this one: a rerun from the same point repeats the run exactly
-        self.qp_.restart()
+        if self._qp is not None:
+            self._qp.restart()
+        if self.condensed_ is not None:
+            self.condensed_.restart()
         if self.target_ is not None:
             self.target_.restart()
         self._last_inputs = None
@@ -728,7 +685,7 @@ class PredictiveController:
         self._slack_tol = 1e-4 * r["cv_scale"]
         self._slack_tol_list = self._slack_tol.tolist()
         self._mv_names = list(m.mv_names)
-        self._fast = self.solver == "osqp" and self.fast_path
+        self._fast = self.fast_path and self.solver_ in ("osqp", "daqp")
         self._z[:] = 0.0
         self._forecast_in_z = False
         self._u_prev = np.asarray(op.u, float).copy()
@@ -1051,8 +1008,16 @@ class PredictiveController:
         z[zs["pref"]] = pref
         if self.terminal_weight_ is not None:
             z[zs["x_term"]] = self._target[2]
+        cond = self.condensed_
         if fast:
-            res = self.qp_.solve_inputs(z)
+            if cond is not None:
+                res = cond.solve(z)
+                info = cond.last_info_
+                diag["exit_flag"] = info["exit_flag"]
+                diag["active_set"] = info["active_set"]
+            else:
+                res = self.qp_.solve_inputs(z)
+            diag["solver"] = self.solver_
             if not res.accepted and self.backup_solver is not None:
                 # a second opinion before falling back: the interior-point solver via cvxpy
                 res2 = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=self._backup,
@@ -1065,6 +1030,7 @@ class PredictiveController:
         else:
             res = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=self._cvxpy_solver,
                                        options=self._cvxpy_opts)
+            diag["solver"] = f"cvxpy/{self.solver_}"
         self._last_inputs = z
         diag["target_ms"] = t_target
         return res
@@ -1114,6 +1080,10 @@ class PredictiveController:
         dv_forecast = self._forecast(dv_forecast)
         diag: dict[str, Any] = {}
         res = self._optimize(x, w, d_now, use, dv_forecast, *lims, up, diag)
+        if res.values and "x" not in res.values:        # condensed: states on demand
+            z = self._last_inputs
+            res.values["x"] = self.condensed_.states(z, res.values["u"])
+            res.objective = self.condensed_.objective(z, res.values["u"])
         out: dict[str, Any] = {"status": res.status, "accepted": res.accepted,
                                "objective": res.objective, "diagnostics": diag}
         if res.values:
