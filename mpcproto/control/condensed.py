@@ -26,9 +26,9 @@ values); nothing else is a variable:
 * the move suppression, the pull to the preferred (target) MVs and the optional terminal cost
   (DARE weight on the last predicted state) are in the Hessian.
 
-DAQP minimizes ``0.5 U'HU + f'U`` plus the soft-row penalties; the controller's objective has no
-factor 1/2, so ``H`` and ``f`` are twice the controller's and the soft weights map as
-``w = 2 l`` and ``rho = 1 / (4 h)`` (scaled units).
+DAQP minimizes ``0.5 U'HU + f'U`` plus the soft-row penalties; ``H`` is twice the Hessian form of
+the controller's objective (which has no factor 1/2), so DAQP's objective *is* the controller's
+(up to a constant) and the soft weights map as ``w = l`` and ``rho = 1 / (2 h)`` (scaled units).
 
 The rows present (which CVs have a setpoint, a zone, a limit; which MVs a rate) form the
 *structure* of a sample.  Each structure gets its Hessian, row matrix and DAQP workspace once; a
@@ -227,7 +227,7 @@ class CondensedQP:
         rho = np.full(m, _RHO_LINEAR)
         wlin = np.zeros(m)
         zq = np.repeat(q[zone], N)
-        rho[n:n + len(r_zone)] = 1.0 / (4.0 * zq)
+        rho[n:n + len(r_zone)] = 1.0 / (2.0 * zq)
         used = np.concatenate([r_eq, r_zone, r_lim])
         st = {"H": H, "A": Arows, "sense": sense, "rho": rho, "wlin": wlin, "r_eq": r_eq,
               "r_zone": r_zone, "r_lim": r_lim, "r_rate": r_rate, "free": self.free_[used],
@@ -288,12 +288,12 @@ class CondensedQP:
         if nl:
             c = st["lim_cv"]
             lo, hi = lim_lo[c], lim_hi[c]
-            wl = 2.0 * lq[c]
+            wl = lq[c].copy()
             cross = lo > hi
             st["lim_off"] = 0.0
             if cross.any():          # one slack covers both sides: the mid-point, raised weight
                 mid = 0.5 * (lo + hi)
-                wl = np.where(cross, wl + 2.0 * hq[c] * (lo - hi), wl)
+                wl = np.where(cross, wl + hq[c] * (lo - hi), wl)
                 st["lim_off"] = np.repeat(np.where(cross, 0.5 * (lo - hi), 0.0), N)
                 lo, hi = np.where(cross, mid, lo), np.where(cross, mid, hi)
             ylim = yf[ne + nz_:]
@@ -304,7 +304,7 @@ class CondensedQP:
             if st["wkey"] != wkey:
                 st["wkey"] = wkey
                 with np.errstate(divide="ignore"):
-                    rq = np.where(hq[c] > 0, 1.0 / (4.0 * hq[c]), _RHO_LINEAR)
+                    rq = np.where(hq[c] > 0, 1.0 / (2.0 * hq[c]), _RHO_LINEAR)
                 rho_l[o:o + nl] = np.repeat(rq, N)
                 st["wlin"][o:o + nl] = np.repeat(wl, N)
                 st["weights_changed"] = True
