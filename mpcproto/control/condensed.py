@@ -64,7 +64,9 @@ DAQP_EXIT = {1: "optimal", 2: "optimal", -1: "infeasible", -2: "cycling", -3: "u
              -7: "time_limit"}
 _INF = 1e30          # DAQP's infinity
 _SOFT = 8            # DAQP sense flag of a soft row
-_RHO_LINEAR = 1e30   # reciprocal quadratic weight of a soft row with a linear weight only
+_RHO_LINEAR = 1e8   # reciprocal quadratic weight of a soft row with a linear weight only: DAQP
+#                     needs it finite (1e12 and beyond lost the optimum in our tests); its s^2 / 2e8
+#                     moves the plan by less than 1e-8 of the MV scale (tests/test_condensed.py)
 
 
 class CondensedQP:
