@@ -155,11 +155,13 @@ class CondensedQP:
         # move matrix: dU = Dm U - e1 (x) u_prev
         Dm = np.eye(n) - np.eye(n, k=-nu)
         self._Dm = Dm
+        self._su_t = np.tile(su, M)               # scale of each entry of U
         wr = np.tile(self._w["move_weight"], M)
         count = np.minimum(np.arange(N), M - 1)
         count = np.bincount(count, minlength=M).astype(float)
         ws = np.kron(count, self._w["preferred_weight"])
         self._ws = ws
+        self._fpref = 2.0 * ws[:, None] * np.tile(np.eye(nu) / su[None, :], (M, 1))   # times pref
         H0 = 2.0 * (Dm.T @ (wr[:, None] * Dm) + np.diag(ws))
         self._wr = wr
         self._fprev = -2.0 * (Dm.T[:, :nu] * wr[:nu][None, :]) / su[None, :]
@@ -237,7 +239,7 @@ class CondensedQP:
               "n_lim": len(r_lim), "model": daqp.Model(), "ready": False, "wkey": None,
               "bu": np.empty(m), "bl": np.empty(m), "lim_cv": np.flatnonzero(lim),
               "zone_cv": np.flatnonzero(zone), "eq_cv": np.flatnonzero(eq),
-              "rated_mv": np.flatnonzero(rated)}
+              "rate_mv": r_rate % nu, "rate_first": r_rate < nu}
         if len(self._structs) > 32:
             self._structs.clear()
         self._structs[key] = st
@@ -270,7 +272,7 @@ class CondensedQP:
         yf = st["free"] @ zf                      # free response of the rows in use
         ne, nz_, nl = st["n_eq"], st["n_zone"], st["n_lim"]
         u_prev = z[zs["u_prev"]]
-        f = self._fprev @ u_prev - 2.0 * self._ws * np.tile(z[zs["pref"]] / su, M)
+        f = self._fprev @ u_prev - self._fpref @ z[zs["pref"]]
         if ne:
             b = np.repeat(band_lo[st["eq_cv"]], N)
             f = f + st["fG"] @ (b - yf[:ne])
@@ -278,15 +280,14 @@ class CondensedQP:
             xf = self._PxN @ zf
             f = f + self._Kt @ (xf - z[zs["x_term"]] / self._sx)
         bu, bl = st["bu"], st["bl"]
-        bl[:n] = z[zs["u_lo"]] / np.tile(su, M)
-        bu[:n] = z[zs["u_hi"]] / np.tile(su, M)
+        bl[:n] = z[zs["u_lo"]] / self._su_t
+        bu[:n] = z[zs["u_hi"]] / self._su_t
         o = n
         if nz_:
             c = st["zone_cv"]
             bl[o:o + nz_] = np.repeat(band_lo[c], N) - yf[ne:ne + nz_]
             bu[o:o + nz_] = np.repeat(band_hi[c], N) - yf[ne:ne + nz_]
             o += nz_
-        weights = None
         if nl:
             c = st["lim_cv"]
             lo, hi = lim_lo[c], lim_hi[c]
@@ -312,10 +313,9 @@ class CondensedQP:
                 st["weights_changed"] = True
             o += nl
         if len(st["r_rate"]):
-            up = np.zeros(n)
-            up[:self.nu] = u_prev / su
-            d0 = up[st["r_rate"]]
-            rr = rate[st["r_rate"] % self.nu]
+            # move rows: the first move is measured from u_prev, the others from the last move
+            rr = rate[st["rate_mv"]]
+            d0 = np.where(st["rate_first"], (u_prev / su)[st["rate_mv"]], 0.0)
             bl[o:] = d0 - rr
             bu[o:] = d0 + rr
         np.clip(bl, -_INF, _INF, out=bl)

@@ -626,11 +626,11 @@ class PredictiveController:
         """
         nx = A.shape[0]
         reach = np.zeros(nx)
-        S, Ak = np.zeros_like(B), np.eye(nx)
-        for _ in range(max(T, 1)):
-            S = S + Ak @ B
+        S, AkB = np.zeros_like(B), B.copy()
+        for _ in range(max(T, 1)):          # A^k B by products with B only: nx^2 nu per sample
+            S = S + AkB
             reach = np.maximum(reach, np.max(np.abs(S) * su[None, :], axis=1) if B.size else 0.0)
-            Ak = Ak @ A
+            AkB = A @ AkB
         sx = reach
         bad = ~(sx > 1e-12)
         if bad.any():
