@@ -24,11 +24,15 @@ j = 0..M-1 moves, the MVs are held after the control horizon M)::
                lim_lo <= y + sl,  y - sl <= lim_hi,  sl >= 0
                u_lo <= u <= u_hi,  r_lo <= du <= r_hi    hard MV limits and rate limits
 
-Every per-sample datum is a cvxpy Parameter entering only the linear cost and the constraint
-bounds, so the problem is DPP, the matrices never change and OSQP keeps its factorization.  By
-default the compiled problem's affine parameter->data map is read once and OSQP is driven directly
-(``fast_path=True``); ``fast_path=False`` re-solves through ``cvxpy.Problem.solve`` (OSQP or
-Clarabel).  Both QPs are written in scaled deviations (one ``scale`` of each MV and CV is one
+This statement is written once in cvxpy (:mod:`mpcproto.control.dynamic_qp`); every per-sample
+datum is a cvxpy Parameter entering only the linear cost and the constraint bounds (DPP).  By
+default (``solver="auto"``) the same QP is solved in condensed form (:mod:`mpcproto.control.condensed`:
+states eliminated, the blocked MV values the only variables, soft limits and zones as soft rows)
+by DAQP's dual active set, exactly; for very large condensed QPs the sparse statement is driven
+through OSQP from its compiled parameter->data map; ``fast_path=False`` solves the statement
+through ``cvxpy.Problem.solve`` (the reference path).  Each step records ``solver``,
+``iterations``, ``solver_status`` and, with DAQP, ``exit_flag`` and ``active_set`` (the size of
+the final active set) in its diagnostics.  Both QPs are written in scaled deviations (one ``scale`` of each MV and CV is one
 unit; each state is scaled by how far one scaled MV step moves it within the horizon), which keeps
 OSQP's iteration counts low on units whose variables differ by orders of magnitude; inputs,
 outputs and diagnostics stay in engineering units.
@@ -183,14 +187,24 @@ class PredictiveController:
         from the steady target (needs ``steady_target``).
     steady_target : bool
         Solve the steady-state target QP each sample and track its result.
-    solver : {"osqp", "clarabel"}
-        QP solver.  Clarabel always goes through ``cvxpy.Problem.solve``.
+    solver : {"auto", "daqp", "osqp", "clarabel"}
+        Dynamic-QP solver.  ``"daqp"``: the condensed QP (states eliminated, decision = the
+        blocked MV values, soft CV limits and zones as DAQP soft rows; see
+        :mod:`mpcproto.control.condensed`) solved by DAQP's dual active set, warm-started, exact
+        to round-off.  ``"osqp"``: the sparse cvxpy statement driven through OSQP (tolerance
+        1e-5 by default: the applied move may differ from the optimum by ~1e-3 of the MV scale).
+        ``"clarabel"``: the statement through ``cvxpy.Problem.solve``.  ``"auto"`` (default):
+        ``"daqp"`` unless the condensed QP would have more than ``CONDENSED_MAX_VARIABLES``
+        variables or a prediction matrix of more than ``CONDENSED_MAX_ENTRIES`` entries, then
+        ``"osqp"``.  The resolved choice is ``solver_``.
     fast_path : bool
-        With OSQP: drive OSQP directly from the compiled parameter map (default) instead of
-        ``cvxpy.Problem.solve``.
+        True (default): the direct path of the solver (the condensed QP for DAQP, OSQP driven
+        from the compiled parameter map).  False: the cvxpy statement solved through
+        ``cvxpy.Problem.solve`` with the chosen solver (the reference path).
     solver_options : mapping
-        Solver settings (OSQP names such as ``eps_abs``, ``eps_rel``, ``max_iter``,
-        ``polishing``, ``adaptive_rho``; Clarabel's own names with Clarabel).
+        Settings of the chosen solver under its own names (DAQP: ``primal_tol`` (default
+        1e-10), ``iter_limit``, ``time_limit``...; OSQP: ``eps_abs``, ``eps_rel``, ``max_iter``,
+        ``polishing``, ``adaptive_rho``...; Clarabel's own names with Clarabel).
     state_noise : float
         Estimator process noise on the plant states (>= 0), per squared state unit where one
         unit of a state a CV reads directly moves that CV by one CV ``scale`` (a mass fraction
@@ -203,10 +217,12 @@ class PredictiveController:
         Weight factor between neighbouring priority classes (> 1).
     fallback : {"shift", "hold"}
         What a failed solve applies: the previous plan shifted one sample, or the previous MVs.
-    backup_solver : {"clarabel", "osqp", "none"} or None
-        With the fast path: when OSQP does not reach an optimal solution, solve the same compiled
-        problem once more with this solver through cvxpy before falling back (the first such call
-        canonicalizes for that solver, a few hundred ms).  None or "none": fall back at once.
+    backup_solver : {"clarabel", "osqp", "daqp", "none"} or None
+        With the fast path: when the solver does not reach an optimal solution (DAQP: an exit
+        flag other than 1 or 2), solve the cvxpy statement once more with this solver through
+        cvxpy before falling back (the first such call compiles the statement -- on the DAQP path
+        seconds at long horizons -- and canonicalizes for that solver).  None or "none": fall
+        back at once.
 
     Defaults of every key are in the module constants ``SETTINGS_KEYS``, ``CV_KEYS``,
     ``MV_KEYS`` and ``DV_KEYS``.
@@ -214,7 +230,12 @@ class PredictiveController:
     Attributes
     ----------
     qp_ : CompiledQP
-        After :meth:`build`: the compiled dynamic problem (``qp_.problem`` is the cvxpy Problem).
+        The dynamic problem stated in cvxpy (``qp_.problem`` is the cvxpy Problem); with the
+        condensed DAQP path compiled on first use.
+    condensed_ : CondensedQP or None
+        After :meth:`build` with the DAQP fast path: the condensed QP.
+    solver_ : str
+        The resolved solver ("daqp", "osqp" or "clarabel").
     estimator_ : DisturbanceEstimator
     target_ : SteadyTarget or None
     counts : dict
