@@ -16,7 +16,13 @@ import scipy.sparse as sp
 
 from ._qp import CompiledQP
 
-__all__ = ["state_dynamic_qp", "input_layout"]
+__all__ = ["state_dynamic_qp", "input_layout", "state_scales", "noise_scales",
+           "target_preferred_weight", "TARGET_PREF_FACTOR"]
+
+#: in the steady target the MV preferred values only break ties: the largest preferred weight is this
+#: fraction of the smallest CV weight (scaled units), so a reachable CV setpoint is never traded
+#: for an MV's preferred value
+TARGET_PREF_FACTOR = 1e-6
 
 
 def input_layout(nx: int, nu: int, nd: int, ny: int, N: int, M: int, terminal: bool) -> dict[str, int]:
@@ -136,3 +142,62 @@ def state_dynamic_qp(scaled, scales, N: int, M: int, Pt=None) -> CompiledQP:
     qp.set_inputs(layout, maps, inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi",
                                             "u_lo", "u_hi", "rate"))
     return qp
+
+
+def noise_scales(C, sy, sx):
+    """Per state, the size of one CV scale in that state's units, for a state that a CV reads
+    directly (the CV's row of ``C`` is mostly that state): ``sy_j / |C_ji|``; other states 1.
+
+    The estimator's ``state_noise`` is per squared such unit: a mass fraction read as wt%
+    (C = 100) gets a noise 1e4 times smaller than a level read in m, so that both mean the
+    same in the CVs.  States mixed into the CVs (a realization's internal states) keep the
+    engineering unit.  (Not the QP's reach-based scales ``sx``: on an open-loop unstable
+    unit those grow with the unstable mode and would drown the disturbance estimates.)
+    """
+    out = np.full(C.shape[1], np.inf)
+    absC = np.abs(C)
+    for j in range(absC.shape[0]):
+        row = absC[j]
+        tot = row.sum()
+        if tot <= 0:
+            continue
+        i = int(np.argmax(row))
+        if row[i] >= 0.9 * tot:                 # CV j reads state i (nearly) alone
+            out[i] = min(out[i], sy[j] / row[i])
+    return np.where(np.isfinite(out), out, 1.0)
+
+
+def target_preferred_weight(preferred_weight, wq_s, su):
+    """MV preferred weights for the steady target (engineering units): tie-breakers only.
+
+    In scaled units the largest is ``TARGET_PREF_FACTOR`` times the smallest positive CV
+    weight, the others keep their ratios to it; never below 1e-6 (a unique target).  So a
+    reachable CV setpoint is never traded for an MV's preferred value, whatever the units.
+    """
+    rs = np.asarray(preferred_weight, float) * su ** 2
+    pos = wq_s[wq_s > 0]
+    ref = float(pos.min()) if pos.size else 1.0
+    top = float(rs.max()) if rs.size else 0.0
+    rel = rs / top if top > 0 else np.zeros_like(rs)
+    return np.maximum(TARGET_PREF_FACTOR * ref * rel, 1e-6) / su ** 2
+
+
+def state_scales(A, B, C, su, sy, T):
+    """Per state: the largest change one scaled MV step causes within T samples.
+
+    States no MV reaches take the CV scale through ``C`` (or 1).
+    """
+    nx = A.shape[0]
+    reach = np.zeros(nx)
+    S, AkB = np.zeros_like(B), B.copy()
+    for _ in range(max(T, 1)):          # A^k B by products with B only: nx^2 nu per sample
+        S = S + AkB
+        reach = np.maximum(reach, np.max(np.abs(S) * su[None, :], axis=1) if B.size else 0.0)
+        AkB = A @ AkB
+    sx = reach
+    bad = ~(sx > 1e-12)
+    if bad.any():
+        with np.errstate(divide="ignore"):
+            via_c = np.min(np.where(np.abs(C) > 0, sy[:, None] / np.abs(C), np.inf), axis=0)
+        sx = np.where(bad, np.where(np.isfinite(via_c), via_c, 1.0), sx)
+    return np.clip(sx, 1e-9, 1e9)

@@ -47,103 +47,29 @@ systems, management of change and the judgement of licensed engineers under loca
 
 from __future__ import annotations
 
-import math
 import time
 from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 import scipy.linalg as sla
-import scipy.sparse as sp
 
 from ..exceptions import NotBuiltError, SettingsError
 from ..model import suggest
 from ._qp import CompiledQP
-from .condensed import DAQP_OPTIONS, CondensedQP
-from .dynamic_qp import input_layout, state_dynamic_qp
 from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_OK, ControlOutput,
                    Measurement, Targets)
-from .estimator import DISTURBANCE_MODELS, DisturbanceEstimator
+from .condensed import CondensedQP
+from .dynamic_qp import (input_layout, noise_scales, state_dynamic_qp, state_scales,
+                         target_preferred_weight)
+from .estimator import DisturbanceEstimator
+from .mpc_settings import CV_KEYS, DV_KEYS, MV_KEYS, SETTINGS_KEYS, _err, resolve  # noqa: F401
 from .steady_target import SteadyTarget
 
 __all__ = ["PredictiveController", "SETTINGS_KEYS", "CV_KEYS", "MV_KEYS", "DV_KEYS"]
 
-#: top-level settings keys and their defaults (see :class:`PredictiveController`)
-SETTINGS_KEYS: dict[str, Any] = {
-    "horizon": 30, "control_horizon": None, "cv": None, "mv": None, "dv": None,
-    "terminal_cost": False, "steady_target": True, "solver": "auto", "fast_path": True,
-    "solver_options": None, "state_noise": 1e-4, "history": 60, "priority_ratio": 10.0,
-    "fallback": "shift", "backup_solver": "clarabel",
-}
-#: per-CV keys and defaults
-CV_KEYS: dict[str, Any] = {
-    "weight": 1.0, "scale": 1.0, "low": -math.inf, "high": math.inf, "limit_penalty": 1e2,
-    "limit_penalty_quadratic": 1e1, "priority": 1, "disturbance": "auto",
-    "measurement_noise": 1e-3, "disturbance_noise": 1e-2,
-}
-#: per-MV keys and defaults
-MV_KEYS: dict[str, Any] = {
-    "move_weight": 0.1, "preferred_weight": 0.0, "preferred_value": None, "low": -math.inf,
-    "high": math.inf, "max_move": math.inf, "scale": 1.0,
-}
-#: keys of earlier versions that were renamed: refused with a message naming the new key
-_RENAMED_KEYS = {f"rest_{k}": f"preferred_{k}" for k in ("value", "weight")}
-#: per-DV keys and defaults
-DV_KEYS: dict[str, Any] = {"feedforward": True}
-
-#: in the steady target the MV preferred values only break ties: the largest preferred weight is this
-#: fraction of the smallest CV weight (scaled units), so a reachable CV setpoint is never traded
-#: for an MV's preferred value
-_TARGET_PREF_FACTOR = 1e-6
-
 #: samples an MV that did not follow its command stays limited at its position (readback)
 _NOT_FOLLOWING_HOLD = 5
-
-SOLVERS = ("auto", "daqp", "osqp", "clarabel")
-#: backup solvers (through cvxpy on the sparse statement)
-BACKUP_SOLVERS = ("clarabel", "osqp", "daqp")
-#: ``solver="auto"`` takes the condensed QP with DAQP while it has at most this many variables
-#: (nu * M) and its dense prediction matrix (ny*N rows by nu*M columns) at most this many
-#: entries (64 MB); beyond that the sparse form with OSQP (its cost grows with the horizon
-#: instead of the square of it).  A size rule of ours, from the benchmark in benchmarks/bench_mpc.py.
-CONDENSED_MAX_VARIABLES = 1000
-CONDENSED_MAX_ENTRIES = 8_000_000
-FALLBACKS = ("shift", "hold")
-_OSQP_OPTIONS = ("eps_abs", "eps_rel", "eps_prim_inf", "eps_dual_inf", "max_iter", "polishing",
-                 "polish_refine_iter", "warm_starting", "adaptive_rho", "adaptive_rho_interval",
-                 "adaptive_rho_tolerance", "adaptive_rho_fraction", "rho", "sigma", "alpha",
-                 "scaling", "time_limit", "check_termination", "scaled_termination", "delta",
-                 "verbose", "check_dualgap")
-
-
-def _err(key: str, expected: str, found: Any) -> SettingsError:
-    return SettingsError(f"PredictiveController: the '{key}' setting must be {expected}; got {found!r}.")
-
-
-def _number(key, v, *, low=None, low_open=False, allow_inf=False) -> float:
-    if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)):
-        raise _err(key, "a number", v)
-    f = float(v)
-    if math.isnan(f) or (math.isinf(f) and not allow_inf):
-        raise _err(key, "a finite number" if not allow_inf else "a number (not NaN)", v)
-    if low is not None and (f < low or (low_open and f == low)):
-        raise _err(key, f"a number {'>' if low_open else '>='} {low:g}", v)
-    return f
-
-
-def _int(key, v, low=1) -> int:
-    if isinstance(v, bool) or not isinstance(v, (int, np.integer)):
-        raise _err(key, f"an int >= {low}", v)
-    if v < low:
-        raise _err(key, f"an int >= {low}", v)
-    return int(v)
-
-
-def _bool(key, v) -> bool:
-    if not isinstance(v, (bool, np.bool_)):
-        raise _err(key, "true or false", v)
-    return bool(v)
-
 
 class PredictiveController:
     """Constrained, offset-free MPC on a :class:`~mpcproto.linear.DiscreteLinearModel`.
@@ -295,170 +221,16 @@ class PredictiveController:
         return obj
 
     def validate(self) -> dict[str, Any]:
-        """Check every setting against the model; return the resolved per-variable arrays.
+        """Check every setting against the model; return the resolved per-variable arrays
+        (see :func:`mpcproto.control.mpc_settings.resolve`).
 
         Raises
         ------
         SettingsError
             Naming the setting, what was expected and what was found.
         """
-        m = self.dmodel
-        self._check_model(m)
-        N = _int("horizon", self.horizon)
-        M = N if self.control_horizon is None else _int("control_horizon", self.control_horizon)
-        if M > N:
-            raise _err("control_horizon", f"an int between 1 and the horizon ({N})", self.control_horizon)
-        r: dict[str, Any] = {"N": N, "M": M}
-        cvs = self._per_var("cv", self.cv, m.cv_names, CV_KEYS)
-        mvs = self._per_var("mv", self.mv, m.mv_names, MV_KEYS)
-        dvs = self._per_var("dv", self.dv, m.dv_names, DV_KEYS)
-        arr = lambda rows, key: np.array([row[key] for row in rows], float)  # noqa: E731
-        for i, (name, row) in enumerate(zip(m.cv_names, cvs)):
-            p = f"cv.{name}"
-            _number(f"{p}.weight", row["weight"], low=0)
-            _number(f"{p}.scale", row["scale"], low=0, low_open=True)
-            _number(f"{p}.low", row["low"], allow_inf=True)
-            _number(f"{p}.high", row["high"], allow_inf=True)
-            if row["low"] > row["high"]:
-                raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
-            _number(f"{p}.limit_penalty", row["limit_penalty"], low=0)
-            _number(f"{p}.limit_penalty_quadratic", row["limit_penalty_quadratic"], low=0)
-            _int(f"{p}.priority", row["priority"])
-            if row["disturbance"] not in DISTURBANCE_MODELS:
-                raise _err(f"{p}.disturbance", f"one of {DISTURBANCE_MODELS}", row["disturbance"])
-            _number(f"{p}.measurement_noise", row["measurement_noise"], low=0, low_open=True)
-            _number(f"{p}.disturbance_noise", row["disturbance_noise"], low=0, low_open=True)
-        for name, row in zip(m.mv_names, mvs):
-            p = f"mv.{name}"
-            _number(f"{p}.move_weight", row["move_weight"], low=0)
-            _number(f"{p}.preferred_weight", row["preferred_weight"], low=0)
-            if row["preferred_value"] is not None:
-                _number(f"{p}.preferred_value", row["preferred_value"])
-            _number(f"{p}.low", row["low"], allow_inf=True)
-            _number(f"{p}.high", row["high"], allow_inf=True)
-            if row["low"] > row["high"]:
-                raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
-            _number(f"{p}.max_move", row["max_move"], low=0, low_open=True, allow_inf=True)
-            _number(f"{p}.scale", row["scale"], low=0, low_open=True)
-        for name, row in zip(m.dv_names, dvs):
-            _bool(f"dv.{name}.feedforward", row["feedforward"])
-        _bool("terminal_cost", self.terminal_cost)
-        _bool("steady_target", self.steady_target)
-        _bool("fast_path", self.fast_path)
-        if self.solver not in SOLVERS:
-            raise _err("solver", f"one of {SOLVERS}", self.solver)
-        kind = self.solver
-        if kind == "auto":
-            nvar = m.nu * M
-            small = (nvar <= CONDENSED_MAX_VARIABLES
-                     and nvar * m.ny * N <= CONDENSED_MAX_ENTRIES)
-            kind = "daqp" if small else "osqp"
-        r["solver"] = kind
-        if self.backup_solver == "none":          # the spelling a TOML file can give
-            self.backup_solver = None
-        if self.backup_solver is not None and self.backup_solver not in BACKUP_SOLVERS:
-            raise _err("backup_solver", f"one of {BACKUP_SOLVERS} or 'none'", self.backup_solver)
-        if self.fallback not in FALLBACKS:
-            raise _err("fallback", f"one of {FALLBACKS}", self.fallback)
-        if self.terminal_cost and not self.steady_target:
-            raise _err("terminal_cost", "false when steady_target is false (the terminal cost "
-                       "pulls the last state to the steady target)", self.terminal_cost)
-        opts = {} if self.solver_options is None else self.solver_options
-        if not isinstance(opts, Mapping):
-            raise _err("solver_options", "a mapping of solver setting names to values", opts)
-        if kind == "osqp":
-            known = _OSQP_OPTIONS
-        elif kind == "daqp":
-            known = DAQP_OPTIONS
-        else:
-            import clarabel
-
-            known = tuple(k for k in dir(clarabel.DefaultSettings()) if not k.startswith("_"))
-        for k in opts:
-            if k not in known:
-                raise SettingsError(f"PredictiveController: unknown {kind} option "
-                                    f"'solver_options.{k}'{suggest(k, known)}; known: "
-                                    f"{sorted(known)}.")
-        _number("state_noise", self.state_noise, low=0)
-        _int("history", self.history)
-        _number("priority_ratio", self.priority_ratio, low=1, low_open=True)
-        prio = arr(cvs, "priority")
-        pf = float(self.priority_ratio) ** (prio.max() - prio)
-        r.update(
-            cv_weight=arr(cvs, "weight") / arr(cvs, "scale") ** 2 * pf,
-            cv_scale=arr(cvs, "scale"), cv_low=arr(cvs, "low"), cv_high=arr(cvs, "high"),
-            lim_lin=arr(cvs, "limit_penalty") / arr(cvs, "scale") * pf,
-            lim_quad=arr(cvs, "limit_penalty_quadratic") / arr(cvs, "scale") ** 2 * pf,
-            disturbance={n: row["disturbance"] for n, row in zip(m.cv_names, cvs)},
-            meas_noise={n: float(row["measurement_noise"]) for n, row in zip(m.cv_names, cvs)},
-            dist_noise={n: float(row["disturbance_noise"]) for n, row in zip(m.cv_names, cvs)},
-            move_weight=arr(mvs, "move_weight") / arr(mvs, "scale") ** 2,
-            preferred_weight=arr(mvs, "preferred_weight") / arr(mvs, "scale") ** 2,
-            mv_scale=arr(mvs, "scale"),
-            preferred_value=np.array([m.op.u[j] if row["preferred_value"] is None else float(row["preferred_value"])
-                                 for j, row in enumerate(mvs)]),
-            mv_low=arr(mvs, "low"), mv_high=arr(mvs, "high"), max_move=arr(mvs, "max_move"),
-            feedforward=np.array([bool(row["feedforward"]) for row in dvs], bool),
-            solver_options=dict(opts),
-        )
-        self._resolved = r
-        return r
-
-    @staticmethod
-    def _per_var(role: str, given, names, keys: Mapping[str, Any]) -> list[dict[str, Any]]:
-        given = {} if given is None else given
-        if not isinstance(given, Mapping):
-            raise _err(role, f"a mapping of {role.upper()} name to a dict of settings", given)
-        for n, row in given.items():
-            if n not in names:
-                raise SettingsError(f"PredictiveController: '{role}' names an unknown {role.upper()} "
-                                    f"'{n}'{suggest(n, list(names))}; the model's {role.upper()}s are "
-                                    f"{list(names)}.")
-            if not isinstance(row, Mapping):
-                raise _err(f"{role}.{n}", "a mapping of setting names to values", row)
-            for k in row:
-                if k in _RENAMED_KEYS:
-                    raise SettingsError(f"PredictiveController: the setting '{role}.{n}.{k}' is now "
-                                        f"called '{_RENAMED_KEYS[k]}'; rename the key "
-                                        f"'{role}.{n}.{k}' to '{role}.{n}.{_RENAMED_KEYS[k]}'.")
-                if k not in keys:
-                    raise SettingsError(f"PredictiveController: unknown setting '{role}.{n}.{k}'"
-                                        f"{suggest(k, list(keys))}; known: {sorted(keys)}.")
-        out = []
-        for n in names:
-            row = dict(keys)
-            row.update(given.get(n, {}))
-            out.append(row)
-        return out
-
-    @staticmethod
-    def _check_model(m) -> None:
-        need = ("A", "B", "Bd", "C", "D", "Dd", "Ts", "op")
-        for k in need:
-            if not hasattr(m, k):
-                raise SettingsError(f"PredictiveController: dmodel must be a DiscreteLinearModel "
-                                    f"(missing '{k}'); got {type(m).__name__}.")
-        A = np.asarray(m.A, float)
-        if A.ndim != 2 or A.shape[0] != A.shape[1]:
-            raise SettingsError(f"PredictiveController: dmodel.A must be square; got shape {A.shape}.")
-        nx = A.shape[0]
-        nu, nd, ny = len(m.op.mv_names), len(m.op.dv_names), len(m.op.cv_names)
-        for k, shape in (("B", (nx, nu)), ("Bd", (nx, nd)), ("C", (ny, nx)), ("D", (ny, nu)),
-                         ("Dd", (ny, nd))):
-            got = np.shape(getattr(m, k))
-            if got != shape:
-                raise SettingsError(f"PredictiveController: dmodel.{k} must have shape {shape} "
-                                    f"(states={nx}, MVs={nu}, DVs={nd}, CVs={ny}); got {got}.")
-            if not np.all(np.isfinite(np.asarray(getattr(m, k), float))):
-                raise SettingsError(f"PredictiveController: dmodel.{k} has non-finite entries.")
-        if not np.all(np.isfinite(A)):
-            raise SettingsError("PredictiveController: dmodel.A has non-finite entries.")
-        for k, n in (("u", nu), ("d", nd), ("y", ny)):
-            if np.shape(getattr(m.op, k)) != (n,):
-                raise SettingsError(f"PredictiveController: dmodel.op.{k} must have shape ({n},); "
-                                    f"got {np.shape(getattr(m.op, k))}.")
-        if not (np.isfinite(m.Ts) and m.Ts > 0):
-            raise SettingsError(f"PredictiveController: dmodel.Ts must be > 0; got {m.Ts!r}.")
+        self._resolved = resolve(self)
+        return self._resolved
 
     # ================================================================== build
     def build(self) -> "PredictiveController":
@@ -488,12 +260,12 @@ class PredictiveController:
         # -- scaling: the QPs work in scaled deviations (one MV/CV scale = 1; states scaled by how
         # far the MVs move them within the horizon), so OSQP sees a well-balanced problem
         su, sy = r["mv_scale"], r["cv_scale"]
-        sx = self._state_scales(A, B, C, su, sy, min(N, 50))
+        sx = state_scales(A, B, C, su, sy, min(N, 50))
         # the estimator's state noise is per state in CV units (see DisturbanceEstimator)
         self.estimator_ = DisturbanceEstimator(
             m, disturbance=r["disturbance"], state_noise=float(self.state_noise),
             disturbance_noise=r["dist_noise"], measurement_noise=r["meas_noise"],
-            history=int(self.history), state_scale=self._noise_scales(C, sy, sx)).build()
+            history=int(self.history), state_scale=noise_scales(C, sy, sx)).build()
         Bw, Cw = self.estimator_.Bw_, self.estimator_.Cw_
         opts = r["solver_options"]
         osqp_opts = dict(opts) if r["solver"] == "osqp" else {}
@@ -520,7 +292,7 @@ class PredictiveController:
                 A, B, C, D, Bd, Dd, Bw, Cw,
                 band_weight=r["cv_weight"] + 1e-9 / sy ** 2, limit_linear=r["lim_lin"],
                 limit_quadratic=r["lim_quad"],
-                preferred_weight=self._target_preferred_weight(r["preferred_weight"], wq_s, su),
+                preferred_weight=target_preferred_weight(r["preferred_weight"], wq_s, su),
                 solver_options=osqp_opts, scales=(sx, su, sy)).build()
         else:
             self.target_ = None
@@ -600,65 +372,6 @@ class PredictiveController:
             self._check_built("qp_")
             self._qp = state_dynamic_qp(*self._statement_args)
         return self._qp
-
-    @staticmethod
-    def _noise_scales(C, sy, sx):
-        """Per state, the size of one CV scale in that state's units, for a state that a CV reads
-        directly (the CV's row of ``C`` is mostly that state): ``sy_j / |C_ji|``; other states 1.
-
-        The estimator's ``state_noise`` is per squared such unit: a mass fraction read as wt%
-        (C = 100) gets a noise 1e4 times smaller than a level read in m, so that both mean the
-        same in the CVs.  States mixed into the CVs (a realization's internal states) keep the
-        engineering unit.  (Not the QP's reach-based scales ``sx``: on an open-loop unstable
-        unit those grow with the unstable mode and would drown the disturbance estimates.)
-        """
-        out = np.full(C.shape[1], np.inf)
-        absC = np.abs(C)
-        for j in range(absC.shape[0]):
-            row = absC[j]
-            tot = row.sum()
-            if tot <= 0:
-                continue
-            i = int(np.argmax(row))
-            if row[i] >= 0.9 * tot:                 # CV j reads state i (nearly) alone
-                out[i] = min(out[i], sy[j] / row[i])
-        return np.where(np.isfinite(out), out, 1.0)
-
-    @staticmethod
-    def _target_preferred_weight(preferred_weight, wq_s, su):
-        """MV preferred weights for the steady target (engineering units): tie-breakers only.
-
-        In scaled units the largest is ``_TARGET_PREF_FACTOR`` times the smallest positive CV
-        weight, the others keep their ratios to it; never below 1e-6 (a unique target).  So a
-        reachable CV setpoint is never traded for an MV's preferred value, whatever the units.
-        """
-        rs = np.asarray(preferred_weight, float) * su ** 2
-        pos = wq_s[wq_s > 0]
-        ref = float(pos.min()) if pos.size else 1.0
-        top = float(rs.max()) if rs.size else 0.0
-        rel = rs / top if top > 0 else np.zeros_like(rs)
-        return np.maximum(_TARGET_PREF_FACTOR * ref * rel, 1e-6) / su ** 2
-
-    @staticmethod
-    def _state_scales(A, B, C, su, sy, T):
-        """Per state: the largest change one scaled MV step causes within T samples.
-
-        States no MV reaches take the CV scale through ``C`` (or 1).
-        """
-        nx = A.shape[0]
-        reach = np.zeros(nx)
-        S, AkB = np.zeros_like(B), B.copy()
-        for _ in range(max(T, 1)):          # A^k B by products with B only: nx^2 nu per sample
-            S = S + AkB
-            reach = np.maximum(reach, np.max(np.abs(S) * su[None, :], axis=1) if B.size else 0.0)
-            AkB = A @ AkB
-        sx = reach
-        bad = ~(sx > 1e-12)
-        if bad.any():
-            with np.errstate(divide="ignore"):
-                via_c = np.min(np.where(np.abs(C) > 0, sy[:, None] / np.abs(C), np.inf), axis=0)
-            sx = np.where(bad, np.where(np.isfinite(via_c), via_c, 1.0), sx)
-        return np.clip(sx, 1e-9, 1e9)
 
     def _check_built(self, what: str) -> None:
         if not self.is_built:
