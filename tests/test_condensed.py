@@ -15,6 +15,7 @@ import pytest
 import scipy.linalg as sla
 
 import mpcproto as mp
+from mpcproto.control.base import STATUS_HOLD
 from mpcproto.scenario.runner import build_controller, prepare
 from mpcproto.scenario.schema import load_scenario
 
@@ -193,3 +194,26 @@ def test_shipped_scenarios_condensed_equals_statement(path, label):
         u_ref, _s, _o = reference_plan(ctl, z)
         worst = max(worst, float(np.max(np.abs(res.values["u"] - u_ref))))
     assert worst <= 1e-8, worst
+
+
+def test_daqp_exit_flag_not_optimal_is_never_applied():
+    # Reference: common practice, no source -- a solve that is not optimal is never applied:
+    # the backup solver (Clarabel through the cvxpy statement) answers, or the shifted plan / hold.
+    dm = make_dlm([[0.9]], [[0.1]], [[1.0]])
+    tg = free_targets(1, 1, sp=[10.0])
+    tg = mp.Targets(setpoint=tg.setpoint, cv_low=tg.cv_low, cv_high=tg.cv_high,
+                    mv_low=np.array([-0.5]), mv_high=np.array([0.5]))
+    common = dict(horizon=10, solver_options={"iter_limit": 1}, steady_target=False)
+    backed = mp.PredictiveController(dm, **common).build()
+    backed.reset()
+    out = backed.step(0.0, mp.Measurement.now([0.0], 0.0), [], tg)
+    d = out.diagnostics
+    assert d["solver"] == "daqp" and d["exit_flag"] == -4          # DAQP: iteration limit
+    assert d["first_solver_status"] == "iteration_limit"
+    assert backed.counts["backup_solves"] == 1 and out.status == "ok"
+    assert out.u[0] == pytest.approx(0.5)                          # Clarabel's answer
+    alone = mp.PredictiveController(dm, backup_solver=None, **common).build()
+    alone.reset()
+    out = alone.step(0.0, mp.Measurement.now([0.0], 0.0), [], tg)
+    assert out.diagnostics["fallback"] is True and out.status == STATUS_HOLD
+    assert alone.counts["failed_solves"] == 1
