@@ -188,12 +188,21 @@ def test_shipped_scenarios_condensed_equals_statement(path, label):
     mp.simulate(prep.plant, ctl, op=prep.op, Ts=scn.sample_time,
                 duration=samples * scn.sample_time, rng=1, **prep.sim)
     assert len(seen) >= samples - 1
-    worst = 0.0
+    worst_first, worst_plan = 0.0, 0.0
+    cq = ctl.condensed_
     for z, res in seen[::3]:
         assert res.accepted, res.status
-        u_ref, _s, _o = reference_plan(ctl, z)
-        worst = max(worst, float(np.max(np.abs(res.values["u"] - u_ref))))
-    assert worst <= 1e-8, worst
+        u_ref, _s, obj_ref = reference_plan(ctl, z)
+        d = np.abs(res.values["u"] - u_ref)
+        worst_first = max(worst_first, float(d[:, 0].max()))
+        worst_plan = max(worst_plan, float(d.max()))
+        # never worse than the reference (where they differ, DAQP's objective is the lower one)
+        assert cq.objective(z, res.values["u"]) <= obj_ref + 1e-10 * max(1.0, abs(obj_ref))
+    # the applied move to 1e-8 of the MV scale; later moves of the plan lie along directions in
+    # which the objective is nearly flat (it agrees to ~16 digits where they differ by 2e-8 on
+    # the blending tank), so an interior-point reference pins them only to ~1e-7
+    assert worst_first <= 1e-8, worst_first
+    assert worst_plan <= 1e-7, worst_plan
 
 
 def test_daqp_exit_flag_not_optimal_is_never_applied():

@@ -232,10 +232,16 @@ class CondensedQP:
         wlin = np.zeros(m)
         zq = np.repeat(q[zone], N)
         rho[n:n + len(r_zone)] = 1.0 / (2.0 * zq)
-        used = np.concatenate([r_eq, r_zone, r_lim])
+        # gradient: f = fz @ z[:k_end] + fb @ (setpoints of the eq CVs) (+ u_prev, pref, terminal)
+        fG = -2.0 * Geq.T * qeq[None, :]
+        fz = -fG @ self.free_[r_eq]
+        if self._Pt is not None:
+            fz = fz + self._Kt @ self._PxN
+        fb = fG.reshape(n, int(eq.sum()), N).sum(axis=2)
+        used = np.concatenate([r_zone, r_lim])
         st = {"H": H, "A": Arows, "sense": sense, "rho": rho, "wlin": wlin, "r_eq": r_eq,
               "r_zone": r_zone, "r_lim": r_lim, "r_rate": r_rate, "free": self.free_[used],
-              "fG": -2.0 * Geq.T * qeq[None, :], "n_eq": len(r_eq), "n_zone": len(r_zone),
+              "fz": fz, "fb": fb, "n_eq": len(r_eq), "n_zone": len(r_zone),
               "n_lim": len(r_lim), "model": daqp.Model(), "ready": False, "wkey": None,
               "bu": np.empty(m), "bl": np.empty(m), "lim_cv": np.flatnonzero(lim),
               "zone_cv": np.flatnonzero(zone), "eq_cv": np.flatnonzero(eq),
@@ -266,19 +272,20 @@ class CondensedQP:
         eq = active & fin_lo & fin_hi & (band_lo == band_hi)
         zone = active & ~eq & (fin_lo | fin_hi)
         lim = ((lq > 0) | (hq > 0)) & (np.isfinite(lim_lo) | np.isfinite(lim_hi))
+        # a zone whose ends are the CV's limits shares the limit's row: q v^2 + l v + h v^2
+        merged = zone & lim & (band_lo == lim_lo) & (band_hi == lim_hi)
+        zone = zone & ~merged
         rated = np.isfinite(rate)
         st, key = self._structure(eq, zone, lim, rated)
         zf = z[:self._k_end]
-        yf = st["free"] @ zf                      # free response of the rows in use
-        ne, nz_, nl = st["n_eq"], st["n_zone"], st["n_lim"]
+        yf = st["free"] @ zf                      # free response of the soft rows
+        ne, nz_, nl = 0, st["n_zone"], st["n_lim"]
         u_prev = z[zs["u_prev"]]
-        f = self._fprev @ u_prev - self._fpref @ z[zs["pref"]]
-        if ne:
-            b = np.repeat(band_lo[st["eq_cv"]], N)
-            f = f + st["fG"] @ (b - yf[:ne])
+        f = self._fprev @ u_prev - self._fpref @ z[zs["pref"]] + st["fz"] @ zf
+        if st["n_eq"]:
+            f += st["fb"] @ band_lo[st["eq_cv"]]
         if self._Pt is not None:
-            xf = self._PxN @ zf
-            f = f + self._Kt @ (xf - z[zs["x_term"]] / self._sx)
+            f -= self._Kt @ (z[zs["x_term"]] / self._sx)
         bu, bl = st["bu"], st["bl"]
         bl[:n] = z[zs["u_lo"]] / self._su_t
         bu[:n] = z[zs["u_hi"]] / self._su_t
@@ -303,11 +310,12 @@ class CondensedQP:
             bl[o:o + nl] = np.repeat(lo, N) - ylim
             bu[o:o + nl] = np.repeat(hi, N) - ylim
             rho_l = st["rho"]
-            wkey = (wl.tobytes(), c.tobytes())
+            hq_c = hq[c] + np.where(merged[c], q[c], 0.0)
+            wkey = (wl.tobytes(), hq_c.tobytes())
             if st["wkey"] != wkey:
                 st["wkey"] = wkey
                 with np.errstate(divide="ignore"):
-                    rq = np.where(hq[c] > 0, 1.0 / (2.0 * hq[c]), _RHO_LINEAR)
+                    rq = np.where(hq_c > 0, 1.0 / (2.0 * hq_c), _RHO_LINEAR)
                 rho_l[o:o + nl] = np.repeat(rq, N)
                 st["wlin"][o:o + nl] = np.repeat(wl, N)
                 st["weights_changed"] = True
