@@ -363,9 +363,14 @@ class CondensedQP:
             slack = np.zeros((self.ny, self.N))
             nl = st["n_lim"]
             if nl:
-                o = self.n_variables_ + st["n_zone"]
-                gu = A[st["n_zone"]:st["n_zone"] + nl] @ U
-                s = np.maximum(np.maximum(bl[o:o + nl] - gu, gu - bu[o:o + nl]), 0.0) + st["lim_off"]
+                # only a row in the final active set can be violated (others hold to primal_tol)
+                o, nz_ = self.n_variables_ + st["n_zone"], st["n_zone"]
+                act = np.flatnonzero(lam[o:o + nl]) if lam is not None else np.arange(nl)
+                s = np.zeros(nl)
+                if act.size:
+                    gu = A[nz_ + act] @ U
+                    s[act] = np.maximum(np.maximum(bl[o + act] - gu, gu - bu[o + act]), 0.0)
+                s += st["lim_off"]
                 slack[st["lim_cv"], :] = s.reshape(len(st["lim_cv"]), self.N)
             vals["slack"] = slack
         return QPResult(status=status, accepted=bool(ok), values=vals,
