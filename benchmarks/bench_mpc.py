@@ -26,8 +26,8 @@ Per horizon:
   warm-started, the same settings and soft weights.  The controller runs segments of 25 samples;
   after each the floor replays them, so both see the same machine load.  Variables and rows of the
   QP are printed beside each figure;
-* **accuracy**: 8 recorded QPs per horizon (spread over the run) are solved again by Clarabel (interior point, its own API,
-  tolerances 1e-12) with explicit slacks; the largest difference of the applied (first) move and of
+* **accuracy**: 8 recorded QPs per horizon (spread over the run) are solved again by Clarabel
+  (interior point, its own API, tolerances 1e-12) with explicit slacks; the largest difference of the applied (first) move and of
   the whole plan, in MV scales (the interior-point reference itself is good to ~1e-9..1e-7 on the
   worse-conditioned QPs: a difference at that level does not say which of the two is off);
 * **build**: ``build()`` time (median of 3) and **memory**: peak Python heap (tracemalloc) during
@@ -271,7 +271,8 @@ def tight_reference(rec):
     st.verbose = False
     st.tol_gap_abs = st.tol_gap_rel = st.tol_feas = 1e-12
     st.max_iter = 400
-    sol = clarabel.DefaultSolver(P, q, Acl, b, [clarabel.NonnegativeConeT(Acl.shape[0])], st).solve()
+    cones = [clarabel.NonnegativeConeT(Acl.shape[0])]
+    sol = clarabel.DefaultSolver(P, q, Acl, b, cones, st).solve()
     status = str(sol.status)
     x = np.asarray(sol.x)[:n]
     return x, ("optimal" if status == "Solved" else status), nv
@@ -341,7 +342,8 @@ def bench_horizon(unit, N, steps):
         "unit": unit.name, "horizon": N, "control_horizon": ctrl._M,
         "qp_variables": ctrl.condensed_.n_variables_,
         "qp_rows_median": float(np.median(nrows)), "qp_rows_max": int(max(nrows)),
-        "states": int(ctrl.dmodel.nx), "delay_states": int(ctrl.dmodel.nx - ctrl.dmodel.n_plant_states),
+        "states": int(ctrl.dmodel.nx),
+        "delay_states": int(ctrl.dmodel.nx - ctrl.dmodel.n_plant_states),
         "step_median_ms": ms(st, 50), "step_p95_ms": ms(st, 95),
         "floor_median_ms": ms(fl, 50), "floor_p95_ms": ms(fl, 95),
         "ratio_median": float(np.median(st) / np.median(fl)),
@@ -353,7 +355,8 @@ def bench_horizon(unit, N, steps):
         "build_s": build_s, "peak_heap_mb": heap, "rss_growth_mb": (rss - rss0) / 1024.0,
         "applied_move_diff_max": max(u0d) if u0d else None,
         "plan_diff_max": max(pland) if pland else None,
-        "reference_solves": len(refst), "reference_not_optimal": int(sum(s != "optimal" for s in refst)),
+        "reference_solves": len(refst),
+        "reference_not_optimal": int(sum(s != "optimal" for s in refst)),
         "non_ok_steps": int(sum(s != "ok" for s in statuses)),
         "load_average_1min": float(os.getloadavg()[0]),
     }

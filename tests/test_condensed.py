@@ -133,7 +133,8 @@ def test_condensed_unconstrained_is_lqr(N):
     ctrl = mp.PredictiveController(
         dm, horizon=N, terminal_cost=True,
         cv={f"y{i}": {"weight": float(qw[i])} for i in range(3)},
-        mv={f"u{j}": {"preferred_weight": float(rw[j]), "move_weight": 0.0} for j in range(2)}).build()
+        mv={f"u{j}": {"preferred_weight": float(rw[j]), "move_weight": 0.0}
+            for j in range(2)}).build()
     assert ctrl.solver_ == "daqp"
     P = sla.solve_discrete_are(A, B, np.diag(qw), np.diag(rw))
     K = np.linalg.solve(np.diag(rw) + B.T @ P @ B, B.T @ P @ A)
@@ -148,7 +149,8 @@ def test_condensed_unconstrained_is_least_squares():
     A, B, C, _ = random_stable(rng, 3, 2, 2)
     dm = make_dlm(A, B, C)
     ctrl = mp.PredictiveController(dm, horizon=10, control_horizon=3, steady_target=False,
-                                   mv={"u0": {"move_weight": 0.2}, "u1": {"move_weight": 0.5}}).build()
+                                   mv={"u0": {"move_weight": 0.2},
+                                       "u1": {"move_weight": 0.5}}).build()
     x = rng.standard_normal(3)
     sp = np.array([0.4, -0.3])
     out = ctrl.plan(x, free_targets(2, 2, sp=sp))

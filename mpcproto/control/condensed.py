@@ -15,7 +15,8 @@ values); nothing else is a variable:
   least squares in the Hessian, ``q (y - b)^2``;
 * **zones** (a band with distinct ends, one of them finite) are DAQP soft rows with the quadratic
   weight ``q`` and no linear weight: DAQP charges ``w s + s^2 / (2 rho)`` for a violation ``s`` of a
-  soft row, which is exactly today's "squared error outside the band"; rows only for CVs with a zone;
+  soft row, which is exactly the slack form's "squared error outside the band"; rows only for CVs
+  with a zone;
 * **soft CV limits** are DAQP soft rows with the linear weight (``limit_penalty``) and the quadratic
   weight (``limit_penalty_quadratic``) of the CV: the slack form's optimum ``l s + h s^2`` with
   ``s = max(lo - y, y - hi, 0)``.  Where the run-time limits cross (lo > hi) the one slack of the
@@ -195,14 +196,12 @@ class CondensedQP:
             self._GxN = GxN
         self._H0 = 0.5 * (H0 + H0.T)
         self._structs: dict[bytes, dict[str, Any]] = {}
-        self._key = None
         self.is_built = True
         return self
 
     def restart(self) -> None:
         """Forget the workspaces and active sets of a previous run (a rerun repeats it exactly)."""
         self._structs.clear()
-        self._key = None
 
     # ------------------------------------------------------------------ per structure
     def _structure(self, eq, zone, lim, rated):
@@ -213,7 +212,10 @@ class CondensedQP:
         import daqp
 
         N, ny, nu, M = self.N, self.ny, self.nu, self.M
-        rows_of = lambda mask: (np.arange(N)[:, None] * ny + np.flatnonzero(mask)[None, :]).ravel(order="F")  # noqa: E731
+
+        def rows_of(mask):         # rows k*ny + i of the CVs in mask, CV after CV
+            return (np.arange(N)[:, None] * ny + np.flatnonzero(mask)[None, :]).ravel(order="F")
+
         r_eq, r_zone, r_lim = rows_of(eq), rows_of(zone), rows_of(lim)
         G = self.G_
         q = self._w["cv_weight"]
@@ -279,7 +281,7 @@ class CondensedQP:
         st, key = self._structure(eq, zone, lim, rated)
         zf = z[:self._k_end]
         yf = st["free"] @ zf                      # free response of the soft rows
-        ne, nz_, nl = 0, st["n_zone"], st["n_lim"]
+        nz_, nl = st["n_zone"], st["n_lim"]
         u_prev = z[zs["u_prev"]]
         f = self._fprev @ u_prev - self._fpref @ z[zs["pref"]] + st["fz"] @ zf
         if st["n_eq"]:
@@ -292,8 +294,8 @@ class CondensedQP:
         o = n
         if nz_:
             c = st["zone_cv"]
-            bl[o:o + nz_] = np.repeat(band_lo[c], N) - yf[ne:ne + nz_]
-            bu[o:o + nz_] = np.repeat(band_hi[c], N) - yf[ne:ne + nz_]
+            bl[o:o + nz_] = np.repeat(band_lo[c], N) - yf[:nz_]
+            bu[o:o + nz_] = np.repeat(band_hi[c], N) - yf[:nz_]
             o += nz_
         if nl:
             c = st["lim_cv"]
@@ -306,7 +308,7 @@ class CondensedQP:
                 wl = np.where(cross, wl + hq[c] * (lo - hi), wl)
                 st["lim_off"] = np.repeat(np.where(cross, 0.5 * (lo - hi), 0.0), N)
                 lo, hi = np.where(cross, mid, lo), np.where(cross, mid, hi)
-            ylim = yf[ne + nz_:]
+            ylim = yf[nz_:]
             bl[o:o + nl] = np.repeat(lo, N) - ylim
             bu[o:o + nl] = np.repeat(hi, N) - ylim
             rho_l = st["rho"]
@@ -339,7 +341,12 @@ class CondensedQP:
         mdl = st["model"]
         if not st["ready"]:
             ef = mdl.setup(H, f, A, bu, bl, sense)
-            ef = ef[0] if isinstance(ef, tuple) else ef
+            ef = int(ef[0] if isinstance(ef, tuple) else ef)
+            if ef < 0:                 # e.g. a Hessian DAQP cannot factorize: not solved
+                self.last_info_ = {"exit_flag": ef, "active_set": None, "solver": "daqp",
+                                   "rows": int(A.shape[0]), "variables": self.n_variables_}
+                return QPResult(status=f"setup_failed ({ef})", accepted=False,
+                                solve_ms=(time.perf_counter() - t0) * 1e3)
             mdl.settings = self.options
             st["ready"] = True
             st["weights_changed"] = True
@@ -396,7 +403,7 @@ class CondensedQP:
         return out / self._sx[:, None]
 
     def objective(self, z: np.ndarray, u: np.ndarray) -> float:
-        """The controller's objective (the sparse statement's, without constant terms) at plan *u*."""
+        """The controller's objective (the sparse statement's, no constant terms) at plan *u*."""
         zs, sy, su = self._zs, self._sy, self._su
         N, M = self.N, self.M
         U = u.ravel(order="F")
@@ -413,7 +420,8 @@ class CondensedQP:
         w = self._w
         obj = (np.sum(w["cv_weight"][:, None] * E ** 2) + np.sum(self._wr * dU ** 2)
                + np.sum(self._ws * U ** 2) - 2 * np.sum(self._ws * pref * U)
-               + np.sum(w["limit_linear"][:, None] * S) + np.sum(w["limit_quadratic"][:, None] * S ** 2))
+               + np.sum(w["limit_linear"][:, None] * S)
+               + np.sum(w["limit_quadratic"][:, None] * S ** 2))
         if self._Pt is not None:
             xN = self._PxN @ z[:self._k_end] + self._GxN @ U
             obj += xN @ self._Pt @ xN - 2 * (z[zs["x_term"]] / self._sx) @ (self._Pt @ xN)

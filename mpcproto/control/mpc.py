@@ -26,16 +26,18 @@ j = 0..M-1 moves, the MVs are held after the control horizon M)::
 
 This statement is written once in cvxpy (:mod:`mpcproto.control.dynamic_qp`); every per-sample
 datum is a cvxpy Parameter entering only the linear cost and the constraint bounds (DPP).  By
-default (``solver="auto"``) the same QP is solved in condensed form (:mod:`mpcproto.control.condensed`:
-states eliminated, the blocked MV values the only variables, soft limits and zones as soft rows)
+default (``solver="auto"``) the same QP is solved in condensed form
+(:mod:`mpcproto.control.condensed`: states eliminated, the blocked MV values the only variables, soft limits and zones as soft rows)
 by DAQP's dual active set, exactly; for very large condensed QPs the sparse statement is driven
 through OSQP from its compiled parameter->data map; ``fast_path=False`` solves the statement
 through ``cvxpy.Problem.solve`` (the reference path).  Each step records ``solver``,
 ``iterations``, ``solver_status`` and, with DAQP, ``exit_flag`` and ``active_set`` (the size of
-the final active set) in its diagnostics.  Both QPs are written in scaled deviations (one ``scale`` of each MV and CV is one
-unit; each state is scaled by how far one scaled MV step moves it within the horizon), which keeps
-OSQP's iteration counts low on units whose variables differ by orders of magnitude; inputs,
-outputs and diagnostics stay in engineering units.
+the final active set) in its diagnostics.
+
+Both QPs are written in scaled deviations (one ``scale`` of each MV and CV is one unit; each
+state is scaled by how far one scaled MV step moves it within the horizon), which keeps OSQP's
+iteration counts low on units whose variables differ by orders of magnitude and the condensed
+Hessian well balanced; inputs, outputs and diagnostics stay in engineering units.
 
 Solve outcomes: a solve that is not optimal is retried once with ``backup_solver`` (Clarabel via
 cvxpy), then the previous plan is applied shifted by one sample (``fallback="shift"``) or the MVs
