@@ -20,6 +20,8 @@ Per horizon:
 
 * **step**: wall time of ``PredictiveController.step`` (estimator, steady target, free response,
   DAQP solve, projection, diagnostics);
+* **ratio**: medians of wall time, and of CPU time of the thread (``time.thread_time``: less
+  sensitive to the load of a shared machine);
 * **floor**: the same condensed QPs (recorded from the controller each sample:
   ``CondensedQP.data``) solved by DAQP's own Python API in the same process -- one ``daqp.Model``
   per row structure, ``setup`` on first use, then ``update(f=, bupper=, blower=)`` and ``solve()``
@@ -27,9 +29,10 @@ Per horizon:
   after each the floor replays them, so both see the same machine load.  Variables and rows of the
   QP are printed beside each figure;
 * **accuracy**: 8 recorded QPs per horizon (spread over the run) are solved again by Clarabel
-  (interior point, its own API, tolerances 1e-12) with explicit slacks; the largest difference of the applied (first) move and of
-  the whole plan, in MV scales (the interior-point reference itself is good to ~1e-9..1e-7 on the
-  worse-conditioned QPs: a difference at that level does not say which of the two is off);
+  (interior point, its own API, tolerances 1e-12) with explicit slacks; the largest difference of
+  the applied (first) move and of the whole plan, in MV scales (the interior-point reference itself
+  is good to ~1e-9..1e-7 on the worse-conditioned QPs: a difference at that level does not say
+  which of the two is off);
 * **build**: ``build()`` time (median of 3) and **memory**: peak Python heap (tracemalloc) during
   build + 50 steps (DAQP's C workspaces are outside tracemalloc: see the RSS growth);
 * **fit**: build time and build heap of the 8 x 12 unit over N = 30..240, exponent of a log-log fit;
@@ -180,14 +183,17 @@ class Loop:
 
     def run(self, steps, record=False):
         unit, ctrl, p = self.unit, self.ctrl, self.unit.plant
-        out_ = {"step": [], "solve": [], "target": [], "iters": [], "active": [], "status": [],
+        out_ = {"step": [], "cpu": [], "solve": [], "target": [], "iters": [], "active": [],
+                "status": [],
                 "qp": [], "u0": [], "plan": []}
         for _ in range(steps):
             k = self.k
             y, dv, tg, wd = unit.sample(k, self.x)
+            c0 = time.thread_time()
             t0 = time.perf_counter()
             out = ctrl.step(k * p.Ts, mp.Measurement.now(y, k * p.Ts), dv, tg)
             out_["step"].append(time.perf_counter() - t0)
+            out_["cpu"].append(time.thread_time() - c0)
             dg = out.diagnostics
             out_["solve"].append(dg.get("solve_ms", 0.0) / 1e3)
             out_["target"].append(dg.get("target_ms", 0.0) / 1e3)
@@ -211,11 +217,13 @@ class DaqpFloor:
     def __init__(self, options):
         self.options = dict(options)
         self.models = {}
+        self.cpu = []                 # CPU time of each solve (less sensitive to machine load)
 
     def solve(self, rec):
         import daqp
 
         key, H, f, A, bu, bl, sense, w = rec
+        c0 = time.thread_time()
         t0 = time.perf_counter()
         m = self.models.get(key)
         if m is None:
@@ -227,7 +235,9 @@ class DaqpFloor:
         else:
             m.update(f=f, bupper=bu, blower=bl)
         x, _fv, flag, info = m.solve()
-        return time.perf_counter() - t0, np.asarray(x), int(flag), int(info["iterations"])
+        dt = time.perf_counter() - t0
+        self.cpu.append(time.thread_time() - c0)
+        return dt, np.asarray(x), int(flag), int(info["iterations"])
 
 
 def tight_reference(rec):
@@ -310,7 +320,7 @@ def bench_horizon(unit, N, steps):
     Loop(unit, ctrl, seed=7).run(30)                            # warm-up
     loop = Loop(unit, ctrl, seed=1)
     floor = DaqpFloor(ctrl.condensed_.options)
-    st, fl, iters, fiters, active, statuses, u0d, pland, refst = ([] for _ in range(9))
+    st, fl, iters, fiters, active, statuses, u0d, pland, refst, cpu = ([] for _ in range(10))
     solve, target, nrows = [], [], []
     su = 1.0                                                    # plans are in scaled units already
     rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
@@ -318,6 +328,7 @@ def bench_horizon(unit, N, steps):
     for seg in range(steps // SEGMENT):
         run = loop.run(SEGMENT, record=True)
         st += run["step"]
+        cpu += run["cpu"]
         solve += run["solve"]
         target += run["target"]
         iters += run["iters"]
@@ -347,6 +358,9 @@ def bench_horizon(unit, N, steps):
         "step_median_ms": ms(st, 50), "step_p95_ms": ms(st, 95),
         "floor_median_ms": ms(fl, 50), "floor_p95_ms": ms(fl, 95),
         "ratio_median": float(np.median(st) / np.median(fl)),
+        "cpu_step_median_ms": ms(np.array(cpu), 50),
+        "cpu_floor_median_ms": ms(np.array(floor.cpu), 50),
+        "cpu_ratio_median": float(np.median(cpu) / np.median(floor.cpu)),
         "step_solve_median_ms": ms(np.array(solve), 50),
         "step_target_median_ms": ms(np.array(target), 50),
         "iterations_median": float(np.median(iters)), "iterations_max": int(max(iters)),
@@ -407,7 +421,8 @@ def main(argv=()):
             print(f"{u.name:8s} N={N:4d} M={r['control_horizon']:3d}  vars {r['qp_variables']:4d} "
                   f"rows {r['qp_rows_median']:.0f}  step {r['step_median_ms']:.3f} ms "
                   f"(p95 {r['step_p95_ms']:.3f})  floor {r['floor_median_ms']:.3f} ms "
-                  f"(p95 {r['floor_p95_ms']:.3f})  ratio {r['ratio_median']:.2f}  "
+                  f"(p95 {r['floor_p95_ms']:.3f})  ratio {r['ratio_median']:.2f} "
+                  f"(CPU time {r['cpu_ratio_median']:.2f})  "
                   f"build {r['build_s']:.3f} s  heap {r['peak_heap_mb']:.1f} MB  iters "
                   f"{r['iterations_median']:.0f}/{r['floor_iterations_median']:.0f}  active "
                   f"{r['active_set_median']:.0f}  u0 diff {r['applied_move_diff_max']}  plan diff "
