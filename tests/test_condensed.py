@@ -228,3 +228,16 @@ def test_daqp_exit_flag_not_optimal_is_never_applied():
     out = alone.step(0.0, mp.Measurement.now([0.0], 0.0), [], tg)
     assert out.diagnostics["fallback"] is True and out.status == STATUS_HOLD
     assert alone.counts["failed_solves"] == 1
+
+
+def test_size_rule_picks_the_sparse_form_for_large_condensed_qps():
+    # Reference: the documented size rule (mpc_settings.CONDENSED_MAX_VARIABLES = 1000 variables
+    # nu*M) -- common practice, no source: a dense condensed QP stops paying off when it is large.
+    rng = np.random.default_rng(3)
+    A, B, C, _ = random_stable(rng, 2, 2, 2)
+    dm = make_dlm(A, B, C)
+    small = mp.PredictiveController(dm, horizon=600, control_horizon=500).validate()
+    large = mp.PredictiveController(dm, horizon=600, control_horizon=501).validate()
+    assert small["solver"] == "daqp" and large["solver"] == "osqp"
+    chosen = mp.PredictiveController(dm, horizon=600, control_horizon=501, solver="daqp").validate()
+    assert chosen["solver"] == "daqp"                 # an explicit choice is kept
