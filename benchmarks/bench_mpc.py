@@ -1,373 +1,469 @@
-"""Predictive controller benchmark: cost of a whole controller step against an OSQP-only floor.
+"""Predictive controller benchmark: the whole controller step against DAQP alone on the same QP.
 
-Run ``python benchmarks/bench_mpc.py``; prints a table and writes
-``benchmarks/results/bench_mpc.json``.
+Run ``python benchmarks/bench_mpc.py`` (``--quick``: fewer samples); prints tables and writes
+``benchmarks/results/bench_mpc.json``.  BLAS is capped at one thread (as in the batch workers):
+on a shared 2-core machine a multithreaded BLAS spends more time spinning than computing.
 
-Plant and controller: the blending tank (``mpcproto.make_model("blending_tank")``: MVs caustic
-flow, water flow, heater duty; measured DV draw-off; unmeasured DVs caustic strength and water
-temperature; CVs level, concentration, temperature), linearized at its nominal steady state and
-discretized at Ts = 10 s.  The closed loop runs against the same linear model with 15 % larger MV
-gains, a random walk on the measured draw-off, an unmeasured step in caustic strength, setpoint
-steps and MV rate limits, so limits become active and the estimator has work to do.
+Two units, each in closed loop against its own linear model with 10-15 % larger MV gains:
 
-For horizons N = 20, 50, 100 (control horizon N/5):
+* **blending tank** (``mpcproto.make_model("blending_tank")``, Ts = 10 s; 3 MVs, 3 CVs, a measured
+  draw-off DV with a random walk, an unmeasured step in caustic strength, setpoint steps, MV rate
+  limits) at N = 20, 50, 100 (M = N/5);
+* **8 x 12 unit**: our own invented plant of FOPDT elements (:func:`unit_model`, seeded numbers:
+  8 MVs, 12 CVs, each CV driven by its own MV and, with probability 0.45, by each other one; gains
+  0.2-2 either sign, time constants 3-30 min, dead times 2-10 samples at Ts = 1 min), built with
+  :func:`mpcproto.models.transfer_matrix_model`; CVs 1-8 on setpoints (steps), CVs 9-12 in zones,
+  6 CVs with soft limits, output disturbances pushing CVs 9-12 to their limits, hard MV limits and
+  rate limits; at N = 60, 120, 240 (M = N/5).
 
-* **controller step**: wall time of ``PredictiveController.step`` -- estimator update, steady
-  target QP, parameter map, dynamic QP solve, unpacking, limit projection, diagnostics.
-* **floor**: the identical dynamic QP, assembled here independently as ``scipy.sparse`` matrices
-  (the same variables, cost and constraints written by hand, no cvxpy), solved by the osqp
-  package's own public API (``OSQP.setup`` once, then ``update(q=, l=, u=)`` and ``solve()`` each
-  sample, warm started, the same OSQP settings), in the same run: the controller runs the closed
-  loop in segments of 25 samples, recording its per-sample data, and after each segment the floor
-  solves the same QPs in its own loop (its warm start carried from segment to segment), so both
-  see the same spread of machine load; solving them interleaved sample by sample would let each
-  evict the other's caches.  Only ``update`` +
-  ``solve`` are timed; the floor's vectors are built before its timed loop.  Its solution is
-  compared with the controller's plan each sample (``max_plan_diff``).
-* **compile**: ``build()`` time (cvxpy canonicalization of both QPs, map extraction, OSQP setup,
-  Riccati equations), after one warm-up build so that imports are not counted.
-* **memory**: peak Python heap during build + 50 steps (tracemalloc) and growth of the process's
-  peak resident set.
+Per horizon:
 
-Targets (issue 3): step median <= 1.5x floor at N = 50, <= 1.3x at N = 100; compile <= 0.5 s at
-N = 100.  Medians AND 95th percentiles are reported (OSQP's tail is several times its median
-when it re-factorizes after a rho update).
+* **step**: wall time of ``PredictiveController.step`` (estimator, steady target, free response,
+  DAQP solve, projection, diagnostics);
+* **ratio**: medians of wall time, and of CPU time of the thread (``time.thread_time``: less
+  sensitive to the load of a shared machine);
+* **floor**: the same condensed QPs (recorded from the controller each sample:
+  ``CondensedQP.data``) solved by DAQP's own Python API in the same process -- one ``daqp.Model``
+  per row structure, ``setup`` on first use, then ``update(f=, bupper=, blower=)`` and ``solve()``
+  warm-started, the same settings and soft weights.  The controller runs segments of 25 samples;
+  after each the floor replays them, so both see the same machine load.  Variables and rows of the
+  QP are printed beside each figure;
+* **accuracy**: 8 recorded QPs per horizon (spread over the run) are solved again by Clarabel
+  (interior point, its own API, tolerances 1e-12) with explicit slacks; the largest difference of
+  the applied (first) move and of the whole plan, in MV scales (the interior-point reference itself
+  is good to ~1e-9..1e-7 on the worse-conditioned QPs: a difference at that level does not say
+  which of the two is off);
+* **build**: ``build()`` time (median of 3) and **memory**: peak Python heap (tracemalloc) during
+  build + 50 steps (DAQP's C workspaces are outside tracemalloc: see the RSS growth);
+* **fit**: build time and build heap of the 8 x 12 unit over N = 30..240, exponent of a log-log fit;
+* **profile** (8 x 12, N = 120): the parts of a step -- estimator update, steady target, condensed
+  data (free response, gradient, bounds), DAQP update+solve, the rest (projection, diagnostics).
+
+Targets (issue 19): 8 x 12, N = 120: step median <= 4x the floor, build <= 0.5 s, memory <= 100 MB;
+build and memory growing at most linearly in N; tank: step <= 10x the floor, build <= 0.2 s.
 """
 
 from __future__ import annotations
 
-import gc
-import json
-import platform
-import resource
-import sys
-import time
-import tracemalloc
-from pathlib import Path
+import os
 
-import numpy as np
-import scipy.sparse as sp
+for _v in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_v, "1")
 
-import mpcproto as mp
-from mpcproto.control._qp import OSQP_DEFAULTS
+import gc  # noqa: E402
+import json  # noqa: E402
+import platform  # noqa: E402
+import resource  # noqa: E402
+import sys  # noqa: E402
+import time  # noqa: E402
+import tracemalloc  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import numpy as np  # noqa: E402
+
+import mpcproto as mp  # noqa: E402
+from mpcproto.models import transfer_matrix_model  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parent / "results"
-HORIZONS = (20, 50, 100)
-STEPS = 600
 SEGMENT = 25
-TS = 10.0
-
-
-def tank_models():
-    tank = mp.make_model("blending_tank")
-    op = mp.steady_state(tank)
-    dm = mp.linearize(tank, op).discretize(TS)
-    plant = mp.DiscreteLinearModel(A=dm.A, B=1.15 * dm.B, Bd=dm.Bd, C=dm.C, D=dm.D, Dd=dm.Dd,
-                                   Ts=dm.Ts, op=dm.op, state_names=dm.state_names,
-                                   n_plant_states=dm.n_plant_states)
-    return tank, op, dm, plant
-
-
-def settings_for(N):
-    return {
-        "horizon": N, "control_horizon": max(2, N // 5),
-        "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5},
-               "concentration": {"scale": 0.2}, "temperature": {"scale": 1.0}},
-        "mv": {"caustic_flow": {"scale": 0.01, "low": 0.0, "high": 0.2, "max_move": 0.005},
-               "water_flow": {"scale": 0.1, "low": 0.0, "high": 3.0, "max_move": 0.1},
-               "heater_duty": {"scale": 20.0, "low": 0.0, "high": 600.0, "max_move": 20.0}},
-    }
 
 
 # ------------------------------------------------------------------------------------------------
-class Floor:
-    """The controller's dynamic QP written by hand with scipy.sparse and solved with osqp.OSQP.
+# the units
+def unit_model(seed: int = 2026):
+    """Our invented 8-MV x 12-CV unit of FOPDT elements (time in min)."""
+    rng = np.random.default_rng(seed)
+    mvs = [f"mv{j + 1}" for j in range(8)]
+    cvs = [f"cv{i + 1}" for i in range(12)]
+    elements = {}
+    for i, c in enumerate(cvs):
+        row = {}
+        for j, m in enumerate(mvs):
+            if j == i % 8 or rng.random() < 0.45:
+                row[m] = {"gain": float(rng.choice([-1.0, 1.0]) * rng.uniform(0.2, 2.0)),
+                          "tau": float(rng.uniform(3.0, 30.0)),
+                          "dead_time": float(rng.integers(2, 11))}
+        elements[c] = row
+    return transfer_matrix_model("unit8x12", mvs, cvs, elements, time_unit="min")
 
-    Variables z = [X (nx*N), U (nu*M), dU (nu*M), E (ny*N), S (ny*N)], each block column-major
-    (sample by sample).  Same cost and constraints as PredictiveController's QP (no terminal
-    cost, D = 0).
-    """
 
-    def __init__(self, ctrl):
-        import osqp
+def mismatched(dm, factor):
+    return mp.DiscreteLinearModel(A=dm.A, B=factor * dm.B, Bd=dm.Bd, C=dm.C, D=dm.D, Dd=dm.Dd,
+                                  Ts=dm.Ts, op=dm.op, state_names=dm.state_names,
+                                  n_plant_states=dm.n_plant_states)
 
-        r = ctrl.scaled_                    # the controller's scaled model and weights
-        dm = ctrl.dmodel
-        A, B, C = r["A"], r["B"], r["C"]
-        if np.any(dm.D != 0) or ctrl.terminal_weight_ is not None:
-            raise RuntimeError("floor written for D = 0 and no terminal cost")
-        N, M = ctrl._N, ctrl._M
-        nx, nu, ny = A.shape[0], B.shape[1], C.shape[0]
-        self.N, self.M, self.nx, self.nu, self.ny = N, M, nx, nu, ny
-        self.ctrl = ctrl
-        nX, nU, nE = nx * N, nu * M, ny * N
-        self.off = {"X": 0, "U": nX, "dU": nX + nU, "E": nX + 2 * nU, "S": nX + 2 * nU + nE}
-        n = nX + 2 * nU + 2 * nE
-        self.n = n
-        count = np.array([1.0] * (M - 1) + [N - M + 1.0])
-        ws = np.kron(count, r["preferred_weight"])
-        self.sc = ctrl.scales_
-        self.ws = ws
-        P = sp.block_diag([sp.csc_matrix((nX, nX)),
-                           sp.diags(2 * ws), sp.diags(2 * np.tile(r["move_weight"], M)),
-                           sp.diags(2 * np.tile(r["cv_weight"], N)),
-                           sp.diags(2 * np.tile(r["limit_quadratic"], N))], format="csc")
-        self.q_S = np.tile(r["limit_linear"], N)
-        sel = np.minimum(np.arange(N), M - 1)              # U column used over sample k
-        Sel = sp.csr_matrix((np.ones(N), (np.arange(N), sel)), shape=(N, M))
-        # dynamics: X_k - A X_{k-1} - B U_sel(k) = W_k (+ A x0 for k = 0)
-        shift = sp.eye(N, k=-1)
-        dyn = sp.hstack([sp.kron(sp.eye(N), sp.eye(nx)) - sp.kron(shift, A),
-                         -sp.kron(Sel, B), sp.csc_matrix((nX, nU + 2 * nE))])
-        # moves: dU_j - U_j + U_{j-1} = 0 (j >= 1); dU_0 - U_0 = -u_prev
-        mv = sp.hstack([sp.csc_matrix((nU, nX)),
-                        -sp.kron(sp.eye(M) - sp.eye(M, k=-1), sp.eye(nu)), sp.eye(nU),
-                        sp.csc_matrix((nU, 2 * nE))])
-        CX = sp.hstack([sp.kron(sp.eye(N), C), sp.csc_matrix((nE, 2 * nU))])
-        I_E = sp.eye(nE)
-        Z_E = sp.csc_matrix((nE, nE))
-        band = sp.hstack([CX, -I_E, Z_E])
-        soft_lo = sp.hstack([CX, Z_E, I_E])
-        soft_hi = sp.hstack([CX, Z_E, -I_E])
-        s_pos = sp.hstack([sp.csc_matrix((nE, nX + 2 * nU)), Z_E, I_E])
-        u_box = sp.hstack([sp.csc_matrix((nU, nX)), sp.eye(nU), sp.csc_matrix((nU, nU + 2 * nE))])
-        du_box = sp.hstack([sp.csc_matrix((nU, nX + nU)), sp.eye(nU), sp.csc_matrix((nU, 2 * nE))])
-        self.Aq = sp.vstack([dyn, mv, band, soft_lo, soft_hi, s_pos, u_box, du_box], format="csc")
-        self.P = P
-        self.m = self.Aq.shape[0]
-        self.solver = osqp.OSQP()
-        opts = dict(OSQP_DEFAULTS)
-        opts.update(ctrl._resolved["solver_options"])
-        self.solver.setup(P, np.zeros(n), self.Aq, np.full(self.m, -np.inf), np.full(self.m, np.inf),
-                          **opts)
 
-    def vectors(self, z):
-        """q, l, u from the controller's input vector of this sample (not timed)."""
-        c = self.ctrl
-        zs = c._zsl
-        N, M, nu, ny = self.N, self.M, self.nu, self.ny
-        dm = c.dmodel
-        sx, su, sy = self.sc["x"], self.sc["u"], self.sc["y"]
-        S = c.scaled_
-        raw = lambda k: z[zs[k]]                           # noqa: E731
-        scale = {"band_lo": sy, "band_hi": sy, "lim_lo": sy, "lim_hi": sy, "rate": su, "pref": su,
-                 "u_prev": su, "x0": sx}
-        g = lambda k: raw(k) / scale[k] if k in scale else raw(k)    # noqa: E731
-        x0, u_prev, w = g("x0"), g("u_prev"), raw("w")
-        nd = dm.nd
-        D = raw("dtraj").reshape(nd, N + 1, order="F") + raw("d_now")[:, None]
-        W = S["Bd"] @ D[:, :N] + (S["Bw"] @ w)[:, None]
-        V = S["Dd"] @ D[:, 1:] + (S["Cw"] @ w)[:, None]
-        W[:, 0] += S["A"] @ x0
-        rep = lambda v, n: np.tile(v, n)                  # noqa: E731
-        Vf = V.ravel(order="F")
-        inf = np.inf
-        q = np.zeros(self.n)
-        o = self.off
-        q[o["U"]:o["dU"]] = -2 * self.ws * rep(g("pref"), M)
-        q[o["S"]:] = self.q_S
-        mvrow = np.zeros(nu * M)
-        mvrow[:nu] = -u_prev
-        rate = g("rate")
-        lo = np.concatenate([W.ravel(order="F"), mvrow, rep(g("band_lo"), N) - Vf,
-                             rep(g("lim_lo"), N) - Vf, np.full(ny * N, -inf), np.zeros(ny * N),
-                             raw("u_lo") / np.tile(su, M), -rep(rate, M)])
-        hi = np.concatenate([W.ravel(order="F"), mvrow, rep(g("band_hi"), N) - Vf,
-                             np.full(ny * N, inf), rep(g("lim_hi"), N) - Vf, np.full(ny * N, inf),
-                             raw("u_hi") / np.tile(su, M), rep(rate, M)])
-        return q, np.nan_to_num(lo, neginf=-1e30, posinf=1e30), \
-            np.nan_to_num(hi, neginf=-1e30, posinf=1e30)
+class Tank:
+    name = "tank"
+    horizons = (20, 50, 100)
 
-    def solve(self, q, l, u):
-        t0 = time.perf_counter()
-        self.solver.update(q=q, l=l, u=u)
-        res = self.solver.solve(raise_error=False)
-        dt = time.perf_counter() - t0
-        U = res.x[self.off["U"]:self.off["dU"]].reshape(self.nu, self.M, order="F") \
-            * self.sc["u"][:, None]
-        return dt, res, U
+    def __init__(self):
+        tank = mp.make_model("blending_tank")
+        op = mp.steady_state(tank)
+        self.dm = mp.linearize(tank, op).discretize(10.0)
+        self.plant = mismatched(self.dm, 1.15)
+
+    @staticmethod
+    def settings(N):
+        return {
+            "horizon": N, "control_horizon": max(2, N // 5),
+            "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5},
+                   "concentration": {"scale": 0.2}, "temperature": {"scale": 1.0}},
+            "mv": {"caustic_flow": {"scale": 0.01, "low": 0.0, "high": 0.2, "max_move": 0.005},
+                   "water_flow": {"scale": 0.1, "low": 0.0, "high": 3.0, "max_move": 0.1},
+                   "heater_duty": {"scale": 20.0, "low": 0.0, "high": 600.0, "max_move": 20.0}},
+        }
+
+    def start(self, seed):
+        self.rng = np.random.default_rng(seed)
+        self.draw = 0.0
+
+    def sample(self, k, x):
+        """(measurement, dv, targets, plant disturbance) of sample k."""
+        p, op = self.plant, self.plant.op
+        self.draw = float(np.clip(self.draw + self.rng.normal(scale=0.01), -0.3, 0.3))
+        d = np.array([self.draw, 0.03 if k >= 150 else 0.0, 0.0])
+        y = p.C @ x + p.Dd @ d + op.y + self.rng.normal(scale=[0.002, 0.01, 0.05])
+        sp_ = op.y + np.array([0.0, 0.3 if k >= 50 else 0.0, -2.0 if k >= 250 else 0.0])
+        tg = mp.Targets(setpoint=sp_, cv_low=np.full(3, -np.inf), cv_high=np.full(3, np.inf),
+                        mv_low=np.array([0.0, 0.0, 0.0]), mv_high=np.array([0.2, 3.0, 600.0]))
+        dv = np.array([op.d[0] + self.draw, np.nan, np.nan])
+        return y, dv, tg, p.Bd @ d
+
+
+class Unit:
+    name = "unit8x12"
+    horizons = (60, 120, 240)
+    limited = (0, 1, 8, 9, 10, 11)
+
+    def __init__(self):
+        m = unit_model()
+        op = mp.steady_state(m)
+        self.dm = mp.linearize(m, op).discretize(1.0)
+        self.plant = mismatched(self.dm, 1.1)
+
+    def settings(self, N):
+        return {
+            "horizon": N, "control_horizon": max(2, N // 5),
+            "cv": {f"cv{i + 1}": ({"low": -1.0, "high": 1.0} if i in self.limited else {})
+                   for i in range(12)},
+            "mv": {f"mv{j + 1}": {"low": -3.0, "high": 3.0, "max_move": 0.3, "move_weight": 0.5}
+                   for j in range(8)},
+        }
+
+    def start(self, seed):
+        self.rng = np.random.default_rng(seed)
+        self.sp1 = self.rng.uniform(-0.6, 0.6, 8)
+        self.sp2 = self.rng.uniform(-0.6, 0.6, 8)
+        self.bias = np.zeros(12)
+
+    def sample(self, k, x):
+        p, op = self.plant, self.plant.op
+        self.bias += self.rng.normal(scale=0.005, size=12)
+        if k == 60:
+            self.bias[8:] += np.array([1.2, -1.2, 0.9, -0.9])      # towards the zone limits
+        y = p.C @ x + op.y + self.bias + self.rng.normal(scale=0.002, size=12)
+        sp_ = np.full(12, np.nan)
+        sp_[:8] = op.y[:8] + (self.sp1 if k >= 10 else 0.0) + (self.sp2 if k >= 150 else 0.0)
+        tg = mp.Targets(setpoint=sp_, cv_low=np.full(12, -np.inf), cv_high=np.full(12, np.inf),
+                        mv_low=np.full(8, -np.inf), mv_high=np.full(8, np.inf))
+        return y, np.zeros(0), tg, np.zeros(p.nx)
 
 
 # ------------------------------------------------------------------------------------------------
 class Loop:
-    """The closed loop against the linear plant, run in segments (state kept between calls)."""
+    """Closed loop against the unit's linear plant, run in segments; records the QP data."""
 
-    def __init__(self, ctrl, plant, seed=1):
-        self.ctrl, self.plant = ctrl, plant
-        self.rng = np.random.default_rng(seed)
-        self.x = np.zeros(plant.nx)
-        self.draw = 0.0
+    def __init__(self, unit, ctrl, seed=1):
+        self.unit, self.ctrl = unit, ctrl
+        self.x = np.zeros(unit.plant.nx)
         self.k = 0
-        ctrl.reset(plant.op)
+        unit.start(seed)
+        ctrl.reset(unit.plant.op)
 
     def run(self, steps, record=False):
-        """Advance *steps* samples; time every controller step (wall and CPU)."""
-        ctrl, plant, rng = self.ctrl, self.plant, self.rng
-        op = plant.op
-        ny = plant.ny
-        lo = np.array([0.0, 0.0, 0.0])
-        hi = np.array([0.2, 3.0, 600.0])
-        t_step, c_step, t_solve, t_target, iters, statuses, inputs, plans = ([] for _ in range(8))
+        unit, ctrl, p = self.unit, self.ctrl, self.unit.plant
+        out_ = {"step": [], "cpu": [], "solve": [], "target": [], "iters": [], "active": [],
+                "status": [],
+                "qp": [], "u0": [], "plan": []}
         for _ in range(steps):
             k = self.k
-            t = k * plant.Ts
-            self.draw = float(np.clip(self.draw + rng.normal(scale=0.01), -0.3, 0.3))
-            d = np.array([self.draw, 0.03 if k >= 150 else 0.0, 0.0])   # deviation DVs, plant
-            y = plant.C @ self.x + plant.Dd @ d + op.y + rng.normal(scale=[0.002, 0.01, 0.05])
-            sp_ = op.y + np.array([0.0, 0.3 if k >= 50 else 0.0, -2.0 if k >= 250 else 0.0])
-            tg = mp.Targets(setpoint=sp_, cv_low=np.full(ny, -np.inf),
-                            cv_high=np.full(ny, np.inf), mv_low=lo, mv_high=hi)
-            dv = np.array([op.d[0] + self.draw, np.nan, np.nan])
-            meas = mp.Measurement.now(y, t)
+            y, dv, tg, wd = unit.sample(k, self.x)
             c0 = time.thread_time()
             t0 = time.perf_counter()
-            out = ctrl.step(t, meas, dv, tg)
-            t_step.append(time.perf_counter() - t0)
-            c_step.append(time.thread_time() - c0)
-            iters.append(out.diagnostics.get("iterations") or 0)
-            t_solve.append(out.diagnostics.get("solve_ms", 0.0) / 1e3)
-            t_target.append(out.diagnostics.get("target_ms", 0.0) / 1e3)
-            statuses.append(out.status)
+            out = ctrl.step(k * p.Ts, mp.Measurement.now(y, k * p.Ts), dv, tg)
+            out_["step"].append(time.perf_counter() - t0)
+            out_["cpu"].append(time.thread_time() - c0)
+            dg = out.diagnostics
+            out_["solve"].append(dg.get("solve_ms", 0.0) / 1e3)
+            out_["target"].append(dg.get("target_ms", 0.0) / 1e3)
+            out_["iters"].append(dg.get("iterations") or 0)
+            out_["active"].append(dg.get("active_set") or 0)
+            out_["status"].append(out.status)
             if record:
-                inputs.append(ctrl._last_inputs.copy())
-                plans.append(ctrl.last_plan() if out.status == "ok" else None)
-            self.x = plant.A @ self.x + plant.B @ (out.u - op.u) + plant.Bd @ d
+                H, f, A, bu, bl, sense, w, _st, key = ctrl.condensed_.data(ctrl._last_inputs)
+                out_["qp"].append((key, H, f.copy(), A, bu.copy(), bl.copy(), sense,
+                                   tuple(a.copy() for a in w)))
+                ok = out.status == "ok"
+                out_["plan"].append(((ctrl._plan_scaled.ravel(order="F").copy()) if ok else None))
+            self.x = p.A @ self.x + p.B @ (out.u - p.op.u) + wd
             self.k += 1
-        return {"step": np.array(t_step), "cpu_step": np.array(c_step),
-                "solve": np.array(t_solve), "target": np.array(t_target),
-                "iters": np.array(iters), "statuses": statuses, "inputs": inputs, "plans": plans}
+        return out_
 
 
-def closed_loop(ctrl, plant, steps=STEPS, seed=1, record=False):
-    """A whole closed-loop run from the operating point."""
-    return Loop(ctrl, plant, seed).run(steps, record)
+class DaqpFloor:
+    """The recorded condensed QPs solved by DAQP's own API (one workspace per row structure)."""
 
+    def __init__(self, options):
+        self.options = dict(options)
+        self.models = {}
+        self.cpu = []                 # CPU time of each solve (less sensitive to machine load)
 
-def replay_floor(floor, inputs, plans, op):
-    """Solve the recorded per-sample QPs with the floor, in the same order (warm starts alike)."""
-    data = [floor.vectors(z) for z in inputs]            # built before timing starts
-    t_floor, c_floor, t_c, f_iters, diffs = [], [], [], [], []
-    su = floor.sc["u"][:, None]
-    for (q, l, u), plan in zip(data, plans):
+    def solve(self, rec):
+        import daqp
+
+        key, H, f, A, bu, bl, sense, w = rec
         c0 = time.thread_time()
-        dt, res, U = floor.solve(q, l, u)
-        c_floor.append(time.thread_time() - c0)
-        t_floor.append(dt)
-        t_c.append(res.info.solve_time + res.info.update_time)
-        f_iters.append(res.info.iter)
-        if plan is not None:
-            diffs.append(float(np.max(np.abs((plan - op.u[:, None] - U) / su))))
-    return {"floor": np.array(t_floor), "cpu_floor": np.array(c_floor), "floor_c": np.array(t_c),
-            "f_iters": np.array(f_iters), "diffs": np.array(diffs)}
+        t0 = time.perf_counter()
+        m = self.models.get(key)
+        if m is None:
+            m = daqp.Model()
+            m.setup(H, f, A, bu, bl, sense)
+            m.settings = self.options
+            m.soft_weights(rho_l=w[0], rho_u=w[1], w_l=w[2], w_u=w[3])
+            self.models[key] = m
+        else:
+            m.update(f=f, bupper=bu, blower=bl)
+        x, _fv, flag, info = m.solve()
+        dt = time.perf_counter() - t0
+        self.cpu.append(time.thread_time() - c0)
+        return dt, np.asarray(x), int(flag), int(info["iterations"])
+
+
+def tight_reference(rec):
+    """The same condensed QP with explicit slacks, solved by Clarabel's own API (tight)."""
+    import clarabel
+    import scipy.sparse as sp
+
+    _key, H, f, A, bu, bl, sense, w = rec
+    n = H.shape[0]
+    big = 1e29
+    soft = sense[n:] == 8
+    lo, hi = bl[n:], bu[n:]
+    As, Ah = A[soft], A[~soft]
+    rho, wl = w[0][n:][soft], w[2][n:][soft]
+    fl, fh = lo[soft] > -big, hi[soft] < big
+    k1, k2 = int(fl.sum()), int(fh.sum())
+    nv = n + k1 + k2
+    P = sp.block_diag([sp.csc_matrix(np.triu(H)), sp.diags(1 / rho[fl]), sp.diags(1 / rho[fh])],
+                      format="csc")
+    q = np.concatenate([f, wl[fl], wl[fh]])
+    I_n = sp.identity(n, format="csr")
+    zs = lambda r, c: sp.csr_matrix((r, c))          # noqa: E731
+    rows, rhs = [], []
+
+    def add(M, b):
+        rows.append(sp.csr_matrix(M))
+        rhs.append(b)
+
+    lbU, ubU = bl[:n] > -big, bu[:n] < big
+    add(sp.hstack([-I_n[lbU], zs(int(lbU.sum()), k1 + k2)]), -bl[:n][lbU])
+    add(sp.hstack([I_n[ubU], zs(int(ubU.sum()), k1 + k2)]), bu[:n][ubU])
+    hl, hh = lo[~soft] > -big, hi[~soft] < big
+    add(sp.hstack([-Ah[hl], zs(int(hl.sum()), k1 + k2)]), -lo[~soft][hl])
+    add(sp.hstack([Ah[hh], zs(int(hh.sum()), k1 + k2)]), hi[~soft][hh])
+    add(sp.hstack([-As[fl], -sp.identity(k1), zs(k1, k2)]), -lo[soft][fl])
+    add(sp.hstack([As[fh], zs(k2, k1), -sp.identity(k2)]), hi[soft][fh])
+    add(sp.hstack([zs(k1 + k2, n), -sp.identity(k1 + k2)]), np.zeros(k1 + k2))
+    Acl = sp.vstack(rows, format="csc")
+    b = np.concatenate(rhs)
+    st = clarabel.DefaultSettings()
+    st.verbose = False
+    st.tol_gap_abs = st.tol_gap_rel = st.tol_feas = 1e-12
+    st.max_iter = 400
+    cones = [clarabel.NonnegativeConeT(Acl.shape[0])]
+    sol = clarabel.DefaultSolver(P, q, Acl, b, cones, st).solve()
+    status = str(sol.status)
+    x = np.asarray(sol.x)[:n]
+    return x, ("optimal" if status == "Solved" else status), nv
 
 
 def ms(a, q):
-    return float(np.percentile(a, q) * 1e3)
+    return float(np.percentile(a, q) * 1e3) if len(a) else float("nan")
 
 
-def main():
-    RESULTS.mkdir(parents=True, exist_ok=True)
-    tank, op, dm, plant = tank_models()
-    mp.PredictiveController.from_settings(dm, settings_for(10)).build()      # warm-up (imports)
-    rows = []
+def build_timed(unit, N, repeats=3):
+    times = []
+    for _ in range(repeats):
+        gc.collect()
+        t0 = time.perf_counter()
+        ctrl = mp.PredictiveController.from_settings(unit.dm, unit.settings(N)).build()
+        times.append(time.perf_counter() - t0)
+    return ctrl, float(np.median(times))
+
+
+def heap_build(unit, N, steps):
+    gc.collect()
+    tracemalloc.start()
+    ctrl = mp.PredictiveController.from_settings(unit.dm, unit.settings(N)).build()
+    build_peak = tracemalloc.get_traced_memory()[1]
+    if steps:
+        Loop(unit, ctrl, seed=3).run(steps)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    return build_peak / 2**20, peak / 2**20
+
+
+def bench_horizon(unit, N, steps):
+    ctrl, build_s = build_timed(unit, N)
+    _bh, heap = heap_build(unit, N, 50)
+    Loop(unit, ctrl, seed=7).run(30)                            # warm-up
+    loop = Loop(unit, ctrl, seed=1)
+    floor = DaqpFloor(ctrl.condensed_.options)
+    st, fl, iters, fiters, active, statuses, u0d, pland, refst, cpu = ([] for _ in range(10))
+    solve, target, nrows = [], [], []
+    su = 1.0                                                    # plans are in scaled units already
     rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    for N in HORIZONS:
-        gc.collect()
-        builds = []
-        for _ in range(3):
-            t0 = time.perf_counter()
-            ctrl = mp.PredictiveController.from_settings(dm, settings_for(N)).build()
-            builds.append(time.perf_counter() - t0)
-        # memory: Python heap peak during build + 50 steps
-        gc.collect()
-        tracemalloc.start()
-        mctrl = mp.PredictiveController.from_settings(dm, settings_for(N)).build()
-        closed_loop(mctrl, plant, steps=50)
-        peak = tracemalloc.get_traced_memory()[1]
-        tracemalloc.stop()
-        del mctrl
-        # the controller runs the closed loop in segments; after each segment the floor solves
-        # the same QPs (same order, its warm start carried on), so both run in their own hot
-        # loop and both see the same spread of machine load
-        closed_loop(ctrl, plant, steps=30, seed=7)                 # warm-up
-        loop = Loop(ctrl, plant)
-        floor = Floor(ctrl)
-        parts = []
-        for _ in range(STEPS // SEGMENT):
-            run = loop.run(SEGMENT, record=True)
-            rep = replay_floor(floor, run["inputs"], run["plans"], plant.op)
-            parts.append((run, rep))
-        cat = lambda key, i: np.concatenate([p[i][key] for p in parts])   # noqa: E731
-        res = {k: cat(k, 0) for k in ("step", "cpu_step", "solve", "target", "iters")}
-        res.update({k: cat(k, 1) for k in ("floor", "cpu_floor", "floor_c", "f_iters", "diffs")})
-        res["statuses"] = [s_ for p in parts for s_ in p[0]["statuses"]]
-        rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-        st, fl = res["step"], res["floor"]
-        row = {
-            "horizon": N, "control_horizon": ctrl._M,
-            "qp_variables": ctrl.qp_.n_variables_, "qp_rows": ctrl.qp_.n_rows_,
-            "qp_rows_before_merge": ctrl.qp_.n_rows_cvxpy_,
-            "floor_variables": floor.n, "floor_rows": floor.m,
-            "cvxpy_constraints": len(ctrl.qp_.problem.constraints),
-            "step_median_ms": ms(st, 50), "step_p95_ms": ms(st, 95),
-            "floor_median_ms": ms(fl, 50), "floor_p95_ms": ms(fl, 95),
-            "floor_c_median_ms": ms(res["floor_c"], 50),
-            "ratio_median": float(np.median(st) / np.median(fl)),
-            "ratio_p95": float(np.percentile(st, 95) / np.percentile(fl, 95)),
-            "cpu_step_median_ms": ms(res["cpu_step"], 50),
-            "cpu_floor_median_ms": ms(res["cpu_floor"], 50),
-            "cpu_ratio_median": float(np.median(res["cpu_step"]) / np.median(res["cpu_floor"])),
-            "load_average_1min": float(__import__("os").getloadavg()[0]),
-            "compile_s": float(np.median(builds)), "compile_s_all": [float(b) for b in builds],
-            "peak_python_heap_mb": peak / 2**20,
-            "peak_rss_growth_mb": (rss - rss0) / 1024.0,
-            "max_plan_diff_scaled": float(res["diffs"].max()) if res["diffs"].size else None,
-            "median_iterations": float(np.median(res["iters"])),
-            "floor_median_iterations": float(np.median(res["f_iters"])),
-            "step_qp_solve_median_ms": ms(res["solve"], 50),
-            "step_target_median_ms": ms(res["target"], 50),
-            "step_other_median_ms": ms(st - res["solve"] - res["target"], 50),
-            "non_ok_steps": int(sum(s != "ok" for s in res["statuses"])),
-            "backup_solves": int(ctrl.counts["backup_solves"]),
-        }
-        rows.append(row)
-        print(f"N={N:4d}  step {row['step_median_ms']:.3f} ms (p95 {row['step_p95_ms']:.3f})  "
-              f"floor {row['floor_median_ms']:.3f} ms (p95 {row['floor_p95_ms']:.3f})  "
-              f"ratio {row['ratio_median']:.2f} (p95 {row['ratio_p95']:.2f})  "
-              f"compile {row['compile_s']:.3f} s  heap {row['peak_python_heap_mb']:.1f} MB  "
-              f"[in step: qp {row['step_qp_solve_median_ms']:.3f}, target "
-              f"{row['step_target_median_ms']:.3f}, rest {row['step_other_median_ms']:.3f} ms; "
-              f"iters {row['median_iterations']:.0f} vs floor {row['floor_median_iterations']:.0f}; "
-              f"non-ok {row['non_ok_steps']}, backup {row['backup_solves']}; "
-              f"CPU-time ratio {row['cpu_ratio_median']:.2f}; load {row['load_average_1min']:.1f}]",
-              flush=True)
-    targets = {"ratio_median_at_50": 1.5, "ratio_median_at_100": 1.3, "compile_s_at_100": 0.5}
-    by_n = {r["horizon"]: r for r in rows}
-    verdict = {
-        "ratio_median_at_50": by_n[50]["ratio_median"] <= 1.5,
-        "ratio_median_at_100": by_n[100]["ratio_median"] <= 1.3,
-        "compile_s_at_100": by_n[100]["compile_s"] <= 0.5,
+    every = max(1, steps // 8)                     # 8 reference solves per horizon
+    for seg in range(steps // SEGMENT):
+        run = loop.run(SEGMENT, record=True)
+        st += run["step"]
+        cpu += run["cpu"]
+        solve += run["solve"]
+        target += run["target"]
+        iters += run["iters"]
+        active += run["active"]
+        statuses += run["status"]
+        for i, rec in enumerate(run["qp"]):
+            dt, x, flag, it = floor.solve(rec)
+            fl.append(dt)
+            fiters.append(it)
+            nrows.append(rec[3].shape[0])
+            if (seg * SEGMENT + i) % every == 0 and run["plan"][i] is not None:
+                xr, status, _nv = tight_reference(rec)
+                refst.append(status)
+                if xr is not None and status == "optimal":
+                    nu = ctrl.dmodel.nu
+                    d = np.abs(run["plan"][i] - xr) / su
+                    u0d.append(float(d[:nu].max()))
+                    pland.append(float(d.max()))
+    rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    st, fl = np.array(st), np.array(fl)
+    return {
+        "unit": unit.name, "horizon": N, "control_horizon": ctrl._M,
+        "qp_variables": ctrl.condensed_.n_variables_,
+        "qp_rows_median": float(np.median(nrows)), "qp_rows_max": int(max(nrows)),
+        "states": int(ctrl.dmodel.nx),
+        "delay_states": int(ctrl.dmodel.nx - ctrl.dmodel.n_plant_states),
+        "step_median_ms": ms(st, 50), "step_p95_ms": ms(st, 95),
+        "floor_median_ms": ms(fl, 50), "floor_p95_ms": ms(fl, 95),
+        "ratio_median": float(np.median(st) / np.median(fl)),
+        "cpu_step_median_ms": ms(np.array(cpu), 50),
+        "cpu_floor_median_ms": ms(np.array(floor.cpu), 50),
+        "cpu_ratio_median": float(np.median(cpu) / np.median(floor.cpu)),
+        "step_solve_median_ms": ms(np.array(solve), 50),
+        "step_target_median_ms": ms(np.array(target), 50),
+        "iterations_median": float(np.median(iters)), "iterations_max": int(max(iters)),
+        "floor_iterations_median": float(np.median(fiters)),
+        "active_set_median": float(np.median(active)),
+        "build_s": build_s, "peak_heap_mb": heap, "rss_growth_mb": (rss - rss0) / 1024.0,
+        "applied_move_diff_max": max(u0d) if u0d else None,
+        "plan_diff_max": max(pland) if pland else None,
+        "reference_solves": len(refst),
+        "reference_not_optimal": int(sum(s != "optimal" for s in refst)),
+        "non_ok_steps": int(sum(s != "ok" for s in statuses)),
+        "load_average_1min": float(os.getloadavg()[0]),
     }
-    print()
-    hdr = (f"{'N':>4} {'M':>3} {'vars':>5} {'rows':>5} {'step med':>9} {'step p95':>9} "
-           f"{'floor med':>9} {'floor p95':>9} {'ratio':>6} {'r p95':>6} {'compile s':>9} "
-           f"{'heap MB':>8} {'iters':>5} {'plan diff':>9}")
-    print(hdr)
-    for r in rows:
-        print(f"{r['horizon']:>4} {r['control_horizon']:>3} {r['qp_variables']:>5} {r['qp_rows']:>5} "
-              f"{r['step_median_ms']:>9.3f} {r['step_p95_ms']:>9.3f} {r['floor_median_ms']:>9.3f} "
-              f"{r['floor_p95_ms']:>9.3f} {r['ratio_median']:>6.2f} {r['ratio_p95']:>6.2f} "
-              f"{r['compile_s']:>9.3f} {r['peak_python_heap_mb']:>8.1f} {r['median_iterations']:>5.0f} "
-              f"{r['max_plan_diff_scaled']:>9.2e}")
-    print("targets:", targets, "met:", verdict)
+
+
+def profile_step(unit, N, steps):
+    """Time the parts of the step (instance-level timers around the real methods)."""
+    ctrl = mp.PredictiveController.from_settings(unit.dm, unit.settings(N)).build()
+    acc = {"estimator": 0.0, "condensed_data": 0.0, "daqp": 0.0, "target": 0.0}
+    est, cond, tgt = ctrl.estimator_, ctrl.condensed_, ctrl.target_
+
+    def timed(obj, name, key):
+        f = getattr(obj, name)
+
+        def w(*a, **kw):
+            t0 = time.perf_counter()
+            r = f(*a, **kw)
+            acc[key] += time.perf_counter() - t0
+            return r
+        setattr(obj, name, w)
+
+    timed(est, "update", "estimator")
+    timed(cond, "data", "condensed_data")
+    timed(tgt, "solve", "target")
+    loop = Loop(unit, ctrl, seed=1)
+    loop.run(30)
+    for k in acc:
+        acc[k] = 0.0
+    run = loop.run(steps)
+    total = float(np.sum(run["step"]))
+    acc["daqp"] = float(np.sum(run["solve"]))       # solve_ms: DAQP update + solve + slacks
+    acc["rest"] = total - sum(acc.values())
+    return {k: v / steps * 1e3 for k, v in acc.items()} | {"step_total_ms": total / steps * 1e3}
+
+
+def main(argv=()):
+    quick = "--quick" in argv
+    RESULTS.mkdir(parents=True, exist_ok=True)
+    steps = 100 if quick else 400
+    units = (Tank(), Unit())
+    for u in units:
+        mp.PredictiveController.from_settings(u.dm, u.settings(10)).build()   # warm-up (imports)
+    rows = []
+    for u in units:
+        for N in u.horizons:
+            r = bench_horizon(u, N, steps)
+            rows.append(r)
+            print(f"{u.name:8s} N={N:4d} M={r['control_horizon']:3d}  vars {r['qp_variables']:4d} "
+                  f"rows {r['qp_rows_median']:.0f}  step {r['step_median_ms']:.3f} ms "
+                  f"(p95 {r['step_p95_ms']:.3f})  floor {r['floor_median_ms']:.3f} ms "
+                  f"(p95 {r['floor_p95_ms']:.3f})  ratio {r['ratio_median']:.2f} "
+                  f"(CPU time {r['cpu_ratio_median']:.2f})  "
+                  f"build {r['build_s']:.3f} s  heap {r['peak_heap_mb']:.1f} MB  iters "
+                  f"{r['iterations_median']:.0f}/{r['floor_iterations_median']:.0f}  active "
+                  f"{r['active_set_median']:.0f}  u0 diff {r['applied_move_diff_max']}  plan diff "
+                  f"{r['plan_diff_max']}  non-ok {r['non_ok_steps']}", flush=True)
+    # growth of build time and memory with N (8 x 12 unit)
+    unit = units[1]
+    fitN = (30, 60, 120, 240)
+    fit_t, fit_m = [], []
+    for N in fitN:
+        _c, bt = build_timed(unit, N)
+        bh, _p = heap_build(unit, N, 0)
+        fit_t.append(bt)
+        fit_m.append(bh)
+    ex_t = float(np.polyfit(np.log(fitN), np.log(fit_t), 1)[0])
+    ex_m = float(np.polyfit(np.log(fitN), np.log(fit_m), 1)[0])
+    print(f"8x12 build over N={fitN}: {['%.3f' % t for t in fit_t]} s, exponent {ex_t:.2f}; "
+          f"heap {['%.1f' % m for m in fit_m]} MB, exponent {ex_m:.2f}")
+    prof = profile_step(unit, 120, 100 if quick else 300)
+    print("8x12 N=120 step profile (ms per step):", {k: round(v, 4) for k, v in prof.items()})
+    by = {(r["unit"], r["horizon"]): r for r in rows}
+    u120 = by[("unit8x12", 120)]
+    verdict = {
+        "unit_N120_step_le_4x_floor": u120["ratio_median"] <= 4.0,
+        "unit_N120_build_le_0.5s": u120["build_s"] <= 0.5,
+        "unit_N120_memory_le_100MB": u120["peak_heap_mb"] <= 100.0,
+        "unit_build_growth_at_most_linear": ex_t <= 1.1,
+        "unit_memory_growth_at_most_linear": ex_m <= 1.1,
+        "tank_step_le_10x_floor": all(by[("tank", N)]["ratio_median"] <= 10.0 for N in (50, 100)),
+        "tank_build_le_0.2s": all(by[("tank", N)]["build_s"] <= 0.2 for N in (20, 50, 100)),
+        "applied_move_within_1e-8": all((r["applied_move_diff_max"] or 0.0) <= 1e-8 for r in rows),
+    }
+    print("targets met:", verdict)
     out = {"benchmark": "bench_mpc", "python": sys.version.split()[0],
-           "machine": platform.platform(), "processor": platform.processor(),
-           "steps_per_horizon": STEPS, "sample_time_s": TS, "rows": rows,
-           "targets": targets, "targets_met": verdict}
+           "machine": platform.platform(), "rows": rows,
+           "fit": {"N": fitN, "build_s": fit_t, "build_heap_mb": fit_m, "exponent_build": ex_t,
+                   "exponent_heap": ex_m},
+           "profile_unit_N120_ms": prof, "targets_met": verdict}
     path = RESULTS / "bench_mpc.json"
     path.write_text(json.dumps(out, indent=2))
     print(f"wrote {path}")
 
 
 if __name__ == "__main__":
-    main()
+    main(sys.argv[1:])

@@ -298,3 +298,26 @@ def test_a_scenario_runs_the_controller_of_a_bundle(wood_berry, tmp_path):
         from mpcproto.scenario.runner import check_scenario
 
         check_scenario(other)
+
+
+def test_schema_solver_names_follow_the_controller_settings():
+    # the bundle schema lists exactly the solvers the controller accepts (one source of truth:
+    # mpcproto.control.mpc_settings)
+    import json
+
+    from mpcproto.control.mpc_settings import BACKUP_SOLVERS, SOLVERS
+
+    schema = json.loads((Path(mp.__file__).parent / "export" / "bundle.schema.json").read_text())
+
+    def find(o, key):
+        if isinstance(o, dict):
+            for k, v in o.items():
+                if k == key and isinstance(v, dict) and "enum" in v:
+                    return v["enum"]
+                got = find(v, key)
+                if got is not None:
+                    return got
+        return None
+
+    assert set(find(schema, "solver")) == set(SOLVERS)
+    assert set(find(schema, "backup_solver")) - {"none", None} == set(BACKUP_SOLVERS)

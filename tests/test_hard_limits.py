@@ -71,7 +71,7 @@ def test_fallback_hold_outside_the_limits_goes_to_the_limit_and_is_reported():
     op = mp.OperatingPoint.at(m, [3.0], [3.0], [])
     dm = mp.linearize(m, op).discretize(1.0)
     ctl = mp.PredictiveController.from_settings(dm, {
-        "horizon": 10, "fallback": "hold", "backup_solver": "none",
+        "horizon": 10, "fallback": "hold", "backup_solver": "none", "solver": "osqp",
         "solver_options": {"max_iter": 1}}).build()
     tr = mp.simulate(m, ctl, op=op, Ts=1.0, duration=20.0,
                      mv_limits={"u": {"low": 0.0, "high": 1.4, "rate": 0.1}})
@@ -269,12 +269,15 @@ def _mpc_pool(m):
     plans and holds, with and without a move limit of their own."""
     dm = mp.linearize(m, _steady(m, m.nominal("mv"))).discretize(1.0)
     pool = []
-    for fallback, iters, move in (("hold", 1, INF), ("shift", 1, 0.3), ("shift", 4, INF),
-                                  ("hold", 4, 0.3), ("shift", None, INF)):
-        opts = {} if iters is None else {"max_iter": iters}
+    # OSQP stopped after a few iterations fails now and then or always; DAQP stopped after one
+    # iteration fails whenever a constraint must become active; the default solver works
+    for solver, fallback, opts, move in (
+            ("osqp", "hold", {"max_iter": 1}, INF), ("osqp", "shift", {"max_iter": 1}, 0.3),
+            ("osqp", "shift", {"max_iter": 4}, INF), ("osqp", "hold", {"max_iter": 4}, 0.3),
+            ("daqp", "shift", {"iter_limit": 1}, 0.3), ("auto", "shift", {}, INF)):
         pool.append(mp.PredictiveController.from_settings(dm, {
             "horizon": 8, "control_horizon": 3, "fallback": fallback, "backup_solver": "none",
-            "solver_options": opts, "steady_target": iters is None,
+            "solver": solver, "solver_options": opts, "steady_target": not opts,
             "mv": {n: {"max_move": move} for n in m.mv_names}}).build())
     return pool
 

@@ -90,7 +90,7 @@ def test_unconstrained_with_riccati_terminal_weight_is_lqr(N):
     qw = np.array([1.0, 2.0, 0.5])
     rw = np.array([0.3, 0.7])
     ctrl = mp.PredictiveController(
-        dm, horizon=N, terminal_cost=True, steady_target=True, solver_options=TIGHT,
+        dm, horizon=N, terminal_cost=True, steady_target=True, solver="osqp", solver_options=TIGHT,
         cv={f"y{i}": {"weight": float(qw[i])} for i in range(3)},
         mv={f"u{j}": {"preferred_weight": float(rw[j]), "move_weight": 0.0} for j in range(2)}).build()
     P = sla.solve_discrete_are(A, B, np.diag(qw), np.diag(rw))
@@ -130,7 +130,7 @@ def test_fast_path_equals_cvxpy_solve_on_random_steps():
               mv={"u0": {"low": -1.0, "high": 1.0, "max_move": 0.3, "preferred_weight": 0.1},
                   "u1": {"low": -2.0, "high": 0.5}})
     fast = mp.PredictiveController(
-        dm, solver_options={"eps_abs": 1e-6, "eps_rel": 1e-6, "polishing": True,
+        dm, solver="osqp", solver_options={"eps_abs": 1e-6, "eps_rel": 1e-6, "polishing": True,
                             "polish_refine_iter": 10}, **kw).build()
     plain = mp.PredictiveController(
         dm, solver="clarabel", solver_options={"tol_gap_abs": 1e-11, "tol_gap_rel": 1e-11,
@@ -313,7 +313,7 @@ def test_failed_solve_falls_back_to_shifted_plan_then_holds():
     A, B, C, _ = random_stable(rng, 2, 1, 1)
     dm = make_dlm(A, B, C)
     ctrl = mp.PredictiveController(dm, horizon=5, mv={"u0": {"low": -1, "high": 1}},
-                                   backup_solver=None).build()
+                                   solver="osqp", backup_solver=None).build()
     tg = free_targets(1, 1, sp=[0.5])
     ctrl.reset()
     good = ctrl.step(0.0, mp.Measurement.now([0.0], 0.0), [], tg)

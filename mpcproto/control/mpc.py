@@ -24,14 +24,20 @@ j = 0..M-1 moves, the MVs are held after the control horizon M)::
                lim_lo <= y + sl,  y - sl <= lim_hi,  sl >= 0
                u_lo <= u <= u_hi,  r_lo <= du <= r_hi    hard MV limits and rate limits
 
-Every per-sample datum is a cvxpy Parameter entering only the linear cost and the constraint
-bounds, so the problem is DPP, the matrices never change and OSQP keeps its factorization.  By
-default the compiled problem's affine parameter->data map is read once and OSQP is driven directly
-(``fast_path=True``); ``fast_path=False`` re-solves through ``cvxpy.Problem.solve`` (OSQP or
-Clarabel).  Both QPs are written in scaled deviations (one ``scale`` of each MV and CV is one
-unit; each state is scaled by how far one scaled MV step moves it within the horizon), which keeps
-OSQP's iteration counts low on units whose variables differ by orders of magnitude; inputs,
-outputs and diagnostics stay in engineering units.
+This statement is written once in cvxpy (:mod:`mpcproto.control.dynamic_qp`); every per-sample
+datum is a cvxpy Parameter entering only the linear cost and the constraint bounds (DPP).  By
+default (``solver="auto"``) the same QP is solved in condensed form
+(:mod:`mpcproto.control.condensed`: states eliminated, the blocked MV values the only variables, soft limits and zones as soft rows)
+by DAQP's dual active set, exactly; for very large condensed QPs the sparse statement is driven
+through OSQP from its compiled parameter->data map; ``fast_path=False`` solves the statement
+through ``cvxpy.Problem.solve`` (the reference path).  Each step records ``solver``,
+``iterations``, ``solver_status`` and, with DAQP, ``exit_flag`` and ``active_set`` (the size of
+the final active set) in its diagnostics.
+
+Both QPs are written in scaled deviations (one ``scale`` of each MV and CV is one unit; each
+state is scaled by how far one scaled MV step moves it within the horizon), which keeps OSQP's
+iteration counts low on units whose variables differ by orders of magnitude and the condensed
+Hessian well balanced; inputs, outputs and diagnostics stay in engineering units.
 
 Solve outcomes: a solve that is not optimal is retried once with ``backup_solver`` (Clarabel via
 cvxpy), then the previous plan is applied shifted by one sample (``fallback="shift"``) or the MVs
@@ -43,90 +49,30 @@ systems, management of change and the judgement of licensed engineers under loca
 
 from __future__ import annotations
 
-import math
 import time
 from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 import scipy.linalg as sla
-import scipy.sparse as sp
 
 from ..exceptions import NotBuiltError, SettingsError
 from ..model import suggest
 from ._qp import CompiledQP
 from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_MEASUREMENT_REJECTED,
                    STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutput, Measurement, Targets)
-from .estimator import DISTURBANCE_MODELS, DisturbanceEstimator
+from .condensed import CondensedQP
+from .dynamic_qp import (input_layout, noise_scales, state_dynamic_qp, state_scales,
+                         target_preferred_weight)
+from .estimator import DisturbanceEstimator
 from .limits import limit_activity, project_command
+from .mpc_settings import CV_KEYS, DV_KEYS, MV_KEYS, SETTINGS_KEYS, _err, resolve  # noqa: F401
 from .steady_target import SteadyTarget
 
 __all__ = ["PredictiveController", "SETTINGS_KEYS", "CV_KEYS", "MV_KEYS", "DV_KEYS"]
 
-#: top-level settings keys and their defaults (see :class:`PredictiveController`)
-SETTINGS_KEYS: dict[str, Any] = {
-    "horizon": 30, "control_horizon": None, "cv": None, "mv": None, "dv": None,
-    "terminal_cost": False, "steady_target": True, "solver": "osqp", "fast_path": True,
-    "solver_options": None, "state_noise": 1e-4, "history": 60, "priority_ratio": 10.0,
-    "fallback": "shift", "backup_solver": "clarabel",
-}
-#: per-CV keys and defaults
-CV_KEYS: dict[str, Any] = {
-    "weight": 1.0, "scale": 1.0, "low": -math.inf, "high": math.inf, "limit_penalty": 1e2,
-    "limit_penalty_quadratic": 1e1, "priority": 1, "disturbance": "auto",
-    "measurement_noise": 1e-3, "disturbance_noise": 1e-2,
-}
-#: per-MV keys and defaults
-MV_KEYS: dict[str, Any] = {
-    "move_weight": 0.1, "preferred_weight": 0.0, "preferred_value": None, "low": -math.inf,
-    "high": math.inf, "max_move": math.inf, "scale": 1.0,
-}
-#: keys of earlier versions that were renamed: refused with a message naming the new key
-_RENAMED_KEYS = {f"rest_{k}": f"preferred_{k}" for k in ("value", "weight")}
-#: per-DV keys and defaults
-DV_KEYS: dict[str, Any] = {"feedforward": True}
-
-
 #: samples an MV that did not follow its command stays limited at its position (readback)
 _NOT_FOLLOWING_HOLD = 5
-
-SOLVERS = ("osqp", "clarabel")
-FALLBACKS = ("shift", "hold")
-_OSQP_OPTIONS = ("eps_abs", "eps_rel", "eps_prim_inf", "eps_dual_inf", "max_iter", "polishing",
-                 "polish_refine_iter", "warm_starting", "adaptive_rho", "adaptive_rho_interval",
-                 "adaptive_rho_tolerance", "adaptive_rho_fraction", "rho", "sigma", "alpha",
-                 "scaling", "time_limit", "check_termination", "scaled_termination", "delta",
-                 "verbose", "check_dualgap")
-
-
-def _err(key: str, expected: str, found: Any) -> SettingsError:
-    return SettingsError(f"PredictiveController: the '{key}' setting must be {expected}; got {found!r}.")
-
-
-def _number(key, v, *, low=None, low_open=False, allow_inf=False) -> float:
-    if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)):
-        raise _err(key, "a number", v)
-    f = float(v)
-    if math.isnan(f) or (math.isinf(f) and not allow_inf):
-        raise _err(key, "a finite number" if not allow_inf else "a number (not NaN)", v)
-    if low is not None and (f < low or (low_open and f == low)):
-        raise _err(key, f"a number {'>' if low_open else '>='} {low:g}", v)
-    return f
-
-
-def _int(key, v, low=1) -> int:
-    if isinstance(v, bool) or not isinstance(v, (int, np.integer)):
-        raise _err(key, f"an int >= {low}", v)
-    if v < low:
-        raise _err(key, f"an int >= {low}", v)
-    return int(v)
-
-
-def _bool(key, v) -> bool:
-    if not isinstance(v, (bool, np.bool_)):
-        raise _err(key, "true or false", v)
-    return bool(v)
-
 
 class PredictiveController:
     """Constrained, offset-free MPC on a :class:`~mpcproto.linear.DiscreteLinearModel`.
@@ -170,14 +116,24 @@ class PredictiveController:
         from the steady target (needs ``steady_target``).
     steady_target : bool
         Solve the steady-state target QP each sample and track its result.
-    solver : {"osqp", "clarabel"}
-        QP solver.  Clarabel always goes through ``cvxpy.Problem.solve``.
+    solver : {"auto", "daqp", "osqp", "clarabel"}
+        Dynamic-QP solver.  ``"daqp"``: the condensed QP (states eliminated, decision = the
+        blocked MV values, soft CV limits and zones as DAQP soft rows; see
+        :mod:`mpcproto.control.condensed`) solved by DAQP's dual active set, warm-started, exact
+        to round-off.  ``"osqp"``: the sparse cvxpy statement driven through OSQP (tolerance
+        1e-5 by default: the applied move may differ from the optimum by ~1e-3 of the MV scale).
+        ``"clarabel"``: the statement through ``cvxpy.Problem.solve``.  ``"auto"`` (default):
+        ``"daqp"`` unless the condensed QP would have more than ``CONDENSED_MAX_VARIABLES``
+        variables or a prediction matrix of more than ``CONDENSED_MAX_ENTRIES`` entries, then
+        ``"osqp"``.  The resolved choice is ``solver_``.
     fast_path : bool
-        With OSQP: drive OSQP directly from the compiled parameter map (default) instead of
-        ``cvxpy.Problem.solve``.
+        True (default): the direct path of the solver (the condensed QP for DAQP, OSQP driven
+        from the compiled parameter map).  False: the cvxpy statement solved through
+        ``cvxpy.Problem.solve`` with the chosen solver (the reference path).
     solver_options : mapping
-        Solver settings (OSQP names such as ``eps_abs``, ``eps_rel``, ``max_iter``,
-        ``polishing``, ``adaptive_rho``; Clarabel's own names with Clarabel).
+        Settings of the chosen solver under its own names (DAQP: ``primal_tol`` (default
+        1e-10), ``iter_limit``, ``time_limit``...; OSQP: ``eps_abs``, ``eps_rel``, ``max_iter``,
+        ``polishing``, ``adaptive_rho``...; Clarabel's own names with Clarabel).
     state_noise : float
         Estimator process noise on the plant states (>= 0), per squared state unit where one
         unit of a state a CV reads directly moves that CV by one CV ``scale`` (a mass fraction
@@ -190,10 +146,12 @@ class PredictiveController:
         Weight factor between neighbouring priority classes (> 1).
     fallback : {"shift", "hold"}
         What a failed solve applies: the previous plan shifted one sample, or the previous MVs.
-    backup_solver : {"clarabel", "osqp", "none"} or None
-        With the fast path: when OSQP does not reach an optimal solution, solve the same compiled
-        problem once more with this solver through cvxpy before falling back (the first such call
-        canonicalizes for that solver, a few hundred ms).  None or "none": fall back at once.
+    backup_solver : {"clarabel", "osqp", "daqp", "none"} or None
+        With the fast path: when the solver does not reach an optimal solution (DAQP: an exit
+        flag other than 1 or 2), solve the cvxpy statement once more with this solver through
+        cvxpy before falling back (the first such call compiles the statement -- on the DAQP path
+        seconds at long horizons -- and canonicalizes for that solver).  None or "none": fall
+        back at once.
 
     Defaults of every key are in the module constants ``SETTINGS_KEYS``, ``CV_KEYS``,
     ``MV_KEYS`` and ``DV_KEYS``.
@@ -201,7 +159,12 @@ class PredictiveController:
     Attributes
     ----------
     qp_ : CompiledQP
-        After :meth:`build`: the compiled dynamic problem (``qp_.problem`` is the cvxpy Problem).
+        The dynamic problem stated in cvxpy (``qp_.problem`` is the cvxpy Problem); with the
+        condensed DAQP path compiled on first use.
+    condensed_ : CondensedQP or None
+        After :meth:`build` with the DAQP fast path: the condensed QP.
+    solver_ : str
+        The resolved solver ("daqp", "osqp" or "clarabel").
     estimator_ : DisturbanceEstimator
     target_ : SteadyTarget or None
     counts : dict
@@ -217,7 +180,7 @@ class PredictiveController:
                  cv: Mapping[str, Mapping[str, Any]] | None = None,
                  mv: Mapping[str, Mapping[str, Any]] | None = None,
                  dv: Mapping[str, Mapping[str, Any]] | None = None,
-                 terminal_cost: bool = False, steady_target: bool = True, solver: str = "osqp",
+                 terminal_cost: bool = False, steady_target: bool = True, solver: str = "auto",
                  fast_path: bool = True, solver_options: Mapping[str, Any] | None = None,
                  state_noise: float = 1e-4, history: int = 60, priority_ratio: float = 10.0,
                  fallback: str = "shift", backup_solver: str | None = "clarabel"):
@@ -261,161 +224,16 @@ class PredictiveController:
         return obj
 
     def validate(self) -> dict[str, Any]:
-        """Check every setting against the model; return the resolved per-variable arrays.
+        """Check every setting against the model; return the resolved per-variable arrays
+        (see :func:`mpcproto.control.mpc_settings.resolve`).
 
         Raises
         ------
         SettingsError
             Naming the setting, what was expected and what was found.
         """
-        m = self.dmodel
-        self._check_model(m)
-        N = _int("horizon", self.horizon)
-        M = N if self.control_horizon is None else _int("control_horizon", self.control_horizon)
-        if M > N:
-            raise _err("control_horizon", f"an int between 1 and the horizon ({N})", self.control_horizon)
-        r: dict[str, Any] = {"N": N, "M": M}
-        cvs = self._per_var("cv", self.cv, m.cv_names, CV_KEYS)
-        mvs = self._per_var("mv", self.mv, m.mv_names, MV_KEYS)
-        dvs = self._per_var("dv", self.dv, m.dv_names, DV_KEYS)
-        arr = lambda rows, key: np.array([row[key] for row in rows], float)  # noqa: E731
-        for i, (name, row) in enumerate(zip(m.cv_names, cvs)):
-            p = f"cv.{name}"
-            _number(f"{p}.weight", row["weight"], low=0)
-            _number(f"{p}.scale", row["scale"], low=0, low_open=True)
-            _number(f"{p}.low", row["low"], allow_inf=True)
-            _number(f"{p}.high", row["high"], allow_inf=True)
-            if row["low"] > row["high"]:
-                raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
-            _number(f"{p}.limit_penalty", row["limit_penalty"], low=0)
-            _number(f"{p}.limit_penalty_quadratic", row["limit_penalty_quadratic"], low=0)
-            _int(f"{p}.priority", row["priority"])
-            if row["disturbance"] not in DISTURBANCE_MODELS:
-                raise _err(f"{p}.disturbance", f"one of {DISTURBANCE_MODELS}", row["disturbance"])
-            _number(f"{p}.measurement_noise", row["measurement_noise"], low=0, low_open=True)
-            _number(f"{p}.disturbance_noise", row["disturbance_noise"], low=0, low_open=True)
-        for name, row in zip(m.mv_names, mvs):
-            p = f"mv.{name}"
-            _number(f"{p}.move_weight", row["move_weight"], low=0)
-            _number(f"{p}.preferred_weight", row["preferred_weight"], low=0)
-            if row["preferred_value"] is not None:
-                _number(f"{p}.preferred_value", row["preferred_value"])
-            _number(f"{p}.low", row["low"], allow_inf=True)
-            _number(f"{p}.high", row["high"], allow_inf=True)
-            if row["low"] > row["high"]:
-                raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
-            _number(f"{p}.max_move", row["max_move"], low=0, low_open=True, allow_inf=True)
-            _number(f"{p}.scale", row["scale"], low=0, low_open=True)
-        for name, row in zip(m.dv_names, dvs):
-            _bool(f"dv.{name}.feedforward", row["feedforward"])
-        _bool("terminal_cost", self.terminal_cost)
-        _bool("steady_target", self.steady_target)
-        _bool("fast_path", self.fast_path)
-        if self.solver not in SOLVERS:
-            raise _err("solver", f"one of {SOLVERS}", self.solver)
-        if self.backup_solver == "none":          # the spelling a TOML file can give
-            self.backup_solver = None
-        if self.backup_solver is not None and self.backup_solver not in SOLVERS:
-            raise _err("backup_solver", f"one of {SOLVERS} or 'none'", self.backup_solver)
-        if self.fallback not in FALLBACKS:
-            raise _err("fallback", f"one of {FALLBACKS}", self.fallback)
-        if self.terminal_cost and not self.steady_target:
-            raise _err("terminal_cost", "false when steady_target is false (the terminal cost "
-                       "pulls the last state to the steady target)", self.terminal_cost)
-        opts = {} if self.solver_options is None else self.solver_options
-        if not isinstance(opts, Mapping):
-            raise _err("solver_options", "a mapping of solver setting names to values", opts)
-        if self.solver == "osqp":
-            known = _OSQP_OPTIONS
-        else:
-            import clarabel
-
-            known = tuple(k for k in dir(clarabel.DefaultSettings()) if not k.startswith("_"))
-        for k in opts:
-            if k not in known:
-                raise SettingsError(f"PredictiveController: unknown {self.solver} option "
-                                    f"'solver_options.{k}'{suggest(k, known)}; known: "
-                                    f"{sorted(known)}.")
-        _number("state_noise", self.state_noise, low=0)
-        _int("history", self.history)
-        _number("priority_ratio", self.priority_ratio, low=1, low_open=True)
-        prio = arr(cvs, "priority")
-        pf = float(self.priority_ratio) ** (prio.max() - prio)
-        r.update(
-            cv_weight=arr(cvs, "weight") / arr(cvs, "scale") ** 2 * pf,
-            cv_scale=arr(cvs, "scale"), cv_low=arr(cvs, "low"), cv_high=arr(cvs, "high"),
-            lim_lin=arr(cvs, "limit_penalty") / arr(cvs, "scale") * pf,
-            lim_quad=arr(cvs, "limit_penalty_quadratic") / arr(cvs, "scale") ** 2 * pf,
-            disturbance={n: row["disturbance"] for n, row in zip(m.cv_names, cvs)},
-            meas_noise={n: float(row["measurement_noise"]) for n, row in zip(m.cv_names, cvs)},
-            dist_noise={n: float(row["disturbance_noise"]) for n, row in zip(m.cv_names, cvs)},
-            move_weight=arr(mvs, "move_weight") / arr(mvs, "scale") ** 2,
-            preferred_weight=arr(mvs, "preferred_weight") / arr(mvs, "scale") ** 2,
-            mv_scale=arr(mvs, "scale"),
-            preferred_value=np.array([m.op.u[j] if row["preferred_value"] is None else float(row["preferred_value"])
-                                 for j, row in enumerate(mvs)]),
-            mv_low=arr(mvs, "low"), mv_high=arr(mvs, "high"), max_move=arr(mvs, "max_move"),
-            feedforward=np.array([bool(row["feedforward"]) for row in dvs], bool),
-            solver_options=dict(opts),
-        )
-        self._resolved = r
-        return r
-
-    @staticmethod
-    def _per_var(role: str, given, names, keys: Mapping[str, Any]) -> list[dict[str, Any]]:
-        given = {} if given is None else given
-        if not isinstance(given, Mapping):
-            raise _err(role, f"a mapping of {role.upper()} name to a dict of settings", given)
-        for n, row in given.items():
-            if n not in names:
-                raise SettingsError(f"PredictiveController: '{role}' names an unknown {role.upper()} "
-                                    f"'{n}'{suggest(n, list(names))}; the model's {role.upper()}s are "
-                                    f"{list(names)}.")
-            if not isinstance(row, Mapping):
-                raise _err(f"{role}.{n}", "a mapping of setting names to values", row)
-            for k in row:
-                if k in _RENAMED_KEYS:
-                    raise SettingsError(f"PredictiveController: the setting '{role}.{n}.{k}' is now "
-                                        f"called '{_RENAMED_KEYS[k]}'; rename the key "
-                                        f"'{role}.{n}.{k}' to '{role}.{n}.{_RENAMED_KEYS[k]}'.")
-                if k not in keys:
-                    raise SettingsError(f"PredictiveController: unknown setting '{role}.{n}.{k}'"
-                                        f"{suggest(k, list(keys))}; known: {sorted(keys)}.")
-        out = []
-        for n in names:
-            row = dict(keys)
-            row.update(given.get(n, {}))
-            out.append(row)
-        return out
-
-    @staticmethod
-    def _check_model(m) -> None:
-        need = ("A", "B", "Bd", "C", "D", "Dd", "Ts", "op")
-        for k in need:
-            if not hasattr(m, k):
-                raise SettingsError(f"PredictiveController: dmodel must be a DiscreteLinearModel "
-                                    f"(missing '{k}'); got {type(m).__name__}.")
-        A = np.asarray(m.A, float)
-        if A.ndim != 2 or A.shape[0] != A.shape[1]:
-            raise SettingsError(f"PredictiveController: dmodel.A must be square; got shape {A.shape}.")
-        nx = A.shape[0]
-        nu, nd, ny = len(m.op.mv_names), len(m.op.dv_names), len(m.op.cv_names)
-        for k, shape in (("B", (nx, nu)), ("Bd", (nx, nd)), ("C", (ny, nx)), ("D", (ny, nu)),
-                         ("Dd", (ny, nd))):
-            got = np.shape(getattr(m, k))
-            if got != shape:
-                raise SettingsError(f"PredictiveController: dmodel.{k} must have shape {shape} "
-                                    f"(states={nx}, MVs={nu}, DVs={nd}, CVs={ny}); got {got}.")
-            if not np.all(np.isfinite(np.asarray(getattr(m, k), float))):
-                raise SettingsError(f"PredictiveController: dmodel.{k} has non-finite entries.")
-        if not np.all(np.isfinite(A)):
-            raise SettingsError("PredictiveController: dmodel.A has non-finite entries.")
-        for k, n in (("u", nu), ("d", nd), ("y", ny)):
-            if np.shape(getattr(m.op, k)) != (n,):
-                raise SettingsError(f"PredictiveController: dmodel.op.{k} must have shape ({n},); "
-                                    f"got {np.shape(getattr(m.op, k))}.")
-        if not (np.isfinite(m.Ts) and m.Ts > 0):
-            raise SettingsError(f"PredictiveController: dmodel.Ts must be > 0; got {m.Ts!r}.")
+        self._resolved = resolve(self)
+        return self._resolved
 
     # ================================================================== build
     def build(self) -> "PredictiveController":
@@ -435,8 +253,6 @@ class PredictiveController:
                 gc.enable()
 
     def _build(self) -> "PredictiveController":
-        import cvxpy as cp
-
         t_start = time.perf_counter()
         r = self.validate()
         m = self.dmodel
@@ -447,15 +263,15 @@ class PredictiveController:
         # -- scaling: the QPs work in scaled deviations (one MV/CV scale = 1; states scaled by how
         # far the MVs move them within the horizon), so OSQP sees a well-balanced problem
         su, sy = r["mv_scale"], r["cv_scale"]
-        sx = self._state_scales(A, B, C, su, sy, min(N, 50))
+        sx = state_scales(A, B, C, su, sy, min(N, 50))
         # the estimator's state noise is per state in CV units (see DisturbanceEstimator)
         self.estimator_ = DisturbanceEstimator(
             m, disturbance=r["disturbance"], state_noise=float(self.state_noise),
             disturbance_noise=r["dist_noise"], measurement_noise=r["meas_noise"],
-            history=int(self.history), state_scale=self._noise_scales(C, sy, sx)).build()
+            history=int(self.history), state_scale=noise_scales(C, sy, sx)).build()
         Bw, Cw = self.estimator_.Bw_, self.estimator_.Cw_
         opts = r["solver_options"]
-        osqp_opts = dict(opts) if self.solver == "osqp" else {}
+        osqp_opts = dict(opts) if r["solver"] == "osqp" else {}
         Bd, Dd = np.asarray(m.Bd, float), np.asarray(m.Dd, float)
         nd = m.nd
         self.scales_ = {"x": sx, "u": su, "y": sy}
@@ -479,7 +295,7 @@ class PredictiveController:
                 A, B, C, D, Bd, Dd, Bw, Cw,
                 band_weight=r["cv_weight"] + 1e-9 / sy ** 2, limit_linear=r["lim_lin"],
                 limit_quadratic=r["lim_quad"],
-                preferred_weight=self._target_preferred_weight(r["preferred_weight"], wq_s, su),
+                preferred_weight=target_preferred_weight(r["preferred_weight"], wq_s, su),
                 solver_options=osqp_opts, scales=(sx, su, sy)).build()
         else:
             self.target_ = None
@@ -503,96 +319,10 @@ class PredictiveController:
             self.riccati_ = P / sx[:, None] / sx[None, :]          # engineering units
         self.terminal_weight_ = Pt
         A, B, C, D = As, Bs, Cs, Ds
-        # -- the dynamic QP, whole-horizon variables and matrix constraints
-        X = cp.Variable((nx, N), name="x")
-        U = cp.Variable((nu, M), name="u")
-        dU = cp.Variable((nu, M), name="du")
-        E = cp.Variable((ny, N), name="e")
-        S = cp.Variable((ny, N), name="slack")
-        par = {
-            "x0": cp.Parameter(nx, name="x0"), "u_prev": cp.Parameter(nu, name="u_prev"),
-            "W": cp.Parameter((nx, N), name="W"), "V": cp.Parameter((ny, N), name="V"),
-            "band_lo": cp.Parameter((ny, N), name="band_lo"),
-            "band_hi": cp.Parameter((ny, N), name="band_hi"),
-            "lim_lo": cp.Parameter((ny, N), name="lim_lo"),
-            "lim_hi": cp.Parameter((ny, N), name="lim_hi"),
-            "u_lo": cp.Parameter((nu, M), name="u_lo"), "u_hi": cp.Parameter((nu, M), name="u_hi"),
-            "du_lo": cp.Parameter((nu, M), name="du_lo"), "du_hi": cp.Parameter((nu, M), name="du_hi"),
-            "pref": cp.Parameter((nu, M), name="pref"),
-        }
-        e1N = np.zeros((1, N))
-        e1N[0, 0] = 1.0
-        e1M = np.zeros((1, M))
-        e1M[0, 0] = 1.0
-        shiftN = np.eye(N, k=1)                  # X @ shiftN: column k holds X[:, k-1]
-        shiftM = np.eye(M, k=1)
-        sel_now = np.zeros((M, N))               # u applied over sample k (k = 0..N-1)
-        sel_out = np.zeros((M, N))               # u seen by the output at k = 1..N
-        for k in range(N):
-            sel_now[min(k, M - 1), k] = 1.0
-            sel_out[min(k + 1, M - 1), k] = 1.0
-        count = sel_now.sum(axis=1)              # samples each planned move is held
-        x0c = cp.reshape(par["x0"], (nx, 1), order="F")
-        upc = cp.reshape(par["u_prev"], (nu, 1), order="F")
-        Y = C @ X + par["V"]
-        if np.any(D != 0):
-            Y = Y + D @ (U @ sel_out)
-        wq = np.repeat(wq_s[:, None], N, axis=1)
-        wr = np.repeat(wr_s[:, None], M, axis=1)
-        ws = wpref_s[:, None] * count[None, :]
-        wl = np.repeat(wl_s[:, None], N, axis=1)
-        wh = np.repeat(wh_s[:, None], N, axis=1)
-        obj = (cp.sum(cp.multiply(wq, cp.square(E)))
-               + cp.sum(cp.multiply(wr, cp.square(dU)))
-               + cp.sum(cp.multiply(ws, cp.square(U)))
-               - 2 * cp.sum(cp.multiply(cp.multiply(ws, par["pref"]), U))
-               + cp.sum(cp.multiply(wl, S)) + cp.sum(cp.multiply(wh, cp.square(S))))
-        if Pt is not None:
-            par["x_term"] = cp.Parameter(nx, name="x_term")
-            xN = X[:, N - 1]
-            obj = obj + cp.quad_form(xN, cp.psd_wrap(Pt)) - 2 * (par["x_term"] @ (Pt @ xN))
-        cons = [
-            X == A @ (X @ shiftN) + (A @ x0c) @ e1N + B @ (U @ sel_now) + par["W"],
-            dU == U - U @ shiftM - upc @ e1M,
-            par["band_lo"] <= Y - E, Y - E <= par["band_hi"],
-            Y + S >= par["lim_lo"], Y - S <= par["lim_hi"], S >= 0,
-            U >= par["u_lo"], U <= par["u_hi"],
-            dU >= par["du_lo"], dU <= par["du_hi"],
-        ]
-        prob = cp.Problem(cp.Minimize(obj), cons)
-        self.qp_ = CompiledQP(prob, par, {"x": X, "u": U, "du": dU, "e": E, "slack": S},
-                              inf_parameters=("band_lo", "band_hi", "lim_lo", "lim_hi", "u_lo",
-                                              "u_hi", "du_lo", "du_hi"),
-                              owner="PredictiveController").compile()
-        layout = {"x0": nx, "u_prev": nu, "d_now": nd, "dtraj": nd * (N + 1), "w": ny,
-                  "band_lo": ny,
-                  "band_hi": ny, "lim_lo": ny, "lim_hi": ny, "u_lo": nu * M, "u_hi": nu * M,
-                  "rate": nu, "pref": nu}
-        # the inputs stay in engineering deviation units: the scaling is folded into the maps
-        oneN, oneM = np.ones((N, 1)), np.ones((M, 1))
-        iy, iu, ix = sp.diags(1 / sy), sp.diags(1 / su), sp.diags(1 / sx)
-        rep_y = sp.kron(oneN, iy)
-        rep_u = sp.kron(oneM, iu)
-        maps = {
-            "x0": {"x0": ix}, "u_prev": {"u_prev": iu},
-            # DVs: their value now, plus a forecast's departure from it (zero without forecast)
-            "W": {"d_now": sp.kron(oneN, Bds),
-                  "dtraj": sp.hstack([sp.kron(sp.identity(N), Bds), sp.csc_matrix((nx * N, nd))]),
-                  "w": sp.kron(oneN, Bws)},
-            "V": {"d_now": sp.kron(oneN, Dds),
-                  "dtraj": sp.hstack([sp.csc_matrix((ny * N, nd)), sp.kron(sp.identity(N), Dds)]),
-                  "w": sp.kron(oneN, Cws)},
-            "band_lo": {"band_lo": rep_y}, "band_hi": {"band_hi": rep_y},
-            "lim_lo": {"lim_lo": rep_y}, "lim_hi": {"lim_hi": rep_y},
-            "u_lo": {"u_lo": sp.kron(sp.identity(M), iu)},
-            "u_hi": {"u_hi": sp.kron(sp.identity(M), iu)},
-            "du_lo": {"rate": -rep_u}, "du_hi": {"rate": rep_u}, "pref": {"pref": rep_u},
-        }
-        if Pt is not None:
-            layout["x_term"] = nx
-            maps["x_term"] = {"x_term": ix}
-        self.qp_.set_inputs(layout, maps, inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi",
-                                                      "u_lo", "u_hi", "rate"))
+        # -- the dynamic QP: condensed (DAQP) or the sparse cvxpy statement (OSQP / cvxpy)
+        self._statement_args = (self.scaled_, (sx, su, sy), N, M, Pt)
+        self._qp = None
+        layout = input_layout(nx, nu, nd, ny, N, M, Pt is not None)
         off, o = {}, 0
         for k, s_ in layout.items():
             off[k] = slice(o, o + s_)
@@ -608,12 +338,22 @@ class PredictiveController:
         self._tz = np.zeros(o)
         self._steps = np.arange(1, M + 1)[None, :].astype(float)
         self._plan_idx = np.minimum(np.arange(N), M - 1)
-        if self.solver == "osqp" and self.fast_path:
-            self.qp_.setup(osqp_opts)
-        self._cvxpy_solver = "OSQP" if self.solver == "osqp" else "CLARABEL"
+        kind = r["solver"]
+        self.solver_ = kind
+        self._osqp_opts = osqp_opts
+        self.condensed_ = None
+        if kind == "daqp" and self.fast_path:
+            self.condensed_ = CondensedQP(
+                m.A, m.B, m.C, m.D, Bd, Dd, Bw, Cw, N=N, M=M, scales=(sx, su, sy),
+                weights=self.scaled_, terminal=Pt, inputs=off, options=opts).build()
+        else:
+            self._qp = state_dynamic_qp(*self._statement_args)
+            if kind == "osqp" and self.fast_path:
+                self._qp.setup(osqp_opts)
+        self._cvxpy_solver = kind.upper()
         self._cvxpy_opts = dict(opts)
         self._backup = None if self.backup_solver is None else self.backup_solver.upper()
-        self._backup_opts = dict(opts) if self.backup_solver == self.solver else {}
+        self._backup_opts = dict(opts) if self.backup_solver == kind else {}
         self._N, self._M = N, M
         self._Bd, self._Dd = Bd, Dd
         self._Bw, self._Cw = Bw, Cw
@@ -623,61 +363,18 @@ class PredictiveController:
         self.compile_s_ = time.perf_counter() - t_start
         return self
 
-    @staticmethod
-    def _noise_scales(C, sy, sx):
-        """Per state, the size of one CV scale in that state's units, for a state that a CV reads
-        directly (the CV's row of ``C`` is mostly that state): ``sy_j / |C_ji|``; other states 1.
+    @property
+    def qp_(self) -> CompiledQP:
+        """The dynamic QP stated in cvxpy (sparse form), compiled on first use.
 
-        The estimator's ``state_noise`` is per squared such unit: a mass fraction read as wt%
-        (C = 100) gets a noise 1e4 times smaller than a level read in m, so that both mean the
-        same in the CVs.  States mixed into the CVs (a realization's internal states) keep the
-        engineering unit.  (Not the QP's reach-based scales ``sx``: on an open-loop unstable
-        unit those grow with the unstable mode and would drown the disturbance estimates.)
+        The OSQP path and the cvxpy paths build it in :meth:`build`; with the condensed DAQP
+        path it is compiled only when needed (the backup solver, a comparison), because at long
+        horizons its compilation costs seconds and hundreds of MB.
         """
-        out = np.full(C.shape[1], np.inf)
-        absC = np.abs(C)
-        for j in range(absC.shape[0]):
-            row = absC[j]
-            tot = row.sum()
-            if tot <= 0:
-                continue
-            i = int(np.argmax(row))
-            if row[i] >= 0.9 * tot:                 # CV j reads state i (nearly) alone
-                out[i] = min(out[i], sy[j] / row[i])
-        return np.where(np.isfinite(out), out, 1.0)
-
-    @staticmethod
-    def _target_preferred_weight(preferred_weight, wq_s, su):
-        """MV preferred weights for the steady target (engineering units).
-
-        The target is lexicographic (:mod:`~mpcproto.control.steady_target`): the CVs first,
-        then the preferred values among the MV combinations that do as well for the CVs, so the
-        weights go through as given; only their ratios matter there.  (A single QP with the
-        preferred weights scaled down to 1e-6 of the CV weights traded a reachable setpoint for
-        them when an MV moved a CV only slightly, and made weights 1 and 100 act alike.)
-        """
-        return np.asarray(preferred_weight, float).copy()
-
-    @staticmethod
-    def _state_scales(A, B, C, su, sy, T):
-        """Per state: the largest change one scaled MV step causes within T samples.
-
-        States no MV reaches take the CV scale through ``C`` (or 1).
-        """
-        nx = A.shape[0]
-        reach = np.zeros(nx)
-        S, Ak = np.zeros_like(B), np.eye(nx)
-        for _ in range(max(T, 1)):
-            S = S + Ak @ B
-            reach = np.maximum(reach, np.max(np.abs(S) * su[None, :], axis=1) if B.size else 0.0)
-            Ak = Ak @ A
-        sx = reach
-        bad = ~(sx > 1e-12)
-        if bad.any():
-            with np.errstate(divide="ignore"):
-                via_c = np.min(np.where(np.abs(C) > 0, sy[:, None] / np.abs(C), np.inf), axis=0)
-            sx = np.where(bad, np.where(np.isfinite(via_c), via_c, 1.0), sx)
-        return np.clip(sx, 1e-9, 1e9)
+        if self._qp is None:
+            self._check_built("qp_")
+            self._qp = state_dynamic_qp(*self._statement_args)
+        return self._qp
 
     def _check_built(self, what: str) -> None:
         if not self.is_built:
@@ -709,7 +406,10 @@ class PredictiveController:
         self.estimator_.reset(x0, t0)
         # solver state of a previous run (warm start, adaptive step size, learned active sets)
         # must not leak into this one: a rerun from the same point repeats the run exactly
-        self.qp_.restart()
+        if self._qp is not None:
+            self._qp.restart()
+        if self.condensed_ is not None:
+            self.condensed_.restart()
         if self.target_ is not None:
             self.target_.restart()
         self._last_inputs = None
@@ -722,7 +422,7 @@ class PredictiveController:
         self._slack_tol = 1e-4 * r["cv_scale"]
         self._slack_tol_list = self._slack_tol.tolist()
         self._mv_names = list(m.mv_names)
-        self._fast = self.solver == "osqp" and self.fast_path
+        self._fast = self.fast_path and self.solver_ in ("osqp", "daqp")
         self._z[:] = 0.0
         self._forecast_in_z = False
         self._u_prev = np.asarray(op.u, float).copy()
@@ -1047,8 +747,16 @@ class PredictiveController:
         z[zs["pref"]] = pref
         if self.terminal_weight_ is not None:
             z[zs["x_term"]] = self._target[2]
+        cond = self.condensed_
         if fast:
-            res = self.qp_.solve_inputs(z)
+            if cond is not None:
+                res = cond.solve(z)
+                info = cond.last_info_
+                diag["exit_flag"] = info["exit_flag"]
+                diag["active_set"] = info["active_set"]
+            else:
+                res = self.qp_.solve_inputs(z)
+            diag["solver"] = self.solver_
             if not res.accepted and self.backup_solver is not None:
                 # a second opinion before falling back: the interior-point solver via cvxpy
                 res2 = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=self._backup,
@@ -1062,6 +770,7 @@ class PredictiveController:
         else:
             res = self.qp_.solve_cvxpy(self.qp_.values_from_inputs(z), solver=self._cvxpy_solver,
                                        options=self._cvxpy_opts)
+            diag["solver"] = f"cvxpy/{self.solver_}"
         self._last_inputs = z
         diag["target_ms"] = t_target
         return res
@@ -1111,6 +820,10 @@ class PredictiveController:
         dv_forecast = self._forecast(dv_forecast)
         diag: dict[str, Any] = {}
         res = self._optimize(x, w, d_now, use, dv_forecast, *lims, up, diag)
+        if res.values and "x" not in res.values:        # condensed: states on demand
+            z = self._last_inputs
+            res.values["x"] = self.condensed_.states(z, res.values["u"])
+            res.objective = self.condensed_.objective(z, res.values["u"])
         out: dict[str, Any] = {"status": res.status, "accepted": res.accepted,
                                "objective": res.objective, "diagnostics": diag}
         if res.values:

@@ -1,0 +1,258 @@
+"""Settings of :class:`~mpcproto.control.mpc.PredictiveController`: keys, defaults, validation.
+
+:func:`resolve` checks every setting against the controller's model and returns the resolved
+per-variable arrays (weights in engineering units, priorities folded in, the solver chosen by the
+size rule); each bad value raises :class:`~mpcproto.exceptions.SettingsError` naming the key,
+what was expected and what was found.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from ..exceptions import SettingsError
+from ..model import suggest
+from .condensed import DAQP_OPTIONS
+from .estimator import DISTURBANCE_MODELS
+
+__all__ = ["SETTINGS_KEYS", "CV_KEYS", "MV_KEYS", "DV_KEYS", "SOLVERS", "BACKUP_SOLVERS",
+           "FALLBACKS", "CONDENSED_MAX_VARIABLES", "CONDENSED_MAX_ENTRIES", "resolve",
+           "per_var", "check_model"]
+
+#: top-level settings keys and their defaults (see :class:`PredictiveController`)
+SETTINGS_KEYS: dict[str, Any] = {
+    "horizon": 30, "control_horizon": None, "cv": None, "mv": None, "dv": None,
+    "terminal_cost": False, "steady_target": True, "solver": "auto", "fast_path": True,
+    "solver_options": None, "state_noise": 1e-4, "history": 60, "priority_ratio": 10.0,
+    "fallback": "shift", "backup_solver": "clarabel",
+}
+#: per-CV keys and defaults
+CV_KEYS: dict[str, Any] = {
+    "weight": 1.0, "scale": 1.0, "low": -math.inf, "high": math.inf, "limit_penalty": 1e2,
+    "limit_penalty_quadratic": 1e1, "priority": 1, "disturbance": "auto",
+    "measurement_noise": 1e-3, "disturbance_noise": 1e-2,
+}
+#: per-MV keys and defaults
+MV_KEYS: dict[str, Any] = {
+    "move_weight": 0.1, "preferred_weight": 0.0, "preferred_value": None, "low": -math.inf,
+    "high": math.inf, "max_move": math.inf, "scale": 1.0,
+}
+#: keys of earlier versions that were renamed: refused with a message naming the new key
+_RENAMED_KEYS = {f"rest_{k}": f"preferred_{k}" for k in ("value", "weight")}
+#: per-DV keys and defaults
+DV_KEYS: dict[str, Any] = {"feedforward": True}
+
+
+SOLVERS = ("auto", "daqp", "osqp", "clarabel")
+#: backup solvers (through cvxpy on the sparse statement)
+BACKUP_SOLVERS = ("clarabel", "osqp", "daqp")
+#: ``solver="auto"`` takes the condensed QP with DAQP while it has at most this many variables
+#: (nu * M) and its dense prediction matrix (ny*N rows by nu*M columns) at most this many
+#: entries (64 MB); beyond that the sparse form with OSQP (its cost grows with the horizon
+#: instead of the square of it).  A size rule of ours, from the benchmark in benchmarks/bench_mpc.py.
+CONDENSED_MAX_VARIABLES = 1000
+CONDENSED_MAX_ENTRIES = 8_000_000
+FALLBACKS = ("shift", "hold")
+_OSQP_OPTIONS = ("eps_abs", "eps_rel", "eps_prim_inf", "eps_dual_inf", "max_iter", "polishing",
+                 "polish_refine_iter", "warm_starting", "adaptive_rho", "adaptive_rho_interval",
+                 "adaptive_rho_tolerance", "adaptive_rho_fraction", "rho", "sigma", "alpha",
+                 "scaling", "time_limit", "check_termination", "scaled_termination", "delta",
+                 "verbose", "check_dualgap")
+
+
+def _err(key: str, expected: str, found: Any) -> SettingsError:
+    return SettingsError(f"PredictiveController: the '{key}' setting must be {expected}; got {found!r}.")
+
+
+def _number(key, v, *, low=None, low_open=False, allow_inf=False) -> float:
+    if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)):
+        raise _err(key, "a number", v)
+    f = float(v)
+    if math.isnan(f) or (math.isinf(f) and not allow_inf):
+        raise _err(key, "a finite number" if not allow_inf else "a number (not NaN)", v)
+    if low is not None and (f < low or (low_open and f == low)):
+        raise _err(key, f"a number {'>' if low_open else '>='} {low:g}", v)
+    return f
+
+
+def _int(key, v, low=1) -> int:
+    if isinstance(v, bool) or not isinstance(v, (int, np.integer)):
+        raise _err(key, f"an int >= {low}", v)
+    if v < low:
+        raise _err(key, f"an int >= {low}", v)
+    return int(v)
+
+
+def _bool(key, v) -> bool:
+    if not isinstance(v, (bool, np.bool_)):
+        raise _err(key, "true or false", v)
+    return bool(v)
+
+
+def resolve(ctrl) -> dict[str, Any]:
+    """Check every setting of *ctrl* against its model; return the resolved per-variable arrays.
+
+    Raises
+    ------
+    SettingsError
+        Naming the setting, what was expected and what was found.
+    """
+    m = ctrl.dmodel
+    check_model(m)
+    N = _int("horizon", ctrl.horizon)
+    M = N if ctrl.control_horizon is None else _int("control_horizon", ctrl.control_horizon)
+    if M > N:
+        raise _err("control_horizon", f"an int between 1 and the horizon ({N})", ctrl.control_horizon)
+    r: dict[str, Any] = {"N": N, "M": M}
+    cvs = per_var("cv", ctrl.cv, m.cv_names, CV_KEYS)
+    mvs = per_var("mv", ctrl.mv, m.mv_names, MV_KEYS)
+    dvs = per_var("dv", ctrl.dv, m.dv_names, DV_KEYS)
+    arr = lambda rows, key: np.array([row[key] for row in rows], float)  # noqa: E731
+    for i, (name, row) in enumerate(zip(m.cv_names, cvs)):
+        p = f"cv.{name}"
+        _number(f"{p}.weight", row["weight"], low=0)
+        _number(f"{p}.scale", row["scale"], low=0, low_open=True)
+        _number(f"{p}.low", row["low"], allow_inf=True)
+        _number(f"{p}.high", row["high"], allow_inf=True)
+        if row["low"] > row["high"]:
+            raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
+        _number(f"{p}.limit_penalty", row["limit_penalty"], low=0)
+        _number(f"{p}.limit_penalty_quadratic", row["limit_penalty_quadratic"], low=0)
+        _int(f"{p}.priority", row["priority"])
+        if row["disturbance"] not in DISTURBANCE_MODELS:
+            raise _err(f"{p}.disturbance", f"one of {DISTURBANCE_MODELS}", row["disturbance"])
+        _number(f"{p}.measurement_noise", row["measurement_noise"], low=0, low_open=True)
+        _number(f"{p}.disturbance_noise", row["disturbance_noise"], low=0, low_open=True)
+    for name, row in zip(m.mv_names, mvs):
+        p = f"mv.{name}"
+        _number(f"{p}.move_weight", row["move_weight"], low=0)
+        _number(f"{p}.preferred_weight", row["preferred_weight"], low=0)
+        if row["preferred_value"] is not None:
+            _number(f"{p}.preferred_value", row["preferred_value"])
+        _number(f"{p}.low", row["low"], allow_inf=True)
+        _number(f"{p}.high", row["high"], allow_inf=True)
+        if row["low"] > row["high"]:
+            raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
+        _number(f"{p}.max_move", row["max_move"], low=0, low_open=True, allow_inf=True)
+        _number(f"{p}.scale", row["scale"], low=0, low_open=True)
+    for name, row in zip(m.dv_names, dvs):
+        _bool(f"dv.{name}.feedforward", row["feedforward"])
+    _bool("terminal_cost", ctrl.terminal_cost)
+    _bool("steady_target", ctrl.steady_target)
+    _bool("fast_path", ctrl.fast_path)
+    if ctrl.solver not in SOLVERS:
+        raise _err("solver", f"one of {SOLVERS}", ctrl.solver)
+    kind = ctrl.solver
+    if kind == "auto":
+        nvar = m.nu * M
+        small = (nvar <= CONDENSED_MAX_VARIABLES
+                 and nvar * m.ny * N <= CONDENSED_MAX_ENTRIES)
+        kind = "daqp" if small else "osqp"
+    r["solver"] = kind
+    if ctrl.backup_solver == "none":          # the spelling a TOML file can give
+        ctrl.backup_solver = None
+    if ctrl.backup_solver is not None and ctrl.backup_solver not in BACKUP_SOLVERS:
+        raise _err("backup_solver", f"one of {BACKUP_SOLVERS} or 'none'", ctrl.backup_solver)
+    if ctrl.fallback not in FALLBACKS:
+        raise _err("fallback", f"one of {FALLBACKS}", ctrl.fallback)
+    if ctrl.terminal_cost and not ctrl.steady_target:
+        raise _err("terminal_cost", "false when steady_target is false (the terminal cost "
+                   "pulls the last state to the steady target)", ctrl.terminal_cost)
+    opts = {} if ctrl.solver_options is None else ctrl.solver_options
+    if not isinstance(opts, Mapping):
+        raise _err("solver_options", "a mapping of solver setting names to values", opts)
+    if kind == "osqp":
+        known = _OSQP_OPTIONS
+    elif kind == "daqp":
+        known = DAQP_OPTIONS
+    else:
+        import clarabel
+
+        known = tuple(k for k in dir(clarabel.DefaultSettings()) if not k.startswith("_"))
+    for k in opts:
+        if k not in known:
+            raise SettingsError(f"PredictiveController: unknown {kind} option "
+                                f"'solver_options.{k}'{suggest(k, known)}; known: "
+                                f"{sorted(known)}.")
+    _number("state_noise", ctrl.state_noise, low=0)
+    _int("history", ctrl.history)
+    _number("priority_ratio", ctrl.priority_ratio, low=1, low_open=True)
+    prio = arr(cvs, "priority")
+    pf = float(ctrl.priority_ratio) ** (prio.max() - prio)
+    r.update(
+        cv_weight=arr(cvs, "weight") / arr(cvs, "scale") ** 2 * pf,
+        cv_scale=arr(cvs, "scale"), cv_low=arr(cvs, "low"), cv_high=arr(cvs, "high"),
+        lim_lin=arr(cvs, "limit_penalty") / arr(cvs, "scale") * pf,
+        lim_quad=arr(cvs, "limit_penalty_quadratic") / arr(cvs, "scale") ** 2 * pf,
+        disturbance={n: row["disturbance"] for n, row in zip(m.cv_names, cvs)},
+        meas_noise={n: float(row["measurement_noise"]) for n, row in zip(m.cv_names, cvs)},
+        dist_noise={n: float(row["disturbance_noise"]) for n, row in zip(m.cv_names, cvs)},
+        move_weight=arr(mvs, "move_weight") / arr(mvs, "scale") ** 2,
+        preferred_weight=arr(mvs, "preferred_weight") / arr(mvs, "scale") ** 2,
+        mv_scale=arr(mvs, "scale"),
+        preferred_value=np.array([m.op.u[j] if row["preferred_value"] is None else float(row["preferred_value"])
+                             for j, row in enumerate(mvs)]),
+        mv_low=arr(mvs, "low"), mv_high=arr(mvs, "high"), max_move=arr(mvs, "max_move"),
+        feedforward=np.array([bool(row["feedforward"]) for row in dvs], bool),
+        solver_options=dict(opts),
+    )
+    ctrl._resolved = r
+    return r
+
+def per_var(role: str, given, names, keys: Mapping[str, Any]) -> list[dict[str, Any]]:
+    given = {} if given is None else given
+    if not isinstance(given, Mapping):
+        raise _err(role, f"a mapping of {role.upper()} name to a dict of settings", given)
+    for n, row in given.items():
+        if n not in names:
+            raise SettingsError(f"PredictiveController: '{role}' names an unknown {role.upper()} "
+                                f"'{n}'{suggest(n, list(names))}; the model's {role.upper()}s are "
+                                f"{list(names)}.")
+        if not isinstance(row, Mapping):
+            raise _err(f"{role}.{n}", "a mapping of setting names to values", row)
+        for k in row:
+            if k in _RENAMED_KEYS:
+                raise SettingsError(f"PredictiveController: the setting '{role}.{n}.{k}' is now "
+                                    f"called '{_RENAMED_KEYS[k]}'; rename the key "
+                                    f"'{role}.{n}.{k}' to '{role}.{n}.{_RENAMED_KEYS[k]}'.")
+            if k not in keys:
+                raise SettingsError(f"PredictiveController: unknown setting '{role}.{n}.{k}'"
+                                    f"{suggest(k, list(keys))}; known: {sorted(keys)}.")
+    out = []
+    for n in names:
+        row = dict(keys)
+        row.update(given.get(n, {}))
+        out.append(row)
+    return out
+
+def check_model(m) -> None:
+    need = ("A", "B", "Bd", "C", "D", "Dd", "Ts", "op")
+    for k in need:
+        if not hasattr(m, k):
+            raise SettingsError(f"PredictiveController: dmodel must be a DiscreteLinearModel "
+                                f"(missing '{k}'); got {type(m).__name__}.")
+    A = np.asarray(m.A, float)
+    if A.ndim != 2 or A.shape[0] != A.shape[1]:
+        raise SettingsError(f"PredictiveController: dmodel.A must be square; got shape {A.shape}.")
+    nx = A.shape[0]
+    nu, nd, ny = len(m.op.mv_names), len(m.op.dv_names), len(m.op.cv_names)
+    for k, shape in (("B", (nx, nu)), ("Bd", (nx, nd)), ("C", (ny, nx)), ("D", (ny, nu)),
+                     ("Dd", (ny, nd))):
+        got = np.shape(getattr(m, k))
+        if got != shape:
+            raise SettingsError(f"PredictiveController: dmodel.{k} must have shape {shape} "
+                                f"(states={nx}, MVs={nu}, DVs={nd}, CVs={ny}); got {got}.")
+        if not np.all(np.isfinite(np.asarray(getattr(m, k), float))):
+            raise SettingsError(f"PredictiveController: dmodel.{k} has non-finite entries.")
+    if not np.all(np.isfinite(A)):
+        raise SettingsError("PredictiveController: dmodel.A has non-finite entries.")
+    for k, n in (("u", nu), ("d", nd), ("y", ny)):
+        if np.shape(getattr(m.op, k)) != (n,):
+            raise SettingsError(f"PredictiveController: dmodel.op.{k} must have shape ({n},); "
+                                f"got {np.shape(getattr(m.op, k))}.")
+    if not (np.isfinite(m.Ts) and m.Ts > 0):
+        raise SettingsError(f"PredictiveController: dmodel.Ts must be > 0; got {m.Ts!r}.")
