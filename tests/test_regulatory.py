@@ -55,10 +55,10 @@ def test_dynamic_feedforward_design_rule_and_effect():
     # the FOPDT design rule (Seborg, Edgar & Mellichamp, feedforward chapter; from memory):
     # gain -Kd/Kp, lead tau_p, lag tau_d, dead time max(0, theta_d - theta_p)
     f = design_feedforward(ProcessFit.fopdt(2.0, 20.0, 3.0), ProcessFit.fopdt(1.5, 40.0, 8.0),
-                           cv="y", dv="d")
+                           cv="y", source="d")
     assert (f.gain, f.lead, f.lag, f.dead_time) == (pytest.approx(-0.75), 20.0, 40.0, 5.0)
     f2 = design_feedforward(ProcessFit.fopdt(2.0, 20.0, 9.0), ProcessFit.fopdt(1.5, 40.0, 8.0),
-                            cv="y", dv="d")
+                            cv="y", source="d")
     assert f2.dead_time == 0.0
     # with the lead-lag the cancellation is exact for this plant (no dead times): the
     # disturbance barely moves y, far less than with the static gain alone
