@@ -250,3 +250,67 @@ def test_structures_refuse_bad_wiring():
         Feedforward("y1", "d", 1.0, lead=3.0)
     with pytest.raises(mp.SettingsError, match="is not a DV"):
         RegulatoryController.for_model(m, loops=[a], feedforward=[Feedforward("y1", "d", 1.0)])
+
+
+# ------------------------------------------------------------------------------ from settings
+def test_cascade_from_settings_tunes_inner_first_then_outer_on_the_closed_inner_loop():
+    # inner y_inner = 2/(5 s + 1) u; outer y = 1/(60 s + 1) y_inner.  The closed inner loop (PI,
+    # integral action) has unit steady-state gain, so the step test of the closed inner loop sees
+    # the outer process gain 1 (closed form); the outer loop's SIMC gain then follows from it
+    m = cascade_plant()
+    op = op0(m)
+    ctl = mp.pid_from_settings(m, op, 0.5, {"cascade": {"y": {"inner": "y_inner", "mv": "u"}},
+                                            "tau_c": {"y_inner": 2.0, "y": 20.0}})
+    d = ctl.describe()
+    fit = d["tuning"]["fits"]["y<-y_inner (closed inner loop)"]
+    assert fit["gain"] == pytest.approx(1.0, rel=0.02)
+    (cas,) = ctl.cascades
+    # inner SIMC on the MV step test: Kc = tau/(k (tau_c + theta)), theta ~ Ts/2 (Skogestad 2003)
+    assert cas.inner.gain == pytest.approx(5.0 / (2.0 * (2.0 + 0.25)), rel=0.03)
+    assert cas.outer.mv == "y_inner" and "cascade y -> y_inner -> u" in d["structure"]
+    tr = simulate(m, ctl, op=op, Ts=0.5, duration=400.0,
+                  setpoints={"y": {"kind": "step", "at": 5.0, "size": 1.0}})
+    assert tr.series("y", "y")[-1] == pytest.approx(1.0, abs=1e-3)
+
+
+def test_override_and_split_range_from_settings():
+    m = selector_plant()
+    op = op0(m)
+    ctl = mp.pid_from_settings(m, op, 0.5, {"override": {"u": {"select": "min", "loops": [
+        {"cv": "y1"}, {"cv": "y2", "reference": "high"}]}}})
+    (s,) = ctl.selectors
+    assert s.references == ("setpoint", "high") and s.select == "min"
+    m2 = split_plant()
+    ctl2 = mp.pid_from_settings(m2, op0(m2), 0.5, {"split_range": {"y": {"valves": [
+        {"mv": "cool", "start": 0, "end": 50, "at_start": 1.0, "at_end": 0.0},
+        {"mv": "heat", "start": 50, "end": 100}]}}})
+    (sr,) = ctl2.split_ranges
+    assert [(v.mv, v.at_start, v.at_end) for v in sr.valves] == [("cool", 1.0, 0.0),
+                                                                 ("heat", 0.0, 1.0)]
+    # tuned on the first valve (gain -10 per unit cool), converted to % of output: slope -1/50
+    assert sr.loop.gain > 0
+
+
+@pytest.mark.parametrize("settings, fragment", [
+    ({"ratio": {"y1": {"mv": "u"}}}, "pid.ratio.y1: needs 'wild'"),
+    ({"ratio": {"y1": {"mv": "u", "wild": "nothing"}}}, "pid.ratio.y1.wild: must be the name"),
+    ({"feedforward": {"y1": {"dv": "d", "mv": "u"}}}, "pid.feedforward.y1: give exactly one source"),
+    ({"feedforward": {"y1": {"mv": "u", "lead": 3.0}}}, "'gain' must be too"),
+    ({"override": {"u": {"select": "lowest", "loops": [{"cv": "y1"}, {"cv": "y2"}]}}},
+     "pid.override.u.select: unknown select 'lowest'"),
+    ({"override": {"u": {"select": "min", "loops": [{"cv": "y1"}]}}},
+     "pid.override.u.loops: expected a list of at least two"),
+    ({"override": {"u": {"select": "min", "loops": [{"cv": "y1"}, {"cv": "y2", "reference": "top"}]}}},
+     "pid.override.u.loops[1].reference: unknown reference 'top'"),
+    ({"split_range": {"y1": {"valves": [{"mv": "u", "start": 60, "end": 40}]}}},
+     "pid.split_range.y1.valves[0]: 'end' must be above 'start'"),
+    ({"split_range": {"y1": {"valves": [{"mv": "u", "start": 0, "end": 150}]}}},
+     "'end' must be <= 100"),
+    ({"cascade": {"y1": {"inner": "y1", "mv": "u"}}}, "pid.cascade.y1.inner: must be the name"),
+    ({"cascade": {"y9": {"inner": "y2", "mv": "u"}}}, "pid.cascade: 'y9' is not a CV"),
+])
+def test_structure_settings_are_checked_with_key_paths(settings, fragment):
+    m = selector_plant()
+    with pytest.raises(mp.SettingsError) as ei:
+        mp.pid_from_settings(m, op0(m), 0.5, settings)
+    assert fragment in str(ei.value)
