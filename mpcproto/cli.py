@@ -391,6 +391,12 @@ def _cmd_run(args: argparse.Namespace) -> int:
         print(f"mpcproto run: error: {summary['message']}", file=sys.stderr)
         return EXIT_BAD_INPUT
     for label, res in summary["controllers"].items():
+        inp = res.get("inputs") or {}
+        print(f"{label:<10s} had: {'; '.join(inp.get('structure') or ['?'])}; measured DVs used: "
+              f"{', '.join(inp.get('measured_dvs_used') or []) or 'none'}")
+    for note in summary.get("fairness") or []:
+        print(f"note: {note}")
+    for label, res in summary["controllers"].items():
         for cr in res["criteria"]:
             _print_verdict(cr, label)
     for cr in summary.get("comparisons", []):

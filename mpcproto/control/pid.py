@@ -252,6 +252,12 @@ class PIDController:
         self._cmd_prev = self._u0.tolist()
         self._ua_prev = [math.nan] * len(self.mv_names)
 
+    def describe(self) -> dict[str, Any]:
+        """What the controller has: structure, measurements used and tuning (JSON-able)."""
+        return {"kind": "pid", "structure": [f"{len(self.loops)} single loop(s)"],
+                "measured_cvs": sorted({lp.cv for lp in self.loops}), "measured_dvs_used": [],
+                "mv_flows_used": [], "tuning": {"loops": [lp.as_dict() for lp in self.loops]}}
+
     @property
     def integrals(self) -> np.ndarray:
         """Current integral terms, one per loop (for tests and diagnostics)."""
