@@ -170,6 +170,17 @@ class _LoopState:
 
 
 
+def readback_list(u_applied: Any, n: int, who: str) -> list[float] | None:
+    """The MV readback of a step call as a list of *n* floats (None: no readback)."""
+    if u_applied is None:
+        return None
+    ua = np.asarray(u_applied, float).reshape(-1)
+    if ua.shape != (n,):
+        raise SettingsError(f"{who}.step(): u_applied must have {n} entries (MV order); got "
+                            f"shape {np.shape(u_applied)}.")
+    return ua.tolist()
+
+
 def pid_output(lp: PIDLoop, st: _LoopState, t: float, y: float, r: float,
                u_read: float = math.nan, bias: float = 0.0) -> float:
     """One sample of the PID algorithm of the module docstring for loop *lp* with state *st*:
@@ -270,14 +281,7 @@ class PIDController:
         sample (readback, NaN = unknown), used by the anti-windup tracking."""
         if not self._state:
             raise SettingsError(f"PIDController '{self.name}': call reset(op) before step().")
-        ua = None
-        if u_applied is not None:
-            ua = np.asarray(u_applied, float).reshape(-1)
-            if ua.shape != (len(self.mv_names),):
-                raise SettingsError(f"PIDController '{self.name}'.step(): u_applied must have "
-                                    f"{len(self.mv_names)} entries (MV order); got shape "
-                                    f"{np.shape(u_applied)}.")
-            ua = ua.tolist()
+        ua = readback_list(u_applied, len(self.mv_names), f"PIDController '{self.name}'")
         u_ask = self._u0.copy()           # MVs without a loop stay at the operating point
         held = 0
         saturated = 0

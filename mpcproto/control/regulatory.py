@@ -72,7 +72,7 @@ from ..model import suggest
 from ..operating import OperatingPoint
 from .base import STATUS_HOLD, STATUS_OK, ControlOutput, Measurement, Targets
 from .limits import project_value
-from .pid import PIDLoop, _LoopState, pid_output
+from .pid import PIDLoop, _LoopState, pid_output, readback_list
 
 __all__ = ["Feedforward", "Ratio", "Cascade", "Selector", "SplitRange", "Valve",
            "RegulatoryController", "design_feedforward", "split_range_value", "REFERENCES"]
@@ -508,14 +508,7 @@ class RegulatoryController:
         """One sample of every structure (module docstring); ``u_applied``: MV readback."""
         if not self._started:
             raise SettingsError(f"RegulatoryController '{self.name}': call reset(op) before step().")
-        ua = None
-        if u_applied is not None:
-            ua = np.asarray(u_applied, float).reshape(-1)
-            if ua.shape != (len(self.mv_names),):
-                raise SettingsError(f"RegulatoryController '{self.name}'.step(): u_applied must "
-                                    f"have {len(self.mv_names)} entries (MV order); got shape "
-                                    f"{np.shape(u_applied)}.")
-            ua = ua.tolist()
+        ua = readback_list(u_applied, len(self.mv_names), f"RegulatoryController '{self.name}'")
         ys, sps = meas.y.tolist(), targets.setpoint.tolist()
         lows, highs = targets.cv_low.tolist(), targets.cv_high.tolist()
         fresh = meas.fresh.tolist()
@@ -662,6 +655,18 @@ def _key_cv(c: Any, where: str, cvs: Sequence[str]) -> str:
     return c
 
 
+def _cv_tables(structures: Mapping[str, Any], key: str, what: str, cvs: Sequence[str],
+               inner: str, allowed: Sequence[str]):
+    """``(cv, key path, table)`` for each entry of a structure keyed by CV names, checked."""
+    w0 = f"{what}.{key}"
+    for c, spec in _table(structures[key], w0, f"a table {{cv = {inner}}}").items():
+        _key_cv(c, w0, cvs)
+        w = f"{w0}.{c}"
+        spec = _table(spec, w, f"a table {inner}")
+        refuse_unknown_keys(spec, allowed, what=w)
+        yield c, w, spec
+
+
 def check_structure_settings(model: Any, structures: Mapping[str, Any], *, what: str) -> None:
     """Types, names and ranges of the structure keys of the PID settings (``feedforward``,
     ``ratio``, ``cascade``, ``override``, ``split_range``), before any step test; a wrong one
@@ -701,24 +706,13 @@ def check_structure_settings(model: Any, structures: Mapping[str, Any], *, what:
                     raise SettingsError(f"{w}: a 'lead' needs a 'lag' > 0 (a pure lead is not "
                                         f"realizable); found lead = {spec['lead']!r} and no lag.")
     if "ratio" in structures:
-        w0 = f"{what}.ratio"
-        for c, spec in _table(structures["ratio"], w0,
-                              "a table {cv = {mv = ..., wild = ...}} (the trim loop's CV)").items():
-            _key_cv(c, w0, cvs)
-            w = f"{w0}.{c}"
-            spec = _table(spec, w, "a table {mv = ..., wild = ...}")
-            refuse_unknown_keys(spec, _RATIO_KEYS, what=w)
+        for c, w, spec in _cv_tables(structures, "ratio", what, cvs, "{mv = ..., wild = ...}",
+                                     _RATIO_KEYS):
             m = _string(spec, "mv", w, mvs, "MV")
-            wild = _string(spec, "wild", w, [x for x in mvs + mdv if x != m], "MV or measured DV")
-            del wild
+            _string(spec, "wild", w, [x for x in mvs + mdv if x != m], "MV or measured DV")
     if "cascade" in structures:
-        w0 = f"{what}.cascade"
-        for c, spec in _table(structures["cascade"], w0,
-                              "a table {cv = {inner = ..., mv = ...}} (the outer loop's CV)").items():
-            _key_cv(c, w0, cvs)
-            w = f"{w0}.{c}"
-            spec = _table(spec, w, "a table {inner = <secondary CV>, mv = ...}")
-            refuse_unknown_keys(spec, _CASCADE_KEYS, what=w)
+        for c, w, spec in _cv_tables(structures, "cascade", what, cvs,
+                                     "{inner = <secondary CV>, mv = ...}", _CASCADE_KEYS):
             _string(spec, "inner", w, [x for x in cvs if x != c], "CV (other than the outer one)")
             _string(spec, "mv", w, mvs, "MV")
     if "override" in structures:
@@ -746,14 +740,9 @@ def check_structure_settings(model: Any, structures: Mapping[str, Any], *, what:
                     choice(lp["reference"], REFERENCES, what=f"{wl}.reference", key="reference",
                            noun="reference")
     if "split_range" in structures:
-        w0 = f"{what}.split_range"
         lo, hi = model.bounds("mv")
-        for c, spec in _table(structures["split_range"], w0,
-                              "a table {cv = {valves = [...]}}").items():
-            _key_cv(c, w0, cvs)
-            w = f"{w0}.{c}"
-            spec = _table(spec, w, "a table {valves = [{mv, start, end}, ...]}")
-            refuse_unknown_keys(spec, _SPLIT_KEYS, what=w)
+        for c, w, spec in _cv_tables(structures, "split_range", what, cvs,
+                                     "{valves = [{mv, start, end}, ...]}", _SPLIT_KEYS):
             vs = spec.get("valves")
             if not isinstance(vs, (list, tuple)) or not vs:
                 raise SettingsError(f"{w}.valves: expected a non-empty list of valve tables "

@@ -708,6 +708,10 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
                        its cycle): a number or a table per CV; added, with half a sample for the
                        hold, to the fitted dead time before the rule is applied
     ``setpoint_weight``, ``derivative_filter``, ``on_fresh``: applied to every tuned loop
+    ``feedforward``, ``ratio``, ``cascade``, ``override``, ``split_range``: the regulatory
+                       structures of :mod:`mpcproto.control.regulatory` (keys in
+                       docs/scenario-format.md); with any of them the result is a
+                       :class:`~mpcproto.control.regulatory.RegulatoryController`
 
     ``tau_c`` belongs to SIMC, ``lam`` to IMC, ``mode`` to IMC and Ziegler-Nichols: a key the
     chosen rule does not use is refused.  Every value is checked (type and range) before any step
