@@ -667,6 +667,20 @@ def _cv_tables(structures: Mapping[str, Any], key: str, what: str, cvs: Sequence
         yield c, w, spec
 
 
+def _table_list(spec: Mapping[str, Any], key: str, where: str, least: int, items: str,
+                allowed: Sequence[str]):
+    """``(key path, table)`` for each table of the list ``spec[key]`` (at least *least*)."""
+    lst = spec.get(key)
+    if not isinstance(lst, (list, tuple)) or len(lst) < least:
+        raise SettingsError(f"{where}.{key}: expected a list of at least "
+                            f"{'two' if least == 2 else 'one'} {items}; found {shown(lst)}.")
+    for i, item in enumerate(lst):
+        wi = f"{where}.{key}[{i}]"
+        item = _table(item, wi, f"a table ({items})")
+        refuse_unknown_keys(item, allowed, what=wi)
+        yield wi, item
+
+
 def check_structure_settings(model: Any, structures: Mapping[str, Any], *, what: str) -> None:
     """Types, names and ranges of the structure keys of the PID settings (``feedforward``,
     ``ratio``, ``cascade``, ``override``, ``split_range``), before any step test; a wrong one
@@ -727,14 +741,8 @@ def check_structure_settings(model: Any, structures: Mapping[str, Any], *, what:
             spec = _table(spec, w, "a table {select = 'min' or 'max', loops = [{cv = ...}, ...]}")
             refuse_unknown_keys(spec, _OVERRIDE_KEYS, what=w)
             choice(spec.get("select"), SELECTS, what=f"{w}.select", key="select", noun="select")
-            lps = spec.get("loops")
-            if not isinstance(lps, (list, tuple)) or len(lps) < 2:
-                raise SettingsError(f"{w}.loops: expected a list of at least two loop tables "
-                                    f"{{cv = ..., reference = ...}}; found {shown(lps)}.")
-            for i, lp in enumerate(lps):
-                wl = f"{w}.loops[{i}]"
-                lp = _table(lp, wl, "a table {cv = ..., reference = 'setpoint'/'high'/'low'}")
-                refuse_unknown_keys(lp, _OVERRIDE_LOOP_KEYS, what=wl)
+            for wl, lp in _table_list(spec, "loops", w, 2, "loop tables {cv = ..., reference = "
+                                      "'setpoint'/'high'/'low'}", _OVERRIDE_LOOP_KEYS):
                 _string(lp, "cv", wl, cvs, "CV")
                 if "reference" in lp:
                     choice(lp["reference"], REFERENCES, what=f"{wl}.reference", key="reference",
@@ -743,14 +751,8 @@ def check_structure_settings(model: Any, structures: Mapping[str, Any], *, what:
         lo, hi = model.bounds("mv")
         for c, w, spec in _cv_tables(structures, "split_range", what, cvs,
                                      "{valves = [{mv, start, end}, ...]}", _SPLIT_KEYS):
-            vs = spec.get("valves")
-            if not isinstance(vs, (list, tuple)) or not vs:
-                raise SettingsError(f"{w}.valves: expected a non-empty list of valve tables "
-                                    f"{{mv, start, end, at_start, at_end}}; found {shown(vs)}.")
-            for i, v in enumerate(vs):
-                wv = f"{w}.valves[{i}]"
-                v = _table(v, wv, "a table {mv, start, end, at_start, at_end}")
-                refuse_unknown_keys(v, _VALVE_KEYS, what=wv)
+            for wv, v in _table_list(spec, "valves", w, 1, "valve tables {mv, start, end, "
+                                     "at_start, at_end}", _VALVE_KEYS):
                 m = _string(v, "mv", wv, mvs, "MV")
                 for k in ("start", "end"):
                     if k not in v:
