@@ -314,3 +314,18 @@ def test_structure_settings_are_checked_with_key_paths(settings, fragment):
     with pytest.raises(mp.SettingsError) as ei:
         mp.pid_from_settings(m, op0(m), 0.5, settings)
     assert fragment in str(ei.value)
+
+
+def test_a_reused_controller_gives_the_same_run():
+    # reset() restarts every loop, filter and dead-time buffer: the scenario runner caches
+    # controllers between cases, so a second run must repeat the first to the last bit
+    m = ff_plant()
+    op = op0(m)
+    ctl = RegulatoryController.for_model(
+        m, loops=[PIDLoop("y", "u", gain=0.4, integral_time=20.0)],
+        feedforward=[Feedforward("y", "d", -0.75, lead=20.0, lag=40.0, dead_time=3.0)])
+    kw = dict(op=op, Ts=1.0, duration=200.0, rng=3, instruments={"y": {"noise_std": 0.01}},
+              dvs={"d": {"kind": "step", "at": 10.0, "size": 1.0}})
+    a, b = simulate(m, ctl, **kw), simulate(m, ctl, **kw)
+    assert np.array_equal(a.series("u", "u"), b.series("u", "u"))
+    assert np.std(np.diff(a.series("u", "u"))) > 0
