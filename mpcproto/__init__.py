@@ -29,7 +29,7 @@ Closed-loop simulation (layer 4)
     instrument_from_spec, actuator_from_spec, fault_from_spec
 Trajectory and analysis (layer 5)
     Trajectory, cv_performance, mv_usage, kpis, violations, mv_violations, controller_health,
-    summarize, compare, Comparison, describe_controller, fairness_notes
+    summarize, compare, Comparison, describe_controller, fairness_notes, tuning_text
 Scenario files and studies (layer 6)
     scenario, Scenario, load_scenario, parse_scenario, check_scenario, Case, expand, run_case,
     run_scenario, linear_report
@@ -63,7 +63,7 @@ from .control.pid import PIDLoop, PIDController, pid_loop_from_spec, pid_from_se
 from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating,
                              fit_step, ultimate_point, simc, imc, ziegler_nichols, tune_loop,
                              tune_pid_loops)
-from .compare import compare, Comparison, describe_controller, fairness_notes
+from .compare import compare, Comparison, describe_controller, fairness_notes, tuning_text
 from .control.regulatory import (RegulatoryController, Feedforward, Ratio, Cascade, Selector,
                                  SplitRange, Valve, design_feedforward)
 from .design import (GainAnalysis, gain_matrix_analysis, niederlinski_index, rga_at_frequency,
@@ -106,7 +106,7 @@ __all__ = [
     "PIDLoop", "PIDController", "pid_loop_from_spec", "pid_from_settings", "suggest_pairing",
     "ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating", "fit_step",
     "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",
-    "compare", "Comparison", "describe_controller", "fairness_notes",
+    "compare", "Comparison", "describe_controller", "fairness_notes", "tuning_text",
     "RegulatoryController", "Feedforward", "Ratio", "Cascade", "Selector", "SplitRange", "Valve",
     "design_feedforward",
     "GainAnalysis", "gain_matrix_analysis", "niederlinski_index", "rga_at_frequency",

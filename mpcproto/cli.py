@@ -376,6 +376,7 @@ def _print_verdict(cr: dict[str, Any], label: str) -> None:
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
+    from .compare import tuning_text
     from .scenario import load_scenario, run_scenario
 
     scn = load_scenario(args.scenario)
@@ -394,6 +395,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
         inp = res.get("inputs") or {}
         print(f"{label:<10s} had: {'; '.join(inp.get('structure') or ['?'])}; measured DVs used: "
               f"{', '.join(inp.get('measured_dvs_used') or []) or 'none'}")
+        print(f"{'':<10s} tuning: {tuning_text(inp)}")
     for note in summary.get("fairness") or []:
         print(f"note: {note}")
     for label, res in summary["controllers"].items():

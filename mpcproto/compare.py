@@ -25,7 +25,8 @@ from .analysis import summarize
 from .exceptions import SettingsError
 from .trajectory import Trajectory
 
-__all__ = ["compare", "Comparison", "scorecard", "describe_controller", "fairness_notes"]
+__all__ = ["compare", "Comparison", "scorecard", "describe_controller", "fairness_notes",
+           "tuning_text"]
 
 _CV_KPIS = ("iae", "ise", "itae", "settling_time", "overshoot", "max_abs_error")
 _MV_KPIS = ("total_travel", "time_at_limit")
@@ -96,6 +97,35 @@ def describe_controller(controller: Any, model: Any) -> dict[str, Any]:
                            "control_horizon": getattr(controller, "control_horizon", None)}}
     return {"kind": "unknown", "structure": [type(controller).__name__], "measured_cvs": [],
             "measured_dvs_used": [], "mv_flows_used": [], "tuning": {}}
+
+
+def tuning_text(inputs: Mapping[str, Any]) -> str:
+    """The tuning of a :func:`describe_controller` answer in one line: ``cv<-mv K=.. Ti=..`` per
+    loop (ratio trims, cascade loops, selector loops and split ranges too), feedforward gains and
+    lead-lags, or the predictive controller's horizons."""
+    t = inputs.get("tuning") or {}
+
+    def loop(d: Mapping[str, Any], tag: str = "") -> str:
+        ti = d.get("integral_time")
+        td = d.get("derivative_time") or 0.0
+        return (f"{d.get('cv')}<-{d.get('mv')}{tag} K={_fmt(d.get('gain'))}"
+                f"{' Ti=' + _fmt(ti) if ti is not None else ''}{' Td=' + _fmt(td) if td else ''}")
+
+    parts = [loop(d) for d in t.get("loops") or []]
+    parts += [loop(r["trim_loop"], " (ratio trim)") for r in t.get("ratios") or []]
+    for c in t.get("cascades") or []:
+        parts += [loop(c["outer_loop"], " (outer)"), loop(c["inner_loop"], " (inner)")]
+    for s in t.get("selectors") or []:
+        parts += [loop(d, f" ({s.get('select')} select, {d.get('reference')})") for d in s["loops"]]
+    parts += [loop(s["loop"], " (split range, %)") for s in t.get("split_ranges") or []]
+    parts += [f"feedforward {f.get('source')}->{f.get('cv')} gain={_fmt(f.get('gain'))}"
+              + (f" lead={_fmt(f.get('lead'))} lag={_fmt(f.get('lag'))}" if f.get("lag") else "")
+              + (f" dead time={_fmt(f.get('dead_time'))}" if f.get("dead_time") else "")
+              for f in t.get("feedforward") or []]
+    if "horizon" in t:
+        parts.append(f"horizon={_fmt(t.get('horizon'))} control horizon="
+                     f"{_fmt(t.get('control_horizon') or t.get('horizon'))}")
+    return "; ".join(parts) or "-"
 
 
 def fairness_notes(inputs: Mapping[str, Mapping[str, Any]]) -> list[str]:

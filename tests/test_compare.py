@@ -110,6 +110,10 @@ def test_mpc_and_pid_on_the_same_upsets():
     assert "measured DVs used: draw_off" in text and "pid: 3 single loop(s)" in text
     assert "not like for like: mpc used the measured DV 'draw_off'; pid did not." in text
     assert cmp_.to_dict()["inputs"]["pid"]["measured_dvs_used"] == []
+    # ... and which tuning: every loop's gain and integral time as the loops hold them
+    for lp in pid.loops:
+        assert f"{lp.cv}<-{lp.mv} K={lp.gain:.4g} Ti={lp.integral_time:.4g}" in mp.tuning_text(
+            cmp_.meta["inputs"]["pid"])
 
 
 def test_fairness_notes_only_where_the_dvs_used_differ():
@@ -146,3 +150,4 @@ def test_demo_summary_records_what_each_controller_had(tmp_path):
     assert "measured DVs used" in text
     assert "ratio caustic_flow/water_flow trimmed by concentration" in text
     assert "not like for like: mpc, pid used the measured DV" in text
+    assert "concentration&lt;-caustic_flow (ratio trim) K=" in text and "horizon=40" in text

@@ -433,11 +433,14 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
     had = [(ctl, (res or {}).get("inputs")) for ctl, res in ctls.items()
            if isinstance((res or {}).get("inputs"), Mapping)]
     if had:
+        from ..compare import tuning_text
+
         rows = ['<table style="margin-top:6px"><tr><th>controller</th><th>structure</th>'
-                '<th>measured DVs used</th></tr>']
+                '<th>measured DVs used</th><th>tuning</th></tr>']
         for ctl, inp in had:
             rows.append(f"<tr><td>{_e(ctl)}</td><td>{_e('; '.join(inp.get('structure') or []))}</td>"
-                        f"<td>{_e(', '.join(inp.get('measured_dvs_used') or []) or 'none')}</td></tr>")
+                        f"<td>{_e(', '.join(inp.get('measured_dvs_used') or []) or 'none')}</td>"
+                        f'<td class="small">{_e(tuning_text(inp))}</td></tr>')
         rows.append("</table>")
         out.append("".join(rows))
     for note in rec.get("fairness") or []:
