@@ -21,7 +21,7 @@ PID loops and tuning (layer 3)
     imc, ziegler_nichols, tune_loop, tune_pid_loops
 Regulatory structures of the PID baseline (layer 3)
     RegulatoryController, Feedforward, Ratio, Cascade, Selector, SplitRange, Valve,
-    design_feedforward
+    design_feedforward, OverLoops, identify_over_loops
 Predictive control (layer 3)
     PredictiveController, DisturbanceEstimator, SteadyTarget
 Closed-loop simulation (layer 4)
@@ -66,6 +66,7 @@ from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sop
 from .compare import compare, Comparison, describe_controller, fairness_notes, tuning_text
 from .control.regulatory import (RegulatoryController, Feedforward, Ratio, Cascade, Selector,
                                  SplitRange, Valve, design_feedforward)
+from .control.over_loops import OverLoops, identify_over_loops
 from .design import (GainAnalysis, gain_matrix_analysis, niederlinski_index, rga_at_frequency,
                      sampling_advice)
 from .continuation import SteadyStateLocus, steady_state_locus
@@ -108,7 +109,7 @@ __all__ = [
     "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",
     "compare", "Comparison", "describe_controller", "fairness_notes", "tuning_text",
     "RegulatoryController", "Feedforward", "Ratio", "Cascade", "Selector", "SplitRange", "Valve",
-    "design_feedforward",
+    "design_feedforward", "OverLoops", "identify_over_loops",
     "GainAnalysis", "gain_matrix_analysis", "niederlinski_index", "rga_at_frequency",
     "sampling_advice", "SteadyStateLocus", "steady_state_locus", "LoopMargins", "loop_margins",
     "half_rule",
