@@ -19,6 +19,9 @@ PID loops and tuning (layer 3)
     PIDLoop, PIDController, pid_loop_from_spec, pid_from_settings, suggest_pairing, ProcessFit,
     StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating, fit_step, ultimate_point, simc,
     imc, ziegler_nichols, tune_loop, tune_pid_loops
+Regulatory structures of the PID baseline (layer 3)
+    RegulatoryController, Feedforward, Ratio, Cascade, Selector, SplitRange, Valve,
+    design_feedforward, OverLoops, identify_over_loops
 Predictive control (layer 3)
     PredictiveController, DisturbanceEstimator, SteadyTarget
 Closed-loop simulation (layer 4)
@@ -26,7 +29,7 @@ Closed-loop simulation (layer 4)
     instrument_from_spec, actuator_from_spec, fault_from_spec
 Trajectory and analysis (layer 5)
     Trajectory, cv_performance, mv_usage, kpis, violations, mv_violations, controller_health,
-    summarize, compare, Comparison
+    summarize, compare, Comparison, describe_controller, fairness_notes, tuning_text
 Scenario files and studies (layer 6)
     scenario, Scenario, load_scenario, parse_scenario, check_scenario, Case, expand, run_case,
     run_scenario, linear_report
@@ -60,7 +63,10 @@ from .control.pid import PIDLoop, PIDController, pid_loop_from_spec, suggest_pai
 from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating,
                              fit_step, ultimate_point, simc, imc, ziegler_nichols, tune_loop,
                              tune_pid_loops, pid_from_settings)
-from .compare import compare, Comparison
+from .compare import compare, Comparison, describe_controller, fairness_notes, tuning_text
+from .control.regulatory import (RegulatoryController, Feedforward, Ratio, Cascade, Selector,
+                                 SplitRange, Valve, design_feedforward)
+from .control.over_loops import OverLoops, identify_over_loops
 from .design import (GainAnalysis, gain_matrix_analysis, niederlinski_index, rga_at_frequency,
                      sampling_advice)
 from .continuation import SteadyStateLocus, steady_state_locus
@@ -101,7 +107,9 @@ __all__ = [
     "PIDLoop", "PIDController", "pid_loop_from_spec", "pid_from_settings", "suggest_pairing",
     "ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating", "fit_step",
     "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",
-    "compare", "Comparison",
+    "compare", "Comparison", "describe_controller", "fairness_notes", "tuning_text",
+    "RegulatoryController", "Feedforward", "Ratio", "Cascade", "Selector", "SplitRange", "Valve",
+    "design_feedforward", "OverLoops", "identify_over_loops",
     "GainAnalysis", "gain_matrix_analysis", "niederlinski_index", "rga_at_frequency",
     "sampling_advice", "SteadyStateLocus", "steady_state_locus", "LoopMargins", "loop_margins",
     "half_rule",

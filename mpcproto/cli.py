@@ -378,6 +378,7 @@ def _print_verdict(cr: dict[str, Any], label: str) -> None:
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
+    from .compare import tuning_text
     from .scenario import load_scenario, run_scenario
 
     scn = load_scenario(args.scenario)
@@ -392,6 +393,13 @@ def _cmd_run(args: argparse.Namespace) -> int:
             print(summary["error_detail"].rstrip(), file=sys.stderr)
         print(f"mpcproto run: error: {summary['message']}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    for label, res in summary["controllers"].items():
+        inp = res.get("inputs") or {}
+        print(f"{label:<10s} had: {'; '.join(inp.get('structure') or ['?'])}; measured DVs used: "
+              f"{', '.join(inp.get('measured_dvs_used') or []) or 'none'}")
+        print(f"{'':<10s} tuning: {tuning_text(inp)}")
+    for note in summary.get("fairness") or []:
+        print(f"note: {note}")
     for label, res in summary["controllers"].items():
         for cr in res["criteria"]:
             _print_verdict(cr, label)

@@ -25,7 +25,8 @@ from .analysis import summarize
 from .exceptions import SettingsError
 from .trajectory import Trajectory
 
-__all__ = ["compare", "Comparison", "scorecard"]
+__all__ = ["compare", "Comparison", "scorecard", "describe_controller", "fairness_notes",
+           "tuning_text"]
 
 _CV_KPIS = ("iae", "ise", "itae", "settling_time", "overshoot", "max_abs_error")
 _MV_KPIS = ("total_travel", "time_at_limit")
@@ -67,6 +68,79 @@ def scorecard(summaries: Mapping[str, Mapping[str, Any]]) -> list[dict[str, Any]
     rows.append({"group": "run", "variable": "", "metric": "status",
                  **{lb: summaries[lb].get("run", {}).get("status") for lb in labels}})
     return rows
+
+
+def describe_controller(controller: Any, model: Any) -> dict[str, Any]:
+    """What a controller had in a comparison (JSON-able): ``kind``, ``structure`` (lines of
+    text), ``measured_cvs``, ``measured_dvs_used`` (the measured DVs it acts on: feedforward,
+    ratio), ``mv_flows_used`` (other MVs' flows it reads) and ``tuning``.
+
+    A controller with a ``describe()`` method answers itself (the PID controllers); for the
+    predictive controller the measured DVs are those of *model* its settings feed forward; any
+    other controller is reported as ``unknown`` (what it reads is not known: no DV is assumed).
+    """
+    desc = getattr(controller, "describe", None)
+    if callable(desc):
+        return dict(desc())
+    measured = list(getattr(model, "measured_dv_names", ()))
+    resolved = getattr(controller, "_resolved", None)
+    if resolved is not None and "feedforward" in resolved:
+        names = list(getattr(getattr(controller, "dmodel", None), "dv_names", ()) or
+                     getattr(model, "dv_names", ()))
+        ff = [n for n, on in zip(names, list(resolved["feedforward"])) if on and n in measured]
+        mvs = list(getattr(model, "mv_names", ()))
+        return {"kind": "mpc",
+                "structure": [f"one multivariable predictive controller on {', '.join(mvs)}"],
+                "measured_cvs": list(getattr(model, "cv_names", ())), "measured_dvs_used": ff,
+                "mv_flows_used": [],
+                "tuning": {"horizon": getattr(controller, "horizon", None),
+                           "control_horizon": getattr(controller, "control_horizon", None)}}
+    return {"kind": "unknown", "structure": [type(controller).__name__], "measured_cvs": [],
+            "measured_dvs_used": [], "mv_flows_used": [], "tuning": {}}
+
+
+def tuning_text(inputs: Mapping[str, Any]) -> str:
+    """The tuning of a :func:`describe_controller` answer in one line: ``cv<-mv K=.. Ti=..`` per
+    loop (ratio trims, cascade loops, selector loops and split ranges too), feedforward gains and
+    lead-lags, or the predictive controller's horizons."""
+    t = inputs.get("tuning") or {}
+
+    def loop(d: Mapping[str, Any], tag: str = "") -> str:
+        ti = d.get("integral_time")
+        td = d.get("derivative_time") or 0.0
+        return (f"{d.get('cv')}<-{d.get('mv')}{tag} K={_fmt(d.get('gain'))}"
+                f"{' Ti=' + _fmt(ti) if ti is not None else ''}{' Td=' + _fmt(td) if td else ''}")
+
+    parts = [loop(d) for d in t.get("loops") or []]
+    parts += [loop(r["trim_loop"], " (ratio trim)") for r in t.get("ratios") or []]
+    for c in t.get("cascades") or []:
+        parts += [loop(c["outer_loop"], " (outer)"), loop(c["inner_loop"], " (inner)")]
+    for s in t.get("selectors") or []:
+        parts += [loop(d, f" ({s.get('select')} select, {d.get('reference')})") for d in s["loops"]]
+    parts += [loop(s["loop"], " (split range, %)") for s in t.get("split_ranges") or []]
+    parts += [f"feedforward {f.get('source')}->{f.get('cv')} gain={_fmt(f.get('gain'))}"
+              + (f" lead={_fmt(f.get('lead'))} lag={_fmt(f.get('lag'))}" if f.get("lag") else "")
+              + (f" dead time={_fmt(f.get('dead_time'))}" if f.get("dead_time") else "")
+              for f in t.get("feedforward") or []]
+    if "horizon" in t:
+        parts.append(f"horizon={_fmt(t.get('horizon'))} control horizon="
+                     f"{_fmt(t.get('control_horizon') or t.get('horizon'))}")
+    return "; ".join(parts) or "-"
+
+
+def fairness_notes(inputs: Mapping[str, Mapping[str, Any]]) -> list[str]:
+    """One sentence per measured DV that some controllers of a comparison used and others did
+    not (the comparison is then not like for like on that disturbance)."""
+    labels = list(inputs)
+    used = {lb: set(inputs[lb].get("measured_dvs_used") or ()) for lb in labels}
+    notes = []
+    for dv in sorted(set().union(*used.values()) if used else ()):
+        yes = [lb for lb in labels if dv in used[lb]]
+        no = [lb for lb in labels if dv not in used[lb]]
+        if yes and no:
+            notes.append(f"not like for like: {', '.join(yes)} used the measured DV '{dv}'; "
+                         f"{', '.join(no)} did not.")
+    return notes
 
 
 def _fmt(v: Any) -> str:
@@ -114,8 +188,13 @@ class Comparison:
                f"setpoint step; max_abs_error, peak_excess in the CV unit; total_travel in the MV "
                f"unit; violation integral in CV unit x {tu}; *_solve_ms in ms, worst_fraction of the "
                f"sample time. Simulation results only.")
+        inputs = self.meta.get("inputs") or {}
+        had = [f"{lb}: {'; '.join(d.get('structure') or ['?'])}; measured DVs used: "
+               f"{', '.join(d.get('measured_dvs_used') or []) or 'none'}"
+               for lb, d in inputs.items()]
+        notes = fairness_notes(inputs) if inputs else []
         return "\n".join([line(head), line(["-" * w for w in widths])] + [line(b) for b in body]
-                         + [key])
+                         + had + notes + [key])
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-able: per-label summaries plus the scorecard rows."""
@@ -176,5 +255,7 @@ def compare(plant_model: Any, controllers: Mapping[str, Any] | Sequence[Any], *,
         tr.meta["controller"] = str(label)
         trajs[str(label)] = tr
         sums[str(label)] = summarize(tr, **dict(summary_options or {}))
+    inputs = {str(lb): describe_controller(c, plant_model) for lb, c in controllers.items()}
     return Comparison(trajectories=trajs, summaries=sums,
-                      seed=rng if isinstance(rng, (int, type(None))) else str(rng))
+                      seed=rng if isinstance(rng, (int, type(None))) else str(rng),
+                      meta={"inputs": inputs})

@@ -71,8 +71,9 @@ def test_run_refuses_an_out_path_that_is_a_file_and_an_unknown_case(tmp_path, ca
     ('tau_c = 120.0\nlam = 5.0', ["key 'controllers.pid.lam'", "applies to rule imc", "the rule is 'simc'"]),
 ])
 def test_pid_settings_errors_name_the_exact_key(replace, fragments, tmp_path, capsys):
-    text = GOOD.read_text().replace(
-        "tau_c = { level = 120.0, concentration = 900.0, temperature = 120.0 }", replace)
+    # the tau_c line of [controllers.pid] (the conventional scheme)
+    text = GOOD.read_text().replace("tau_c = { level = 120.0, temperature = 120.0 }", replace)
+    assert text != GOOD.read_text()
     p = tmp_path / "pid.toml"
     p.write_text(text)
     assert main(["check", str(p)]) == 2

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -103,3 +104,50 @@ def test_mpc_and_pid_on_the_same_upsets():
     iae = {r["variable"]: r for r in cmp_.scorecard() if r["metric"] == "iae"}
     # feedforward of the measured draw-off lets the MPC hold the concentration better
     assert iae["concentration"]["mpc"] < iae["concentration"]["pid"]
+    # the scorecard says what each controller had, and that only the MPC saw the draw-off
+    text = cmp_.scorecard_text()
+    assert "mpc: one multivariable predictive controller" in text
+    assert "measured DVs used: draw_off" in text and "pid: 3 single loop(s)" in text
+    assert "not like for like: mpc used the measured DV 'draw_off'; pid did not." in text
+    assert cmp_.to_dict()["inputs"]["pid"]["measured_dvs_used"] == []
+    # ... and which tuning: every loop's gain and integral time as the loops hold them
+    for lp in pid.loops:
+        assert f"{lp.cv}<-{lp.mv} K={lp.gain:.4g} Ti={lp.integral_time:.4g}" in mp.tuning_text(
+            cmp_.meta["inputs"]["pid"])
+
+
+def test_fairness_notes_only_where_the_dvs_used_differ():
+    # a DV used by every controller, or by none, gives no note; one used by some does
+    same = {"a": {"measured_dvs_used": ["d1"]}, "b": {"measured_dvs_used": ["d1"]}}
+    assert mp.fairness_notes(same) == []
+    diff = {"a": {"measured_dvs_used": ["d1", "d2"]}, "b": {"measured_dvs_used": ["d1"]},
+            "c": {"measured_dvs_used": []}}
+    assert mp.fairness_notes(diff) == [
+        "not like for like: a, b used the measured DV 'd1'; c did not.",
+        "not like for like: a used the measured DV 'd2'; b, c did not."]
+
+
+def test_demo_summary_records_what_each_controller_had(tmp_path):
+    # the shipped demo: the conventional scheme (ratio + feedforward) and the MPC both use the
+    # measured draw-off; the plain loops do not -- summary.json says so per controller
+    from mpcproto.scenario import load_scenario, run_scenario
+
+    summary = run_scenario(load_scenario("scenarios/caustic_blending.toml"), tmp_path, plots=False,
+                           ci=True)
+    inp = {lb: c["inputs"] for lb, c in summary["controllers"].items()}
+    assert inp["mpc"]["measured_dvs_used"] == ["draw_off"]
+    assert inp["pid"]["measured_dvs_used"] == ["draw_off"]
+    assert "ratio caustic_flow/water_flow trimmed by concentration" in inp["pid"]["structure"]
+    assert inp["pid_loops"]["measured_dvs_used"] == []
+    # the level feedforward designed from the model: both channels integrate, slopes -1 and +1
+    # per kg/s (the mass balance dh/dt = (w1 + w2 - w)/(rho A)): static gain exactly 1
+    (lvl,) = [f for f in inp["pid"]["tuning"]["feedforward"] if f["cv"] == "level"]
+    assert lvl["gain"] == pytest.approx(1.0, rel=1e-6)
+    assert summary["fairness"] == ["not like for like: mpc, pid used the measured DV 'draw_off'; "
+                                   "pid_loops did not."]
+    # ... and the HTML report shows it beside the KPIs
+    text = Path(mp.write_html_report([summary], tmp_path / "report.html")).read_text()
+    assert "measured DVs used" in text
+    assert "ratio caustic_flow/water_flow trimmed by concentration" in text
+    assert "not like for like: mpc, pid used the measured DV" in text
+    assert "concentration&lt;-caustic_flow (ratio trim) K=" in text and "horizon=40" in text

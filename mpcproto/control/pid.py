@@ -62,7 +62,7 @@ from .base import (STATUS_HOLD, STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutpu
 from .limits import project_value
 
 __all__ = ["PIDLoop", "PIDController", "pid_loop_from_spec", "suggest_pairing", "Pairing",
-           "low_frequency_gain"]
+           "low_frequency_gain", "pid_output"]
 
 
 @dataclass(frozen=True)
@@ -169,6 +169,48 @@ class _LoopState:
     started: bool = False
 
 
+
+def readback_list(u_applied: Any, n: int, who: str) -> list[float] | None:
+    """The MV readback of a step call as a list of *n* floats (None: no readback)."""
+    if u_applied is None:
+        return None
+    ua = np.asarray(u_applied, float).reshape(-1)
+    if ua.shape != (n,):
+        raise SettingsError(f"{who}.step(): u_applied must have {n} entries (MV order); got "
+                            f"shape {np.shape(u_applied)}.")
+    return ua.tolist()
+
+
+def pid_output(lp: PIDLoop, st: _LoopState, t: float, y: float, r: float,
+               u_read: float = math.nan, bias: float = 0.0) -> float:
+    """One sample of the PID algorithm of the module docstring for loop *lp* with state *st*:
+    the unlimited output ``v = P + I + D + bias`` (the caller limits it and stores the tracking
+    error ``st.aw_prev = u_limited - v``).  ``u_read``: the output applied over the last sample
+    (readback, in the loop's output unit; NaN = unknown); ``bias``: a signal added to the output
+    (feedforward), inside the anti-windup loop so that the integral tracks the limited total.
+    Shared by :class:`PIDController` and the structures of :mod:`mpcproto.control.regulatory`.
+    """
+    K, Td, N = lp.gain, lp.derivative_time, lp.derivative_filter
+    if not st.started:
+        st.i = st.u - bias - K * (lp.setpoint_weight * r - y)
+        st.d, st.y_prev, st.t_last, st.started = 0.0, y, t, True
+        st.e_prev = st.aw_prev = 0.0
+    h = t - st.t_last if t > st.t_last else 0.0
+    if math.isfinite(u_read) and math.isfinite(st.v_prev):
+        # readback: track what the valve did, not what the loop asked for
+        st.aw_prev = u_read - st.v_prev
+    if h > 0 and math.isfinite(lp.integral_time):
+        # forward Euler over the interval just ended, with back-calculation of the
+        # limited output (anti-windup): I += K h/Ti e + h/Tt (u - v)
+        st.i += K * h / lp.integral_time * st.e_prev + h / lp.tt * st.aw_prev
+    if Td > 0 and h > 0:
+        st.d = Td / (Td + N * h) * st.d - K * Td * N / (Td + N * h) * (y - st.y_prev)
+    v = K * (lp.setpoint_weight * r - y) + st.i + st.d + bias
+    st.e_prev, st.v_prev = r - y, v
+    st.y_prev, st.t_last = y, t
+    return v
+
+
 class PIDController:
     """Several PID loops side by side (decentralized control); implements the controller protocol.
 
@@ -221,6 +263,12 @@ class PIDController:
         self._cmd_prev = self._u0.tolist()
         self._ua_prev = [math.nan] * len(self.mv_names)
 
+    def describe(self) -> dict[str, Any]:
+        """What the controller has: structure, measurements used and tuning (JSON-able)."""
+        return {"kind": "pid", "structure": [f"{len(self.loops)} single loop(s)"],
+                "measured_cvs": sorted({lp.cv for lp in self.loops}), "measured_dvs_used": [],
+                "mv_flows_used": [], "tuning": {"loops": [lp.as_dict() for lp in self.loops]}}
+
     @property
     def integrals(self) -> np.ndarray:
         """Current integral terms, one per loop (for tests and diagnostics)."""
@@ -233,14 +281,7 @@ class PIDController:
         sample (readback, NaN = unknown), used by the anti-windup tracking."""
         if not self._state:
             raise SettingsError(f"PIDController '{self.name}': call reset(op) before step().")
-        ua = None
-        if u_applied is not None:
-            ua = np.asarray(u_applied, float).reshape(-1)
-            if ua.shape != (len(self.mv_names),):
-                raise SettingsError(f"PIDController '{self.name}'.step(): u_applied must have "
-                                    f"{len(self.mv_names)} entries (MV order); got shape "
-                                    f"{np.shape(u_applied)}.")
-            ua = ua.tolist()
+        ua = readback_list(u_applied, len(self.mv_names), f"PIDController '{self.name}'")
         u_ask = self._u0.copy()           # MVs without a loop stay at the operating point
         held = 0
         saturated = 0
@@ -258,24 +299,7 @@ class PIDController:
             if lp.on_fresh and not fresh[ci] and st.started:
                 u_ask[mj] = st.u
                 continue
-            K, Td, N = lp.gain, lp.derivative_time, lp.derivative_filter
-            if not st.started:
-                st.i = st.u - K * (lp.setpoint_weight * r - y)
-                st.d, st.y_prev, st.t_last, st.started = 0.0, y, t, True
-                st.e_prev = st.aw_prev = 0.0
-            h = t - st.t_last if t > st.t_last else 0.0
-            if ua is not None and math.isfinite(ua[mj]) and math.isfinite(st.v_prev):
-                # readback: track what the valve did, not what the loop asked for
-                st.aw_prev = ua[mj] - st.v_prev
-            if h > 0 and math.isfinite(lp.integral_time):
-                # forward Euler over the interval just ended, with back-calculation of the
-                # limited output (anti-windup): I += K h/Ti e + h/Tt (u - v)
-                st.i += K * h / lp.integral_time * st.e_prev + h / lp.tt * st.aw_prev
-            if Td > 0 and h > 0:
-                st.d = Td / (Td + N * h) * st.d - K * Td * N / (Td + N * h) * (y - st.y_prev)
-            v = K * (lp.setpoint_weight * r - y) + st.i + st.d
-            st.e_prev, st.v_prev = r - y, v
-            st.y_prev, st.t_last = y, t
+            v = pid_output(lp, st, t, y, r, ua[mj] if ua is not None else math.nan)
             u_ask[mj] = v
             acted.append((st, mj, v))
         # every MV (acting, held or without a loop) through the one projection: rate limit from

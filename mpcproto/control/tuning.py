@@ -537,9 +537,10 @@ def tune_loop(fit: ProcessFit, rule: str, **kw: Any) -> PIDLoop:
 
 
 # ---------------------------------------------------------------------------------- settings
+_STRUCTURE_KEYS = ("feedforward", "ratio", "cascade", "override", "split_range")
 _SETTINGS_KEYS = ("loops", "pairs", "rule", "tau_c", "lam", "mode", "method", "step_fraction",
                   "test_duration", "fit", "extra_dead_time", "setpoint_weight",
-                  "derivative_filter", "on_fresh")
+                  "derivative_filter", "on_fresh") + _STRUCTURE_KEYS
 
 
 _RULE_KEYS = {"simc": ("tau_c",), "imc": ("lam", "mode"), "ziegler_nichols": ("mode", "method")}
@@ -656,43 +657,60 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
     if not (isinstance(step_fraction, (int, float)) and 0 < step_fraction <= 0.5):
         raise SettingsError(f"{what}: step_fraction must be in (0, 0.5]; found {step_fraction!r}.")
     lin = linearize(model, op)
-    extra_dead_time = dict(extra_dead_time or {})
     loops, fits = [], []
     lo, hi = model.bounds("mv")
-    rule_options = dict(rule_options or {})
     for cv, mv in pairs:
         j = model.mv_names.index(mv)
         span = hi[j] - lo[j] if math.isfinite(hi[j] - lo[j]) else max(abs(op.u[j]), 1.0)
         size = step_fraction * span
         if op.u[j] + size > hi[j]:
             size = -size
-        dur = test_duration
-        if dur is None:
-            ch = [p for p in lin.pairs() if p["cv"] == cv and p["mv"] == mv][0]
-            taus = ch["time_constants"]
-            integrating = bool(ch["integrating"])
-            dur = 50 * Ts if integrating or not taus else 5 * max(taus) + ch["dead_time"]
-            dur = float(min(max(dur, 20 * Ts), 2000 * Ts))
+        dur = test_duration if test_duration is not None else default_test_duration(lin, cv, mv, Ts)
         data = step_test(model, op, mv, size=size, Ts=Ts, duration=dur)
         f = fit_step(data, cv, kind=fit)
-        extra = extra_dead_time.get(cv, extra_dead_time.get("*", 0.0))
-        if not (isinstance(extra, (int, float)) and not isinstance(extra, bool)
-                and math.isfinite(extra) and extra >= 0):
-            raise SettingsError(f"{what}: extra dead time for '{cv}' must be a number >= 0; "
-                                f"found {extra!r}.")
-        # the sampled loop adds about half a sample of delay (zero-order hold), plus what the
-        # measurement adds (analyzer dead time and half its cycle)
-        f = ProcessFit(f.kind, f.gain, f.time_constants, f.dead_time + 0.5 * Ts + float(extra),
-                       rmse=f.rmse, inverse_response=f.inverse_response, cv=f.cv, mv=f.mv)
-        kw = dict(rule_options.get("*", {}))
-        kw.update(rule_options.get(cv, {}))
-        kw.update(loop_options or {})
-        try:
-            loops.append(tune_loop(f, rule, cv=cv, mv=mv, **kw))
-        except SettingsError as exc:
-            raise SettingsError(f"{what}: loop {cv}<-{mv}: {exc}") from None
+        lp, f = rule_on_fit(f, cv, mv, Ts=Ts, rule=rule, rule_options=rule_options,
+                            loop_options=loop_options, extra_dead_time=extra_dead_time, what=what)
+        loops.append(lp)
         fits.append(f)
     return loops, fits
+
+
+def default_test_duration(lin: Any, cv: str, mv: str, Ts: float) -> float:
+    """Step-test length for the (cv, mv) channel of a linearized model: five times its slowest
+    time constant plus its dead time (50 samples for an integrating channel), 20 to 2000 samples."""
+    ch = [p for p in lin.pairs() if p["cv"] == cv and p["mv"] == mv][0]
+    taus = ch["time_constants"]
+    integrating = bool(ch["integrating"])       # the linear layer's classification
+    dur = 50 * Ts if integrating or not taus else 5 * max(taus) + ch["dead_time"]
+    return float(min(max(dur, 20 * Ts), 2000 * Ts))
+
+
+def rule_on_fit(f: ProcessFit, cv: str, mv: str, *, Ts: float, rule: str,
+                rule_options: Mapping[str, Any] | None = None,
+                loop_options: Mapping[str, Any] | None = None,
+                extra_dead_time: Mapping[str, float] | None = None,
+                what: str = "tune") -> tuple[PIDLoop, ProcessFit]:
+    """Apply *rule* to a fitted step response: the rule sees the fitted dead time plus half a
+    sample plus ``extra_dead_time[cv]`` (see :func:`tune_pid_loops`); returns the loop and the
+    effective fit."""
+    extra_dead_time = dict(extra_dead_time or {})
+    rule_options = dict(rule_options or {})
+    extra = extra_dead_time.get(cv, extra_dead_time.get("*", 0.0))
+    if not (isinstance(extra, (int, float)) and not isinstance(extra, bool)
+            and math.isfinite(extra) and extra >= 0):
+        raise SettingsError(f"{what}: extra dead time for '{cv}' must be a number >= 0; "
+                            f"found {extra!r}.")
+    # the sampled loop adds about half a sample of delay (zero-order hold), plus what the
+    # measurement adds (analyzer dead time and half its cycle)
+    f = ProcessFit(f.kind, f.gain, f.time_constants, f.dead_time + 0.5 * Ts + float(extra),
+                   rmse=f.rmse, inverse_response=f.inverse_response, cv=f.cv, mv=f.mv)
+    kw = dict(rule_options.get("*", {}))
+    kw.update(rule_options.get(cv, {}))
+    kw.update(loop_options or {})
+    try:
+        return tune_loop(f, rule, cv=cv, mv=mv, **kw), f
+    except SettingsError as exc:
+        raise SettingsError(f"{what}: loop {cv}<-{mv}: {exc}") from None
 
 
 def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any], *,
@@ -716,6 +734,10 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
                        its cycle): a number or a table per CV; added, with half a sample for the
                        hold, to the fitted dead time before the rule is applied
     ``setpoint_weight``, ``derivative_filter``, ``on_fresh``: applied to every tuned loop
+    ``feedforward``, ``ratio``, ``cascade``, ``override``, ``split_range``: the regulatory
+                       structures of :mod:`mpcproto.control.regulatory` (keys in
+                       docs/scenario-format.md); with any of them the result is a
+                       :class:`~mpcproto.control.regulatory.RegulatoryController`
 
     ``tau_c`` belongs to SIMC, ``lam`` to IMC, ``mode`` to IMC and Ziegler-Nichols: a key the
     chosen rule does not use is refused.  Every value is checked (type and range) before any step
@@ -774,18 +796,24 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
                                 f"{{cv = mv}}; found {shown(pairs_spec)}.")
         to_tune += [p for p in pairs if p not in given and p not in to_tune]
     _check_settings(model, settings, what)
+    if any(k in settings for k in _STRUCTURE_KEYS):
+        from .regulatory import check_structure_settings
+
+        check_structure_settings(model, {k: settings[k] for k in _STRUCTURE_KEYS if k in settings},
+                                 what=what)
     for i, (c, m) in enumerate(to_tune):
         for v, names, role in ((c, cv_names, "CV"), (m, mv_names, "MV")):
             if v not in names:
                 raise SettingsError(f"{what}: pair {i} ({c}, {m}): '{v}' is not a {role} of model "
                                     f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.")
-    if pairs_spec is None and loop_specs is None:
+    structures = {k: settings[k] for k in _STRUCTURE_KEYS if k in settings}
+    if pairs_spec is None and loop_specs is None and not structures:
         from ..linear import linearize
 
         to_tune = suggest_pairing(linearize(model, op)).pairs
     rule = settings.get("rule", "simc")
-    ropts: dict[str, dict[str, Any]] = {}
-    for c, _ in to_tune:
+
+    def rule_kw(c: str) -> dict[str, Any]:
         kw: dict[str, Any] = {}
         for key in _RULE_KEYS[rule]:
             if key in settings:
@@ -794,22 +822,38 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
                     v = settings[key].get("*")
                 if v is not None:
                     kw[key] = v
-        ropts[c] = kw
+        return kw
+
     lopts = {k: settings[k] for k in ("setpoint_weight", "derivative_filter", "on_fresh")
              if k in settings}
-    tuned: list[PIDLoop] = []
+    ed = settings.get("extra_dead_time", {})
+    if not isinstance(ed, Mapping):
+        ed = {"*": ed}
+
+    def tune(pairs: Sequence[tuple[str, str]]) -> tuple[list[PIDLoop], list[ProcessFit]]:
+        if not pairs:
+            return [], []
+        return tune_pid_loops(model, op, Ts, pairs, rule=rule, fit=settings.get("fit", "auto"),
+                              step_fraction=settings.get("step_fraction", 0.05),
+                              test_duration=settings.get("test_duration"),
+                              rule_options={c: rule_kw(c) for c, _ in pairs}, loop_options=lopts,
+                              extra_dead_time=ed, what=what)
+
+    def on_fit(f: ProcessFit, cv: str, mv: str) -> PIDLoop:
+        return rule_on_fit(f, cv, mv, Ts=Ts, rule=rule, rule_options={cv: rule_kw(cv)},
+                           loop_options=lopts, extra_dead_time=ed, what=what)[0]
+
     try:
-        if to_tune:
-            ed = settings.get("extra_dead_time", {})
-            if not isinstance(ed, Mapping):
-                ed = {"*": ed}
-            tuned, _ = tune_pid_loops(model, op, Ts, to_tune, rule=rule,
-                                      fit=settings.get("fit", "auto"),
-                                      step_fraction=settings.get("step_fraction", 0.05),
-                                      test_duration=settings.get("test_duration"),
-                                      rule_options=ropts, loop_options=lopts, extra_dead_time=ed,
-                                      what=what)
-        return PIDController.for_model(model, list(given.values()) + tuned)
+        tuned, _ = tune(to_tune)
+        loops = list(given.values()) + tuned
+        if structures:
+            from .regulatory import regulatory_from_settings
+
+            return regulatory_from_settings(
+                model, op, Ts, structures, loops=loops, tune=tune, on_fit=on_fit,
+                step_fraction=settings.get("step_fraction", 0.05),
+                test_duration=settings.get("test_duration"), what=what)
+        return PIDController.for_model(model, loops)
     except SettingsError as exc:
         if str(exc).startswith(what):
             raise

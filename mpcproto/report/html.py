@@ -430,6 +430,21 @@ def _kpi_block(rec: Mapping[str, Any]) -> str:
                    f'{" (" + _e(rec["error_at"]) + ")" if rec.get("error_at") else ""}</p></div>')
         return "".join(out)
     ctls = rec.get("controllers") or {}
+    had = [(ctl, (res or {}).get("inputs")) for ctl, res in ctls.items()
+           if isinstance((res or {}).get("inputs"), Mapping)]
+    if had:
+        from ..compare import tuning_text
+
+        rows = ['<table style="margin-top:6px"><tr><th>controller</th><th>structure</th>'
+                '<th>measured DVs used</th><th>tuning</th></tr>']
+        for ctl, inp in had:
+            rows.append(f"<tr><td>{_e(ctl)}</td><td>{_e('; '.join(inp.get('structure') or []))}</td>"
+                        f"<td>{_e(', '.join(inp.get('measured_dvs_used') or []) or 'none')}</td>"
+                        f'<td class="small">{_e(tuning_text(inp))}</td></tr>')
+        rows.append("</table>")
+        out.append("".join(rows))
+    for note in rec.get("fairness") or []:
+        out.append(f'<p class="small">{_e(note)}</p>')
     roles: dict[str, tuple[list[str], list[str]]] = {}   # role -> (variables, kpi names)
     for res in ctls.values():
         for role, table in _kpi_groups((res or {}).get("kpi")).items():

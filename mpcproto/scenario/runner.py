@@ -308,6 +308,7 @@ def _run(case: Case | Scenario, *, ci: bool | None = None) -> tuple[dict[str, An
 def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
                trajs: dict[str, Any]) -> None:
     from ..analysis import summarize
+    from ..compare import describe_controller, fairness_notes
     from ..sim import simulate
 
     try:
@@ -335,6 +336,7 @@ def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
             compared = {cr[k] for cr in scn.data["criteria"] for k in ("cv", "variable")
                         if k in cr}
             block = summarize(traj, compared=compared if scn.data["criteria"] else None)
+            block["inputs"] = _plain(describe_controller(ctl, prep.model))
             block["criteria"] = evaluate_controller(scn.data["criteria"], label, block, traj)
             blocks[label] = block
         comparisons = evaluate_comparisons(scn.data["criteria"], blocks)
@@ -343,7 +345,8 @@ def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
         rec.update({"status": "ok", "message": "", "model": prep.plant.name,
                     "time_unit": prep.plant.time_unit, "sample_time": scn.sample_time,
                     "duration": prep.duration, "operating_point": prep.op.as_dict(),
-                    "controllers": blocks, "comparisons": comparisons, "passed": bool(passed)})
+                    "controllers": blocks, "comparisons": comparisons, "passed": bool(passed),
+                    "fairness": fairness_notes({lb: b["inputs"] for lb, b in blocks.items()})})
     except MpcprotoError as e:
         rec.update({"status": "error", "message": str(e), "error_type": type(e).__name__,
                     "controllers": {}, "comparisons": [], "passed": False})

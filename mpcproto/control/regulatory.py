@@ -1,0 +1,945 @@
+r"""The regulatory layer a plant really runs: PID loops with feedforward, ratio, cascade,
+override (selector) and split-range structures.
+
+:class:`RegulatoryController` implements the controller protocol of :mod:`mpcproto.control.base`
+like :class:`mpcproto.control.pid.PIDController`, so the simulator runs it unchanged.  Every loop
+uses the one PID algorithm of :mod:`mpcproto.control.pid` (:func:`pid_output`: ideal form,
+derivative on the measurement, back-calculation anti-windup) and every MV it commands goes through
+the one projection onto the rate and hard limits (:func:`mpcproto.control.limits.project_value`):
+a command outside a hard limit stays impossible.
+
+Structures
+----------
+plain loop (:class:`~mpcproto.control.pid.PIDLoop`)
+    one CV, one MV.
+feedforward (:class:`Feedforward`)
+    a measured DV, through a gain, a lead-lag ``(lead s + 1)/(lag s + 1)`` and a dead time, added
+    to the output of the plain loop on ``cv`` (deviation from the DV's value at the start).  The
+    sum goes through the loop's anti-windup: the integral tracks the limited *total* output, so a
+    feedforward that drives the valve to a limit does not wind the integral up.  Design rule
+    (:func:`design_feedforward`): the ideal feedforward is :math:`-G_d/G_p`; for FOPDT models
+    :math:`G_p = K_p e^{-\theta_p s}/(\tau_p s + 1)` and
+    :math:`G_d = K_d e^{-\theta_d s}/(\tau_d s + 1)` its realizable part is
+    gain :math:`-K_d/K_p`, lead :math:`\tau_p`, lag :math:`\tau_d`, dead time
+    :math:`\max(0, \theta_d - \theta_p)` (the classic design rule of the feedforward chapter of
+    Seborg, Edgar & Mellichamp, *Process Dynamics and Control*; from memory).  For two integrating
+    channels the static part is the ratio of the slopes.
+ratio (:class:`Ratio`)
+    the MV is set to ``R * wild`` where ``wild`` is another MV's command (the flow it is blended
+    with; its flow loop is taken as fast) or a measured DV, and the ratio ``R`` is the output of a
+    slower trim loop on ``cv``.  The trim loop is tuned on the same step test as a plain loop on
+    (cv, mv), its gain divided by the wild flow at the operating point (the trim loop's output is
+    a ratio: ``d mv = wild * d R``).  Its anti-windup tracks the ratio actually applied,
+    ``mv / wild``.
+cascade (:class:`Cascade`)
+    an outer loop on ``cv`` whose output is the setpoint of an inner loop on a secondary CV
+    (``inner_cv``, e.g. a jacket temperature or the MV's own flow) that moves ``mv``.  Tuning
+    (:func:`tune_cascade`): the inner loop first, from an MV step test; the outer loop on a step
+    test of the *closed* inner loop (an inner-setpoint step, simulated on the nonlinear model).
+    When the inner loop is at a limit, the outer loop's integral tracks the secondary measurement
+    (the inner setpoint it could actually reach).  The scenario's setpoint of ``inner_cv`` is not
+    used.
+override (:class:`Selector`)
+    several loops share one MV; the lowest (``select = "min"``) or highest (``"max"``) of their
+    outputs is applied.  Every loop's integral tracks the MV actually applied (back-calculation),
+    so the loops not selected do not wind up and take over bumplessly.  A loop's reference is its
+    CV's setpoint, or its CV's high or low limit (``reference = "high"``): an override that acts
+    when its CV reaches the limit.
+split range (:class:`SplitRange`)
+    one loop's output, in percent (0 to 100), moves several valves; each valve goes linearly from
+    ``at_start`` to ``at_end`` while the output goes from ``start`` to ``end`` % and stays at the
+    end values outside that range (e.g. valve A 0-50 %, valve B 50-100 %).  The loop's output is
+    limited to 0-100 % with anti-windup.  The loop is tuned on an MV step test of the first valve,
+    its gain divided by that valve's slope (MV unit per %).
+
+Every MV is owned by at most one structure; MVs owned by none stay at the operating point.
+Status and diagnostics follow :class:`PIDController` (``loops_held``, ``loops_saturated``,
+``integral.<loop>``; ``selected.<mv>``: the index of the loop in control of a selector).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .._specs import choice, number, refuse_unknown_keys, shown
+from ..exceptions import SettingsError
+from ..model import suggest
+from ..operating import OperatingPoint
+from .base import STATUS_HOLD, STATUS_OK, ControlOutput, Measurement, Targets
+from .limits import project_value
+from .pid import PIDLoop, _LoopState, pid_output, readback_list
+
+__all__ = ["Feedforward", "Ratio", "Cascade", "Selector", "SplitRange", "Valve",
+           "RegulatoryController", "design_feedforward", "split_range_value", "REFERENCES"]
+
+REFERENCES = ("setpoint", "high", "low")
+SELECTS = ("min", "max")
+
+
+def _num(v: Any, where: str, cond, expect: str) -> float:
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v) or not cond(v):
+        raise SettingsError(f"{where}: must be {expect}; found {v!r:.60}.")
+    return float(v)
+
+
+@dataclass(frozen=True)
+class Feedforward:
+    """Feedforward from ``source`` onto the output of the loop on ``cv``:
+    ``gain * (lead s + 1)/(lag s + 1) * e^(-dead_time s)`` (MV unit per source unit).  The source
+    is a measured DV or another MV (a feed flow set by another loop: its flow as measured, i.e.
+    the value applied over the last sample -- readback, else the last command)."""
+
+    cv: str
+    source: str
+    gain: float
+    lead: float = 0.0
+    lag: float = 0.0
+    dead_time: float = 0.0
+    rule: str = ""
+
+    def __post_init__(self) -> None:
+        w = f"feedforward {self.cv}<-{self.source}"
+        _num(self.gain, f"{w}: 'gain'", math.isfinite, "a finite number")
+        for k in ("lead", "lag", "dead_time"):
+            _num(getattr(self, k), f"{w}: '{k}'", lambda v: math.isfinite(v) and v >= 0,
+                 "a finite number >= 0")
+        if self.lead > 0 and self.lag == 0:
+            raise SettingsError(f"{w}: a lead ({self.lead:g}) needs a lag > 0 (a pure lead is not "
+                                f"realizable); give 'lag' too or set lead = 0.")
+
+    def as_dict(self) -> dict[str, Any]:
+        d = {"cv": self.cv, "source": self.source, "gain": self.gain, "lead": self.lead, "lag": self.lag,
+             "dead_time": self.dead_time}
+        if self.rule:
+            d["rule"] = self.rule
+        return d
+
+
+@dataclass(frozen=True)
+class Ratio:
+    """MV ``loop.mv`` = R * ``wild`` (an MV or a measured DV); R from the trim loop ``loop`` on
+    ``loop.cv`` (its gain in ratio units per CV unit)."""
+
+    loop: PIDLoop
+    wild: str
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"mv": self.loop.mv, "wild": self.wild, "trim_loop": self.loop.as_dict()}
+
+
+@dataclass(frozen=True)
+class Cascade:
+    """Outer loop ``outer`` (cv -> setpoint of ``inner.cv``) over inner loop ``inner`` (-> MV)."""
+
+    outer: PIDLoop
+    inner: PIDLoop
+
+    def __post_init__(self) -> None:
+        if self.outer.mv != self.inner.cv:
+            raise SettingsError(f"cascade on '{self.outer.cv}': the outer loop must set the inner "
+                                f"loop's CV '{self.inner.cv}'; found '{self.outer.mv}'.")
+        if self.outer.cv == self.inner.cv:
+            raise SettingsError(f"cascade on '{self.outer.cv}': the inner CV must be another CV "
+                                f"(a secondary measurement); found the same.")
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"cv": self.outer.cv, "inner_cv": self.inner.cv, "mv": self.inner.mv,
+                "outer_loop": self.outer.as_dict(), "inner_loop": self.inner.as_dict()}
+
+
+@dataclass(frozen=True)
+class Selector:
+    """Loops sharing one MV; the ``select`` ("min"/"max") of their outputs is applied.
+    ``references[i]``: "setpoint", "high" or "low" (the CV limit loop i holds)."""
+
+    mv: str
+    select: str
+    loops: tuple[PIDLoop, ...]
+    references: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        w = f"selector on '{self.mv}'"
+        if self.select not in SELECTS:
+            raise SettingsError(f"{w}: 'select' must be one of min, max; found {self.select!r}"
+                                f"{suggest(str(self.select), SELECTS)}.")
+        if len(self.loops) < 2:
+            raise SettingsError(f"{w}: needs at least two loops; found {len(self.loops)}.")
+        for lp in self.loops:
+            if lp.mv != self.mv:
+                raise SettingsError(f"{w}: every loop must move '{self.mv}'; loop on '{lp.cv}' "
+                                    f"moves '{lp.mv}'.")
+        refs = self.references or ("setpoint",) * len(self.loops)
+        if len(refs) != len(self.loops):
+            raise SettingsError(f"{w}: one reference per loop expected; found {len(refs)} for "
+                                f"{len(self.loops)} loops.")
+        for r in refs:
+            if r not in REFERENCES:
+                raise SettingsError(f"{w}: a reference must be one of {', '.join(REFERENCES)}; "
+                                    f"found {r!r}{suggest(str(r), REFERENCES)}.")
+        object.__setattr__(self, "references", tuple(refs))
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"mv": self.mv, "select": self.select,
+                "loops": [{**lp.as_dict(), "reference": r} for lp, r in zip(self.loops, self.references)]}
+
+
+@dataclass(frozen=True)
+class Valve:
+    """One valve of a split range: ``mv`` goes from ``at_start`` to ``at_end`` while the output
+    goes from ``start`` to ``end`` percent."""
+
+    mv: str
+    start: float
+    end: float
+    at_start: float
+    at_end: float
+
+    def __post_init__(self) -> None:
+        w = f"split-range valve '{self.mv}'"
+        for k in ("start", "end"):
+            _num(getattr(self, k), f"{w}: '{k}'", lambda v: 0 <= v <= 100, "in [0, 100] (%)")
+        for k in ("at_start", "at_end"):
+            _num(getattr(self, k), f"{w}: '{k}'", math.isfinite, "a finite number")
+        if not self.end > self.start:
+            raise SettingsError(f"{w}: 'end' must be above 'start'; found start = {self.start:g}, "
+                                f"end = {self.end:g}.")
+
+    def value(self, c: float) -> float:
+        """The valve's MV for controller output *c* (%)."""
+        f = min(max((c - self.start) / (self.end - self.start), 0.0), 1.0)
+        return self.at_start + f * (self.at_end - self.at_start)
+
+    @property
+    def slope(self) -> float:
+        return (self.at_end - self.at_start) / (self.end - self.start)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"mv": self.mv, "start": self.start, "end": self.end, "at_start": self.at_start,
+                "at_end": self.at_end}
+
+
+def split_range_value(valves: Sequence[Valve], c: float) -> dict[str, float]:
+    """Every valve's MV for controller output *c* (%)."""
+    return {v.mv: v.value(c) for v in valves}
+
+
+@dataclass(frozen=True)
+class SplitRange:
+    """Loop ``loop`` (output in %, 0-100) on the valves ``valves``."""
+
+    loop: PIDLoop
+    valves: tuple[Valve, ...]
+
+    def __post_init__(self) -> None:
+        if not self.valves:
+            raise SettingsError(f"split range on '{self.loop.cv}': give at least one valve.")
+        mvs = [v.mv for v in self.valves]
+        if len(set(mvs)) != len(mvs):
+            raise SettingsError(f"split range on '{self.loop.cv}': a valve is listed twice "
+                                f"({', '.join(mvs)}).")
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"cv": self.loop.cv, "loop": self.loop.as_dict(),
+                "valves": [v.as_dict() for v in self.valves]}
+
+
+# ----------------------------------------------------------------------------------- blocks
+@dataclass
+class _Block:
+    """One PID loop inside the structure, with where its output goes."""
+
+    loop: PIDLoop
+    ci: int                      # index of the measured CV
+    kind: str                    # "mv", "ratio", "outer", "select", "split"
+    label: str
+    mj: int = -1                 # the MV it commands (mv, ratio, select)
+    ref: str = "setpoint"
+    wild: tuple[str, int] = ("", -1)   # ("mv"|"dv", index) for a ratio
+    ff: list = field(default_factory=list)      # [_FFState]
+    inner: "_Block | None" = None               # for an outer loop: its inner loop
+    outer: "_Block | None" = None               # for an inner loop: the loop setting its setpoint
+    valves: tuple = ()                          # split range: ((Valve, mj), ...)
+    group: int = -1                             # selector index
+    st: _LoopState = field(default_factory=_LoopState)
+    v: float = math.nan          # unlimited output this sample (NaN: held)
+    bias: float = 0.0
+    wild_prev: float = math.nan
+    out: float = math.nan        # selector member / split range: its output this sample
+
+
+@dataclass
+class _FFState:
+    ff: Feedforward
+    di: int
+    src: str = "dv"              # "dv" or "mv"
+    d0: float = math.nan
+    x: float = math.nan          # lag state
+    hist: list = field(default_factory=list)   # (t, d)
+    last: float = 0.0
+
+    def value(self, t: float, d: float) -> float:
+        f = self.ff
+        if math.isfinite(d):
+            self.hist.append((t, d))
+        # the value seen through the dead time (the oldest sample at or before t - dead_time)
+        dd = math.nan
+        while len(self.hist) > 1 and self.hist[1][0] <= t - f.dead_time + 1e-9:
+            self.hist.pop(0)
+        if self.hist and self.hist[0][0] <= t - f.dead_time + 1e-9:
+            dd = self.hist[0][1] - self.d0
+        if not math.isfinite(dd):
+            return self.last            # no fresh value: hold the feedforward
+        if f.lag > 0:
+            h = t - self._t if math.isfinite(self._t) else 0.0
+            a = math.exp(-h / f.lag)
+            self.x = dd if not math.isfinite(self.x) else a * self.x + (1 - a) * dd
+            out = f.lead / f.lag * dd + (1 - f.lead / f.lag) * self.x
+        else:
+            out = dd
+        self._t = t
+        self.last = f.gain * out
+        return self.last
+
+    _t: float = math.nan
+
+
+class RegulatoryController:
+    """PID loops with feedforward, ratio, cascade, override and split-range structures (module
+    docstring); implements the controller protocol.
+
+    Parameters
+    ----------
+    cv_names, mv_names, dv_names : sequence of str
+        The model's CVs, MVs and DVs in declaration order.
+    measured_dvs : sequence of str
+        The DVs the controller may read (feedforward, ratio on a DV).
+    loops, feedforward, ratios, cascades, selectors, split_ranges : sequences
+        The structures; every MV owned by at most one of them.
+    """
+
+    def __init__(self, cv_names: Sequence[str], mv_names: Sequence[str],
+                 dv_names: Sequence[str] = (), measured_dvs: Sequence[str] = (), *,
+                 loops: Sequence[PIDLoop] = (), feedforward: Sequence[Feedforward] = (),
+                 ratios: Sequence[Ratio] = (), cascades: Sequence[Cascade] = (),
+                 selectors: Sequence[Selector] = (), split_ranges: Sequence[SplitRange] = (),
+                 name: str = "pid", tuning: Mapping[str, Any] | None = None):
+        self.name = str(name)
+        self.cv_names, self.mv_names = tuple(cv_names), tuple(mv_names)
+        self.dv_names, self.measured_dvs = tuple(dv_names), tuple(measured_dvs)
+        self.loops, self.feedforward = tuple(loops), tuple(feedforward)
+        self.ratios, self.cascades = tuple(ratios), tuple(cascades)
+        self.selectors, self.split_ranges = tuple(selectors), tuple(split_ranges)
+        self.tuning = dict(tuning or {})
+        owner: dict[str, str] = {}
+
+        def cv(name: str, where: str) -> int:
+            if name not in self.cv_names:
+                raise SettingsError(f"{where}: '{name}' is not a CV of the model"
+                                    f"{suggest(name, self.cv_names)}; CVs: {', '.join(self.cv_names)}.")
+            return self.cv_names.index(name)
+
+        def mv(name: str, where: str) -> int:
+            if name not in self.mv_names:
+                raise SettingsError(f"{where}: '{name}' is not an MV of the model"
+                                    f"{suggest(name, self.mv_names)}; MVs: {', '.join(self.mv_names)}.")
+            if name in owner:
+                raise SettingsError(f"{where}: MV '{name}' is already moved by {owner[name]}; "
+                                    f"each MV may be moved by one structure only (use a selector "
+                                    f"to share an MV).")
+            owner[name] = where
+            return self.mv_names.index(name)
+
+        def dv(name: str, where: str) -> int:
+            if name not in self.dv_names:
+                raise SettingsError(f"{where}: '{name}' is not a DV of the model"
+                                    f"{suggest(name, self.dv_names)}; DVs: "
+                                    f"{', '.join(self.dv_names) or '(none)'}.")
+            if name not in self.measured_dvs:
+                raise SettingsError(f"{where}: DV '{name}' is not measured; a controller can only "
+                                    f"use a measured DV (measured: "
+                                    f"{', '.join(self.measured_dvs) or 'none'}).")
+            return self.dv_names.index(name)
+
+        blocks: list[_Block] = []
+        plain: dict[str, _Block] = {}
+        for lp in self.loops:
+            b = _Block(lp, cv(lp.cv, f"loop {lp.cv}<-{lp.mv}"), "mv", f"{lp.mv}",
+                       mj=mv(lp.mv, f"loop {lp.cv}<-{lp.mv}"))
+            blocks.append(b)
+            plain[lp.cv] = b
+        for c in self.cascades:
+            w = f"cascade on '{c.outer.cv}'"
+            inner = _Block(c.inner, cv(c.inner.cv, w), "mv", f"{c.inner.mv}", mj=mv(c.inner.mv, w))
+            outer = _Block(c.outer, cv(c.outer.cv, w), "outer", f"{c.outer.cv}.setpoint_of_"
+                           f"{c.inner.cv}", inner=inner)
+            inner.outer = outer
+            blocks += [outer, inner]
+            plain.setdefault(c.inner.cv, inner)
+        for g, s in enumerate(self.selectors):
+            w = f"selector on '{s.mv}'"
+            j = mv(s.mv, w)
+            for k, (lp, r) in enumerate(zip(s.loops, s.references)):
+                blocks.append(_Block(lp, cv(lp.cv, w), "select", f"{s.mv}.{k}", mj=j, ref=r, group=g))
+        for s in self.split_ranges:
+            w = f"split range on '{s.loop.cv}'"
+            vs = tuple((v, mv(v.mv, w)) for v in s.valves)
+            blocks.append(_Block(s.loop, cv(s.loop.cv, w), "split", f"{s.loop.cv}.split_range",
+                                 valves=vs))
+        wild_mvs = []
+        for r in self.ratios:
+            w = f"ratio on '{r.loop.mv}'"
+            if r.wild in self.mv_names:
+                wild = ("mv", self.mv_names.index(r.wild))
+                wild_mvs.append(r.wild)
+            else:
+                wild = ("dv", dv(r.wild, w + " (wild flow)"))
+            blocks.append(_Block(r.loop, cv(r.loop.cv, w), "ratio", f"{r.loop.mv}.ratio",
+                                 mj=mv(r.loop.mv, w), wild=wild))
+        for r in self.ratios:
+            if r.wild in [x.loop.mv for x in self.ratios]:
+                raise SettingsError(f"ratio on '{r.loop.mv}': the wild flow '{r.wild}' is itself "
+                                    f"set by a ratio; chain ratios on the primary flow instead.")
+        for f in self.feedforward:
+            w = f"feedforward {f.cv}<-{f.source}"
+            b = plain.get(f.cv)
+            if b is None:
+                raise SettingsError(f"{w}: there is no plain loop (or cascade inner loop) on "
+                                    f"'{f.cv}' to add it to; loops on: {', '.join(plain) or 'none'}.")
+            if f.source in self.mv_names:
+                if f.source == b.loop.mv:
+                    raise SettingsError(f"{w}: the source is the loop's own MV.")
+                b.ff.append(_FFState(f, self.mv_names.index(f.source), "mv"))
+            else:
+                b.ff.append(_FFState(f, dv(f.source, w)))
+        if not blocks:
+            raise SettingsError("RegulatoryController: give at least one loop or structure.")
+        # order: outer loops, then everything that writes an MV, ratios last (they read the wild
+        # MV's command of this sample)
+        rank = {"outer": 0, "mv": 1, "select": 1, "split": 1, "ratio": 2}
+        self._blocks = sorted(blocks, key=lambda b: rank[b.kind])
+        self._u0 = np.zeros(len(self.mv_names))
+        self._started = False
+
+    @classmethod
+    def for_model(cls, model: Any, **kw: Any) -> "RegulatoryController":
+        """Structures on a model's CVs, MVs and measured DVs."""
+        return cls(model.cv_names, model.mv_names, model.dv_names, model.measured_dv_names, **kw)
+
+    # ------------------------------------------------------------------------------ reporting
+    def describe(self) -> dict[str, Any]:
+        """What the controller has: structure, measurements used and tuning (JSON-able)."""
+        cvs = sorted({b.loop.cv for b in self._blocks})
+        dvs = sorted({f.source for f in self.feedforward if f.source in self.dv_names}
+                     | {r.wild for r in self.ratios if r.wild in self.dv_names})
+        flows = sorted({f.source for f in self.feedforward if f.source in self.mv_names}
+                       | {r.wild for r in self.ratios if r.wild in self.mv_names})
+        structure = []
+        if self.loops:
+            structure.append(f"{len(self.loops)} single loop(s)")
+        for f in self.feedforward:
+            structure.append(f"feedforward {f.source} -> {f.cv} loop")
+        for r in self.ratios:
+            structure.append(f"ratio {r.loop.mv}/{r.wild} trimmed by {r.loop.cv}")
+        for c in self.cascades:
+            structure.append(f"cascade {c.outer.cv} -> {c.inner.cv} -> {c.inner.mv}")
+        for s in self.selectors:
+            structure.append(f"{s.select} selector on {s.mv} ({', '.join(lp.cv for lp in s.loops)})")
+        for s in self.split_ranges:
+            structure.append(f"split range {s.loop.cv} -> {', '.join(v.mv for v in s.valves)}")
+        return {"kind": "pid", "structure": structure, "measured_cvs": cvs,
+                "measured_dvs_used": dvs, "mv_flows_used": flows,
+                "tuning": {"loops": [lp.as_dict() for lp in self.loops],
+                           "feedforward": [f.as_dict() for f in self.feedforward],
+                           "ratios": [r.as_dict() for r in self.ratios],
+                           "cascades": [c.as_dict() for c in self.cascades],
+                           "selectors": [s.as_dict() for s in self.selectors],
+                           "split_ranges": [s.as_dict() for s in self.split_ranges],
+                           **self.tuning}}
+
+    # ------------------------------------------------------------------------------ running
+    def reset(self, op: OperatingPoint, t0: float = 0.0) -> None:
+        self._u0 = np.asarray(op.u, float).copy()
+        y0 = np.asarray(op.y, float)
+        d0 = np.asarray(op.d, float) if getattr(op, "d", None) is not None else np.zeros(0)
+        for b in self._blocks:
+            b.st = _LoopState()
+            b.v, b.bias, b.wild_prev = math.nan, 0.0, math.nan
+            if b.kind in ("mv", "select"):
+                b.st.u = float(self._u0[b.mj])
+            elif b.kind == "outer":
+                b.st.u = float(y0[b.inner.ci])
+            elif b.kind == "ratio":
+                kind, i = b.wild
+                wv = float(self._u0[i] if kind == "mv" else d0[i])
+                if abs(wv) < 1e-12:
+                    raise SettingsError(f"RegulatoryController '{self.name}': the wild flow of the "
+                                        f"ratio on '{b.loop.mv}' is 0 at the operating point; the "
+                                        f"ratio is undefined there.")
+                b.st.u = float(self._u0[b.mj]) / wv
+            elif b.kind == "split":
+                b.st.u = self._split_start(b)
+            for f in b.ff:
+                f.d0 = (float(self._u0[f.di]) if f.src == "mv" else
+                        float(d0[f.di]) if f.di < d0.size else math.nan)
+                f.x, f.hist, f.last, f._t = math.nan, [], 0.0, math.nan
+        self._u_last = self._u0.tolist()
+        self._started = True
+
+    def _split_start(self, b: _Block) -> float:
+        """The split-range output (%) matching the valves at the operating point (the first
+        valve whose operating value lies strictly inside its travel; else the first valve)."""
+        for v, j in b.valves:
+            u = float(self._u0[j])
+            lo, hi = sorted((v.at_start, v.at_end))
+            if lo < u < hi:
+                return v.start + (u - v.at_start) / v.slope
+        v, j = b.valves[0]
+        u = float(self._u0[j])
+        return min(max(v.start + (u - v.at_start) / v.slope if v.slope else v.start, 0.0), 100.0)
+
+    def step(self, t: float, meas: Measurement, dv: np.ndarray, targets: Targets,
+             dv_forecast: np.ndarray | None = None, *,
+             u_applied: np.ndarray | None = None) -> ControlOutput:
+        """One sample of every structure (module docstring); ``u_applied``: MV readback."""
+        if not self._started:
+            raise SettingsError(f"RegulatoryController '{self.name}': call reset(op) before step().")
+        ua = readback_list(u_applied, len(self.mv_names), f"RegulatoryController '{self.name}'")
+        ys, sps = meas.y.tolist(), targets.setpoint.tolist()
+        lows, highs = targets.cv_low.tolist(), targets.cv_high.tolist()
+        fresh = meas.fresh.tolist()
+        dvl = np.asarray(dv, float).reshape(-1).tolist() if dv is not None else []
+        u_ask = self._u0.tolist()
+        lo, hi = targets.mv_low.tolist(), targets.mv_high.tolist()
+        rate = targets.mv_rate.tolist() if targets.mv_rate is not None else [math.inf] * len(lo)
+        held = 0
+        sel: dict[int, list[_Block]] = {}
+        chosen: dict[int, int] = {}
+        for b in self._blocks:
+            lp, st = b.loop, b.st
+            y = ys[b.ci]
+            r = {"setpoint": sps, "high": highs, "low": lows}[b.ref][b.ci]
+            if b.kind == "mv" and b.outer is not None:
+                r = b.outer.st.u if not math.isfinite(b.outer.v) else b.outer.v
+            bias = sum(f.value(t, (ua[f.di] if ua is not None and math.isfinite(ua[f.di])
+                                   else self._u_last[f.di]) if f.src == "mv" else
+                               dvl[f.di] if f.di < len(dvl) else math.nan) for f in b.ff)
+            wild = math.nan
+            if b.kind == "ratio":
+                kind, i = b.wild
+                # the wild flow's command of this sample, as it will be sent (projected)
+                wild = (project_value(u_ask[i], self._u_last[i], lo[i], hi[i], rate[i])
+                        if kind == "mv" else (dvl[i] if i < len(dvl) else math.nan))
+                if not math.isfinite(wild):
+                    wild = b.wild_prev
+            if not math.isfinite(y) or not math.isfinite(r) or (lp.on_fresh and not fresh[b.ci]
+                                                                 and st.started):
+                held += not math.isfinite(y)
+                b.v = math.nan
+                out = st.u - b.bias + bias         # hold the feedback part, keep feedforward
+            else:
+                u_read = math.nan
+                if ua is not None and b.kind in ("mv", "select"):
+                    u_read = ua[b.mj]
+                elif ua is not None and b.kind == "ratio" and abs(b.wild_prev) > 1e-12:
+                    u_read = ua[b.mj] / b.wild_prev
+                b.v = out = pid_output(lp, st, t, y, r, u_read, bias)
+            b.bias = bias
+            if b.kind == "outer":
+                continue
+            if b.kind == "ratio":
+                b.wild_prev = wild
+                u_ask[b.mj] = out * wild if math.isfinite(wild) else st.u * b.wild_prev
+            elif b.kind == "mv":
+                u_ask[b.mj] = out
+            elif b.kind == "select":
+                b.out = out
+                bs = sel.setdefault(b.group, [])
+                bs.append(b)
+                if len(bs) == len(self.selectors[b.group].loops):     # all in: select
+                    pick = min if self.selectors[b.group].select == "min" else max
+                    k = pick(range(len(bs)), key=lambda i: bs[i].out)
+                    chosen[b.group] = k
+                    u_ask[b.mj] = bs[k].out
+            elif b.kind == "split":
+                b.out = c = min(max(out, 0.0), 100.0)
+                for v, j in b.valves:
+                    u_ask[j] = v.value(c)
+        ul = [project_value(a, p, lo[j], hi[j], rate[j],
+                            what=f"RegulatoryController '{self.name}' ({self.mv_names[j]})")
+              for j, (a, p) in enumerate(zip(u_ask, self._u_last))]
+        saturated = 0
+        # tracking: every loop's integral follows what was actually applied, in its own unit
+        for b in reversed(self._blocks):      # inner loops before their outer loops
+            st = b.st
+            if b.kind in ("mv", "select"):
+                applied = ul[b.mj]
+            elif b.kind == "ratio":
+                applied = ul[b.mj] / b.wild_prev if abs(b.wild_prev) > 1e-12 else st.u
+            elif b.kind == "split":
+                applied = b.out
+            else:                               # outer: the inner loop at a limit -> its PV
+                inn = b.inner
+                at_limit = math.isfinite(inn.v) and abs(ul[inn.mj] - inn.v) > 1e-12 * max(1.0, abs(inn.v))
+                applied = ys[inn.ci] if at_limit and math.isfinite(ys[inn.ci]) else (
+                    b.v if math.isfinite(b.v) else st.u)
+            if math.isfinite(b.v):
+                saturated += abs(applied - b.v) > 1e-12 * max(1.0, abs(b.v))
+                st.aw_prev = applied - b.v
+            st.u = applied
+        self._u_last = ul
+        diag: dict[str, float] = {"loops_held": held, "loops_saturated": saturated}
+        for b in self._blocks:
+            diag[f"integral.{b.label}"] = b.st.i
+        for g, k in chosen.items():
+            diag[f"selected.{self.selectors[g].mv}"] = float(k)
+        return ControlOutput(u=np.array(ul), status=STATUS_HOLD if held else STATUS_OK,
+                             diagnostics=diag)
+
+
+# ------------------------------------------------------------------------------------ design
+def design_feedforward(gp: Any, gd: Any, *, cv: str, source: str) -> Feedforward:
+    """The realizable part of ``-Gd/Gp`` for two fitted models (:class:`ProcessFit`; module
+    docstring): FOPDT/FOPDT -> gain ``-Kd/Kp``, lead ``tau_p``, lag ``tau_d``, dead time
+    ``max(0, theta_d - theta_p)``; integrating/integrating -> the static ratio of the slopes."""
+    kinds = (gp.kind, gd.kind)
+    dt = max(0.0, gd.dead_time - gp.dead_time)
+    if kinds == ("fopdt", "fopdt"):
+        return Feedforward(cv, source, -gd.gain / gp.gain, lead=gp.time_constants[0],
+                           lag=gd.time_constants[0], dead_time=dt, rule="-Gd/Gp (FOPDT lead-lag)")
+    if kinds == ("integrating", "integrating"):
+        return Feedforward(cv, source, -gd.gain / gp.gain, dead_time=dt,
+                           rule="-Gd/Gp (integrating: static)")
+    raise SettingsError(f"feedforward {cv}<-{source}: the design rule needs two FOPDT or two "
+                        f"integrating models; the step tests gave {gp.kind} (MV) and {gd.kind} "
+                        f"(DV). Give 'gain' (and 'lead', 'lag', 'dead_time') by hand.")
+
+
+# ---------------------------------------------------------------------------------- settings
+_FF_KEYS = ("dv", "mv", "gain", "lead", "lag", "dead_time")
+_RATIO_KEYS = ("mv", "wild")
+_CASCADE_KEYS = ("inner", "mv")
+_OVERRIDE_KEYS = ("select", "loops")
+_OVERRIDE_LOOP_KEYS = ("cv", "reference")
+_SPLIT_KEYS = ("valves",)
+_VALVE_KEYS = ("mv", "start", "end", "at_start", "at_end")
+
+
+def _table(v: Any, where: str, expect: str) -> Mapping[str, Any]:
+    if not isinstance(v, Mapping) or not v:
+        raise SettingsError(f"{where}: expected {expect}; found {shown(v)}.")
+    return v
+
+
+def _string(spec: Mapping[str, Any], key: str, where: str, names: Sequence[str], role: str) -> str:
+    if key not in spec:
+        raise SettingsError(f"{where}: needs '{key}' (the name of a{'n' if role[0] in 'AEIMO' else ''} "
+                            f"{role}); found keys: {', '.join(map(str, spec)) or '(none)'}.")
+    v = spec[key]
+    if not isinstance(v, str) or v not in names:
+        raise SettingsError(f"{where}.{key}: must be the name of a{'n' if role[0] in 'AEIMO' else ''} "
+                            f"{role} ({', '.join(names) or 'none'}); found {shown(v)}"
+                            f"{suggest(str(v), names) if isinstance(v, str) else ''}.")
+    return v
+
+
+def _key_cv(c: Any, where: str, cvs: Sequence[str]) -> str:
+    if not isinstance(c, str) or c not in cvs:
+        raise SettingsError(f"{where}: {shown(c)} is not a CV of the model"
+                            f"{suggest(str(c), cvs)}; expected a table keyed by CV names "
+                            f"({', '.join(cvs)}).")
+    return c
+
+
+def _cv_tables(structures: Mapping[str, Any], key: str, what: str, cvs: Sequence[str],
+               inner: str, allowed: Sequence[str]):
+    """``(cv, key path, table)`` for each entry of a structure keyed by CV names, checked."""
+    w0 = f"{what}.{key}"
+    for c, spec in _table(structures[key], w0, f"a table {{cv = {inner}}}").items():
+        _key_cv(c, w0, cvs)
+        w = f"{w0}.{c}"
+        spec = _table(spec, w, f"a table {inner}")
+        refuse_unknown_keys(spec, allowed, what=w)
+        yield c, w, spec
+
+
+def _table_list(spec: Mapping[str, Any], key: str, where: str, least: int, items: str,
+                allowed: Sequence[str]):
+    """``(key path, table)`` for each table of the list ``spec[key]`` (at least *least*)."""
+    lst = spec.get(key)
+    if not isinstance(lst, (list, tuple)) or len(lst) < least:
+        raise SettingsError(f"{where}.{key}: expected a list of at least "
+                            f"{'two' if least == 2 else 'one'} {items}; found {shown(lst)}.")
+    for i, item in enumerate(lst):
+        wi = f"{where}.{key}[{i}]"
+        item = _table(item, wi, f"a table ({items})")
+        refuse_unknown_keys(item, allowed, what=wi)
+        yield wi, item
+
+
+def check_structure_settings(model: Any, structures: Mapping[str, Any], *, what: str) -> None:
+    """Types, names and ranges of the structure keys of the PID settings (``feedforward``,
+    ``ratio``, ``cascade``, ``override``, ``split_range``), before any step test; a wrong one
+    raises :class:`SettingsError` starting with *what* and the key path."""
+    cvs, mvs = list(model.cv_names), list(model.mv_names)
+    mdv = list(model.measured_dv_names)
+    if "feedforward" in structures:
+        w0 = f"{what}.feedforward"
+        for c, specs in _table(structures["feedforward"], w0,
+                               "a table {cv = {dv = ...}} (feedforward onto the loop on that CV)").items():
+            _key_cv(c, w0, cvs)
+            items = specs if isinstance(specs, (list, tuple)) else [specs]
+            for i, spec in enumerate(items):
+                w = f"{w0}.{c}" + (f"[{i}]" if isinstance(specs, (list, tuple)) else "")
+                spec = _table(spec, w, "a table {dv = ... (or mv = ...), and optionally gain, lead, "
+                                       "lag, dead_time}")
+                refuse_unknown_keys(spec, _FF_KEYS, what=w)
+                if ("dv" in spec) == ("mv" in spec):
+                    raise SettingsError(f"{w}: give exactly one source, 'dv' (a measured DV) or "
+                                        f"'mv' (another loop's flow); found "
+                                        f"{'both' if 'dv' in spec else 'neither'}.")
+                if "dv" in spec:
+                    _string(spec, "dv", w, mdv, "measured DV")
+                else:
+                    _string(spec, "mv", w, mvs, "MV")
+                hand = [k for k in ("lead", "lag", "dead_time") if k in spec]
+                if hand and "gain" not in spec:
+                    raise SettingsError(f"{w}: '{hand[0]}' is given by hand, so 'gain' must be too "
+                                        f"(leave all four out to design them from the model).")
+                if "gain" in spec:
+                    g = number(spec, "gain", what=w)
+                    if g == 0:
+                        raise SettingsError(f"{w}: 'gain' must be non-zero; found 0.")
+                for k in hand:
+                    number(spec, k, what=w, low=0.0)
+                if spec.get("lead", 0) > 0 and spec.get("lag", 0) == 0:
+                    raise SettingsError(f"{w}: a 'lead' needs a 'lag' > 0 (a pure lead is not "
+                                        f"realizable); found lead = {spec['lead']!r} and no lag.")
+    if "ratio" in structures:
+        for c, w, spec in _cv_tables(structures, "ratio", what, cvs, "{mv = ..., wild = ...}",
+                                     _RATIO_KEYS):
+            m = _string(spec, "mv", w, mvs, "MV")
+            _string(spec, "wild", w, [x for x in mvs + mdv if x != m], "MV or measured DV")
+    if "cascade" in structures:
+        for c, w, spec in _cv_tables(structures, "cascade", what, cvs,
+                                     "{inner = <secondary CV>, mv = ...}", _CASCADE_KEYS):
+            _string(spec, "inner", w, [x for x in cvs if x != c], "CV (other than the outer one)")
+            _string(spec, "mv", w, mvs, "MV")
+    if "override" in structures:
+        w0 = f"{what}.override"
+        for m, spec in _table(structures["override"], w0,
+                              "a table {mv = {select = ..., loops = [...]}}").items():
+            if not isinstance(m, str) or m not in mvs:
+                raise SettingsError(f"{w0}: {shown(m)} is not an MV of the model"
+                                    f"{suggest(str(m), mvs)}; expected a table keyed by MV names "
+                                    f"({', '.join(mvs)}).")
+            w = f"{w0}.{m}"
+            spec = _table(spec, w, "a table {select = 'min' or 'max', loops = [{cv = ...}, ...]}")
+            refuse_unknown_keys(spec, _OVERRIDE_KEYS, what=w)
+            choice(spec.get("select"), SELECTS, what=f"{w}.select", key="select", noun="select")
+            for wl, lp in _table_list(spec, "loops", w, 2, "loop tables {cv = ..., reference = "
+                                      "'setpoint'/'high'/'low'}", _OVERRIDE_LOOP_KEYS):
+                _string(lp, "cv", wl, cvs, "CV")
+                if "reference" in lp:
+                    choice(lp["reference"], REFERENCES, what=f"{wl}.reference", key="reference",
+                           noun="reference")
+    if "split_range" in structures:
+        lo, hi = model.bounds("mv")
+        for c, w, spec in _cv_tables(structures, "split_range", what, cvs,
+                                     "{valves = [{mv, start, end}, ...]}", _SPLIT_KEYS):
+            for wv, v in _table_list(spec, "valves", w, 1, "valve tables {mv, start, end, "
+                                     "at_start, at_end}", _VALVE_KEYS):
+                m = _string(v, "mv", wv, mvs, "MV")
+                for k in ("start", "end"):
+                    if k not in v:
+                        raise SettingsError(f"{wv}: needs '{k}' (percent of the controller "
+                                            f"output, 0 to 100).")
+                    f = number(v, k, what=wv, low=0.0)
+                    if f > 100:
+                        raise SettingsError(f"{wv}: '{k}' must be <= 100 (%); found {f:g}.")
+                if not v["end"] > v["start"]:
+                    raise SettingsError(f"{wv}: 'end' must be above 'start'; found start = "
+                                        f"{v['start']!r}, end = {v['end']!r}.")
+                j = mvs.index(m)
+                for k, default in (("at_start", lo[j]), ("at_end", hi[j])):
+                    if k in v:
+                        number(v, k, what=wv)
+                    elif not math.isfinite(default):
+                        raise SettingsError(f"{wv}: MV '{m}' has no finite physical limit to "
+                                            f"default '{k}' to; give '{k}'.")
+
+
+def _dv_step_fit(model: Any, op: Any, dv: str, cv: str, *, Ts: float, step_fraction: float,
+                 duration: float, fit: str = "auto") -> Any:
+    """Step the measured DV *dv* of the nonlinear model and fit the response of *cv*."""
+    from ..exceptions import SimulationError
+    from ..responses import open_loop_test
+    from .tuning import StepData, fit_step
+
+    j = model.dv_names.index(dv)
+    lo, hi = model.bounds("dv")
+    d0 = float(op.d[j])
+    span = hi[j] - lo[j] if math.isfinite(hi[j] - lo[j]) else max(abs(d0), 1.0)
+    size = step_fraction * span
+    if d0 + size > hi[j]:
+        size = -size
+    try:
+        rt = open_loop_test(model, op, dv, kind="step", size=size, duration=duration, Ts=Ts)
+    except SimulationError as exc:
+        raise SettingsError(f"feedforward step test of '{dv}' failed: {exc}") from None
+    i = model.cv_names.index(cv)
+    data = StepData(t=np.concatenate([[0.0], Ts + rt.t]),
+                    y={cv: np.concatenate([[op.y[i]], rt.y_nonlinear[:, i]])},
+                    mv=dv, size=size, at=Ts, y0={cv: float(op.y[i])})
+    return fit_step(data, cv, kind=fit)
+
+
+def _mv_step_fit(model: Any, op: Any, mv: str, cv: str, *, Ts: float, step_fraction: float,
+                 duration: float, fit: str = "auto") -> Any:
+    from .tuning import fit_step, step_test
+
+    j = model.mv_names.index(mv)
+    lo, hi = model.bounds("mv")
+    span = hi[j] - lo[j] if math.isfinite(hi[j] - lo[j]) else max(abs(op.u[j]), 1.0)
+    size = step_fraction * span
+    if op.u[j] + size > hi[j]:
+        size = -size
+    return fit_step(step_test(model, op, mv, size=size, Ts=Ts, duration=duration), cv, kind=fit)
+
+
+def closed_inner_step_test(model: Any, op: Any, inner: PIDLoop, cv: str, *, Ts: float,
+                           size: float, duration: float) -> Any:
+    """Step the setpoint of the closed inner loop *inner* (simulated on the nonlinear model, other
+    MVs held) and return the :class:`~mpcproto.control.tuning.StepData` of the outer CV *cv* --
+    the step test the outer loop of a cascade is tuned on."""
+    from ..sim.closed_loop import simulate
+    from .pid import PIDController
+    from .tuning import StepData
+
+    ctl = PIDController.for_model(model, [inner], name="inner")
+    tr = simulate(model, ctl, op=op, Ts=Ts, duration=duration, rng=0, readback=False,
+                  setpoints={inner.cv: {"kind": "step", "at": Ts, "size": size}})
+    if tr.status != "ok" and not tr.success:
+        raise SettingsError(f"cascade on '{cv}': the step test of the closed inner loop on "
+                            f"'{inner.cv}' failed: {tr.message}")
+    i = model.cv_names.index(cv)
+    return StepData(t=tr.t, y={cv: tr.series("y", cv)}, mv=inner.cv, size=size, at=Ts,
+                    y0={cv: float(op.y[i])})
+
+
+def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping[str, Any], *,
+                             loops: Sequence[PIDLoop], tune, on_fit, step_fraction: float = 0.05,
+                             test_duration: float | None = None,
+                             what: str = "pid") -> RegulatoryController:
+    """A :class:`RegulatoryController` from the structure keys of the PID settings (see
+    docs/scenario-format.md), the plain *loops* already tuned, and the settings' tuning:
+    ``tune(pairs) -> (loops, fits)`` (MV step tests and the rule) and
+    ``on_fit(fit, cv, mv) -> loop`` (the rule on a given step response)."""
+    import dataclasses
+
+    from ..linear import linearize
+
+    check_structure_settings(model, structures, what=what)
+    lin = linearize(model, op)
+    from .tuning import default_test_duration
+
+    def dur(cv: str, inp: str) -> float:
+        if test_duration is not None:
+            return float(test_duration)
+        try:
+            return default_test_duration(lin, cv, inp, Ts)
+        except IndexError:
+            return 200 * Ts
+
+    cvs, mvs = list(model.cv_names), list(model.mv_names)
+    loops = list(loops)
+    tuning: dict[str, Any] = {"fits": {}}
+    cascades, selectors, splits, ratios, ffs = [], [], [], [], []
+    for c, spec in structures.get("cascade", {}).items():
+        w = f"{what}.cascade.{c}"
+        (inner,), (fi,) = tune([(spec["inner"], spec["mv"])])
+        if fi.kind == "integrating":
+            raise SettingsError(f"{w}: the inner loop's process ({spec['inner']} <- {spec['mv']}) "
+                                f"integrates; a cascade's inner loop must be self-regulating here.")
+        j = mvs.index(spec["mv"])
+        lo, hi = model.bounds("mv")
+        span = hi[j] - lo[j] if math.isfinite(hi[j] - lo[j]) else max(abs(op.u[j]), 1.0)
+        size = fi.gain * step_fraction * span          # the inner CV's move of the MV step test
+        data = closed_inner_step_test(model, op, inner, c, Ts=Ts, size=size,
+                                      duration=max(dur(c, spec["mv"]), 20 * Ts))
+        from .tuning import fit_step
+
+        fo = fit_step(data, c)
+        outer = on_fit(fo, c, spec["inner"])
+        tuning["fits"][f"{c}<-{spec['inner']} (closed inner loop)"] = fo.as_dict()
+        cascades.append(Cascade(outer, inner))
+    for m, spec in structures.get("override", {}).items():
+        refs = [lp.get("reference", "setpoint") for lp in spec["loops"]]
+        tuned, _ = tune([(lp["cv"], m) for lp in spec["loops"]])
+        selectors.append(Selector(m, spec["select"], tuple(tuned), tuple(refs)))
+    lo, hi = model.bounds("mv")
+    for c, spec in structures.get("split_range", {}).items():
+        vs = []
+        for v in spec["valves"]:
+            j = mvs.index(v["mv"])
+            vs.append(Valve(v["mv"], float(v["start"]), float(v["end"]),
+                            float(v.get("at_start", lo[j])), float(v.get("at_end", hi[j]))))
+        (lp,), _ = tune([(c, vs[0].mv)])
+        if vs[0].slope == 0:
+            raise SettingsError(f"{what}.split_range.{c}.valves[0]: the first valve does not move "
+                                f"(at_start = at_end); the loop is tuned on it.")
+        lp = dataclasses.replace(lp, mv="split", gain=lp.gain / vs[0].slope)
+        splits.append(SplitRange(lp, tuple(vs)))
+    for c, spec in structures.get("ratio", {}).items():
+        wild = spec["wild"]
+        w0 = float(op.u[mvs.index(wild)] if wild in mvs else op.d[model.dv_names.index(wild)])
+        if w0 == 0:
+            raise SettingsError(f"{what}.ratio.{c}.wild: the wild flow '{wild}' is 0 at the "
+                                f"operating point; the ratio is undefined there.")
+        (lp,), _ = tune([(c, spec["mv"])])
+        ratios.append(Ratio(dataclasses.replace(lp, gain=lp.gain / w0), wild))
+    owners = {lp.cv: lp.mv for lp in loops}
+    owners.update({cs.inner.cv: cs.inner.mv for cs in cascades})
+    for c, specs in structures.get("feedforward", {}).items():
+        items = specs if isinstance(specs, (list, tuple)) else [specs]
+        for i, spec in enumerate(items):
+            w = f"{what}.feedforward.{c}" + (f"[{i}]" if isinstance(specs, (list, tuple)) else "")
+            if c not in owners:
+                raise SettingsError(f"{w}: there is no single loop (or cascade inner loop) on "
+                                    f"'{c}' to add the feedforward to; loops on: "
+                                    f"{', '.join(owners) or 'none'}.")
+            src = spec.get("dv", spec.get("mv"))
+            if "gain" in spec:
+                ffs.append(Feedforward(c, src, float(spec["gain"]),
+                                       float(spec.get("lead", 0.0)), float(spec.get("lag", 0.0)),
+                                       float(spec.get("dead_time", 0.0)), rule="given"))
+                continue
+            mv = owners[c]
+            d = dur(c, mv)
+
+            def _src_fit(src: str, kind: str, c: str = c, d: float = d) -> Any:
+                fn = _mv_step_fit if src in mvs else _dv_step_fit
+                return fn(model, op, src, c, Ts=Ts, step_fraction=step_fraction, duration=d,
+                          fit=kind)
+            try:
+                gp = _mv_step_fit(model, op, mv, c, Ts=Ts, step_fraction=step_fraction, duration=d)
+                gd = _src_fit(src, "auto")
+                if gp.kind == "sopdt" or gd.kind == "sopdt":
+                    gp = _mv_step_fit(model, op, mv, c, Ts=Ts, step_fraction=step_fraction,
+                                      duration=d, fit="fopdt")
+                    gd = _src_fit(src, "fopdt")
+                ffs.append(design_feedforward(gp, gd, cv=c, source=src))
+            except SettingsError as exc:
+                raise SettingsError(f"{w}: {exc}") from None
+            tuning["fits"][f"{c}<-{mv} (feedforward design)"] = gp.as_dict()
+            tuning["fits"][f"{c}<-{src} (feedforward design)"] = gd.as_dict()
+    try:
+        return RegulatoryController.for_model(model, loops=loops, feedforward=ffs, ratios=ratios,
+                                              cascades=cascades, selectors=selectors,
+                                              split_ranges=splits, tuning=tuning)
+    except SettingsError as exc:
+        raise SettingsError(f"{what}: {exc}") from None
