@@ -62,7 +62,8 @@ from .analysis import (cv_performance, mv_usage, kpis, violations, mv_violations
 from .control.pid import PIDLoop, PIDController, pid_loop_from_spec, suggest_pairing
 from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating,
                              fit_step, ultimate_point, simc, imc, ziegler_nichols, tune_loop,
-                             tune_pid_loops, pid_from_settings)
+                             tune_pid_loops)
+from .control.pid_settings import pid_from_settings
 from .compare import compare, Comparison, describe_controller, fairness_notes, tuning_text
 from .control.regulatory import (RegulatoryController, Feedforward, Ratio, Cascade, Selector,
                                  SplitRange, Valve, design_feedforward)

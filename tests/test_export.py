@@ -307,7 +307,7 @@ def test_schema_solver_names_follow_the_controller_settings():
 
     from mpcproto.control.mpc_settings import BACKUP_SOLVERS, SOLVERS
 
-    schema = json.loads((Path(mp.__file__).parent / "export" / "bundle.schema.json").read_text())
+    schema = json.loads((Path(mp.__file__).parent / "control" / "bundle.schema.json").read_text())
 
     def find(o, key):
         if isinstance(o, dict):

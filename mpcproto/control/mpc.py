@@ -918,6 +918,6 @@ class PredictiveController:
     def from_bundle(cls, path) -> "PredictiveController":
         """The controller of a bundle written by ``mpcproto export`` (built), from the bundle alone:
         its discrete model, names, operating point and settings (see ``docs/export-bundle.md``)."""
-        from ..export.bundle import controller_from_bundle
+        from .bundle import controller_from_bundle
 
         return controller_from_bundle(cls, path)

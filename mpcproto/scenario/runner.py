@@ -224,7 +224,7 @@ def _mpc_from_bundle(settings: Mapping[str, Any], prep: Prepared, key: str) -> A
 
 
 def _build_pid(settings: Mapping[str, Any], prep: Prepared, key: str) -> Any:
-    from ..control.tuning import pid_from_settings
+    from ..control.pid_settings import pid_from_settings
 
     return pid_from_settings(prep.model, prep.model_op, prep.scenario.sample_time, settings,
                              what=key)
