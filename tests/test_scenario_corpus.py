@@ -12,6 +12,7 @@ import pytest
 
 import mpcproto as mp
 from mpcproto.cli import main
+from mpcproto.exceptions import ScenarioError
 from mpcproto.scenario import check_scenario
 
 CORPUS = sorted((Path(__file__).parent / "bad_scenarios").glob("*.toml"))
@@ -278,9 +279,27 @@ def test_solver_options_are_typed_per_solver(tmp_path, solver, options, fragment
 
 
 def test_valid_solver_options_pass(tmp_path):
-    scn = _write(tmp_path, "s", rest='[controllers.mpc]\nhorizon = 10\nsolver_options = '
-                                     '{ eps_abs = 1e-5, max_iter = 200, polishing = true }\n')
+    scn = _write(tmp_path, "s", rest='[controllers.mpc]\nhorizon = 10\nsolver = "osqp"\n'
+                                     'solver_options = { eps_abs = 1e-5, max_iter = 200, '
+                                     'polishing = true }\n')
     check_scenario(scn)
+    scn = _write(tmp_path, "d", rest='[controllers.mpc]\nhorizon = 10\n'
+                                     'solver_options = { primal_tol = 1e-9, iter_limit = 500 }\n')
+    check_scenario(scn)
+
+
+def test_osqp_options_under_the_default_solver_say_which_solver_was_chosen(tmp_path):
+    scn = _write(tmp_path, "s", rest='[controllers.mpc]\nhorizon = 10\n'
+                                     'solver_options = { eps_abs = 1e-5 }\n')
+    with pytest.raises(ScenarioError, match="solver 'auto' chose daqp"):
+        check_scenario(scn)
+
+
+def test_daqp_option_of_the_wrong_type_is_named(tmp_path):
+    scn = _write(tmp_path, "s", rest='[controllers.mpc]\nhorizon = 10\n'
+                                     'solver_options = { iter_limit = "many" }\n')
+    with pytest.raises(ScenarioError, match="solver_options.iter_limit"):
+        check_scenario(scn)
 
 
 def test_a_case_that_shortens_the_run_warns_about_the_events_it_cuts_off(tmp_path, capsys):

@@ -173,10 +173,12 @@ def resolve(ctrl) -> dict[str, Any]:
         import clarabel
 
         known = tuple(k for k in dir(clarabel.DefaultSettings()) if not k.startswith("_"))
+    chose = (f" (solver 'auto' chose {kind} for this size; set solver to 'osqp' or 'clarabel' "
+             f"to use that solver's settings)" if ctrl.solver == "auto" else "")
     for k in opts:
         if k not in known:
             raise SettingsError(f"PredictiveController: unknown {kind} option "
-                                f"'solver_options.{k}'{suggest(k, known)}; known: "
+                                f"'solver_options.{k}'{suggest(k, known)}{chose}; known: "
                                 f"{sorted(known)}.")
     _number("state_noise", ctrl.state_noise, low=0)
     _int("history", ctrl.history)

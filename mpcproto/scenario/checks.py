@@ -460,12 +460,26 @@ def _clarabel_accepts(name: str, value: str) -> bool:
     return True
 
 
+#: DAQP's settings (tolerances > 0, an iteration limit, a time limit in seconds)
+DAQP_OPTION_TYPES: dict[str, tuple[str, float, float, bool]] = {
+    **{k: (_NUM, 0, math.inf, True) for k in ("primal_tol", "dual_tol", "zero_tol", "pivot_tol",
+                                               "progress_tol", "eps_prox", "eta_prox", "sing_tol",
+                                               "refactor_tol", "time_limit")},
+    "cycle_tol": (_INT, 0, math.inf, False), "iter_limit": (_INT, 1, math.inf, False),
+}
+
+
 def _check_solver_options(scn: Scenario, settings: Mapping[str, Any], key: str) -> None:
     opts = settings.get("solver_options")
-    solver = settings.get("solver", "osqp")
-    if not isinstance(opts, Mapping) or solver not in ("osqp", "clarabel"):
+    solver = settings.get("solver", "auto")
+    if solver == "auto":
+        # the controller takes DAQP unless the QP is large; its own check names option names that
+        # belong to another solver, so the types checked here are DAQP's
+        solver = "daqp"
+    if not isinstance(opts, Mapping) or solver not in ("osqp", "clarabel", "daqp"):
         return                       # the controller's own check names the wrong value
-    types = OSQP_OPTION_TYPES if solver == "osqp" else _clarabel_option_types()
+    types = (OSQP_OPTION_TYPES if solver == "osqp" else DAQP_OPTION_TYPES if solver == "daqp"
+             else _clarabel_option_types())
     for name, v in opts.items():
         if name not in types:
             continue                 # unknown names: the controller's check lists the known ones
