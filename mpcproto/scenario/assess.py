@@ -41,7 +41,10 @@ def design_report(scn: Scenario) -> dict[str, Any]:
     ``rga_frequency`` (square systems: the RGA magnitude at w = 0 and at the inverse of the
     dominant time constant and of the largest dead time), ``pid`` (per loop of the scenario's first
     PID controller: its tuning, the channel it acts on and :class:`LoopMargins`), ``sampling``
-    (:class:`mpcproto.design.SamplingAdvice`) and ``warnings`` (plain text).
+    (:class:`mpcproto.design.SamplingAdvice`), ``mpc`` (the scenario's first MPC with no constraint
+    active: nominal spectral radius, the mismatch table and the output sensitivity peak, see
+    :func:`mpcproto.control.mpc_analysis.unconstrained_analysis`; None without an MPC) and
+    ``warnings`` (plain text).
     """
     from ..control.loop_analysis import loop_margins
     from ..design import gain_matrix_analysis, rga_at_frequency, sampling_advice
@@ -126,7 +129,32 @@ def design_report(scn: Scenario) -> dict[str, Any]:
                 row["note"] = str(e)
             loops.append(row)
     out["pid"] = loops
+    out["mpc"] = _mpc_section(scn, prep, warns)
     return out
+
+
+def _mpc_section(scn: Scenario, prep, warns: list[str]) -> dict[str, Any] | None:
+    """Linear analysis of the scenario's first MPC (unconstrained), or None without one."""
+    from ..control.mpc_analysis import unconstrained_analysis
+    from .runner import build_controller
+
+    specs = [(label, spec) for label, spec in scn.data["controllers"].items()
+             if spec.get("kind") == "mpc"]
+    if not specs:
+        return None
+    label, spec = specs[0]
+    ctl = build_controller(label, spec, prep)
+    try:
+        an = unconstrained_analysis(ctl)
+    except SettingsError as e:
+        raise ScenarioError(f"unconstrained analysis of the MPC: {e}", file=scn.file,
+                            key=f"controllers.{label}") from None
+    warns.extend(f"MPC '{label}': {w}" for w in an.warnings)
+    rep = an.as_dict()
+    rep["label"] = label
+    rep["sensitivity_peak"] = _fin(rep["sensitivity_peak"])
+    rep["sensitivity_peak_w"] = _fin(rep["sensitivity_peak_w"])
+    return rep
 
 
 def _has_cv_bounds(model) -> bool:
@@ -174,6 +202,20 @@ def print_design_report(rep: Mapping[str, Any]) -> None:
                   f"{f(mg.get('gain_margin'))}{f(mg.get('phase_margin_deg'), 8, 3)}"
                   f"{f(mg.get('peak_sensitivity'), 7)}{f(mg.get('ultimate_gain'), 10)}"
                   f"{f(mg.get('ultimate_period'), 9)}")
+    mpc = rep.get("mpc")
+    if mpc:
+        print(f"\nMPC '{mpc['label']}' with no constraint active (linear loop: plant, estimator, "
+              "control law)")
+        print(f"  nominal spectral radius  {mpc['spectral_radius']:.4f} "
+              f"({'stable' if mpc['stable'] else 'UNSTABLE'})")
+        print(f"  {'plant':<28}{'spectral radius':>16}{'stable':>8}")
+        for c in mpc["cases"][1:]:
+            what = (f"MV gains x{c['value']:g}" if c["kind"] == "gain"
+                    else f"dead time +{c['value']:g} sample(s)")
+            print(f"  {what:<28}{c['spectral_radius']:>16.4f}{'yes' if c['stable'] else 'NO':>8}")
+        if mpc["sensitivity_peak"] is not None:
+            print(f"  output sensitivity peak  {mpc['sensitivity_peak']:.3g} at w = "
+                  f"{mpc['sensitivity_peak_w']:.4g} rad/{tu} (loop broken at the plant output)")
     s = rep["sampling"]
     print("\nsampling and horizons")
     if s.get("dominant_time_constant"):
