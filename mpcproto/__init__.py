@@ -7,7 +7,8 @@ Operating points and linear models (layer 2)
     steady_states, steady_state, solve_targets, TargetResult
 Design checks (layer 2)
     gain_matrix_analysis, GainAnalysis, niederlinski_index, rga_at_frequency, sampling_advice,
-    steady_state_locus, SteadyStateLocus, loop_margins, LoopMargins, half_rule
+    steady_state_locus, SteadyStateLocus, loop_margins, LoopMargins, half_rule,
+    unconstrained_analysis, UnconstrainedAnalysis, optimal_cost
 Open-loop tests (layer 2)
     open_loop_test, plot_response_test, linearity_sweep, ResponseTest, fit_step_response, StepFit,
     step_model_response
@@ -73,6 +74,7 @@ from .design import (GainAnalysis, gain_matrix_analysis, niederlinski_index, rga
 from .continuation import SteadyStateLocus, steady_state_locus
 from .control.loop_analysis import LoopMargins, loop_margins, half_rule
 from .control.mpc import PredictiveController
+from .control.mpc_analysis import UnconstrainedAnalysis, optimal_cost, unconstrained_analysis
 from .control.estimator import DisturbanceEstimator
 from .control.steady_target import SteadyTarget
 from . import scenario
@@ -113,7 +115,7 @@ __all__ = [
     "design_feedforward", "OverLoops", "identify_over_loops",
     "GainAnalysis", "gain_matrix_analysis", "niederlinski_index", "rga_at_frequency",
     "sampling_advice", "SteadyStateLocus", "steady_state_locus", "LoopMargins", "loop_margins",
-    "half_rule",
+    "half_rule", "unconstrained_analysis", "UnconstrainedAnalysis", "optimal_cost",
     "PredictiveController", "DisturbanceEstimator", "SteadyTarget",
     "scenario", "Scenario", "load_scenario", "parse_scenario", "check_scenario", "Case", "expand",
     "run_case", "run_scenario", "linear_report",
