@@ -67,27 +67,30 @@ def _simulate_step(ctrl, dm, plant, x0, sp, n):
     return np.array(out_u)
 
 
-@pytest.mark.parametrize("steady_target", [True, False])
-def test_closed_loop_matrix_reproduces_the_controllers_own_steps(steady_target):
+@pytest.mark.parametrize("steady_target, with_d", [(True, False), (False, False), (True, True)])
+def test_closed_loop_matrix_reproduces_the_controllers_own_steps(steady_target, with_d):
     # Reference: the controller's step() on a linear plant, no constraint active (independent of the
     # law's derivation): u_k from s[k+1] = Acl s[k] + Bsp sp must be the MVs step() applied, on the
     # nominal plant, with the gains x1.3 and with one more sample of dead time.
     rng = np.random.default_rng(5)
     A, B, C, _ = random_stable(rng, 3, 2, 2)
-    dm = make_dlm(A, B, C)
+    D0 = 0.3 * rng.standard_normal((2, 2)) if with_d else np.zeros((2, 2))   # y = Cx + D u[k-1]
+    dm = make_dlm(A, B, C, D=D0)
     ctrl = mp.PredictiveController(
         dm, horizon=15, control_horizon=4, steady_target=steady_target,
         cv={f"y{i}": {"weight": 1.0 + i, "scale": 1.0} for i in range(2)},
         mv={f"u{j}": {"move_weight": 0.2, "scale": 1.0} for j in range(2)}).build()
     law = unconstrained_law(ctrl)
     sp = np.array([0.5, -0.3])
-    D0 = np.zeros((2, 2))
     nd_ = A.shape[0]
     # plant with one more sample of dead time on each MV: states (x, u[k-1])
     Ad = np.block([[A, B], [np.zeros((2, nd_)), np.zeros((2, 2))]])
     Bd_ = np.vstack([np.zeros((nd_, 2)), np.eye(2)])
     Cd = np.hstack([C, np.zeros((2, 2))])
-    for plant in [(A, B, C, D0), (A, 1.3 * B, C, D0), (Ad, Bd_, Cd, D0)]:
+    plants = [(A, B, C, D0), (A, 1.3 * B, C, 1.3 * D0)]
+    if not with_d:
+        plants.append((Ad, Bd_, Cd, D0))
+    for plant in plants:
         x0 = 0.4 * rng.standard_normal(plant[0].shape[0])
         U = _simulate_step(ctrl, dm, plant, x0, sp + dm.op.y, 25)
         Acl, Bsp = closed_loop_matrix(law, plant)
@@ -162,6 +165,8 @@ def test_bad_arguments_are_named():
         unconstrained_analysis(ctrl, gain_errors=(0.0,))
     with pytest.raises(SettingsError, match="extra_delay"):
         unconstrained_analysis(ctrl, extra_delay=0.5)
+    with pytest.raises(SettingsError, match="extra_delay"):
+        unconstrained_analysis(ctrl, extra_delay="one")
     with pytest.raises(SettingsError, match="plant"):
         unconstrained_analysis(ctrl, plant=(np.eye(2), np.ones((2, 2)), np.eye(2), np.zeros((2, 2))))
     with pytest.raises(NotBuiltError):

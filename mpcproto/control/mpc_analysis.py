@@ -253,18 +253,27 @@ def _plant(plant, controller):
     return A, B, C, D
 
 
+def _shift(A, B, C):
+    """(A, B, C) followed by one shift register per MV: the new states hold u[k-1]."""
+    nx, nu = A.shape[0], B.shape[1]
+    A2 = np.zeros((nx + nu, nx + nu))
+    A2[:nx, :nx] = A
+    A2[:nx, nx:] = B
+    B2 = np.vstack([np.zeros((nx, nu)), np.eye(nu)])
+    return A2, B2, np.hstack([C, np.zeros((C.shape[0], nu))])
+
+
 def _delayed(A, B, C, D, n: int):
-    """The plant with every MV delayed by *n* more samples (shift register per MV)."""
+    """The plant with every MV delayed by *n* more samples (shift register per MV and sample)."""
     nu = B.shape[1]
-    for _ in range(n):
+    if np.any(D != 0):        # y = C x + D u[k-1]: hold u[k-1] in states first (strictly proper)
         nx = A.shape[0]
-        A2 = np.zeros((nx + nu, nx + nu))
-        A2[:nx, :nx] = A
-        A2[:nx, nx:] = B
-        B2 = np.vstack([np.zeros((nx, nu)), np.eye(nu)])
-        C2 = np.hstack([C, D])            # y[k] = C x + D u[k-1]: u[k-1] is the new state
-        A, B, C, D = A2, B2, C2, np.zeros_like(D)
-    return A, B, C, D
+        A = np.block([[A, np.zeros((nx, nu))], [np.zeros((nu, nx + nu))]])
+        B = np.vstack([B, np.eye(nu)])
+        C = np.hstack([C, D])
+    for _ in range(n):
+        A, B, C = _shift(A, B, C)
+    return A, B, C, np.zeros_like(D)
 
 
 def closed_loop_matrix(law: UnconstrainedLaw, plant) -> tuple[np.ndarray, np.ndarray]:
@@ -381,7 +390,11 @@ def unconstrained_analysis(controller, *, plant=None, gain_errors=(0.7, 1.3),
                             f"got {gain_errors!r}.") from None
     if any(not np.isfinite(g) or g <= 0 for g in factors):
         raise SettingsError(f"unconstrained_analysis(): 'gain_errors' must be > 0; got {factors}.")
-    if int(extra_delay) != extra_delay or extra_delay < 0:
+    try:
+        whole = int(extra_delay) == extra_delay and extra_delay >= 0
+    except (TypeError, ValueError):
+        whole = False
+    if not whole:
         raise SettingsError("unconstrained_analysis(): 'extra_delay' must be a whole number of "
                             f"samples >= 0; got {extra_delay!r}.")
     law = unconstrained_law(controller)

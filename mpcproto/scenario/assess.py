@@ -205,7 +205,7 @@ def print_design_report(rep: Mapping[str, Any]) -> None:
     mpc = rep.get("mpc")
     if mpc:
         print(f"\nMPC '{mpc['label']}' with no constraint active (linear loop: plant, estimator, "
-              "control law)")
+              "control law; every CV on its setpoint)")
         print(f"  nominal spectral radius  {mpc['spectral_radius']:.4f} "
               f"({'stable' if mpc['stable'] else 'UNSTABLE'})")
         print(f"  {'plant':<28}{'spectral radius':>16}{'stable':>8}")
