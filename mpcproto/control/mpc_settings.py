@@ -245,13 +245,17 @@ def resolve(ctrl) -> dict[str, Any]:
 def _scale_of(p: str, row: Mapping[str, Any], bounds: Mapping[str, Any], role: str, i: int,
               nominal: float) -> float:
     """The given scale (checked), or the default: from the controller's limits, else the physical
-    bounds, else the nominal value (:func:`default_scale`)."""
+    bounds, else the nominal value (:func:`default_scale`).  A model that carries no bounds at
+    all (``bounds`` None: built from matrices, units unknown) and no limits keeps 1 engineering
+    unit, as before the scale-aware defaults."""
     if row["scale"] is not None:
         return _number(f"{p}.scale", row["scale"], low=0, low_open=True)
     ranges = [(float(row["low"]), float(row["high"]))]
     if role in bounds:
         lo, hi = bounds[role]
         ranges.append((float(lo[i]), float(hi[i])))
+    elif not all(math.isfinite(v) for v in ranges[0]):
+        return 1.0
     return default_scale(*ranges, nominal=float(nominal))
 
 
