@@ -93,10 +93,28 @@ def describe_controller(controller: Any, model: Any) -> dict[str, Any]:
                 "structure": [f"one multivariable predictive controller on {', '.join(mvs)}"],
                 "measured_cvs": list(getattr(model, "cv_names", ())), "measured_dvs_used": ff,
                 "mv_flows_used": [],
-                "tuning": {"horizon": getattr(controller, "horizon", None),
-                           "control_horizon": getattr(controller, "control_horizon", None)}}
+                "tuning": {"horizon": resolved.get("N", getattr(controller, "horizon", None)),
+                           "control_horizon": resolved.get(
+                               "M", getattr(controller, "control_horizon", None)),
+                           **_mpc_weights(controller, resolved)}}
     return {"kind": "unknown", "structure": [type(controller).__name__], "measured_cvs": [],
             "measured_dvs_used": [], "mv_flows_used": [], "tuning": {}}
+
+
+def _mpc_weights(controller: Any, resolved: Mapping[str, Any]) -> dict[str, Any]:
+    """Per CV: scale, weight and priority; per MV: scale and move weight, as the predictive
+    controller resolved them (weights per squared scale, as given or by default)."""
+    from .control.mpc_settings import CV_KEYS, MV_KEYS, per_var
+
+    m = getattr(controller, "dmodel", None)
+    if m is None or "cv_scale" not in resolved:
+        return {}
+    cvs = per_var("cv", controller.cv, m.cv_names, CV_KEYS)
+    mvs = per_var("mv", controller.mv, m.mv_names, MV_KEYS)
+    return {"cv": {n: {"scale": float(resolved["cv_scale"][i]), "weight": float(row["weight"]),
+                       "priority": int(row["priority"])} for i, (n, row) in enumerate(zip(m.cv_names, cvs))},
+            "mv": {n: {"scale": float(resolved["mv_scale"][j]), "move_weight": float(row["move_weight"])}
+                   for j, (n, row) in enumerate(zip(m.mv_names, mvs))}}
 
 
 def tuning_text(inputs: Mapping[str, Any]) -> str:
@@ -125,6 +143,13 @@ def tuning_text(inputs: Mapping[str, Any]) -> str:
     if "horizon" in t:
         parts.append(f"horizon={_fmt(t.get('horizon'))} control horizon="
                      f"{_fmt(t.get('control_horizon') or t.get('horizon'))}")
+    if t.get("cv"):
+        parts.append("CV scale/weight/priority " + ", ".join(
+            f"{n} {_fmt(c.get('scale'))}/{_fmt(c.get('weight'))}/{_fmt(c.get('priority'))}"
+            for n, c in t["cv"].items()))
+    if t.get("mv"):
+        parts.append("MV scale/move weight " + ", ".join(
+            f"{n} {_fmt(v.get('scale'))}/{_fmt(v.get('move_weight'))}" for n, v in t["mv"].items()))
     return "; ".join(parts) or "-"
 
 

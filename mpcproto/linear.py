@@ -161,6 +161,10 @@ class LinearModel:
     op: OperatingPoint
     delays: list[tuple[str, int, float]] = field(default_factory=list)
     time_unit: str = "s"
+    #: physical bounds per role (``"state"``, ``"mv"``, ``"dv"``, ``"cv"``): ``(low, high)`` vectors
+    #: in declaration order, set by :func:`linearize`; ``None`` when the model is not known (a
+    #: model read from matrices).  The MPC's default scales come from them.
+    bounds: dict[str, tuple[np.ndarray, np.ndarray]] | None = None
 
     state_names = property(lambda self: self.op.state_names)
     mv_names = property(lambda self: self.op.mv_names)
@@ -356,7 +360,7 @@ class LinearModel:
             tap(r, i, n + 1 if f > 0 else n, None, self.Dz[:, col])
         return DiscreteLinearModel(A=A, B=B, Bd=Bd, C=C, D=D, Dd=Dd, Ts=float(Ts), op=self.op,
                                    state_names=tuple(names), n_plant_states=nx,
-                                   time_unit=self.time_unit)
+                                   time_unit=self.time_unit, bounds=self.bounds)
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -611,6 +615,8 @@ class DiscreteLinearModel:
     state_names: tuple[str, ...]
     n_plant_states: int
     time_unit: str = "s"
+    #: physical bounds per role, as :attr:`LinearModel.bounds` (``None`` when not known)
+    bounds: dict[str, tuple[np.ndarray, np.ndarray]] | None = None
 
     mv_names = property(lambda self: self.op.mv_names)
     dv_names = property(lambda self: self.op.dv_names)
@@ -675,4 +681,5 @@ def linearize(model, op: OperatingPoint) -> LinearModel:
     return LinearModel(
         A=shape(A, nx, nx), B=shape(B, nx, nu), Bd=shape(Bd, nx, nd), Bz=shape(Bz, nx, nz),
         C=shape(C, ny, nx), D=shape(D, ny, nu), Dd=shape(Dd, ny, nd), Dz=shape(Dz, ny, nz),
-        op=op, delays=delays, time_unit=model.time_unit)
+        op=op, delays=delays, time_unit=model.time_unit,
+        bounds={r: model.bounds(r) for r in ("state", "mv", "dv", "cv")})

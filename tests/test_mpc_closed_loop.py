@@ -90,7 +90,9 @@ def test_level_setpoint_reached_with_resting_values_on_the_mvs():
     mv = {k: dict(v, preferred_weight=0.01) for k, v in SCALES.items()}
     ctl = mp.PredictiveController.from_settings(dm, {
         "horizon": 60, "control_horizon": 6, "terminal_cost": True, "mv": mv,
-        "cv": {"level": {"scale": 0.02}}}).build()
+        # concentration and temperature on 1 wt% / 1 degC, the scales this check was set up with
+        "cv": {"level": {"scale": 0.02}, "concentration": {"scale": 1.0},
+               "temperature": {"scale": 1.0}}}).build()
     tr = mp.simulate(tank, ctl, op=op, Ts=TS, duration=3000.0, rng=3,
                      setpoints={"level": {"kind": "step", "at": 300.0, "size": 0.15}},
                      dvs={"water_temperature": {"kind": "ramp", "start": 600.0,

@@ -62,7 +62,8 @@ def test_simc_on_the_half_rule_example():
     integ = mp.simc(mp.ProcessFit.integrating(0.5, 2.0), tau_c=2.0, cv="y", mv="u")
     assert integ.gain == pytest.approx(1 / (0.5 * 4.0)) and integ.integral_time == 16.0
     # tauI = min(tau1, 4(tau_c+theta)) picks the second branch for a slow process
-    slow = mp.simc(mp.ProcessFit.fopdt(1.0, 100.0, 1.0), cv="y", mv="u")
+    # (tau_c = theta given: the default has a floor of tau1/10, see test_untuned_defaults.py)
+    slow = mp.simc(mp.ProcessFit.fopdt(1.0, 100.0, 1.0), tau_c=1.0, cv="y", mv="u")
     assert slow.integral_time == 8.0
 
 
@@ -176,8 +177,10 @@ def test_rules_refuse_models_they_do_not_fit():
         mp.ziegler_nichols(mp.ProcessFit.fopdt(1.0, 10.0, 0.0))
     with pytest.raises(mp.SettingsError, match="dead time must be finite and >= 0; found -1"):
         mp.ProcessFit.fopdt(1.0, 10.0, -1.0)
+    # an integrator without dead time has no default tau_c (a FOPDT one takes the tau1/10 floor)
     with pytest.raises(mp.SettingsError, match="simc: the fitted dead time is 0.*give tau_c"):
-        mp.simc(mp.ProcessFit.fopdt(1.0, 10.0, 0.0))
+        mp.simc(mp.ProcessFit.integrating(1.0, 0.0))
+    assert mp.simc(mp.ProcessFit.fopdt(1.0, 10.0, 0.0)).gain == pytest.approx(10.0)
     with pytest.raises(mp.SettingsError, match="unknown rule 'smic'.*did you mean 'simc'"):
         mp.tune_loop(mp.ProcessFit.fopdt(1.0, 10.0, 1.0), "smic")
     # inverse response (1 - 3s)/((5s+1)(2s+1)): the fit flags it and every rule refuses it

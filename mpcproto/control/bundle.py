@@ -131,10 +131,13 @@ def _plain_number(v: Any) -> Any:
 
 def settings_to_plain(ctl: Any) -> dict[str, Any]:
     """Every setting of a :class:`~mpcproto.control.mpc.PredictiveController`, defaults filled in,
-    as JSON-able data (the keys of ``from_settings``); an infinite limit ("no limit") is null."""
+    as JSON-able data (the keys of ``from_settings``); an infinite limit ("no limit") is null; a
+    scale left to its default is the one the built controller derived (so the bundle rebuilds the
+    same controller without the model's physical bounds)."""
     from .mpc_settings import CV_KEYS, DV_KEYS, MV_KEYS, SETTINGS_KEYS
 
     m = ctl.dmodel
+    resolved = getattr(ctl, "_resolved", None) or {}
     out: dict[str, Any] = {}
     for k in SETTINGS_KEYS:
         if k in ("cv", "mv", "dv"):
@@ -144,10 +147,13 @@ def settings_to_plain(ctl: Any) -> dict[str, Any]:
     for role, names, keys in (("cv", m.cv_names, CV_KEYS), ("mv", m.mv_names, MV_KEYS),
                               ("dv", m.dv_names, DV_KEYS)):
         given = getattr(ctl, role) or {}
+        scales = resolved.get(f"{role}_scale")
         table = {}
-        for n in names:
+        for i, n in enumerate(names):
             row = dict(keys)
             row.update(given.get(n, {}))
+            if row.get("scale", 0) is None and scales is not None:
+                row["scale"] = float(scales[i])
             for k, v in row.items():
                 v = _plain_number(v)
                 if k in _OPEN.get(role, {}) and isinstance(v, float) and math.isinf(v):

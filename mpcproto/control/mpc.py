@@ -93,7 +93,9 @@ class PredictiveController:
     cv : mapping of CV name to dict
         Per-CV settings (every key optional): ``weight`` (>= 0, weight on the error outside the
         setpoint band, per squared ``scale``), ``scale`` (> 0, engineering units of one "unit of
-        error"), ``low``/``high`` (static soft limits, engineering units; the run-time
+        error"; default: 1/20 of the span of ``low``/``high`` when both are given, else of the
+        CV's physical bounds, else of ``max(|operating value|, 1)``, rounded to 1-2-5 --
+        :func:`~mpcproto.control.mpc_settings.default_scale`), ``low``/``high`` (static soft limits, engineering units; the run-time
         :class:`Targets` limits are intersected with them), ``limit_penalty`` (>= 0, linear slack
         penalty per ``scale``: exact penalty when large enough), ``limit_penalty_quadratic``
         (>= 0), ``priority`` (int >= 1, 1 = most important: its weights are multiplied by
@@ -107,7 +109,8 @@ class PredictiveController:
         the operating point; with the steady target on, the dynamic problem rests at the target
         and ``preferred_value`` only breaks ties in the target), ``low``/``high`` (hard limits,
         intersected with the run-time ones), ``max_move`` (> 0, largest move per sample),
-        ``scale`` (> 0).
+        ``scale`` (> 0; default as for a CV: 1/20 of the ``low``/``high`` span, else of the
+        physical bounds, else of ``max(|operating value|, 1)``).
     dv : mapping of DV name to dict
         Per-DV settings: ``feedforward`` (bool, default True: a measured DV's value and forecast
         enter the prediction; False: treated as unknown).

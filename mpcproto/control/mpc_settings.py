@@ -21,7 +21,7 @@ from .estimator import DISTURBANCE_MODELS
 
 __all__ = ["SETTINGS_KEYS", "CV_KEYS", "MV_KEYS", "DV_KEYS", "SOLVERS", "BACKUP_SOLVERS",
            "FALLBACKS", "CONDENSED_MAX_VARIABLES", "CONDENSED_MAX_ENTRIES", "resolve",
-           "per_var", "check_model"]
+           "per_var", "check_model", "SCALE_FRACTION", "nice_number", "range_span", "default_scale"]
 
 #: top-level settings keys and their defaults (see :class:`PredictiveController`)
 SETTINGS_KEYS: dict[str, Any] = {
@@ -30,17 +30,20 @@ SETTINGS_KEYS: dict[str, Any] = {
     "solver_options": None, "state_noise": 1e-4, "history": 60, "priority_ratio": 10.0,
     "fallback": "shift", "backup_solver": "clarabel",
 }
-#: per-CV keys and defaults
+#: per-CV keys and defaults (``scale`` None: derived from the CV's range, :func:`default_scale`)
 CV_KEYS: dict[str, Any] = {
-    "weight": 1.0, "scale": 1.0, "low": -math.inf, "high": math.inf, "limit_penalty": 1e2,
+    "weight": 1.0, "scale": None, "low": -math.inf, "high": math.inf, "limit_penalty": 1e2,
     "limit_penalty_quadratic": 1e1, "priority": 1, "disturbance": "auto",
     "measurement_noise": 1e-3, "disturbance_noise": 1e-2,
 }
-#: per-MV keys and defaults
+#: per-MV keys and defaults (``scale`` None: derived from the MV's range, :func:`default_scale`)
 MV_KEYS: dict[str, Any] = {
     "move_weight": 0.1, "preferred_weight": 0.0, "preferred_value": None, "low": -math.inf,
-    "high": math.inf, "max_move": math.inf, "scale": 1.0,
+    "high": math.inf, "max_move": math.inf, "scale": None,
 }
+#: a default scale is this fraction of the variable's range: one scale is one typical move (a
+#: rule of ours, common practice, no source; ``mpcproto new`` writes the same scales)
+SCALE_FRACTION = 1.0 / 20.0
 #: keys of earlier versions that were renamed: refused with a message naming the new key
 _RENAMED_KEYS = {f"rest_{k}": f"preferred_{k}" for k in ("value", "weight")}
 #: per-DV keys and defaults
@@ -62,6 +65,39 @@ _OSQP_OPTIONS = ("eps_abs", "eps_rel", "eps_prim_inf", "eps_dual_inf", "max_iter
                  "adaptive_rho_tolerance", "adaptive_rho_fraction", "rho", "sigma", "alpha",
                  "scaling", "time_limit", "check_termination", "scaled_termination", "delta",
                  "verbose", "check_dualgap")
+
+
+def nice_number(v: float) -> float:
+    """*v* rounded (on a log scale) to 1, 2 or 5 times a power of ten; 1 for a value <= 0 or not finite."""
+    if not (math.isfinite(v) and v > 0):
+        return 1.0
+    e = math.floor(math.log10(v))
+    best = min((abs(math.log(v / (m * 10 ** e))), m) for m in (1, 2, 5, 10))[1]
+    return float(best * 10 ** e)
+
+
+def range_span(low: float, high: float, nominal: float) -> float:
+    """``high - low`` when both are finite and ``high > low``, else ``max(|nominal|, 1)``."""
+    if math.isfinite(low) and math.isfinite(high) and high > low:
+        return float(high - low)
+    return max(abs(float(nominal)), 1.0)
+
+
+def default_scale(*ranges: tuple[float, float], nominal: float) -> float:
+    """The default scale of a CV or MV: :data:`SCALE_FRACTION` of its range, rounded by
+    :func:`nice_number`.  The range is the first of *ranges* (``(low, high)`` pairs, e.g. the
+    controller's limits, then the physical bounds) with both ends finite and ``high > low``, else
+    ``max(|nominal|, 1)``.
+
+    >>> default_scale((-math.inf, math.inf), (0.0, 600.0), nominal=359.2)   # 30, rounded
+    20.0
+    >>> default_scale((1.3, 1.7), (0.0, 1.8), nominal=1.5)
+    0.02
+    """
+    for low, high in ranges:
+        if math.isfinite(low) and math.isfinite(high) and high > low:
+            return nice_number((high - low) * SCALE_FRACTION)
+    return nice_number(range_span(math.nan, math.nan, nominal) * SCALE_FRACTION)
 
 
 def _err(key: str, expected: str, found: Any) -> SettingsError:
@@ -112,14 +148,15 @@ def resolve(ctrl) -> dict[str, Any]:
     mvs = per_var("mv", ctrl.mv, m.mv_names, MV_KEYS)
     dvs = per_var("dv", ctrl.dv, m.dv_names, DV_KEYS)
     arr = lambda rows, key: np.array([row[key] for row in rows], float)  # noqa: E731
+    bounds = getattr(m, "bounds", None) or {}
     for i, (name, row) in enumerate(zip(m.cv_names, cvs)):
         p = f"cv.{name}"
         _number(f"{p}.weight", row["weight"], low=0)
-        _number(f"{p}.scale", row["scale"], low=0, low_open=True)
         _number(f"{p}.low", row["low"], allow_inf=True)
         _number(f"{p}.high", row["high"], allow_inf=True)
         if row["low"] > row["high"]:
             raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
+        row["scale"] = _scale_of(p, row, bounds, "cv", i, m.op.y[i])
         _number(f"{p}.limit_penalty", row["limit_penalty"], low=0)
         _number(f"{p}.limit_penalty_quadratic", row["limit_penalty_quadratic"], low=0)
         _int(f"{p}.priority", row["priority"])
@@ -127,7 +164,7 @@ def resolve(ctrl) -> dict[str, Any]:
             raise _err(f"{p}.disturbance", f"one of {DISTURBANCE_MODELS}", row["disturbance"])
         _number(f"{p}.measurement_noise", row["measurement_noise"], low=0, low_open=True)
         _number(f"{p}.disturbance_noise", row["disturbance_noise"], low=0, low_open=True)
-    for name, row in zip(m.mv_names, mvs):
+    for j, (name, row) in enumerate(zip(m.mv_names, mvs)):
         p = f"mv.{name}"
         _number(f"{p}.move_weight", row["move_weight"], low=0)
         _number(f"{p}.preferred_weight", row["preferred_weight"], low=0)
@@ -138,7 +175,7 @@ def resolve(ctrl) -> dict[str, Any]:
         if row["low"] > row["high"]:
             raise _err(f"{p}.low", f"<= {p}.high ({row['high']!r})", row["low"])
         _number(f"{p}.max_move", row["max_move"], low=0, low_open=True, allow_inf=True)
-        _number(f"{p}.scale", row["scale"], low=0, low_open=True)
+        row["scale"] = _scale_of(p, row, bounds, "mv", j, m.op.u[j])
     for name, row in zip(m.dv_names, dvs):
         _bool(f"dv.{name}.feedforward", row["feedforward"])
     _bool("terminal_cost", ctrl.terminal_cost)
@@ -204,6 +241,23 @@ def resolve(ctrl) -> dict[str, Any]:
     )
     ctrl._resolved = r
     return r
+
+def _scale_of(p: str, row: Mapping[str, Any], bounds: Mapping[str, Any], role: str, i: int,
+              nominal: float) -> float:
+    """The given scale (checked), or the default: from the controller's limits, else the physical
+    bounds, else the nominal value (:func:`default_scale`).  A model that carries no bounds at
+    all (``bounds`` None: built from matrices, units unknown) and no limits keeps 1 engineering
+    unit, as before the scale-aware defaults."""
+    if row["scale"] is not None:
+        return _number(f"{p}.scale", row["scale"], low=0, low_open=True)
+    ranges = [(float(row["low"]), float(row["high"]))]
+    if role in bounds:
+        lo, hi = bounds[role]
+        ranges.append((float(lo[i]), float(hi[i])))
+    elif not all(math.isfinite(v) for v in ranges[0]):
+        return 1.0
+    return default_scale(*ranges, nominal=float(nominal))
+
 
 def per_var(role: str, given, names, keys: Mapping[str, Any]) -> list[dict[str, Any]]:
     given = {} if given is None else given

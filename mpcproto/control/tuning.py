@@ -11,7 +11,14 @@ r"""PID tuning from a step test: fit a low-order model, then apply a published r
 
 :func:`simc` -- Skogestad (2003), "Simple analytic rules for model reduction and PID controller
 tuning", J. Process Control 13:291-309.  With closed-loop time constant :math:`\tau_c`
-(default :math:`\tau_c = \theta`, the paper's choice for fast, robust control):
+(the paper recommends :math:`\tau_c = \theta` for tight, robust control; our default has a floor,
+:math:`\tau_c = \max(\theta, \tau_1/10)` for a self-regulating process and
+:math:`\tau_c = \max(\theta, \tau_{c,\min})` for an integrating one, :data:`SIMC_FLOOR_FRACTION`
+and ``min_tau_c``: a fitted dead time near zero otherwise gives a gain that swings the MV between
+its limits on every sample of measurement noise.  The floor is common practice, no source; it is
+the same :math:`0.1\tau` floor as the IMC default :math:`\lambda` below.  Skogestad and Grimholt
+(2012, "The SIMC method for smooth PID controller tuning", from memory) discuss choosing a larger
+:math:`\tau_c` for smooth control):
 
 * FOPDT :math:`k e^{-\theta s}/(\tau_1 s + 1)` -> PI: :math:`K_c = \frac{1}{k}\frac{\tau_1}{\tau_c + \theta}`,
   :math:`\tau_I = \min(\tau_1, 4(\tau_c + \theta))`;
@@ -73,7 +80,8 @@ from .pid import PIDLoop
 
 __all__ = ["ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating",
            "fit_step", "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "RULES",
-           "tune_pid_loops", "default_test_duration", "rule_on_fit"]
+           "tune_pid_loops", "default_test_duration", "rule_on_fit", "SIMC_FLOOR_FRACTION",
+           "SIMC_MIN_SAMPLES"]
 
 RULES = ("simc", "imc", "ziegler_nichols")
 ZN_METHODS = ("ultimate", "reaction_curve")
@@ -345,16 +353,35 @@ def _loop(fit: ProcessFit, K: float, Ti: float, Td: float, rule: str, cv: str | 
                    integral_time=float(Ti), derivative_time=float(Td), rule=rule, **kw)
 
 
-def simc(fit: ProcessFit, *, tau_c: float | None = None, cv: str | None = None,
-         mv: str | None = None, **loop_kw: Any) -> PIDLoop:
-    """SIMC settings (Skogestad 2003; formulas in the module docstring)."""
+#: the default SIMC tau_c is at least this fraction of the largest time constant (common
+#: practice, no source; as the IMC default lambda)
+SIMC_FLOOR_FRACTION = 0.1
+#: :func:`tune_pid_loops` and :func:`rule_on_fit` give SIMC a default tau_c of at least this many
+#: sample times (a sampled loop cannot be faster than a few samples; common practice, no source)
+SIMC_MIN_SAMPLES = 10
+
+
+def simc(fit: ProcessFit, *, tau_c: float | None = None, min_tau_c: float = 0.0,
+         cv: str | None = None, mv: str | None = None, **loop_kw: Any) -> PIDLoop:
+    """SIMC settings (Skogestad 2003; formulas in the module docstring).
+
+    The default ``tau_c`` is ``max(dead time, tau_1 / 10, min_tau_c)`` (``tau_1`` the largest
+    time constant; none for an integrating process): Skogestad's ``tau_c = dead time`` with a
+    floor (common practice, no source).  ``min_tau_c`` applies only to the default;
+    :func:`tune_pid_loops` gives ten samples (:data:`SIMC_MIN_SAMPLES`).
+    """
     _refuse_inverse(fit, "simc")
     th = fit.dead_time
+    if not (isinstance(min_tau_c, (int, float)) and not isinstance(min_tau_c, bool)
+            and math.isfinite(min_tau_c) and min_tau_c >= 0):
+        raise SettingsError(f"simc: min_tau_c must be a finite number >= 0; found {min_tau_c!r}.")
     if tau_c is None:
-        if th <= 0:
-            raise SettingsError("simc: the fitted dead time is 0, so the default tau_c = dead time "
-                                "is 0; give tau_c (the desired closed-loop time constant) > 0.")
-        tau_c = th
+        floor = SIMC_FLOOR_FRACTION * fit.time_constants[0] if fit.time_constants else 0.0
+        tau_c = max(th, floor, float(min_tau_c))
+        if tau_c <= 0:
+            raise SettingsError("simc: the fitted dead time is 0 and the process integrates, so "
+                                "the default tau_c = dead time is 0; give tau_c (the desired "
+                                "closed-loop time constant) > 0.")
     if not (isinstance(tau_c, (int, float)) and math.isfinite(tau_c) and tau_c > 0):
         raise SettingsError(f"simc: tau_c must be a finite number > 0; found {tau_c!r}.")
     k = fit.gain
@@ -610,7 +637,8 @@ def rule_on_fit(f: ProcessFit, cv: str, mv: str, *, Ts: float, rule: str,
     # measurement adds (analyzer dead time and half its cycle)
     f = ProcessFit(f.kind, f.gain, f.time_constants, f.dead_time + 0.5 * Ts + float(extra),
                    rmse=f.rmse, inverse_response=f.inverse_response, cv=f.cv, mv=f.mv)
-    kw = dict(rule_options.get("*", {}))
+    kw: dict[str, Any] = {"min_tau_c": SIMC_MIN_SAMPLES * Ts} if rule == "simc" else {}
+    kw.update(rule_options.get("*", {}))
     kw.update(rule_options.get(cv, {}))
     kw.update(loop_options or {})
     try:

@@ -71,8 +71,7 @@ def check_bundle(path: str | Path, *, tolerance: float = TOLERANCE, cls: type | 
             raise
         raise SettingsError(f"{rp}: expected the recorded run written by 'mpcproto export'; "
                             f"found a record that cannot be replayed ({type(exc).__name__}: {exc}).") from None
-    scales = [ctl.mv[n]["scale"] if ctl.mv and n in ctl.mv and "scale" in ctl.mv[n] else 1.0
-              for n in ctl.dmodel.mv_names]
+    scales = ctl._resolved["mv_scale"]      # as the rebuilt controller uses them
     cmp = compare_moves(ours, decode_array(replay["steps"]["u"]).reshape(-1, ctl.dmodel.nu)
                         if replay["steps"]["u"] else np.zeros((0, ctl.dmodel.nu)),
                         np.asarray(scales, float), tolerance)

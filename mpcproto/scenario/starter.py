@@ -30,18 +30,11 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from ..control.mpc_settings import default_scale, range_span
+from ..control.mpc_settings import nice_number as _nice
 from ..exceptions import OperatingPointError, SettingsError
 
 __all__ = ["starter_scenario"]
-
-
-def _nice(v: float) -> float:
-    """*v* rounded to the nearest 1, 2 or 5 times a power of ten."""
-    if not (math.isfinite(v) and v > 0):
-        return 1.0
-    e = math.floor(math.log10(v))
-    best = min((abs(math.log(v / (m * 10 ** e))), m) for m in (1, 2, 5, 10))[1]
-    return float(best * 10 ** e)
 
 
 def _g(v: float) -> str:
@@ -54,9 +47,7 @@ def _g(v: float) -> str:
 
 def _span(v: Any) -> float:
     """A variable's physical range, or a stand-in from its nominal value when a bound is open."""
-    if math.isfinite(v.low) and math.isfinite(v.high) and v.high > v.low:
-        return float(v.high - v.low)
-    return max(abs(float(v.nominal)), 1.0)
+    return range_span(v.low, v.high, v.nominal)
 
 
 def _toml_value(v: Any) -> str:
@@ -119,10 +110,10 @@ def starter_scenario(model: Any, out: str | Path, *, options: Mapping[str, Any] 
             f"study from; found none ({e}). Give the model nominal values that hold it steady.") from None
     lin = linearize(m, op)
     mvs, dvs, cvs = m.variables("mv"), m.variables("dv"), m.variables("cv")
-    mv_scale = {v.name: _nice(_span(v) / 20) for v in mvs}
-    cv_span = {c: (_span(v) if math.isfinite(v.low) and math.isfinite(v.high)
-                   else max(abs(float(y)), 1.0)) for c, v, y in zip(m.cv_names, cvs, op.y)}
-    cv_scale = {c: _nice(s / 20) for c, s in cv_span.items()}
+    # the MPC's own default scales (control.mpc_settings.default_scale), written out
+    mv_scale = {v.name: default_scale((v.low, v.high), nominal=v.nominal) for v in mvs}
+    cv_span = {c: range_span(v.low, v.high, y) for c, v, y in zip(m.cv_names, cvs, op.y)}
+    cv_scale = {c: default_scale((v.low, v.high), nominal=y) for c, v, y in zip(m.cv_names, cvs, op.y)}
 
     # times from the linear model
     pairs = [p for p in lin.pairs() if p["connected"]]
