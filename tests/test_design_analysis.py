@@ -238,6 +238,12 @@ def test_assess_command_prints_the_design_checks(tmp_path, capsys):
     assert rep["gain_analysis"]["niederlinski"] == pytest.approx(-123.58 / (12.8 * -19.4), rel=1e-9)
     assert [p["cv"] for p in rep["pid"]] == ["top_composition", "bottom_composition"]
     assert all(p["margins"]["gain_margin"] > 1 for p in rep["pid"])
+    # half rule on a first-order channel: the published FOPDT itself (Wood & Berry 1973: 12.8,
+    # 16.7 min, 1 min) plus half the 1 min sample for the hold (Skogestad 2003's digital rule)
+    h = rep["pid"][0]["half_rule"]
+    assert h["gain"] == pytest.approx(12.8, rel=1e-9)
+    assert h["time_constant"] == pytest.approx(16.7, rel=1e-9)
+    assert h["dead_time"] == pytest.approx(1.0 + 0.5, rel=1e-9)
 
 
 def test_assess_refuses_a_bad_locus_variable(capsys):

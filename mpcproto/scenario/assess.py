@@ -127,10 +127,30 @@ def design_report(scn: Scenario) -> dict[str, Any]:
             except SettingsError as e:
                 row["margins"] = None
                 row["note"] = str(e)
+            row["half_rule"] = _half_rule_of(lin, lp.cv, lp.mv, Ts)
             loops.append(row)
     out["pid"] = loops
     out["mpc"] = _mpc_section(scn, prep, warns)
     return out
+
+
+def _half_rule_of(lin, cv: str, mv: str, Ts: float) -> dict[str, Any] | None:
+    """Skogestad's half-rule FOPDT of the (cv, mv) channel of the linear model (its real poles,
+    right-half-plane zeros as inverse-response time constants, dead time, half a sample for the
+    hold), or None where the rule does not apply (complex poles, left-half-plane zeros, an
+    integrating or unconnected channel)."""
+    from ..control.loop_analysis import half_rule
+
+    ch = next(p for p in lin.pairs() if p["cv"] == cv and p["mv"] == mv)
+    poles = [complex(p) for p in ch["poles"]]
+    zeros = [complex(z) for z in ch["zeros"]]
+    if (not ch["connected"] or ch["integrating"] or not poles
+            or any(abs(p.imag) > 1e-9 * max(1.0, abs(p)) or p.real >= 0 for p in poles)
+            or any(abs(z.imag) > 1e-9 * max(1.0, abs(z)) or z.real <= 0 for z in zeros)):
+        return None
+    fit = half_rule(ch["gain"], [-1.0 / p.real for p in poles], ch["dead_time"],
+                    inverse_response=[1.0 / z.real for z in zeros], sample_time=Ts)
+    return {"gain": fit.gain, "time_constant": fit.time_constants[0], "dead_time": fit.dead_time}
 
 
 def _mpc_section(scn: Scenario, prep, warns: list[str]) -> dict[str, Any] | None:
@@ -202,6 +222,13 @@ def print_design_report(rep: Mapping[str, Any]) -> None:
                   f"{f(mg.get('gain_margin'))}{f(mg.get('phase_margin_deg'), 8, 3)}"
                   f"{f(mg.get('peak_sensitivity'), 7)}{f(mg.get('ultimate_gain'), 10)}"
                   f"{f(mg.get('ultimate_period'), 9)}")
+        halves = [(lp, lp["half_rule"]) for lp in rep["pid"] if lp.get("half_rule")]
+        if halves:
+            print("  Skogestad's half rule on each channel's linear model (FOPDT for SIMC, beside "
+                  "the step-test fit the rule used):")
+            for lp, h in halves:
+                print(f"    {lp['cv'] + '<-' + lp['mv']:<30} gain {h['gain']:.4g}, time constant "
+                      f"{h['time_constant']:.4g}, dead time {h['dead_time']:.4g} {tu}")
     mpc = rep.get("mpc")
     if mpc:
         print(f"\nMPC '{mpc['label']}' with no constraint active (linear loop: plant, estimator, "
