@@ -57,11 +57,11 @@ EXIT_INTERNAL = 3
 
 # ----------------------------------------------------------------------------------------- models
 def _models_data() -> list[dict[str, Any]]:
-    from . import models
+    from .models.library import available
     from .models.resolve import describe_reference
 
     out = []
-    for entry in models.available():
+    for entry in available():
         d = dict(entry)
         desc = describe_reference(entry["name"])
         d["variables"] = desc["variables"]

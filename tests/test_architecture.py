@@ -65,8 +65,7 @@ def _targets(mod: str, node: ast.AST) -> list[str]:
     else:
         name = node.module or ""
     subs = [f"{name}.{a.name}" for a in node.names if f"{name}.{a.name}" in MODULES]
-    if len(subs) == len(node.names):           # `from . import a, b`: the submodules only
-        return subs
+    # `from . import a` runs the package's __init__ as well: an edge to the package too
     return ([name] if name in MODULES else []) + subs
 
 
@@ -127,3 +126,11 @@ def test_no_circle_of_imports():
         if m not in state:
             visit(m)
     assert not cycles, "circles of imports:\n" + "\n".join(" -> ".join(c) for c in cycles)
+
+
+def test_no_module_imports_its_own_package():
+    # a submodule that imports its package (`from . import x`, `from .. import y`) closes a circle
+    # with the package's __init__, which imports its submodules
+    bad = [f"{m} imports {d}" for m, deps in _graph().items() for d in sorted(deps)
+           if m.startswith(d + ".")]
+    assert not bad, "\n".join(bad)

@@ -4,6 +4,7 @@ circle of imports)."""
 
 from __future__ import annotations
 
+import importlib
 import math
 from collections.abc import Mapping
 from types import ModuleType
@@ -12,16 +13,15 @@ from typing import Any
 from .._specs import as_float, shown
 from ..exceptions import ModelError
 from ..model import Model, suggest
-from . import blending_tank, henson_seborg_cstr, quadruple_tank, wood_berry
 
 __all__ = ["available", "make", "make_from_module"]
 
 # name -> module; every module defines DESCRIPTION, OPTIONS, default_parameters(options), build(p, options)
+#: (the modules are imported by name, not through the package, so the library never imports the
+#: package that imports it)
 _REGISTRY: dict[str, ModuleType] = {
-    "blending_tank": blending_tank,
-    "henson_seborg_cstr": henson_seborg_cstr,
-    "quadruple_tank": quadruple_tank,
-    "wood_berry": wood_berry,
+    name: importlib.import_module(f"{__package__}.{name}")
+    for name in ("blending_tank", "henson_seborg_cstr", "quadruple_tank", "wood_berry")
 }
 
 

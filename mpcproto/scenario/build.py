@@ -201,7 +201,7 @@ def operating_point(scn: Scenario, model: Model | None = None):
     "stable" or "unstable" (the one nearest the guess among those, e.g. the open-loop-unstable middle
     state of an exothermic reactor).
     """
-    from .. import operating
+    from ..operating import solve_targets, steady_state, steady_states
 
     model = plant_model(scn) if model is None else model
     op = scn.data["operating_point"]
@@ -227,7 +227,7 @@ def operating_point(scn: Scenario, model: Model | None = None):
     xg = model.vector("state", op["state_guess"]) if op["state_guess"] else None
     try:
         if op["targets"]:
-            res = operating.solve_targets(model, dict(op["targets"]), d=d,
+            res = solve_targets(model, dict(op["targets"]), d=d,
                                           fixed_mvs=dict(op["mvs"]) or None, x_guess=xg)
             if not res.reachable:
                 raise ScenarioError(
@@ -235,8 +235,8 @@ def operating_point(scn: Scenario, model: Model | None = None):
                     f"found: {res.message}", file=scn.file, key="operating_point.targets")
             return res.op
         if op["pick"] == "nearest":
-            return operating.steady_state(model, u, d, x_guess=xg)
-        found = operating.steady_states(model, u, d, starts=None if xg is None else [xg])
+            return steady_state(model, u, d, x_guess=xg)
+        found = steady_states(model, u, d, starts=None if xg is None else [xg])
         return _pick(scn, found, op["pick"], xg if xg is not None else model.nominal("state"))
     except ScenarioError:
         raise

@@ -89,7 +89,7 @@ def starter_scenario(model: Any, out: str | Path, *, options: Mapping[str, Any] 
     ModelError, OperatingPointError
         The model cannot be built or has no steady state at its nominal MVs and DVs.
     """
-    from .. import operating
+    from ..operating import steady_state
     from ..linear import linearize
     from ..models.resolve import model_options, parse_reference, resolve_model
 
@@ -103,7 +103,7 @@ def starter_scenario(model: Any, out: str | Path, *, options: Mapping[str, Any] 
     else:
         written_ref = ref.text
     try:
-        op = operating.steady_state(m, m.nominal("mv"), m.nominal("dv"))
+        op = steady_state(m, m.nominal("mv"), m.nominal("dv"))
     except OperatingPointError as e:
         raise OperatingPointError(
             f"MODEL {ref.label}: expected a steady state at the nominal MVs and DVs to start the "
