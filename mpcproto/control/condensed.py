@@ -25,7 +25,10 @@ values); nothing else is a variable:
 * **hard MV limits** are simple bounds on ``U``; **rate limits** rows of the move matrix, only for
   MVs with a finite rate;
 * the move suppression, the pull to the preferred (target) MVs and the optional terminal cost
-  (DARE weight on the last predicted state) are in the Hessian.
+  (DARE weight on the last predicted state) are in the Hessian;
+* with setpoint preview (an input block ``ref``, :mod:`mpcproto.control.preview`) the band of a CV
+  moves stage by stage: for a setpoint that is the gradient term ``-2 G' Q ref`` (one
+  matrix-vector product per sample, nothing rebuilt), for a zone its rows' bounds.
 
 DAQP minimizes ``0.5 U'HU + f'U`` plus the soft-row penalties; ``H`` is twice the Hessian form of
 the controller's objective (which has no factor 1/2), so DAQP's objective *is* the controller's
@@ -104,6 +107,7 @@ class CondensedQP:
         self._zs = dict(inputs)
         self.options = dict(DAQP_DEFAULTS)
         self.options.update(options or {})
+        self._preview = "ref" in self._zs
         self.is_built = False
 
     # ------------------------------------------------------------------ build
@@ -151,7 +155,8 @@ class CondensedQP:
             F5[np.arange(N), :, np.arange(1, N + 1), :] += Dd
             P[:, zs["dtraj"]] = F5.reshape(N * ny, (N + 1) * nd)
         P[:, zs["w"]] = (np.cumsum(mkW, axis=0) + Cw).reshape(N * ny, ny)
-        self.free_ = P / np.tile(sy, N)[:, None]
+        self._sy_t = np.tile(sy, N)               # scale of each output row k*ny + i
+        self.free_ = P / self._sy_t[:, None]
         self._k_end = k_end
         # move matrix: dU = Dm U - e1 (x) u_prev
         Dm = np.eye(n) - np.eye(n, k=-nu)
@@ -240,10 +245,12 @@ class CondensedQP:
         if self._Pt is not None:
             fz = fz + self._Kt @ self._PxN
         fb = fG.reshape(n, int(eq.sum()), N).sum(axis=2)
+        fref = fG / self._sy_t[r_eq][None, :] if self._preview else None   # times ref[r_eq]
         used = np.concatenate([r_zone, r_lim])
         st = {"H": H, "A": Arows, "sense": sense, "rho": rho, "wlin": wlin, "r_eq": r_eq,
               "r_zone": r_zone, "r_lim": r_lim, "r_rate": r_rate, "free": self.free_[used],
-              "fz": fz, "fb": fb, "n_eq": len(r_eq), "n_zone": len(r_zone),
+              "fz": fz, "fb": fb, "fref": fref, "sy_zone": self._sy_t[r_zone],
+              "n_eq": len(r_eq), "n_zone": len(r_zone),
               "n_lim": len(r_lim), "model": daqp.Model(), "ready": False, "wkey": None,
               "bu": np.empty(m), "bl": np.empty(m), "lim_cv": np.flatnonzero(lim),
               "zone_cv": np.flatnonzero(zone), "eq_cv": np.flatnonzero(eq),
@@ -276,6 +283,9 @@ class CondensedQP:
         lim = ((lq > 0) | (hq > 0)) & (np.isfinite(lim_lo) | np.isfinite(lim_hi))
         # a zone whose ends are the CV's limits shares the limit's row: q v^2 + l v + h v^2
         merged = zone & lim & (band_lo == lim_lo) & (band_hi == lim_hi)
+        if self._preview:
+            ref = z[zs["ref"]]
+            merged &= ~np.any(ref.reshape(N, ny) != 0, axis=0)   # a moving band: its own rows
         zone = zone & ~merged
         rated = np.isfinite(rate)
         st, key = self._structure(eq, zone, lim, rated)
@@ -286,6 +296,8 @@ class CondensedQP:
         f = self._fprev @ u_prev - self._fpref @ z[zs["pref"]] + st["fz"] @ zf
         if st["n_eq"]:
             f += st["fb"] @ band_lo[st["eq_cv"]]
+            if self._preview:
+                f += st["fref"] @ ref[st["r_eq"]]
         if self._Pt is not None:
             f -= self._Kt @ (z[zs["x_term"]] / self._sx)
         bu, bl = st["bu"], st["bl"]
@@ -296,6 +308,10 @@ class CondensedQP:
             c = st["zone_cv"]
             bl[o:o + nz_] = np.repeat(band_lo[c], N) - yf[:nz_]
             bu[o:o + nz_] = np.repeat(band_hi[c], N) - yf[:nz_]
+            if self._preview:
+                moved = ref[st["r_zone"]] / st["sy_zone"]
+                bl[o:o + nz_] += moved
+                bu[o:o + nz_] += moved
             o += nz_
         if nl:
             c = st["lim_cv"]
@@ -409,6 +425,9 @@ class CondensedQP:
         U = u.ravel(order="F")
         Y = (self.free_ @ z[:self._k_end] + self.G_ @ U).reshape(self.ny, N, order="F")
         blo, bhi = (z[zs["band_lo"]] / sy)[:, None], (z[zs["band_hi"]] / sy)[:, None]
+        if self._preview:
+            moved = z[zs["ref"]].reshape(N, self.ny).T / sy[:, None]
+            blo, bhi = blo + moved, bhi + moved
         E = np.where(Y < blo, Y - blo, np.where(Y > bhi, Y - bhi, 0.0))
         llo, lhi = (z[zs["lim_lo"]] / sy)[:, None], (z[zs["lim_hi"]] / sy)[:, None]
         with np.errstate(invalid="ignore"):

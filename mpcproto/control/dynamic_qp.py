@@ -20,17 +20,24 @@ __all__ = ["state_dynamic_qp", "input_layout", "state_scales", "noise_scales",
            "target_preferred_weight"]
 
 
-def input_layout(nx: int, nu: int, nd: int, ny: int, N: int, M: int, terminal: bool) -> dict[str, int]:
-    """Blocks of the controller's per-sample input vector ``z`` (engineering deviation units)."""
+def input_layout(nx: int, nu: int, nd: int, ny: int, N: int, M: int, terminal: bool, *,
+                 preview: bool = False) -> dict[str, int]:
+    """Blocks of the controller's per-sample input vector ``z`` (engineering deviation units).
+
+    With *preview* a last block ``ref`` (N*ny, stage after stage): the per-stage departures of
+    the CV band from its one value (:mod:`mpcproto.control.preview`), added to both band ends.
+    """
     layout = {"x0": nx, "u_prev": nu, "d_now": nd, "dtraj": nd * (N + 1), "w": ny,
               "band_lo": ny, "band_hi": ny, "lim_lo": ny, "lim_hi": ny, "u_lo": nu * M,
               "u_hi": nu * M, "rate": nu, "pref": nu}
     if terminal:
         layout["x_term"] = nx
+    if preview:
+        layout["ref"] = ny * N
     return layout
 
 
-def state_dynamic_qp(scaled, scales, N: int, M: int, Pt=None) -> CompiledQP:
+def state_dynamic_qp(scaled, scales, N: int, M: int, Pt=None, preview: bool = False) -> CompiledQP:
     """Write, compile and map the sparse dynamic QP.
 
     Parameters
@@ -42,6 +49,8 @@ def state_dynamic_qp(scaled, scales, N: int, M: int, Pt=None) -> CompiledQP:
         Prediction and control horizons.
     Pt : ndarray or None
         Terminal weight on the scaled last state.
+    preview : bool
+        The input vector carries per-stage band departures (``ref``, setpoint preview).
     """
     import cvxpy as cp
 
@@ -111,7 +120,7 @@ def state_dynamic_qp(scaled, scales, N: int, M: int, Pt=None) -> CompiledQP:
                     inf_parameters=("band_lo", "band_hi", "lim_lo", "lim_hi", "u_lo",
                                     "u_hi", "du_lo", "du_hi"),
                     owner="PredictiveController").compile()
-    layout = input_layout(nx, nu, nd, ny, N, M, Pt is not None)
+    layout = input_layout(nx, nu, nd, ny, N, M, Pt is not None, preview=preview)
     # the inputs stay in engineering deviation units: the scaling is folded into the maps
     oneN, oneM = np.ones((N, 1)), np.ones((M, 1))
     iy, iu, ix = sp.diags(1 / sy), sp.diags(1 / su), sp.diags(1 / sx)
@@ -134,6 +143,10 @@ def state_dynamic_qp(scaled, scales, N: int, M: int, Pt=None) -> CompiledQP:
     }
     if Pt is not None:
         maps["x_term"] = {"x_term": ix}
+    if preview:             # per-stage departures (same order as the band's Fortran flattening)
+        ref = sp.diags(np.tile(1 / sy, N))
+        maps["band_lo"]["ref"] = ref
+        maps["band_hi"]["ref"] = ref
     qp.set_inputs(layout, maps, inf_inputs=("band_lo", "band_hi", "lim_lo", "lim_hi",
                                             "u_lo", "u_hi", "rate"))
     return qp

@@ -66,6 +66,7 @@ from .dynamic_qp import (input_layout, noise_scales, state_dynamic_qp, state_sca
                          target_preferred_weight)
 from .estimator import DisturbanceEstimator
 from .limits import limit_activity, project_command
+from .preview import stage_references
 from .mpc_settings import CV_KEYS, DV_KEYS, MV_KEYS, SETTINGS_KEYS, _err, resolve  # noqa: F401
 from .steady_target import SteadyTarget
 
@@ -155,6 +156,12 @@ class PredictiveController:
         cvxpy before falling back (the first such call compiles the statement -- on the DAQP path
         seconds at long horizons -- and canonicalizes for that solver).  None or "none": fall
         back at once.
+    setpoint_preview : bool
+        False (default): the setpoint now is held over the horizon.  True: the setpoints known in
+        advance over the horizon (``setpoint_program`` of :meth:`step`; the closed loop passes the
+        known part of the scenario's setpoint signals) are per-stage references of the dynamic QP
+        and the steady target is computed for the last previewed setpoint
+        (:mod:`mpcproto.control.preview`); the controller then moves ahead of a programmed change.
 
     Defaults of every key are in the module constants ``SETTINGS_KEYS``, ``CV_KEYS``,
     ``MV_KEYS`` and ``DV_KEYS``.
@@ -186,7 +193,8 @@ class PredictiveController:
                  terminal_cost: bool = False, steady_target: bool = True, solver: str = "auto",
                  fast_path: bool = True, solver_options: Mapping[str, Any] | None = None,
                  state_noise: float = 1e-4, history: int = 60, priority_ratio: float = 10.0,
-                 fallback: str = "shift", backup_solver: str | None = "clarabel"):
+                 fallback: str = "shift", backup_solver: str | None = "clarabel",
+                 setpoint_preview: bool = False):
         self.dmodel = dmodel
         self.horizon = horizon
         self.control_horizon = control_horizon
@@ -203,6 +211,7 @@ class PredictiveController:
         self.priority_ratio = priority_ratio
         self.fallback = fallback
         self.backup_solver = backup_solver
+        self.setpoint_preview = setpoint_preview
         self.is_built = False
         self._op = None
 
@@ -323,9 +332,10 @@ class PredictiveController:
         self.terminal_weight_ = Pt
         A, B, C, D = As, Bs, Cs, Ds
         # -- the dynamic QP: condensed (DAQP) or the sparse cvxpy statement (OSQP / cvxpy)
-        self._statement_args = (self.scaled_, (sx, su, sy), N, M, Pt)
+        preview = bool(self.setpoint_preview)
+        self._statement_args = (self.scaled_, (sx, su, sy), N, M, Pt, preview)
         self._qp = None
-        layout = input_layout(nx, nu, nd, ny, N, M, Pt is not None)
+        layout = input_layout(nx, nu, nd, ny, N, M, Pt is not None, preview=preview)
         off, o = {}, 0
         for k, s_ in layout.items():
             off[k] = slice(o, o + s_)
@@ -378,6 +388,12 @@ class PredictiveController:
             self._check_built("qp_")
             self._qp = state_dynamic_qp(*self._statement_args)
         return self._qp
+
+    @property
+    def preview_samples(self) -> int:
+        """Rows of ``setpoint_program`` the controller uses (now and the N samples ahead) when
+        ``setpoint_preview`` is on and it is built; else 0 (the closed loop passes no program)."""
+        return self._N + 1 if self.is_built and self.setpoint_preview else 0
 
     def _check_built(self, what: str) -> None:
         if not self.is_built:
@@ -467,6 +483,12 @@ class PredictiveController:
                                 f"{np.shape(dv_forecast)}.")
         return f
 
+    def _preview(self, program, sp_):
+        """``(sp_end, departures)`` of the setpoint program (checked), or None (no preview)."""
+        if program is None or not self.setpoint_preview:
+            return None
+        return stage_references(program, sp_, self._N)
+
     def _limits(self, targets: Targets):
         """Hard MV limits and rates (absolute), CV soft limits and setpoints for this sample."""
         r = self._resolved
@@ -496,7 +518,8 @@ class PredictiveController:
 
     def step(self, t: float, meas: Measurement, dv: np.ndarray, targets: Targets,
              dv_forecast: np.ndarray | None = None, *,
-             u_applied: np.ndarray | None = None) -> ControlOutput:
+             u_applied: np.ndarray | None = None,
+             setpoint_program: np.ndarray | None = None) -> ControlOutput:
         """One sample: estimate, target, solve, return the MVs (absolute) and diagnostics.
 
         Parameters
@@ -519,6 +542,10 @@ class PredictiveController:
             penalties and rate limits and as the input of the estimator's last prediction, so a
             stuck, saturated or rate-limited valve neither biases the disturbance estimates nor
             makes the plan start from a position the valve never reached.
+        setpoint_program : ndarray (n, ny) or None
+            With ``setpoint_preview`` on: the setpoints expected at t, t+Ts, ... (absolute, CV
+            order; rows past its end repeat the last one; NaN: the setpoint now); see
+            :mod:`mpcproto.control.preview`.  Ignored when ``setpoint_preview`` is off.
 
         Returns
         -------
@@ -553,6 +580,7 @@ class PredictiveController:
         # ---- inputs checked before anything changes state
         mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_ = self._limits(targets)
         dv_forecast = self._forecast(dv_forecast)
+        preview = self._preview(setpoint_program, sp_)
         if u_applied is not None:
             ua = self._vec(u_applied, nu, "u_applied", np.nan)
             known = np.isfinite(ua)
@@ -602,7 +630,7 @@ class PredictiveController:
             self.estimator_.reset(None, t)
             return self._finish(u, STATUS_FAILED, diag, t_start)
         res = self._optimize(x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
-                             self._u_prev, diag)
+                             self._u_prev, diag, preview=preview)
         diag["solve_ms"] = res.solve_ms
         diag["solver_status"] = res.status
         diag["iterations"] = res.iterations
@@ -653,8 +681,11 @@ class PredictiveController:
         return self._finish(u, status, diag, t_start)
 
     def _optimize(self, x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
-                  u_prev, diag):
-        """Steady target and dynamic QP for estimate (x, w); returns the dynamic QPResult."""
+                  u_prev, diag, preview=None):
+        """Steady target and dynamic QP for estimate (x, w); returns the dynamic QPResult.
+        *preview*: ``(sp_end, departures)`` of :func:`~mpcproto.control.preview.stage_references`."""
+        if preview is not None:
+            sp_ = preview[0]             # the target for the end of the horizon
         m = self.dmodel
         N = self._N
         op_u, op_d, op_y = self._op_u, self._op_d, self._op_y
@@ -750,6 +781,8 @@ class PredictiveController:
         z[zs["pref"]] = pref
         if self.terminal_weight_ is not None:
             z[zs["x_term"]] = self._target[2]
+        if "ref" in zs:
+            z[zs["ref"]] = 0.0 if preview is None else preview[1]
         cond = self.condensed_
         if fast:
             if cond is not None:
@@ -780,7 +813,8 @@ class PredictiveController:
 
     def plan(self, x: np.ndarray, targets: Targets, *, disturbance: np.ndarray | None = None,
              dv: np.ndarray | None = None, dv_forecast: np.ndarray | None = None,
-             u_prev: np.ndarray | None = None) -> dict[str, Any]:
+             u_prev: np.ndarray | None = None,
+             setpoint_program: np.ndarray | None = None) -> dict[str, Any]:
         """Solve the control problem for a given state, without touching the estimator.
 
         A what-if tool (and the hook the tests use to compare with LQR and with cvxpy's own
@@ -800,6 +834,8 @@ class PredictiveController:
             As in :meth:`step`.
         u_prev : ndarray (nu,) or None
             MVs applied over the last sample (absolute; default: the operating point's).
+        setpoint_program : ndarray (n, ny) or None
+            As in :meth:`step` (used with ``setpoint_preview`` on).
 
         Returns
         -------
@@ -821,8 +857,9 @@ class PredictiveController:
         up = self._op_u.copy() if u_prev is None else self._vec(u_prev, m.nu, "u_prev", np.nan)
         lims = self._limits(targets)
         dv_forecast = self._forecast(dv_forecast)
+        preview = self._preview(setpoint_program, lims[5])
         diag: dict[str, Any] = {}
-        res = self._optimize(x, w, d_now, use, dv_forecast, *lims, up, diag)
+        res = self._optimize(x, w, d_now, use, dv_forecast, *lims, up, diag, preview=preview)
         if res.values and "x" not in res.values:        # condensed: states on demand
             z = self._last_inputs
             res.values["x"] = self.condensed_.states(z, res.values["u"])

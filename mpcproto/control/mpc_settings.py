@@ -28,7 +28,7 @@ SETTINGS_KEYS: dict[str, Any] = {
     "horizon": 30, "control_horizon": None, "cv": None, "mv": None, "dv": None,
     "terminal_cost": False, "steady_target": True, "solver": "auto", "fast_path": True,
     "solver_options": None, "state_noise": 1e-4, "history": 60, "priority_ratio": 10.0,
-    "fallback": "shift", "backup_solver": "clarabel",
+    "fallback": "shift", "backup_solver": "clarabel", "setpoint_preview": False,
 }
 #: per-CV keys and defaults (``scale`` None: derived from the CV's range, :func:`default_scale`)
 CV_KEYS: dict[str, Any] = {
@@ -181,6 +181,7 @@ def resolve(ctrl) -> dict[str, Any]:
     _bool("terminal_cost", ctrl.terminal_cost)
     _bool("steady_target", ctrl.steady_target)
     _bool("fast_path", ctrl.fast_path)
+    _bool("setpoint_preview", ctrl.setpoint_preview)
     if ctrl.solver not in SOLVERS:
         raise _err("solver", f"one of {SOLVERS}", ctrl.solver)
     kind = ctrl.solver

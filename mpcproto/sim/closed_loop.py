@@ -191,12 +191,15 @@ class ClosedLoop:
                     f"{suggest(str(k), names)}; its {role.upper()}s are: {', '.join(names)}.")
         return dict(mapping)
 
-    def _series(self, spec: Any, reference: float, what: str) -> np.ndarray:
+    def _series(self, spec: Any, reference: float, what: str, keep: dict | None = None,
+                key: Any = None) -> np.ndarray:
         sig = signal_from_spec(spec, what=what, rng=self._sig_rng)
         if sig.relative and not math.isfinite(reference):
             raise SettingsError(
                 f"{what}: a relative signal needs a finite reference value; give the spec a "
                 f"'base' (an absolute value) instead.")
+        if keep is not None:
+            keep[key] = sig
         return np.asarray(sig.value(self.times), float) + sig.resolve(reference)
 
     def _setup_signals(self, dvs, setpoints, cv_limits, mv_limits) -> None:
@@ -211,9 +214,11 @@ class ClosedLoop:
                 self.D[:, j] = np.asarray(sig.value(tf), float) + sig.resolve(op.d[j])
         sps = self._names_check(setpoints, "cv", "setpoints")
         self.SP = np.tile(np.asarray(op.y, float), (N, 1))
+        self._sp_signals: dict[int, Any] = {}      # kept for a setpoint preview
         for j, n in enumerate(m.cv_names):
             if n in sps:
-                self.SP[:, j] = np.nan if sps[n] is None else self._series(sps[n], op.y[j], f"setpoints.{n}")
+                self.SP[:, j] = np.nan if sps[n] is None else self._series(
+                    sps[n], op.y[j], f"setpoints.{n}", self._sp_signals, j)
         self.LO, self.HI = self._limit_series(cv_limits, "cv", "cv_limits")
         self.MVLO, self.MVHI = self._limit_series(mv_limits, "mv", "mv_limits", allow_rate=True)
         # the MV limits a controller gets are hard: never beyond the physical travel
@@ -298,6 +303,7 @@ class ClosedLoop:
         m, op, N = self.model, self.op, self.n_steps
         self.plant.reset(op.x, op.u, op.d)
         self.controller.reset(op, self.t0)
+        self._setup_preview()
         self.k = 0
         self.u_prev = np.asarray(op.u, float).copy()
         self._filt = np.asarray(op.y, float).tolist()
@@ -339,6 +345,20 @@ class ClosedLoop:
         for arr in (self.SP, self.LO, self.HI, self.MVLO, self.MVHI, self._dv_seen,
                     self._rate_per_sample):
             arr.flags.writeable = False    # handed to the controller as views: read-only
+
+    def _setup_preview(self) -> None:
+        """The known part of the setpoint signals over the run plus the controller's preview
+        (``preview_samples`` rows from each sample on), when the controller asks for one."""
+        n = getattr(self.controller, "preview_samples", 0)
+        self._preview_n = int(n) if isinstance(n, (int, np.integer)) and n > 0 else 0
+        if not self._preview_n:
+            return
+        N, ny = self.n_steps, self.model.ny
+        tf = self.t0 + self.Ts * np.arange(N + self._preview_n - 1)
+        K = np.zeros((len(tf), ny))
+        for j, sig in self._sp_signals.items():
+            K[:, j] = sig.known_shape(tf)
+        self._known_sp = K
 
     def _fault_vars(self) -> list[str]:
         out: list[str] = []
@@ -429,13 +449,17 @@ class ClosedLoop:
         fc = None
         if self.forecast_steps:
             fc = np.where(self._dv_mask, self.D[k:k + self.forecast_steps], np.nan)
+        kw = {}
+        if self._preview_n:           # setpoint now + the known program's change from now
+            K = self._known_sp
+            kw["setpoint_program"] = self.SP[k] + (K[k:k + self._preview_n] - K[k])
         t_start = time.perf_counter()
         try:
             if self._readback:
                 out = self.controller.step(t, meas, dv_seen, targets, fc,
-                                           u_applied=self.u_prev.copy())
+                                           u_applied=self.u_prev.copy(), **kw)
             else:
-                out = self.controller.step(t, meas, dv_seen, targets, fc)
+                out = self.controller.step(t, meas, dv_seen, targets, fc, **kw)
         except MpcprotoError as exc:
             return self._fail(k, f"controller '{getattr(self.controller, 'name', '?')}' raised "
                                  f"{type(exc).__name__} at t={t:g}: {exc}", rows=k)

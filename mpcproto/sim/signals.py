@@ -84,6 +84,13 @@ class Signal:
     def __call__(self, t: Any) -> Any:
         return self.value(t)
 
+    def known_shape(self, t: np.ndarray) -> np.ndarray:
+        """The part of :meth:`shape` known in advance (a program: steps, ramps, tables...), at
+        the times *t* (an array); a signal whose future is not known (a random walk) gives 0.
+        What a controller's setpoint preview may see; the unknown part is held at its value now.
+        """
+        return self.shape(t)
+
     def stored_values(self, t_end: float) -> int:
         """How many values the signal keeps in memory to be evaluated up to *t_end* (a size
         estimate made before anything is allocated; 0 for a closed-form shape)."""
@@ -209,6 +216,9 @@ class RandomWalk(Signal):
             self._extend(int(k.max()) + 1)
         return np.where(k >= 0, self._path[np.clip(k, 0, None)], 0.0)
 
+    def known_shape(self, t):
+        return np.zeros(np.shape(t))      # not known in advance (and nothing drawn here)
+
 
 class Table(Signal):
     """Values at given times, linear between them (``"linear"``) or held (``"hold"``)."""
@@ -246,6 +256,12 @@ class Sum(Signal):
         out = np.zeros(t.shape)
         for p in self.parts:
             out = out + p.shape(t)
+        return out
+
+    def known_shape(self, t):
+        out = np.zeros(t.shape)
+        for p in self.parts:
+            out = out + p.known_shape(t)
         return out
 
 
