@@ -280,6 +280,8 @@ def replay_moves(ctl: Any, replay: Mapping[str, Any]) -> tuple[np.ndarray, list[
         kw = {}
         if replay.get("readback"):
             kw["u_applied"] = decode_array(s["u_applied"][k])
+        if s.get("setpoint_program"):
+            kw["setpoint_program"] = decode_array(s["setpoint_program"][k])
         out = ctl.step(float(t), meas, decode_array(s["dv"][k]), targets, fc, **kw)
         moves.append(np.asarray(out.u, float).reshape(-1))
         status.append(str(out.status))

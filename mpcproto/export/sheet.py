@@ -144,6 +144,8 @@ def _tuning(doc: Mapping[str, Any]) -> str:
                                 "dynamic problem" if s["steady_target"] else "off"),
         ("terminal cost", "discrete Riccati weight on the last predicted state" if s["terminal_cost"]
          else "none"),
+        ("setpoint preview", "the setpoints known in advance over the prediction horizon are its "
+                             "per-sample references" if s.get("setpoint_preview") else "off"),
         ("QP solver", f"{_e(s['solver'])}" + (f", options {_e(s['solver_options'])}"
                                               if s.get("solver_options") else ", default options")
          + f"; backup solver {_e(s['backup_solver'] or 'none')}"),

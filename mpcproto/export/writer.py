@@ -66,6 +66,7 @@ class RecordingController:
         self.inner = inner
         self.name = getattr(inner, "name", "controller")
         self.readback = accepts_readback(inner)
+        self.preview_samples = getattr(inner, "preview_samples", 0)   # setpoint preview asked
         self._reset: dict[str, Any] = {}
         self._steps: dict[str, list] = {}
 
@@ -76,11 +77,11 @@ class RecordingController:
                        "y": encode_array(op.y)}
         self._steps = {k: [] for k in ("t", "y", "taken_at", "fresh", "dv", "setpoint", "cv_low",
                                        "cv_high", "mv_low", "mv_high", "mv_rate", "dv_forecast",
-                                       "u_applied", "u", "status")}
+                                       "u_applied", "setpoint_program", "u", "status")}
         self.inner.reset(op, t0)
 
     def step(self, t: float, meas: Any, dv: Any, targets: Any, dv_forecast: Any = None, *,
-             u_applied: Any = None) -> Any:
+             u_applied: Any = None, setpoint_program: Any = None) -> Any:
         s = self._steps
         s["t"].append(float(t))
         s["y"].append(encode_array(meas.y))
@@ -91,18 +92,21 @@ class RecordingController:
             s[k].append(encode_array(getattr(targets, k)))
         s["dv_forecast"].append(encode_array(dv_forecast))
         s["u_applied"].append(encode_array(u_applied))
+        s["setpoint_program"].append(encode_array(setpoint_program))
+        kw = {} if setpoint_program is None else {"setpoint_program": setpoint_program}
         if self.readback:
-            out = self.inner.step(t, meas, dv, targets, dv_forecast, u_applied=u_applied)
+            out = self.inner.step(t, meas, dv, targets, dv_forecast, u_applied=u_applied, **kw)
         else:
-            out = self.inner.step(t, meas, dv, targets, dv_forecast)
+            out = self.inner.step(t, meas, dv, targets, dv_forecast, **kw)
         s["u"].append(encode_array(out.u))
         s["status"].append(str(out.status))
         return out
 
     def replay(self) -> dict[str, Any]:
         steps = dict(self._steps)
-        if not any(v is not None for v in steps.get("dv_forecast", [])):
-            steps["dv_forecast"] = None
+        for key in ("dv_forecast", "setpoint_program"):
+            if not any(v is not None for v in steps.get(key, [])):
+                steps[key] = None
         return {"format": FORMAT + "/replay", "format_version": FORMAT_VERSION,
                 "readback": self.readback, "reset": self._reset, "steps": steps}
 
