@@ -89,8 +89,10 @@ def describe_controller(controller: Any, model: Any) -> dict[str, Any]:
                      getattr(model, "dv_names", ()))
         ff = [n for n, on in zip(names, list(resolved["feedforward"])) if on and n in measured]
         mvs = list(getattr(model, "mv_names", ()))
-        return {"kind": "mpc",
-                "structure": [f"one multivariable predictive controller on {', '.join(mvs)}"],
+        structure = [f"one multivariable predictive controller on {', '.join(mvs)}"]
+        if getattr(controller, "setpoint_preview", False) is True:   # it sees the program ahead
+            structure.append(f"setpoint program seen {resolved.get('N')} samples ahead")
+        return {"kind": "mpc", "structure": structure,
                 "measured_cvs": list(getattr(model, "cv_names", ())), "measured_dvs_used": ff,
                 "mv_flows_used": [],
                 "tuning": {"horizon": resolved.get("N", getattr(controller, "horizon", None)),
