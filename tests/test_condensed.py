@@ -61,14 +61,19 @@ def recorder(ctrl):
     return seen
 
 
+def random_model(rng, odd):
+    """A random stable 4-state, 2-MV, 3-CV, 1-DV model; with a direct feedthrough D when *odd*."""
+    nx, nu, ny, nd = 4, 2, 3, 1
+    A, B, C, Bd = random_stable(rng, nx, nu, ny, nd)
+    D = 0.1 * rng.standard_normal((ny, nu)) if odd else None
+    return make_dlm(A, B, C, Bd=Bd, D=D), (nx, nu, ny, nd)
+
+
 @pytest.mark.parametrize("seed", range(6))
 def test_condensed_equals_statement_on_random_systems(seed):
     # Reference: the cvxpy statement solved tight by Clarabel (see module docstring).
     rng = np.random.default_rng(100 + seed)
-    nx, nu, ny, nd = 4, 2, 3, 1
-    A, B, C, Bd = random_stable(rng, nx, nu, ny, nd)
-    D = 0.1 * rng.standard_normal((ny, nu)) if seed % 2 else None
-    dm = make_dlm(A, B, C, Bd=Bd, D=D)
+    dm, (nx, nu, ny, nd) = random_model(rng, seed % 2)
     quad = 0.0 if seed == 2 else 10.0                  # a linear-only exact penalty too
     ctrl = mp.PredictiveController(
         dm, horizon=12, control_horizon=4, terminal_cost=seed % 3 == 0,
@@ -255,10 +260,7 @@ def test_preview_condensed_equals_statement(seed):
     # program over the horizon (per-stage references: the statement's band parameters move stage
     # by stage through its input map; the condensed form only changes its gradient).
     rng = np.random.default_rng(300 + seed)
-    nx, nu, ny, nd = 4, 2, 3, 1
-    A, B, C, Bd = random_stable(rng, nx, nu, ny, nd)
-    D = 0.1 * rng.standard_normal((ny, nu)) if seed % 2 else None
-    dm = make_dlm(A, B, C, Bd=Bd, D=D)
+    dm, (nx, nu, ny, nd) = random_model(rng, seed % 2)
     N = 12
     ctrl = mp.PredictiveController(
         dm, horizon=N, control_horizon=N if seed < 2 else 4, terminal_cost=seed == 0,

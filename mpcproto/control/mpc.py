@@ -66,7 +66,7 @@ from .dynamic_qp import (input_layout, noise_scales, state_dynamic_qp, state_sca
                          target_preferred_weight)
 from .estimator import DisturbanceEstimator
 from .limits import limit_activity, project_command
-from .preview import stage_references
+from .preview import rows_by_sample, stage_references
 from .mpc_settings import CV_KEYS, DV_KEYS, MV_KEYS, SETTINGS_KEYS, _err, resolve  # noqa: F401
 from .steady_target import SteadyTarget
 
@@ -473,15 +473,7 @@ class PredictiveController:
         """The DV forecast as an (n, nd) array, or None; checked before anything changes."""
         if dv_forecast is None:
             return None
-        nd = self.dmodel.nd
-        f = np.asarray(dv_forecast, float)
-        if f.ndim == 1:
-            f = f[None, :]
-        if f.ndim != 2 or f.shape[1] != nd or f.shape[0] < 1:
-            raise SettingsError(f"PredictiveController: dv_forecast must have shape (n, {nd}) "
-                                f"(rows: samples from now, columns: DVs in model order); got "
-                                f"{np.shape(dv_forecast)}.")
-        return f
+        return rows_by_sample(dv_forecast, self.dmodel.nd, "dv_forecast", "DVs")
 
     def _preview(self, program, sp_):
         """``(sp_end, departures)`` of the setpoint program (checked), or None (no preview)."""

@@ -25,7 +25,26 @@ import numpy as np
 
 from ..exceptions import SettingsError
 
-__all__ = ["stage_references"]
+__all__ = ["stage_references", "rows_by_sample"]
+
+
+def rows_by_sample(value, ncols: int, key: str, columns: str) -> np.ndarray:
+    """*value* as an (n, ncols) float array of rows by sample (a single row may be 1-D).
+
+    Raises :class:`SettingsError` naming *key* when it is not such an array with n >= 1.
+    """
+    try:
+        a = np.asarray(value, float)
+    except (TypeError, ValueError):
+        raise SettingsError(f"PredictiveController: {key} must be an array of numbers of shape "
+                            f"(n, {ncols}); got {type(value).__name__}.") from None
+    if a.ndim == 1:
+        a = a[None, :]
+    if a.ndim != 2 or a.shape[1] != ncols or a.shape[0] < 1:
+        raise SettingsError(f"PredictiveController: {key} must have shape (n, {ncols}) (rows: "
+                            f"samples from now, columns: {columns} in model order); got "
+                            f"{np.shape(value)}.")
+    return a
 
 
 def stage_references(program, sp_now: np.ndarray, N: int) -> tuple[np.ndarray, np.ndarray]:
@@ -54,18 +73,7 @@ def stage_references(program, sp_now: np.ndarray, N: int) -> tuple[np.ndarray, n
     SettingsError
         When *program* is not an (n, ny) array of numbers with n >= 1.
     """
-    ny = sp_now.shape[0]
-    try:
-        P = np.asarray(program, float)
-    except (TypeError, ValueError):
-        raise SettingsError(f"PredictiveController: setpoint_program must be an array of numbers "
-                            f"of shape (n, {ny}); got {type(program).__name__}.") from None
-    if P.ndim == 1:
-        P = P[None, :]
-    if P.ndim != 2 or P.shape[1] != ny or P.shape[0] < 1:
-        raise SettingsError(f"PredictiveController: setpoint_program must have shape (n, {ny}) "
-                            f"(rows: samples from now, columns: CVs in model order); got "
-                            f"{np.shape(program)}.")
+    P = rows_by_sample(program, sp_now.shape[0], "setpoint_program", "CVs")
     P = P[np.minimum(np.arange(N + 1), P.shape[0] - 1)]
     has = np.isfinite(sp_now)
     P = np.where(np.isfinite(P) & has, P, sp_now)
