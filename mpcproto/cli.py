@@ -46,6 +46,7 @@ import traceback
 from typing import Any, Sequence
 
 from .exceptions import MpcprotoError
+from .scenario.criteria import CRITERIA, REGRESSION_ATOL, REGRESSION_RTOL
 
 __all__ = ["main", "build_parser", "EXIT_OK", "EXIT_FAILED", "EXIT_BAD_INPUT", "EXIT_INTERNAL"]
 
@@ -347,30 +348,11 @@ def _check_out_dir(out: str) -> None:
                             f"'{parent}' is a file, so no directory can be made below it.")
 
 
-#: What the number printed beside each check is (the limit is in the same terms).
-_VALUE_MEANS = {
-    "iae_below": "IAE, CV unit x time unit",
-    "ise_below": "ISE, CV unit squared x time unit",
-    "itae_below": "ITAE, CV unit x time unit squared",
-    "max_error_below": "largest |setpoint - CV|, CV unit",
-    "settling_time_below": "time unit",
-    "overshoot_below": "fraction of the setpoint step",
-    "peak_below": "highest true value, variable's unit",
-    "low_above": "lowest true value, variable's unit",
-    "travel_below": "total MV travel, MV unit",
-    "no_limit_violation": "number of limit-violation events",
-    "no_solver_failure": "number of failed or fallback steps",
-    "solve_time_below": "slowest step as a fraction of the sample time",
-    "better_than": "% by which the KPI is lower than the other controller's",
-    "run_completed": "the simulation ended early",
-    "mv_commands_within_limits": "number of events of an MV command outside its hard limits",
-}
-
-
 def _print_verdict(cr: dict[str, Any], label: str) -> None:
     mark = "pass" if cr["passed"] else "FAIL"
     who = f"{label:<10s} " if label else ""
-    means = _VALUE_MEANS.get(str(cr.get("check", "")))
+    info = CRITERIA.get(str(cr.get("check", "")))
+    means = info.value if info else None
     print(f"{mark}  {who}{cr['name']}: {_fmt(cr['value'])} (limit {_fmt(cr['limit'])}"
           f"{'; ' + means if means else ''})")
     if cr.get("message"):
@@ -620,11 +602,12 @@ def _add_batch_command(sub) -> None:
     b.add_argument("--baseline", default=None, metavar="RESULTS.jsonl",
                    help="compare with an earlier run's results.jsonl; KPIs worse beyond the "
                         "tolerance fail the batch")
-    b.add_argument("--tolerance", type=float, default=0.05, metavar="REL",
-                   help="relative tolerance of the baseline comparison (default 0.05 = 5 %%)")
-    b.add_argument("--abs-tolerance", type=float, default=1e-9, metavar="ABS",
-                   help="absolute tolerance of the baseline comparison, in each KPI's unit "
-                        "(default 1e-9)")
+    b.add_argument("--tolerance", type=float, default=REGRESSION_RTOL, metavar="REL",
+                   help=f"relative tolerance of the baseline comparison (default "
+                        f"{REGRESSION_RTOL:g} = {100 * REGRESSION_RTOL:g} %%)")
+    b.add_argument("--abs-tolerance", type=float, default=REGRESSION_ATOL, metavar="ABS",
+                   help=f"absolute tolerance of the baseline comparison, in each KPI's unit "
+                        f"(default {REGRESSION_ATOL:g})")
     b.add_argument("--no-trajectories", action="store_true",
                    help="do not re-run the worst cases for the report's trajectory plots (by "
                         "default the worst case of each scenario with a failed case, at most 3, "
