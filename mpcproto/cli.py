@@ -46,7 +46,7 @@ import traceback
 from typing import Any, Sequence
 
 from .exceptions import MpcprotoError
-from .scenario.criteria import CRITERIA, REGRESSION_ATOL, REGRESSION_RTOL
+from .analysis.criteria import CRITERIA, REGRESSION_ATOL, REGRESSION_RTOL
 
 __all__ = ["main", "build_parser", "EXIT_OK", "EXIT_FAILED", "EXIT_BAD_INPUT", "EXIT_INTERNAL"]
 

@@ -14,7 +14,7 @@ import pytest
 
 import mpcproto as mp
 from mpcproto.scenario import load_scenario, run_case
-from mpcproto.scenario.criteria import LIMIT_TOLERANCE, evaluate_controller
+from mpcproto.analysis.criteria import LIMIT_TOLERANCE, evaluate_controller
 from mpcproto.analysis import run_flags
 
 from test_analysis import traj

@@ -5,7 +5,7 @@ import pytest
 
 import mpcproto as mp
 from mpcproto.scenario import parse_scenario
-from mpcproto.scenario.criteria import evaluate_comparisons, evaluate_controller
+from mpcproto.analysis.criteria import evaluate_comparisons, evaluate_controller
 
 
 def criteria(*entries):
@@ -83,7 +83,7 @@ def test_peak_and_low_read_true_values():
 
 # ----------------------------------------------------------------- the criteria table (CRITERIA)
 def test_every_check_has_one_entry_in_the_criteria_table():
-    from mpcproto.scenario.criteria import CRITERIA
+    from mpcproto.analysis.criteria import CRITERIA
     from mpcproto.scenario.schema import CRITERION_CHECKS
 
     added = {"run_completed", "within_valid_range", "mv_commands_within_limits"}
@@ -96,7 +96,7 @@ def test_every_check_has_one_entry_in_the_criteria_table():
 def test_table_direction_agrees_with_the_verdicts():
     # a value beyond the limit on the worse side fails, and uses more than all of its limit;
     # one on the better side passes and uses less (the evaluator and the table must agree)
-    from mpcproto.scenario.criteria import CRITERIA, limit_is_upper, margin, utilisation
+    from mpcproto.analysis.criteria import CRITERIA, limit_is_upper, margin, utilisation
 
     kpi_checks = {"iae_below": "iae", "ise_below": "ise", "itae_below": "itae",
                   "max_error_below": "max_abs_error", "settling_time_below": "settling_time",
@@ -118,7 +118,7 @@ def test_table_direction_agrees_with_the_verdicts():
 
 
 def test_level_checks_give_a_margin_not_a_ratio():
-    from mpcproto.scenario.criteria import is_absolute, margin, utilisation
+    from mpcproto.analysis.criteria import is_absolute, margin, utilisation
 
     low = {"check": "low_above", "value": 5.0, "limit": 3.0, "passed": True}
     peak = {"name": "peak_below:T", "value": 350.0, "limit": 340.0, "passed": False}  # no "check" key
@@ -133,7 +133,7 @@ def test_level_checks_give_a_margin_not_a_ratio():
 def test_regression_rule_is_the_one_sided_allclose_test():
     # reference: numpy.isclose's rule |a - b| <= atol + rtol * |b| (numpy documentation),
     # one-sided: only a rise beyond it is worse, only a fall beyond it is better
-    from mpcproto.scenario.criteria import regression_bounds
+    from mpcproto.analysis.criteria import regression_bounds
 
     rng = np.random.default_rng(11)
     for _ in range(2000):

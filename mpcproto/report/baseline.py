@@ -10,7 +10,7 @@ fails or errors is a regression too.
 
 A change counts as worse when ``current - baseline > atol + rtol * |baseline|`` (the scaled
 tolerance SciPy's ``assert_allclose`` uses, one-sided; the rule and its default tolerances live
-with the criteria: :func:`mpcproto.scenario.criteria.regression_bounds`).
+with the criteria: :func:`mpcproto.analysis.criteria.regression_bounds`).
 """
 
 from __future__ import annotations
@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from ..exceptions import SettingsError
-from ..scenario.criteria import REGRESSION_ATOL, REGRESSION_RTOL, regression_bounds
+from ..analysis.criteria import REGRESSION_ATOL, REGRESSION_RTOL, regression_bounds
 from ..store import case_verdict, load_results
 from .summary import flat_numbers
 

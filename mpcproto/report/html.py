@@ -29,7 +29,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
-from ..scenario.criteria import is_absolute, margin, utilisation
+from ..analysis.criteria import is_absolute, margin, utilisation
 from ..store import case_verdict, criterion_passed, incomplete_note
 from .baseline import BaselineComparison
 from .summary import criteria_of

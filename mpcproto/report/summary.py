@@ -18,7 +18,7 @@ from collections.abc import Iterable, Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
-from ..scenario.criteria import utilisation
+from ..analysis.criteria import utilisation
 from ..store import case_verdict, criterion_passed, incomplete_note, iter_results
 
 __all__ = ["flat_rows", "flat_numbers", "criteria_of", "write_summary_csv", "LEAD_COLUMNS",

@@ -282,7 +282,7 @@ def evaluate_controller(criteria: Sequence[Mapping[str, Any]], label: str, block
         if check in _KPI_OF:
             extra = {}
             if "band" in cr:      # a settling band stated by the criterion (CV units)
-                from ..analysis import cv_performance
+                from .kpi import cv_performance
 
                 v = None if traj is None else _num(
                     cv_performance(traj, cr["cv"], band=cr["band"])["settling_time"])
