@@ -45,7 +45,8 @@ def test_every_adapter_records_the_version_it_was_checked_on():
 
 def test_no_private_dependency_name_outside_the_adapter_module():
     # the private names the adapters wrap, and any `<dependency>._private` module path
-    pattern = re.compile(r"_sparsetools|\._solver_cache|[\"']_solver_cache|[\"']_processes[\"']|[\"']_max_workers[\"']|"
+    pattern = re.compile(r"_sparsetools|(?<!self)\._(?:processes|max_workers|client|solver_cache|solver)\b|"
+                         r"[\"']_solver_cache|[\"']_processes[\"']|[\"']_max_workers[\"']|"
                          r"[\"']_client[\"']|getattr\([^,]+,\s*[\"']_solver[\"']|param_prob|PARAM_PROB|"
                          r"\b(?:numpy|np|scipy|sp|sps|cvxpy|cp|osqp|clarabel|daqp|casadi|ca|dask|"
                          r"distributed|concurrent|multiprocessing)(?:\.\w+)*\._[a-z]\w*")
