@@ -9,15 +9,15 @@ Design checks (layer 2)
     gain_matrix_analysis, GainAnalysis, niederlinski_index, rga_at_frequency, sampling_advice,
     steady_state_locus, SteadyStateLocus, loop_margins, LoopMargins, half_rule,
     unconstrained_analysis, UnconstrainedAnalysis, optimal_cost
-Open-loop tests (layer 2)
-    open_loop_test, plot_response_test, linearity_sweep, ResponseTest, fit_step_response, StepFit,
-    step_model_response
+Open-loop tests and step fits (layer 2)
+    open_loop_test, plot_response_test, linearity_sweep, ResponseTest, ProcessFit,
+    fit_step_response, step_model_response
 Built-in models (layer 1)
     models, make_model, available_models, transfer_matrix_model, TransferElement
 Controller protocol (layer 3)
     Controller, Measurement, Targets, ControlOutput, accepts_readback
 PID loops and tuning (layer 3)
-    PIDLoop, PIDController, pid_loop_from_spec, pid_from_settings, suggest_pairing, ProcessFit,
+    PIDLoop, PIDController, pid_loop_from_spec, pid_from_settings, suggest_pairing,
     StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating, fit_step, ultimate_point, simc,
     imc, ziegler_nichols, tune_loop, tune_pid_loops
 Regulatory structures of the PID baseline (layer 3)
@@ -49,10 +49,8 @@ from .model import Model, Variable, Delay
 from .operating import OperatingPoint, TargetResult, steady_states, steady_state, solve_targets
 from .linear import LinearModel, DiscreteLinearModel, linearize, rga
 from .control.base import Controller, Measurement, Targets, ControlOutput, accepts_readback
-from .responses import (
-    ResponseTest, open_loop_test, plot_response_test, linearity_sweep, StepFit, fit_step_response,
-    step_model_response,
-)
+from .responses import ResponseTest, open_loop_test, plot_response_test, linearity_sweep
+from .step_fit import ProcessFit, fit_step_response, step_model_response
 from . import models
 from .models import TransferElement, transfer_matrix_model
 from .trajectory import Trajectory
@@ -61,7 +59,7 @@ from .sim import (Signal, signal_from_spec, Instrument, Actuator, Fault, instrum
 from .analysis import (cv_performance, mv_usage, kpis, violations, mv_violations, controller_health,
                        summarize)
 from .control.pid import PIDLoop, PIDController, pid_loop_from_spec, suggest_pairing
-from .control.tuning import (ProcessFit, StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating,
+from .control.tuning import (StepData, step_test, fit_fopdt, fit_sopdt, fit_integrating,
                              fit_step, ultimate_point, simc, imc, ziegler_nichols, tune_loop,
                              tune_pid_loops)
 from .control.pid_settings import pid_from_settings
@@ -100,7 +98,7 @@ __all__ = [
     "Controller", "Measurement", "Targets", "ControlOutput", "accepts_readback",
     "TargetResult", "steady_states", "steady_state", "solve_targets",
     "ResponseTest", "open_loop_test", "plot_response_test", "linearity_sweep",
-    "StepFit", "fit_step_response", "step_model_response",
+    "ProcessFit", "fit_step_response", "step_model_response",
     "models", "make_model", "available_models", "transfer_matrix_model", "TransferElement",
     "Trajectory", "Signal", "signal_from_spec", "Instrument", "Actuator", "Fault",
     "instrument_from_spec", "actuator_from_spec", "fault_from_spec", "Plant", "ClosedLoop",
@@ -108,7 +106,7 @@ __all__ = [
     "cv_performance", "mv_usage", "kpis", "violations", "mv_violations", "controller_health",
     "summarize",
     "PIDLoop", "PIDController", "pid_loop_from_spec", "pid_from_settings", "suggest_pairing",
-    "ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating", "fit_step",
+    "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating", "fit_step",
     "ultimate_point", "simc", "imc", "ziegler_nichols", "tune_loop", "tune_pid_loops",
     "compare", "Comparison", "describe_controller", "fairness_notes", "tuning_text",
     "RegulatoryController", "Feedforward", "Ratio", "Cascade", "Selector", "SplitRange", "Valve",

@@ -10,6 +10,7 @@ import pytest
 from mpcproto.cli import main
 from mpcproto.scenario import expand, load_scenario
 from mpcproto import dask_executor, load_results, local_pool, run_batch
+from mpcproto._deps import dask_executor_client
 from mpcproto.scenario.executors import executor_slots
 from test_batch_cli import write_study
 
@@ -41,7 +42,7 @@ def test_dask_local_cluster_gives_the_numbers_of_the_local_pool(tmp_path):
             assert executor_slots(ex) == 2
             out = run_batch(cases, tmp_path / "dask", executor=ex, progress=False)
             pids = {r["worker_pid"] for r in load_results(tmp_path / "dask" / "results.jsonl")}
-            worker_pids = set(ex._client.run(lambda: __import__("os").getpid()).values())
+            worker_pids = set(dask_executor_client(ex).run(lambda: __import__("os").getpid()).values())
         # the CLI's --scheduler path on the same cluster
         rc = main(["batch", str(study), "--out", str(tmp_path / "cli"), "--scheduler",
                    cluster.scheduler_address, "--no-trajectories"])

@@ -20,7 +20,7 @@ import mpcproto as mp
 from mpcproto.analysis import mv_violations
 from mpcproto.cli import main
 from mpcproto.control.limits import limit_activity, project_command
-from mpcproto.scenario.criteria import evaluate_controller
+from mpcproto.analysis.criteria import evaluate_controller
 from _plants import first_order, op0
 
 INF = math.inf

@@ -5,7 +5,7 @@ import pytest
 
 import mpcproto as mp
 from mpcproto.scenario import parse_scenario
-from mpcproto.scenario.criteria import evaluate_comparisons, evaluate_controller
+from mpcproto.analysis.criteria import evaluate_comparisons, evaluate_controller
 
 
 def criteria(*entries):
@@ -79,3 +79,69 @@ def test_peak_and_low_read_true_values():
     v = {r["name"]: r for r in evaluate_controller(cr, "mpc", BLOCK, traj)}
     assert v["peak_below:temperature"]["value"] == 79.5 and v["peak_below:temperature"]["passed"]
     assert v["low_above:water_flow"]["value"] == 1.0 and not v["low_above:water_flow"]["passed"]
+
+
+# ----------------------------------------------------------------- the criteria table (CRITERIA)
+def test_every_check_has_one_entry_in_the_criteria_table():
+    from mpcproto.analysis.criteria import CRITERIA
+    from mpcproto.scenario.schema import CRITERION_CHECKS
+
+    added = {"run_completed", "within_valid_range", "mv_commands_within_limits"}
+    assert set(CRITERIA) == set(CRITERION_CHECKS) | added
+    for check, info in CRITERIA.items():
+        assert info.better in ("lower", "higher"), check
+        assert info.meaning and info.value, check
+
+
+def test_table_direction_agrees_with_the_verdicts():
+    # a value beyond the limit on the worse side fails, and uses more than all of its limit;
+    # one on the better side passes and uses less (the evaluator and the table must agree)
+    from mpcproto.analysis.criteria import CRITERIA, limit_is_upper, margin, utilisation
+
+    kpi_checks = {"iae_below": "iae", "ise_below": "ise", "itae_below": "itae",
+                  "max_error_below": "max_abs_error", "settling_time_below": "settling_time",
+                  "overshoot_below": "overshoot"}
+    for check, kpi in kpi_checks.items():
+        for value, ok in ((6.0, False), (2.0, True)):
+            block = {"kpi": {"cv": {"level": {kpi: value}}}, "run": {"status": "completed"}}
+            (v,) = evaluate_controller(criteria({"check": check, "cv": "level", "limit": 4.0}),
+                                       "mpc", block)
+            assert v["passed"] is ok and limit_is_upper(v) is (CRITERIA[check].better == "lower")
+            assert (utilisation(v) > 1.0) is (not ok) and (margin(v) > 0) is ok
+    # better_than: the improvement in percent must reach by_percent (a lower bound)
+    blocks = {"mpc": {"kpi": {"cv": {"level": {"iae": 6.0}}}},
+              "pid": {"kpi": {"cv": {"level": {"iae": 10.0}}}}}
+    (v,) = evaluate_comparisons(criteria({"check": "better_than", "controller": "mpc", "than": "pid",
+                                          "kpi": "iae", "cv": "level", "by_percent": 20.0}), blocks)
+    assert v["passed"] and v["value"] == pytest.approx(40.0)
+    assert utilisation(v) == pytest.approx(0.5) and margin(v) == pytest.approx(20.0)
+
+
+def test_level_checks_give_a_margin_not_a_ratio():
+    from mpcproto.analysis.criteria import is_absolute, margin, utilisation
+
+    low = {"check": "low_above", "value": 5.0, "limit": 3.0, "passed": True}
+    peak = {"name": "peak_below:T", "value": 350.0, "limit": 340.0, "passed": False}  # no "check" key
+    assert is_absolute(low) and is_absolute(peak)
+    assert np.isnan(utilisation(low)) and utilisation(peak) == np.inf
+    assert margin(low) == 2.0 and margin(peak) == -10.0
+    # a check this version does not know: the direction is read from the verdict
+    unknown = {"check": "something_new", "value": 3.0, "limit": 4.0, "passed": True}
+    assert utilisation(unknown) == 0.75 and margin(unknown) == 1.0
+
+
+def test_regression_rule_is_the_one_sided_allclose_test():
+    # reference: numpy.isclose's rule |a - b| <= atol + rtol * |b| (numpy documentation),
+    # one-sided: only a rise beyond it is worse, only a fall beyond it is better
+    from mpcproto.analysis.criteria import regression_bounds
+
+    rng = np.random.default_rng(11)
+    for _ in range(2000):
+        base = float(rng.choice([0.0, 1.0]) * rng.lognormal(0, 3))
+        cur = base * float(rng.uniform(0.8, 1.2)) + float(rng.normal(0, 1e-9))
+        rtol, atol = 0.05, 1e-9
+        better_below, worse_above = regression_bounds(base, rtol, atol)
+        close = bool(np.isclose(cur, base, rtol=rtol, atol=atol))
+        assert (cur > worse_above) == (not close and cur > base)
+        assert (cur < better_below) == (not close and cur < base)
+    assert regression_bounds(2.0, 0.1, 0.0) == pytest.approx((1.8, 2.2))

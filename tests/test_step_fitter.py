@@ -32,11 +32,13 @@ def test_the_tuning_fits_are_the_layer2_fit():
     lay2 = mp.fit_step_response(t, y, size=0.5, t_step=10.0)
     lay3 = mp.fit_fopdt(t, y, at=10.0, size=0.5, cv="y", mv="u")
     assert lay2.kind == "fopdt" and lay3.kind == "fopdt"
+    assert type(lay2) is type(lay3) is mp.ProcessFit          # one kind of step fit
+    assert (lay3.cv, lay3.mv, lay2.cv) == ("y", "u", "")
     for f in (lay2, lay3):
         assert f.gain == pytest.approx(1.8, rel=1e-8)
         assert f.time_constants[0] == pytest.approx(15.0, rel=1e-7)
         assert f.dead_time == pytest.approx(6.0, abs=1e-6)
-    assert lay3.rmse == pytest.approx(lay2.rms_error, abs=1e-9)
+    assert lay3.rmse == pytest.approx(lay2.rmse, abs=1e-9)
     # SOPDT through both entry points
     y2 = 0.5 * mp.step_model_response(t - 10.0, -1.2, (20.0, 4.0), 3.0)
     a = mp.fit_step_response(t, y2, size=0.5, t_step=10.0, order=2)

@@ -22,11 +22,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-try:  # the kernel behind ``csr_matrix @ vector``, without scipy's dispatch layers
-    from scipy.sparse._sparsetools import csr_matvec as _csr_matvec
-except ImportError:  # pragma: no cover - other scipy layouts
-    _csr_matvec = None
-
+from .._deps import clear_cvxpy_solver_cache, csr_matvec, cvxpy_qp_map, osqp_extension
 from ..exceptions import SettingsError
 
 __all__ = ["CompiledQP", "QPResult", "OSQP_DEFAULTS"]
@@ -87,24 +83,22 @@ class CompiledQP:
         self.owner = owner
         self._solver = None
         self._started = False
+        self._cold_cvxpy = False    # next plain solve cold (where cvxpy's cache cannot be cleared)
         self.keep_duals = False     # keep OSQP's duals of the last solve in ``last_duals``
         self.last_duals = None
 
     # ------------------------------------------------------------------ compile
     def compile(self) -> "CompiledQP":
         """Canonicalize with cvxpy (once) and extract ``P``, ``A`` and the affine maps to q, l, u."""
-        import cvxpy as cp
-        import cvxpy.settings as cps
-
         if not self.problem.is_dpp():
             raise SettingsError(f"{self.owner}: the optimization problem is not DPP; it would be "
                                 f"recompiled at every solve.")
         for name, par in self.parameters.items():
             if par.value is None:
                 par.value = np.zeros(par.shape)
-        data, _chain, _inv = self.problem.get_problem_data(cp.OSQP)
-        pp = data[cps.PARAM_PROB]
-        n = pp.x.size
+        pp = cvxpy_qp_map(self.problem)
+        data = pp.data
+        n = pp.n
         npar = pp.total_param_size
         # -- parameter vector layout
         self._slices: dict[str, tuple[slice, tuple[int, ...]]] = {}
@@ -308,11 +302,8 @@ class CompiledQP:
         Mz = self._Mz
         if self._Mz_dense is not None:
             out = self._Mz_dense @ zz
-        elif _csr_matvec is not None:
-            out = np.zeros(Mz.shape[0])
-            _csr_matvec(Mz.shape[0], Mz.shape[1], Mz.indptr, Mz.indices, Mz.data, zz, out)
         else:
-            out = Mz @ zz
+            out = csr_matvec(Mz, zz)
         if hit is not None:
             out[hit[1]] = hit[2]
         n, m = self._n, self._m
@@ -356,9 +347,7 @@ class CompiledQP:
         m = self._m
         self._solver.setup(self.P_, np.zeros(self._n), self.A_, np.full(m, -np.inf), np.full(m, np.inf),
                            **opts)
-        ext = getattr(self._solver, "_solver", None)
-        self._ext = ext if all(hasattr(ext, a) for a in ("update_data_vec", "solve", "info",
-                                                          "solution")) else None
+        self._ext = osqp_extension(self._solver)
         self._started = False
 
     def update_settings(self, **settings) -> None:
@@ -378,9 +367,7 @@ class CompiledQP:
         if self._solver is not None:
             self.setup(self._opts)
         self.last_duals = None
-        cache = getattr(self.problem, "_solver_cache", None)
-        if isinstance(cache, dict):
-            cache.clear()
+        self._cold_cvxpy = not clear_cvxpy_solver_cache(self.problem)
 
     def reset_warm_start(self) -> None:
         """Forget the previous solution (the next solve starts cold)."""
@@ -438,7 +425,8 @@ class CompiledQP:
         opts = dict(options or {})
         t0 = time.perf_counter()
         try:
-            self.problem.solve(solver=solver, warm_start=True, **opts)
+            self.problem.solve(solver=solver, warm_start=not self._cold_cvxpy, **opts)
+            self._cold_cvxpy = False
             status = str(self.problem.status)
         except cp.error.SolverError as exc:  # solver crashed: treated like a failed solve
             status = f"solver_error: {exc}"

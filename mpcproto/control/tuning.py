@@ -4,7 +4,7 @@ r"""PID tuning from a step test: fit a low-order model, then apply a published r
    (:func:`mpcproto.responses.open_loop_test`, optionally with measurement noise).
 2. :func:`fit_fopdt` / :func:`fit_sopdt` / :func:`fit_integrating` check the shape of the
    response (noise, ramp, inverse response) and fit, by least squares
-   (:func:`mpcproto.responses.fit_step_response`, the package's one step-response fitter), a
+   (:func:`mpcproto.step_fit.fit_step_response`, the package's one step-response fitter), a
    first- or second-order-plus-dead-time model or an integrator with dead time to it.
 3. A rule turns the fitted :class:`ProcessFit` into :class:`mpcproto.control.pid.PIDLoop` settings
    (ideal form ``K (1 + 1/(Ti s) + Td s)``):
@@ -67,7 +67,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -76,6 +76,7 @@ from scipy.optimize import brentq
 from .._specs import as_float, paired_series, shown
 from ..exceptions import SettingsError
 from ..model import suggest
+from ..step_fit import ProcessFit, fit_step_response
 from .pid import PIDLoop
 
 __all__ = ["ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating",
@@ -85,79 +86,6 @@ __all__ = ["ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit
 
 RULES = ("simc", "imc", "ziegler_nichols")
 ZN_METHODS = ("ultimate", "reaction_curve")
-
-
-@dataclass(frozen=True)
-class ProcessFit:
-    """A low-order process model: ``kind`` ``"fopdt"``, ``"sopdt"`` or ``"integrating"``.
-
-    ``gain`` is the steady-state gain (fopdt/sopdt) or the slope gain (integrating: rate of change
-    of the CV per unit MV step).  ``time_constants`` has one (fopdt), two (sopdt, largest first) or
-    no entries (integrating).  Times in the model's time unit.
-    """
-
-    kind: str
-    gain: float
-    time_constants: tuple[float, ...] = ()
-    dead_time: float = 0.0
-    rmse: float | None = None
-    inverse_response: bool = False
-    cv: str = ""
-    mv: str = ""
-
-    def __post_init__(self) -> None:
-        n_tau = {"fopdt": 1, "sopdt": 2, "integrating": 0}
-        if self.kind not in n_tau:
-            raise SettingsError(f"ProcessFit: kind must be one of {', '.join(n_tau)}; found "
-                                f"{self.kind!r}{suggest(str(self.kind), list(n_tau))}.")
-        if len(self.time_constants) != n_tau[self.kind]:
-            raise SettingsError(f"ProcessFit ({self.kind}): needs {n_tau[self.kind]} time "
-                                f"constant(s); found {len(self.time_constants)}.")
-        if not (math.isfinite(self.gain) and self.gain != 0):
-            raise SettingsError(f"ProcessFit ({self.kind}): the gain must be finite and non-zero; "
-                                f"found {self.gain!r}.")
-        for tau in self.time_constants:
-            if not (math.isfinite(tau) and tau > 0):
-                raise SettingsError(f"ProcessFit ({self.kind}): time constants must be finite and "
-                                    f"> 0; found {tau!r}.")
-        if not (math.isfinite(self.dead_time) and self.dead_time >= 0):
-            raise SettingsError(f"ProcessFit ({self.kind}): the dead time must be finite and >= 0; "
-                                f"found {self.dead_time!r}.")
-
-    @classmethod
-    def fopdt(cls, gain: float, time_constant: float, dead_time: float = 0.0, **kw: Any) -> "ProcessFit":
-        return cls("fopdt", float(gain), (float(time_constant),), float(dead_time), **kw)
-
-    @classmethod
-    def sopdt(cls, gain: float, tau1: float, tau2: float, dead_time: float = 0.0, **kw: Any) -> "ProcessFit":
-        t1, t2 = sorted((float(tau1), float(tau2)), reverse=True)
-        return cls("sopdt", float(gain), (t1, t2), float(dead_time), **kw)
-
-    @classmethod
-    def integrating(cls, slope_gain: float, dead_time: float = 0.0, **kw: Any) -> "ProcessFit":
-        return cls("integrating", float(slope_gain), (), float(dead_time), **kw)
-
-    def response(self, t: np.ndarray) -> np.ndarray:
-        """Unit-step response (CV change per unit MV step applied at t = 0)."""
-        from ..responses import step_model_response
-
-        return step_model_response(t, self.gain, self.time_constants, self.dead_time,
-                                   integrating=self.kind == "integrating")
-
-    def frequency_response(self, w: np.ndarray) -> np.ndarray:
-        """G(jw)."""
-        s = 1j * np.asarray(w, float)
-        g = self.gain * np.exp(-s * self.dead_time)
-        if self.kind == "integrating":
-            return g / s
-        for tau in self.time_constants:
-            g = g / (tau * s + 1.0)
-        return g
-
-    def as_dict(self) -> dict[str, Any]:
-        return {"kind": self.kind, "gain": self.gain, "time_constants": list(self.time_constants),
-                "dead_time": self.dead_time, "rmse": self.rmse,
-                "inverse_response": self.inverse_response, "cv": self.cv, "mv": self.mv}
 
 
 @dataclass
@@ -280,9 +208,7 @@ def _shape_checks(s, r, what, allow_integrating=False):
 
 def _fit(kind: str, t: Sequence[float], y: Sequence[float], at: float, size: float,
          y0: float | None, cv: str, mv: str) -> ProcessFit:
-    """Shape checks here; the least squares is :func:`mpcproto.responses.fit_step_response`."""
-    from ..responses import fit_step_response
-
+    """Shape checks here; the least squares is :func:`mpcproto.step_fit.fit_step_response`."""
     what = f"fit_{kind}({cv}<-{mv})" if cv else f"fit_{kind}"
     s, r, _ = _prep(t, y, at, size, y0, what)
     _, _, inverse = _shape_checks(s, r, what, allow_integrating=kind == "integrating")
@@ -290,8 +216,8 @@ def _fit(kind: str, t: Sequence[float], y: Sequence[float], at: float, size: flo
         raise SettingsError(f"{what}: the response has no slope; it is not integrating.")
     # r is the response per unit step measured from y0 at times since the step
     f = fit_step_response(s, r, size=1.0, t_step=0.0, y0=0.0, kind=kind, what=what)
-    return ProcessFit(kind, f.gain, f.time_constants, f.dead_time, rmse=f.rms_error * abs(size),
-                      inverse_response=inverse, cv=cv, mv=mv)
+    return replace(f, rmse=f.rmse * abs(size), noise_level=f.noise_level * abs(size),
+                   inverse_response=inverse, cv=cv, mv=mv)
 
 
 def fit_fopdt(t: Sequence[float], y: Sequence[float], *, at: float, size: float,
@@ -300,7 +226,7 @@ def fit_fopdt(t: Sequence[float], y: Sequence[float], *, at: float, size: float,
 
     Refuses a response that is still ramping at the end (use :func:`fit_integrating`) or that
     does not rise above the noise; flags an inverse response.  The fit itself is
-    :func:`mpcproto.responses.fit_step_response`.
+    :func:`mpcproto.step_fit.fit_step_response`.
     """
     return _fit("fopdt", t, y, at, size, y0, cv, mv)
 

@@ -8,7 +8,7 @@ units (CV unit per input unit)::
 
 Sampling the continuous step response at the sample times gives the same numbers (ZOH step
 invariance), so a continuous FOPDT/SOPDT/integrating model can be fitted to them with the one
-fitter of the package, :func:`mpcproto.responses.fit_step_response`.
+fitter of the package, :func:`mpcproto.step_fit.fit_step_response`.
 
 The settling horizon is the number of samples after which every self-regulating channel stays
 within 1 % of its steady-state gain (at least the prediction horizon; common practice, no
@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 
 from ..exceptions import SettingsError
-from ..responses import fit_step_response, step_model_response
+from ..step_fit import fit_step_response, step_model_response
 
 __all__ = ["step_coefficients", "settling_samples", "pair_columns", "fit_pairs", "plot_step_matrix",
            "SETTLE_FRACTION"]
@@ -95,8 +95,8 @@ def pair_columns(cv_names: Sequence[str], mv_names: Sequence[str],
 
 def _fit_entry(f: Any, span: float) -> dict[str, Any]:
     return {"gain": float(f.gain), "time_constants": [float(t) for t in f.time_constants],
-            "dead_time": float(f.dead_time), "rms_error": float(f.rms_error),
-            "rms_error_percent": float(100.0 * f.rms_error / span) if span > 0 else None}
+            "dead_time": float(f.dead_time), "rms_error": float(f.rmse),
+            "rms_error_percent": float(100.0 * f.rmse / span) if span > 0 else None}
 
 
 def fit_pairs(S: np.ndarray, Ts: float, gains: np.ndarray, columns: Sequence[dict[str, str]], *,

@@ -9,7 +9,8 @@ number and integral of limit-violation events, and the solver's failure and fall
 fails or errors is a regression too.
 
 A change counts as worse when ``current - baseline > atol + rtol * |baseline|`` (the scaled
-tolerance SciPy's ``assert_allclose`` uses, one-sided).
+tolerance SciPy's ``assert_allclose`` uses, one-sided; the rule and its default tolerances live
+with the criteria: :func:`mpcproto.analysis.criteria.regression_bounds`).
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from ..exceptions import SettingsError
+from ..analysis.criteria import REGRESSION_ATOL, REGRESSION_RTOL, regression_bounds
 from ..store import case_verdict, load_results
 from .summary import flat_numbers
 
@@ -95,8 +97,8 @@ class BaselineComparison:
     missing: list[str] = field(default_factory=list)
     new: list[str] = field(default_factory=list)
     pairs: list[tuple[str, str]] = field(default_factory=list)
-    rtol: float = 0.05
-    atol: float = 1e-9
+    rtol: float = REGRESSION_RTOL
+    atol: float = REGRESSION_ATOL
     baseline_file: str = ""
 
     @property
@@ -141,7 +143,8 @@ def _records(source: str | os.PathLike | Iterable[Mapping[str, Any]]) -> dict[st
 
 def compare_with_baseline(current: str | os.PathLike | Iterable[Mapping[str, Any]],
                           baseline: str | os.PathLike | Iterable[Mapping[str, Any]], *,
-                          rtol: float = 0.05, atol: float = 1e-9) -> BaselineComparison:
+                          rtol: float = REGRESSION_RTOL,
+                          atol: float = REGRESSION_ATOL) -> BaselineComparison:
     """Flag the KPIs of *current* that got worse than in *baseline* beyond ``atol + rtol*|base|``.
 
     Parameters
@@ -199,10 +202,10 @@ def compare_with_baseline(current: str | os.PathLike | Iterable[Mapping[str, Any
                 if math.isnan(x0):
                     continue
                 out.compared += 1
-                allowed = x0 + atol + rtol * abs(x0)
+                better_below, allowed = regression_bounds(x0, rtol, atol)
                 if math.isnan(x) or x > allowed:
                     out.regressions.append(Regression(cid, scen, str(label), q, x0, x, allowed))
-                elif x < x0 - atol - rtol * abs(x0):
+                elif x < better_below:
                     out.improved += 1
     out.regressions.sort(key=lambda r: (r.quantity != "verdict", -_sort_change(r), r.case_id,
                                         r.controller, r.quantity))

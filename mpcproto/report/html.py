@@ -29,9 +29,10 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
+from ..analysis.criteria import is_absolute, margin, utilisation
 from ..store import case_verdict, criterion_passed, incomplete_note
 from .baseline import BaselineComparison
-from .summary import ABSOLUTE_CHECKS, criteria_of, margin, utilisation
+from .summary import criteria_of
 
 __all__ = ["write_html_report", "SAFETY_CAUTION", "sort_worst_first", "png_data_uri"]
 
@@ -76,11 +77,6 @@ def _worst_criterion(rec: Mapping[str, Any]) -> tuple[float, str, Mapping[str, A
         if math.isnan(best[0]) or u > best[0]:
             best = (u, ctl, cr)
     return best
-
-
-def _is_absolute(cr: Mapping[str, Any]) -> bool:
-    chk = cr.get("check") if isinstance(cr.get("check"), str) else str(cr.get("name", "")).split(":")[0]
-    return chk in ABSOLUTE_CHECKS
 
 
 def _share(u: float) -> str:
@@ -173,7 +169,7 @@ def _chart_utilisation(scen: str, recs: Sequence[Mapping[str, Any]], max_rows: i
         if case_verdict(rec) == "error":
             continue
         for ctl, cr in criteria_of(rec):
-            if _is_absolute(cr):   # no ratio for a level check: shown against the parameters
+            if is_absolute(cr):   # no ratio for a level check: shown against the parameters
                 continue
             u = utilisation(cr)
             if math.isnan(u):
@@ -237,7 +233,7 @@ def _chart_parameters(scen: str, recs: Sequence[Mapping[str, Any]], max_params: 
     def rank(label: str):
         items = per[label]
         fails = sum(1 for _, cr in items if cr.get("passed") is False)
-        absolute = any(str(cr.get("check", "")) in ("peak_below", "low_above") for _, cr in items)
+        absolute = any(is_absolute(cr) for _, cr in items)
         us = [utilisation(cr) for _, cr in items]
         worst = max((u for u in us if not math.isnan(u)), default=0.0)
         return (-fails, not absolute, -min(worst, 1e9))

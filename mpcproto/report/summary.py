@@ -18,10 +18,11 @@ from collections.abc import Iterable, Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
+from ..analysis.criteria import utilisation
 from ..store import case_verdict, criterion_passed, incomplete_note, iter_results
 
 __all__ = ["flat_rows", "flat_numbers", "criteria_of", "write_summary_csv", "LEAD_COLUMNS",
-           "case_verdict", "utilisation", "margin", "ABSOLUTE_CHECKS"]
+           "case_verdict"]
 
 #: The first columns of summary.csv, in this order; the flat numbers follow, sorted by name.
 LEAD_COLUMNS = ("case_id", "scenario", "verdict", "status", "passed", "controller",
@@ -58,68 +59,6 @@ def criteria_of(record: Mapping[str, Any]) -> list[tuple[str, dict[str, Any]]]:
         for cr in record.get(key) or []:
             out.append(("", cr))
     return out
-
-
-#: Checks on the absolute level of a variable (a temperature in K, a level in m): a ratio of value to
-#: limit means nothing there, so they report a margin in the variable's unit instead.
-ABSOLUTE_CHECKS = frozenset({"peak_below", "low_above"})
-
-
-def _check_of(criterion: Mapping[str, Any]) -> str:
-    chk = criterion.get("check")
-    if isinstance(chk, str):
-        return chk
-    return str(criterion.get("name") or "").split(":", 1)[0]
-
-
-def _upper(criterion: Mapping[str, Any]) -> bool | None:
-    """True for an upper limit, False for a lower one, None when unknown (read from the verdict)."""
-    v, lim, ok = criterion.get("value"), criterion.get("limit"), criterion.get("passed")
-    chk = _check_of(criterion)
-    if chk.endswith("_below") or chk in ("no_limit_violation", "no_solver_failure",
-                                         "mv_commands_within_limits"):
-        return True
-    if chk.endswith("_above") or chk == "better_than":
-        return False
-    if not (_is_num(v) and _is_num(lim)) or ok is None:
-        return None
-    return (v <= lim) == bool(ok)
-
-
-def margin(criterion: Mapping[str, Any]) -> float:
-    """Distance from the limit in the criterion's unit: positive inside, negative beyond it."""
-    v, lim = criterion.get("value"), criterion.get("limit")
-    up = _upper(criterion)
-    if up is None or not (_is_num(v) and _is_num(lim)):
-        return math.nan
-    return float(lim - v) if up else float(v - lim)
-
-
-def utilisation(criterion: Mapping[str, Any]) -> float:
-    """How much of its limit a criterion uses: 1.0 at the limit, above 1.0 when it fails.
-
-    For an upper limit this is value/limit; for a lower limit (a value that must stay above) it is
-    limit/value.  The direction comes from the check's name (``*_below``, ``*_above``) or, failing
-    that, from the verdict.  NaN for checks on an absolute level (:data:`ABSOLUTE_CHECKS`: see
-    :func:`margin` for those) and when the numbers do not allow a ratio; inf for a failed check
-    whose ratio cannot be formed.
-    """
-    v, lim, ok = criterion.get("value"), criterion.get("limit"), criterion.get("passed")
-    if _check_of(criterion) in ABSOLUTE_CHECKS:
-        return math.inf if ok is False else math.nan
-    if not (_is_num(v) and _is_num(lim)) or not (math.isfinite(v) and math.isfinite(lim)):
-        return math.nan if ok is not False else math.inf
-    if lim == 0 or v == 0:
-        if ok is False:
-            return math.inf
-        return 0.0 if (v == 0 and lim != 0) else math.nan
-    up = _upper(criterion)
-    if up is None:
-        return math.nan
-    r = v / lim if up else lim / v
-    if r < 0:
-        return math.inf if ok is False else math.nan
-    return r
 
 
 def _violation_numbers(events: Any) -> dict[str, float]:

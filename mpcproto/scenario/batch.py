@@ -53,6 +53,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TextIO
 
+from .._deps import pool_processes
 from ..exceptions import SettingsError
 from ..store import (FINGERPRINT_KEY, ID_KEY, RESULTS_FILE, append_record, case_fingerprint,
                      case_id_of, iter_results, load_results, lock_output, repair_tail, scan_done)
@@ -584,7 +585,7 @@ def _stop_pool(ex: Executor, grace_s: float = 3.0) -> None:
 
     Each worker gets SIGTERM, then SIGKILL if it is still there after *grace_s* seconds.
     """
-    procs = list((getattr(ex, "_processes", None) or {}).values())
+    procs = pool_processes(ex)
     ex.shutdown(wait=False, cancel_futures=True)
     for p in procs:
         try:

@@ -41,6 +41,7 @@ from concurrent.futures import Executor, ProcessPoolExecutor
 from contextlib import contextmanager
 from typing import Iterator
 
+from .._deps import dask_executor_client, pool_max_workers
 from ..exceptions import SettingsError
 
 __all__ = ["local_pool", "dask_executor", "executor_slots", "default_start_method", "default_workers",
@@ -283,13 +284,13 @@ def dask_executor(address: str, *, timeout: float = 30.0) -> Iterator[Executor]:
 def executor_slots(executor: Executor) -> int:
     """How many cases *executor* can run at once (used to size the in-flight window).
 
-    Reads ``_max_workers`` of a process or thread pool and the worker threads of a Dask client's
-    executor; falls back to the CPUs of this machine.
+    Reads the workers of a process or thread pool and the worker threads of a Dask client's
+    executor (:mod:`mpcproto._deps`); falls back to the CPUs of this machine.
     """
-    n = getattr(executor, "_max_workers", None)
-    if isinstance(n, int) and n > 0:
+    n = pool_max_workers(executor)
+    if n is not None:
         return n
-    client = getattr(executor, "_client", None)
+    client = dask_executor_client(executor)
     if client is not None:
         try:
             threads = client.nthreads()

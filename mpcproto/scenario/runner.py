@@ -36,7 +36,7 @@ from typing import Any
 from ..exceptions import MpcprotoError, ScenarioError, SettingsError
 from ..model import suggest
 from .build import check_names, controller_model, operating_point, plant_model
-from .criteria import evaluate_comparisons, evaluate_controller
+from ..analysis.criteria import evaluate_comparisons, evaluate_controller
 from .schema import Scenario, load_scenario
 from .checks import (_check_criteria_names, _check_event_times, _check_history, _check_mpc_size,
                      _check_run_size, _check_solver_options, _check_specs, _warn_ci_dropped,

@@ -15,23 +15,186 @@ criterion's ``tolerance`` (a fraction of the variable's physical range, default
 criteria, a controller that sent an MV command outside a hard limit always gets the failed verdict
 ``mv_commands_within_limits`` (as a run that did not complete gets ``run_completed`` and a run
 whose true plant left its model's physical bounds gets ``within_valid_range``).
+
+What each check's number means, its unit, which way is better and whether a ratio to its limit
+makes sense live in one table, :data:`CRITERIA`; the CLI and the reports read it from there
+(:func:`utilisation`, :func:`margin`).  The rule by which a baseline comparison calls a number
+worse is here too (:func:`regression_bounds`).
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-__all__ = ["evaluate_controller", "evaluate_comparisons", "applies_to", "LIMIT_TOLERANCE"]
+__all__ = ["evaluate_controller", "evaluate_comparisons", "applies_to", "LIMIT_TOLERANCE",
+           "CriterionInfo", "CRITERIA", "check_of", "limit_is_upper", "is_absolute", "utilisation",
+           "margin", "REGRESSION_RTOL", "REGRESSION_ATOL", "regression_bounds"]
 
 #: default tolerance of ``no_limit_violation``: an excess counts when it passes the limit by more
 #: than this fraction of the variable's physical range (``max(1, |limit|)`` where unbounded).  A
 #: controller that rides a soft limit sits on it within its solver's tolerance; 1e-4 of the range
 #: is far below any instrument's resolution (common practice, no source).
 LIMIT_TOLERANCE = 1e-4
+
+
+
+@dataclass(frozen=True)
+class CriterionInfo:
+    """What a check's verdict means.
+
+    Attributes
+    ----------
+    meaning : str
+        What the check asks, in the words of ``docs/scenario-format.md``.
+    value : str
+        What the number beside the verdict is, with its unit (the limit is in the same terms).
+    better : {"lower", "higher"}
+        Which way the value is better: ``"lower"`` when the limit is an upper bound.
+    absolute : bool
+        A check on the absolute level of a variable (a temperature in K, a level in m): a ratio of
+        value to limit means nothing there, so the reports give a margin in the variable's unit.
+    """
+
+    meaning: str
+    value: str
+    better: str
+    absolute: bool = False
+
+
+#: Every check a verdict can carry: the scenario's ``[[criteria]]`` checks
+#: (:data:`mpcproto.scenario.schema.CRITERION_CHECKS` lists the keys each needs) and the verdicts
+#: added whatever the criteria (``run_completed``, ``within_valid_range``,
+#: ``mv_commands_within_limits``).
+CRITERIA: dict[str, CriterionInfo] = {
+    "iae_below": CriterionInfo("integral of absolute error of a CV below limit",
+                               "IAE, CV unit x time unit", "lower"),
+    "ise_below": CriterionInfo("integral of squared error of a CV below limit",
+                               "ISE, CV unit squared x time unit", "lower"),
+    "itae_below": CriterionInfo("time-weighted IAE of a CV below limit",
+                                "ITAE, CV unit x time unit squared", "lower"),
+    "max_error_below": CriterionInfo("largest |setpoint - CV| below limit",
+                                     "largest |setpoint - CV|, CV unit", "lower"),
+    "settling_time_below": CriterionInfo("settling time of a CV below limit", "time unit", "lower"),
+    "overshoot_below": CriterionInfo("overshoot of a CV below limit",
+                                     "fraction of the setpoint step", "lower"),
+    "peak_below": CriterionInfo("highest true value a variable reaches below limit",
+                                "highest true value, variable's unit", "lower", absolute=True),
+    "low_above": CriterionInfo("lowest true value a variable reaches above limit",
+                               "lowest true value, variable's unit", "higher", absolute=True),
+    "travel_below": CriterionInfo("total travel of an MV below limit", "total MV travel, MV unit",
+                                  "lower"),
+    "no_limit_violation": CriterionInfo("no limit-violation event beyond the tolerance",
+                                        "number of limit-violation events", "lower"),
+    "no_solver_failure": CriterionInfo("the controller never failed nor fell back",
+                                       "number of failed or fallback steps", "lower"),
+    "solve_time_below": CriterionInfo("slowest whole controller step below a fraction of Ts",
+                                      "slowest step as a fraction of the sample time", "lower"),
+    "better_than": CriterionInfo("this controller's KPI of a CV at least by_percent % lower than "
+                                 "the other's",
+                                 "% by which the KPI is lower than the other controller's", "higher"),
+    "run_completed": CriterionInfo("the simulation ran to its end", "the simulation ended early",
+                                   "higher"),
+    "within_valid_range": CriterionInfo("the true plant stayed within its model's physical bounds",
+                                        "number of variables that left their physical range",
+                                        "lower"),
+    "mv_commands_within_limits": CriterionInfo(
+        "every MV command within its hard limits",
+        "number of events of an MV command outside its hard limits", "lower"),
+}
+
+
+def check_of(criterion: Mapping[str, Any]) -> str:
+    """The check of a verdict (from ``check``, or the part of its ``name`` before a colon)."""
+    chk = criterion.get("check")
+    if isinstance(chk, str):
+        return chk
+    return str(criterion.get("name") or "").split(":", 1)[0]
+
+
+def _is_num(v: Any) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def limit_is_upper(criterion: Mapping[str, Any]) -> bool | None:
+    """True for an upper limit, False for a lower one, None when unknown.
+
+    From :data:`CRITERIA`; a check not in the table (a record of another version) is read from its
+    verdict (value within the limit and passed, or beyond it and failed).
+    """
+    info = CRITERIA.get(check_of(criterion))
+    if info is not None:
+        return info.better == "lower"
+    v, lim, ok = criterion.get("value"), criterion.get("limit"), criterion.get("passed")
+    if not (_is_num(v) and _is_num(lim)) or ok is None:
+        return None
+    return (v <= lim) == bool(ok)
+
+
+def is_absolute(criterion: Mapping[str, Any]) -> bool:
+    """True for a check on the absolute level of a variable (no ratio to its limit)."""
+    info = CRITERIA.get(check_of(criterion))
+    return info is not None and info.absolute
+
+
+def margin(criterion: Mapping[str, Any]) -> float:
+    """Distance from the limit in the criterion's unit: positive inside, negative beyond it."""
+    v, lim = criterion.get("value"), criterion.get("limit")
+    up = limit_is_upper(criterion)
+    if up is None or not (_is_num(v) and _is_num(lim)):
+        return math.nan
+    return float(lim - v) if up else float(v - lim)
+
+
+def utilisation(criterion: Mapping[str, Any]) -> float:
+    """How much of its limit a criterion uses: 1.0 at the limit, above 1.0 when it fails.
+
+    For an upper limit this is value/limit; for a lower limit (a value that must stay above) it is
+    limit/value (the direction from :func:`limit_is_upper`).  NaN for checks on an absolute level
+    (:func:`is_absolute`: see :func:`margin` for those) and when the numbers do not allow a ratio;
+    inf for a failed check whose ratio cannot be formed.
+    """
+    v, lim, ok = criterion.get("value"), criterion.get("limit"), criterion.get("passed")
+    if is_absolute(criterion):
+        return math.inf if ok is False else math.nan
+    if not (_is_num(v) and _is_num(lim)) or not (math.isfinite(v) and math.isfinite(lim)):
+        return math.nan if ok is not False else math.inf
+    if lim == 0 or v == 0:
+        if ok is False:
+            return math.inf
+        return 0.0 if (v == 0 and lim != 0) else math.nan
+    up = limit_is_upper(criterion)
+    if up is None:
+        return math.nan
+    r = v / lim if up else lim / v
+    if r < 0:
+        return math.inf if ok is False else math.nan
+    return r
+
+
+#: Default tolerances of a baseline comparison (``mpcproto batch --baseline``): 5 % worse is still
+#: accepted (``--tolerance``), and 1e-9 in each number's own unit guards figures near zero
+#: (``--abs-tolerance``).
+REGRESSION_RTOL = 0.05
+REGRESSION_ATOL = 1e-9
+
+
+def regression_bounds(baseline: float, rtol: float = REGRESSION_RTOL,
+                      atol: float = REGRESSION_ATOL) -> tuple[float, float]:
+    """``(better_below, worse_above)`` of a lower-is-better number whose earlier value is *baseline*.
+
+    The regression rule of a baseline comparison: a number is worse when
+    ``current - baseline > atol + rtol * |baseline|`` (the scaled tolerance of SciPy's
+    ``assert_allclose``, one-sided), better when ``baseline - current`` passes the same amount.
+    Every number a baseline comparison checks is lower-is-better (KPIs, violation counts and
+    integrals, solver failure counters).
+    """
+    return baseline - atol - rtol * abs(baseline), baseline + atol + rtol * abs(baseline)
+
 
 _KPI_OF = {"iae_below": "iae", "ise_below": "ise", "itae_below": "itae",
            "max_error_below": "max_abs_error", "settling_time_below": "settling_time",
@@ -119,7 +282,7 @@ def evaluate_controller(criteria: Sequence[Mapping[str, Any]], label: str, block
         if check in _KPI_OF:
             extra = {}
             if "band" in cr:      # a settling band stated by the criterion (CV units)
-                from ..analysis import cv_performance
+                from .kpi import cv_performance
 
                 v = None if traj is None else _num(
                     cv_performance(traj, cr["cv"], band=cr["band"])["settling_time"])
