@@ -104,6 +104,12 @@ def tuning_text(inputs: Mapping[str, Any]) -> str:
     if t.get("mv"):
         parts.append("MV scale/move weight " + ", ".join(
             f"{n} {_fmt(v.get('scale'))}/{_fmt(v.get('move_weight'))}" for n, v in t["mv"].items()))
+    rule = t.get("move_weight_default") or {}
+    if rule.get("used_by"):
+        parts.append(f"default move weight 0.1 x (Ts_ref/Ts)^2 = {_fmt(rule.get('move_weight'))} "
+                     f"on {', '.join(rule['used_by'])} (Ts_ref = "
+                     f"{_fmt(rule.get('reference_sample_time'))}: the horizon "
+                     f"{_fmt(rule.get('horizon_time'))} over 40 samples)")
     return "; ".join(parts) or "-"
 
 

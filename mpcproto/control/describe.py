@@ -44,7 +44,8 @@ def describe_controller(controller: Any, model: Any) -> dict[str, Any]:
 
 def _mpc_weights(controller: Any, resolved: Mapping[str, Any]) -> dict[str, Any]:
     """Per CV: scale, weight and priority; per MV: scale and move weight, as the predictive
-    controller resolved them (weights per squared scale, as given or by default)."""
+    controller resolved them (weights per squared scale, as given or by default), and the rule
+    of the default move weight (:func:`~mpcproto.control.mpc_settings.default_move_weight`)."""
     from .mpc_settings import CV_KEYS, MV_KEYS, per_var
 
     m = getattr(controller, "dmodel", None)
@@ -54,5 +55,12 @@ def _mpc_weights(controller: Any, resolved: Mapping[str, Any]) -> dict[str, Any]
     mvs = per_var("mv", controller.mv, m.mv_names, MV_KEYS)
     return {"cv": {n: {"scale": float(resolved["cv_scale"][i]), "weight": float(row["weight"]),
                        "priority": int(row["priority"])} for i, (n, row) in enumerate(zip(m.cv_names, cvs))},
-            "mv": {n: {"scale": float(resolved["mv_scale"][j]), "move_weight": float(row["move_weight"])}
-                   for j, (n, row) in enumerate(zip(m.mv_names, mvs))}}
+            "mv": {n: {"scale": float(resolved["mv_scale"][j]),
+                       "move_weight": float(resolved["move_weight_per_scale"][j]),
+                       "move_weight_given": row["move_weight"] is not None}
+                   for j, (n, row) in enumerate(zip(m.mv_names, mvs))},
+            "move_weight_default": _plain(resolved.get("move_weight_default") or {})}
+
+
+def _plain(d: Mapping[str, Any]) -> dict[str, Any]:
+    return {k: (float(v) if isinstance(v, (int, float)) else v) for k, v in d.items()}
