@@ -65,7 +65,8 @@ from .control.tuning import (StepData, step_test, fit_fopdt, fit_sopdt, fit_inte
 from .control.pid_settings import pid_from_settings
 from .compare import compare, Comparison, describe_controller, fairness_notes, tuning_text
 from .control.regulatory import (RegulatoryController, Feedforward, Ratio, Cascade, Selector,
-                                 SplitRange, Valve, design_feedforward)
+                                 SplitRange, Valve)
+from .control.regulatory_settings import design_feedforward
 from .control.over_loops import OverLoops, identify_over_loops
 from .design import (GainAnalysis, gain_matrix_analysis, niederlinski_index, rga_at_frequency,
                      sampling_advice)

@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from .analysis import summarize
+from .control.describe import describe_controller
 from .exceptions import SettingsError
 from .trajectory import Trajectory
 
@@ -70,55 +71,6 @@ def scorecard(summaries: Mapping[str, Mapping[str, Any]]) -> list[dict[str, Any]
     return rows
 
 
-def describe_controller(controller: Any, model: Any) -> dict[str, Any]:
-    """What a controller had in a comparison (JSON-able): ``kind``, ``structure`` (lines of
-    text), ``measured_cvs``, ``measured_dvs_used`` (the measured DVs it acts on: feedforward,
-    ratio), ``mv_flows_used`` (other MVs' flows it reads) and ``tuning``.
-
-    A controller with a ``describe()`` method answers itself (the PID controllers); for the
-    predictive controller the measured DVs are those of *model* its settings feed forward; any
-    other controller is reported as ``unknown`` (what it reads is not known: no DV is assumed).
-    """
-    desc = getattr(controller, "describe", None)
-    if callable(desc):
-        return dict(desc())
-    measured = list(getattr(model, "measured_dv_names", ()))
-    resolved = getattr(controller, "_resolved", None)
-    if resolved is not None and "feedforward" in resolved:
-        names = list(getattr(getattr(controller, "dmodel", None), "dv_names", ()) or
-                     getattr(model, "dv_names", ()))
-        ff = [n for n, on in zip(names, list(resolved["feedforward"])) if on and n in measured]
-        mvs = list(getattr(model, "mv_names", ()))
-        structure = [f"one multivariable predictive controller on {', '.join(mvs)}"]
-        if getattr(controller, "setpoint_preview", False) is True:   # it sees the program ahead
-            structure.append(f"setpoint program seen {resolved.get('N')} samples ahead")
-        return {"kind": "mpc", "structure": structure,
-                "measured_cvs": list(getattr(model, "cv_names", ())), "measured_dvs_used": ff,
-                "mv_flows_used": [],
-                "tuning": {"horizon": resolved.get("N", getattr(controller, "horizon", None)),
-                           "control_horizon": resolved.get(
-                               "M", getattr(controller, "control_horizon", None)),
-                           **_mpc_weights(controller, resolved)}}
-    return {"kind": "unknown", "structure": [type(controller).__name__], "measured_cvs": [],
-            "measured_dvs_used": [], "mv_flows_used": [], "tuning": {}}
-
-
-def _mpc_weights(controller: Any, resolved: Mapping[str, Any]) -> dict[str, Any]:
-    """Per CV: scale, weight and priority; per MV: scale and move weight, as the predictive
-    controller resolved them (weights per squared scale, as given or by default)."""
-    from .control.mpc_settings import CV_KEYS, MV_KEYS, per_var
-
-    m = getattr(controller, "dmodel", None)
-    if m is None or "cv_scale" not in resolved:
-        return {}
-    cvs = per_var("cv", controller.cv, m.cv_names, CV_KEYS)
-    mvs = per_var("mv", controller.mv, m.mv_names, MV_KEYS)
-    return {"cv": {n: {"scale": float(resolved["cv_scale"][i]), "weight": float(row["weight"]),
-                       "priority": int(row["priority"])} for i, (n, row) in enumerate(zip(m.cv_names, cvs))},
-            "mv": {n: {"scale": float(resolved["mv_scale"][j]), "move_weight": float(row["move_weight"])}
-                   for j, (n, row) in enumerate(zip(m.mv_names, mvs))}}
-
-
 def tuning_text(inputs: Mapping[str, Any]) -> str:
     """The tuning of a :func:`describe_controller` answer in one line: ``cv<-mv K=.. Ti=..`` per
     loop (ratio trims, cascade loops, selector loops and split ranges too), feedforward gains and
@@ -152,6 +104,12 @@ def tuning_text(inputs: Mapping[str, Any]) -> str:
     if t.get("mv"):
         parts.append("MV scale/move weight " + ", ".join(
             f"{n} {_fmt(v.get('scale'))}/{_fmt(v.get('move_weight'))}" for n, v in t["mv"].items()))
+    rule = t.get("move_weight_default") or {}
+    if rule.get("used_by"):
+        parts.append(f"default move weight 0.1 x (Ts_ref/Ts)^2 = {_fmt(rule.get('move_weight'))} "
+                     f"on {', '.join(rule['used_by'])} (Ts_ref = "
+                     f"{_fmt(rule.get('reference_sample_time'))}: the horizon "
+                     f"{_fmt(rule.get('horizon_time'))} over 40 samples)")
     return "; ".join(parts) or "-"
 
 

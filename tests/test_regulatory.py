@@ -9,7 +9,8 @@ import pytest
 import mpcproto as mp
 from mpcproto.control.pid import PIDLoop
 from mpcproto.control.regulatory import (Cascade, Feedforward, Ratio, RegulatoryController, Selector,
-                                         SplitRange, Valve, design_feedforward, split_range_value)
+                                         SplitRange, Valve, split_range_value)
+from mpcproto.control.regulatory_settings import design_feedforward
 from mpcproto.control.tuning import ProcessFit
 from mpcproto.sim import simulate
 from tests._plants import op0

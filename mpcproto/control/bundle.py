@@ -132,8 +132,8 @@ def _plain_number(v: Any) -> Any:
 def settings_to_plain(ctl: Any) -> dict[str, Any]:
     """Every setting of a :class:`~mpcproto.control.mpc.PredictiveController`, defaults filled in,
     as JSON-able data (the keys of ``from_settings``); an infinite limit ("no limit") is null; a
-    scale left to its default is the one the built controller derived (so the bundle rebuilds the
-    same controller without the model's physical bounds)."""
+    scale or move weight left to its default is the one the built controller derived (so the
+    bundle rebuilds the same controller without the model's physical bounds)."""
     from .mpc_settings import CV_KEYS, DV_KEYS, MV_KEYS, SETTINGS_KEYS
 
     m = ctl.dmodel
@@ -154,6 +154,8 @@ def settings_to_plain(ctl: Any) -> dict[str, Any]:
             row.update(given.get(n, {}))
             if row.get("scale", 0) is None and scales is not None:
                 row["scale"] = float(scales[i])
+            if role == "mv" and row["move_weight"] is None and "move_weight_per_scale" in resolved:
+                row["move_weight"] = float(resolved["move_weight_per_scale"][i])
             for k, v in row.items():
                 v = _plain_number(v)
                 if k in _OPEN.get(role, {}) and isinstance(v, float) and math.isinf(v):

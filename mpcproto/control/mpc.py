@@ -105,7 +105,9 @@ class PredictiveController:
         "output" otherwise), ``measurement_noise`` (> 0, variance), ``disturbance_noise``
         (> 0, variance of the per-sample disturbance change).
     mv : mapping of MV name to dict
-        Per-MV settings: ``move_weight`` (>= 0, per squared ``scale``), ``preferred_weight`` (>= 0,
+        Per-MV settings: ``move_weight`` (>= 0, per squared ``scale``; default ``0.1 (horizon/40)^2``,
+        the same design for the same horizon in time at any sample time --
+        :func:`~mpcproto.control.mpc_settings.default_move_weight`), ``preferred_weight`` (>= 0,
         weight pulling the MV to its preferred value), ``preferred_value`` (engineering units; default:
         the operating point; with the steady target on, the dynamic problem rests at the target
         and ``preferred_value`` only breaks ties in the target), ``low``/``high`` (hard limits,

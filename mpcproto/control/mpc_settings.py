@@ -21,7 +21,8 @@ from .estimator import DISTURBANCE_MODELS
 
 __all__ = ["SETTINGS_KEYS", "CV_KEYS", "MV_KEYS", "DV_KEYS", "SOLVERS", "BACKUP_SOLVERS",
            "FALLBACKS", "CONDENSED_MAX_VARIABLES", "CONDENSED_MAX_ENTRIES", "resolve",
-           "per_var", "check_model", "SCALE_FRACTION", "nice_number", "range_span", "default_scale"]
+           "per_var", "check_model", "SCALE_FRACTION", "nice_number", "range_span", "default_scale",
+           "MOVE_WEIGHT", "REFERENCE_SAMPLES", "default_move_weight"]
 
 #: top-level settings keys and their defaults (see :class:`PredictiveController`)
 SETTINGS_KEYS: dict[str, Any] = {
@@ -36,14 +37,20 @@ CV_KEYS: dict[str, Any] = {
     "limit_penalty_quadratic": 1e1, "priority": 1, "disturbance": "auto",
     "measurement_noise": 1e-3, "disturbance_noise": 1e-2,
 }
-#: per-MV keys and defaults (``scale`` None: derived from the MV's range, :func:`default_scale`)
+#: per-MV keys and defaults (``scale`` None: derived from the MV's range, :func:`default_scale`;
+#: ``move_weight`` None: derived from the sample time, :func:`default_move_weight`)
 MV_KEYS: dict[str, Any] = {
-    "move_weight": 0.1, "preferred_weight": 0.0, "preferred_value": None, "low": -math.inf,
+    "move_weight": None, "preferred_weight": 0.0, "preferred_value": None, "low": -math.inf,
     "high": math.inf, "max_move": math.inf, "scale": None,
 }
 #: a default scale is this fraction of the variable's range: one scale is one typical move (a
 #: rule of ours, common practice, no source; ``mpcproto new`` writes the same scales)
 SCALE_FRACTION = 1.0 / 20.0
+#: a default move weight is this (per squared MV scale) at the reference sample time, and
+#: grows with the square of the reference sample time over the sample time (:func:`default_move_weight`)
+MOVE_WEIGHT = 0.1
+#: the reference sample time is the prediction horizon (in time) over this many samples
+REFERENCE_SAMPLES = 40
 #: keys of earlier versions that were renamed: refused with a message naming the new key
 _RENAMED_KEYS = {f"rest_{k}": f"preferred_{k}" for k in ("value", "weight")}
 #: per-DV keys and defaults
@@ -98,6 +105,37 @@ def default_scale(*ranges: tuple[float, float], nominal: float) -> float:
         if math.isfinite(low) and math.isfinite(high) and high > low:
             return nice_number((high - low) * SCALE_FRACTION)
     return nice_number(range_span(math.nan, math.nan, nominal) * SCALE_FRACTION)
+
+
+def default_move_weight(Ts: float, horizon: int) -> dict[str, Any]:
+    """The default move weight (per squared MV scale) at sample time *Ts* with a prediction horizon
+    of *horizon* samples, with the reference it came from.
+
+    Rule: ``MOVE_WEIGHT * (Ts_ref / Ts) ** 2`` with ``Ts_ref = horizon * Ts / REFERENCE_SAMPLES``,
+    the sample time at which the same horizon in time would span ``REFERENCE_SAMPLES`` (40)
+    samples -- a horizon of about four dominant time constants (the settling time) sampled at a
+    tenth of one, the rules of :func:`mpcproto.design.sampling_advice`.  So the weight is
+    ``0.1 (N / 40) ** 2``: the earlier default 0.1 at a 40-sample horizon, and the same design for
+    the same horizon in time whatever the sample time.
+
+    Why the square: the cost sums the CV error every sample, ``sum_k e_k^2 ~ (1/Ts) int e^2 dt``,
+    and a smooth MV path moves ``du_k ~ (du/dt) Ts`` per sample, so ``sum_k du_k^2 ~ Ts int
+    (du/dt)^2 dt``.  With the move weight in ``1/Ts^2`` the ratio of the two terms, and so the
+    closed loop, tends to that of one continuous-time design ``int (e^2 + r (du/dt)^2) dt`` as the
+    sample time shrinks (the usual sampled quadratic cost; common practice, no source); with a
+    constant weight, halving ``Ts`` quarters the price of the same MV path against the same error.
+
+    >>> d = default_move_weight(10.0, 60)        # 600 s of horizon: Ts_ref = 15 s
+    >>> round(d["move_weight"], 6), d["reference_sample_time"]
+    (0.225, 15.0)
+    >>> h = default_move_weight(5.0, 120)       # the same horizon in time at half the sample time
+    >>> h["reference_sample_time"], round(h["move_weight"] / d["move_weight"], 12)
+    (15.0, 4.0)
+    """
+    Ts = float(Ts)
+    ts_ref = int(horizon) * Ts / REFERENCE_SAMPLES
+    return {"move_weight": MOVE_WEIGHT * (ts_ref / Ts) ** 2, "reference_sample_time": ts_ref,
+            "horizon_time": int(horizon) * Ts, "sample_time": Ts}
 
 
 def _err(key: str, expected: str, found: Any) -> SettingsError:
@@ -164,8 +202,11 @@ def resolve(ctrl) -> dict[str, Any]:
             raise _err(f"{p}.disturbance", f"one of {DISTURBANCE_MODELS}", row["disturbance"])
         _number(f"{p}.measurement_noise", row["measurement_noise"], low=0, low_open=True)
         _number(f"{p}.disturbance_noise", row["disturbance_noise"], low=0, low_open=True)
+    rule = default_move_weight(m.Ts, N)
     for j, (name, row) in enumerate(zip(m.mv_names, mvs)):
         p = f"mv.{name}"
+        if row["move_weight"] is None:
+            row["move_weight"] = rule["move_weight"]
         _number(f"{p}.move_weight", row["move_weight"], low=0)
         _number(f"{p}.preferred_weight", row["preferred_weight"], low=0)
         if row["preferred_value"] is not None:
@@ -232,6 +273,9 @@ def resolve(ctrl) -> dict[str, Any]:
         meas_noise={n: float(row["measurement_noise"]) for n, row in zip(m.cv_names, cvs)},
         dist_noise={n: float(row["disturbance_noise"]) for n, row in zip(m.cv_names, cvs)},
         move_weight=arr(mvs, "move_weight") / arr(mvs, "scale") ** 2,
+        move_weight_per_scale=arr(mvs, "move_weight"),
+        move_weight_default={**rule, "used_by": [n for n in m.mv_names if (ctrl.mv or {}).get(
+            n, {}).get("move_weight") is None]},
         preferred_weight=arr(mvs, "preferred_weight") / arr(mvs, "scale") ** 2,
         mv_scale=arr(mvs, "scale"),
         preferred_value=np.array([m.op.u[j] if row["preferred_value"] is None else float(row["preferred_value"])

@@ -38,6 +38,7 @@ from ..exceptions import SettingsError
 from ..model import suggest
 from ..operating import OperatingPoint
 from .base import FATAL, FALLBACK, ControlOutput, Measurement, Targets, accepts_readback
+from .describe import describe_controller
 from .limits import project_value
 from .pid import PIDController, PIDLoop
 
@@ -95,9 +96,7 @@ class OverLoops:
         self._u_last: list[float] = []
 
     def describe(self) -> dict[str, Any]:
-        """What the controller has (see :func:`mpcproto.compare.describe_controller`)."""
-        from ..compare import describe_controller
-
+        """What the controller has (see :func:`mpcproto.control.describe.describe_controller`)."""
         d = dict(describe_controller(self.outer, self._plant))
         d["structure"] = [f"predictive controller writing setpoints to "
                           f"{', '.join(lp.cv + ' loop' for lp in self.loops)}"] + [
@@ -194,7 +193,7 @@ def identify_over_loops(plant: Any, op: OperatingPoint, Ts: float, loops: Sequen
     at *op*; setpoint ranges = the inner CVs' physical bounds).
     """
     from ..models.transfer_matrix import TransferElement, transfer_matrix_model
-    from ..sim.closed_loop import simulate
+    from .step_tests import closed_loop_step
     from .tuning import StepData, fit_step
 
     inner = PIDController.for_model(plant, list(loops), name="inner")
@@ -207,21 +206,20 @@ def identify_over_loops(plant: Any, op: OperatingPoint, Ts: float, loops: Sequen
         size = float(sizes[inp])
         at = 2 * Ts
         if inp in inner_cvs:
-            tr = simulate(plant, inner, op=op, Ts=Ts, duration=duration, rng=0, readback=False,
-                          setpoints={inp: {"kind": "step", "at": at, "size": size}})
+            tr = closed_loop_step(plant, inner, op, Ts=Ts, duration=duration,
+                                  setpoints={inp: (at, size)})
         elif inp in plant.dv_names:
-            tr = simulate(plant, inner, op=op, Ts=Ts, duration=duration, rng=0, readback=False,
-                          dvs={inp: {"kind": "step", "at": at, "size": size}})
+            tr = closed_loop_step(plant, inner, op, Ts=Ts, duration=duration, dvs={inp: (at, size)})
         else:
-            tr = simulate(plant, _Stepper(inner, plant.mv_names.index(inp), size, at), op=op,
-                          Ts=Ts, duration=duration, rng=0, readback=False)
+            tr = closed_loop_step(plant, _Stepper(inner, plant.mv_names.index(inp), size, at), op,
+                                  Ts=Ts, duration=duration)
         if not tr.success:
             raise SettingsError(f"identify_over_loops: the step test of '{inp}' failed: "
                                 f"{tr.message}")
         els = {}
         for c in cvs:
             i = plant.cv_names.index(c)
-            data = StepData(t=tr.t, y={c: tr.series("y", c)}, mv=inp, size=size, at=at,
+            data = StepData(t=tr.t, y={c: tr.series(c)}, mv=inp, size=size, at=at,
                             y0={c: float(op.y[i])})
             try:
                 f = fit_step(data, c)

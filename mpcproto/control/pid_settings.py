@@ -198,7 +198,7 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
         to_tune += [p for p in pairs if p not in given and p not in to_tune]
     _check_settings(model, settings, what)
     if any(k in settings for k in _STRUCTURE_KEYS):
-        from .regulatory import check_structure_settings
+        from .regulatory_settings import check_structure_settings
 
         check_structure_settings(model, {k: settings[k] for k in _STRUCTURE_KEYS if k in settings},
                                  what=what)
@@ -248,7 +248,7 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
         tuned, _ = tune(to_tune)
         loops = list(given.values()) + tuned
         if structures:
-            from .regulatory import regulatory_from_settings
+            from .regulatory_settings import regulatory_from_settings
 
             return regulatory_from_settings(
                 model, op, Ts, structures, loops=loops, tune=tune, on_fit=on_fit,
