@@ -672,8 +672,8 @@ def linearize(model, op: OperatingPoint) -> LinearModel:
 
         raise NotBuiltError(f"linearize(): model '{model.name}' is not built; call model.build() first.")
     z = model.z_of(op.u, op.d)
-    mats = [np.asarray(m, float) for m in model.jac_(op.x, op.u, op.d, z, op.p)]
-    A, B, Bd, Bz, C, D, Dd, Dz = mats
+    J = model.jac_(x=op.x, u=op.u, d=op.d, z=z, p=op.p)
+    A, B, Bd, Bz, C, D, Dd, Dz = (np.asarray(J[k], float) for k in ("A", "B", "Bd", "Bz", "C", "D", "Dd", "Dz"))
     nx, nu, nd, ny, nz = model.nx, model.nu, model.nd, model.ny, model.nz
     shape = lambda M, r, c: M.reshape(r, c)  # noqa: E731 - CasADi drops empty dimensions
     delays = [(dl.source_role, model.names(dl.source_role).index(dl.source), dl.dead_time)

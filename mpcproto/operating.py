@@ -45,6 +45,7 @@ import casadi as ca
 import numpy as np
 
 from .exceptions import NotBuiltError, OperatingPointError
+from .layout import ParameterLayout
 from .model import suggest
 
 __all__ = ["OperatingPoint", "TargetResult", "steady_states", "steady_state", "solve_targets"]
@@ -115,7 +116,7 @@ class OperatingPoint:
         z = model.z_of(u, d)
         p = model.p
         xdot = model.rhs(x, u, d, z, p)
-        A = np.asarray(model.jac_(x, u, d, z, p)[0], float)
+        A = np.asarray(model.jac_(x=x, u=u, d=d, z=z, p=p)["A"], float)
         if not np.all(np.isfinite(A)):
             raise OperatingPointError(_non_finite_message(model, A, p))
         ev = np.linalg.eigvals(A) if A.size else np.zeros(0, complex)
@@ -181,12 +182,10 @@ def _rootfinder(model):
     rf = getattr(model, "steady_rootfinder_", None)
     if rf is not None:
         return rf
-    nx, nu, nd, nz, npar = model.nx, model.nu, model.nd, model.nz, len(model.p)
-    x = ca.MX.sym("x", nx)
-    par = ca.MX.sym("par", nu + nd + nz + npar)
-    u, d = par[:nu], par[nu:nu + nd]
-    z, p = par[nu + nd:nu + nd + nz], par[nu + nd + nz:]
-    g = ca.Function("steady_residual", [x, par], [model.ode_(x, u, d, z, p)])
+    x = ca.MX.sym("x", model.nx)
+    par = ca.MX.sym("par", model.p_layout_.size)
+    g = ca.Function("steady_residual", [x, par], [model.ode_(x=x, **model.unpack_inputs(par))["xdot"]],
+                    ["x", "p"], ["xdot"])
     try:
         rf = ca.rootfinder(f"{model.name}_steady", "newton", g, {
             "error_on_fail": False, "abstol": 1e-12, "abstolStep": 1e-14, "max_iter": 60,
@@ -235,7 +234,7 @@ def _least_squares_root(model, x0, u, d, z, p):
         return model.rhs(x, u, d, z, p)
 
     def jac(x):
-        return np.asarray(model.jac_(x, u, d, z, p)[0], float).reshape(model.nx, model.nx)
+        return np.asarray(model.jac_(x=x, u=u, d=d, z=z, p=p)["A"], float).reshape(model.nx, model.nx)
 
     try:
         sol = least_squares(f, x0, jac=jac, bounds=(lo, hi), xtol=1e-15, ftol=1e-15, gtol=1e-15,
@@ -249,15 +248,16 @@ def _steady_jacobians(model, x, u, d, p):
     """Jacobians of xdot and y with respect to x and u at steady state (delayed copies of an MV
     move with it: the chain rule through ``z = u``)."""
     z = model.z_of(u, d)
-    A, B, _Bd, Bz, C, D, _Dd, Dz = (np.asarray(M, float) for M in model.jac_(x, u, d, z, p))
+    J = model.jac_(x=x, u=u, d=d, z=z, p=p)
+    A, B, Bz, C, D, Dz = (np.asarray(J[k], float) for k in ("A", "B", "Bz", "C", "D", "Dz"))
     A, C = A.reshape(model.nx, model.nx), C.reshape(model.ny, model.nx)
     B, D = B.reshape(model.nx, model.nu), D.reshape(model.ny, model.nu)
     if model.nz:
         Bz, Dz = Bz.reshape(model.nx, model.nz), Dz.reshape(model.ny, model.nz)
+        # dz/du: column i is the delayed inputs when MV i is 1 and everything else 0
         S = np.zeros((model.nz, model.nu))
-        for r, (role, i) in enumerate(model._z_src):
-            if role == "mv":
-                S[r, i] = 1.0
+        for i, e in enumerate(np.eye(model.nu)):
+            S[:, i] = model.z_of(e, np.zeros(model.nd))
         B, D = B + Bz @ S, D + Dz @ S
     return A, B, C, D
 
@@ -389,11 +389,11 @@ def steady_states(model, u: Mapping[str, float] | Sequence[float] | np.ndarray |
     rf = _rootfinder(model)
     if n_starts and rf is not False:
         cand.extend(_sample_box(model, int(n_starts), gen))
-    par = np.concatenate([u, d, z, p])
+    par = model.pack_inputs(u, d, z, p)
     found: list[np.ndarray] = []
     if rf is not False:
         for x0 in cand:
-            xs = np.asarray(rf(x0, par), float).reshape(-1)
+            xs = np.asarray(rf(x0=x0, p=par)["x"], float).reshape(-1)
             if _converged(model, xs, u, d, z, p) and _in_box(model, xs):
                 found.append(xs)
     if not found:
@@ -507,32 +507,28 @@ class TargetResult:
                 "message": self.message, "solver_status": self.solver_status}
 
 
+def _target_layout(model) -> ParameterLayout:
+    """Blocks of the target NLP's parameter vector (DVs, parameters, targets, weights, scales...)."""
+    nx, nu, ny = model.nx, model.nu, model.ny
+    return ParameterLayout([("d", model.nd), ("p", len(model.p)), ("t", ny), ("w", ny), ("sy", ny),
+                            ("uref", nu), ("su", nu), ("sx", nx), ("xref", nx)],
+                           owner=f"solve_targets(model '{model.name}') parameters")
+
+
 def _target_solver(model):
     """IPOPT NLP for the target problem, built once per model (cached on the model)."""
     sol = getattr(model, "target_solver_", None)
     if sol is not None:
         return sol
-    nx, nu, nd, ny, npar = model.nx, model.nu, model.nd, model.ny, len(model.p)
-    x = ca.MX.sym("x", nx)
-    u = ca.MX.sym("u", nu)
-    P = ca.MX.sym("P", nd + npar + 3 * ny + 2 * nu + 2 * nx)
-    o = 0
-    d = P[o:o + nd]; o += nd  # noqa: E702
-    p = P[o:o + npar]; o += npar  # noqa: E702
-    t = P[o:o + ny]; o += ny  # noqa: E702
-    w = P[o:o + ny]; o += ny  # noqa: E702
-    sy = P[o:o + ny]; o += ny  # noqa: E702
-    uref = P[o:o + nu]; o += nu  # noqa: E702
-    su = P[o:o + nu]; o += nu  # noqa: E702
-    sx = P[o:o + nx]; o += nx  # noqa: E702
-    xref = P[o:o + nx]; o += nx  # noqa: E702
-    zs = []
-    for dl in model.delays:
-        i = model.names(dl.source_role).index(dl.source)
-        zs.append(u[i] if dl.source_role == "mv" else d[i])
-    z = ca.vertcat(*zs) if zs else ca.MX(0, 1)
-    y = model.out_(x, u, d, z, p)
-    f = model.ode_(x, u, d, z, p)
+    x = ca.MX.sym("x", model.nx)
+    u = ca.MX.sym("u", model.nu)
+    P = ca.MX.sym("P", _target_layout(model).size)
+    blk = _target_layout(model).unpack(P)
+    d, p, t, w, sy, sx = blk["d"], blk["p"], blk["t"], blk["w"], blk["sy"], blk["sx"]
+    uref, su, xref = blk["uref"], blk["su"], blk["xref"]
+    z = model.z_of(u, d)
+    y = model.out_(x=x, u=u, d=d, z=z, p=p)["y"]
+    f = model.ode_(x=x, u=u, d=d, z=z, p=p)["xdot"]
     obj = (ca.sum1(w * ((y - t) / sy) ** 2)
            + REGULARIZATION * (ca.sumsqr((u - uref) / su) + ca.sumsqr((x - xref) / sx)))
     nlp = {"x": ca.vertcat(x, u), "p": P, "f": obj, "g": f / sx}
@@ -679,7 +675,8 @@ def solve_targets(model, targets: Mapping[str, float], *,
     # steady-state residual scale: a state changing by 1e-10 of its span per time unit counts as still
     sxdot = np.maximum(sx, 1e-12)
     solver = _target_solver(model)
-    P = np.concatenate([dd, model.p, tvec, wvec, sy, u0, su, sxdot, x0])
+    P = _target_layout(model).pack(d=dd, p=model.p, t=tvec, w=wvec, sy=sy, uref=u0, su=su, sx=sxdot,
+                                   xref=x0)
     # keep strictly off the state bounds (square roots of levels have no slope at 0)
     span = np.where(np.isfinite(xhi - xlo), xhi - xlo, 0.0)
     lbx = np.concatenate([xlo + 1e-9 * span, ulo])
