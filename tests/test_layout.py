@@ -81,6 +81,15 @@ def test_model_packs_its_integrator_inputs():
     np.testing.assert_array_equal(parts["p"], m.p)        # current parameters by default
 
 
+def test_steady_delayed_inputs_are_the_same_in_numbers_and_in_casadi():
+    """``z_of`` (each delayed copy equals its source at steady state) serves the numeric steady
+    states and the symbolic target problem and locus alike."""
+    m = lag_model()
+    u, d = ca.SX.sym("u", 1), ca.SX.sym("d", 1)
+    f = ca.Function("z", [u, d], [m.z_of(u, d)])
+    assert float(f(4.0, 9.0)) == m.z_of([4.0], [9.0])[0] == 4.0
+
+
 def test_sampled_integrator_reads_its_packed_inputs_by_name():
     """The integrator's packed inputs land where they belong: against the closed-form step of a
     first-order lag, x(T) = x_inf + (x0 - x_inf) exp(-T/tau), x_inf = K z + b d (closed form)."""
