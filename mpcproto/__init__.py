@@ -46,7 +46,8 @@ from .exceptions import (
     OperatingPointError, SimulationError,
 )
 from .model import Model, Variable, Delay
-from .operating import OperatingPoint, TargetResult, steady_states, steady_state, solve_targets
+from .operating import OperatingPoint, steady_states, steady_state
+from .target_problem import TargetResult, solve_targets
 from .linear import LinearModel, DiscreteLinearModel, linearize, rga
 from .control.base import Controller, Measurement, Targets, ControlOutput, accepts_readback
 from .responses import ResponseTest, open_loop_test, plot_response_test, linearity_sweep

@@ -124,8 +124,7 @@ def steady_state_locus(model, variable: str, low: float, high: float, *, op=None
     vals[role][j] = ls
     u, d, p = (ca.vertcat(*[ca.SX(v) if not isinstance(v, ca.SX) else v for v in vals[r]])
                if vals[r] else ca.SX(0, 1) for r in ("mv", "dv", "parameter"))
-    z = ca.vertcat(*[(u[i] if r == "mv" else d[i]) for r, i in model._z_src]) if model._z_src \
-        else ca.SX(0, 1)
+    z = model.z_of(u, d)
     f = model.ode_(x=xs, u=u, d=d, z=z, p=p)["xdot"]
     yexpr = model.out_(x=xs, u=u, d=d, z=z, p=p)["y"]
     F = ca.Function("locus_f", [xs, ls], [f, ca.jacobian(f, xs), ca.jacobian(f, ls), yexpr],
@@ -133,10 +132,10 @@ def steady_state_locus(model, variable: str, low: float, high: float, *, op=None
 
     def ev(v):
         x, lam = v[:nx] * sx, v[nx] * sl
-        r = F(x, lam)
-        fx = np.asarray(r[1], float) * sx[None, :]
-        fl = np.asarray(r[2], float).reshape(-1) * sl
-        return np.asarray(r[0], float).reshape(-1), np.hstack([fx, fl[:, None]]), np.asarray(r[3], float).reshape(-1)
+        r = F(x=x, lam=lam)
+        fx = np.asarray(r["fx"], float) * sx[None, :]
+        fl = np.asarray(r["fl"], float).reshape(-1) * sl
+        return np.asarray(r["f"], float).reshape(-1), np.hstack([fx, fl[:, None]]), np.asarray(r["y"], float).reshape(-1)
 
     def tangent(v, prev=None):
         _, J, _ = ev(v)

@@ -1,7 +1,8 @@
-"""Operating points: steady states of a model and the target problem.
+"""Operating points: the OperatingPoint data type and the steady states of a model.
 
-This module holds the :class:`OperatingPoint` data type used by every later layer and the three
-ways to find one:
+This module holds the :class:`OperatingPoint` data type used by every later layer and two ways to
+find one (the third, :func:`~mpcproto.solve_targets`, the MVs that put the CVs at given values, is
+in :mod:`mpcproto.target_problem`):
 
 :func:`steady_states`
     every steady state for given MVs and DVs.  A CasADi Newton rootfinder (compiled once per model)
@@ -16,22 +17,6 @@ ways to find one:
     the steady state nearest a guess (default: the nominal state; Euclidean distance in units of the
     states' ranges).  A state that is free at steady state (an integrating level) keeps its guessed
     value; Newton's method solves for the others.
-:func:`solve_targets`
-    the target problem: the MVs (within their bounds) and states that put the CVs at given targets at
-    steady state, as a least-squares problem solved by IPOPT (compiled once per model)::
-
-        minimize   sum_i ((y_i - t_i) / s_i)^2
-                   + 1e-10 * (sum_j ((u_j - u_ref_j) / r_j)^2 + sum_k ((x_k - x_ref_k) / q_k)^2)
-        subject to f(x, u, d) = 0,  x and u within their physical bounds,  fixed MVs held
-
-    with ``s_i``, ``r_j``, ``q_k`` the spans of the physical bounds (or the magnitudes) of CV i, MV j
-    and state k, and the references the guesses (default nominal).  The tiny second term picks one
-    answer when the targets leave MVs or states free (more MVs than targets, an integrating level).
-    IPOPT's answer is then finished by Newton's method (minimum-norm steps) on the balances and the
-    targets it reached, in the free MVs off their bounds, so a reached target is met to rounding; a
-    reached target left above ``EXACT`` (1e-10) of its value or scale is named in the message.  When
-    a target cannot be reached, the answer is the least-squares compromise and the message says which
-    target missed by how much and which MVs sit at a bound.
 """
 
 from __future__ import annotations
@@ -45,16 +30,9 @@ import casadi as ca
 import numpy as np
 
 from .exceptions import NotBuiltError, OperatingPointError
-from .model import suggest
 
-__all__ = ["OperatingPoint", "TargetResult", "steady_states", "steady_state", "solve_targets"]
+__all__ = ["OperatingPoint", "steady_states", "steady_state"]
 
-#: weight of the MV term of the target problem: small enough not to pull reachable targets off
-#: (the bias it causes is of this order relative to the CV scales), large enough to pick one answer
-REGULARIZATION = 1e-10
-#: a reached target whose residual is above this fraction of its value (or of its CV's scale) is
-#: reported as not reached to solver precision
-EXACT = 1e-10
 
 
 @dataclass(frozen=True)
@@ -115,7 +93,7 @@ class OperatingPoint:
         z = model.z_of(u, d)
         p = model.p
         xdot = model.rhs(x, u, d, z, p)
-        A = np.asarray(model.jac_(x, u, d, z, p)[0], float)
+        A = np.asarray(model.jac_(x=x, u=u, d=d, z=z, p=p)["A"], float)
         if not np.all(np.isfinite(A)):
             raise OperatingPointError(_non_finite_message(model, A, p))
         ev = np.linalg.eigvals(A) if A.size else np.zeros(0, complex)
@@ -181,12 +159,10 @@ def _rootfinder(model):
     rf = getattr(model, "steady_rootfinder_", None)
     if rf is not None:
         return rf
-    nx, nu, nd, nz, npar = model.nx, model.nu, model.nd, model.nz, len(model.p)
-    x = ca.MX.sym("x", nx)
-    par = ca.MX.sym("par", nu + nd + nz + npar)
-    u, d = par[:nu], par[nu:nu + nd]
-    z, p = par[nu + nd:nu + nd + nz], par[nu + nd + nz:]
-    g = ca.Function("steady_residual", [x, par], [model.ode_(x, u, d, z, p)])
+    x = ca.MX.sym("x", model.nx)
+    par = ca.MX.sym("par", model.p_layout_.size)
+    g = ca.Function("steady_residual", [x, par], [model.ode_(x=x, **model.unpack_inputs(par))["xdot"]],
+                    ["x", "p"], ["xdot"])
     try:
         rf = ca.rootfinder(f"{model.name}_steady", "newton", g, {
             "error_on_fail": False, "abstol": 1e-12, "abstolStep": 1e-14, "max_iter": 60,
@@ -235,7 +211,7 @@ def _least_squares_root(model, x0, u, d, z, p):
         return model.rhs(x, u, d, z, p)
 
     def jac(x):
-        return np.asarray(model.jac_(x, u, d, z, p)[0], float).reshape(model.nx, model.nx)
+        return np.asarray(model.jac_(x=x, u=u, d=d, z=z, p=p)["A"], float).reshape(model.nx, model.nx)
 
     try:
         sol = least_squares(f, x0, jac=jac, bounds=(lo, hi), xtol=1e-15, ftol=1e-15, gtol=1e-15,
@@ -249,15 +225,16 @@ def _steady_jacobians(model, x, u, d, p):
     """Jacobians of xdot and y with respect to x and u at steady state (delayed copies of an MV
     move with it: the chain rule through ``z = u``)."""
     z = model.z_of(u, d)
-    A, B, _Bd, Bz, C, D, _Dd, Dz = (np.asarray(M, float) for M in model.jac_(x, u, d, z, p))
+    J = model.jac_(x=x, u=u, d=d, z=z, p=p)
+    A, B, Bz, C, D, Dz = (np.asarray(J[k], float) for k in ("A", "B", "Bz", "C", "D", "Dz"))
     A, C = A.reshape(model.nx, model.nx), C.reshape(model.ny, model.nx)
     B, D = B.reshape(model.nx, model.nu), D.reshape(model.ny, model.nu)
     if model.nz:
         Bz, Dz = Bz.reshape(model.nx, model.nz), Dz.reshape(model.ny, model.nz)
+        # dz/du: column i is the delayed inputs when MV i is 1 and everything else 0
         S = np.zeros((model.nz, model.nu))
-        for r, (role, i) in enumerate(model._z_src):
-            if role == "mv":
-                S[r, i] = 1.0
+        for i, e in enumerate(np.eye(model.nu)):
+            S[:, i] = model.z_of(e, np.zeros(model.nd))
         B, D = B + Bz @ S, D + Dz @ S
     return A, B, C, D
 
@@ -389,11 +366,11 @@ def steady_states(model, u: Mapping[str, float] | Sequence[float] | np.ndarray |
     rf = _rootfinder(model)
     if n_starts and rf is not False:
         cand.extend(_sample_box(model, int(n_starts), gen))
-    par = np.concatenate([u, d, z, p])
+    par = model.pack_inputs(u, d, z, p)
     found: list[np.ndarray] = []
     if rf is not False:
         for x0 in cand:
-            xs = np.asarray(rf(x0, par), float).reshape(-1)
+            xs = np.asarray(rf(x0=x0, p=par)["x"], float).reshape(-1)
             if _converged(model, xs, u, d, z, p) and _in_box(model, xs):
                 found.append(xs)
     if not found:
@@ -452,305 +429,3 @@ def steady_state(model, u: Mapping[str, float] | Sequence[float] | np.ndarray | 
     # nearest in scaled units (Euclidean: no ties between candidates that differ in a state
     # other than the one farthest from the guess)
     return min(ops, key=lambda op: float(np.sqrt(np.sum(((op.x - xg) / sc) ** 2))))
-
-
-# ---------------------------------------------------------------------------------------------
-# the target problem
-
-
-@dataclass(frozen=True)
-class TargetResult:
-    """Answer of :func:`solve_targets`.
-
-    Attributes
-    ----------
-    op : OperatingPoint
-        The steady state found (MVs within bounds).
-    reachable : bool
-        True when every target is met within tolerance.
-    targets : dict
-        CV name -> requested value.
-    residuals : dict
-        CV name -> achieved minus requested, for every targeted CV.
-    unreachable : tuple of str
-        The targeted CVs that missed.
-    mvs_at_bounds : dict
-        MV name -> ``"low"`` or ``"high"`` for free MVs that ended on a bound.
-    states_at_bounds : dict
-        State name -> ``"low"`` or ``"high"`` for states that ended on a physical bound (an empty
-        tank, an overflowing level) -- these limit what is reachable as much as MV bounds do.
-    message : str
-        One paragraph for people: what was reached, what was not and why (MVs at bounds).
-    solver_status : str
-        IPOPT's return status.
-    """
-
-    op: OperatingPoint
-    reachable: bool
-    targets: dict[str, float]
-    residuals: dict[str, float]
-    unreachable: tuple[str, ...]
-    mvs_at_bounds: dict[str, str]
-    message: str
-    solver_status: str
-    states_at_bounds: dict[str, str] = field(default_factory=dict)
-
-    @property
-    def success(self) -> bool:
-        return self.reachable
-
-    def as_dict(self) -> dict[str, Any]:
-        return {"operating_point": self.op.as_dict(), "reachable": self.reachable,
-                "targets": dict(self.targets), "residuals": dict(self.residuals),
-                "unreachable": list(self.unreachable), "mvs_at_bounds": dict(self.mvs_at_bounds),
-                "states_at_bounds": dict(self.states_at_bounds),
-                "message": self.message, "solver_status": self.solver_status}
-
-
-def _target_solver(model):
-    """IPOPT NLP for the target problem, built once per model (cached on the model)."""
-    sol = getattr(model, "target_solver_", None)
-    if sol is not None:
-        return sol
-    nx, nu, nd, ny, npar = model.nx, model.nu, model.nd, model.ny, len(model.p)
-    x = ca.MX.sym("x", nx)
-    u = ca.MX.sym("u", nu)
-    P = ca.MX.sym("P", nd + npar + 3 * ny + 2 * nu + 2 * nx)
-    o = 0
-    d = P[o:o + nd]; o += nd  # noqa: E702
-    p = P[o:o + npar]; o += npar  # noqa: E702
-    t = P[o:o + ny]; o += ny  # noqa: E702
-    w = P[o:o + ny]; o += ny  # noqa: E702
-    sy = P[o:o + ny]; o += ny  # noqa: E702
-    uref = P[o:o + nu]; o += nu  # noqa: E702
-    su = P[o:o + nu]; o += nu  # noqa: E702
-    sx = P[o:o + nx]; o += nx  # noqa: E702
-    xref = P[o:o + nx]; o += nx  # noqa: E702
-    zs = []
-    for dl in model.delays:
-        i = model.names(dl.source_role).index(dl.source)
-        zs.append(u[i] if dl.source_role == "mv" else d[i])
-    z = ca.vertcat(*zs) if zs else ca.MX(0, 1)
-    y = model.out_(x, u, d, z, p)
-    f = model.ode_(x, u, d, z, p)
-    obj = (ca.sum1(w * ((y - t) / sy) ** 2)
-           + REGULARIZATION * (ca.sumsqr((u - uref) / su) + ca.sumsqr((x - xref) / sx)))
-    nlp = {"x": ca.vertcat(x, u), "p": P, "f": obj, "g": f / sx}
-    sol = ca.nlpsol(f"{model.name}_targets", "ipopt", nlp, {
-        "ipopt.print_level": 0, "print_time": False, "ipopt.sb": "yes", "ipopt.tol": 1e-12,
-        "ipopt.acceptable_tol": 1e-9, "ipopt.max_iter": 500, "error_on_fail": False,
-        "ipopt.mu_strategy": "adaptive", "ipopt.bound_relax_factor": 0.0,
-        "calc_lam_p": False, "show_eval_warnings": False})
-    model.target_solver_ = sol
-    return sol
-
-
-def _mvs_at_bounds(model, u, ulo, uhi, su, fixed) -> dict[str, str]:
-    """Free MVs within 1e-6 of their scale of a bound -> "low" / "high"."""
-    out: dict[str, str] = {}
-    for i, n in enumerate(model.mv_names):
-        if n in fixed:
-            continue
-        tol = 1e-6 * su[i]
-        if math.isfinite(ulo[i]) and u[i] <= ulo[i] + tol:
-            out[n] = "low"
-        elif math.isfinite(uhi[i]) and u[i] >= uhi[i] - tol:
-            out[n] = "high"
-    return out
-
-
-def _polish(model, x, u, d, hit, t, sx, su, sy, sxdot, free_u):
-    """Newton's method on ``f(x, u) = 0`` and ``y_i = t_i`` (i in *hit*), unknowns the states and
-    the MVs *free_u*, in scaled units.  Returns ``(x, u)`` or ``(None, None)``."""
-    if not hit and model.nx == 0:
-        return None, None
-    hit = np.asarray(hit, int)
-    fu = np.asarray(free_u, int)
-    nx = model.nx
-    p = model.p
-
-    def unpack(v):
-        xx = v[:nx] * sx
-        uu = u.copy()
-        uu[fu] = v[nx:] * su[fu]
-        return xx, uu
-
-    def res(v):
-        xx, uu = unpack(v)
-        r1 = model.rhs(xx, uu, d, model.z_of(uu, d), p) / sxdot
-        r2 = (model.output(xx, uu, d)[hit] - t[hit]) / sy[hit]
-        return np.concatenate([r1, r2])
-
-    def jac(v):
-        xx, uu = unpack(v)
-        A, B, C, D = _steady_jacobians(model, xx, uu, d, p)
-        top = np.hstack([A * sx[None, :], B[:, fu] * su[fu][None, :]]) / sxdot[:, None]
-        bot = np.hstack([C[hit] * sx[None, :], D[hit][:, fu] * su[fu][None, :]]) / sy[hit][:, None]
-        return np.vstack([top, bot])
-
-    v0 = np.concatenate([x / sx, u[fu] / su[fu]])
-    v, err = _newton(res, jac, v0, tol=1e-15)
-    if not err <= 1e-12:
-        return None, None
-    return unpack(v)
-
-
-def solve_targets(model, targets: Mapping[str, float], *,
-                  d: Mapping[str, float] | Sequence[float] | np.ndarray | None = None,
-                  fixed_mvs: Mapping[str, float] | None = None,
-                  x_guess: Mapping[str, float] | Sequence[float] | np.ndarray | None = None,
-                  u_guess: Mapping[str, float] | Sequence[float] | np.ndarray | None = None,
-                  tolerance: float = 1e-6) -> TargetResult:
-    """The steady state and MVs that bring the CVs to *targets* (least squares within MV bounds).
-
-    Parameters
-    ----------
-    model : Model
-        A built model.
-    targets : mapping CV name -> value
-        The CV targets; CVs not named are free.
-    d : mapping or sequence, optional
-        DV values (default nominal).
-    fixed_mvs : mapping MV name -> value, optional
-        MVs held at a value (not moved to meet the targets).
-    x_guess, u_guess : optional
-        Starting guesses (default nominal); ``u_guess`` is also the reference that picks one answer
-        among many when there are more free MVs than targets.
-    tolerance : float
-        A target counts as reached when ``|y - target| <= tolerance * s`` with ``s`` the CV's scale
-        (span of its physical bounds, else its magnitude).
-
-    Returns
-    -------
-    TargetResult
-
-    Raises
-    ------
-    OperatingPointError
-        If no steady state satisfying the balances within the bounds is found at all.
-    """
-    where = f"solve_targets(model '{getattr(model, 'name', model)}')"
-    _require(model, where)
-    if not isinstance(targets, Mapping) or not targets:
-        raise OperatingPointError(f"{where}: targets must be a non-empty mapping CV name -> value; "
-                                  f"got {targets!r}.")
-    cvs = model.cv_names
-    tvec = np.zeros(model.ny)
-    wvec = np.zeros(model.ny)
-    tdict: dict[str, float] = {}
-    for k, v in targets.items():
-        if k not in cvs:
-            raise OperatingPointError(f"{where}: target '{k}' is not a CV of the model{suggest(str(k), cvs)}; "
-                                      f"its CVs are: {', '.join(cvs)}.")
-        try:
-            fv = float(v)
-        except (TypeError, ValueError):
-            fv = math.nan
-        if not math.isfinite(fv):
-            raise OperatingPointError(f"{where}: the target for '{k}' must be a finite number; got {v!r}.")
-        i = cvs.index(k)
-        tvec[i], wvec[i] = fv, 1.0
-        tdict[k] = fv
-    dd = model.vector("dv", d, what=f"{where}: d")
-    ulo, uhi = model.bounds("mv")
-    ulo, uhi = ulo.copy(), uhi.copy()
-    u0 = model.vector("mv", u_guess, what=f"{where}: u_guess")
-    fixed = dict(fixed_mvs or {})
-    for k, v in fixed.items():
-        if k not in model.mv_names:
-            raise OperatingPointError(f"{where}: fixed_mvs names '{k}', which is not an MV"
-                                      f"{suggest(str(k), model.mv_names)}; MVs: {', '.join(model.mv_names)}.")
-        i = model.mv_names.index(k)
-        fv = float(v)
-        if not (ulo[i] <= fv <= uhi[i]):
-            raise OperatingPointError(f"{where}: fixed MV '{k}' = {fv:g} is outside its bounds "
-                                      f"[{ulo[i]:g}, {uhi[i]:g}].")
-        ulo[i] = uhi[i] = u0[i] = fv
-    u0 = np.clip(u0, ulo, uhi)
-    x0 = model.vector("state", x_guess, what=f"{where}: x_guess")
-    xlo, xhi = model.bounds("state")
-    xnom = model.nominal("state")
-    sx = _scale(xlo, xhi, xnom)
-    ylo, yhi = model.bounds("cv")
-    ynom = model.output(xnom, model.nominal("mv"), dd)
-    sy = _scale(ylo, yhi, np.where(wvec > 0, tvec, ynom))
-    su = _scale(ulo, uhi, u0)
-    su = np.where(su > 0, su, 1.0)
-    # steady-state residual scale: a state changing by 1e-10 of its span per time unit counts as still
-    sxdot = np.maximum(sx, 1e-12)
-    solver = _target_solver(model)
-    P = np.concatenate([dd, model.p, tvec, wvec, sy, u0, su, sxdot, x0])
-    # keep strictly off the state bounds (square roots of levels have no slope at 0)
-    span = np.where(np.isfinite(xhi - xlo), xhi - xlo, 0.0)
-    lbx = np.concatenate([xlo + 1e-9 * span, ulo])
-    ubx = np.concatenate([xhi - 1e-9 * span, uhi])
-    starts = [x0]
-    try:  # second start: the steady state at the guessed MVs, if there is one
-        starts.append(steady_state(model, u0, dd, x_guess=x0).x)
-    except OperatingPointError:
-        pass
-
-    def still(x, u):
-        xdot = model.rhs(x, u, dd, model.z_of(u, dd), model.p)
-        return bool(np.all(np.isfinite(x)) and np.all(np.abs(xdot) <= 1e-6 * np.maximum(sx, 1e-9)))
-
-    for xs0 in starts:
-        res = solver(x0=np.concatenate([np.clip(xs0, lbx[:model.nx], ubx[:model.nx]), u0]), p=P,
-                     lbx=lbx, ubx=ubx, lbg=0.0, ubg=0.0)
-        status = str(solver.stats().get("return_status", "unknown"))
-        wopt = np.asarray(res["x"], float).reshape(-1)
-        x, u = wopt[:model.nx], np.clip(wopt[model.nx:], ulo, uhi)
-        if still(x, u) and solver.stats().get("success", False):
-            break
-    if not still(x, u):
-        raise OperatingPointError(
-            f"{where}: no steady state within the bounds was found (IPOPT: {status}); the balances "
-            f"cannot close with the free MVs inside their bounds"
-            + (f" and the fixed MVs {fixed}" if fixed else "")
-            + ". Free more MVs, widen their bounds, or check the DVs.")
-    at_bounds = _mvs_at_bounds(model, u, ulo, uhi, su, fixed)
-    # IPOPT stops at its tolerance (CV residuals of 1e-5 on Wood & Berry): finish with Newton's
-    # method on the balances and the targets it reached, in the MVs that are free and off their
-    # bounds (minimum-norm steps keep the answer IPOPT chose where it is not unique)
-    yx = model.output(x, u, dd)
-    hit = [cvs.index(k) for k in tdict if abs(yx[cvs.index(k)] - tdict[k]) <= tolerance * sy[cvs.index(k)]]
-    xp, up = _polish(model, x, u, dd, hit, tvec, sx, su, sy, sxdot,
-                     [i for i, n in enumerate(model.mv_names) if n not in fixed and n not in at_bounds])
-    if xp is not None and still(xp, up) and _in_box(model, xp, tol=0.0) \
-            and np.all(up >= ulo) and np.all(up <= uhi):
-        x, u = xp, up
-    op = OperatingPoint.at(model, x, u, dd)
-    residuals = {k: float(op.y[cvs.index(k)] - v) for k, v in tdict.items()}
-    missed = tuple(k for k in tdict if abs(residuals[k]) > tolerance * sy[cvs.index(k)])
-    # reached, but not to the precision a steady-state solve can give: said in the message
-    loose = tuple(k for k in tdict if k not in missed
-                  and abs(residuals[k]) > EXACT * max(abs(tdict[k]), sy[cvs.index(k)]))
-    x_at: dict[str, str] = {}
-    for i, n in enumerate(model.state_names):
-        tol = 1e-6 * sx[i]
-        if math.isfinite(xlo[i]) and x[i] <= xlo[i] + tol:
-            x_at[n] = "low"
-        elif math.isfinite(xhi[i]) and x[i] >= xhi[i] - tol:
-            x_at[n] = "high"
-    units = {v.name: v.unit for v in model.variables()}
-    if not missed:
-        msg = "every target is reached: " + ", ".join(f"{k} = {tdict[k]:g} {units[k]}" for k in tdict)
-        if loose:
-            msg += (" -- but not to solver precision: residual " + ", ".join(
-                f"{k} {residuals[k]:.3g} {units[k]}" for k in loose)
-                + f" (more than {EXACT:g} of the target or scale; within the tolerance {tolerance:g})")
-    else:
-        parts = [f"{k}: target {tdict[k]:g} {units[k]}, closest steady value {tdict[k] + residuals[k]:.6g} "
-                 f"{units[k]}" for k in missed]
-        msg = ("target(s) cannot be reached at steady state within the MV bounds -- " + "; ".join(parts)
-               + ". The MVs give the least-squares compromise")
-        if at_bounds:
-            msg += "; limiting MVs: " + ", ".join(
-                f"{n} at its {side} bound {u[model.mv_names.index(n)]:g} {units[n]}" for n, side in at_bounds.items())
-        if x_at:
-            msg += "; states on a physical bound: " + ", ".join(
-                f"{n} at its {side} bound" for n, side in x_at.items())
-        msg += "."
-    return TargetResult(op=op, reachable=not missed, targets=tdict, residuals=residuals,
-                        unreachable=missed, mvs_at_bounds=at_bounds, message=msg, solver_status=status,
-                        states_at_bounds=x_at)

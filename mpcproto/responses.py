@@ -19,8 +19,8 @@ Inputs (held between samples of ``Ts``, zero-order hold):
     actually apply.  Keep ``Ts`` short against the unit's time constants.
 
 The nonlinear response comes from the closed loop's plant stepper (:class:`mpcproto.stepper.Plant`:
-the model's plugin, cvodes by default with tolerances abstol 1e-11, reltol 1e-10 here, or the exact
-discrete map of a linear model); dead times are exact, whole samples or not.  The linear response
+the model's plugin, cvodes by default with the stepper's ``OPEN_LOOP_TOLERANCES`` abstol 1e-11,
+reltol 1e-10, or the exact discrete map of a linear model); dead times are exact, whole samples or not.  The linear response
 is the exact ZOH discretization of the linearization (:meth:`~mpcproto.LinearModel.discretize`,
 fractional dead times exact too), so for a linear plant the two agree to integrator accuracy.
 
@@ -129,10 +129,6 @@ class ResponseTest:
         }
 
 
-# tolerances of the adaptive plugins for open-loop tests (tighter than the closed loop's)
-_TOLERANCES = {"abstol": 1e-11, "reltol": 1e-10}
-
-
 def _positive(v: Any, what: str) -> float:
     if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(v) or v <= 0:
         raise SettingsError(f"open_loop_test(): {what} must be a finite number > 0; got {v!r}.")
@@ -230,10 +226,9 @@ def open_loop_test(model, op: OperatingPoint, mv: str, *, kind: str = "step", si
                      f"(reaches {vals.min():g}..{vals.max():g}); the model is evaluated there anyway")
 
     # nonlinear: the plant stepper of the closed loop (exact dead times, split samples)
-    from .stepper import Plant
+    from .stepper import OPEN_LOOP_TOLERANCES, Plant
 
-    plugin = getattr(model, "integrator", "cvodes") or "cvodes"
-    plant = Plant(model, Ts, options=_TOLERANCES if plugin in ("cvodes", "idas") else None)
+    plant = Plant(model, Ts, tolerances=OPEN_LOOP_TOLERANCES)
     dlin = lin.discretize(Ts, dead_time="exact")
     U = np.tile(op.u, (N, 1))
     D = np.tile(op.d, (N, 1))

@@ -34,11 +34,16 @@ import casadi as ca
 import numpy as np
 
 from .exceptions import SettingsError, SimulationError
+from .layout import ParameterLayout, in_order
 from .linear import delay_split, split_sample_inputs, zoh
 
-__all__ = ["Plant", "DEFAULT_TOLERANCES"]
+__all__ = ["Plant", "DEFAULT_TOLERANCES", "OPEN_LOOP_TOLERANCES"]
 
+#: tolerances of the adaptive plugins (cvodes, idas) in the closed loop
 DEFAULT_TOLERANCES = {"abstol": 1e-9, "reltol": 1e-8}
+#: tighter tolerances for open-loop and PID step tests, whose records are fitted and compared with
+#: the linear model (``Plant(..., tolerances=OPEN_LOOP_TOLERANCES)``)
+OPEN_LOOP_TOLERANCES = {"abstol": 1e-11, "reltol": 1e-10}
 # compiled steps by (model name, Ts, plugin, options, switching fractions), valid while the model's
 # compiled Functions are the same objects (parameters are inputs, so a mismatched plant shares them)
 _CACHE: dict[tuple, tuple] = {}
@@ -59,7 +64,10 @@ class Plant:
     integrator : str, optional
         CasADi plugin, or ``"exact"`` for a linear model; default ``model.integrator``.
     options : dict, optional
-        Plugin options (for cvodes/idas the defaults are ``abstol=1e-9, reltol=1e-8``).
+        Plugin options (for cvodes/idas the defaults are *tolerances*).
+    tolerances : dict, optional
+        ``abstol``/``reltol`` of the adaptive plugins (cvodes, idas; ignored by the others);
+        default :data:`DEFAULT_TOLERANCES`, :data:`OPEN_LOOP_TOLERANCES` for step tests.
 
     Attributes
     ----------
@@ -78,7 +86,7 @@ class Plant:
     """
 
     def __init__(self, model: Any, Ts: float, *, integrator: str | None = None,
-                 options: dict[str, Any] | None = None):
+                 options: dict[str, Any] | None = None, tolerances: dict[str, float] | None = None):
         if not getattr(model, "is_built", False):
             from .exceptions import NotBuiltError
 
@@ -88,7 +96,7 @@ class Plant:
         self.model = model
         self.Ts = float(Ts)
         self.plugin = integrator or getattr(model, "integrator", "cvodes") or "cvodes"
-        opts = dict(DEFAULT_TOLERANCES) if self.plugin in _ADAPTIVE else {}
+        opts = dict(tolerances or DEFAULT_TOLERANCES) if self.plugin in _ADAPTIVE else {}
         opts.update(options or {})
         self.options = opts if self.plugin != "exact" else {}
         self.delay_split_ = [delay_split(dl.dead_time, self.Ts) for dl in model.delays]
@@ -110,6 +118,16 @@ class Plant:
                                ((rows - n) % L) * (nu + nd) + self._col])
         self._nz = len(self._col)
         self._p = model.p
+        npar = len(self._p)
+        #: ``b = [u; d; z_before; z_after; parameters]``, the input of :attr:`step_`
+        self.b_layout_ = ParameterLayout(
+            [("u", nu), ("d", nd), ("z_before", self._nz), ("z_after", self._nz), ("p", npar)],
+            owner=f"Plant '{model.name}' step input")
+        #: ``w = [x0; b; q]``, the input of :attr:`step_out_`: ``q`` (blocks ``next_u``...) are
+        #: the inputs ``[u; d; z; parameters]`` at the start of the next sample
+        self.w_layout_ = ParameterLayout([("x0", nx)], owner=f"Plant '{model.name}' step-and-output "
+                                         f"input") + self.b_layout_ + model.p_layout_.prefixed("next_")
+        self._out = in_order(model.out_, ("x", "u", "d", "z", "p"), ("y",))
         self.step_ = self.step_out_ = self.integrator_ = None
         if self.plugin == "exact":
             self._exact_maps(model)
@@ -132,39 +150,36 @@ class Plant:
         self._nx = nx
 
     def _build(self, model: Any, opts: dict[str, Any]) -> tuple[Any, Any, Any]:
-        nx, nu, nd, nz = model.nx, model.nu, model.nd, model.nz
-        npar = len(model.parameter_names)
+        nx, nz = model.nx, model.nz
         # a model of pure dead times has no state to integrate: only its outputs are evaluated
         F = model.sampled_integrator(self.Ts, plugin=self.plugin, options=opts, label="plant",
                                      scaled=True) if nx else None
-        nb = nu + nd + 2 * nz + npar
+        # the integrator's p = [h; u; d; z; parameters] (h: the piece's length)
+        hp = ParameterLayout([("h", 1)]) + model.p_layout_
         fr = [f for _, f in self.delay_split_]
         bounds = (0.0, *self.switches_, 1.0)
 
-        def sample(x0: Any, b: Any) -> Any:
+        def sample(x0: Any, bb: dict[str, Any]) -> Any:
             """Chain the pieces of one sample; in each, a delayed input is before or after its switch."""
-            ud = [b[i] for i in range(nu + nd)]
-            zb = [b[nu + nd + i] for i in range(nz)]
-            za = [b[nu + nd + nz + i] for i in range(nz)]
-            par = [b[i] for i in range(nu + nd + 2 * nz, nb)]
+            zb, za = bb["z_before"], bb["z_after"]
             x = x0
             for s0, s1 in zip(bounds[:-1], bounds[1:]) if nx else ():
-                z = [za[i] if fr[i] <= s0 else zb[i] for i in range(nz)]
-                x = F(x0=x, p=ca.vertcat((s1 - s0) * self.Ts, *ud, *z, *par))["xf"]
+                z = ca.vertcat(*[za[i] if fr[i] <= s0 else zb[i] for i in range(nz)])
+                x = F(x0=x, p=hp.pack(h=(s1 - s0) * self.Ts, u=bb["u"], d=bb["d"], z=z,
+                                      p=bb["p"]))["xf"]
             return x
 
         X0 = ca.MX.sym("x0", nx)
-        Bv = ca.MX.sym("b", nb)
-        step = ca.Function(f"{model.name}_plant_step", [X0, Bv], [sample(X0, Bv)], ["x0", "b"], ["xf"])
+        Bv = ca.MX.sym("b", self.b_layout_.size)
+        step = ca.Function(f"{model.name}_plant_step", [X0, Bv], [sample(X0, self.b_layout_.unpack(Bv))],
+                           ["x0", "b"], ["xf"])
         # one call per sample: integrate and evaluate the CVs at the end of the sample, with the
         # inputs q = [u; d; z; parameters] that will act at the start of the next one
         # one packed input and one packed output: each Python<->CasADi conversion costs time
-        W = ca.MX.sym("w", nx + nb + nu + nd + nz + npar)
-        X0w, Bw, Q = W[:nx], W[nx:nx + nb], W[nx + nb:]
-        xfw = sample(X0w, Bw)
-        cut = np.cumsum([0, nu, nd, nz, npar])
-        q = {k: ca.vertcat(*[Q[i] for i in range(cut[n], cut[n + 1])]) for n, k in enumerate("udzp")}
-        yf = model.out_(x=xfw, **q)["y"]
+        W = ca.MX.sym("w", self.w_layout_.size)
+        ww = self.w_layout_.unpack(W)
+        xfw = sample(ww["x0"], ww)
+        yf = model.out_(x=xfw, **{k: ww["next_" + k] for k in model.p_layout_.names})["y"]
         step_out = ca.Function(f"{model.name}_plant_step_out", [W], [ca.vertcat(xfw, yf)],
                                ["w"], ["xf_y"])
         return F, step, step_out
@@ -176,12 +191,13 @@ class Plant:
                 f"Plant: integrator 'exact' steps a model that is linear in its states and inputs by "
                 f"its exact discrete map; model '{model.name}' is not linear. Use 'cvodes'.")
         nx, nu, nd, nz, ny = model.nx, model.nu, model.nd, model.nz, model.ny
-        zero = [np.zeros(nx), np.zeros(nu), np.zeros(nd), np.zeros(nz), self._p]
-        shapes = [(nx, nx), (nx, nu), (nx, nd), (nx, nz), (ny, nx), (ny, nu), (ny, nd), (ny, nz)]
-        A, B, Bd, Bz, C, D, Dd, Dz = [np.asarray(M, float).reshape(s)
-                                      for M, s in zip(model.jac_(*zero), shapes)]
-        c = np.asarray(model.ode_(*zero), float).reshape(nx, 1)     # affine terms
-        y0 = np.asarray(model.out_(*zero), float).reshape(ny, 1)
+        zero = dict(x=np.zeros(nx), u=np.zeros(nu), d=np.zeros(nd), z=np.zeros(nz), p=self._p)
+        shapes = dict(A=(nx, nx), B=(nx, nu), Bd=(nx, nd), Bz=(nx, nz), C=(ny, nx), D=(ny, nu),
+                      Dd=(ny, nd), Dz=(ny, nz))
+        jac = model.jac_(**zero)
+        A, B, Bd, Bz, C, D, Dd, Dz = [np.asarray(jac[k], float).reshape(s) for k, s in shapes.items()]
+        c = np.asarray(model.ode_(**zero)["xdot"], float).reshape(nx, 1)     # affine terms
+        y0 = np.asarray(model.out_(**zero)["y"], float).reshape(ny, 1)
         Phi, G = zoh(A, np.hstack([B, Bd, c]), self.Ts)
         after, before = split_sample_inputs(A, Bz, self.Ts, [f for _, f in self.delay_split_])
         # x+ = M [x; u; d; z_before; z_after; 1];  y = C x + H [u; d; z; 1]
@@ -222,11 +238,12 @@ class Plant:
         u = np.asarray(u, float)
         d = np.asarray(d, float)
         self._put(self.k, u, d)
-        return np.concatenate([u, d, self._z_pair(), self._p])
+        zz = self._z_pair()
+        return self.b_layout_.pack(u=u, d=d, z_before=zz[:self._nz], z_after=zz[self._nz:], p=self._p)
 
     def output(self, u: np.ndarray, d: np.ndarray) -> np.ndarray:
         """True CVs at the current state with inputs *u*, *d*."""
-        return np.asarray(self.model.out_(self.x, u, d, self.z(u, d), self._p), float).reshape(-1)
+        return np.asarray(self._out(self.x, u, d, self.z(u, d), self._p), float).reshape(-1)
 
     def advance(self, u: np.ndarray, d: np.ndarray, d_next: np.ndarray | None = None) -> np.ndarray:
         """Integrate one sample with *u*, *d* held; returns the new state.
@@ -248,8 +265,14 @@ class Plant:
             y = self._C @ xf + self._H @ np.concatenate([u, dn, zq, (1.0,)])
         else:
             try:
-                out = np.array(self.step_out_(np.concatenate(
-                    [self.x, u, d, zz, self._p, u, dn, zq, self._p])).elements(), float)
+                # packed by name and called by name: ~6 us of packing against ~2 us for a bare
+                # concatenate, within the noise of a cvodes sample (CSTR: 400-470 us per advance()
+                # before and after, measured alternately on the shared machine); the one input of
+                # step_out_ makes the by-name call cost the same as the positional one
+                nz, p = self._nz, self._p
+                w = self.w_layout_.pack(x0=self.x, u=u, d=d, z_before=zz[:nz], z_after=zz[nz:], p=p,
+                                        next_u=u, next_d=dn, next_z=zq, next_p=p)
+                out = np.array(self.step_out_(w=w)["xf_y"].elements(), float)
                 xf, y = out[:self._nx], out[self._nx:]
             except RuntimeError as exc:
                 self.k -= 1

@@ -16,8 +16,9 @@ ROOT = Path(__file__).resolve().parents[1] / "mpcproto"
 LAYERS = {
     "mpcproto.exceptions": 0, "mpcproto._version": 0, "mpcproto._deps": 0,
     "mpcproto._specs": 1, "mpcproto.model": 1, "mpcproto.models": 1, "mpcproto.trajectory": 1,
+    "mpcproto.layout": 1,
     "mpcproto.operating": 2, "mpcproto.linear": 2, "mpcproto.stepper": 2, "mpcproto.responses": 2,
-    "mpcproto.step_fit": 2,
+    "mpcproto.target_problem": 2, "mpcproto.realization": 2, "mpcproto.step_fit": 2,
     "mpcproto.design": 2, "mpcproto.continuation": 2,
     "mpcproto.control": 3,
     "mpcproto.sim": 4,

@@ -201,7 +201,8 @@ def operating_point(scn: Scenario, model: Model | None = None):
     "stable" or "unstable" (the one nearest the guess among those, e.g. the open-loop-unstable middle
     state of an exothermic reactor).
     """
-    from ..operating import solve_targets, steady_state, steady_states
+    from ..operating import steady_state, steady_states
+    from ..target_problem import solve_targets
 
     model = plant_model(scn) if model is None else model
     op = scn.data["operating_point"]
