@@ -91,7 +91,7 @@ def _with_fields(cls):
 
 
 @_with_fields
-@dataclass(eq=False, repr=False)
+@dataclass(eq=False, repr=False, init=False)
 class StepDiagnostics(_FieldRecord):
     """Diagnostics of one controller step (fields in the order they are recorded).
 
@@ -108,6 +108,12 @@ class StepDiagnostics(_FieldRecord):
     """
 
     _AS_LISTS = frozenset({"target_u", "target_y"})
+
+    def __init__(self, **entries: Any):
+        # unfilled fields read their class default (ABSENT): a step creates one of these per
+        # sample, so nothing is assigned that the step does not fill
+        for k, v in entries.items():
+            self[k] = v
 
     mvs_not_following: Any = ABSENT
     rejected_measurements: Any = ABSENT
