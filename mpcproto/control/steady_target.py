@@ -269,9 +269,11 @@ class SteadyTarget:
         s1 = np.maximum(np.maximum(llo - ys1, ys1 - lhi), 0.0)
         lo = np.fmax(blo + np.minimum(e1, 0.0), llo - s1)
         hi = np.fmin(bhi + np.maximum(e1, 0.0), lhi + s1)
-        with np.errstate(over="ignore", invalid="ignore"):
-            lo = lo - _CV_TOL * (1 + np.abs(lo))
-            hi = hi + _CV_TOL * (1 + np.abs(hi))
+        # widened by the tolerance; an infinite end first becomes DAQP's infinity (no inf - inf,
+        # and no np.errstate, whose context costs more than the arithmetic)
+        lo, hi = _finite(lo), _finite(hi)
+        lo = lo - _CV_TOL * (1 + np.abs(lo))
+        hi = hi + _CV_TOL * (1 + np.abs(hi))
         return lo, hi
 
     def _values(self, v, dy_s):
