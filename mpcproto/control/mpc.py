@@ -43,6 +43,15 @@ Solve outcomes: a solve that is not optimal is retried once with ``backup_solver
 cvxpy), then the previous plan is applied shifted by one sample (``fallback="shift"``) or the MVs
 are held; the applied MVs are always projected exactly onto the hard limits and rate limits.
 
+Where the parts live: the settings' keys, defaults and checks in :mod:`~mpcproto.control.mpc_settings`
+(``resolve`` -> a frozen :class:`~mpcproto.control.mpc_settings.ResolvedSettings`); the build of the
+estimator, the steady target and the dynamic QP, the per-sample filling and solving of both QPs and
+:meth:`~PredictiveController.plan` in :mod:`~mpcproto.control.mpc_qp`; ``reset``, ``step``, the
+limits and the readback in :mod:`~mpcproto.control.mpc_runtime`; the step's
+:class:`~mpcproto.control.mpc_results.StepDiagnostics` and the plan's
+:class:`~mpcproto.control.mpc_results.PlanResult` (dataclasses read as mappings) in
+:mod:`~mpcproto.control.mpc_results`.
+
 Caution: this is a simulation prototype.  A controller on a real plant needs independent safety
 systems, management of change and the judgement of licensed engineers under local codes.
 """
