@@ -1,7 +1,8 @@
 """Predictive controller benchmark: the whole controller step against DAQP alone on the same QP.
 
-Run ``python benchmarks/bench_mpc.py`` (``--quick``: fewer samples); prints tables and writes
-``benchmarks/results/bench_mpc.json``.  BLAS is capped at one thread (as in the batch workers):
+Run ``python benchmarks/bench_mpc.py`` (``--quick``: 100 instead of 400 samples per horizon;
+``--only tank`` or ``--only unit8x12``: one unit); prints tables and writes
+``benchmarks/results/bench_mpc.json`` (``bench_mpc_<unit>.json`` with ``--only``).  BLAS is capped at one thread (as in the batch workers):
 on a shared 2-core machine a multithreaded BLAS spends more time spinning than computing.
 
 Two units, each in closed loop against its own linear model with 10-15 % larger MV gains:
@@ -36,8 +37,9 @@ Per horizon:
 * **build**: ``build()`` time (median of 3) and **memory**: peak Python heap (tracemalloc) during
   build + 50 steps (DAQP's C workspaces are outside tracemalloc: see the RSS growth);
 * **fit**: build time and build heap of the 8 x 12 unit over N = 30..240, exponent of a log-log fit;
-* **profile** (8 x 12, N = 120): the parts of a step -- estimator update, steady target, condensed
-  data (free response, gradient, bounds), DAQP update+solve, the rest (projection, diagnostics).
+* **profile** (8 x 12, N = 120; tank, N = 50): the parts of a step -- estimator update, steady
+  target, condensed data (free response, gradient, bounds), DAQP update+solve, the rest
+  (limits, projection, diagnostics).
 
 Targets (issue 19): 8 x 12, N = 120: step median <= 4x the floor, build <= 0.5 s, memory <= 100 MB;
 build and memory growing at most linearly in N; tank: step <= 10x the floor, build <= 0.2 s.
@@ -407,10 +409,17 @@ def profile_step(unit, N, steps):
 
 
 def main(argv=()):
+    argv = list(argv)
     quick = "--quick" in argv
+    only = None
+    if "--only" in argv:                  # --only tank | --only unit8x12
+        i = argv.index("--only")
+        only = argv[i + 1] if i + 1 < len(argv) else ""
+        if only not in ("tank", "unit8x12"):
+            sys.exit(f"bench_mpc.py: --only takes 'tank' or 'unit8x12'; got {only!r}")
     RESULTS.mkdir(parents=True, exist_ok=True)
     steps = 100 if quick else 400
-    units = (Tank(), Unit())
+    units = tuple(u for u in (Tank(), Unit()) if only in (None, u.name))
     for u in units:
         mp.PredictiveController.from_settings(u.dm, u.settings(10)).build()   # warm-up (imports)
     rows = []
@@ -426,41 +435,56 @@ def main(argv=()):
                   f"build {r['build_s']:.3f} s  heap {r['peak_heap_mb']:.1f} MB  iters "
                   f"{r['iterations_median']:.0f}/{r['floor_iterations_median']:.0f}  active "
                   f"{r['active_set_median']:.0f}  u0 diff {r['applied_move_diff_max']}  plan diff "
-                  f"{r['plan_diff_max']}  non-ok {r['non_ok_steps']}", flush=True)
-    # growth of build time and memory with N (8 x 12 unit)
-    unit = units[1]
-    fitN = (30, 60, 120, 240)
-    fit_t, fit_m = [], []
-    for N in fitN:
-        _c, bt = build_timed(unit, N)
-        bh, _p = heap_build(unit, N, 0)
-        fit_t.append(bt)
-        fit_m.append(bh)
-    ex_t = float(np.polyfit(np.log(fitN), np.log(fit_t), 1)[0])
-    ex_m = float(np.polyfit(np.log(fitN), np.log(fit_m), 1)[0])
-    print(f"8x12 build over N={fitN}: {['%.3f' % t for t in fit_t]} s, exponent {ex_t:.2f}; "
-          f"heap {['%.1f' % m for m in fit_m]} MB, exponent {ex_m:.2f}")
-    prof = profile_step(unit, 120, 100 if quick else 300)
-    print("8x12 N=120 step profile (ms per step):", {k: round(v, 4) for k, v in prof.items()})
+                  f"{r['plan_diff_max']}  non-ok {r['non_ok_steps']}  load "
+                  f"{r['load_average_1min']:.1f}", flush=True)
     by = {(r["unit"], r["horizon"]): r for r in rows}
-    u120 = by[("unit8x12", 120)]
-    verdict = {
-        "unit_N120_step_le_4x_floor": u120["ratio_median"] <= 4.0,
-        "unit_N120_build_le_0.5s": u120["build_s"] <= 0.5,
-        "unit_N120_memory_le_100MB": u120["peak_heap_mb"] <= 100.0,
-        "unit_build_growth_at_most_linear": ex_t <= 1.1,
-        "unit_memory_growth_at_most_linear": ex_m <= 1.1,
-        "tank_step_le_10x_floor": all(by[("tank", N)]["ratio_median"] <= 10.0 for N in (50, 100)),
-        "tank_build_le_0.2s": all(by[("tank", N)]["build_s"] <= 0.2 for N in (20, 50, 100)),
-        "applied_move_within_1e-8": all((r["applied_move_diff_max"] or 0.0) <= 1e-8 for r in rows),
-    }
-    print("targets met:", verdict)
     out = {"benchmark": "bench_mpc", "python": sys.version.split()[0],
-           "machine": platform.platform(), "rows": rows,
-           "fit": {"N": fitN, "build_s": fit_t, "build_heap_mb": fit_m, "exponent_build": ex_t,
-                   "exponent_heap": ex_m},
-           "profile_unit_N120_ms": prof, "targets_met": verdict}
-    path = RESULTS / "bench_mpc.json"
+           "machine": platform.platform(), "only": only, "quick": quick, "rows": rows}
+    verdict = {}
+    if only in (None, "tank"):
+        tank = units[0]
+        prof = profile_step(tank, 50, 100 if quick else 300)
+        print("tank N=50 step profile (ms per step):", {k: round(v, 4) for k, v in prof.items()})
+        out["profile_tank_N50_ms"] = prof
+        verdict.update({
+            "tank_step_le_10x_floor": all(by[("tank", N)]["ratio_median"] <= 10.0
+                                          for N in (50, 100)),
+            "tank_build_le_0.2s": all(by[("tank", N)]["build_s"] <= 0.2 for N in (20, 50, 100)),
+        })
+    if only in (None, "unit8x12"):
+        # growth of build time and memory with N (8 x 12 unit)
+        unit = units[-1]
+        fitN = (30, 60, 120, 240)
+        fit_t, fit_m = [], []
+        for N in fitN:
+            _c, bt = build_timed(unit, N)
+            bh, _p = heap_build(unit, N, 0)
+            fit_t.append(bt)
+            fit_m.append(bh)
+        ex_t = float(np.polyfit(np.log(fitN), np.log(fit_t), 1)[0])
+        ex_m = float(np.polyfit(np.log(fitN), np.log(fit_m), 1)[0])
+        print(f"8x12 build over N={fitN}: {['%.3f' % t for t in fit_t]} s, exponent {ex_t:.2f}; "
+              f"heap {['%.1f' % m for m in fit_m]} MB, exponent {ex_m:.2f}")
+        prof = profile_step(unit, 120, 100 if quick else 300)
+        print("8x12 N=120 step profile (ms per step):", {k: round(v, 4) for k, v in prof.items()})
+        u120 = by[("unit8x12", 120)]
+        out["fit"] = {"N": fitN, "build_s": fit_t, "build_heap_mb": fit_m, "exponent_build": ex_t,
+                      "exponent_heap": ex_m}
+        out["profile_unit_N120_ms"] = prof
+        verdict.update({
+            "unit_N120_step_le_4x_floor": u120["ratio_median"] <= 4.0,
+            "unit_N120_p95_le_3ms": u120["step_p95_ms"] <= 3.0,
+            "unit_N120_build_le_0.5s": u120["build_s"] <= 0.5,
+            "unit_N120_memory_le_100MB": u120["peak_heap_mb"] <= 100.0,
+            "unit_build_growth_at_most_linear": ex_t <= 1.1,
+            "unit_memory_growth_at_most_linear": ex_m <= 1.1,
+        })
+    verdict["applied_move_within_1e-8"] = all((r["applied_move_diff_max"] or 0.0) <= 1e-8
+                                              for r in rows)
+    print("targets met:", verdict)
+    out["targets_met"] = verdict
+    name = "bench_mpc.json" if only is None else f"bench_mpc_{only}.json"
+    path = RESULTS / name
     path.write_text(json.dumps(out, indent=2))
     print(f"wrote {path}")
 

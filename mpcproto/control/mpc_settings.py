@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
+from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
@@ -18,9 +19,10 @@ from ..exceptions import SettingsError
 from ..model import suggest
 from .condensed import DAQP_OPTIONS
 from .estimator import DISTURBANCE_MODELS
+from .mpc_results import FieldView
 
 __all__ = ["SETTINGS_KEYS", "CV_KEYS", "MV_KEYS", "DV_KEYS", "SOLVERS", "BACKUP_SOLVERS",
-           "FALLBACKS", "CONDENSED_MAX_VARIABLES", "CONDENSED_MAX_ENTRIES", "resolve",
+           "FALLBACKS", "CONDENSED_MAX_VARIABLES", "CONDENSED_MAX_ENTRIES", "resolve", "ResolvedSettings",
            "per_var", "check_model", "SCALE_FRACTION", "nice_number", "range_span", "default_scale",
            "MOVE_WEIGHT", "REFERENCE_SAMPLES", "default_move_weight"]
 
@@ -167,7 +169,51 @@ def _bool(key, v) -> bool:
     return bool(v)
 
 
-def resolve(ctrl) -> dict[str, Any]:
+@dataclass(frozen=True, eq=False, repr=False)
+class ResolvedSettings(FieldView):
+    """The controller's settings checked and resolved (:func:`resolve`); read-only, also read as a
+    mapping (``r["cv_weight"]``).
+
+    ``N``, ``M`` horizons; ``solver`` the chosen solver; per CV (model order): ``cv_weight``,
+    ``lim_lin``, ``lim_quad`` (per engineering unit, squared where quadratic, priority factors
+    applied), ``cv_scale``, ``cv_low``, ``cv_high``; per CV name: ``disturbance``, ``meas_noise``,
+    ``dist_noise``; per MV: ``move_weight``, ``preferred_weight`` (per squared engineering unit),
+    ``move_weight_per_scale`` (as given or by default, per squared MV scale), ``move_weight_default``
+    (the default rule's figures and the MVs that used it),
+    ``mv_scale``, ``preferred_value``, ``mv_low``, ``mv_high``, ``max_move``; per DV:
+    ``feedforward``; ``solver_options``.
+    """
+
+    N: int
+    M: int
+    solver: str
+    cv_weight: np.ndarray
+    cv_scale: np.ndarray
+    cv_low: np.ndarray
+    cv_high: np.ndarray
+    lim_lin: np.ndarray
+    lim_quad: np.ndarray
+    disturbance: dict
+    meas_noise: dict
+    dist_noise: dict
+    move_weight: np.ndarray
+    move_weight_per_scale: np.ndarray
+    move_weight_default: dict
+    preferred_weight: np.ndarray
+    mv_scale: np.ndarray
+    preferred_value: np.ndarray
+    mv_low: np.ndarray
+    mv_high: np.ndarray
+    max_move: np.ndarray
+    feedforward: np.ndarray
+    solver_options: dict
+
+
+ResolvedSettings._FIELDS = tuple(f.name for f in fields(ResolvedSettings))
+ResolvedSettings._KEYS = frozenset(ResolvedSettings._FIELDS)
+
+
+def resolve(ctrl) -> ResolvedSettings:
     """Check every setting of *ctrl* against its model; return the resolved per-variable arrays.
 
     Raises
@@ -284,8 +330,8 @@ def resolve(ctrl) -> dict[str, Any]:
         feedforward=np.array([bool(row["feedforward"]) for row in dvs], bool),
         solver_options=dict(opts),
     )
-    ctrl._resolved = r
-    return r
+    ctrl._resolved = ResolvedSettings(**r)
+    return ctrl._resolved
 
 def _scale_of(p: str, row: Mapping[str, Any], bounds: Mapping[str, Any], role: str, i: int,
               nominal: float) -> float:

@@ -62,11 +62,6 @@ def _finite(v):
     return np.minimum(np.maximum(v, -_INF), _INF)
 
 
-def _fill_nan(v, value):
-    """*v* with NaN (an absent bound) replaced by *value*."""
-    return np.where(v != v, value, v)
-
-
 class SteadyTarget:
     """The lexicographic steady-state target (CVs first, then MV preferences), solved each sample.
 
@@ -207,6 +202,30 @@ class SteadyTarget:
             off[key] = slice(o, o + size)
             o += size
         self._zsl, self._nz = off, o
+        # -- per-sample data in a few array operations: [v0; y0; resid; dx] = Kin @ [d; w]
+        nin = nd + nw
+        Dx = np.hstack([self._dxd, self._dxw])
+        Dy = np.hstack([self._dyd, self._dyw])
+        Kv = self._Epinv @ Dx
+        self._Kin = np.vstack([Kv, Cy @ Kv + Dy, Dx - self._Erange @ (self._Erange.T @ Dx), Dx])
+        self._nin = nin
+        nb = 4 * ny + 2 * nu                          # band_lo, band_hi, lim_lo, lim_hi, mv_lo, mv_hi
+        self._bscale = np.concatenate([np.tile(sy, 4), su, su])
+        self._bfill = np.concatenate([np.full(ny, -np.inf), np.full(ny, np.inf),
+                                      np.full(ny, -np.inf), np.full(ny, np.inf),
+                                      np.full(nu, -np.inf), np.full(nu, np.inf)])
+        # the bounds' offsets y0/u0: index into [y0; u0]
+        self._boff = np.concatenate([np.tile(np.arange(ny), 4), ny + np.arange(nu),
+                                     ny + np.arange(nu)])
+        # stage 1's bounds from [bounds - offsets; 0; -inf; inf] (indices of the constants last)
+        c0, cm, cp_ = nb, nb + 1, nb + 2
+        a = np.arange
+        self._g1lo = np.concatenate([np.full(ny, c0), np.full(ny, cm), a(ny), 2 * ny + a(ny),
+                                     np.full(ny, cm), 4 * ny + a(nu)])
+        self._g1hi = np.concatenate([np.full(2 * ny, cp_), ny + a(ny), np.full(ny, cp_),
+                                     3 * ny + a(ny), 4 * ny + nu + a(nu)])
+        self._bconst = np.array([0.0, -np.inf, np.inf])
+        self._daqp1 = self._daqp2 = None              # DAQP workspaces, made on first use
         self._ref = None                              # cvxpy reference problems, made on first use
         self.stage2_failures = 0
         self.is_built = True
@@ -218,6 +237,7 @@ class SteadyTarget:
             raise NotBuiltError("SteadyTarget is not built; call .build() first.")
         self.stage2_failures = 0
         self._x1_last = self._x1_start
+        self._daqp1 = self._daqp2 = None
 
     # ------------------------------------------------------------------ the data of one sample
     def _unpack(self, z):
@@ -225,33 +245,35 @@ class SteadyTarget:
         if z.shape != (self._nz,):
             raise SettingsError(f"SteadyTarget.solve: the input vector must have {self._nz} "
                                 f"values (layout {self.layout_}); got shape {z.shape}.")
-        g = {key: z[sl] for key, sl in self._zsl.items()}
-        sy, su = self._sy, self._su
-        dx = self._dxd @ g["d"] + self._dxw @ g["w"]
-        dy = self._dyd @ g["d"] + self._dyw @ g["w"]
-        v0 = self._Epinv @ dx
-        resid = dx - self._Erange @ (self._Erange.T @ dx)
-        ok = float(np.max(np.abs(resid), initial=0.0)) <= 1e-9 * (1 + float(
-            np.max(np.abs(dx), initial=0.0)))
-        y0 = self._Cy @ v0 + dy
-        u0 = v0[self.nx:]
-        lo, hi = -np.inf, np.inf
-        data = {"band_lo": _fill_nan(g["band_lo"] / sy, lo), "band_hi": _fill_nan(g["band_hi"] / sy, hi),
-                "lim_lo": _fill_nan(g["lim_lo"] / sy, lo), "lim_hi": _fill_nan(g["lim_hi"] / sy, hi),
-                "mv_lo": _fill_nan(g["mv_lo"] / su, lo), "mv_hi": _fill_nan(g["mv_hi"] / su, hi),
-                "pref": g["pref"] / su}
+        nx, nu, ny, nin = self.nx, self.nu, self.ny, self._nin
+        nv = nx + nu
+        out = self._Kin @ z[:nin]
+        v0, y0 = out[:nv], out[nv:nv + ny]
+        resid, dx = out[nv + ny:nv + ny + nx], out[nv + ny + nx:]
+        amax = np.maximum.reduce          # (np.max's dispatch costs more than the reduction here)
+        ok = float(amax(np.abs(resid), initial=0.0)) <= 1e-9 * (1 + float(
+            amax(np.abs(dx), initial=0.0)))
+        u0 = v0[nx:]
+        nb = 4 * ny + 2 * nu
+        b = z[nin:nin + nb] / self._bscale
+        b = np.where(b != b, self._bfill, b)         # NaN (an absent bound) -> +-inf
+        data = {"band_lo": b[:ny], "band_hi": b[ny:2 * ny], "lim_lo": b[2 * ny:3 * ny],
+                "lim_hi": b[3 * ny:4 * ny], "mv_lo": b[4 * ny:4 * ny + nu],
+                "mv_hi": b[4 * ny + nu:], "pref": z[nin + nb:] / self._su, "all": b}
         return data, v0, y0, u0, ok
 
     def _stage2_bounds(self, data, ys1):
         """Stage 2's CV bounds: each CV at least as close to its band/limits as stage 1 left it."""
         blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
-        e1 = ys1 - np.clip(ys1, blo, np.maximum(blo, bhi))
+        e1 = ys1 - np.minimum(np.maximum(ys1, blo), np.maximum(blo, bhi))     # (np.clip)
         s1 = np.maximum(np.maximum(llo - ys1, ys1 - lhi), 0.0)
         lo = np.fmax(blo + np.minimum(e1, 0.0), llo - s1)
         hi = np.fmin(bhi + np.maximum(e1, 0.0), lhi + s1)
-        with np.errstate(over="ignore", invalid="ignore"):
-            lo = lo - _CV_TOL * (1 + np.abs(lo))
-            hi = hi + _CV_TOL * (1 + np.abs(hi))
+        # widened by the tolerance; an infinite end first becomes DAQP's infinity (no inf - inf,
+        # and no np.errstate, whose context costs more than the arithmetic)
+        lo, hi = _finite(lo), _finite(hi)
+        lo = lo - _CV_TOL * (1 + np.abs(lo))
+        hi = hi + _CV_TOL * (1 + np.abs(hi))
         return lo, hi
 
     def _values(self, v, dy_s):
@@ -284,7 +306,7 @@ class SteadyTarget:
         if res.accepted:
             ys_s = res.values["ys"] / self._sy
             blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
-            res.values["e"] = ys_s - np.clip(ys_s, blo, np.maximum(blo, bhi))
+            res.values["e"] = ys_s - np.minimum(np.maximum(ys_s, blo), np.maximum(blo, bhi))
             res.values["s"] = np.maximum(np.maximum(llo - ys_s, ys_s - lhi), 0.0) * self._sy
         return res
 
@@ -292,35 +314,49 @@ class SteadyTarget:
         import daqp
 
         ny, nu, k = self.ny, self.nu, self._k
-        b1lo = np.concatenate([
-            np.zeros(ny), np.full(ny, -_INF),                                  # s >= 0, e free
-            _finite(data["band_lo"] - y0),
-            _finite(data["lim_lo"] - y0), np.full(ny, -_INF), _finite(data["mv_lo"] - u0)])
-        b1hi = np.concatenate([
-            np.full(2 * ny, _INF),
-            _finite(data["band_hi"] - y0), np.full(ny, _INF),
-            _finite(data["lim_hi"] - y0), _finite(data["mv_hi"] - u0)])
+        # bounds minus their offsets (y0 for CVs, u0 for MVs), then stage 1's rows by one gather
+        r = np.concatenate([data["all"] - np.concatenate([y0, u0])[self._boff], self._bconst])
+        b1lo = _finite(r[self._g1lo])
+        b1hi = _finite(r[self._g1hi])
         x1, flag1, iters = self._stage1_prox(daqp, b1lo, b1hi)
         if flag1 != 1:
             return QPResult(status=_daqp_status(flag1), accepted=False)
-        phi1 = np.array(x1[2 * ny:])     # copy: DAQP's result may point into its workspace
+        phi1 = x1[2 * ny:]
         ys1 = y0 + self._Yphi @ phi1
         lo, hi = self._stage2_bounds(data, ys1)
-        b2lo = np.concatenate([_finite(lo - y0), _finite(data["mv_lo"] - u0)])
-        b2hi = np.concatenate([_finite(hi - y0), _finite(data["mv_hi"] - u0)])
+        b2lo = _finite(np.concatenate([lo - y0, r[4 * ny:4 * ny + nu]]))
+        b2hi = _finite(np.concatenate([hi - y0, r[4 * ny + nu:4 * ny + 2 * nu]]))
         f2 = -2 * self._Uphi.T @ (self._wrel * (data["pref"] - u0)) if k else np.zeros(0)
         phi = phi1
         if k:
-            x2, _f2, flag2, info2 = daqp.solve(self._H2, f2, self._A2, b2hi, b2lo,
-                                               self._sense2.copy(), **_DAQP_SETTINGS)
-            iters += int(info2["iterations"])
+            x2, flag2, it2 = self._solve_stage2(daqp, f2, b2hi, b2lo)
+            iters += it2
             if flag2 == 1:
-                phi = np.array(x2)
+                phi = x2
             else:                 # rounding made stage 2 infeasible: stage 1's answer stands
                 self.stage2_failures += 1
         v = v0 + self._Vphi @ phi
         vals = self._values(v, y0 - self._Cy @ v0)
         return QPResult(status="optimal", accepted=True, values=vals, iterations=iters)
+
+    def _solve_stage2(self, daqp, f2, b2hi, b2lo):
+        """Stage 2 in its own DAQP workspace, warm-started from the last active set; a workspace
+        that does not end optimal is not trusted: the same QP solved afresh decides."""
+        mdl = self._daqp2
+        if mdl is None:
+            mdl = self._daqp2 = _workspace(daqp, self._H2, f2, self._A2, b2hi, b2lo, self._sense2)
+        else:
+            mdl.update(f=f2, bupper=b2hi, blower=b2lo)
+        flag2, iters = 0, 0
+        if mdl is not None:
+            x2, _f2, flag2, info2 = mdl.solve()
+            iters = int(info2["iterations"])
+        if flag2 != 1:
+            self._daqp2 = None
+            x2, _f2, flag2, info2 = daqp.solve(self._H2, f2, self._A2, b2hi, b2lo,
+                                               self._sense2.copy(), **_DAQP_SETTINGS)
+            iters += int(info2["iterations"])
+        return np.array(x2), flag2, iters    # copy: DAQP's result may point into its workspace
 
     def _stage1_prox(self, daqp, b1lo, b1hi):
         """Stage 1 by proximal iterations: each a strictly convex QP (the objective plus
@@ -331,21 +367,35 @@ class SteadyTarget:
         ``rho / (rho + curvature)`` per iteration (Rockafellar 1976, proximal point algorithm;
         from memory).  Done here rather than with DAQP's ``eps_prox`` option so that the stopping
         rule is ours (a step below 1e-10 relative: with rho = 1e-6 the error left is about 1e-6 of
-        that last step).
+        that last step).  Every iteration has the same matrices, so one DAQP workspace serves
+        them all and the next sample's (warm-started from the last active set; a workspace solve
+        that does not end optimal is repeated afresh before it counts as a failure).
         """
         x = self._x1_last.copy()
         H = self._H1p
         iters = 0
+        mdl = self._daqp1
         for _ in range(_PROX_MAX):
-            xp, _f, flag, info = daqp.solve(H, self._f1 - _PROX_RHO * x, self._A1, b1hi, b1lo,
-                                            self._sense1.copy(), **_DAQP_SETTINGS)
-            iters += int(info["iterations"])
+            f = self._f1 - _PROX_RHO * x
+            if mdl is None:
+                mdl = self._daqp1 = _workspace(daqp, H, f, self._A1, b1hi, b1lo, self._sense1)
+            else:
+                mdl.update(f=f, bupper=b1hi, blower=b1lo)
+            flag = 0
+            if mdl is not None:
+                xp, _f, flag, info = mdl.solve()
+                iters += int(info["iterations"])
             if flag != 1:
-                return x, flag, iters
+                mdl = self._daqp1 = None
+                xp, _f, flag, info = daqp.solve(H, f, self._A1, b1hi, b1lo,
+                                                self._sense1.copy(), **_DAQP_SETTINGS)
+                iters += int(info["iterations"])
+                if flag != 1:
+                    return x, flag, iters
             xp = np.array(xp)       # copy: DAQP's result may point into its workspace
-            step = np.abs(xp - x).max()
+            step = np.maximum.reduce(np.abs(xp - x))
             x = xp
-            if step <= 1e-10 * (1.0 + np.abs(x).max()):
+            if step <= 1e-10 * (1.0 + np.maximum.reduce(np.abs(x))):
                 break
         self._x1_last = x
         return x, 1, iters
@@ -413,6 +463,16 @@ class SteadyTarget:
         v = np.concatenate([np.asarray(xs.value, float), np.asarray(us.value, float)])
         vals = self._values(v, y0 - self._Cy @ v0)
         return QPResult(status="optimal", accepted=True, values=vals, iterations=iters)
+
+
+def _workspace(daqp, H, f, A, bu, bl, sense):
+    """A DAQP workspace set up with the target's settings (its arrays are kept by the caller)."""
+    mdl = daqp.Model()
+    ef = mdl.setup(H, f, A, bu, bl, sense.copy())
+    if int(ef[0] if isinstance(ef, tuple) else ef) < 0:
+        return None               # (e.g. a Hessian it cannot factorize) the caller solves afresh
+    mdl.settings = dict(_DAQP_SETTINGS)
+    return mdl
 
 
 def _daqp_status(flag: int) -> str:

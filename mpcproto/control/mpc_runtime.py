@@ -1,0 +1,366 @@
+"""The predictive controller's run time: reset, one sample's step, limits and readback.
+
+:class:`ControllerRuntime` holds the part of :class:`~mpcproto.control.mpc.PredictiveController`
+that runs a closed loop: :meth:`reset`, :meth:`step` (estimator, then the QPs of
+:class:`~mpcproto.control.mpc_qp.ControllerQP`, the fallback rules, the one projection onto the
+MV limits) and the step's :class:`~mpcproto.control.mpc_results.StepDiagnostics`.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from ..exceptions import NotBuiltError, SettingsError
+from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_MEASUREMENT_REJECTED,
+                   STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutput, Measurement, Targets)
+from .limits import limit_activity, project_command
+from .mpc_results import StepDiagnostics
+from .preview import rows_by_sample, stage_references
+
+__all__ = ["ControllerRuntime"]
+
+#: samples an MV that did not follow its command stays limited at its position (readback)
+_NOT_FOLLOWING_HOLD = 5
+
+
+class ControllerRuntime:
+    """Reset and step of the predictive controller (a part of ``PredictiveController``)."""
+
+    def reset(self, op=None, t0: float = 0.0) -> None:
+        """Start bumplessly at *op* (default: the model's operating point) at time *t0*.
+
+        The estimator starts at the deviation state of *op* when it has the model's state layout
+        (plant states; delay states at the operating MVs/DVs), else at zero; the previous MVs are
+        the operating point's.
+        """
+        self._check_built("reset")
+        m = self.dmodel
+        op = m.op if op is None else op
+        x0 = np.zeros(m.nx)
+        npl = getattr(m, "n_plant_states", m.nx)
+        if np.shape(op.x) == np.shape(m.op.x) and len(m.op.x) == npl:
+            x0[:npl] = np.asarray(op.x, float) - np.asarray(m.op.x, float)
+            # delay states of MVs/DVs at the new point: the delayed input, a shift register
+            for i, nm in enumerate(m.state_names[npl:], start=npl):
+                src = nm.split("[")[0]
+                if src in m.mv_names:
+                    x0[i] = op.u[m.mv_names.index(src)] - m.op.u[m.mv_names.index(src)]
+                elif src in m.dv_names:
+                    x0[i] = op.d[m.dv_names.index(src)] - m.op.d[m.dv_names.index(src)]
+        self.estimator_.reset(x0, t0)
+        # solver state of a previous run (warm start, adaptive step size, learned active sets)
+        # must not leak into this one: a rerun from the same point repeats the run exactly
+        if self._qp is not None:
+            self._qp.restart()
+        if self.condensed_ is not None:
+            self.condensed_.restart()
+        if self.target_ is not None:
+            self.target_.restart()
+        self._last_inputs = None
+        self._op = op
+        self._op_u = np.asarray(m.op.u, float)
+        self._op_d = np.asarray(m.op.d, float)
+        self._op_y = np.asarray(m.op.y, float)
+        r = self._resolved
+        self._pref_dev = r["preferred_value"] - self._op_u
+        self._slack_tol = 1e-4 * r["cv_scale"]
+        self._slack_tol_list = self._slack_tol.tolist()
+        self._mv_names = list(m.mv_names)
+        self._fast = self.fast_path and self.solver_ in ("osqp", "daqp")
+        self._z[:] = 0.0
+        self._forecast_in_z = False
+        self._u_prev = np.asarray(op.u, float).copy()
+        self._plan = None
+        self._plan_scaled = None
+        self._plan_age = 0
+        self._target = None
+        nu = m.nu
+        self._ua_prev = self._u_prev.copy()
+        self._clamp_hi = np.full(nu, np.inf)
+        self._clamp_lo = np.full(nu, -np.inf)
+        self._clamp_left = np.zeros(nu, int)
+        self.counts = {"steps": 0, "fallbacks": 0, "holds": 0, "inaccurate": 0, "failed_solves": 0,
+                       "target_fallbacks": 0, "rejected_measurements": 0, "late_measurements": 0,
+                       "backup_solves": 0, "readback_differs": 0, "mv_not_following": 0}
+
+    def _vec(self, v, n: int, what: str, fill: float) -> np.ndarray:
+        if v is None:
+            return np.full(n, fill)
+        a = np.asarray(v, float)
+        if a.shape != (n,):
+            a = a.reshape(-1)
+            if a.shape != (n,):
+                raise SettingsError(f"PredictiveController.step(): {what} must have {n} entries "
+                                    f"(model order); got shape {np.shape(v)}.")
+        return a
+
+    def _forecast(self, dv_forecast):
+        """The DV forecast as an (n, nd) array, or None; checked before anything changes."""
+        if dv_forecast is None:
+            return None
+        return rows_by_sample(dv_forecast, self.dmodel.nd, "dv_forecast", "DVs")
+
+    def _preview(self, program, sp_):
+        """``(sp_end, departures)`` of the setpoint program (checked), or None (no preview)."""
+        if program is None or not self.setpoint_preview:
+            return None
+        return stage_references(program, sp_, self._N)
+
+    def _limits(self, targets: Targets):
+        """Hard MV limits and rates (absolute), CV soft limits and setpoints for this sample."""
+        r = self._resolved
+        m = self.dmodel
+        nu, ny = m.nu, m.ny
+        if targets is None:
+            raise SettingsError("PredictiveController.step(): targets must be a Targets object; got None.")
+        mv_lo = np.maximum(self._vec(targets.mv_low, nu, "targets.mv_low", -np.inf), r["mv_low"])
+        mv_hi = np.minimum(self._vec(targets.mv_high, nu, "targets.mv_high", np.inf), r["mv_high"])
+        if np.any(mv_lo > mv_hi):
+            j = int(np.flatnonzero(mv_lo > mv_hi)[0])
+            raise SettingsError(f"PredictiveController.step(): MV '{m.mv_names[j]}' has its low "
+                                f"limit {mv_lo[j]:g} above its high limit {mv_hi[j]:g} (targets "
+                                f"intersected with the settings).")
+        rate = r["max_move"]
+        if targets.mv_rate is not None:
+            tr = self._vec(targets.mv_rate, nu, "targets.mv_rate", np.inf)
+            if np.any(tr <= 0):
+                j = int(np.flatnonzero(tr <= 0)[0])
+                raise SettingsError(f"PredictiveController.step(): targets.mv_rate for MV "
+                                    f"'{m.mv_names[j]}' must be > 0; got {tr[j]!r}.")
+            rate = np.fmin(tr, rate)
+        cv_lo = np.fmax(self._vec(targets.cv_low, ny, "targets.cv_low", -np.inf), r["cv_low"])
+        cv_hi = np.fmin(self._vec(targets.cv_high, ny, "targets.cv_high", np.inf), r["cv_high"])
+        sp_ = self._vec(targets.setpoint, ny, "targets.setpoint", np.nan)
+        return mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_
+
+    def step(self, t: float, meas: Measurement, dv: np.ndarray, targets: Targets,
+             dv_forecast: np.ndarray | None = None, *,
+             u_applied: np.ndarray | None = None,
+             setpoint_program: np.ndarray | None = None) -> ControlOutput:
+        """One sample: estimate, target, solve, return the MVs (absolute) and diagnostics.
+
+        Parameters
+        ----------
+        t : float
+            Time now (model time unit).
+        meas : Measurement
+            CV values with the times they were taken and freshness flags (model order).
+        dv : ndarray (nd,)
+            DV values now (absolute); NaN for unmeasured DVs.
+        targets : Targets
+            Setpoints (NaN: none, zone control between the CV limits), CV soft limits, MV limits
+            and rates (NaN rate: none).
+        dv_forecast : ndarray (n, nd) or None
+            Expected DV values at t, t+Ts, ... (absolute); rows past its end repeat the last one,
+            NaN entries take the current value.  None: DVs held at their current values.
+        u_applied : ndarray (nu,) or None
+            MV readback: the MVs actually applied over the previous sample (absolute; NaN where
+            unknown).  They replace the commanded ones as the previous MVs of the move
+            penalties and rate limits and as the input of the estimator's last prediction, so a
+            stuck, saturated or rate-limited valve neither biases the disturbance estimates nor
+            makes the plan start from a position the valve never reached.
+        setpoint_program : ndarray (n, ny) or None
+            With ``setpoint_preview`` on: the setpoints expected at t, t+Ts, ... (absolute, CV
+            order; rows past its end repeat the last one; NaN: the setpoint now); see
+            :mod:`mpcproto.control.preview`.  Ignored when ``setpoint_preview`` is off.
+
+        Returns
+        -------
+        ControlOutput
+            ``u`` (absolute MVs, always inside the hard MV limits: see
+            :mod:`mpcproto.control.limits`), ``status`` (``STATUS_OK``,
+            ``STATUS_MEASUREMENT_REJECTED`` or ``STATUS_MV_NOT_FOLLOWING`` for an accepted step
+            that saw a fault, ``STATUS_FALLBACK``, ``STATUS_HOLD`` or ``STATUS_FAILED``) and
+            ``diagnostics`` with ``solve_ms``, ``step_ms``,
+            ``target_ms``, ``solver_status``, ``iterations``, ``fallback``, ``slack_max``,
+            ``cv_limits_relaxed``, ``relaxed_cvs``, ``active_mv_limits``,
+            ``active_mv_limit_names``, ``active_rate_limits``, ``limits_over_rate`` (MVs moved
+            more than their rate limit because a hard limit won), ``rejected_measurements``,
+            ``n_rejected_measurements``, ``mvs_not_following``, ``n_mvs_not_following``,
+            ``late_measurements``, ``dropped_measurements`` / ``n_dropped_measurements``
+            (readings older than the estimator's history: dropped, and the step's status says
+            ``measurement_rejected``), ``backup_solves`` (0-2: solves of this step the backup
+            solver rescued), ``target_status``, ``target_u``, ``target_y``, ``clipped`` and
+            ``counts``.
+        """
+        if not self.is_built:
+            self._check_built("step")
+        if self._op is None:
+            raise NotBuiltError("PredictiveController.step(): call .reset(op, t0) before the first step.")
+        t_start = time.perf_counter()
+        m, r = self.dmodel, self._resolved
+        N = self._N
+        op_u, op_d, op_y = self._op_u, self._op_d, self._op_y
+        nu, ny, nd = m.nu, m.ny, m.nd
+        names = m.cv_names
+        diag = StepDiagnostics()
+        # ---- inputs checked before anything changes state
+        mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_ = self._limits(targets)
+        dv_forecast = self._forecast(dv_forecast)
+        preview = self._preview(setpoint_program, sp_)
+        if u_applied is not None:
+            ua = self._vec(u_applied, nu, "u_applied", np.nan)
+            known = np.isfinite(ua)
+            if known.any():
+                ua = np.where(known, ua, self._u_prev)
+                if not np.array_equal(ua, self._u_prev):
+                    if self.counts["steps"] > 0:      # the estimator has predicted with u_prev
+                        self.estimator_.revise_input(ua - op_u)
+                        self._note_not_following(self._u_prev, ua)
+                    self._u_prev = ua
+                    self.counts["readback_differs"] += 1
+                self._ua_prev = ua.copy()
+        if self._clamp_left.any():
+            mv_lo, mv_hi = self._clamped(mv_lo, mv_hi)
+            diag.mvs_not_following = [self._mv_names[j] for j in np.flatnonzero(self._clamp_left)]
+        # ---- measured DVs (deviation); unknown / not fed forward -> 0
+        dv = np.full(nd, np.nan) if dv is None else self._vec(dv, nd, "dv", np.nan)
+        use = r["feedforward"] & np.isfinite(dv)
+        d_now = np.where(use, dv - op_d, 0.0)
+        # ---- estimator
+        y = self._vec(meas.y, ny, "meas.y", np.nan)
+        taken = self._vec(meas.taken_at, ny, "meas.taken_at", np.nan)
+        fresh = np.asarray(meas.fresh, bool)
+        if fresh.shape != (ny,):
+            raise SettingsError(f"PredictiveController.step(): meas.fresh must have {ny} entries "
+                                f"(model order); got shape {fresh.shape}.")
+        info = self.estimator_.update(t, y - op_y, taken, fresh, d_now)
+        if info["rejected"]:
+            self.counts["rejected_measurements"] += len(info["rejected"])
+        if info["late"]:
+            self.counts["late_measurements"] += len(info["late"])
+        diag.rejected_measurements = [names[i] for i in info["rejected"]]
+        diag.late_measurements = [names[i] for i in info["late"]]
+        # readings older than the estimator's history (one taken before the run started, the
+        # steady state an analyzer reports first, is no loss)
+        diag.dropped_measurements = [names[i] for i in info["too_old"]
+                                        if self.estimator_.sample_index(taken[i]) >= 0]
+        diag.backup_solves = 0
+        x = self.estimator_.state
+        w = self.estimator_.disturbance_estimate
+        self.counts["steps"] += 1
+        if not (np.isfinite(x).all() and np.isfinite(w).all()):
+            u = self._hold(mv_lo, mv_hi, rate)
+            self.counts["failed_solves"] += 1
+            diag.update(solver_status="estimate_not_finite", fallback=True, solve_ms=0.0,
+                        target_ms=0.0, slack_max=float("nan"), active_mv_limits=0, iterations=None)
+            self.estimator_.reset(None, t)
+            return self._finish(u, STATUS_FAILED, diag, t_start)
+        res = self._optimize(x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
+                             self._u_prev, diag, preview=preview)
+        diag.solve_ms = res.solve_ms
+        diag.solver_status = res.status
+        diag.iterations = res.iterations
+        if res.accepted:
+            Us = res.values["u"]
+            u = Us[:, 0] * self._su + op_u
+            self._plan_scaled = Us                  # (nu, M) scaled; unscaled on demand
+            self._plan = None
+            self._plan_age = 0
+            smax_cv = (res.values["slack"].max(axis=1) * self._sy).tolist()
+            tol = self._slack_tol_list
+            relaxed = [names[i] for i in range(ny) if smax_cv[i] > tol[i]]
+            diag.fallback = False
+            diag.slack_max = max(max(smax_cv), 0.0) if ny else 0.0
+            diag.cv_limits_relaxed = bool(relaxed)
+            diag.relaxed_cvs = relaxed
+            status = STATUS_OK
+        else:
+            if res.status == "optimal_inaccurate":
+                self.counts["inaccurate"] += 1
+            else:
+                self.counts["failed_solves"] += 1
+            self.counts["fallbacks"] += 1
+            diag.fallback = True
+            diag.slack_max = float("nan")
+            diag.cv_limits_relaxed = None
+            diag.relaxed_cvs = []
+            if self._plan is None and self._plan_scaled is not None:
+                self._plan = self._plan_scaled * self._su_col + op_u[:, None]
+            if self.fallback == "shift" and self._plan is not None and self._plan_age + 1 < N:
+                self._plan_age += 1
+                u = self._plan[:, min(self._plan_age, self._M - 1)].copy()
+                status = STATUS_FALLBACK
+            else:
+                u = self._u_prev.copy()
+                status = STATUS_HOLD
+                self.counts["holds"] += 1
+        # ---- exact limits on what is applied (solver tolerance, a stale plan, a hold or a limit
+        # that stepped past the MV must not break them): the one projection, hard limits win
+        asked = u
+        u = self._apply_limits(asked, mv_lo, mv_hi, rate)
+        at_limit, at_rate, over_rate = limit_activity(u, self._u_prev, mv_lo, mv_hi, rate)
+        diag.clipped = float(np.max(np.abs(u - asked), initial=0.0))
+        diag.active_mv_limits = int(at_limit.sum())
+        diag.active_mv_limit_names = [self._mv_names[j] for j in np.flatnonzero(at_limit)]
+        diag.active_rate_limits = int(at_rate.sum())
+        diag.limits_over_rate = int(over_rate.sum())
+        return self._finish(u, status, diag, t_start)
+
+    def last_plan(self) -> np.ndarray | None:
+        """MV plan (nu, M), absolute, of the last accepted solve (None before the first one).
+
+        Column j is the MV value planned for sample j from that solve; the last column is held
+        to the end of the prediction horizon.
+        """
+        if self._plan_scaled is None:
+            return None
+        if self._plan is None:
+            self._plan = self._plan_scaled * self._su_col + self._op_u[:, None]
+        return self._plan.copy()
+
+    def _note_not_following(self, cmd, ua):
+        """Readback: an MV that did not move at all although a move was asked for (a stuck or
+        saturated valve) is limited at its position, in the direction it failed to go, for the
+        next ``_NOT_FOLLOWING_HOLD`` samples; then the plan may try it again (common practice of
+        MV readback, no source).  An actuator that moves but slowly is left alone."""
+        tol = 1e-6 * np.maximum(1.0, np.abs(ua))
+        still = np.abs(ua - self._ua_prev) <= tol
+        up = still & (cmd - ua > tol)
+        down = still & (ua - cmd > tol)
+        if up.any() or down.any():
+            self._clamp_hi = np.where(up, ua, self._clamp_hi)
+            self._clamp_lo = np.where(down, ua, self._clamp_lo)
+            self._clamp_left = np.where(up | down, _NOT_FOLLOWING_HOLD + 1, self._clamp_left)
+            self.counts["mv_not_following"] += int(up.sum() + down.sum())
+
+    def _clamped(self, lo, hi):
+        """MV limits with the not-following clamps applied (and counted down).
+
+        A clamp only narrows the hard limits, never widens them: a valve read back beyond a hard
+        limit clamps the MV at that limit, not at the valve's position."""
+        on = self._clamp_left > 0
+        hi2 = np.clip(np.where(on, np.fmin(hi, self._clamp_hi), hi), lo, hi)
+        lo2 = np.clip(np.where(on, np.fmax(lo, self._clamp_lo), lo), lo, hi)
+        lo2 = np.minimum(lo2, hi2)            # a clamp never makes the limits cross
+        self._clamp_left = np.maximum(self._clamp_left - 1, 0)
+        self._clamp_hi = np.where(self._clamp_left > 0, self._clamp_hi, np.inf)
+        self._clamp_lo = np.where(self._clamp_left > 0, self._clamp_lo, -np.inf)
+        return lo2, hi2
+
+    def _apply_limits(self, u, lo, hi, rate):
+        """The command sent: :func:`~mpcproto.control.limits.project_command` from the previous
+        MV (hard limits win over the rate limit)."""
+        return project_command(u, self._u_prev, lo, hi, rate, what="PredictiveController")
+
+    def _hold(self, lo, hi, rate):
+        self.counts["holds"] += 1
+        return self._apply_limits(self._u_prev.copy(), lo, hi, rate)
+
+    def _finish(self, u, status, diag, t_start) -> ControlOutput:
+        # faults the controller saw show in the status of an otherwise accepted step
+        diag.n_rejected_measurements = len(diag.get("rejected_measurements", ()))
+        diag.n_mvs_not_following = len(diag.get("mvs_not_following", ()))
+        diag.n_dropped_measurements = len(diag.get("dropped_measurements", ()))
+        if status == STATUS_OK and (diag.n_rejected_measurements
+                                    or diag.n_dropped_measurements):
+            status = STATUS_MEASUREMENT_REJECTED
+        elif status == STATUS_OK and diag.n_mvs_not_following:
+            status = STATUS_MV_NOT_FOLLOWING
+        self.estimator_.predict(u - self._op_u)
+        self._u_prev = np.asarray(u, float).copy()
+        diag.step_ms = (time.perf_counter() - t_start) * 1e3
+        diag.counts = dict(self.counts)
+        return ControlOutput(u=np.asarray(u, float).copy(), status=status, diagnostics=diag)
