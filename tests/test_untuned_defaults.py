@@ -176,7 +176,7 @@ def _blending_setpoint_step(Ts: float, move_weight: float | None) -> Trajectory:
     from mpcproto import models
     from mpcproto.control.mpc import PredictiveController
     from mpcproto.linear import linearize
-    from mpcproto.operating import solve_targets
+    from mpcproto.target_problem import solve_targets
     from mpcproto.sim import simulate
 
     m = models.make("blending_tank")
