@@ -85,7 +85,7 @@ class PIDLoop:
 
         def chk(name: str, v: Any, cond, expect: str) -> None:
             if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v) or not cond(v):
-                raise SettingsError(f"{w}: '{name}' must be {expect}; found {v!r}.")
+                raise SettingsError(f"'{name}' must be {expect}; found {v!r}.", owner=w)
 
         chk("gain", self.gain, lambda v: math.isfinite(v) and v != 0, "a finite non-zero number")
         chk("integral_time", self.integral_time, lambda v: v > 0, "> 0 (inf = no integral action)")
@@ -124,18 +124,18 @@ def pid_loop_from_spec(spec: Mapping[str, Any] | PIDLoop, *, what: str) -> PIDLo
     if isinstance(spec, PIDLoop):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"{what}: a PID loop must be a table/dict; found {spec!r}.")
+        raise SettingsError(f"a PID loop must be a table/dict; found {spec!r}.", owner=what)
     for k in spec:
         if k not in _LOOP_KEYS:
-            raise SettingsError(f"{what}: unknown key '{k}'{suggest(str(k), _LOOP_KEYS)}; allowed "
-                                f"keys: {', '.join(_LOOP_KEYS)}.")
+            raise SettingsError(f"unknown key '{k}'{suggest(str(k), _LOOP_KEYS)}; allowed "
+                                f"keys: {', '.join(_LOOP_KEYS)}.", owner=what)
     for k in ("cv", "mv", "gain"):
         if k not in spec:
-            raise SettingsError(f"{what}: a PID loop needs '{k}'; found keys: {', '.join(spec)}.")
+            raise SettingsError(f"a PID loop needs '{k}'; found keys: {', '.join(spec)}.", owner=what)
     for k in ("cv", "mv"):
         if not isinstance(spec[k], str) or not spec[k]:
-            raise SettingsError(f"{what}: '{k}' must be a variable name (a string); found "
-                                f"{spec[k]!r:.60}.")
+            raise SettingsError(f"'{k}' must be a variable name (a string); found "
+                                f"{spec[k]!r:.60}.", owner=what)
     kw = dict(spec)
     if kw.get("integral_time") is None:
         kw.pop("integral_time", None)
@@ -147,13 +147,13 @@ def pid_loop_from_spec(spec: Mapping[str, Any] | PIDLoop, *, what: str) -> PIDLo
                     raise TypeError
                 kw[k] = float(kw[k])
             except (TypeError, ValueError, OverflowError):
-                raise SettingsError(f"{what}: '{k}' must be a number; found {spec[k]!r:.60}.") from None
+                raise SettingsError(f"'{k}' must be a number; found {spec[k]!r:.60}.", owner=what) from None
     if "on_fresh" in kw and not isinstance(kw["on_fresh"], bool):
-        raise SettingsError(f"{what}: 'on_fresh' must be true or false; found {kw['on_fresh']!r}.")
+        raise SettingsError(f"'on_fresh' must be true or false; found {kw['on_fresh']!r}.", owner=what)
     try:
         return PIDLoop(**kw)
     except SettingsError as exc:
-        raise SettingsError(f"{what}: {exc}") from None
+        raise SettingsError(f"{exc}", owner=what) from None
 
 
 @dataclass

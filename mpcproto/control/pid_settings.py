@@ -45,7 +45,7 @@ def _check_number(v: Any, where: str, *, low: float, strict: bool, high: float =
     if not ok:
         rel = ">" if strict else ">="
         rng = f"{rel} {low:g}" + (f" and <= {high:g}" if math.isfinite(high) else "")
-        raise SettingsError(f"{where}: must be a finite number {rng}; found {shown(v)}.")
+        raise SettingsError(f"must be a finite number {rng}; found {shown(v)}.", owner=where)
     return float(f)
 
 
@@ -109,8 +109,8 @@ def _check_settings(model: Any, settings: Mapping[str, Any], what: str) -> None:
 def _name(v: Any, where: str, role: str, names: Sequence[str]) -> str:
 
     if not isinstance(v, str):
-        raise SettingsError(f"{where}: must be the name of a{'n' if role == 'MV' else ''} {role} "
-                            f"(a string: {', '.join(names) or '...'}); found {shown(v)}.")
+        raise SettingsError(f"must be the name of a{'n' if role == 'MV' else ''} {role} "
+                            f"(a string: {', '.join(names) or '...'}); found {shown(v)}.", owner=where)
     return v
 
 
@@ -147,7 +147,7 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     from .pid import PIDController, pid_loop_from_spec, suggest_pairing
 
     if not isinstance(settings, Mapping):
-        raise SettingsError(f"{what}: PID settings must be a table; found {shown(settings)}.")
+        raise SettingsError(f"PID settings must be a table; found {shown(settings)}.", owner=what)
     refuse_unknown_keys(settings, _SETTINGS_KEYS, what=what)
     cv_names = list(getattr(model, "cv_names", ()))
     mv_names = list(getattr(model, "mv_names", ()))
@@ -164,20 +164,20 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
                 given[(spec.cv, spec.mv)] = spec
                 continue
             if not isinstance(spec, Mapping):
-                raise SettingsError(f"{w}: expected a loop table (cv, mv and gain or none to tune "
-                                    f"it); found {shown(spec)}.")
+                raise SettingsError(f"expected a loop table (cv, mv and gain or none to tune "
+                                    f"it); found {shown(spec)}.", owner=w)
             for k, names, role in (("cv", cv_names, "CV"), ("mv", mv_names, "MV")):
                 if k not in spec:
-                    raise SettingsError(f"{w}: needs '{k}'; found keys: "
-                                        f"{', '.join(map(str, spec)) or '(none)'}.")
+                    raise SettingsError(f"needs '{k}'; found keys: "
+                                        f"{', '.join(map(str, spec)) or '(none)'}.", owner=w)
                 _name(spec[k], f"{w}.{k}", role, names)
             if "gain" not in spec:
                 for k in spec:
                     if k not in ("cv", "mv"):
                         raise SettingsError(
-                            f"{w}: a loop without 'gain' is tuned by the rule and takes only cv "
+                            f"a loop without 'gain' is tuned by the rule and takes only cv "
                             f"and mv; found {shown(k)}. Give 'gain' (and the other settings) or "
-                            f"set them at the top of the PID settings.")
+                            f"set them at the top of the PID settings.", owner=w)
                 to_tune.append((spec["cv"], spec["mv"]))
             else:
                 lp = pid_loop_from_spec(spec, what=w)
@@ -193,8 +193,8 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
             pairs = [(_name(c, f"{w}[{i}][0]", "CV", cv_names), _name(m, f"{w}[{i}][1]", "MV", mv_names))
                      for i, (c, m) in enumerate(pairs_spec)]
         else:
-            raise SettingsError(f"{w}: expected a non-empty list of [cv, mv] pairs or a table "
-                                f"{{cv = mv}}; found {shown(pairs_spec)}.")
+            raise SettingsError(f"expected a non-empty list of [cv, mv] pairs or a table "
+                                f"{{cv = mv}}; found {shown(pairs_spec)}.", owner=w)
         to_tune += [p for p in pairs if p not in given and p not in to_tune]
     _check_settings(model, settings, what)
     if any(k in settings for k in _STRUCTURE_KEYS):
@@ -205,8 +205,8 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     for i, (c, m) in enumerate(to_tune):
         for v, names, role in ((c, cv_names, "CV"), (m, mv_names, "MV")):
             if v not in names:
-                raise SettingsError(f"{what}: pair {i} ({c}, {m}): '{v}' is not a {role} of model "
-                                    f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.")
+                raise SettingsError(f"pair {i} ({c}, {m}): '{v}' is not a {role} of model "
+                                    f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.", owner=what)
     structures = {k: settings[k] for k in _STRUCTURE_KEYS if k in settings}
     if pairs_spec is None and loop_specs is None and not structures:
         from ..linear import linearize
@@ -258,4 +258,4 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     except SettingsError as exc:
         if str(exc).startswith(what):
             raise
-        raise SettingsError(f"{what}: {exc}") from None
+        raise SettingsError(f"{exc}", owner=what) from None

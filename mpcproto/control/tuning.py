@@ -226,24 +226,24 @@ def _prep(t, y, at, size, y0, what):
     t, y = paired_series(t, y, what=what, finite_y=False)
     fs = as_float(size)
     if fs is None or not math.isfinite(fs) or fs == 0:
-        raise SettingsError(f"{what}: the step size must be finite and non-zero; found {shown(size)}.")
+        raise SettingsError(f"the step size must be finite and non-zero; found {shown(size)}.", owner=what)
     fa = as_float(at)
     if fa is None or not math.isfinite(fa):
-        raise SettingsError(f"{what}: 'at' (the time of the step) must be a finite number; found "
-                            f"{shown(at)}.")
+        raise SettingsError(f"'at' (the time of the step) must be a finite number; found "
+                            f"{shown(at)}.", owner=what)
     if y0 is not None and (as_float(y0) is None or not math.isfinite(as_float(y0))):
-        raise SettingsError(f"{what}: 'y0' must be a finite number or None; found {shown(y0)}.")
+        raise SettingsError(f"'y0' must be a finite number or None; found {shown(y0)}.", owner=what)
     size, at = fs, fa
     ok = np.isfinite(y)
     if ok.sum() < 5:
-        raise SettingsError(f"{what}: fewer than 5 finite samples of the response.")
+        raise SettingsError(f"fewer than 5 finite samples of the response.", owner=what)
     t, y = t[ok], y[ok]
     if y0 is None:
         before = y[t < at]
         y0 = float(before.mean()) if before.size else float(y[0])
     after = t >= at
     if after.sum() < 5:
-        raise SettingsError(f"{what}: fewer than 5 samples after the step at t={at:g}.")
+        raise SettingsError(f"fewer than 5 samples after the step at t={at:g}.", owner=what)
     return t[after] - at, (y[after] - y0) / size, y0
 
 
@@ -260,8 +260,8 @@ def _shape_checks(s, r, what, allow_integrating=False):
     noise = _noise_level(r)
     span = float(np.max(np.abs(r))) if r.size else 0.0
     if span <= 3 * noise or span == 0:
-        raise SettingsError(f"{what}: the response does not rise above the noise (peak "
-                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.")
+        raise SettingsError(f"the response does not rise above the noise (peak "
+                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.", owner=what)
     # integrating: still moving at the end at a rate comparable to the mean rate
     ts = s[int(0.8 * n):]
     slope = np.polyfit(ts, tail, 1)[0] if ts.size > 2 else 0.0
@@ -272,9 +272,9 @@ def _shape_checks(s, r, what, allow_integrating=False):
     inverse = bool(np.min(sign * r) < -max(5 * noise, 0.02 * abs(final)))
     if integrating and not allow_integrating:
         raise SettingsError(
-            f"{what}: the response is still ramping at the end (slope {slope:.3g} per unit step "
+            f"the response is still ramping at the end (slope {slope:.3g} per unit step "
             f"per time unit): an integrating process (a level?) or a test too short to settle. "
-            f"Use fit_integrating(), or run the test longer.")
+            f"Use fit_integrating(), or run the test longer.", owner=what)
     return final, noise, inverse
 
 
@@ -287,7 +287,7 @@ def _fit(kind: str, t: Sequence[float], y: Sequence[float], at: float, size: flo
     s, r, _ = _prep(t, y, at, size, y0, what)
     _, _, inverse = _shape_checks(s, r, what, allow_integrating=kind == "integrating")
     if kind == "integrating" and np.polyfit(s[s.size // 2:], r[s.size // 2:], 1)[0] == 0:
-        raise SettingsError(f"{what}: the response has no slope; it is not integrating.")
+        raise SettingsError(f"the response has no slope; it is not integrating.", owner=what)
     # r is the response per unit step measured from y0 at times since the step
     f = fit_step_response(s, r, size=1.0, t_step=0.0, y0=0.0, kind=kind, what=what)
     return ProcessFit(kind, f.gain, f.time_constants, f.dead_time, rmse=f.rms_error * abs(size),
@@ -342,9 +342,9 @@ def fit_step(data: StepData, cv: str, *, kind: str = "auto") -> ProcessFit:
 def _refuse_inverse(fit: ProcessFit, rule: str) -> None:
     if fit.inverse_response:
         raise SettingsError(
-            f"{rule}: the step response of {fit.cv or 'this CV'} shows an inverse response (it first "
+            f"the step response of {fit.cv or 'this CV'} shows an inverse response (it first "
             f"moves the wrong way); the rule assumes a monotonic response. Model the right-half-"
-            f"plane zero (e.g. Skogestad's half rule into the dead time) before tuning.")
+            f"plane zero (e.g. Skogestad's half rule into the dead time) before tuning.", owner=rule)
 
 
 def _loop(fit: ProcessFit, K: float, Ti: float, Td: float, rule: str, cv: str | None,
@@ -585,10 +585,10 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
     from ..linear import linearize
 
     if rule not in RULES:
-        raise SettingsError(f"{what}: unknown rule {rule!r}{suggest(str(rule), RULES)}; expected "
-                            f"one of: {', '.join(RULES)}.")
+        raise SettingsError(f"unknown rule {rule!r}{suggest(str(rule), RULES)}; expected "
+                            f"one of: {', '.join(RULES)}.", owner=what)
     if not (isinstance(step_fraction, (int, float)) and 0 < step_fraction <= 0.5):
-        raise SettingsError(f"{what}: step_fraction must be in (0, 0.5]; found {step_fraction!r}.")
+        raise SettingsError(f"step_fraction must be in (0, 0.5]; found {step_fraction!r}.", owner=what)
     lin = linearize(model, op)
     loops, fits = [], []
     lo, hi = model.bounds("mv")
@@ -631,8 +631,8 @@ def rule_on_fit(f: ProcessFit, cv: str, mv: str, *, Ts: float, rule: str,
     extra = extra_dead_time.get(cv, extra_dead_time.get("*", 0.0))
     if not (isinstance(extra, (int, float)) and not isinstance(extra, bool)
             and math.isfinite(extra) and extra >= 0):
-        raise SettingsError(f"{what}: extra dead time for '{cv}' must be a number >= 0; "
-                            f"found {extra!r}.")
+        raise SettingsError(f"extra dead time for '{cv}' must be a number >= 0; "
+                            f"found {extra!r}.", owner=what)
     # the sampled loop adds about half a sample of delay (zero-order hold), plus what the
     # measurement adds (analyzer dead time and half its cycle)
     f = ProcessFit(f.kind, f.gain, f.time_constants, f.dead_time + 0.5 * Ts + float(extra),
@@ -644,4 +644,4 @@ def rule_on_fit(f: ProcessFit, cv: str, mv: str, *, Ts: float, rule: str,
     try:
         return tune_loop(f, rule, cv=cv, mv=mv, **kw), f
     except SettingsError as exc:
-        raise SettingsError(f"{what}: loop {cv}<-{mv}: {exc}") from None
+        raise SettingsError(f"loop {cv}<-{mv}: {exc}", owner=what) from None
