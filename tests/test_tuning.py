@@ -206,7 +206,7 @@ def test_pid_from_settings_tunes_the_blending_tank_on_rga_pairs():
                                                     ("concentration", "caustic_flow"),
                                                     ("temperature", "heater_duty")]
     assert all(lp.gain > 0 and lp.rule == "simc" for lp in ctl.loops)
-    with pytest.raises(mp.SettingsError, match=r"tank.pid: unknown key 'rulee'.*did you mean 'rule'"):
+    with pytest.raises(mp.SettingsError, match=r"tank.pid: key 'rulee': expected one of the keys .*did you mean 'rule'"):
         mp.pid_from_settings(tank, op0(tank), 10.0, {"rulee": "simc"}, what="tank.pid")
     with pytest.raises(mp.SettingsError, match=r"loop level<-water_flow: imc: .*integrating"):
         mp.pid_from_settings(tank, op0(tank), 10.0, {"rule": "imc", "pairs": [["level", "water_flow"]]})

@@ -12,7 +12,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from .._specs import as_float, choice, refuse_unknown_keys, shown
-from ..exceptions import SettingsError
+from ..exceptions import SettingsError, join_key
 from ..model import suggest
 from .pid import PIDLoop
 from .tuning import RULES, ZN_METHODS, ProcessFit, rule_on_fit, tune_pid_loops
@@ -45,7 +45,7 @@ def _check_number(v: Any, where: str, *, low: float, strict: bool, high: float =
     if not ok:
         rel = ">" if strict else ">="
         rng = f"{rel} {low:g}" + (f" and <= {high:g}" if math.isfinite(high) else "")
-        raise SettingsError(f"must be a finite number {rng}; found {shown(v)}.", owner=where)
+        raise SettingsError(owner=where, expected=f"a finite number {rng}", found=shown(v))
     return float(f)
 
 
@@ -54,27 +54,37 @@ def _check_per_cv(settings: Mapping[str, Any], key: str, model: Any, what: str, 
 
     v = settings[key]
     if not isinstance(v, Mapping):
-        check(v, f"{what}.{key}")
+        check(v, join_key(what, key))
         return
     names = list(getattr(model, "cv_names", ()))
     for c, x in v.items():
         if not isinstance(c, str) or (c != "*" and c not in names):
-            raise SettingsError(f"{what}.{key}: {shown(c)} is not a CV of model "
+            raise SettingsError(f"{shown(c)} is not a CV of model "
                                 f"'{getattr(model, 'name', '?')}'{suggest(str(c), names)}; expected "
                                 f"one value or a table keyed by CV names ({', '.join(names)} or "
-                                f"'*').")
-        check(x, f"{what}.{key}.{c}")
+                                f"'*').", owner=join_key(what, key))
+        check(x, join_key(join_key(what, key), str(c)))
 
 
 def _check_settings(model: Any, settings: Mapping[str, Any], what: str) -> None:
     """Types and ranges of every key of :func:`pid_from_settings` (before any step test)."""
+    try:
+        _check_settings_below(model, settings)
+    except SettingsError as e:
+        # the checks below are given the key path of their entry as the owner: it goes in
+        # front of the error's key, below the PID settings (*what*)
+        raise e.replace(owner=what, key=join_key(e.owner, e.key)) from None
+
+
+def _check_settings_below(model: Any, settings: Mapping[str, Any]) -> None:
+    what = None
 
     rule = choice(settings.get("rule", "simc"), RULES, what=what, key="rule", noun="rule")
     for key in ("tau_c", "lam", "mode", "method"):
         if key in settings and key not in _RULE_KEYS[rule]:
             users = [r for r, ks in _RULE_KEYS.items() if key in ks]
-            raise SettingsError(f"{what}.{key}: applies to rule {' / '.join(users)}, but the rule "
-                                f"is '{rule}'; remove '{key}' or set rule = '{users[0]}'.")
+            raise SettingsError(f"applies to rule {' / '.join(users)}, but the rule "
+                                f"is '{rule}'; remove '{key}' or set rule = '{users[0]}'.", owner=key)
     pos = lambda v, w: _check_number(v, w, low=0.0, strict=True)  # noqa: E731
     if "tau_c" in settings:
         _check_per_cv(settings, "tau_c", model, what, pos)
@@ -82,28 +92,27 @@ def _check_settings(model: Any, settings: Mapping[str, Any], what: str) -> None:
         _check_per_cv(settings, "lam", model, what, pos)
     if "mode" in settings:
         _check_per_cv(settings, "mode", model, what,
-                      lambda v, w: choice(v, _MODES, what=w.rsplit(".", 1)[0], key=w.rsplit(".", 1)[1],
-                                          noun="mode"))
+                      lambda v, w: choice(v, _MODES, what=w, key=None, noun="mode"))
     if "method" in settings:
         _check_per_cv(settings, "method", model, what,
-                      lambda v, w: choice(v, ZN_METHODS, what=w.rsplit(".", 1)[0],
-                                          key=w.rsplit(".", 1)[1], noun="method"))
+                      lambda v, w: choice(v, ZN_METHODS, what=w, key=None, noun="method"))
     choice(settings.get("fit", "auto"), FIT_CHOICES, what=what, key="fit", noun="fit")
     if "step_fraction" in settings:
-        _check_number(settings["step_fraction"], f"{what}.step_fraction", low=0.0, strict=True,
+        _check_number(settings["step_fraction"], "step_fraction", low=0.0, strict=True,
                       high=0.5)
     if settings.get("test_duration") is not None:
-        _check_number(settings["test_duration"], f"{what}.test_duration", low=0.0, strict=True)
+        _check_number(settings["test_duration"], "test_duration", low=0.0, strict=True)
     if "extra_dead_time" in settings:
         _check_per_cv(settings, "extra_dead_time", model, what,
                       lambda v, w: _check_number(v, w, low=0.0, strict=False))
     if "setpoint_weight" in settings:
-        _check_number(settings["setpoint_weight"], f"{what}.setpoint_weight", low=0.0, strict=False,
+        _check_number(settings["setpoint_weight"], "setpoint_weight", low=0.0, strict=False,
                       high=1.0)
     if "derivative_filter" in settings:
-        _check_number(settings["derivative_filter"], f"{what}.derivative_filter", low=0.0, strict=True)
+        _check_number(settings["derivative_filter"], "derivative_filter", low=0.0, strict=True)
     if "on_fresh" in settings and not isinstance(settings["on_fresh"], bool):
-        raise SettingsError(f"{what}.on_fresh: must be true or false; found {shown(settings['on_fresh'])}.")
+        raise SettingsError(owner=None, key="on_fresh", expected="true or false",
+                            found=shown(settings["on_fresh"]))
 
 
 def _name(v: Any, where: str, role: str, names: Sequence[str]) -> str:

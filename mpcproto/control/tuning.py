@@ -261,7 +261,8 @@ def _shape_checks(s, r, what, allow_integrating=False):
     span = float(np.max(np.abs(r))) if r.size else 0.0
     if span <= 3 * noise or span == 0:
         raise SettingsError(f"the response does not rise above the noise (peak "
-                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.", owner=what)
+                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.", owner=what,
+                            code="no_response")
     # integrating: still moving at the end at a rate comparable to the mean rate
     ts = s[int(0.8 * n):]
     slope = np.polyfit(ts, tail, 1)[0] if ts.size > 2 else 0.0
@@ -274,7 +275,7 @@ def _shape_checks(s, r, what, allow_integrating=False):
         raise SettingsError(
             f"the response is still ramping at the end (slope {slope:.3g} per unit step "
             f"per time unit): an integrating process (a level?) or a test too short to settle. "
-            f"Use fit_integrating(), or run the test longer.", owner=what)
+            f"Use fit_integrating(), or run the test longer.", owner=what, code="integrating")
     return final, noise, inverse
 
 
@@ -329,7 +330,7 @@ def fit_step(data: StepData, cv: str, *, kind: str = "auto") -> ProcessFit:
         try:
             return fit_fopdt(data.t, data.y[cv], **args)
         except SettingsError as exc:
-            if "integrating" not in str(exc):
+            if exc.code != "integrating":
                 raise
             return fit_integrating(data.t, data.y[cv], **args)
     if kind not in fits:
