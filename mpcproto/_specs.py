@@ -17,6 +17,7 @@ import numpy as np
 
 from .exceptions import SettingsError, join_key
 from .model import suggest
+from .validation import shown
 
 __all__ = ["shown", "as_float", "choice", "number", "check_keys", "refuse_unknown_keys",
            "paired_series"]
@@ -44,16 +45,6 @@ def check_keys(spec: Mapping[str, Any], allowed: Sequence[str], required: Sequen
         if k not in spec:
             raise SettingsError(owner=what, key=k, expected=f"the key '{k}' (kind '{kind}' needs it)",
                                 found=f"keys {', '.join(map(str, spec))}")
-
-
-def shown(v: Any, limit: int = 60) -> str:
-    """Short rendering of a found value for messages: ``repr`` cut to *limit* characters; a
-    table as ``a table {key, ...}``."""
-    if isinstance(v, Mapping):
-        keys = [str(k) for k in list(v)[:4]]
-        return "a table {" + ", ".join(keys) + (", ..." if len(v) > 4 else "") + "}"
-    r = repr(v)
-    return r if len(r) <= limit else r[:limit - 3] + "..."
 
 
 def as_float(v: Any) -> float | None:

@@ -37,18 +37,11 @@ __all__ = ["Constraint", "Interval", "Options", "Names", "Boolean", "Text", "Len
 
 
 def shown(v: Any, limit: int = 60) -> str:
-    """A found value as the message shows it: ``repr`` cut to *limit* characters, a table as
-    ``a table {key, ...}``, nothing as ``nothing``."""
-    if v is None:
-        return "nothing"
+    """A found value as the message shows it: ``repr`` cut to *limit* characters; a table as
+    ``a table {key, ...}``."""
     if isinstance(v, Mapping):
         keys = [str(k) for k in list(v)[:4]]
         return "a table {" + ", ".join(keys) + (", ..." if len(v) > 4 else "") + "}"
-    if isinstance(v, bool):
-        return f"the boolean {v!r}"
-    if isinstance(v, str):
-        r = repr(v)
-        return f"a string {r if len(r) <= limit else r[:limit - 3] + '...'}"
     r = repr(v)
     return r if len(r) <= limit else r[:limit - 3] + "..."
 

@@ -73,7 +73,7 @@ def test_csv_table(tmp_path):
     ({"kind": "step", "at": 0}, r"key 'size': expected the key 'size' \(kind 'step' needs it\)"),
     ({"kind": "step", "at": 0, "size": 1, "sise": 2}, r"unknown key 'sise'.*did you mean 'size'"),
     ({"kind": "sine", "amplitude": 1, "period": 0}, r"key 'period': expected a number > 0"),
-    ({"kind": "step", "at": "soon", "size": 1}, r"key 'at': expected a number, found a string 'soon'"),
+    ({"kind": "step", "at": "soon", "size": 1}, r"key 'at': expected a number, found 'soon'"),
     ({"kind": "table", "times": [0, 20, 10], "values": [1, 2, 3]}, r"strictly increasing; found 10 at 2 after 20"),
     ({"kind": "table", "times": [0, 1], "values": [1]}, r"key 'values': expected as many values as times \(2\), found 1 values"),
     ({"kind": "random_walk", "step_std": 1, "interval": 1, "low": 1}, r"key 'low': expected low <= 0 <= high"),

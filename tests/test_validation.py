@@ -69,7 +69,7 @@ def test_options_names_boolean_text():
     assert "did you mean 'level'?" in e.found
     assert refused(1, Boolean()).found == "1"
     assert check(np.bool_(False), Boolean(), owner="o", key="k") is False
-    assert refused("two\nlines", Text()).found == "a string 'two\\nlines'"
+    assert refused("two\nlines", Text()).found == "'two\\nlines'"
 
 
 def test_length_names_the_index():
@@ -79,7 +79,7 @@ def test_length_names_the_index():
         check([1, -2, 3], c, owner="o", key="v")
     assert ei.value.key == "v[1]" and ei.value.found == "-2"
     assert refused([1, 2], c).found == "2 items"
-    assert refused("abc", c).found == "a string 'abc'"
+    assert refused("abc", c).found == "'abc'"
 
 
 def test_table_and_validate():
