@@ -115,11 +115,11 @@ def _check_settings_below(model: Any, settings: Mapping[str, Any]) -> None:
                             found=shown(settings["on_fresh"]))
 
 
-def _name(v: Any, where: str, role: str, names: Sequence[str]) -> str:
+def _name(v: Any, key: str, role: str, names: Sequence[str], what: str) -> str:
 
     if not isinstance(v, str):
-        raise SettingsError(f"must be the name of a{'n' if role == 'MV' else ''} {role} "
-                            f"(a string: {', '.join(names) or '...'}); found {shown(v)}.", owner=where)
+        raise SettingsError(owner=what, key=key, expected=f"the name of a{'n' if role == 'MV' else ''} "
+                            f"{role} (a string: {', '.join(names) or '...'})", found=shown(v))
     return v
 
 
@@ -165,45 +165,49 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     loop_specs = settings.get("loops")
     if loop_specs is not None:
         if not isinstance(loop_specs, (list, tuple)) or not loop_specs:
-            raise SettingsError(f"{what}.loops: expected a non-empty list of loop tables; found "
-                                f"{shown(loop_specs)}.")
+            raise SettingsError(owner=what, key="loops", expected="a non-empty list of loop tables",
+                                found=shown(loop_specs))
         for i, spec in enumerate(loop_specs):
-            w = f"{what}.loops[{i}]"
+            w = f"loops[{i}]"
             if isinstance(spec, PIDLoop):
                 given[(spec.cv, spec.mv)] = spec
                 continue
             if not isinstance(spec, Mapping):
-                raise SettingsError(f"expected a loop table (cv, mv and gain or none to tune "
-                                    f"it); found {shown(spec)}.", owner=w)
+                raise SettingsError(owner=what, key=w, expected="a loop table (cv, mv and gain or "
+                                    "none to tune it)", found=shown(spec))
             for k, names, role in (("cv", cv_names, "CV"), ("mv", mv_names, "MV")):
                 if k not in spec:
-                    raise SettingsError(f"needs '{k}'; found keys: "
-                                        f"{', '.join(map(str, spec)) or '(none)'}.", owner=w)
-                _name(spec[k], f"{w}.{k}", role, names)
+                    raise SettingsError(owner=what, key=f"{w}.{k}", expected=f"the key '{k}'",
+                                        found=f"keys {', '.join(map(str, spec)) or '(none)'}")
+                _name(spec[k], f"{w}.{k}", role, names, what)
             if "gain" not in spec:
                 for k in spec:
                     if k not in ("cv", "mv"):
                         raise SettingsError(
                             f"a loop without 'gain' is tuned by the rule and takes only cv "
                             f"and mv; found {shown(k)}. Give 'gain' (and the other settings) or "
-                            f"set them at the top of the PID settings.", owner=w)
+                            f"set them at the top of the PID settings.", owner=what, key=f"{w}.{k}")
                 to_tune.append((spec["cv"], spec["mv"]))
             else:
-                lp = pid_loop_from_spec(spec, what=w)
+                try:
+                    lp = pid_loop_from_spec(spec, what=what)
+                except SettingsError as e:
+                    raise e.replace(owner=what).at(w) from None
                 given[(lp.cv, lp.mv)] = lp
     pairs_spec = settings.get("pairs")
     if pairs_spec is not None:
-        w = f"{what}.pairs"
+        w = "pairs"
         if isinstance(pairs_spec, Mapping):
-            pairs = [(_name(c, f"{w} key", "CV", cv_names), _name(m, f"{w}.{c}", "MV", mv_names))
-                     for c, m in pairs_spec.items()]
+            pairs = [(_name(c, f"{w}.{c}", "CV", cv_names, what),
+                      _name(m, f"{w}.{c}", "MV", mv_names, what)) for c, m in pairs_spec.items()]
         elif isinstance(pairs_spec, (list, tuple)) and pairs_spec and all(
                 isinstance(p, (list, tuple)) and len(p) == 2 for p in pairs_spec):
-            pairs = [(_name(c, f"{w}[{i}][0]", "CV", cv_names), _name(m, f"{w}[{i}][1]", "MV", mv_names))
+            pairs = [(_name(c, f"{w}[{i}][0]", "CV", cv_names, what),
+                      _name(m, f"{w}[{i}][1]", "MV", mv_names, what))
                      for i, (c, m) in enumerate(pairs_spec)]
         else:
-            raise SettingsError(f"expected a non-empty list of [cv, mv] pairs or a table "
-                                f"{{cv = mv}}; found {shown(pairs_spec)}.", owner=w)
+            raise SettingsError(owner=what, key=w, expected="a non-empty list of [cv, mv] pairs or "
+                                "a table {cv = mv}", found=shown(pairs_spec))
         to_tune += [p for p in pairs if p not in given and p not in to_tune]
     _check_settings(model, settings, what)
     if any(k in settings for k in _STRUCTURE_KEYS):
