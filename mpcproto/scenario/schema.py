@@ -114,10 +114,8 @@ class _Ctx:
         self.file = file
 
     def fail(self, key: str, expected: str, found: Any, hint: str = "") -> None:
-        msg = f"expected {expected}; found {found}."
-        if hint:
-            msg += " " + hint
-        raise ScenarioError(msg, file=self.file, key=key or None)
+        raise ScenarioError(file=self.file, key=key or None, expected=expected, found=str(found),
+                            fix=hint or None)
 
     def table(self, v: Any, key: str) -> dict:
         if not isinstance(v, Mapping):
