@@ -72,7 +72,8 @@ class MpcprotoError(Exception):
     def body(self) -> str:
         """The message without the place (file/owner and key)."""
         if self.expected is not None:
-            text = f"expected {self.expected}, found {self.found if self.found is not None else 'nothing'}"
+            found = self.found if self.found is not None else "nothing"
+            text = f"expected {self.expected}, found {found}"
             if self.fix:    # a fix written as a sentence follows as one
                 text += f". {self.fix}" if self.fix[:1].isupper() else f"; {self.fix}"
             if text[-1] not in ".?!":

@@ -219,9 +219,10 @@ class PredictiveController:
                                 f"got {type(settings).__name__}.")
         for k in settings:
             if k not in SETTINGS_KEYS:
+                known = sorted(SETTINGS_KEYS)
                 raise SettingsError(owner="PredictiveController", key=str(k),
-                                    expected=f"a known setting ({', '.join(sorted(SETTINGS_KEYS))})",
-                                    found=f"the unknown setting '{k}'{suggest(k, list(SETTINGS_KEYS))}")
+                                    expected=f"a known setting ({', '.join(known)})",
+                                    found=f"the unknown setting '{k}'{suggest(k, known)}")
         obj = cls(dmodel, **dict(settings))
         obj.validate()
         return obj

@@ -207,7 +207,8 @@ def resolve(ctrl) -> dict[str, Any]:
              f"to use that solver's settings)" if ctrl.solver == "auto" else "")
     for k in opts:
         if k not in known:
-            raise fail(_OWNER, f"solver_options.{k}", f"a {kind} option ({', '.join(sorted(known))})",
+            raise fail(_OWNER, f"solver_options.{k}",
+                       f"a {kind} option ({', '.join(sorted(known))})",
                        f"the unknown option '{k}'{suggest(k, known)}", chose.strip(" ()") or None)
     _number("state_noise", ctrl.state_noise, low=0)
     _int("history", ctrl.history)

@@ -130,7 +130,8 @@ def pid_loop_from_spec(spec: Mapping[str, Any] | PIDLoop, *, what: str) -> PIDLo
         raise SettingsError(f"a PID loop must be a table/dict; found {spec!r}.", owner=what)
     for k in spec:
         if k not in _LOOP_KEYS:
-            raise SettingsError(owner=what, key=str(k), expected=f"one of the keys {', '.join(_LOOP_KEYS)}",
+            raise SettingsError(owner=what, key=str(k),
+                                expected=f"one of the keys {', '.join(_LOOP_KEYS)}",
                                 found=f"the unknown key '{k}'{suggest(str(k), _LOOP_KEYS)}")
     for k in ("cv", "mv", "gain"):
         if k not in spec:

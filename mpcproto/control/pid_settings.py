@@ -84,7 +84,8 @@ def _check_settings_below(model: Any, settings: Mapping[str, Any]) -> None:
         if key in settings and key not in _RULE_KEYS[rule]:
             users = [r for r, ks in _RULE_KEYS.items() if key in ks]
             raise SettingsError(f"applies to rule {' / '.join(users)}, but the rule "
-                                f"is '{rule}'; remove '{key}' or set rule = '{users[0]}'.", owner=key)
+                                f"is '{rule}'; remove '{key}' or set rule = '{users[0]}'.",
+                                owner=key)
     pos = lambda v, w: _check_number(v, w, low=0.0, strict=True)  # noqa: E731
     if "tau_c" in settings:
         _check_per_cv(settings, "tau_c", model, what, pos)
@@ -118,8 +119,10 @@ def _check_settings_below(model: Any, settings: Mapping[str, Any]) -> None:
 def _name(v: Any, key: str, role: str, names: Sequence[str], what: str) -> str:
 
     if not isinstance(v, str):
-        raise SettingsError(owner=what, key=key, expected=f"the name of a{'n' if role == 'MV' else ''} "
-                            f"{role} (a string: {', '.join(names) or '...'})", found=shown(v))
+        article = "an" if role == "MV" else "a"
+        raise SettingsError(owner=what, key=key, found=shown(v),
+                            expected=f"the name of {article} {role} (a string: "
+                                     f"{', '.join(names) or '...'})")
     return v
 
 
@@ -219,7 +222,8 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
         for v, names, role in ((c, cv_names, "CV"), (m, mv_names, "MV")):
             if v not in names:
                 raise SettingsError(f"pair {i} ({c}, {m}): '{v}' is not a {role} of model "
-                                    f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.", owner=what)
+                                    f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.",
+                                    owner=what)
     structures = {k: settings[k] for k in _STRUCTURE_KEYS if k in settings}
     if pairs_spec is None and loop_specs is None and not structures:
         from ..linear import linearize

@@ -340,13 +340,15 @@ class RegulatoryController:
         def cv(name: str, where: str) -> int:
             if name not in self.cv_names:
                 raise SettingsError(f"'{name}' is not a CV of the model"
-                                    f"{suggest(name, self.cv_names)}; CVs: {', '.join(self.cv_names)}.", owner=where)
+                                    f"{suggest(name, self.cv_names)}; CVs: {', '.join(self.cv_names)}.",
+                                    owner=where)
             return self.cv_names.index(name)
 
         def mv(name: str, where: str) -> int:
             if name not in self.mv_names:
                 raise SettingsError(f"'{name}' is not an MV of the model"
-                                    f"{suggest(name, self.mv_names)}; MVs: {', '.join(self.mv_names)}.", owner=where)
+                                    f"{suggest(name, self.mv_names)}; MVs: {', '.join(self.mv_names)}.",
+                                    owner=where)
             if name in owner:
                 raise SettingsError(f"MV '{name}' is already moved by {owner[name]}; "
                                     f"each MV may be moved by one structure only (use a selector "
@@ -409,10 +411,11 @@ class RegulatoryController:
             b = plain.get(f.cv)
             if b is None:
                 raise SettingsError(f"there is no plain loop (or cascade inner loop) on "
-                                    f"'{f.cv}' to add it to; loops on: {', '.join(plain) or 'none'}.", owner=w)
+                                    f"'{f.cv}' to add it to; loops on: {', '.join(plain) or 'none'}.",
+                                    owner=w)
             if f.source in self.mv_names:
                 if f.source == b.loop.mv:
-                    raise SettingsError(f"the source is the loop's own MV.", owner=w)
+                    raise SettingsError("the source is the loop's own MV.", owner=w)
                 b.ff.append(_FFState(f, self.mv_names.index(f.source), "mv"))
             else:
                 b.ff.append(_FFState(f, dv(f.source, w)))
@@ -642,9 +645,10 @@ def _string(spec: Mapping[str, Any], key: str, where: str, names: Sequence[str],
                             found=f"keys {', '.join(map(str, spec)) or '(none)'}")
     v = spec[key]
     if not isinstance(v, str) or v not in names:
-        raise SettingsError(owner=where, key=key, expected=f"the name of "
-                            f"a{'n' if role[0] in 'AEIMO' else ''} {role} ({', '.join(names) or 'none'})",
-                            found=f"{shown(v)}{suggest(str(v), names) if isinstance(v, str) else ''}")
+        hint = suggest(str(v), names) if isinstance(v, str) else ""
+        raise SettingsError(owner=where, key=key, found=f"{shown(v)}{hint}",
+                            expected=f"the name of a{'n' if role[0] in 'AEIMO' else ''} {role} "
+                                     f"({', '.join(names) or 'none'})")
     return v
 
 
@@ -731,7 +735,8 @@ def _check_structures(model: Any, structures: Mapping[str, Any]) -> None:
                     number(spec, k, what=w, low=0.0)
                 if spec.get("lead", 0) > 0 and spec.get("lag", 0) == 0:
                     raise SettingsError(f"a 'lead' needs a 'lag' > 0 (a pure lead is not "
-                                        f"realizable); found lead = {spec['lead']!r} and no lag.", owner=w)
+                                        f"realizable); found lead = {spec['lead']!r} and no lag.",
+                                        owner=w)
     if "ratio" in structures:
         for c, w, spec in _cv_tables(structures, "ratio", cvs, "{mv = ..., wild = ...}",
                                      _RATIO_KEYS):
@@ -878,7 +883,8 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
         (inner,), (fi,) = tune([(spec["inner"], spec["mv"])])
         if fi.kind == "integrating":
             raise SettingsError(f"the inner loop's process ({spec['inner']} <- {spec['mv']}) "
-                                f"integrates; a cascade's inner loop must be self-regulating here.", owner=w)
+                                f"integrates; a cascade's inner loop must be self-regulating here.",
+                                owner=w)
         j = mvs.index(spec["mv"])
         lo, hi = model.bounds("mv")
         span = hi[j] - lo[j] if math.isfinite(hi[j] - lo[j]) else max(abs(op.u[j]), 1.0)

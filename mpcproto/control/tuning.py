@@ -226,7 +226,8 @@ def _prep(t, y, at, size, y0, what):
     t, y = paired_series(t, y, what=what, finite_y=False)
     fs = as_float(size)
     if fs is None or not math.isfinite(fs) or fs == 0:
-        raise SettingsError(f"the step size must be finite and non-zero; found {shown(size)}.", owner=what)
+        raise SettingsError(f"the step size must be finite and non-zero; found {shown(size)}.",
+                            owner=what)
     fa = as_float(at)
     if fa is None or not math.isfinite(fa):
         raise SettingsError(f"'at' (the time of the step) must be a finite number; found "
@@ -236,7 +237,7 @@ def _prep(t, y, at, size, y0, what):
     size, at = fs, fa
     ok = np.isfinite(y)
     if ok.sum() < 5:
-        raise SettingsError(f"fewer than 5 finite samples of the response.", owner=what)
+        raise SettingsError("fewer than 5 finite samples of the response.", owner=what)
     t, y = t[ok], y[ok]
     if y0 is None:
         before = y[t < at]
@@ -261,7 +262,8 @@ def _shape_checks(s, r, what, allow_integrating=False):
     span = float(np.max(np.abs(r))) if r.size else 0.0
     if span <= 3 * noise or span == 0:
         raise SettingsError(f"the response does not rise above the noise (peak "
-                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.", owner=what,
+                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.",
+                            owner=what,
                             code="no_response")
     # integrating: still moving at the end at a rate comparable to the mean rate
     ts = s[int(0.8 * n):]
@@ -288,7 +290,7 @@ def _fit(kind: str, t: Sequence[float], y: Sequence[float], at: float, size: flo
     s, r, _ = _prep(t, y, at, size, y0, what)
     _, _, inverse = _shape_checks(s, r, what, allow_integrating=kind == "integrating")
     if kind == "integrating" and np.polyfit(s[s.size // 2:], r[s.size // 2:], 1)[0] == 0:
-        raise SettingsError(f"the response has no slope; it is not integrating.", owner=what)
+        raise SettingsError("the response has no slope; it is not integrating.", owner=what)
     # r is the response per unit step measured from y0 at times since the step
     f = fit_step_response(s, r, size=1.0, t_step=0.0, y0=0.0, kind=kind, what=what)
     return ProcessFit(kind, f.gain, f.time_constants, f.dead_time, rmse=f.rms_error * abs(size),
@@ -345,7 +347,8 @@ def _refuse_inverse(fit: ProcessFit, rule: str) -> None:
         raise SettingsError(
             f"the step response of {fit.cv or 'this CV'} shows an inverse response (it first "
             f"moves the wrong way); the rule assumes a monotonic response. Model the right-half-"
-            f"plane zero (e.g. Skogestad's half rule into the dead time) before tuning.", owner=rule)
+            f"plane zero (e.g. Skogestad's half rule into the dead time) before tuning.",
+            owner=rule)
 
 
 def _loop(fit: ProcessFit, K: float, Ti: float, Td: float, rule: str, cv: str | None,
@@ -589,7 +592,8 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
         raise SettingsError(f"unknown rule {rule!r}{suggest(str(rule), RULES)}; expected "
                             f"one of: {', '.join(RULES)}.", owner=what)
     if not (isinstance(step_fraction, (int, float)) and 0 < step_fraction <= 0.5):
-        raise SettingsError(f"step_fraction must be in (0, 0.5]; found {step_fraction!r}.", owner=what)
+        raise SettingsError(f"step_fraction must be in (0, 0.5]; found {step_fraction!r}.",
+                            owner=what)
     lin = linearize(model, op)
     loops, fits = [], []
     lo, hi = model.bounds("mv")

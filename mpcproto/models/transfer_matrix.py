@@ -111,10 +111,12 @@ class TransferElement:
         num(self.lead, "the lead time constant")
         num(self.dead_time, "the dead time", 0.0)
         if not isinstance(self.integrating, bool):
-            raise ModelError(f"'integrating' must be true or false; got {self.integrating!r}.", owner=where)
+            raise ModelError(f"'integrating' must be true or false; got {self.integrating!r}.",
+                             owner=where)
         if self.lead != 0 and not self.time_constants:
             raise ModelError(f"a lead needs at least one time constant (the element would "
-                             f"be improper); got lead={self.lead!r} and no time constant.", owner=where)
+                             f"be improper); got lead={self.lead!r} and no time constant.",
+                             owner=where)
 
 
 def _taus(v: Any, where: str) -> tuple:
@@ -138,7 +140,8 @@ def _spec_list(items: Any, role: str, what: str) -> list[dict[str, Any]]:
         if isinstance(it, str):
             it = {"name": it}
         if not isinstance(it, Mapping) or "name" not in it:
-            raise ModelError(f"each {role} must be a name or a dict with a 'name'; got {it!r}.", owner=what)
+            raise ModelError(f"each {role} must be a name or a dict with a 'name'; got {it!r}.",
+                             owner=what)
         refuse_unknown_keys(it, allowed, what=what, context=f" in {role} '{it['name']}'",
                             error=ModelError)
         out.append(dict(it))
@@ -223,7 +226,7 @@ def transfer_matrix_model(name: str, mvs: Any, cvs: Any, elements: Any, *, dvs: 
     if not cv_specs:
         raise ModelError(f"at least one CV is needed; got {cvs!r}.", owner=where)
     if dv_elements is not None and not dv_specs:
-        raise ModelError(f"dv_elements given but no DVs declared (pass dvs=...).", owner=where)
+        raise ModelError("dv_elements given but no DVs declared (pass dvs=...).", owner=where)
     cv_names = [c["name"] for c in cv_specs]
     mv_names = [c["name"] for c in mv_specs]
     dv_names = [c["name"] for c in dv_specs]
@@ -235,7 +238,8 @@ def transfer_matrix_model(name: str, mvs: Any, cvs: Any, elements: Any, *, dvs: 
     def fnum(spec, key, default):
         v = spec.get(key, default)
         if isinstance(v, bool) or not isinstance(v, numbers.Real):
-            raise ModelError(f"'{spec['name']}' key '{key}' must be a number; got {v!r}.", owner=where)
+            raise ModelError(f"'{spec['name']}' key '{key}' must be a number; got {v!r}.",
+                             owner=where)
         return float(v)
 
     syms: dict[str, Any] = {}

@@ -191,7 +191,8 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
     if isinstance(spec, Fault):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"a fault must be a table/dict with a 'kind'; found {shown(spec)}.", owner=what)
+        raise SettingsError(f"a fault must be a table/dict with a 'kind'; found {shown(spec)}.",
+                            owner=what)
     kind = choice(spec.get("kind"), FAULT_KINDS, what=what, key="kind", noun="fault kind")
     req, opt = _FAULT_EXTRA[kind]
     body = {k: v for k, v in spec.items() if k != "kind"}
@@ -199,7 +200,8 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
                what=what, kind=kind)
     var = body["variable"]
     if not isinstance(var, str) or not var:
-        raise SettingsError(f"'variable' must be a variable name (a string); found {shown(var)}.", owner=what)
+        raise SettingsError(f"'variable' must be a variable name (a string); found {shown(var)}.",
+                            owner=what)
     w = f"{what} ({kind} on '{var}')"
     at = number(body, "at", what=w)
     until = number(body, "until", what=w, default=None)
@@ -214,9 +216,10 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
         kw["position"] = number(body, "position", what=w, default=None)
     if kind == "valve_saturation":
         if "low" not in body and "high" not in body:
-            raise SettingsError(f"give 'low' and/or 'high' (the reduced travel).", owner=w)
+            raise SettingsError("give 'low' and/or 'high' (the reduced travel).", owner=w)
         kw["low"] = number(body, "low", what=w, default=-math.inf)
         kw["high"] = number(body, "high", what=w, default=math.inf)
         if not kw["low"] <= kw["high"]:
-            raise SettingsError(f"'low' ({kw['low']:g}) must be <= 'high' ({kw['high']:g}).", owner=w)
+            raise SettingsError(f"'low' ({kw['low']:g}) must be <= 'high' ({kw['high']:g}).",
+                                owner=w)
     return Fault(kind=kind, variable=var, at=at, until=until, **kw)

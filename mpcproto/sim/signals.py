@@ -403,14 +403,16 @@ def _check_times(times: Sequence[float], *, what: str, where: str, max_gap: floa
         i = int(bad[0]) + 1
         raise SettingsError(
             f"{where} must be strictly increasing; found {t[i]:g} at {row_of(i)} after "
-            f"{t[i - 1]:g} at {row_of(i - 1)}. Sort the table and remove duplicate times.", owner=what, key=key)
+            f"{t[i - 1]:g} at {row_of(i - 1)}. Sort the table and remove duplicate times.",
+            owner=what, key=key)
     if max_gap is not None:
         big = np.flatnonzero(d > max_gap)
         if big.size:
             i = int(big[0])
             raise SettingsError(
                 f"{where} has a gap of {d[i]:g} between {t[i]:g} ({row_of(i)}) and "
-                f"{t[i + 1]:g} ({row_of(i + 1)}), more than max_gap={max_gap:g}.", owner=what, key=key)
+                f"{t[i + 1]:g} ({row_of(i + 1)}), more than max_gap={max_gap:g}.",
+                owner=what, key=key)
 
 
 def _cut(text: str, limit: int = 120) -> str:
@@ -440,7 +442,8 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
     except FileNotFoundError:
         raise SettingsError(f"expected a readable CSV file; found that '{path}' "
                             f"cannot be read: there is no file there ({path.resolve()}; a "
-                            f"relative path is taken from the scenario's folder).", owner=what, key="path") from None
+                            f"relative path is taken from the scenario's folder).",
+                            owner=what, key="path") from None
     except OSError as exc:
         raise SettingsError(f"{cant}; found that '{path}' cannot be read "
                             f"({exc.strerror or exc}).", owner=what, key="path") from None
@@ -451,7 +454,8 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
         raise SettingsError(f"{cant}; found that '{path}' is not a regular file (a device, a pipe "
                             f"or a socket).", owner=what, key="path")
     if st.st_size > MAX_CSV_BYTES:
-        raise SettingsError(f"{cant}; found {st.st_size / 2**20:.1f} MB in '{path}'.", owner=what, key="path")
+        raise SettingsError(f"{cant}; found {st.st_size / 2**20:.1f} MB in '{path}'.",
+                            owner=what, key="path")
     line = [0]
 
     def rows():
@@ -483,7 +487,8 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
         it = rows()
         first = next(it, None)
         if first is None:
-            raise SettingsError(f"{w} needs a header row and at least one data row; found 0 rows.", owner=what, key="path")
+            raise SettingsError(f"{w} needs a header row and at least one data row; found 0 rows.",
+                                owner=what, key="path")
         header = [h.strip() for h in first]
         ti, vi = col(time_column, "time_column"), col(value_column, "value_column")
         n = 1
@@ -497,7 +502,8 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
                 except ValueError:
                     raise SettingsError(
                         f"{w}: row {n}, column '{_cut(header[idx])}' must hold a finite number; "
-                        f"found {shown(cell)} (a gap in the table?).", owner=what, key="path") from None
+                        f"found {shown(cell)} (a gap in the table?).",
+                        owner=what, key="path") from None
                 dest.append(f)
     except csv.Error as exc:
         raise SettingsError(f"{w}: line {line[0] + 1} cannot be read as CSV ({exc}): a cell "
@@ -508,7 +514,8 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
         raise SettingsError(f"expected a readable CSV text file; found that "
                             f"'{path}' cannot be read ({why}).", owner=what, key="path") from None
     if n < 2:
-        raise SettingsError(f"{w} needs a header row and at least one data row; found {n} rows.", owner=what, key="path")
+        raise SettingsError(f"{w} needs a header row and at least one data row; found {n} rows.",
+                            owner=what, key="path")
     _check_times(times, what=what, where=f"{w}, column '{header[ti]}'", max_gap=max_gap, key="path",
                  row_of=lambda i: f"row {i + 2}")
     return times.tolist(), values.tolist()
