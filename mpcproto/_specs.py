@@ -15,8 +15,9 @@ from typing import Any
 
 import numpy as np
 
-from .exceptions import SettingsError
+from .exceptions import SettingsError, join_key
 from .model import suggest
+from .validation import shown
 
 __all__ = ["shown", "as_float", "choice", "number", "check_keys", "refuse_unknown_keys",
            "paired_series"]
@@ -24,14 +25,16 @@ __all__ = ["shown", "as_float", "choice", "number", "check_keys", "refuse_unknow
 
 def refuse_unknown_keys(spec: Mapping[Any, Any], allowed: Sequence[str], *, what: str,
                        context: str = "", error: type[Exception] = SettingsError,
-                       remedy: str = "") -> None:
+                       remedy: str = "", key: str | None = None) -> None:
     """Raise *error* (default :class:`SettingsError`) for the first key of *spec* not in
-    *allowed*: ``"<what>: unknown key 'k'<context> (did you mean ...?); allowed keys: ..."``."""
+    *allowed*, at that key (below *key*, the path of *spec* itself, if given)."""
     names = list(allowed)
     for k in spec:
         if k not in names:
-            raise error(f"{what}: unknown key {shown(k)}{context}{suggest(str(k), names)}; "
-                        f"allowed keys: {', '.join(names)}.{remedy}")
+            raise error(owner=what, key=join_key(key, str(k)),
+                        expected=f"one of the keys {', '.join(names)}{context}",
+                        found=f"the unknown key {shown(k)}{suggest(str(k), names)}",
+                        fix=remedy.strip() or None)
 
 
 def check_keys(spec: Mapping[str, Any], allowed: Sequence[str], required: Sequence[str], *,
@@ -40,18 +43,8 @@ def check_keys(spec: Mapping[str, Any], allowed: Sequence[str], required: Sequen
     refuse_unknown_keys(spec, allowed, what=what, context=f" for kind '{kind}'")
     for k in required:
         if k not in spec:
-            raise SettingsError(
-                f"{what}: kind '{kind}' needs the key '{k}'; found keys: {', '.join(map(str, spec))}.")
-
-
-def shown(v: Any, limit: int = 60) -> str:
-    """Short rendering of a found value for messages: ``repr`` cut to *limit* characters; a
-    table as ``a table {key, ...}``."""
-    if isinstance(v, Mapping):
-        keys = [str(k) for k in list(v)[:4]]
-        return "a table {" + ", ".join(keys) + (", ..." if len(v) > 4 else "") + "}"
-    r = repr(v)
-    return r if len(r) <= limit else r[:limit - 3] + "..."
+            raise SettingsError(owner=what, key=k, expected=f"the key '{k}' (kind '{kind}' needs it)",
+                                found=f"keys {', '.join(map(str, spec))}")
 
 
 def as_float(v: Any) -> float | None:
@@ -73,11 +66,10 @@ def choice(value: Any, options: Sequence[str], *, what: str, key: str, noun: str
     """*value* if it is one of the strings *options*, else a :class:`SettingsError` naming *key*."""
     if isinstance(value, str) and value in options:
         return value
-    if isinstance(value, str):
-        raise SettingsError(f"{what}: unknown {noun} {value!r}{suggest(value, list(options))}; "
-                            f"expected one of: {', '.join(options)}.")
-    raise SettingsError(f"{what}: '{key}' must be one of: {', '.join(options)}; found "
-                        f"{shown(value)}.")
+    found = (f"the unknown {noun} {value!r}{suggest(value, list(options))}"
+             if isinstance(value, str) else shown(value))
+    raise SettingsError(owner=what, key=key, expected=f"one of: {', '.join(options)}",
+                        found=found)
 
 
 def number(spec: Mapping[str, Any], key: str, *, what: str, low: float = -math.inf,
@@ -88,12 +80,13 @@ def number(spec: Mapping[str, Any], key: str, *, what: str, low: float = -math.i
     v = spec[key]
     f = as_float(v)
     if f is None:
-        raise SettingsError(f"{what}: '{key}' must be a number; found {shown(v)}.")
+        raise SettingsError(owner=what, key=key, expected="a number", found=shown(v))
     if math.isnan(f) or (math.isinf(f) and not allow_inf):
-        raise SettingsError(f"{what}: '{key}' must be a finite number; found {shown(v)}.")
+        raise SettingsError(owner=what, key=key, expected="a finite number", found=shown(v))
     if (f <= low) if strict_low else (f < low):
         rel = ">" if strict_low else ">="
-        raise SettingsError(f"{what}: '{key}' must be {rel} {low:g}; found {f:g}.")
+        raise SettingsError(owner=what, key=key, expected=f"a number {rel} {low:g}",
+                            found=f"{f:g}")
     return f
 
 
@@ -108,12 +101,12 @@ def paired_series(t: Any, y: Any, *, what: str, min_len: int = 5,
         ta = np.asarray(t, float).reshape(-1)
         ya = np.asarray(y, float).reshape(-1)
     except (TypeError, ValueError, OverflowError):
-        raise SettingsError(f"{what}: t and y must be sequences of numbers; found {shown(t)} and "
-                            f"{shown(y)}.") from None
+        raise SettingsError(f"t and y must be sequences of numbers; found {shown(t)} and "
+                            f"{shown(y)}.", owner=what) from None
     if ta.shape != ya.shape or ta.size < min_len:
-        raise SettingsError(f"{what}: t and y must be 1-D of the same length (>= {min_len}); "
-                            f"found shapes {ta.shape} and {ya.shape}.")
+        raise SettingsError(f"t and y must be 1-D of the same length (>= {min_len}); "
+                            f"found shapes {ta.shape} and {ya.shape}.", owner=what)
     if not np.all(np.isfinite(ta)) or (finite_y and not np.all(np.isfinite(ya))):
-        raise SettingsError(f"{what}: t{'' if not finite_y else ' and y'} must be finite; found "
-                            f"NaN or inf.")
+        raise SettingsError(f"t{'' if not finite_y else ' and y'} must be finite; found "
+                            f"NaN or inf.", owner=what)
     return ta, ya

@@ -317,6 +317,7 @@ class Model:
     def build(self) -> "Model":
         """Validate the definition and compile it once into CasADi Functions; returns ``self``."""
         errs: list[str] = []
+        bad_parameter = None        # the first parameter out of its bounds: the error's key
         states = self.names("state")
         if not states and not self._delays:  # pure dead times (y = K u(t - theta)) need no state
             errs.append("it declares no state")
@@ -333,6 +334,8 @@ class Model:
                 if not math.isfinite(v.nominal):
                     errs.append(f"{v.role} '{v.name}' has a non-finite nominal value {v.nominal!r}")
                 elif not (v.low <= v.nominal <= v.high):
+                    if v.role == "parameter" and bad_parameter is None:
+                        bad_parameter = v.name
                     errs.append(
                         f"{v.role} '{v.name}' has nominal value {v.nominal:g} {v.unit} outside its "
                         f"physical bounds [{v.low:g}, {v.high:g}]")
@@ -359,7 +362,8 @@ class Model:
                     errs.append(f"the {where} depends on the undeclared symbol '{s.name()}'"
                                 f"{suggest(s.name(), sorted(known))}")
         if errs:
-            raise ModelError(f"Model '{self.name}' is not valid: " + "; ".join(errs) + ".")
+            raise ModelError(f"Model '{self.name}' is not valid: " + "; ".join(errs) + ".",
+                             key=f"parameters.{bad_parameter}" if bad_parameter else None)
 
         x = self._stack("state")
         u = self._stack("mv")
@@ -435,7 +439,7 @@ class Model:
             if k not in names:
                 raise ModelError(
                     f"Model '{self.name}' has no parameter '{k}'{suggest(k, names)}; "
-                    f"its parameters are: {', '.join(names) or '(none)'}.")
+                    f"its parameters are: {', '.join(names) or '(none)'}.", key=f"parameters.{k}")
             var = self._vars[k].var
             try:
                 fv = float(v)
@@ -443,8 +447,9 @@ class Model:
                 fv = math.nan
             if not math.isfinite(fv) or not (var.low <= fv <= var.high):
                 raise ModelError(
-                    f"Model '{self.name}': parameter '{k}' must be a finite number in "
-                    f"[{var.low:g}, {var.high:g}] {var.unit}; got {v!r}.")
+                    f"parameter '{k}' must be a finite number in "
+                    f"[{var.low:g}, {var.high:g}] {var.unit}; got {v!r}.",
+                    owner=f"Model '{self.name}'", key=f"parameters.{k}")
             p[names.index(k)] = fv
         new._p_values = p
         return new

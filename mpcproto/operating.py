@@ -95,7 +95,7 @@ class OperatingPoint:
         xdot = model.rhs(x, u, d, z, p)
         A = np.asarray(model.jac_(x=x, u=u, d=d, z=z, p=p)["A"], float)
         if not np.all(np.isfinite(A)):
-            raise OperatingPointError(_non_finite_message(model, A, p))
+            raise OperatingPointError(_non_finite_message(model, A, p), code="non_finite")
         ev = np.linalg.eigvals(A) if A.size else np.zeros(0, complex)
         return cls(
             model=model.name, x=x, u=u, d=d, y=model.output(x, u, d, z, p), p=p,

@@ -14,7 +14,7 @@ ROOT = Path(__file__).resolve().parents[1] / "mpcproto"
 
 #: module prefix -> layer (the longest matching prefix decides)
 LAYERS = {
-    "mpcproto.exceptions": 0, "mpcproto._version": 0, "mpcproto._deps": 0,
+    "mpcproto.exceptions": 0, "mpcproto._version": 0, "mpcproto._deps": 0, "mpcproto.validation": 0,
     "mpcproto._specs": 1, "mpcproto.model": 1, "mpcproto.models": 1, "mpcproto.trajectory": 1,
     "mpcproto.layout": 1,
     "mpcproto.operating": 2, "mpcproto.linear": 2, "mpcproto.stepper": 2, "mpcproto.responses": 2,

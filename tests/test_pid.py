@@ -141,11 +141,11 @@ def test_rga_pairing_wood_berry_and_blending_tank():
 
 
 @pytest.mark.parametrize("loops, message", [
-    ([{"cv": "y", "mv": "u"}], r"needs 'gain'"),
+    ([{"cv": "y", "mv": "u"}], r"key 'gain': expected the key 'gain'"),
     ([{"cv": "y", "mv": "u", "gain": 1, "intergal_time": 3}], r"unknown key 'intergal_time'.*did you mean 'integral_time'"),
     ([{"cv": "yy", "mv": "u", "gain": 1}], r"'yy' is not a CV.*did you mean 'y'"),
-    ([{"cv": "y", "mv": "u", "gain": 0}], r"'gain' must be a finite non-zero number"),
-    ([{"cv": "y", "mv": "u", "gain": 1, "integral_time": -2}], r"'integral_time' must be > 0"),
+    ([{"cv": "y", "mv": "u", "gain": 0}], r"key 'gain': expected a finite non-zero number"),
+    ([{"cv": "y", "mv": "u", "gain": 1, "integral_time": -2}], r"key 'integral_time': expected a number > 0"),
     ([{"cv": "y", "mv": "u", "gain": 1}, {"cv": "y", "mv": "u", "gain": 2}], r"used by two loops"),
     ([], r"at least one loop"),
 ])

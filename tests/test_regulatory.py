@@ -293,22 +293,22 @@ def test_override_and_split_range_from_settings():
 
 
 @pytest.mark.parametrize("settings, fragment", [
-    ({"ratio": {"y1": {"mv": "u"}}}, "pid.ratio.y1: needs 'wild'"),
-    ({"ratio": {"y1": {"mv": "u", "wild": "nothing"}}}, "pid.ratio.y1.wild: must be the name"),
-    ({"feedforward": {"y1": {"dv": "d", "mv": "u"}}}, "pid.feedforward.y1: give exactly one source"),
+    ({"ratio": {"y1": {"mv": "u"}}}, "pid: key 'ratio.y1.wild': expected 'wild'"),
+    ({"ratio": {"y1": {"mv": "u", "wild": "nothing"}}}, "pid: key 'ratio.y1.wild': expected the name"),
+    ({"feedforward": {"y1": {"dv": "d", "mv": "u"}}}, "pid: key 'feedforward.y1': give exactly one source"),
     ({"feedforward": {"y1": {"mv": "u", "lead": 3.0}}}, "'gain' must be too"),
     ({"override": {"u": {"select": "lowest", "loops": [{"cv": "y1"}, {"cv": "y2"}]}}},
-     "pid.override.u.select: unknown select 'lowest'"),
+     "pid: key 'override.u.select': expected one of: min, max, found the unknown select 'lowest'"),
     ({"override": {"u": {"select": "min", "loops": [{"cv": "y1"}]}}},
-     "pid.override.u.loops: expected a list of at least two"),
+     "pid: key 'override.u.loops': expected a list of at least two"),
     ({"override": {"u": {"select": "min", "loops": [{"cv": "y1"}, {"cv": "y2", "reference": "top"}]}}},
-     "pid.override.u.loops[1].reference: unknown reference 'top'"),
+     "pid: key 'override.u.loops[1].reference': expected one of: setpoint, high, low, found the unknown reference 'top'"),
     ({"split_range": {"y1": {"valves": [{"mv": "u", "start": 60, "end": 40}]}}},
-     "pid.split_range.y1.valves[0]: 'end' must be above 'start'"),
+     "pid: key 'split_range.y1.valves[0].end': expected 'end' above 'start'"),
     ({"split_range": {"y1": {"valves": [{"mv": "u", "start": 0, "end": 150}]}}},
-     "'end' must be <= 100"),
-    ({"cascade": {"y1": {"inner": "y1", "mv": "u"}}}, "pid.cascade.y1.inner: must be the name"),
-    ({"cascade": {"y9": {"inner": "y2", "mv": "u"}}}, "pid.cascade: 'y9' is not a CV"),
+     "key 'split_range.y1.valves[0].end': expected a percent <= 100"),
+    ({"cascade": {"y1": {"inner": "y1", "mv": "u"}}}, "pid: key 'cascade.y1.inner': expected the name"),
+    ({"cascade": {"y9": {"inner": "y2", "mv": "u"}}}, "pid: key 'cascade': 'y9' is not a CV"),
 ])
 def test_structure_settings_are_checked_with_key_paths(settings, fragment):
     m = selector_plant()

@@ -14,6 +14,7 @@ import mpcproto as mp
 from mpcproto.cli import main
 from mpcproto.exceptions import ScenarioError
 from mpcproto.scenario import check_scenario
+from mpcproto.scenario.schema import TOP_KEYS
 
 CORPUS = sorted((Path(__file__).parent / "bad_scenarios").glob("*.toml"))
 
@@ -314,3 +315,23 @@ def test_a_case_that_shortens_the_run_warns_about_the_events_it_cuts_off(tmp_pat
     err = capsys.readouterr().err
     assert "key 'disturbances.draw_off[0].at'" not in err
     assert "key 'disturbances.draw_off.at': the event at 400 is dropped in this run (it ends at 300)" in err
+
+
+# ------------------------------------------------------------------------ structured fields
+@pytest.mark.parametrize("path", CORPUS, ids=lambda p: p.stem)
+def test_every_refusal_carries_its_file_and_key(path):
+    """The error of every corpus file carries its file and (for a file that parses as TOML) its
+    key path as fields, and the key in the message is the field, not text to be parsed back."""
+    with pytest.raises(mp.ScenarioError) as ei:
+        check_scenario(path, build_controllers=has_controllers(path))
+    e = ei.value
+    assert e.file is not None and Path(e.file).name == path.name
+    whole_file = ("empty_file", "not_utf8", "toml_syntax", "toml_nested_too_deep")
+    if path.stem not in whole_file:
+        assert e.key, f"{path.name}: no key in {e.fields()}"
+        assert f"key '{e.key}'" in str(e)
+        # the key is a path of the file's own keys: its first part is a top-level key, one of
+        # the format's sections or a misspelt one the file holds (key 'disturbance')
+        top = re.split(r"[.\[]", e.key)[0]
+        text = path.read_bytes().decode("utf-8", "replace")
+        assert top in TOP_KEYS or re.search(rf"^\[{re.escape(top)}\b", text, re.M), (path.name, e.key)

@@ -49,8 +49,8 @@ def test_unknown_key_has_did_you_mean():
 
 def test_wrong_type_names_expected_and_found():
     raw = _with(scenario={"sample_time": "10 s"})
-    with pytest.raises(mp.ScenarioError, match=r"key 'scenario.sample_time': expected a number; "
-                                                 r"found a string \('10 s'\)"):
+    with pytest.raises(mp.ScenarioError, match=r"key 'scenario.sample_time': expected a number, "
+                                                 r"found a string \('10 s'\)\.$"):
         parse_scenario(raw, file="x.toml")
 
 

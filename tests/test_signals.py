@@ -67,18 +67,18 @@ def test_csv_table(tmp_path):
 
 
 @pytest.mark.parametrize("spec, message", [
-    ({"kind": "pulse", "at": 0, "duration": -10, "size": 1}, r"sp.x \(pulse\): 'duration' must be > 0; found -10"),
-    ({"kind": "ramp", "start": 0, "duration": 0, "size": 1}, r"'duration' must be > 0; found 0"),
+    ({"kind": "pulse", "at": 0, "duration": -10, "size": 1}, r"sp.x \(pulse\): key 'duration': expected a number > 0, found -10"),
+    ({"kind": "ramp", "start": 0, "duration": 0, "size": 1}, r"key 'duration': expected a number > 0, found 0"),
     ({"kind": "stpe", "at": 0, "size": 1}, r"unknown signal kind 'stpe' \(did you mean 'step'\?\)"),
-    ({"kind": "step", "at": 0}, r"kind 'step' needs the key 'size'"),
+    ({"kind": "step", "at": 0}, r"key 'size': expected the key 'size' \(kind 'step' needs it\)"),
     ({"kind": "step", "at": 0, "size": 1, "sise": 2}, r"unknown key 'sise'.*did you mean 'size'"),
-    ({"kind": "sine", "amplitude": 1, "period": 0}, r"'period' must be > 0"),
-    ({"kind": "step", "at": "soon", "size": 1}, r"'at' must be a number; found 'soon'"),
+    ({"kind": "sine", "amplitude": 1, "period": 0}, r"key 'period': expected a number > 0"),
+    ({"kind": "step", "at": "soon", "size": 1}, r"key 'at': expected a number, found 'soon'"),
     ({"kind": "table", "times": [0, 20, 10], "values": [1, 2, 3]}, r"strictly increasing; found 10 at 2 after 20"),
-    ({"kind": "table", "times": [0, 1], "values": [1]}, r"same length"),
-    ({"kind": "random_walk", "step_std": 1, "interval": 1, "low": 1}, r"'low' must be <= 0"),
+    ({"kind": "table", "times": [0, 1], "values": [1]}, r"key 'values': expected as many values as times \(2\), found 1 values"),
+    ({"kind": "random_walk", "step_std": 1, "interval": 1, "low": 1}, r"key 'low': expected low <= 0 <= high"),
     ([], r"empty list"),
-    ("fast", r"a signal must be a table/dict"),
+    ("fast", r"expected a signal table with a 'kind'"),
 ])
 def test_bad_specs_are_named(spec, message):
     with pytest.raises(mp.SettingsError, match=message):

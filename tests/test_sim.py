@@ -248,9 +248,9 @@ def test_bad_inputs_are_named():
         mp.simulate(m, ol, faults=[{"kind": "sensor_nan", "variable": "water_flow", "at": 10}], **base)
     with pytest.raises(mp.SettingsError, match=r"dvs: 'draw' is not a DV.*did you mean 'draw_off'"):
         mp.simulate(m, ol, dvs={"draw": 1.0}, **base)
-    with pytest.raises(mp.SettingsError, match=r"dvs.draw_off \(pulse\): 'duration' must be > 0; found -5"):
+    with pytest.raises(mp.SettingsError, match=r"dvs.draw_off \(pulse\): key 'duration': expected a number > 0, found -5"):
         mp.simulate(m, ol, dvs={"draw_off": {"kind": "pulse", "at": 1, "duration": -5, "size": 1}}, **base)
-    with pytest.raises(mp.SettingsError, match=r"mv_limits.heater_duty: unknown key 'hihg'"):
+    with pytest.raises(mp.SettingsError, match=r"mv_limits.heater_duty: key 'hihg': .*found the unknown key 'hihg'"):
         mp.simulate(m, ol, mv_limits={"heater_duty": {"hihg": 1}}, **base)
     with pytest.raises(mp.SettingsError, match=r"duration"):
         mp.simulate(m, ol, op=op, Ts=10.0, duration=-1.0)

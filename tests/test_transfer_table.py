@@ -191,10 +191,10 @@ controller = "mpc"
 def test_missing_and_unknown_variables_are_named(tmp_path):
     t = tomllib.loads(VARS + "[elements.y]\nvalve = { gain = 1.0 }\n")
     t["mvs"]["valve"].pop("high")
-    with pytest.raises(ModelError, match=r"test\.mvs\.valve\.high: expected the key 'high'"):
+    with pytest.raises(ModelError, match=r"key 'test\.mvs\.valve\.high': expected the key 'high'"):
         transfer_table_model(t, what="test")
     t = tomllib.loads(VARS + "[elements.z]\nvalve = { gain = 1.0 }\n")
-    with pytest.raises(ModelError, match=r"test\.elements\.z: expected the name of a CV \(y\)"):
+    with pytest.raises(ModelError, match=r"key 'test\.elements\.z': expected the name of a CV \(y\)"):
         transfer_table_model(t, what="test")
     t = tomllib.loads(VARS + "[elements.y]\n")
     with pytest.raises(ModelError, match="at least one element moving the CV 'y'"):

@@ -206,7 +206,7 @@ def test_pid_from_settings_tunes_the_blending_tank_on_rga_pairs():
                                                     ("concentration", "caustic_flow"),
                                                     ("temperature", "heater_duty")]
     assert all(lp.gain > 0 and lp.rule == "simc" for lp in ctl.loops)
-    with pytest.raises(mp.SettingsError, match=r"tank.pid: unknown key 'rulee'.*did you mean 'rule'"):
+    with pytest.raises(mp.SettingsError, match=r"tank.pid: key 'rulee': expected one of the keys .*did you mean 'rule'"):
         mp.pid_from_settings(tank, op0(tank), 10.0, {"rulee": "simc"}, what="tank.pid")
     with pytest.raises(mp.SettingsError, match=r"loop level<-water_flow: imc: .*integrating"):
         mp.pid_from_settings(tank, op0(tank), 10.0, {"rule": "imc", "pairs": [["level", "water_flow"]]})
@@ -224,7 +224,7 @@ def test_tuning_adds_half_a_sample_and_the_analyzer_delay_to_the_dead_time():
     assert loops[0].gain == pytest.approx(fits[0].time_constants[0] / (fits[0].gain * 2 * th))
     ctl = mp.pid_from_settings(m, op0(m), Ts, {"pairs": {"y": "u"}, "extra_dead_time": 30.0})
     assert ctl.loops[0].gain == pytest.approx(loops[0].gain, rel=1e-6)
-    with pytest.raises(mp.SettingsError, match=r"extra_dead_time: 'yy' is not a CV"):
+    with pytest.raises(mp.SettingsError, match=r"key 'extra_dead_time': 'yy' is not a CV"):
         mp.pid_from_settings(m, op0(m), Ts, {"pairs": {"y": "u"}, "extra_dead_time": {"yy": 1.0}})
 
 
@@ -232,7 +232,7 @@ def test_reaction_curve_method_is_a_setting_of_the_ziegler_nichols_rule_only():
     # the settings table refuses 'method' for another rule, naming the rule it belongs to
     # (error-message convention of the project; no outside source)
     tank = mp.make_model("blending_tank")
-    with pytest.raises(mp.SettingsError, match=r"tank.pid.method: applies to rule ziegler_nichols"):
+    with pytest.raises(mp.SettingsError, match=r"tank.pid: key 'method': applies to rule ziegler_nichols"):
         mp.pid_from_settings(tank, op0(tank), 10.0, {"rule": "simc", "method": "reaction_curve"},
                              what="tank.pid")
     with pytest.raises(mp.SettingsError, match=r"tank.pid.*method"):

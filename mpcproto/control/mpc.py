@@ -228,9 +228,10 @@ class PredictiveController(ControllerQP, ControllerRuntime):
                                 f"got {type(settings).__name__}.")
         for k in settings:
             if k not in SETTINGS_KEYS:
-                raise SettingsError(f"PredictiveController: unknown setting '{k}'"
-                                    f"{suggest(k, list(SETTINGS_KEYS))}; known settings are "
-                                    f"{sorted(SETTINGS_KEYS)}.")
+                known = sorted(SETTINGS_KEYS)
+                raise SettingsError(owner="PredictiveController", key=str(k),
+                                    expected=f"a known setting ({', '.join(known)})",
+                                    found=f"the unknown setting '{k}'{suggest(k, known)}")
         obj = cls(dmodel, **dict(settings))
         obj.validate()
         return obj

@@ -17,6 +17,7 @@ import numpy as np
 
 from ..exceptions import SettingsError
 from ..model import suggest
+from ..validation import Boolean, Interval, check, fail, shown
 from .condensed import DAQP_OPTIONS
 from .estimator import DISTURBANCE_MODELS
 from .mpc_results import FieldView
@@ -140,33 +141,24 @@ def default_move_weight(Ts: float, horizon: int) -> dict[str, Any]:
             "horizon_time": int(horizon) * Ts, "sample_time": Ts}
 
 
+_OWNER = "PredictiveController"
+
+
 def _err(key: str, expected: str, found: Any) -> SettingsError:
-    return SettingsError(f"PredictiveController: the '{key}' setting must be {expected}; got {found!r}.")
+    return fail(_OWNER, key, expected, shown(found))
 
 
 def _number(key, v, *, low=None, low_open=False, allow_inf=False) -> float:
-    if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)):
-        raise _err(key, "a number", v)
-    f = float(v)
-    if math.isnan(f) or (math.isinf(f) and not allow_inf):
-        raise _err(key, "a finite number" if not allow_inf else "a number (not NaN)", v)
-    if low is not None and (f < low or (low_open and f == low)):
-        raise _err(key, f"a number {'>' if low_open else '>='} {low:g}", v)
-    return f
+    return check(v, Interval(float, low, None, closed="right" if low_open else "both",
+                             allow_inf=allow_inf), owner=_OWNER, key=key)
 
 
 def _int(key, v, low=1) -> int:
-    if isinstance(v, bool) or not isinstance(v, (int, np.integer)):
-        raise _err(key, f"an int >= {low}", v)
-    if v < low:
-        raise _err(key, f"an int >= {low}", v)
-    return int(v)
+    return check(v, Interval(int, low, None), owner=_OWNER, key=key)
 
 
 def _bool(key, v) -> bool:
-    if not isinstance(v, (bool, np.bool_)):
-        raise _err(key, "true or false", v)
-    return bool(v)
+    return check(v, Boolean(), owner=_OWNER, key=key)
 
 
 @dataclass(frozen=True, eq=False, repr=False)
@@ -226,7 +218,8 @@ def resolve(ctrl) -> ResolvedSettings:
     N = _int("horizon", ctrl.horizon)
     M = N if ctrl.control_horizon is None else _int("control_horizon", ctrl.control_horizon)
     if M > N:
-        raise _err("control_horizon", f"an int between 1 and the horizon ({N})", ctrl.control_horizon)
+        raise _err("control_horizon", f"an integer between 1 and the horizon ({N})",
+                   ctrl.control_horizon)
     r: dict[str, Any] = {"N": N, "M": M}
     cvs = per_var("cv", ctrl.cv, m.cv_names, CV_KEYS)
     mvs = per_var("mv", ctrl.mv, m.mv_names, MV_KEYS)
@@ -302,9 +295,9 @@ def resolve(ctrl) -> ResolvedSettings:
              f"to use that solver's settings)" if ctrl.solver == "auto" else "")
     for k in opts:
         if k not in known:
-            raise SettingsError(f"PredictiveController: unknown {kind} option "
-                                f"'solver_options.{k}'{suggest(k, known)}{chose}; known: "
-                                f"{sorted(known)}.")
+            raise fail(_OWNER, f"solver_options.{k}",
+                       f"a {kind} option ({', '.join(sorted(known))})",
+                       f"the unknown option '{k}'{suggest(k, known)}", chose.strip(" ()") or None)
     _number("state_noise", ctrl.state_noise, low=0)
     _int("history", ctrl.history)
     _number("priority_ratio", ctrl.priority_ratio, low=1, low_open=True)
@@ -356,19 +349,19 @@ def per_var(role: str, given, names, keys: Mapping[str, Any]) -> list[dict[str, 
         raise _err(role, f"a mapping of {role.upper()} name to a dict of settings", given)
     for n, row in given.items():
         if n not in names:
-            raise SettingsError(f"PredictiveController: '{role}' names an unknown {role.upper()} "
-                                f"'{n}'{suggest(n, list(names))}; the model's {role.upper()}s are "
-                                f"{list(names)}.")
+            raise fail(_OWNER, f"{role}.{n}", f"the name of a {role.upper()} of the model "
+                       f"({', '.join(names)})", f"'{n}'{suggest(n, list(names))}")
         if not isinstance(row, Mapping):
             raise _err(f"{role}.{n}", "a mapping of setting names to values", row)
         for k in row:
             if k in _RENAMED_KEYS:
-                raise SettingsError(f"PredictiveController: the setting '{role}.{n}.{k}' is now "
-                                    f"called '{_RENAMED_KEYS[k]}'; rename the key "
-                                    f"'{role}.{n}.{k}' to '{role}.{n}.{_RENAMED_KEYS[k]}'.")
+                raise fail(_OWNER, f"{role}.{n}.{k}", f"the setting '{_RENAMED_KEYS[k]}' (the "
+                           f"new name of '{k}')", f"the old name '{k}'",
+                           f"rename the key '{role}.{n}.{k}' to '{role}.{n}.{_RENAMED_KEYS[k]}'")
             if k not in keys:
-                raise SettingsError(f"PredictiveController: unknown setting '{role}.{n}.{k}'"
-                                    f"{suggest(k, list(keys))}; known: {sorted(keys)}.")
+                raise fail(_OWNER, f"{role}.{n}.{k}", f"a setting of a {role.upper()} "
+                           f"({', '.join(sorted(keys))})", f"the unknown setting "
+                           f"'{k}'{suggest(k, list(keys))}")
     out = []
     for n in names:
         row = dict(keys)

@@ -224,7 +224,7 @@ def identify_over_loops(plant: Any, op: OperatingPoint, Ts: float, loops: Sequen
             try:
                 f = fit_step(data, c)
             except SettingsError as exc:
-                if "does not rise above the noise" in str(exc):
+                if exc.code == "no_response":
                     els[c] = None              # no effect of this input on this CV
                     continue
                 raise

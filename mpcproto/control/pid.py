@@ -85,15 +85,18 @@ class PIDLoop:
 
         def chk(name: str, v: Any, cond, expect: str) -> None:
             if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v) or not cond(v):
-                raise SettingsError(f"{w}: '{name}' must be {expect}; found {v!r}.")
+                raise SettingsError(owner=w, key=name, expected=expect, found=repr(v))
 
         chk("gain", self.gain, lambda v: math.isfinite(v) and v != 0, "a finite non-zero number")
-        chk("integral_time", self.integral_time, lambda v: v > 0, "> 0 (inf = no integral action)")
-        chk("derivative_time", self.derivative_time, lambda v: math.isfinite(v) and v >= 0, ">= 0")
-        chk("setpoint_weight", self.setpoint_weight, lambda v: 0 <= v <= 1, "in [0, 1]")
-        chk("derivative_filter", self.derivative_filter, lambda v: math.isfinite(v) and v > 0, "> 0")
+        chk("integral_time", self.integral_time, lambda v: v > 0,
+            "a number > 0 (inf = no integral action)")
+        chk("derivative_time", self.derivative_time, lambda v: math.isfinite(v) and v >= 0,
+            "a number >= 0")
+        chk("setpoint_weight", self.setpoint_weight, lambda v: 0 <= v <= 1, "a number in [0, 1]")
+        chk("derivative_filter", self.derivative_filter, lambda v: math.isfinite(v) and v > 0,
+            "a number > 0")
         if self.tracking_time is not None:
-            chk("tracking_time", self.tracking_time, lambda v: v > 0, "> 0")
+            chk("tracking_time", self.tracking_time, lambda v: v > 0, "a number > 0")
 
     @property
     def tt(self) -> float:
@@ -124,18 +127,20 @@ def pid_loop_from_spec(spec: Mapping[str, Any] | PIDLoop, *, what: str) -> PIDLo
     if isinstance(spec, PIDLoop):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"{what}: a PID loop must be a table/dict; found {spec!r}.")
+        raise SettingsError(f"a PID loop must be a table/dict; found {spec!r}.", owner=what)
     for k in spec:
         if k not in _LOOP_KEYS:
-            raise SettingsError(f"{what}: unknown key '{k}'{suggest(str(k), _LOOP_KEYS)}; allowed "
-                                f"keys: {', '.join(_LOOP_KEYS)}.")
+            raise SettingsError(owner=what, key=str(k),
+                                expected=f"one of the keys {', '.join(_LOOP_KEYS)}",
+                                found=f"the unknown key '{k}'{suggest(str(k), _LOOP_KEYS)}")
     for k in ("cv", "mv", "gain"):
         if k not in spec:
-            raise SettingsError(f"{what}: a PID loop needs '{k}'; found keys: {', '.join(spec)}.")
+            raise SettingsError(owner=what, key=k, expected=f"the key '{k}' (a PID loop needs it)",
+                                found=f"keys {', '.join(spec)}")
     for k in ("cv", "mv"):
         if not isinstance(spec[k], str) or not spec[k]:
-            raise SettingsError(f"{what}: '{k}' must be a variable name (a string); found "
-                                f"{spec[k]!r:.60}.")
+            raise SettingsError(owner=what, key=k, expected="a variable name (a string)",
+                                found=f"{spec[k]!r:.60}")
     kw = dict(spec)
     if kw.get("integral_time") is None:
         kw.pop("integral_time", None)
@@ -147,13 +152,15 @@ def pid_loop_from_spec(spec: Mapping[str, Any] | PIDLoop, *, what: str) -> PIDLo
                     raise TypeError
                 kw[k] = float(kw[k])
             except (TypeError, ValueError, OverflowError):
-                raise SettingsError(f"{what}: '{k}' must be a number; found {spec[k]!r:.60}.") from None
+                raise SettingsError(owner=what, key=k, expected="a number",
+                                    found=f"{spec[k]!r:.60}") from None
     if "on_fresh" in kw and not isinstance(kw["on_fresh"], bool):
-        raise SettingsError(f"{what}: 'on_fresh' must be true or false; found {kw['on_fresh']!r}.")
+        raise SettingsError(owner=what, key="on_fresh", expected="true or false",
+                            found=repr(kw["on_fresh"]))
     try:
         return PIDLoop(**kw)
     except SettingsError as exc:
-        raise SettingsError(f"{what}: {exc}") from None
+        raise exc.replace(owner=what) from None
 
 
 @dataclass

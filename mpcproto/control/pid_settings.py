@@ -12,7 +12,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from .._specs import as_float, choice, refuse_unknown_keys, shown
-from ..exceptions import SettingsError
+from ..exceptions import SettingsError, join_key
 from ..model import suggest
 from .pid import PIDLoop
 from .tuning import RULES, ZN_METHODS, ProcessFit, rule_on_fit, tune_pid_loops
@@ -45,7 +45,7 @@ def _check_number(v: Any, where: str, *, low: float, strict: bool, high: float =
     if not ok:
         rel = ">" if strict else ">="
         rng = f"{rel} {low:g}" + (f" and <= {high:g}" if math.isfinite(high) else "")
-        raise SettingsError(f"{where}: must be a finite number {rng}; found {shown(v)}.")
+        raise SettingsError(owner=where, expected=f"a finite number {rng}", found=shown(v))
     return float(f)
 
 
@@ -54,27 +54,38 @@ def _check_per_cv(settings: Mapping[str, Any], key: str, model: Any, what: str, 
 
     v = settings[key]
     if not isinstance(v, Mapping):
-        check(v, f"{what}.{key}")
+        check(v, join_key(what, key))
         return
     names = list(getattr(model, "cv_names", ()))
     for c, x in v.items():
         if not isinstance(c, str) or (c != "*" and c not in names):
-            raise SettingsError(f"{what}.{key}: {shown(c)} is not a CV of model "
+            raise SettingsError(f"{shown(c)} is not a CV of model "
                                 f"'{getattr(model, 'name', '?')}'{suggest(str(c), names)}; expected "
                                 f"one value or a table keyed by CV names ({', '.join(names)} or "
-                                f"'*').")
-        check(x, f"{what}.{key}.{c}")
+                                f"'*').", owner=join_key(what, key))
+        check(x, join_key(join_key(what, key), str(c)))
 
 
 def _check_settings(model: Any, settings: Mapping[str, Any], what: str) -> None:
     """Types and ranges of every key of :func:`pid_from_settings` (before any step test)."""
+    try:
+        _check_settings_below(model, settings)
+    except SettingsError as e:
+        # the checks below are given the key path of their entry as the owner: it goes in
+        # front of the error's key, below the PID settings (*what*)
+        raise e.replace(owner=what, key=join_key(e.owner, e.key)) from None
+
+
+def _check_settings_below(model: Any, settings: Mapping[str, Any]) -> None:
+    what = None
 
     rule = choice(settings.get("rule", "simc"), RULES, what=what, key="rule", noun="rule")
     for key in ("tau_c", "lam", "mode", "method"):
         if key in settings and key not in _RULE_KEYS[rule]:
             users = [r for r, ks in _RULE_KEYS.items() if key in ks]
-            raise SettingsError(f"{what}.{key}: applies to rule {' / '.join(users)}, but the rule "
-                                f"is '{rule}'; remove '{key}' or set rule = '{users[0]}'.")
+            raise SettingsError(f"applies to rule {' / '.join(users)}, but the rule "
+                                f"is '{rule}'; remove '{key}' or set rule = '{users[0]}'.",
+                                owner=key)
     pos = lambda v, w: _check_number(v, w, low=0.0, strict=True)  # noqa: E731
     if "tau_c" in settings:
         _check_per_cv(settings, "tau_c", model, what, pos)
@@ -82,35 +93,36 @@ def _check_settings(model: Any, settings: Mapping[str, Any], what: str) -> None:
         _check_per_cv(settings, "lam", model, what, pos)
     if "mode" in settings:
         _check_per_cv(settings, "mode", model, what,
-                      lambda v, w: choice(v, _MODES, what=w.rsplit(".", 1)[0], key=w.rsplit(".", 1)[1],
-                                          noun="mode"))
+                      lambda v, w: choice(v, _MODES, what=w, key=None, noun="mode"))
     if "method" in settings:
         _check_per_cv(settings, "method", model, what,
-                      lambda v, w: choice(v, ZN_METHODS, what=w.rsplit(".", 1)[0],
-                                          key=w.rsplit(".", 1)[1], noun="method"))
+                      lambda v, w: choice(v, ZN_METHODS, what=w, key=None, noun="method"))
     choice(settings.get("fit", "auto"), FIT_CHOICES, what=what, key="fit", noun="fit")
     if "step_fraction" in settings:
-        _check_number(settings["step_fraction"], f"{what}.step_fraction", low=0.0, strict=True,
+        _check_number(settings["step_fraction"], "step_fraction", low=0.0, strict=True,
                       high=0.5)
     if settings.get("test_duration") is not None:
-        _check_number(settings["test_duration"], f"{what}.test_duration", low=0.0, strict=True)
+        _check_number(settings["test_duration"], "test_duration", low=0.0, strict=True)
     if "extra_dead_time" in settings:
         _check_per_cv(settings, "extra_dead_time", model, what,
                       lambda v, w: _check_number(v, w, low=0.0, strict=False))
     if "setpoint_weight" in settings:
-        _check_number(settings["setpoint_weight"], f"{what}.setpoint_weight", low=0.0, strict=False,
+        _check_number(settings["setpoint_weight"], "setpoint_weight", low=0.0, strict=False,
                       high=1.0)
     if "derivative_filter" in settings:
-        _check_number(settings["derivative_filter"], f"{what}.derivative_filter", low=0.0, strict=True)
+        _check_number(settings["derivative_filter"], "derivative_filter", low=0.0, strict=True)
     if "on_fresh" in settings and not isinstance(settings["on_fresh"], bool):
-        raise SettingsError(f"{what}.on_fresh: must be true or false; found {shown(settings['on_fresh'])}.")
+        raise SettingsError(owner=None, key="on_fresh", expected="true or false",
+                            found=shown(settings["on_fresh"]))
 
 
-def _name(v: Any, where: str, role: str, names: Sequence[str]) -> str:
+def _name(v: Any, key: str, role: str, names: Sequence[str], what: str) -> str:
 
     if not isinstance(v, str):
-        raise SettingsError(f"{where}: must be the name of a{'n' if role == 'MV' else ''} {role} "
-                            f"(a string: {', '.join(names) or '...'}); found {shown(v)}.")
+        article = "an" if role == "MV" else "a"
+        raise SettingsError(owner=what, key=key, found=shown(v),
+                            expected=f"the name of {article} {role} (a string: "
+                                     f"{', '.join(names) or '...'})")
     return v
 
 
@@ -147,7 +159,7 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     from .pid import PIDController, pid_loop_from_spec, suggest_pairing
 
     if not isinstance(settings, Mapping):
-        raise SettingsError(f"{what}: PID settings must be a table; found {shown(settings)}.")
+        raise SettingsError(f"PID settings must be a table; found {shown(settings)}.", owner=what)
     refuse_unknown_keys(settings, _SETTINGS_KEYS, what=what)
     cv_names = list(getattr(model, "cv_names", ()))
     mv_names = list(getattr(model, "mv_names", ()))
@@ -156,45 +168,49 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     loop_specs = settings.get("loops")
     if loop_specs is not None:
         if not isinstance(loop_specs, (list, tuple)) or not loop_specs:
-            raise SettingsError(f"{what}.loops: expected a non-empty list of loop tables; found "
-                                f"{shown(loop_specs)}.")
+            raise SettingsError(owner=what, key="loops", expected="a non-empty list of loop tables",
+                                found=shown(loop_specs))
         for i, spec in enumerate(loop_specs):
-            w = f"{what}.loops[{i}]"
+            w = f"loops[{i}]"
             if isinstance(spec, PIDLoop):
                 given[(spec.cv, spec.mv)] = spec
                 continue
             if not isinstance(spec, Mapping):
-                raise SettingsError(f"{w}: expected a loop table (cv, mv and gain or none to tune "
-                                    f"it); found {shown(spec)}.")
+                raise SettingsError(owner=what, key=w, expected="a loop table (cv, mv and gain or "
+                                    "none to tune it)", found=shown(spec))
             for k, names, role in (("cv", cv_names, "CV"), ("mv", mv_names, "MV")):
                 if k not in spec:
-                    raise SettingsError(f"{w}: needs '{k}'; found keys: "
-                                        f"{', '.join(map(str, spec)) or '(none)'}.")
-                _name(spec[k], f"{w}.{k}", role, names)
+                    raise SettingsError(owner=what, key=f"{w}.{k}", expected=f"the key '{k}'",
+                                        found=f"keys {', '.join(map(str, spec)) or '(none)'}")
+                _name(spec[k], f"{w}.{k}", role, names, what)
             if "gain" not in spec:
                 for k in spec:
                     if k not in ("cv", "mv"):
                         raise SettingsError(
-                            f"{w}: a loop without 'gain' is tuned by the rule and takes only cv "
+                            f"a loop without 'gain' is tuned by the rule and takes only cv "
                             f"and mv; found {shown(k)}. Give 'gain' (and the other settings) or "
-                            f"set them at the top of the PID settings.")
+                            f"set them at the top of the PID settings.", owner=what, key=f"{w}.{k}")
                 to_tune.append((spec["cv"], spec["mv"]))
             else:
-                lp = pid_loop_from_spec(spec, what=w)
+                try:
+                    lp = pid_loop_from_spec(spec, what=what)
+                except SettingsError as e:
+                    raise e.replace(owner=what).at(w) from None
                 given[(lp.cv, lp.mv)] = lp
     pairs_spec = settings.get("pairs")
     if pairs_spec is not None:
-        w = f"{what}.pairs"
+        w = "pairs"
         if isinstance(pairs_spec, Mapping):
-            pairs = [(_name(c, f"{w} key", "CV", cv_names), _name(m, f"{w}.{c}", "MV", mv_names))
-                     for c, m in pairs_spec.items()]
+            pairs = [(_name(c, f"{w}.{c}", "CV", cv_names, what),
+                      _name(m, f"{w}.{c}", "MV", mv_names, what)) for c, m in pairs_spec.items()]
         elif isinstance(pairs_spec, (list, tuple)) and pairs_spec and all(
                 isinstance(p, (list, tuple)) and len(p) == 2 for p in pairs_spec):
-            pairs = [(_name(c, f"{w}[{i}][0]", "CV", cv_names), _name(m, f"{w}[{i}][1]", "MV", mv_names))
+            pairs = [(_name(c, f"{w}[{i}][0]", "CV", cv_names, what),
+                      _name(m, f"{w}[{i}][1]", "MV", mv_names, what))
                      for i, (c, m) in enumerate(pairs_spec)]
         else:
-            raise SettingsError(f"{w}: expected a non-empty list of [cv, mv] pairs or a table "
-                                f"{{cv = mv}}; found {shown(pairs_spec)}.")
+            raise SettingsError(owner=what, key=w, expected="a non-empty list of [cv, mv] pairs or "
+                                "a table {cv = mv}", found=shown(pairs_spec))
         to_tune += [p for p in pairs if p not in given and p not in to_tune]
     _check_settings(model, settings, what)
     if any(k in settings for k in _STRUCTURE_KEYS):
@@ -205,8 +221,9 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     for i, (c, m) in enumerate(to_tune):
         for v, names, role in ((c, cv_names, "CV"), (m, mv_names, "MV")):
             if v not in names:
-                raise SettingsError(f"{what}: pair {i} ({c}, {m}): '{v}' is not a {role} of model "
-                                    f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.")
+                raise SettingsError(f"pair {i} ({c}, {m}): '{v}' is not a {role} of model "
+                                    f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.",
+                                    owner=what)
     structures = {k: settings[k] for k in _STRUCTURE_KEYS if k in settings}
     if pairs_spec is None and loop_specs is None and not structures:
         from ..linear import linearize
@@ -258,4 +275,4 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     except SettingsError as exc:
         if str(exc).startswith(what):
             raise
-        raise SettingsError(f"{what}: {exc}") from None
+        raise SettingsError(f"{exc}", owner=what) from None

@@ -93,24 +93,25 @@ def _prep(t, y, at, size, y0, what):
     t, y = paired_series(t, y, what=what, finite_y=False)
     fs = as_float(size)
     if fs is None or not math.isfinite(fs) or fs == 0:
-        raise SettingsError(f"{what}: the step size must be finite and non-zero; found {shown(size)}.")
+        raise SettingsError(f"the step size must be finite and non-zero; found {shown(size)}.",
+                            owner=what)
     fa = as_float(at)
     if fa is None or not math.isfinite(fa):
-        raise SettingsError(f"{what}: 'at' (the time of the step) must be a finite number; found "
-                            f"{shown(at)}.")
+        raise SettingsError(f"'at' (the time of the step) must be a finite number; found "
+                            f"{shown(at)}.", owner=what)
     if y0 is not None and (as_float(y0) is None or not math.isfinite(as_float(y0))):
-        raise SettingsError(f"{what}: 'y0' must be a finite number or None; found {shown(y0)}.")
+        raise SettingsError(f"'y0' must be a finite number or None; found {shown(y0)}.", owner=what)
     size, at = fs, fa
     ok = np.isfinite(y)
     if ok.sum() < 5:
-        raise SettingsError(f"{what}: fewer than 5 finite samples of the response.")
+        raise SettingsError("fewer than 5 finite samples of the response.", owner=what)
     t, y = t[ok], y[ok]
     if y0 is None:
         before = y[t < at]
         y0 = float(before.mean()) if before.size else float(y[0])
     after = t >= at
     if after.sum() < 5:
-        raise SettingsError(f"{what}: fewer than 5 samples after the step at t={at:g}.")
+        raise SettingsError(f"fewer than 5 samples after the step at t={at:g}.", owner=what)
     return t[after] - at, (y[after] - y0) / size, y0
 
 
@@ -127,8 +128,10 @@ def _shape_checks(s, r, what, allow_integrating=False):
     noise = _noise_level(r)
     span = float(np.max(np.abs(r))) if r.size else 0.0
     if span <= 3 * noise or span == 0:
-        raise SettingsError(f"{what}: the response does not rise above the noise (peak "
-                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.")
+        raise SettingsError(f"the response does not rise above the noise (peak "
+                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.",
+                            owner=what,
+                            code="no_response")
     # integrating: still moving at the end at a rate comparable to the mean rate
     ts = s[int(0.8 * n):]
     slope = np.polyfit(ts, tail, 1)[0] if ts.size > 2 else 0.0
@@ -139,9 +142,9 @@ def _shape_checks(s, r, what, allow_integrating=False):
     inverse = bool(np.min(sign * r) < -max(5 * noise, 0.02 * abs(final)))
     if integrating and not allow_integrating:
         raise SettingsError(
-            f"{what}: the response is still ramping at the end (slope {slope:.3g} per unit step "
+            f"the response is still ramping at the end (slope {slope:.3g} per unit step "
             f"per time unit): an integrating process (a level?) or a test too short to settle. "
-            f"Use fit_integrating(), or run the test longer.")
+            f"Use fit_integrating(), or run the test longer.", owner=what, code="integrating")
     return final, noise, inverse
 
 
@@ -152,7 +155,7 @@ def _fit(kind: str, t: Sequence[float], y: Sequence[float], at: float, size: flo
     s, r, _ = _prep(t, y, at, size, y0, what)
     _, _, inverse = _shape_checks(s, r, what, allow_integrating=kind == "integrating")
     if kind == "integrating" and np.polyfit(s[s.size // 2:], r[s.size // 2:], 1)[0] == 0:
-        raise SettingsError(f"{what}: the response has no slope; it is not integrating.")
+        raise SettingsError("the response has no slope; it is not integrating.", owner=what)
     # r is the response per unit step measured from y0 at times since the step
     f = fit_step_response(s, r, size=1.0, t_step=0.0, y0=0.0, kind=kind, what=what)
     return replace(f, rmse=f.rmse * abs(size), noise_level=f.noise_level * abs(size),
@@ -194,7 +197,7 @@ def fit_step(data: StepData, cv: str, *, kind: str = "auto") -> ProcessFit:
         try:
             return fit_fopdt(data.t, data.y[cv], **args)
         except SettingsError as exc:
-            if "integrating" not in str(exc):
+            if exc.code != "integrating":
                 raise
             return fit_integrating(data.t, data.y[cv], **args)
     if kind not in fits:

@@ -83,7 +83,7 @@ SELECTS = ("min", "max")
 
 def _num(v: Any, where: str, cond, expect: str) -> float:
     if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v) or not cond(v):
-        raise SettingsError(f"{where}: must be {expect}; found {v!r:.60}.")
+        raise SettingsError(f"must be {expect}; found {v!r:.60}.", owner=where)
     return float(v)
 
 
@@ -109,8 +109,8 @@ class Feedforward:
             _num(getattr(self, k), f"{w}: '{k}'", lambda v: math.isfinite(v) and v >= 0,
                  "a finite number >= 0")
         if self.lead > 0 and self.lag == 0:
-            raise SettingsError(f"{w}: a lead ({self.lead:g}) needs a lag > 0 (a pure lead is not "
-                                f"realizable); give 'lag' too or set lead = 0.")
+            raise SettingsError(f"a lead ({self.lead:g}) needs a lag > 0 (a pure lead is not "
+                                f"realizable); give 'lag' too or set lead = 0.", owner=w)
 
     def as_dict(self) -> dict[str, Any]:
         d = {"cv": self.cv, "source": self.source, "gain": self.gain, "lead": self.lead, "lag": self.lag,
@@ -165,22 +165,22 @@ class Selector:
     def __post_init__(self) -> None:
         w = f"selector on '{self.mv}'"
         if self.select not in SELECTS:
-            raise SettingsError(f"{w}: 'select' must be one of min, max; found {self.select!r}"
-                                f"{suggest(str(self.select), SELECTS)}.")
+            raise SettingsError(f"'select' must be one of min, max; found {self.select!r}"
+                                f"{suggest(str(self.select), SELECTS)}.", owner=w)
         if len(self.loops) < 2:
-            raise SettingsError(f"{w}: needs at least two loops; found {len(self.loops)}.")
+            raise SettingsError(f"needs at least two loops; found {len(self.loops)}.", owner=w)
         for lp in self.loops:
             if lp.mv != self.mv:
-                raise SettingsError(f"{w}: every loop must move '{self.mv}'; loop on '{lp.cv}' "
-                                    f"moves '{lp.mv}'.")
+                raise SettingsError(f"every loop must move '{self.mv}'; loop on '{lp.cv}' "
+                                    f"moves '{lp.mv}'.", owner=w)
         refs = self.references or ("setpoint",) * len(self.loops)
         if len(refs) != len(self.loops):
-            raise SettingsError(f"{w}: one reference per loop expected; found {len(refs)} for "
-                                f"{len(self.loops)} loops.")
+            raise SettingsError(f"one reference per loop expected; found {len(refs)} for "
+                                f"{len(self.loops)} loops.", owner=w)
         for r in refs:
             if r not in REFERENCES:
-                raise SettingsError(f"{w}: a reference must be one of {', '.join(REFERENCES)}; "
-                                    f"found {r!r}{suggest(str(r), REFERENCES)}.")
+                raise SettingsError(f"a reference must be one of {', '.join(REFERENCES)}; "
+                                    f"found {r!r}{suggest(str(r), REFERENCES)}.", owner=w)
         object.__setattr__(self, "references", tuple(refs))
 
     def as_dict(self) -> dict[str, Any]:
@@ -206,8 +206,8 @@ class Valve:
         for k in ("at_start", "at_end"):
             _num(getattr(self, k), f"{w}: '{k}'", math.isfinite, "a finite number")
         if not self.end > self.start:
-            raise SettingsError(f"{w}: 'end' must be above 'start'; found start = {self.start:g}, "
-                                f"end = {self.end:g}.")
+            raise SettingsError(f"'end' must be above 'start'; found start = {self.start:g}, "
+                                f"end = {self.end:g}.", owner=w)
 
     def value(self, c: float) -> float:
         """The valve's MV for controller output *c* (%)."""
@@ -339,30 +339,32 @@ class RegulatoryController:
 
         def cv(name: str, where: str) -> int:
             if name not in self.cv_names:
-                raise SettingsError(f"{where}: '{name}' is not a CV of the model"
-                                    f"{suggest(name, self.cv_names)}; CVs: {', '.join(self.cv_names)}.")
+                raise SettingsError(f"'{name}' is not a CV of the model"
+                                    f"{suggest(name, self.cv_names)}; CVs: {', '.join(self.cv_names)}.",
+                                    owner=where)
             return self.cv_names.index(name)
 
         def mv(name: str, where: str) -> int:
             if name not in self.mv_names:
-                raise SettingsError(f"{where}: '{name}' is not an MV of the model"
-                                    f"{suggest(name, self.mv_names)}; MVs: {', '.join(self.mv_names)}.")
+                raise SettingsError(f"'{name}' is not an MV of the model"
+                                    f"{suggest(name, self.mv_names)}; MVs: {', '.join(self.mv_names)}.",
+                                    owner=where)
             if name in owner:
-                raise SettingsError(f"{where}: MV '{name}' is already moved by {owner[name]}; "
+                raise SettingsError(f"MV '{name}' is already moved by {owner[name]}; "
                                     f"each MV may be moved by one structure only (use a selector "
-                                    f"to share an MV).")
+                                    f"to share an MV).", owner=where)
             owner[name] = where
             return self.mv_names.index(name)
 
         def dv(name: str, where: str) -> int:
             if name not in self.dv_names:
-                raise SettingsError(f"{where}: '{name}' is not a DV of the model"
+                raise SettingsError(f"'{name}' is not a DV of the model"
                                     f"{suggest(name, self.dv_names)}; DVs: "
-                                    f"{', '.join(self.dv_names) or '(none)'}.")
+                                    f"{', '.join(self.dv_names) or '(none)'}.", owner=where)
             if name not in self.measured_dvs:
-                raise SettingsError(f"{where}: DV '{name}' is not measured; a controller can only "
+                raise SettingsError(f"DV '{name}' is not measured; a controller can only "
                                     f"use a measured DV (measured: "
-                                    f"{', '.join(self.measured_dvs) or 'none'}).")
+                                    f"{', '.join(self.measured_dvs) or 'none'}).", owner=where)
             return self.dv_names.index(name)
 
         blocks: list[_Block] = []
@@ -408,11 +410,12 @@ class RegulatoryController:
             w = f"feedforward {f.cv}<-{f.source}"
             b = plain.get(f.cv)
             if b is None:
-                raise SettingsError(f"{w}: there is no plain loop (or cascade inner loop) on "
-                                    f"'{f.cv}' to add it to; loops on: {', '.join(plain) or 'none'}.")
+                raise SettingsError(f"there is no plain loop (or cascade inner loop) on "
+                                    f"'{f.cv}' to add it to; loops on: {', '.join(plain) or 'none'}.",
+                                    owner=w)
             if f.source in self.mv_names:
                 if f.source == b.loop.mv:
-                    raise SettingsError(f"{w}: the source is the loop's own MV.")
+                    raise SettingsError("the source is the loop's own MV.", owner=w)
                 b.ff.append(_FFState(f, self.mv_names.index(f.source), "mv"))
             else:
                 b.ff.append(_FFState(f, dv(f.source, w)))

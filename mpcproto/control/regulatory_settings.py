@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from .._specs import choice, number, refuse_unknown_keys, shown
-from ..exceptions import SettingsError
+from ..exceptions import SettingsError, join_key
 from ..model import suggest
 from .pid import PIDLoop
 from .regulatory import (REFERENCES, SELECTS, Cascade, Feedforward, Ratio, RegulatoryController,
@@ -54,34 +54,36 @@ _VALVE_KEYS = ("mv", "start", "end", "at_start", "at_end")
 
 def _table(v: Any, where: str, expect: str) -> Mapping[str, Any]:
     if not isinstance(v, Mapping) or not v:
-        raise SettingsError(f"{where}: expected {expect}; found {shown(v)}.")
+        raise SettingsError(f"expected {expect}; found {shown(v)}.", owner=where)
     return v
 
 
 def _string(spec: Mapping[str, Any], key: str, where: str, names: Sequence[str], role: str) -> str:
     if key not in spec:
-        raise SettingsError(f"{where}: needs '{key}' (the name of a{'n' if role[0] in 'AEIMO' else ''} "
-                            f"{role}); found keys: {', '.join(map(str, spec)) or '(none)'}.")
+        raise SettingsError(owner=where, key=key, expected=f"'{key}' (the name of "
+                            f"a{'n' if role[0] in 'AEIMO' else ''} {role})",
+                            found=f"keys {', '.join(map(str, spec)) or '(none)'}")
     v = spec[key]
     if not isinstance(v, str) or v not in names:
-        raise SettingsError(f"{where}.{key}: must be the name of a{'n' if role[0] in 'AEIMO' else ''} "
-                            f"{role} ({', '.join(names) or 'none'}); found {shown(v)}"
-                            f"{suggest(str(v), names) if isinstance(v, str) else ''}.")
+        hint = suggest(str(v), names) if isinstance(v, str) else ""
+        raise SettingsError(owner=where, key=key, found=f"{shown(v)}{hint}",
+                            expected=f"the name of a{'n' if role[0] in 'AEIMO' else ''} {role} "
+                                     f"({', '.join(names) or 'none'})")
     return v
 
 
 def _key_cv(c: Any, where: str, cvs: Sequence[str]) -> str:
     if not isinstance(c, str) or c not in cvs:
-        raise SettingsError(f"{where}: {shown(c)} is not a CV of the model"
+        raise SettingsError(f"{shown(c)} is not a CV of the model"
                             f"{suggest(str(c), cvs)}; expected a table keyed by CV names "
-                            f"({', '.join(cvs)}).")
+                            f"({', '.join(cvs)}).", owner=where)
     return c
 
 
-def _cv_tables(structures: Mapping[str, Any], key: str, what: str, cvs: Sequence[str],
+def _cv_tables(structures: Mapping[str, Any], key: str, cvs: Sequence[str],
                inner: str, allowed: Sequence[str]):
     """``(cv, key path, table)`` for each entry of a structure keyed by CV names, checked."""
-    w0 = f"{what}.{key}"
+    w0 = key
     for c, spec in _table(structures[key], w0, f"a table {{cv = {inner}}}").items():
         _key_cv(c, w0, cvs)
         w = f"{w0}.{c}"
@@ -95,8 +97,8 @@ def _table_list(spec: Mapping[str, Any], key: str, where: str, least: int, items
     """``(key path, table)`` for each table of the list ``spec[key]`` (at least *least*)."""
     lst = spec.get(key)
     if not isinstance(lst, (list, tuple)) or len(lst) < least:
-        raise SettingsError(f"{where}.{key}: expected a list of at least "
-                            f"{'two' if least == 2 else 'one'} {items}; found {shown(lst)}.")
+        raise SettingsError(owner=where, key=key, expected=f"a list of at least "
+                            f"{'two' if least == 2 else 'one'} {items}", found=shown(lst))
     for i, item in enumerate(lst):
         wi = f"{where}.{key}[{i}]"
         item = _table(item, wi, f"a table ({items})")
@@ -107,11 +109,20 @@ def _table_list(spec: Mapping[str, Any], key: str, where: str, least: int, items
 def check_structure_settings(model: Any, structures: Mapping[str, Any], *, what: str) -> None:
     """Types, names and ranges of the structure keys of the PID settings (``feedforward``,
     ``ratio``, ``cascade``, ``override``, ``split_range``), before any step test; a wrong one
-    raises :class:`SettingsError` starting with *what* and the key path."""
+    raises :class:`SettingsError` of owner *what* at the key path."""
+    try:
+        _check_structures(model, structures)
+    except SettingsError as e:
+        # every check below is given the key path of its entry (relative to the PID settings)
+        # as its owner: that path goes in front of the error's key
+        raise e.replace(owner=what, key=join_key(e.owner, e.key)) from None
+
+
+def _check_structures(model: Any, structures: Mapping[str, Any]) -> None:
     cvs, mvs = list(model.cv_names), list(model.mv_names)
     mdv = list(model.measured_dv_names)
     if "feedforward" in structures:
-        w0 = f"{what}.feedforward"
+        w0 = "feedforward"
         for c, specs in _table(structures["feedforward"], w0,
                                "a table {cv = {dv = ...}} (feedforward onto the loop on that CV)").items():
             _key_cv(c, w0, cvs)
@@ -122,78 +133,83 @@ def check_structure_settings(model: Any, structures: Mapping[str, Any], *, what:
                                        "lag, dead_time}")
                 refuse_unknown_keys(spec, _FF_KEYS, what=w)
                 if ("dv" in spec) == ("mv" in spec):
-                    raise SettingsError(f"{w}: give exactly one source, 'dv' (a measured DV) or "
+                    raise SettingsError(f"give exactly one source, 'dv' (a measured DV) or "
                                         f"'mv' (another loop's flow); found "
-                                        f"{'both' if 'dv' in spec else 'neither'}.")
+                                        f"{'both' if 'dv' in spec else 'neither'}.", owner=w)
                 if "dv" in spec:
                     _string(spec, "dv", w, mdv, "measured DV")
                 else:
                     _string(spec, "mv", w, mvs, "MV")
                 hand = [k for k in ("lead", "lag", "dead_time") if k in spec]
                 if hand and "gain" not in spec:
-                    raise SettingsError(f"{w}: '{hand[0]}' is given by hand, so 'gain' must be too "
-                                        f"(leave all four out to design them from the model).")
+                    raise SettingsError(owner=w, key="gain", expected=f"'gain' as well ('{hand[0]}' "
+                                        f"is given by hand, so 'gain' must be too)", found="nothing",
+                                        fix="give it, or leave all four out to design them "
+                                            "from the model")
                 if "gain" in spec:
                     g = number(spec, "gain", what=w)
                     if g == 0:
-                        raise SettingsError(f"{w}: 'gain' must be non-zero; found 0.")
+                        raise SettingsError(owner=w, key="gain", expected="a non-zero gain",
+                                            found="0")
                 for k in hand:
                     number(spec, k, what=w, low=0.0)
                 if spec.get("lead", 0) > 0 and spec.get("lag", 0) == 0:
-                    raise SettingsError(f"{w}: a 'lead' needs a 'lag' > 0 (a pure lead is not "
-                                        f"realizable); found lead = {spec['lead']!r} and no lag.")
+                    raise SettingsError(f"a 'lead' needs a 'lag' > 0 (a pure lead is not "
+                                        f"realizable); found lead = {spec['lead']!r} and no lag.",
+                                        owner=w)
     if "ratio" in structures:
-        for c, w, spec in _cv_tables(structures, "ratio", what, cvs, "{mv = ..., wild = ...}",
+        for c, w, spec in _cv_tables(structures, "ratio", cvs, "{mv = ..., wild = ...}",
                                      _RATIO_KEYS):
             m = _string(spec, "mv", w, mvs, "MV")
             _string(spec, "wild", w, [x for x in mvs + mdv if x != m], "MV or measured DV")
     if "cascade" in structures:
-        for c, w, spec in _cv_tables(structures, "cascade", what, cvs,
+        for c, w, spec in _cv_tables(structures, "cascade", cvs,
                                      "{inner = <secondary CV>, mv = ...}", _CASCADE_KEYS):
             _string(spec, "inner", w, [x for x in cvs if x != c], "CV (other than the outer one)")
             _string(spec, "mv", w, mvs, "MV")
     if "override" in structures:
-        w0 = f"{what}.override"
+        w0 = "override"
         for m, spec in _table(structures["override"], w0,
                               "a table {mv = {select = ..., loops = [...]}}").items():
             if not isinstance(m, str) or m not in mvs:
-                raise SettingsError(f"{w0}: {shown(m)} is not an MV of the model"
+                raise SettingsError(f"{shown(m)} is not an MV of the model"
                                     f"{suggest(str(m), mvs)}; expected a table keyed by MV names "
-                                    f"({', '.join(mvs)}).")
+                                    f"({', '.join(mvs)}).", owner=w0)
             w = f"{w0}.{m}"
             spec = _table(spec, w, "a table {select = 'min' or 'max', loops = [{cv = ...}, ...]}")
             refuse_unknown_keys(spec, _OVERRIDE_KEYS, what=w)
-            choice(spec.get("select"), SELECTS, what=f"{w}.select", key="select", noun="select")
+            choice(spec.get("select"), SELECTS, what=w, key="select", noun="select")
             for wl, lp in _table_list(spec, "loops", w, 2, "loop tables {cv = ..., reference = "
                                       "'setpoint'/'high'/'low'}", _OVERRIDE_LOOP_KEYS):
                 _string(lp, "cv", wl, cvs, "CV")
                 if "reference" in lp:
-                    choice(lp["reference"], REFERENCES, what=f"{wl}.reference", key="reference",
+                    choice(lp["reference"], REFERENCES, what=wl, key="reference",
                            noun="reference")
     if "split_range" in structures:
         lo, hi = model.bounds("mv")
-        for c, w, spec in _cv_tables(structures, "split_range", what, cvs,
+        for c, w, spec in _cv_tables(structures, "split_range", cvs,
                                      "{valves = [{mv, start, end}, ...]}", _SPLIT_KEYS):
             for wv, v in _table_list(spec, "valves", w, 1, "valve tables {mv, start, end, "
                                      "at_start, at_end}", _VALVE_KEYS):
                 m = _string(v, "mv", wv, mvs, "MV")
                 for k in ("start", "end"):
                     if k not in v:
-                        raise SettingsError(f"{wv}: needs '{k}' (percent of the controller "
-                                            f"output, 0 to 100).")
+                        raise SettingsError(owner=wv, key=k, expected="a percent of the "
+                                            "controller output, 0 to 100", found="nothing")
                     f = number(v, k, what=wv, low=0.0)
                     if f > 100:
-                        raise SettingsError(f"{wv}: '{k}' must be <= 100 (%); found {f:g}.")
+                        raise SettingsError(owner=wv, key=k, expected="a percent <= 100",
+                                            found=f"{f:g}")
                 if not v["end"] > v["start"]:
-                    raise SettingsError(f"{wv}: 'end' must be above 'start'; found start = "
-                                        f"{v['start']!r}, end = {v['end']!r}.")
+                    raise SettingsError(owner=wv, key="end", expected="'end' above 'start'",
+                                        found=f"start = {v['start']!r}, end = {v['end']!r}")
                 j = mvs.index(m)
                 for k, default in (("at_start", lo[j]), ("at_end", hi[j])):
                     if k in v:
                         number(v, k, what=wv)
                     elif not math.isfinite(default):
-                        raise SettingsError(f"{wv}: MV '{m}' has no finite physical limit to "
-                                            f"default '{k}' to; give '{k}'.")
+                        raise SettingsError(f"MV '{m}' has no finite physical limit to "
+                                            f"default '{k}' to; give '{k}'.", owner=wv)
 
 
 def _dv_step_fit(model: Any, op: Any, dv: str, cv: str, *, Ts: float, step_fraction: float,
@@ -266,8 +282,9 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
         w = f"{what}.cascade.{c}"
         (inner,), (fi,) = tune([(spec["inner"], spec["mv"])])
         if fi.kind == "integrating":
-            raise SettingsError(f"{w}: the inner loop's process ({spec['inner']} <- {spec['mv']}) "
-                                f"integrates; a cascade's inner loop must be self-regulating here.")
+            raise SettingsError(f"the inner loop's process ({spec['inner']} <- {spec['mv']}) "
+                                f"integrates; a cascade's inner loop must be self-regulating here.",
+                                owner=w)
         j = mvs.index(spec["mv"])
         lo, hi = model.bounds("mv")
         span = hi[j] - lo[j] if math.isfinite(hi[j] - lo[j]) else max(abs(op.u[j]), 1.0)
@@ -312,9 +329,9 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
         for i, spec in enumerate(items):
             w = f"{what}.feedforward.{c}" + (f"[{i}]" if isinstance(specs, (list, tuple)) else "")
             if c not in owners:
-                raise SettingsError(f"{w}: there is no single loop (or cascade inner loop) on "
+                raise SettingsError(f"there is no single loop (or cascade inner loop) on "
                                     f"'{c}' to add the feedforward to; loops on: "
-                                    f"{', '.join(owners) or 'none'}.")
+                                    f"{', '.join(owners) or 'none'}.", owner=w)
             src = spec.get("dv", spec.get("mv"))
             if "gain" in spec:
                 ffs.append(Feedforward(c, src, float(spec["gain"]),
@@ -337,7 +354,7 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
                     gd = _src_fit(src, "fopdt")
                 ffs.append(design_feedforward(gp, gd, cv=c, source=src))
             except SettingsError as exc:
-                raise SettingsError(f"{w}: {exc}") from None
+                raise SettingsError(f"{exc}", owner=w) from None
             tuning["fits"][f"{c}<-{mv} (feedforward design)"] = gp.as_dict()
             tuning["fits"][f"{c}<-{src} (feedforward design)"] = gd.as_dict()
     try:
@@ -345,4 +362,4 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
                                               cascades=cascades, selectors=selectors,
                                               split_ranges=splits, tuning=tuning)
     except SettingsError as exc:
-        raise SettingsError(f"{what}: {exc}") from None
+        raise SettingsError(f"{exc}", owner=what) from None

@@ -93,9 +93,10 @@ ZN_METHODS = ("ultimate", "reaction_curve")
 def _refuse_inverse(fit: ProcessFit, rule: str) -> None:
     if fit.inverse_response:
         raise SettingsError(
-            f"{rule}: the step response of {fit.cv or 'this CV'} shows an inverse response (it first "
+            f"the step response of {fit.cv or 'this CV'} shows an inverse response (it first "
             f"moves the wrong way); the rule assumes a monotonic response. Model the right-half-"
-            f"plane zero (e.g. Skogestad's half rule into the dead time) before tuning.")
+            f"plane zero (e.g. Skogestad's half rule into the dead time) before tuning.",
+            owner=rule)
 
 
 def _loop(fit: ProcessFit, K: float, Ti: float, Td: float, rule: str, cv: str | None,
@@ -336,10 +337,11 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
     from ..linear import linearize
 
     if rule not in RULES:
-        raise SettingsError(f"{what}: unknown rule {rule!r}{suggest(str(rule), RULES)}; expected "
-                            f"one of: {', '.join(RULES)}.")
+        raise SettingsError(f"unknown rule {rule!r}{suggest(str(rule), RULES)}; expected "
+                            f"one of: {', '.join(RULES)}.", owner=what)
     if not (isinstance(step_fraction, (int, float)) and 0 < step_fraction <= 0.5):
-        raise SettingsError(f"{what}: step_fraction must be in (0, 0.5]; found {step_fraction!r}.")
+        raise SettingsError(f"step_fraction must be in (0, 0.5]; found {step_fraction!r}.",
+                            owner=what)
     lin = linearize(model, op)
     loops, fits = [], []
     lo, hi = model.bounds("mv")
@@ -382,8 +384,8 @@ def rule_on_fit(f: ProcessFit, cv: str, mv: str, *, Ts: float, rule: str,
     extra = extra_dead_time.get(cv, extra_dead_time.get("*", 0.0))
     if not (isinstance(extra, (int, float)) and not isinstance(extra, bool)
             and math.isfinite(extra) and extra >= 0):
-        raise SettingsError(f"{what}: extra dead time for '{cv}' must be a number >= 0; "
-                            f"found {extra!r}.")
+        raise SettingsError(f"extra dead time for '{cv}' must be a number >= 0; "
+                            f"found {extra!r}.", owner=what)
     # the sampled loop adds about half a sample of delay (zero-order hold), plus what the
     # measurement adds (analyzer dead time and half its cycle)
     f = ProcessFit(f.kind, f.gain, f.time_constants, f.dead_time + 0.5 * Ts + float(extra),
@@ -395,4 +397,4 @@ def rule_on_fit(f: ProcessFit, cv: str, mv: str, *, Ts: float, rule: str,
     try:
         return tune_loop(f, rule, cv=cv, mv=mv, **kw), f
     except SettingsError as exc:
-        raise SettingsError(f"{what}: loop {cv}<-{mv}: {exc}") from None
+        raise SettingsError(f"loop {cv}<-{mv}: {exc}", owner=what) from None

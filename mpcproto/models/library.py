@@ -95,32 +95,34 @@ def make_from_module(name: str, mod: ModuleType, *, parameters: Mapping[str, flo
     opts = _default_options(mod)
     for what, given in (("options", options), ("parameters", parameters)):
         if given is not None and not isinstance(given, Mapping):
-            raise ModelError(f"model '{name}': {what} must be a table of name = value; got "
-                             f"{shown(given)}.")
+            raise ModelError(f"{what} must be a table of name = value; got {shown(given)}.",
+                             owner=f"model '{name}'", key=what)
     for k, v in dict(options or {}).items():
         if k not in mod.OPTIONS:
             allowed = ", ".join(mod.OPTIONS) or "(none)"
             raise ModelError(
                 f"model '{name}' has no option {k!r}{suggest(str(k), list(mod.OPTIONS))}; "
-                f"its options are: {allowed}.")
+                f"its options are: {allowed}.", key=f"options.{k}")
         allowed_vals = mod.OPTIONS[k]["allowed"]
         if (isinstance(v, (list, dict, Mapping)) or v not in allowed_vals
                 or isinstance(v, bool) != any(isinstance(a, bool) for a in allowed_vals)):
             hint = suggest(str(v), [str(a) for a in allowed_vals])
             raise ModelError(
-                f"model '{name}': option '{k}' must be one of "
-                f"{', '.join(repr(a) for a in allowed_vals)}; got {shown(v)}{hint}.")
+                f"option '{k}' must be one of "
+                f"{', '.join(repr(a) for a in allowed_vals)}; got {shown(v)}{hint}.",
+                owner=f"model '{name}'", key=f"options.{k}")
         opts[k] = v
     params = dict(mod.default_parameters(opts))
     for k, v in dict(parameters or {}).items():
         if k not in params:
             raise ModelError(
                 f"model '{name}' has no parameter {k!r}{suggest(str(k), list(params))}"
-                f" (with options {opts}); its parameters are: {', '.join(params) or '(none)'}.")
+                f" (with options {opts}); its parameters are: {', '.join(params) or '(none)'}.",
+                key=f"parameters.{k}")
         f = as_float(v)
         if f is None or not math.isfinite(f):
-            raise ModelError(
-                f"model '{name}': parameter '{k}' must be a finite number; got {shown(v)}.")
+            raise ModelError(f"parameter '{k}' must be a finite number; got {shown(v)}.",
+                             owner=f"model '{name}'", key=f"parameters.{k}")
         params[k] = f
     model = mod.build(params, opts)
     if not model.is_built:

@@ -53,7 +53,7 @@ from types import ModuleType
 from typing import Any
 
 from .._specs import shown
-from ..exceptions import ModelError
+from ..exceptions import ModelError, join_key
 from ..model import Model, suggest
 
 __all__ = ["ENTRY_POINT_GROUP", "Reference", "parse_reference", "resolve_model", "registered",
@@ -94,10 +94,22 @@ class Reference:
         return self.text
 
 
-def _err(what: str, msg: str, detail: str = "") -> ModelError:
-    e = ModelError(f"{what}: {msg}")
+def _err(what: str, msg: str, detail: str = "", key: str | None = None) -> ModelError:
+    e = ModelError(msg, owner=what, key=key)
     e.detail = detail
     return e
+
+
+def _unplaced(e: ModelError) -> str:
+    """The text of *e* without its key (the wrapping error carries it)."""
+    return f"{e.owner}: {e.body}" if e.owner else e.body
+
+
+def _placed(e: ModelError, what: str) -> ModelError:
+    """An error of the model layer (key relative to the model's table: ``options.x``,
+    ``parameters.x``) placed beside *what* (``plant.model`` -> ``plant.parameters.x``)."""
+    base = what[:-len(".model")] if what.endswith(".model") else None
+    return e.replace(owner=e.owner or what, key=join_key(base, e.key))
 
 
 def registered() -> dict[str, Any]:
@@ -236,8 +248,11 @@ def _build(r: Reference, options: dict, parameters: dict, what: str) -> Model:
     from .library import _REGISTRY, make_from_module
 
     if r.form == "builtin":
-        return make_from_module(r.target, _REGISTRY[r.target], parameters=parameters,
-                                options=options)
+        try:
+            return make_from_module(r.target, _REGISTRY[r.target], parameters=parameters,
+                                    options=options)
+        except ModelError as e:
+            raise _placed(e, what) from None
     if r.form in ("table", "toml"):
         from .transfer_table import read_transfer_file, transfer_table_model
 
@@ -254,7 +269,10 @@ def _build(r: Reference, options: dict, parameters: dict, what: str) -> Model:
     obj, where = _load(r, what)
     if isinstance(obj, ModuleType) and all(hasattr(obj, a) for a in ("OPTIONS", "build",
                                                                        "default_parameters")):
-        return make_from_module(r.target, obj, parameters=parameters, options=options)
+        try:
+            return make_from_module(r.target, obj, parameters=parameters, options=options)
+        except ModelError as e:
+            raise _placed(e, what) from None
     return _call(obj, where, options, parameters, what)
 
 
@@ -341,15 +359,14 @@ def _call(fn: Any, where: str, options: dict, parameters: dict, what: str) -> Mo
         if not model.is_built:
             model.build()
     except ModelError as e:
-        raise _err(what, f"the model {where} returned is not usable: {e}") from None
+        raise _placed(_err(what, f"the model {where} returned is not usable: {_unplaced(e)}",
+                           key=e.key),
+                      what) from None
     try:
         return model.with_parameters(parameters) if parameters else model
     except ModelError as e:
-        err = _err(what, f"expected parameters the model of {where} declares: {e}")
-        bad = next((k for k in parameters if f"'{k}'" in str(e)), None)
-        if bad is not None and what.endswith(".model"):
-            err.key = f"{what[:-len('.model')]}.parameters.{bad}"
-        raise err from None
+        raise _placed(_err(what, f"expected parameters the model of {where} declares: "
+                           f"{_unplaced(e)}", key=e.key), what) from None
 
 
 def _option_params(fn: Any) -> list[inspect.Parameter]:

@@ -79,7 +79,7 @@ class TransferElement:
                                        "integrating"),
                                 what=where, error=ModelError)
             if "gain" not in spec:
-                raise ModelError(f"{where}: an element needs a 'gain'; got {dict(spec)!r}.")
+                raise ModelError(f"an element needs a 'gain'; got {dict(spec)!r}.", owner=where)
             taus = _taus(spec.get("time_constants", spec.get("tau", ())), where)
             el = cls(gain=spec["gain"], time_constants=taus, lead=spec.get("lead", 0.0),
                      dead_time=spec.get("dead_time", 0.0),
@@ -88,8 +88,8 @@ class TransferElement:
             el = cls(gain=spec[0], time_constants=_taus(spec[1], where), dead_time=spec[2])
         else:
             raise ModelError(
-                f"{where}: expected a TransferElement, a dict (gain, time_constants, lead, dead_time), "
-                f"a tuple (gain, tau, dead_time) or None; got {spec!r}.")
+                f"expected a TransferElement, a dict (gain, time_constants, lead, dead_time), "
+                f"a tuple (gain, tau, dead_time) or None; got {spec!r}.", owner=where)
         el._check(where)
         return el
 
@@ -100,21 +100,23 @@ class TransferElement:
             if not ok:
                 rel = ">" if strict else ">="
                 rng = "" if low == -math.inf else f" {rel} {low:g}"
-                raise ModelError(f"{where}: {what} must be a finite number{rng}; got {v!r}.")
+                raise ModelError(f"{what} must be a finite number{rng}; got {v!r}.", owner=where)
 
         num(self.gain, "the gain")
         if len(self.time_constants) > 2:
-            raise ModelError(f"{where}: at most two time constants (SOPDT); got "
-                             f"{len(self.time_constants)}: {self.time_constants!r}.")
+            raise ModelError(f"at most two time constants (SOPDT); got "
+                             f"{len(self.time_constants)}: {self.time_constants!r}.", owner=where)
         for t in self.time_constants:
             num(t, "a time constant", 0.0, strict=True)
         num(self.lead, "the lead time constant")
         num(self.dead_time, "the dead time", 0.0)
         if not isinstance(self.integrating, bool):
-            raise ModelError(f"{where}: 'integrating' must be true or false; got {self.integrating!r}.")
+            raise ModelError(f"'integrating' must be true or false; got {self.integrating!r}.",
+                             owner=where)
         if self.lead != 0 and not self.time_constants:
-            raise ModelError(f"{where}: a lead needs at least one time constant (the element would "
-                             f"be improper); got lead={self.lead!r} and no time constant.")
+            raise ModelError(f"a lead needs at least one time constant (the element would "
+                             f"be improper); got lead={self.lead!r} and no time constant.",
+                             owner=where)
 
 
 def _taus(v: Any, where: str) -> tuple:
@@ -123,8 +125,8 @@ def _taus(v: Any, where: str) -> tuple:
         return (v,)
     if isinstance(v, Sequence) and not isinstance(v, (str, bytes)):
         return tuple(v)
-    raise ModelError(f"{where}: the time constants must be a number or a list of one or two "
-                     f"numbers; got {shown(v)}.")
+    raise ModelError(f"the time constants must be a number or a list of one or two "
+                     f"numbers; got {shown(v)}.", owner=where)
 
 
 def _spec_list(items: Any, role: str, what: str) -> list[dict[str, Any]]:
@@ -138,7 +140,8 @@ def _spec_list(items: Any, role: str, what: str) -> list[dict[str, Any]]:
         if isinstance(it, str):
             it = {"name": it}
         if not isinstance(it, Mapping) or "name" not in it:
-            raise ModelError(f"{what}: each {role} must be a name or a dict with a 'name'; got {it!r}.")
+            raise ModelError(f"each {role} must be a name or a dict with a 'name'; got {it!r}.",
+                             owner=what)
         refuse_unknown_keys(it, allowed, what=what, context=f" in {role} '{it['name']}'",
                             error=ModelError)
         out.append(dict(it))
@@ -219,11 +222,11 @@ def transfer_matrix_model(name: str, mvs: Any, cvs: Any, elements: Any, *, dvs: 
     cv_specs = _spec_list(cvs, "cv", where)
     dv_specs = _spec_list(dvs, "dv", where)
     if not mv_specs:
-        raise ModelError(f"{where}: at least one MV is needed; got {mvs!r}.")
+        raise ModelError(f"at least one MV is needed; got {mvs!r}.", owner=where)
     if not cv_specs:
-        raise ModelError(f"{where}: at least one CV is needed; got {cvs!r}.")
+        raise ModelError(f"at least one CV is needed; got {cvs!r}.", owner=where)
     if dv_elements is not None and not dv_specs:
-        raise ModelError(f"{where}: dv_elements given but no DVs declared (pass dvs=...).")
+        raise ModelError("dv_elements given but no DVs declared (pass dvs=...).", owner=where)
     cv_names = [c["name"] for c in cv_specs]
     mv_names = [c["name"] for c in mv_specs]
     dv_names = [c["name"] for c in dv_specs]
@@ -235,7 +238,8 @@ def transfer_matrix_model(name: str, mvs: Any, cvs: Any, elements: Any, *, dvs: 
     def fnum(spec, key, default):
         v = spec.get(key, default)
         if isinstance(v, bool) or not isinstance(v, numbers.Real):
-            raise ModelError(f"{where}: '{spec['name']}' key '{key}' must be a number; got {v!r}.")
+            raise ModelError(f"'{spec['name']}' key '{key}' must be a number; got {v!r}.",
+                             owner=where)
         return float(v)
 
     syms: dict[str, Any] = {}

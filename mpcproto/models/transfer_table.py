@@ -41,7 +41,7 @@ from pathlib import Path
 from typing import Any
 
 from .._specs import as_float, shown
-from ..exceptions import ModelError
+from ..exceptions import ModelError, join_key
 from ..model import TIME_UNITS, Model, suggest
 from .transfer_matrix import TransferElement, transfer_matrix_model
 
@@ -59,9 +59,7 @@ _ELEMENT_KEYS = ("gain", "time_constants", "lead", "dead_time", "integrating")
 
 
 def _fail(key: str, expected: str, found: str) -> ModelError:
-    err = ModelError(f"{key}: expected {expected}; found {found}.")
-    err.key = key  # the key path, for a scenario's error
-    return err
+    return ModelError(key=key, expected=expected, found=found)
 
 
 def _table(v: Any, key: str) -> dict:
@@ -186,8 +184,7 @@ def check_transfer_table(table: Any, *, what: str = "plant") -> dict[str, Any]:
             try:
                 TransferElement.coerce(spec, where)
             except ModelError as e:
-                e.key = where
-                raise
+                raise e.replace(owner=None, key=join_key(where, e.key)) from None
             elements.setdefault(cv, {})[inp] = dict(spec)
     for cv in cv_names:
         if not elements.get(cv):

@@ -70,7 +70,7 @@ def design_report(scn: Scenario) -> dict[str, Any]:
         try:
             pid = _build_pid(settings, prep, f"controllers.{label}")
         except SettingsError as e:
-            raise ScenarioError(str(e), file=scn.file, key=f"controllers.{label}") from None
+            raise e.at(f"controllers.{label}").in_file(scn.file) from None
     pairing = [(lp.cv, lp.mv) for lp in pid.loops] if pid is not None else None
     finite = np.all(np.isfinite(K))
     if finite and K.size:

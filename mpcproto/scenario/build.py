@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 import scipy.linalg as sla
 
-from ..exceptions import MpcprotoError, OperatingPointError, ScenarioError
+from ..exceptions import MpcprotoError, ScenarioError
 from ..model import Model, suggest
 from .schema import Scenario
 
@@ -57,45 +57,30 @@ def scenario_folder(scn: Scenario) -> Path:
 
 
 def _wrap(scn: Scenario, key: str, err: Exception) -> ScenarioError:
-    text = str(err)
-    for prefix in (key + ": ", "plant.model: ", "controller_model.model: "):
-        if text.startswith(prefix):  # the resolver's messages start with the key they concern
-            text = text[len(prefix):]
-            break
-    out = ScenarioError(text, file=scn.file, key=getattr(err, "key", None) or key)
+    """*err* as the scenario's error, at its own key path if it has one, else at *key*."""
+    if isinstance(err, MpcprotoError):
+        out = err.replace(key=err.key or key).in_file(scn.file)
+    else:
+        out = ScenarioError(str(err), file=scn.file, key=key)
     out.detail = getattr(err, "detail", "")
     return out
 
 
 def _section_model(scn: Scenario, section: str, ref: Any, options: Mapping[str, Any],
-                   params: Mapping[str, Any], user_keys: Mapping[str, Any]) -> Model:
-    """Resolve one section's model; errors name the section's key (a parameter or option if the
-    message quotes one of *user_keys*' names, else ``<section>.model``)."""
+                   params: Mapping[str, Any]) -> Model:
+    """Resolve one section's model; errors name the key path the resolver gives them (a
+    parameter or an option of the section), else ``<section>.model``."""
     try:
         return get_model(ref, options=options, parameters=params, base_dir=scenario_folder(scn),
                          what=f"{section}.model")
     except MpcprotoError as e:
-        if getattr(e, "key", None):
-            raise _wrap(scn, e.key, e) from None
-        raise _wrap(scn, _guess_key(str(e), section, options, user_keys), e) from None
+        raise _wrap(scn, f"{section}.model", e) from None
 
 
 def plant_model(scn: Scenario) -> Model:
     """The plant: ``[plant] model`` with its ``options`` and ``parameters``."""
     pl = scn.data["plant"]
-    return _section_model(scn, "plant", pl["model"], pl["options"], pl["parameters"],
-                          pl["parameters"])
-
-
-def _guess_key(msg: str, section: str, options: Mapping, parameters: Mapping) -> str:
-    if not msg.startswith(f"{section}.model: "):
-        for k in parameters:
-            if f"'{k}'" in msg:
-                return f"{section}.parameters.{k}"
-        for k in options:
-            if f"'{k}'" in msg:
-                return f"{section}.options.{k}"
-    return f"{section}.model"
+    return _section_model(scn, "plant", pl["model"], pl["options"], pl["parameters"])
 
 
 def controller_model(scn: Scenario, base: Mapping[str, float] | None = None) -> Model:
@@ -115,7 +100,7 @@ def controller_model(scn: Scenario, base: Mapping[str, float] | None = None) -> 
     cm = scn.data["controller_model"]
     if cm.get("model") is not None:
         model = _section_model(scn, "controller_model", cm["model"], cm.get("options", {}),
-                               cm["parameters"], cm["parameters"])
+                               cm["parameters"])
         check_same_variables(scn, plant_model(scn), model)
         return model
     params = dict(pl["parameters"] if base is None else base)
@@ -124,11 +109,10 @@ def controller_model(scn: Scenario, base: Mapping[str, float] | None = None) -> 
         return get_model(pl["model"], options=pl["options"], parameters=params,
                          base_dir=scenario_folder(scn), what="plant.model")
     except MpcprotoError as e:
-        for k in cm["parameters"]:
-            if f"'{k}'" in str(e):
-                raise _wrap(scn, f"controller_model.parameters.{k}", e) from None
-        raise _wrap(scn, getattr(e, "key", None) or _guess_key(str(e), "plant", pl["options"],
-                                                               pl["parameters"]), e) from None
+        # a parameter the controller's model sets is that section's key, not the plant's
+        key = next((f"controller_model.parameters.{k}" for k in cm["parameters"]
+                    if e.key == f"plant.parameters.{k}"), None)
+        raise _wrap(scn, "plant.model", e.replace(key=key) if key else e) from None
 
 
 def check_same_variables(scn: Scenario, plant: Model, model: Model) -> None:
@@ -245,7 +229,7 @@ def operating_point(scn: Scenario, model: Model | None = None):
         # includes OperatingPointError for non-finite derivatives (absurd parameter values):
         # its message names the model, the entries and the extreme parameters
         hint = (" Parameter values come from [plant] and [controller_model]."
-                if isinstance(e, OperatingPointError) and "non-finite" in str(e) else "")
+                if e.code == "non_finite" else "")
         raise ScenarioError(str(e) + hint, file=scn.file, key="operating_point") from None
 
 

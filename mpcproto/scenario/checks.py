@@ -10,7 +10,6 @@ module imports neither.
 from __future__ import annotations
 
 import math
-import re
 import warnings
 from collections.abc import Mapping
 from pathlib import Path
@@ -24,46 +23,10 @@ from ..model import suggest
 from .schema import Scenario
 
 
-_QUOTED = re.compile(r"'([A-Za-z_][A-Za-z0-9_.]*)'")
-
-
-def settings_error(err: Exception, scn: Scenario, base_key: str, spec: Any = None) -> ScenarioError:
-    """Turn a :class:`SettingsError` raised for the entry at *base_key* into a ScenarioError.
-
-    The key path is made as precise as the message allows: a quoted name in the message that is a
-    key of *spec* is appended (``disturbances.draw_off`` + ``'at'`` -> ``disturbances.draw_off.at``).
-    """
-    msg = str(err)
-    key = base_key
-    keys: list[str] = []
-    if isinstance(spec, Mapping):
-        keys = list(spec)
-    elif isinstance(spec, list):
-        keys = [k for s in spec if isinstance(s, Mapping) for k in s]
-    named = re.search(r"\bkey '([A-Za-z_][A-Za-z0-9_]*)'", msg)
-    if named:
-        key = f"{base_key}.{named.group(1)}"
-    else:
-        # a quoted setting whose first part is a key of the spec: 'at', 'cv.level.weight'
-        for m in _QUOTED.finditer(msg):
-            if m.group(1).split(".")[0] in keys:
-                key = f"{base_key}.{m.group(1)}"
-                break
-        else:
-            # else the first word of the message that is a key of the spec ("unknown rule ...")
-            for m in re.finditer(r"\b([A-Za-z_][A-Za-z0-9_]*)\b", msg[len(base_key):]):
-                if m.group(1) in keys:
-                    key = f"{base_key}.{m.group(1)}"
-                    break
-    # a message that starts with a longer key path ("controllers.pid.loops[0].cv: ...") names the
-    # exact key: use it and do not repeat it
-    m = re.match(re.escape(base_key) + r"((?:\[\d+\])?(?:(?:\.[A-Za-z_*][A-Za-z0-9_*]*)(?:\[\d+\])?)*)"
-                 r"(?: (\([^)]*\)))?:\s*", msg)
-    if m:
-        if "." in m.group(1):
-            key = base_key + m.group(1)
-        msg = ((m.group(2) + " ") if m.group(2) else "") + msg[m.end():]
-    return ScenarioError(msg, file=scn.file, key=key)
+def settings_error(err: SettingsError, scn: Scenario, base_key: str) -> ScenarioError:
+    """A :class:`SettingsError` raised for the entry at *base_key* as the scenario's error: its
+    key path placed below *base_key*, its file the scenario's."""
+    return err.at(base_key).in_file(scn.file)
 
 
 # ----------------------------------------------------------------------------------------- setup
@@ -206,7 +169,7 @@ def _check_specs(scn: Scenario, plant: Any = None) -> dict[str, Any]:
         try:
             return factory(spec, what=key, **kw)
         except SettingsError as e:
-            raise settings_error(e, scn, key, spec) from None
+            raise settings_error(e, scn, key) from None
 
     signals: dict[str, dict[str, Any]] = {"disturbances": {}, "setpoints": {}}
     for section, out in signals.items():

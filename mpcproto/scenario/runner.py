@@ -181,7 +181,7 @@ def _build_controller(label: str, spec: Mapping[str, Any], prep: Prepared) -> An
     except ScenarioError:
         raise
     except SettingsError as e:
-        raise settings_error(e, scn, key, settings) from None
+        raise settings_error(e, scn, key) from None
     try:
         ctl.name = label
     except AttributeError:

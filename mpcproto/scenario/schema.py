@@ -114,10 +114,8 @@ class _Ctx:
         self.file = file
 
     def fail(self, key: str, expected: str, found: Any, hint: str = "") -> None:
-        msg = f"expected {expected}; found {found}."
-        if hint:
-            msg += " " + hint
-        raise ScenarioError(msg, file=self.file, key=key or None)
+        raise ScenarioError(file=self.file, key=key or None, expected=expected, found=str(found),
+                            fix=hint or None)
 
     def table(self, v: Any, key: str) -> dict:
         if not isinstance(v, Mapping):
@@ -656,9 +654,7 @@ def _model_section(c: _Ctx, v: Any, section: str, *, required: bool) -> dict[str
         try:
             check_transfer_table(tbl, what=section)
         except ModelError as e:
-            key = getattr(e, "key", section)
-            raise ScenarioError(str(e)[len(key) + 2:] if str(e).startswith(key + ": ") else str(e),
-                                file=c.file, key=key) from None
+            raise e.replace(key=e.key or section).in_file(c.file) from None
         return {"model": tbl, "options": {}, "parameters": {}}
     c.keys(tbl, section, PLANT_KEYS, required=("model",) if required else ())
     if "model" not in tbl and ("options" in tbl):

@@ -279,16 +279,5 @@ def _blame(e: ScenarioError, case: Case) -> ScenarioError:
     """Add the case id to an error on a key path the case overrides (or a key inside it)."""
     if e.key and any(e.key == k or e.key.startswith(k + ".") or k.startswith(e.key + ".")
                      for k in case.params):
-        return ScenarioError(f"{_strip(e)} (value set by case {case.case_id})",
-                             file=case.file, key=e.key)
+        return e.replace(note=f"value set by case {case.case_id}", file=case.file)
     return e
-
-
-def _strip(e: ScenarioError) -> str:
-    msg = str(e)
-    prefix = ""
-    if e.file:
-        prefix += f"{e.file}: "
-    if e.key:
-        prefix += f"key '{e.key}': "
-    return msg[len(prefix):] if msg.startswith(prefix) else msg

@@ -146,7 +146,7 @@ def instrument_from_spec(spec: Mapping[str, Any] | Instrument, *, what: str) -> 
     if isinstance(spec, Instrument):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"{what}: an instrument must be a table/dict; found {shown(spec)}.")
+        raise SettingsError(f"an instrument must be a table/dict; found {shown(spec)}.", owner=what)
     keys = ("noise_std", "bias", "lag", "dead_time", "period")
     check_keys(spec, keys, (), what=what, kind="instrument")
     return Instrument(
@@ -162,12 +162,12 @@ def actuator_from_spec(spec: Mapping[str, Any] | Actuator, *, what: str) -> Actu
     if isinstance(spec, Actuator):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"{what}: an actuator must be a table/dict; found {shown(spec)}.")
+        raise SettingsError(f"an actuator must be a table/dict; found {shown(spec)}.", owner=what)
     check_keys(spec, ("low", "high", "rate"), (), what=what, kind="actuator")
     low = number(spec, "low", what=what, default=-math.inf, allow_inf=True)
     high = number(spec, "high", what=what, default=math.inf, allow_inf=True)
     if not low <= high:
-        raise SettingsError(f"{what}: 'low' ({low:g}) must be <= 'high' ({high:g}).")
+        raise SettingsError(f"'low' ({low:g}) must be <= 'high' ({high:g}).", owner=what)
     return Actuator(low=low, high=high,
                     rate=number(spec, "rate", what=what, low=0.0, default=math.inf, allow_inf=True))
 
@@ -191,7 +191,8 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
     if isinstance(spec, Fault):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"{what}: a fault must be a table/dict with a 'kind'; found {shown(spec)}.")
+        raise SettingsError(f"a fault must be a table/dict with a 'kind'; found {shown(spec)}.",
+                            owner=what)
     kind = choice(spec.get("kind"), FAULT_KINDS, what=what, key="kind", noun="fault kind")
     req, opt = _FAULT_EXTRA[kind]
     body = {k: v for k, v in spec.items() if k != "kind"}
@@ -199,12 +200,13 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
                what=what, kind=kind)
     var = body["variable"]
     if not isinstance(var, str) or not var:
-        raise SettingsError(f"{what}: 'variable' must be a variable name (a string); found {shown(var)}.")
+        raise SettingsError(f"'variable' must be a variable name (a string); found {shown(var)}.",
+                            owner=what)
     w = f"{what} ({kind} on '{var}')"
     at = number(body, "at", what=w)
     until = number(body, "until", what=w, default=None)
     if until is not None and until <= at:
-        raise SettingsError(f"{w}: 'until' ({until:g}) must be after 'at' ({at:g}).")
+        raise SettingsError(f"'until' ({until:g}) must be after 'at' ({at:g}).", owner=w)
     kw: dict[str, Any] = {}
     if kind == "sensor_drift":
         kw["rate"] = number(body, "rate", what=w)
@@ -214,9 +216,10 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
         kw["position"] = number(body, "position", what=w, default=None)
     if kind == "valve_saturation":
         if "low" not in body and "high" not in body:
-            raise SettingsError(f"{w}: give 'low' and/or 'high' (the reduced travel).")
+            raise SettingsError("give 'low' and/or 'high' (the reduced travel).", owner=w)
         kw["low"] = number(body, "low", what=w, default=-math.inf)
         kw["high"] = number(body, "high", what=w, default=math.inf)
         if not kw["low"] <= kw["high"]:
-            raise SettingsError(f"{w}: 'low' ({kw['low']:g}) must be <= 'high' ({kw['high']:g}).")
+            raise SettingsError(f"'low' ({kw['low']:g}) must be <= 'high' ({kw['high']:g}).",
+                                owner=w)
     return Fault(kind=kind, variable=var, at=at, until=until, **kw)

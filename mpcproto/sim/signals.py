@@ -306,22 +306,27 @@ def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
     f = as_float(spec)
     if f is not None:
         if not math.isfinite(f):
-            raise SettingsError(f"{what}: a constant signal must be finite; found {shown(spec)}.")
+            raise SettingsError(owner=what, expected="a finite constant", found=shown(spec))
         return Constant(f)
     if isinstance(spec, (list, tuple)):
         if not spec:
-            raise SettingsError(f"{what}: an empty list is not a signal; give at least one spec.")
-        parts = [signal_from_spec(s, what=f"{what}[{i}]", rng=rng, base_dir=base_dir)
-                 for i, s in enumerate(spec)]
+            raise SettingsError(owner=what, expected="a signal table or a non-empty list of them",
+                                found="an empty list")
+        parts = []
+        for i, s in enumerate(spec):
+            try:
+                parts.append(signal_from_spec(s, what=what, rng=rng, base_dir=base_dir))
+            except SettingsError as e:
+                raise e.at(f"[{i}]") from None
         if sum(p.base is not None for p in parts) > 1:
-            raise SettingsError(
-                f"{what}: at most one part of a summed signal may give a 'base' (absolute value); "
-                f"found {sum(p.base is not None for p in parts)}.")
+            raise SettingsError(owner=what, key="base",
+                                expected="at most one part of a summed signal with a 'base' "
+                                         "(absolute value)",
+                                found=f"{sum(p.base is not None for p in parts)}")
         return parts[0] if len(parts) == 1 else Sum(parts)
     if not isinstance(spec, Mapping):
-        raise SettingsError(
-            f"{what}: a signal must be a table/dict with a 'kind', a list of them or a number; "
-            f"found {type(spec).__name__} {shown(spec)}.")
+        raise SettingsError(owner=what, expected="a signal table with a 'kind', a list of them or "
+                            "a number", found=f"{type(spec).__name__} {shown(spec)}")
     kind = choice(spec.get("kind"), SIGNAL_KINDS, what=what, key="kind", noun="signal kind")
     req, opt = _KEYS[kind]
     body = {k: v for k, v in spec.items() if k != "kind"}
@@ -349,12 +354,12 @@ def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
         low = number(body, "low", what=w, default=-math.inf, allow_inf=True)
         high = number(body, "high", what=w, default=math.inf, allow_inf=True)
         if not low <= 0.0 <= high:
-            raise SettingsError(
-                f"{w}: the walk starts at 0, so 'low' must be <= 0 <= 'high'; found low={low:g}, "
-                f"high={high:g}.")
+            raise SettingsError(owner=w, key="low" if low > 0 else "high",
+                                expected="low <= 0 <= high (the walk starts at 0)",
+                                found=f"low={low:g}, high={high:g}")
         seed = body.get("seed")
         if seed is not None and (isinstance(seed, bool) or not isinstance(seed, int) or seed < 0):
-            raise SettingsError(f"{w}: 'seed' must be a non-negative integer; found {shown(seed)}.")
+            raise SettingsError(owner=w, key="seed", expected="an integer >= 0", found=shown(seed))
         return RandomWalk(number(body, "step_std", what=w, low=0.0),
                           number(body, "interval", what=w, low=0.0, strict_low=True),
                           start=number(body, "start", what=w, default=0.0), low=low, high=high,
@@ -365,18 +370,19 @@ def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
         times = _float_list(body["times"], "times", what=w)
         values = _float_list(body["values"], "values", what=w)
         if len(times) != len(values):
-            raise SettingsError(
-                f"{w}: 'times' and 'values' must have the same length; found {len(times)} times "
-                f"and {len(values)} values.")
-        _check_times(times, what=w, where="'times'")
+            raise SettingsError(owner=w, key="values",
+                                expected=f"as many values as times ({len(times)})",
+                                found=f"{len(values)} values")
+        _check_times(times, what=w, where="'times'", key="times")
         return Table(times, values, interpolation=interp, base=base)
     if not isinstance(body["path"], (str, os.PathLike)) or not str(body["path"]):
-        raise SettingsError(f"{w}: 'path' must be a file name (a string); found {shown(body['path'])}.")
+        raise SettingsError(owner=w, key="path", expected="a file name (a string)",
+                            found=shown(body["path"]))
     for key in ("time_column", "value_column"):
         c = body.get(key, 0)
         if isinstance(c, bool) or not isinstance(c, (int, str)):
-            raise SettingsError(f"{w}: '{key}' must be a column name (a string) or a 0-based "
-                                f"index (an integer); found {shown(c)}.")
+            raise SettingsError(owner=w, key=key, expected="a column name (a string) or a 0-based "
+                                "index (an integer)", found=shown(c))
     path = Path(body["path"])
     if base_dir is not None and not path.is_absolute():
         path = Path(base_dir) / path
@@ -389,37 +395,40 @@ def signal_from_spec(spec: Any, *, what: str, rng: Any = None,
 
 def _float_list(v: Any, key: str, *, what: str) -> list[float]:
     if isinstance(v, (str, bytes)) or not isinstance(v, Sequence):
-        raise SettingsError(f"{what}: '{key}' must be a list of numbers; found {shown(v)}.")
+        raise SettingsError(owner=what, key=key, expected="a list of numbers", found=shown(v))
     out = []
     for i, x in enumerate(v):
         f = as_float(x)
         if f is None:
-            raise SettingsError(f"{what}: '{key}'[{i}] must be a number; found {shown(x)}.")
+            raise SettingsError(owner=what, key=f"{key}[{i}]", expected="a number", found=shown(x))
         if not math.isfinite(f):
-            raise SettingsError(f"{what}: '{key}'[{i}] must be finite; found {shown(x)}.")
+            raise SettingsError(owner=what, key=f"{key}[{i}]", expected="a finite number",
+                                found=shown(x))
         out.append(f)
     if not out:
-        raise SettingsError(f"{what}: '{key}' is empty; give at least one point.")
+        raise SettingsError(owner=what, key=key, expected="at least one point", found="[]")
     return out
 
 
 def _check_times(times: Sequence[float], *, what: str, where: str, max_gap: float | None = None,
-                 row_of=lambda i: i) -> None:
+                 row_of=lambda i: i, key: str | None = None) -> None:
     t = np.asarray(times, float)
     d = np.diff(t)
     bad = np.flatnonzero(d <= 0)
     if bad.size:
         i = int(bad[0]) + 1
         raise SettingsError(
-            f"{what}: {where} must be strictly increasing; found {t[i]:g} at {row_of(i)} after "
-            f"{t[i - 1]:g} at {row_of(i - 1)}. Sort the table and remove duplicate times.")
+            f"{where} must be strictly increasing; found {t[i]:g} at {row_of(i)} after "
+            f"{t[i - 1]:g} at {row_of(i - 1)}. Sort the table and remove duplicate times.",
+            owner=what, key=key)
     if max_gap is not None:
         big = np.flatnonzero(d > max_gap)
         if big.size:
             i = int(big[0])
             raise SettingsError(
-                f"{what}: {where} has a gap of {d[i]:g} between {t[i]:g} ({row_of(i)}) and "
-                f"{t[i + 1]:g} ({row_of(i + 1)}), more than max_gap={max_gap:g}.")
+                f"{where} has a gap of {d[i]:g} between {t[i]:g} ({row_of(i)}) and "
+                f"{t[i + 1]:g} ({row_of(i + 1)}), more than max_gap={max_gap:g}.",
+                owner=what, key=key)
 
 
 def _cut(text: str, limit: int = 120) -> str:
@@ -442,25 +451,27 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
     a cell longer than the CSV reader's field limit is refused naming its row.
     """
     path = Path(path)
-    w = f"{what}: file '{path}'"
-    cant = f"{what}: 'path': expected a readable CSV file of at most {MAX_CSV_BYTES // 2**20} MB"
+    w = f"file '{path}'"
+    cant = f"expected a readable CSV file of at most {MAX_CSV_BYTES // 2**20} MB"
     try:
         st = path.stat()
     except FileNotFoundError:
-        raise SettingsError(f"{what}: 'path': expected a readable CSV file; found that '{path}' "
+        raise SettingsError(f"expected a readable CSV file; found that '{path}' "
                             f"cannot be read: there is no file there ({path.resolve()}; a "
-                            f"relative path is taken from the scenario's folder).") from None
+                            f"relative path is taken from the scenario's folder).",
+                            owner=what, key="path") from None
     except OSError as exc:
         raise SettingsError(f"{cant}; found that '{path}' cannot be read "
-                            f"({exc.strerror or exc}).") from None
+                            f"({exc.strerror or exc}).", owner=what, key="path") from None
     if stat.S_ISDIR(st.st_mode):
-        raise SettingsError(f"{what}: 'path': expected a readable CSV file; found that '{path}' "
-                            f"cannot be read: it is a directory.")
+        raise SettingsError(f"expected a readable CSV file; found that '{path}' "
+                            f"cannot be read: it is a directory.", owner=what, key="path")
     if not stat.S_ISREG(st.st_mode):
         raise SettingsError(f"{cant}; found that '{path}' is not a regular file (a device, a pipe "
-                            f"or a socket).")
+                            f"or a socket).", owner=what, key="path")
     if st.st_size > MAX_CSV_BYTES:
-        raise SettingsError(f"{cant}; found {st.st_size / 2**20:.1f} MB in '{path}'.")
+        raise SettingsError(f"{cant}; found {st.st_size / 2**20:.1f} MB in '{path}'.",
+                            owner=what, key="path")
     line = [0]
 
     def rows():
@@ -479,12 +490,12 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
             hint = (" (is the file separated by something other than commas? mpcproto reads "
                     "comma-separated values)" if len(header) == 1 else "")
             raise SettingsError(f"{w}: {key} {c} is out of range; the file has {len(header)} "
-                                f"column(s){hint}.")
+                                f"column(s){hint}.", owner=what, key="path")
         if c in header:
             return header.index(c)
         raise SettingsError(
             f"{w}: no column named {c!r} for {key}{suggest(str(c), header)}; "
-            f"columns: {_cut(', '.join(header))}.")
+            f"columns: {_cut(', '.join(header))}.", owner=what, key="path")
 
     times, values = array("d"), array("d")
     n = 0
@@ -492,7 +503,8 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
         it = rows()
         first = next(it, None)
         if first is None:
-            raise SettingsError(f"{w} needs a header row and at least one data row; found 0 rows.")
+            raise SettingsError(f"{w} needs a header row and at least one data row; found 0 rows.",
+                                owner=what, key="path")
         header = [h.strip() for h in first]
         ti, vi = col(time_column, "time_column"), col(value_column, "value_column")
         n = 1
@@ -506,18 +518,20 @@ def table_from_csv(path: str | Path, *, time_column: int | str = 0, value_column
                 except ValueError:
                     raise SettingsError(
                         f"{w}: row {n}, column '{_cut(header[idx])}' must hold a finite number; "
-                        f"found {shown(cell)} (a gap in the table?).") from None
+                        f"found {shown(cell)} (a gap in the table?).",
+                        owner=what, key="path") from None
                 dest.append(f)
     except csv.Error as exc:
         raise SettingsError(f"{w}: line {line[0] + 1} cannot be read as CSV ({exc}): a cell "
                             f"longer than {csv.field_size_limit():,} characters or a stray "
-                            f"quote?") from None
+                            f"quote?", owner=what, key="path") from None
     except (OSError, UnicodeDecodeError) as exc:
         why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
-        raise SettingsError(f"{what}: 'path': expected a readable CSV text file; found that "
-                            f"'{path}' cannot be read ({why}).") from None
+        raise SettingsError(f"expected a readable CSV text file; found that "
+                            f"'{path}' cannot be read ({why}).", owner=what, key="path") from None
     if n < 2:
-        raise SettingsError(f"{w} needs a header row and at least one data row; found {n} rows.")
-    _check_times(times, what=w, where=f"column '{header[ti]}'", max_gap=max_gap,
+        raise SettingsError(f"{w} needs a header row and at least one data row; found {n} rows.",
+                            owner=what, key="path")
+    _check_times(times, what=what, where=f"{w}, column '{header[ti]}'", max_gap=max_gap, key="path",
                  row_of=lambda i: f"row {i + 2}")
     return times.tolist(), values.tolist()
