@@ -106,7 +106,7 @@ def test_constant_program_or_preview_off_changes_nothing():
 
 def test_bad_setting_and_bad_program_are_refused():
     dm = make_dlm(np.array([[0.9]]), np.array([[1.0]]), np.array([[1.0]]))
-    with pytest.raises(SettingsError, match="'setpoint_preview' setting must be true or false"):
+    with pytest.raises(SettingsError, match="key 'setpoint_preview': expected true or false"):
         mp.PredictiveController.from_settings(dm, {"setpoint_preview": "yes"})
     ctrl = mp.PredictiveController(dm, horizon=5, setpoint_preview=True).build()
     ctrl.reset()
