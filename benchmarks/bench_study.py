@@ -66,114 +66,109 @@ def _load() -> float:
 
 
 class _Timed:
-    """Wraps a bound method; accumulates its wall time."""
+    """Replaces ``owner.name`` (a class's method or a module's function) by a wrapper that
+    accumulates its wall time; ``restore()`` puts the original back."""
 
-    def __init__(self, fn):
-        self.fn, self.total, self.calls = fn, 0.0, 0
+    def __init__(self, owner, name, record=None):
+        self.owner, self.name, self.total, self.calls = owner, name, 0.0, 0
+        self.fn = getattr(owner, name)
+        fn, me = self.fn, self
 
-    def __call__(self, *a, **kw):
-        t0 = time.perf_counter()
-        try:
-            return self.fn(*a, **kw)
-        finally:
-            self.total += time.perf_counter() - t0
-            self.calls += 1
+        def timed(*a, **kw):
+            if record is not None:
+                record(*a, **kw)
+            t0 = time.perf_counter()
+            try:
+                return fn(*a, **kw)
+            finally:
+                me.total += time.perf_counter() - t0
+                me.calls += 1
+
+        setattr(owner, name, timed)
+
+    def restore(self):
+        setattr(self.owner, self.name, self.fn)
 
 
-# ------------------------------------------------------------------------------ 1. one case
 def profile_case(full: bool = True) -> dict:
-    from mpcproto.analysis import summarize
+    """One case through ``run_case`` with its parts timed in the same run (see the docstring)."""
+    import mpcproto.analysis as analysis
+    import mpcproto.scenario.runner as runner
+    from mpcproto.control.mpc import PredictiveController
     from mpcproto.scenario import expand, load_scenario, run_case
-    from mpcproto.scenario.criteria import evaluate_controller
-    from mpcproto.scenario.runner import build_controller, prepare
-    from mpcproto.scenario.study import case_scenario
-    from mpcproto.sim import ClosedLoop
+    from mpcproto.sim.closed_loop import ClosedLoop
+    from mpcproto.stepper import Plant
 
     scn = load_scenario(STUDY)
     cases = expand(scn, full=full)
-    case = cases[0]
     load = _load()
     t0 = time.perf_counter()
     run_case(cases[-1])                          # warm-up: models and controller built and cached
     warm = time.perf_counter() - t0
 
-    t0 = time.perf_counter()
-    rec = run_case(case)                         # the whole case as a batch worker runs it
-    whole = time.perf_counter() - t0
+    applied = []                                 # (state, packed input) of each sample: the floor's
+
+    def keep(plant, u, d, d_next=None):
+        plant._put(plant.k, np.asarray(u, float), np.asarray(d, float))
+        applied.append((plant.x.copy(), np.concatenate([u, d, plant._z_pair()])))
+
+    plants: list = []
+    reset = Plant.reset
+
+    def reset_and_note(self, *a, **kw):
+        plants.append(self)
+        return reset(self, *a, **kw)
+
+    Plant.reset = reset_and_note
+    timers = {"controller": _Timed(PredictiveController, "step"),
+              "sample": _Timed(ClosedLoop, "step"),
+              "plant": _Timed(Plant, "advance", record=keep),
+              "trajectory": _Timed(ClosedLoop, "trajectory"),
+              "summarize": _Timed(analysis, "summarize"),
+              "verdicts": _Timed(runner, "evaluate_controller")}
+    try:
+        t0 = time.perf_counter()
+        rec = run_case(cases[0])                 # the whole case as a batch worker runs it
+        whole = time.perf_counter() - t0
+    finally:
+        for t in timers.values():
+            t.restore()
+        Plant.reset = reset
     assert rec["status"] == "ok", rec.get("message")
+    plant = plants[-1]
+    tm = {k: t.total for k, t in timers.items()}
 
-    sc = case_scenario(case)
-    prep = prepare(sc, base_parameters=dict(case.raw["plant"].get("parameters") or {}),
-                   ci=case.ci)
-    (label, spec), = sc.data["controllers"].items()
-    ctl = build_controller(label, spec, prep)
-    cl = ClosedLoop(prep.plant, ctl, op=prep.op, Ts=sc.sample_time, duration=prep.duration,
-                    rng=rec["seed"], **prep.sim)
-    cl.reset()
-    plugin = cl.plant.plugin
-    ctl_step = _Timed(ctl.step)
-    ctl.step = ctl_step                          # instance attribute: this run only
-    adv = _Timed(cl.plant.advance)
-    cl.plant.advance = adv
-    applied = []                                 # the packed input of each sample, for the floor
-    inner = adv.fn
-
-    def advance(u, d, d_next=None):
-        p = cl.plant
-        p._put(p.k, np.asarray(u, float), np.asarray(d, float))
-        applied.append((p.x.copy(), np.concatenate([u, d, p._z_pair(), (1.0,)])))
-        return inner(u, d, d_next)
-
-    adv.fn = advance
+    # the recording of the inputs (for the floor) ran inside the plant's timer: measured alone
     t0 = time.perf_counter()
-    while cl.step():
-        pass
-    loop = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    traj = cl.trajectory()
-    t_traj = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    compared = {cr[k] for cr in sc.data["criteria"] for k in ("cv", "variable") if k in cr}
-    block = summarize(traj, compared=compared if sc.data["criteria"] else None)
-    evaluate_controller(sc.data["criteria"], label, block, traj)
-    t_kpi = time.perf_counter() - t0
-    del ctl.step                                 # the cached controller back to its own method
-
-    # the same-run check that the profiled loop is the batch's: same true CVs as run_case's KPIs
-    same = block["kpi"]["cv"]["cv1"]["iae"] == rec["controllers"][label]["kpi"]["cv"]["cv1"]["iae"]
-
-    # floor of the plant stepping: the exact map as one bare mat-vec per sample.  The timed part
-    # of the stepper's advance above also packed the input (done again in the floor: concatenate)
-    M, C, H = cl.plant._M, cl.plant._C, cl.plant._H
-    xs = [a[0] for a in applied]
-    parts = [a[1][:-1] for a in applied]
-    t0 = time.perf_counter()
-    for x, b in zip(xs, parts):
-        C @ (M @ np.concatenate([x, b, (1.0,)])) + H[:, :-1] @ b[:H.shape[1] - 1] + H[:, -1]
-    floor = time.perf_counter() - t0
-    # the recording wrapper above costs a little; subtract what it adds (measured alone)
-    t0 = time.perf_counter()
-    for x, b in zip(xs, parts):
+    for x, b in applied:
         x.copy()
-        np.concatenate([b, (1.0,)])
+        np.concatenate([b, ()])
     wrap = time.perf_counter() - t0
-    plant_s = max(adv.total - wrap, 0.0)
+    plant_s = max(tm["plant"] - wrap, 0.0)
+    # floor: the same exact map as one bare mat-vec per sample, state and CVs at the sample's end
+    M, C, H = plant._M, plant._C, plant._H
+    nh = H.shape[1] - 1
+    t0 = time.perf_counter()
+    for x, b in applied:
+        C @ (M @ np.concatenate([x, b, (1.0,)])) + H[:, :nh] @ b[:nh] + H[:, nh]
+    floor = time.perf_counter() - t0
     n = len(applied)
-    rest = loop - ctl_step.total - adv.total
-    out = {
-        "case": case.case_id, "samples": n, "integrator": plugin, "load_before": load,
-        "warm_up_case_s": warm, "run_case_s": whole, "loop_s": loop,
-        "controller_s": ctl_step.total, "plant_s": plant_s, "plant_floor_s": floor,
-        "plant_vs_floor": plant_s / floor if floor > 0 else None,
-        "rest_of_sample_s": rest, "trajectory_s": t_traj, "kpis_s": t_kpi,
-        "outside_loop_s": whole - loop - t_traj - t_kpi,
-        "controller_ms_per_step": 1e3 * ctl_step.total / max(ctl_step.calls, 1),
+    parts = {"controller step": tm["controller"], "plant stepping": plant_s,
+             "rest of the sample (signals, instruments, actuators, recording)":
+                 tm["sample"] - tm["controller"] - tm["plant"],
+             "Trajectory": tm["trajectory"], "KPIs (summarize)": tm["summarize"],
+             "verdicts (criteria)": tm["verdicts"]}
+    parts["preparation, reset, result record (the rest of run_case)"] = \
+        whole - sum(parts.values()) - wrap
+    return {
+        "case": cases[0].case_id, "samples": n, "integrator": plant.plugin, "load_before": load,
+        "warm_up_case_s": warm, "run_case_s": whole, "parts_s": parts,
+        "plant_floor_s": floor, "plant_vs_floor": plant_s / floor if floor > 0 else None,
+        "controller_ms_per_step": 1e3 * tm["controller"] / max(timers["controller"].calls, 1),
         "plant_ms_per_step": 1e3 * plant_s / max(n, 1),
-        "same_numbers_as_run_case": bool(same),
-        "states": int(prep.plant.nx), "delays": int(prep.plant.nz),
+        "states": int(plant.model.nx), "delayed_inputs": int(plant.model.nz),
         "load_after": _load(),
     }
-    return out
 
 
 # ------------------------------------------------------------------------------ 2. the study
@@ -238,25 +233,18 @@ def main(argv=None) -> int:
 
     p = profile_case(full=full)
     report["profile"] = p
-    tot = p["loop_s"] + p["trajectory_s"] + p["kpis_s"]
-    print(f"\n1. one case ({p['case']}, {p['samples']} samples, plant {p['states']} states, "
-          f"{p['delays']} delayed inputs, integrator {p['integrator']!r}; load {p['load_before']}):")
-    print(f"   run_case {p['run_case_s']:.2f} s (warm-up case, building the models and the "
-          f"controller: {p['warm_up_case_s']:.2f} s)")
-    rows = [("controller step", p["controller_s"]), ("plant stepping", p["plant_s"]),
-            ("rest of the sample (signals, instruments, recording)", p["rest_of_sample_s"]),
-            ("Trajectory", p["trajectory_s"]), ("KPIs and verdicts", p["kpis_s"])]
-    for name, v in rows:
-        print(f"   {name:<55s}{v:8.3f} s {100 * v / tot:6.1f} %")
-    print(f"   {'preparation + result record (run_case - the above)':<55s}"
-          f"{p['outside_loop_s']:8.3f} s")
+    print(f"\n1. one case ({p['case']}, {p['samples']} samples; plant {p['states']} states, "
+          f"{p['delayed_inputs']} delayed inputs, integrator {p['integrator']!r}; load "
+          f"{p['load_before']} -> {p['load_after']}):")
+    print(f"   run_case {p['run_case_s']:.2f} s (the warm-up case before it, building the models "
+          f"and the controller: {p['warm_up_case_s']:.2f} s)")
+    for name, v in p["parts_s"].items():
+        print(f"   {name:<66s}{v:8.3f} s {100 * v / p['run_case_s']:6.1f} %")
     print(f"   controller {p['controller_ms_per_step']:.2f} ms/step; plant "
           f"{p['plant_ms_per_step']:.3f} ms/step = {p['plant_vs_floor']:.1f} x the bare mat-vec "
           f"of the same exact map ({1e3 * p['plant_floor_s'] / p['samples']:.3f} ms/step)")
     if p["integrator"] != "exact":
         print("   WARNING: the plant is not stepped by its exact discrete map")
-    if not p["same_numbers_as_run_case"]:
-        print("   WARNING: the profiled loop's KPIs differ from run_case's")
     if args.profile_only:
         _write(report)
         return 0

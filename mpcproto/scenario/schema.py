@@ -750,7 +750,7 @@ def _criterion_name(entry: Mapping) -> str:
 #: Sections a study may address, and how deep a key path goes in each.
 _ADDRESSABLE = {
     "scenario": ("duration", "seed"),
-    "plant": ("parameters",),
+    "plant": ("parameters", "elements"),
     "controller_model": ("parameters",),
     "operating_point": ("mvs", "dvs", "targets"),
     "controllers": None, "setpoints": None, "disturbances": None, "instruments": None,
@@ -773,9 +773,20 @@ def _check_target_key(c: _Ctx, raw: Mapping, k: str, where: str) -> None:
     sub = _ADDRESSABLE[head]
     if sub is not None and parts[1] not in sub:
         c.fail(where, f"a key path {head}.<{'|'.join(sub)}>...", f"{k!r}{suggest(str(parts[1]), sub)}")
-    if head in ("plant", "controller_model", "operating_point") and len(parts) != 3:
+    elements = head == "plant" and parts[1] == "elements"
+    if elements and (not isinstance(raw.get("plant"), Mapping)
+                     or raw["plant"].get("kind") != "transfer_matrix"):
+        c.fail(where, "plant.elements.<CV>.<input>.<key> only where [plant] is a transfer matrix "
+               "(kind = \"transfer_matrix\"); a model's numbers are plant.parameters.<name>",
+               repr(k))
+    if elements and (len(parts) < 5 or parts[4] not in ("gain", "time_constants", "lead",
+                                                        "dead_time")):
+        c.fail(where, "a key path plant.elements.<CV>.<MV or DV>.<gain|time_constants[i]|lead|"
+               "dead_time>", repr(k))
+    if head in ("plant", "controller_model", "operating_point") and len(parts) != 3 \
+            and not elements:
         c.fail(where, f"a key path {head}.{parts[1]}.<name>", repr(k))
-    if head not in ("plant", "controller_model", "operating_point", "scenario"):
+    if elements or head not in ("plant", "controller_model", "operating_point", "scenario"):
         # the addressed entry must exist in the file (a sweep changes a value, it does not invent one)
         cur: Any = raw
         for p in parts[:-1]:

@@ -97,7 +97,9 @@ def _base_value(scn: Scenario, key: str) -> Any:
     """The file's value at *key*, or the model's default for a parameter / MV / DV not in the file."""
     parts = _split(key)
     try:
-        return get_path(scn.data, key, file=scn.file)
+        # a transfer matrix's elements are the file's table (scn.data holds it checked)
+        return get_path(scn.raw if parts[:2] == ["plant", "elements"] else scn.data, key,
+                        file=scn.file)
     except ScenarioError:
         pass
     from .build import controller_model, plant_model
@@ -267,12 +269,19 @@ def case_scenario(case: Case) -> Scenario:
     and the case.
     """
     raw = copy.deepcopy(case.raw)
+    if _moves_plant_matrix(case) and not raw.get("controller_model"):
+        # the controllers keep the file's matrix: a study of the plant's elements is model mismatch
+        raw["controller_model"] = copy.deepcopy(case.raw["plant"])
     for k, v in case.params.items():
         set_path(raw, k, v, file=case.file)
     try:
         return parse_scenario(raw, file=case.file, default_name=case.scenario)
     except ScenarioError as e:
         raise _blame(e, case) from None
+
+
+def _moves_plant_matrix(case: Case) -> bool:
+    return any(k.startswith("plant.elements.") for k in case.params)
 
 
 def _blame(e: ScenarioError, case: Case) -> ScenarioError:
