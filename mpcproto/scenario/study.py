@@ -27,7 +27,6 @@ fairly), and the first ``draws`` draws of a full study are the CI-sized study's 
 
 from __future__ import annotations
 
-import copy
 import itertools
 import math
 from collections.abc import Iterator
@@ -36,6 +35,7 @@ from typing import Any
 
 import numpy as np
 
+from .._specs import plain_copy
 from ..exceptions import ScenarioError
 from .schema import Scenario, _split, get_path, load_scenario, parse_scenario, set_path
 
@@ -268,10 +268,10 @@ def case_scenario(case: Case) -> Scenario:
     A value that makes the scenario invalid raises :class:`ScenarioError` naming the overridden key
     and the case.
     """
-    raw = copy.deepcopy(case.raw)
+    raw = plain_copy(case.raw)
     if _moves_plant_matrix(case) and not raw.get("controller_model"):
         # the controllers keep the file's matrix: a study of the plant's elements is model mismatch
-        raw["controller_model"] = copy.deepcopy(case.raw["plant"])
+        raw["controller_model"] = plain_copy(case.raw["plant"])
     for k, v in case.params.items():
         set_path(raw, k, v, file=case.file)
     try:
