@@ -10,7 +10,7 @@ Two units, each in closed loop against its own linear model with 10-15 % larger 
   draw-off DV with a random walk, an unmeasured step in caustic strength, setpoint steps, MV rate
   limits) at N = 20, 50, 100 (M = N/5);
 * **8 x 12 unit**: our own invented plant of FOPDT elements (:func:`unit_model`: the MV part of the
-  transfer matrix of ``scenarios/unit8x12.toml``, the unit of the 200-case study that
+  transfer matrix of ``benchmarks/studies/unit8x12.toml``, the unit of the 200-case study that
   ``benchmarks/bench_study.py`` times: 8 MVs, 12 CVs, each CV driven by its own MV and, with
   probability 0.45, by each other one; gains 0.2-2 either sign, time constants 3-30 min, dead times
   2-10 samples at Ts = 1 min); CVs 1-8 on setpoints (steps), CVs 9-12 in zones,
@@ -66,7 +66,7 @@ import mpcproto as mp  # noqa: E402
 from mpcproto.models.transfer_table import transfer_table_model  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parent / "results"
-UNIT_STUDY = Path(__file__).resolve().parents[1] / "scenarios" / "unit8x12.toml"
+UNIT_STUDY = Path(__file__).resolve().parent / "studies" / "unit8x12.toml"
 SEGMENT = 25
 
 
@@ -74,7 +74,7 @@ SEGMENT = 25
 # the units
 def unit_model():
     """Our invented 8-MV x 12-CV unit of FOPDT elements (time in min): the MVs' part of the
-    transfer matrix in ``scenarios/unit8x12.toml`` (its DVs left out)."""
+    transfer matrix in ``benchmarks/studies/unit8x12.toml`` (its DVs left out)."""
     import tomllib  # noqa: PLC0415
 
     table = tomllib.loads(UNIT_STUDY.read_text())["plant"]

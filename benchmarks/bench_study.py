@@ -4,7 +4,7 @@ Run:  python benchmarks/bench_study.py           (the full study: ~10 min on 2 f
       python benchmarks/bench_study.py --quick   (the CI-sized study: 2 of the 200 cases)
       python benchmarks/bench_study.py --profile-only   (part 1 only, one case in this process)
 
-The study is ``scenarios/unit8x12.toml`` (our own invented unit: 8 MVs, 12 CVs, FOPDT elements with
+The study is ``benchmarks/studies/unit8x12.toml`` (our own invented unit: 8 MVs, 12 CVs, FOPDT elements with
 time constants 3-30 min and dead times 2-10 samples at Ts = 1 min, 6 CVs with limits, a measured and
 an unmeasured DV; one MPC at N = 120, M = 24; 200 Monte Carlo cases of setpoint moves, upsets,
 noise and unmodelled sensor dynamics with ``--full``).
@@ -23,7 +23,7 @@ noise and unmodelled sensor dynamics with ``--full``).
    the leanest honest way to advance this plant; the ratio says what the stepper's bookkeeping
    (delay ring buffer, CVs at the end of the sample, the finiteness check) costs.  The controller's
    own floor (DAQP alone on the same QPs) is ``benchmarks/bench_mpc.py``'s.
-2. **The study through the real CLI**: ``mpcproto batch scenarios/unit8x12.toml --full --workers 2
+2. **The study through the real CLI**: ``mpcproto batch benchmarks/studies/unit8x12.toml --full --workers 2
    --out DIR`` in a subprocess (wall time from start to exit, reports included), then
    ``DIR/results.jsonl``: every case present once, complete (``store.is_complete``) and with status
    ``ok``.  Beside the wall time: the sum of the cases' own time (``elapsed_s``) and CPU time
@@ -57,7 +57,7 @@ import numpy as np  # noqa: E402
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 RESULTS = HERE / "results"
-STUDY = ROOT / "scenarios" / "unit8x12.toml"
+STUDY = HERE / "studies" / "unit8x12.toml"
 TARGET_S = 600.0
 
 
@@ -200,7 +200,7 @@ def run_study(out_dir: Path, full: bool, workers: int = 2) -> dict:
         per_worker[r.get("worker_pid")] = per_worker.get(r.get("worker_pid"), 0.0) + r["elapsed_s"]
     busiest = max(per_worker.values(), default=0.0)
     return {
-        "command": "mpcproto batch scenarios/unit8x12.toml" + (" --full" if full else "")
+        "command": "mpcproto batch benchmarks/studies/unit8x12.toml" + (" --full" if full else "")
                    + f" --workers {workers}",
         "exit_code": cp.returncode, "stderr_tail": cp.stderr.strip().splitlines()[-3:],
         "cases_expected": len(expected), "records": len(recs), "distinct_ids": len(set(ids)),

@@ -271,3 +271,15 @@ def test_a_study_key_into_the_elements_must_name_an_element_key(key, fragment, t
     err = capsys.readouterr().err
     assert "key 'study.sweep[0].key'" in err and fragment in err, err
     assert "Traceback" not in err
+
+
+def test_the_8x12_benchmark_study_checks(capsys):
+    # benchmarks/studies/unit8x12.toml is kept out of scenarios/ (the CI study set): checked here,
+    # its 200 cases included (the drawn plant elements exist in its matrix)
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parents[1] / "benchmarks" / "studies" / "unit8x12.toml"
+    rc = main(["check", "--no-controllers", str(path)])
+    out, err = capsys.readouterr()
+    assert rc == 0, err
+    assert "model transfer matrix 'unit8x12'" in out and "200 with --full" in out, out
