@@ -202,20 +202,8 @@ def test_missing_and_unknown_variables_are_named(tmp_path):
     assert math.isfinite(one_element("{ gain = 1.0, time_constants = [2.0] }").nominal("cv")[0])
 
 
-STUDY_SCENARIO = '''
-[scenario]
-sample_time = 1.0
-duration = 30.0
-seed = 7
-[plant]
-kind = "transfer_matrix"
-time_unit = "min"
-[plant.mvs]
-valve = { unit = "%", nominal = 50.0, low = 0.0, high = 100.0 }
-[plant.cvs]
-y = { unit = "degC", nominal = 80.0, low = 0.0, high = 200.0 }
-[plant.elements.y]
-valve = { gain = 1.0, time_constants = [3.0], dead_time = 1.0 }
+# the plant of TM_SCENARIO (gain 1, 3 min lag, 1 min dead time) with no [controller_model]
+STUDY_SCENARIO = TM_SCENARIO.split("[controller_model]")[0] + '''
 [controllers.mpc]
 horizon = 20
 [study]
