@@ -10,10 +10,11 @@ Two units, each in closed loop against its own linear model with 10-15 % larger 
 * **blending tank** (``mpcproto.make_model("blending_tank")``, Ts = 10 s; 3 MVs, 3 CVs, a measured
   draw-off DV with a random walk, an unmeasured step in caustic strength, setpoint steps, MV rate
   limits) at N = 20, 50, 100 (M = N/5);
-* **8 x 12 unit**: our own invented plant of FOPDT elements (:func:`unit_model`, seeded numbers:
-  8 MVs, 12 CVs, each CV driven by its own MV and, with probability 0.45, by each other one; gains
-  0.2-2 either sign, time constants 3-30 min, dead times 2-10 samples at Ts = 1 min), built with
-  :func:`mpcproto.models.transfer_matrix_model`; CVs 1-8 on setpoints (steps), CVs 9-12 in zones,
+* **8 x 12 unit**: our own invented plant of FOPDT elements (:func:`unit_model`: the MV part of the
+  transfer matrix of ``benchmarks/studies/unit8x12.toml``, the unit of the 200-case study that
+  ``benchmarks/bench_study.py`` times: 8 MVs, 12 CVs, each CV driven by its own MV and, with
+  probability 0.45, by each other one; gains 0.2-2 either sign, time constants 3-30 min, dead times
+  2-10 samples at Ts = 1 min); CVs 1-8 on setpoints (steps), CVs 9-12 in zones,
   6 CVs with soft limits, output disturbances pushing CVs 9-12 to their limits, hard MV limits and
   rate limits; at N = 60, 120, 240 (M = N/5).
 
@@ -64,29 +65,25 @@ from pathlib import Path  # noqa: E402
 import numpy as np  # noqa: E402
 
 import mpcproto as mp  # noqa: E402
-from mpcproto.models import transfer_matrix_model  # noqa: E402
+from mpcproto.models.transfer_table import transfer_table_model  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parent / "results"
+UNIT_STUDY = Path(__file__).resolve().parent / "studies" / "unit8x12.toml"
 SEGMENT = 25
 
 
 # ------------------------------------------------------------------------------------------------
 # the units
-def unit_model(seed: int = 2026):
-    """Our invented 8-MV x 12-CV unit of FOPDT elements (time in min)."""
-    rng = np.random.default_rng(seed)
-    mvs = [f"mv{j + 1}" for j in range(8)]
-    cvs = [f"cv{i + 1}" for i in range(12)]
-    elements = {}
-    for i, c in enumerate(cvs):
-        row = {}
-        for j, m in enumerate(mvs):
-            if j == i % 8 or rng.random() < 0.45:
-                row[m] = {"gain": float(rng.choice([-1.0, 1.0]) * rng.uniform(0.2, 2.0)),
-                          "tau": float(rng.uniform(3.0, 30.0)),
-                          "dead_time": float(rng.integers(2, 11))}
-        elements[c] = row
-    return transfer_matrix_model("unit8x12", mvs, cvs, elements, time_unit="min")
+def unit_model():
+    """Our invented 8-MV x 12-CV unit of FOPDT elements (time in min): the MVs' part of the
+    transfer matrix in ``benchmarks/studies/unit8x12.toml`` (its DVs left out)."""
+    import tomllib  # noqa: PLC0415
+
+    table = tomllib.loads(UNIT_STUDY.read_text())["plant"]
+    mvs = table["mvs"]
+    table = dict(table, dvs={}, elements={cv: {i: e for i, e in row.items() if i in mvs}
+                                          for cv, row in table["elements"].items()})
+    return transfer_table_model(table)
 
 
 def mismatched(dm, factor):

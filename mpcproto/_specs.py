@@ -8,6 +8,7 @@ of the package but the exceptions and :func:`~mpcproto.model.suggest`.
 
 from __future__ import annotations
 
+import copy
 import math
 import numbers
 from collections.abc import Mapping, Sequence
@@ -20,7 +21,21 @@ from .model import suggest
 from .validation import shown
 
 __all__ = ["shown", "as_float", "choice", "number", "check_keys", "refuse_unknown_keys",
-           "paired_series"]
+           "paired_series", "plain_copy"]
+
+
+def plain_copy(v: Any) -> Any:
+    """A deep copy of plain data (a parsed TOML file: dicts, lists, numbers, strings), several
+    times faster than ``copy.deepcopy``; anything else is handed to ``copy.deepcopy``.  Recursive:
+    for data whose nesting was checked (``scenario.schema.MAX_DEPTH``)."""
+    t = type(v)
+    if t is dict:
+        return {k: plain_copy(x) for k, x in v.items()}
+    if t is list:
+        return [plain_copy(x) for x in v]
+    if t in (str, float, int, bool) or v is None:
+        return v
+    return copy.deepcopy(v)
 
 
 def refuse_unknown_keys(spec: Mapping[Any, Any], allowed: Sequence[str], *, what: str,

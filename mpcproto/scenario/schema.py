@@ -14,7 +14,6 @@ Every key is documented in ``docs/scenario-format.md``.
 
 from __future__ import annotations
 
-import copy
 import json
 import math
 import re
@@ -26,7 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from ..exceptions import ScenarioError
-from .._specs import as_float, shown as _show
+from .._specs import as_float, plain_copy, shown as _show
 from ..model import suggest
 
 if sys.version_info >= (3, 11):
@@ -638,7 +637,7 @@ def parse_scenario(raw: Mapping, *, file: str = "<dict>", default_name: str = "s
         c.fail("study.draws", "a number of Monte Carlo draws >= 1 (study.draw entries are given)", "0")
     _check_study_size(c, st, sweeps, draws if draw_specs else 0, full_draws if draw_specs else 0)
     data["study"] = {"draws": draws, "full_draws": full_draws, "sweep": sweeps, "draw": draw_specs}
-    return Scenario(name=name, data=data, file=file, raw=copy.deepcopy(dict(raw)))
+    return Scenario(name=name, data=data, file=file, raw=plain_copy(dict(raw)))
 
 
 def _model_section(c: _Ctx, v: Any, section: str, *, required: bool) -> dict[str, Any]:
@@ -712,7 +711,24 @@ def _check_study_size(c: _Ctx, st: Mapping, sweeps: list, draws: int, full_draws
 
 
 def _check_depth(c: _Ctx, raw: Mapping) -> None:
-    """Refuse tables/arrays nested deeper than MAX_DEPTH (checked without recursion)."""
+    """Refuse tables/arrays nested deeper than MAX_DEPTH (checked without recursion; the key
+    paths are formed only when the nesting is too deep)."""
+    stack: list[tuple[Any, int]] = [(raw, 0)]
+    while stack:
+        v, depth = stack.pop()
+        if depth > MAX_DEPTH:
+            _deepest_key(c, raw)
+        t = type(v)
+        if t in (str, float, int, bool):
+            continue
+        if t is dict or isinstance(v, Mapping):
+            stack.extend((x, depth + 1) for x in v.values())
+        elif isinstance(v, list):
+            stack.extend((x, depth + 1) for x in v)
+
+
+def _deepest_key(c: _Ctx, raw: Mapping) -> None:
+    """The same walk as :func:`_check_depth`, naming the first key path too deep."""
     stack: list[tuple[Any, str, int]] = [(raw, "", 0)]
     while stack:
         v, key, depth = stack.pop()
@@ -746,7 +762,7 @@ def _criterion_name(entry: Mapping) -> str:
 #: Sections a study may address, and how deep a key path goes in each.
 _ADDRESSABLE = {
     "scenario": ("duration", "seed"),
-    "plant": ("parameters",),
+    "plant": ("parameters", "elements"),
     "controller_model": ("parameters",),
     "operating_point": ("mvs", "dvs", "targets"),
     "controllers": None, "setpoints": None, "disturbances": None, "instruments": None,
@@ -769,9 +785,20 @@ def _check_target_key(c: _Ctx, raw: Mapping, k: str, where: str) -> None:
     sub = _ADDRESSABLE[head]
     if sub is not None and parts[1] not in sub:
         c.fail(where, f"a key path {head}.<{'|'.join(sub)}>...", f"{k!r}{suggest(str(parts[1]), sub)}")
-    if head in ("plant", "controller_model", "operating_point") and len(parts) != 3:
+    elements = head == "plant" and parts[1] == "elements"
+    if elements and (not isinstance(raw.get("plant"), Mapping)
+                     or raw["plant"].get("kind") != "transfer_matrix"):
+        c.fail(where, "plant.elements.<CV>.<input>.<key> only where [plant] is a transfer matrix "
+               "(kind = \"transfer_matrix\"); a model's numbers are plant.parameters.<name>",
+               repr(k))
+    if elements and (len(parts) < 5 or parts[4] not in ("gain", "time_constants", "lead",
+                                                        "dead_time")):
+        c.fail(where, "a key path plant.elements.<CV>.<MV or DV>.<gain|time_constants[i]|lead|"
+               "dead_time>", repr(k))
+    if head in ("plant", "controller_model", "operating_point") and len(parts) != 3 \
+            and not elements:
         c.fail(where, f"a key path {head}.{parts[1]}.<name>", repr(k))
-    if head not in ("plant", "controller_model", "operating_point", "scenario"):
+    if elements or head not in ("plant", "controller_model", "operating_point", "scenario"):
         # the addressed entry must exist in the file (a sweep changes a value, it does not invent one)
         cur: Any = raw
         for p in parts[:-1]:

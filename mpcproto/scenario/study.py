@@ -27,7 +27,6 @@ fairly), and the first ``draws`` draws of a full study are the CI-sized study's 
 
 from __future__ import annotations
 
-import copy
 import itertools
 import math
 from collections.abc import Iterator
@@ -36,6 +35,7 @@ from typing import Any
 
 import numpy as np
 
+from .._specs import plain_copy
 from ..exceptions import ScenarioError
 from .schema import Scenario, _split, get_path, load_scenario, parse_scenario, set_path
 
@@ -97,7 +97,9 @@ def _base_value(scn: Scenario, key: str) -> Any:
     """The file's value at *key*, or the model's default for a parameter / MV / DV not in the file."""
     parts = _split(key)
     try:
-        return get_path(scn.data, key, file=scn.file)
+        # a transfer matrix's elements are the file's table (scn.data holds it checked)
+        return get_path(scn.raw if parts[:2] == ["plant", "elements"] else scn.data, key,
+                        file=scn.file)
     except ScenarioError:
         pass
     from .build import controller_model, plant_model
@@ -266,13 +268,20 @@ def case_scenario(case: Case) -> Scenario:
     A value that makes the scenario invalid raises :class:`ScenarioError` naming the overridden key
     and the case.
     """
-    raw = copy.deepcopy(case.raw)
+    raw = plain_copy(case.raw)
+    if _moves_plant_matrix(case) and not raw.get("controller_model"):
+        # the controllers keep the file's matrix: a study of the plant's elements is model mismatch
+        raw["controller_model"] = plain_copy(case.raw["plant"])
     for k, v in case.params.items():
         set_path(raw, k, v, file=case.file)
     try:
         return parse_scenario(raw, file=case.file, default_name=case.scenario)
     except ScenarioError as e:
         raise _blame(e, case) from None
+
+
+def _moves_plant_matrix(case: Case) -> bool:
+    return any(k.startswith("plant.elements.") for k in case.params)
 
 
 def _blame(e: ScenarioError, case: Case) -> ScenarioError:

@@ -567,11 +567,8 @@ class ClosedLoop:
         put("mvlo", m.mv_names, self.MVLO)
         put("mvhi", m.mv_names, self.MVHI)
         put("fault", self._fault_vars(), self._fault_flags)
-        keys: list[str] = []
-        for dg in self._diag[:n]:
-            for key in dg:
-                if key not in keys:
-                    keys.append(key)
+        # every diagnostics key in order of first appearance (a dict: one hash per key and row)
+        keys = dict.fromkeys(key for dg in self._diag[:n] for key in dg)
         text = {"status": self._status[:n]}
         for key in keys:
             if key.startswith("text:"):
