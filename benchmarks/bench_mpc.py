@@ -387,8 +387,8 @@ PHASES = ("inputs_limits", "estimator", "steady_target", "free_response_gradient
 
 def profile_step(unit, N, steps):
     """Per-phase wall time of each step (median over *steps*, microseconds): timers around the
-    real methods of one controller instance (and around ``limit_activity`` in the runtime
-    module, restored afterwards).  ``inputs_limits``: the step's limits and setpoints
+    real methods of one controller instance (and around ``project_with_activity`` in the
+    runtime module, restored afterwards).  ``inputs_limits``: the step's limits and setpoints
     (``_limits``); ``estimator``: its update; ``steady_target``: both stages; ``free_response_
     gradient``: the condensed QP's data (free response, gradient, bounds); ``solve``: DAQP
     update + solve and the slacks read back; ``projection``: the exact limit projection and
@@ -416,10 +416,9 @@ def profile_step(unit, N, steps):
         timed(ctrl.target_, "solve", "steady_target")
     timed(ctrl.condensed_, "data", "free_response_gradient")
     timed(ctrl.condensed_, "solve", "_condensed")
-    timed(ctrl, "_apply_limits", "projection")
     timed(ctrl, "_finish", "finish")
-    saved = mpc_runtime.limit_activity
-    timed(mpc_runtime, "limit_activity", "_activity")
+    saved = mpc_runtime.project_with_activity
+    timed(mpc_runtime, "project_with_activity", "projection")
     try:
         loop = Loop(unit, ctrl, seed=1)
         loop.run(30)
@@ -429,12 +428,11 @@ def profile_step(unit, N, steps):
             run = loop.run(1)
             c = dict(cur)
             c["solve"] = c.pop("_condensed", 0.0) - c.get("free_response_gradient", 0.0)
-            c["projection"] = c.get("projection", 0.0) + c.pop("_activity", 0.0)
             c["step"] = run["step"][0]
             c["rest"] = c["step"] - sum(c.get(k, 0.0) for k in PHASES[:-1])
             rows.append(c)
     finally:
-        mpc_runtime.limit_activity = saved
+        mpc_runtime.project_with_activity = saved
     med = {k: float(np.median([r.get(k, 0.0) for r in rows]) * 1e6) for k in PHASES + ("step",)}
     med["sum_of_medians"] = float(sum(med[k] for k in PHASES))
     return med

@@ -302,12 +302,9 @@ class SteadyTarget:
             res = self._solve_daqp(data, v0, y0, u0)
         else:
             res = self._solve_cvxpy(data, v0, y0, u0, solver, options)
+        if res.accepted:       # e and s computed when read (the controller reads neither)
+            res.values = _TargetValues(res.values, data, self._sy)
         res.solve_ms = (time.perf_counter() - t0) * 1e3
-        if res.accepted:
-            ys_s = res.values["ys"] / self._sy
-            blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
-            res.values["e"] = ys_s - np.minimum(np.maximum(ys_s, blo), np.maximum(blo, bhi))
-            res.values["s"] = np.maximum(np.maximum(llo - ys_s, ys_s - lhi), 0.0) * self._sy
         return res
 
     def _solve_daqp(self, data, v0, y0, u0):
@@ -463,6 +460,25 @@ class SteadyTarget:
         v = np.concatenate([np.asarray(xs.value, float), np.asarray(us.value, float)])
         vals = self._values(v, y0 - self._Cy @ v0)
         return QPResult(status="optimal", accepted=True, values=vals, iterations=iters)
+
+
+class _TargetValues(dict):
+    """The target's values; ``e`` (band error, scaled) and ``s`` (limit violation, engineering
+    units) are computed on first read from the stored bounds."""
+
+    def __init__(self, values, data, sy):
+        super().__init__(values)
+        self._data, self._sy = data, sy
+
+    def __missing__(self, key):
+        if key not in ("e", "s"):
+            raise KeyError(key)
+        data = self._data
+        ys_s = self["ys"] / self._sy
+        blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
+        self["e"] = ys_s - np.minimum(np.maximum(ys_s, blo), np.maximum(blo, bhi))
+        self["s"] = np.maximum(np.maximum(llo - ys_s, ys_s - lhi), 0.0) * self._sy
+        return self[key]
 
 
 def _workspace(daqp, H, f, A, bu, bl, sense):
