@@ -200,6 +200,10 @@ class CondensedQP:
             self._PxN = PxN
             self._GxN = GxN
         self._H0 = 0.5 * (H0 + H0.T)
+        self._bands_idx = np.array([np.arange(zs[k].start, zs[k].stop) for k in
+                                    ("band_lo", "band_hi", "lim_lo", "lim_hi")])   # (4, ny)
+        self._q_active = self._w["cv_weight"] > 0
+        self._lim_weighted = (self._w["limit_linear"] > 0) | (self._w["limit_quadratic"] > 0)
         self._structs: dict[bytes, dict[str, Any]] = {}
         self.is_built = True
         return self
@@ -272,16 +276,17 @@ class CondensedQP:
         su, sy = self._su, self._sy
         N, M, n = self.N, self.M, self.n_variables_
         ny = self.ny
-        band_lo, band_hi = z[zs["band_lo"]] / sy, z[zs["band_hi"]] / sy
-        lim_lo, lim_hi = z[zs["lim_lo"]] / sy, z[zs["lim_hi"]] / sy
+        # the four CV blocks (band_lo, band_hi, lim_lo, lim_hi) scaled in one division
+        bands = z.take(self._bands_idx) / sy
+        band_lo, band_hi, lim_lo, lim_hi = bands
         rate = z[zs["rate"]] / su
         q = self._w["cv_weight"]
         lq, hq = self._w["limit_linear"], self._w["limit_quadratic"]
-        fin_lo, fin_hi = np.isfinite(band_lo), np.isfinite(band_hi)
-        active = q > 0
-        eq = active & fin_lo & fin_hi & (band_lo == band_hi)
-        zone = active & ~eq & (fin_lo | fin_hi)
-        lim = ((lq > 0) | (hq > 0)) & (np.isfinite(lim_lo) | np.isfinite(lim_hi))
+        fin = np.isfinite(bands)
+        fin_lo, fin_hi = fin[0], fin[1]
+        eq = self._q_active & fin_lo & fin_hi & (band_lo == band_hi)
+        zone = self._q_active & ~eq & (fin_lo | fin_hi)
+        lim = self._lim_weighted & (fin[2] | fin[3])
         # a zone whose ends are the CV's limits shares the limit's row: q v^2 + l v + h v^2
         merged = zone & lim & (band_lo == lim_lo) & (band_hi == lim_hi)
         if self._preview:
