@@ -1,7 +1,8 @@
 """Predictive controller benchmark: the whole controller step against DAQP alone on the same QP.
 
 Run ``python benchmarks/bench_mpc.py`` (``--quick``: 100 instead of 400 samples per horizon;
-``--only tank`` or ``--only unit8x12``: one unit); prints tables and writes
+``--only tank`` or ``--only unit8x12``: one unit; ``--budget``: only the per-phase budget
+tables, nothing written); prints tables and writes
 ``benchmarks/results/bench_mpc.json`` (``bench_mpc_<unit>.json`` with ``--only``).  BLAS is capped at one thread (as in the batch workers):
 on a shared 2-core machine a multithreaded BLAS spends more time spinning than computing.
 
@@ -38,9 +39,9 @@ Per horizon:
 * **build**: ``build()`` time (median of 3) and **memory**: peak Python heap (tracemalloc) during
   build + 50 steps (DAQP's C workspaces are outside tracemalloc: see the RSS growth);
 * **fit**: build time and build heap of the 8 x 12 unit over N = 30..240, exponent of a log-log fit;
-* **profile** (8 x 12, N = 120; tank, N = 50): the parts of a step -- estimator update, steady
-  target, condensed data (free response, gradient, bounds), DAQP update+solve, the rest
-  (limits, projection, diagnostics).
+* **budget** (8 x 12, N = 120; tank, N = 50): median wall time of each phase of a step, in
+  microseconds (:func:`profile_step`): inputs and limits, estimator update, steady target, free
+  response + gradient + bounds, DAQP solve, projection, finish, the rest.
 
 Targets (issue 19): 8 x 12, N = 120: step median <= 4x the floor, build <= 0.5 s, memory <= 100 MB;
 build and memory growing at most linearly in N; tank: step <= 10x the floor, build <= 0.2 s.
@@ -188,9 +189,10 @@ class Loop:
         for _ in range(steps):
             k = self.k
             y, dv, tg, wd = unit.sample(k, self.x)
+            meas = mp.Measurement.now(y, k * p.Ts)           # the caller's work, not timed
             c0 = time.thread_time()
             t0 = time.perf_counter()
-            out = ctrl.step(k * p.Ts, mp.Measurement.now(y, k * p.Ts), dv, tg)
+            out = ctrl.step(k * p.Ts, meas, dv, tg)
             out_["step"].append(time.perf_counter() - t0)
             out_["cpu"].append(time.thread_time() - c0)
             dg = out.diagnostics
@@ -375,11 +377,25 @@ def bench_horizon(unit, N, steps):
     }
 
 
+#: the phases of a step (the budget table), in the order they run
+PHASES = ("inputs_limits", "estimator", "steady_target", "free_response_gradient", "solve",
+          "projection", "finish", "rest")
+
+
 def profile_step(unit, N, steps):
-    """Time the parts of the step (instance-level timers around the real methods)."""
+    """Per-phase wall time of each step (median over *steps*, microseconds): timers around the
+    real methods of one controller instance (and around ``project_with_activity`` in the
+    runtime module, restored afterwards).  ``inputs_limits``: the step's limits and setpoints
+    (``_limits``); ``estimator``: its update; ``steady_target``: both stages; ``free_response_
+    gradient``: the condensed QP's data (free response, gradient, bounds); ``solve``: DAQP
+    update + solve and the slacks read back; ``projection``: the exact limit projection and
+    the limit activity; ``finish``: status, estimator predict, output; ``rest``: the step minus
+    these (input checks, filling the QP inputs, diagnostics of the plan).  Each timer costs
+    about 0.2 us."""
+    from mpcproto.control import mpc_runtime
+
     ctrl = mp.PredictiveController.from_settings(unit.dm, unit.settings(N)).build()
-    acc = {"estimator": 0.0, "condensed_data": 0.0, "daqp": 0.0, "target": 0.0}
-    est, cond, tgt = ctrl.estimator_, ctrl.condensed_, ctrl.target_
+    cur = {}
 
     def timed(obj, name, key):
         f = getattr(obj, name)
@@ -387,27 +403,53 @@ def profile_step(unit, N, steps):
         def w(*a, **kw):
             t0 = time.perf_counter()
             r = f(*a, **kw)
-            acc[key] += time.perf_counter() - t0
+            cur[key] = cur.get(key, 0.0) + time.perf_counter() - t0
             return r
         setattr(obj, name, w)
 
-    timed(est, "update", "estimator")
-    timed(cond, "data", "condensed_data")
-    timed(tgt, "solve", "target")
-    loop = Loop(unit, ctrl, seed=1)
-    loop.run(30)
-    for k in acc:
-        acc[k] = 0.0
-    run = loop.run(steps)
-    total = float(np.sum(run["step"]))
-    acc["daqp"] = float(np.sum(run["solve"]))       # solve_ms: DAQP update + solve + slacks
-    acc["rest"] = total - sum(acc.values())
-    return {k: v / steps * 1e3 for k, v in acc.items()} | {"step_total_ms": total / steps * 1e3}
+    timed(ctrl, "_limits", "inputs_limits")
+    timed(ctrl.estimator_, "update", "estimator")
+    if ctrl.target_ is not None:
+        timed(ctrl.target_, "solve", "steady_target")
+    timed(ctrl.condensed_, "data", "free_response_gradient")
+    timed(ctrl.condensed_, "solve", "_condensed")
+    timed(ctrl, "_finish", "finish")
+    saved = mpc_runtime.project_with_activity
+    timed(mpc_runtime, "project_with_activity", "projection")
+    try:
+        loop = Loop(unit, ctrl, seed=1)
+        loop.run(30)
+        rows = []
+        for _ in range(steps):
+            cur.clear()
+            run = loop.run(1)
+            c = dict(cur)
+            c["solve"] = c.pop("_condensed", 0.0) - c.get("free_response_gradient", 0.0)
+            c["step"] = run["step"][0]
+            c["rest"] = c["step"] - sum(c.get(k, 0.0) for k in PHASES[:-1])
+            rows.append(c)
+    finally:
+        mpc_runtime.project_with_activity = saved
+    med = {k: float(np.median([r.get(k, 0.0) for r in rows]) * 1e6) for k in PHASES + ("step",)}
+    med["sum_of_medians"] = float(sum(med[k] for k in PHASES))
+    return med
+
+
+def print_budget(title, prof):
+    print(f"{title}: median us per step")
+    for k in PHASES + ("sum_of_medians", "step"):
+        print(f"  {k:24s} {prof[k]:8.1f}")
 
 
 def main(argv=()):
     argv = list(argv)
     quick = "--quick" in argv
+    if "--budget" in argv:                # the per-phase budget tables only (no files written)
+        units = [u for u in (Tank(), Unit()) if "--only" not in argv or u.name in argv]
+        for u, N in ((u, 50 if u.name == "tank" else 120) for u in units):
+            mp.PredictiveController.from_settings(u.dm, u.settings(10)).build()
+            print_budget(f"{u.name} N={N} step budget", profile_step(u, N, 100 if quick else 300))
+        return
     only = None
     if "--only" in argv:                  # --only tank | --only unit8x12
         i = argv.index("--only")
@@ -441,8 +483,8 @@ def main(argv=()):
     if only in (None, "tank"):
         tank = units[0]
         prof = profile_step(tank, 50, 100 if quick else 300)
-        print("tank N=50 step profile (ms per step):", {k: round(v, 4) for k, v in prof.items()})
-        out["profile_tank_N50_ms"] = prof
+        print_budget("tank N=50 step budget", prof)
+        out["profile_tank_N50_us"] = prof
         verdict.update({
             "tank_step_le_10x_floor": all(by[("tank", N)]["ratio_median"] <= 10.0
                                           for N in (50, 100)),
@@ -463,11 +505,11 @@ def main(argv=()):
         print(f"8x12 build over N={fitN}: {['%.3f' % t for t in fit_t]} s, exponent {ex_t:.2f}; "
               f"heap {['%.1f' % m for m in fit_m]} MB, exponent {ex_m:.2f}")
         prof = profile_step(unit, 120, 100 if quick else 300)
-        print("8x12 N=120 step profile (ms per step):", {k: round(v, 4) for k, v in prof.items()})
+        print_budget("8x12 N=120 step budget", prof)
         u120 = by[("unit8x12", 120)]
         out["fit"] = {"N": fitN, "build_s": fit_t, "build_heap_mb": fit_m, "exponent_build": ex_t,
                       "exponent_heap": ex_m}
-        out["profile_unit_N120_ms"] = prof
+        out["profile_unit_N120_us"] = prof
         verdict.update({
             "unit_N120_step_le_4x_floor": u120["ratio_median"] <= 4.0,
             "unit_N120_p95_le_3ms": u120["step_p95_ms"] <= 3.0,

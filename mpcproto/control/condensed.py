@@ -200,6 +200,10 @@ class CondensedQP:
             self._PxN = PxN
             self._GxN = GxN
         self._H0 = 0.5 * (H0 + H0.T)
+        self._bands_idx = np.array([np.arange(zs[k].start, zs[k].stop) for k in
+                                    ("band_lo", "band_hi", "lim_lo", "lim_hi")])   # (4, ny)
+        self._q_active = self._w["cv_weight"] > 0
+        self._lim_weighted = (self._w["limit_linear"] > 0) | (self._w["limit_quadratic"] > 0)
         self._structs: dict[bytes, dict[str, Any]] = {}
         self.is_built = True
         return self
@@ -247,12 +251,13 @@ class CondensedQP:
         fb = fG.reshape(n, int(eq.sum()), N).sum(axis=2)
         fref = fG / self._sy_t[r_eq][None, :] if self._preview else None   # times ref[r_eq]
         used = np.concatenate([r_zone, r_lim])
+        bb = np.empty(2 * m)
         st = {"H": H, "A": Arows, "sense": sense, "rho": rho, "wlin": wlin, "r_eq": r_eq,
               "r_zone": r_zone, "r_lim": r_lim, "r_rate": r_rate, "free": self.free_[used],
               "fz": fz, "fb": fb, "fref": fref, "sy_zone": self._sy_t[r_zone],
               "n_eq": len(r_eq), "n_zone": len(r_zone),
               "n_lim": len(r_lim), "model": daqp.Model(), "ready": False, "wkey": None,
-              "bu": np.empty(m), "bl": np.empty(m), "lim_cv": np.flatnonzero(lim),
+              "b": bb, "bl": bb[:m], "bu": bb[m:], "lim_cv": np.flatnonzero(lim),
               "zone_cv": np.flatnonzero(zone), "eq_cv": np.flatnonzero(eq),
               "rate_mv": r_rate % nu, "rate_first": r_rate < nu}
         if len(self._structs) > 32:
@@ -271,16 +276,17 @@ class CondensedQP:
         su, sy = self._su, self._sy
         N, M, n = self.N, self.M, self.n_variables_
         ny = self.ny
-        band_lo, band_hi = z[zs["band_lo"]] / sy, z[zs["band_hi"]] / sy
-        lim_lo, lim_hi = z[zs["lim_lo"]] / sy, z[zs["lim_hi"]] / sy
+        # the four CV blocks (band_lo, band_hi, lim_lo, lim_hi) scaled in one division
+        bands = z.take(self._bands_idx) / sy
+        band_lo, band_hi, lim_lo, lim_hi = bands
         rate = z[zs["rate"]] / su
         q = self._w["cv_weight"]
         lq, hq = self._w["limit_linear"], self._w["limit_quadratic"]
-        fin_lo, fin_hi = np.isfinite(band_lo), np.isfinite(band_hi)
-        active = q > 0
-        eq = active & fin_lo & fin_hi & (band_lo == band_hi)
-        zone = active & ~eq & (fin_lo | fin_hi)
-        lim = ((lq > 0) | (hq > 0)) & (np.isfinite(lim_lo) | np.isfinite(lim_hi))
+        fin = np.isfinite(bands)
+        fin_lo, fin_hi = fin[0], fin[1]
+        eq = self._q_active & fin_lo & fin_hi & (band_lo == band_hi)
+        zone = self._q_active & ~eq & (fin_lo | fin_hi)
+        lim = self._lim_weighted & (fin[2] | fin[3])
         # a zone whose ends are the CV's limits shares the limit's row: q v^2 + l v + h v^2
         merged = zone & lim & (band_lo == lim_lo) & (band_hi == lim_hi)
         if self._preview:
@@ -344,10 +350,9 @@ class CondensedQP:
             d0 = np.where(st["rate_first"], (u_prev / su)[st["rate_mv"]], 0.0)
             bl[o:] = d0 - rr
             bu[o:] = d0 + rr
-        np.maximum(bl, -_INF, out=bl)           # (np.clip's dispatch costs more than these)
-        np.minimum(bl, _INF, out=bl)
-        np.maximum(bu, -_INF, out=bu)
-        np.minimum(bu, _INF, out=bu)
+        b = st["b"]                              # [bl; bu] in one buffer: two calls for four
+        np.maximum(b, -_INF, out=b)             # (np.clip's dispatch costs more than these)
+        np.minimum(b, _INF, out=b)
         weights = (st["rho"], st["rho"], st["wlin"], st["wlin"])
         return st["H"], f, st["A"], bu, bl, st["sense"], weights, st, key
 
@@ -376,7 +381,7 @@ class CondensedQP:
         x, _fval, flag, info = mdl.solve()
         ms = (time.perf_counter() - t0) * 1e3
         status = DAQP_EXIT.get(int(flag), f"exit_flag_{int(flag)}")
-        ok = flag in (1, 2) and np.all(np.isfinite(x))
+        ok = flag in (1, 2) and np.isfinite(x).all()
         lam = info.get("lam")
         self.last_info_ = {"exit_flag": int(flag), "active_set": int(np.count_nonzero(lam))
                            if lam is not None else None, "solver": "daqp",
@@ -390,7 +395,7 @@ class CondensedQP:
             if nl:
                 # only a row in the final active set can be violated (others hold to primal_tol)
                 o, nz_ = self.n_variables_ + st["n_zone"], st["n_zone"]
-                act = np.flatnonzero(lam[o:o + nl]) if lam is not None else np.arange(nl)
+                act = lam[o:o + nl].nonzero()[0] if lam is not None else np.arange(nl)
                 s = np.zeros(nl)
                 if act.size:
                     gu = A[nz_ + act] @ U

@@ -31,7 +31,7 @@ import numpy as np
 
 from ..exceptions import SettingsError
 
-__all__ = ["project_command", "project_value", "limit_activity"]
+__all__ = ["project_command", "project_value", "limit_activity", "project_with_activity"]
 
 
 def project_command(u, u_prev, lo, hi, max_move, *, what: str = "project_command") -> np.ndarray:
@@ -71,9 +71,13 @@ def project_command(u, u_prev, lo, hi, max_move, *, what: str = "project_command
     u = np.asarray(u, float)
     shape = u.shape
     cols = [_floats(a, shape) for a in (u, u_prev, lo, hi, max_move)]
-    # a handful of MVs: plain Python floats are much cheaper here than numpy calls
-    out = [project_value(*row, what=f"{what} (MV {j})") for j, row in enumerate(zip(*cols))]
-    return np.array(out, float).reshape(shape)
+    return np.array(_project(cols, what), float).reshape(shape)
+
+
+def _project(cols, what):
+    """:func:`project_value` per MV on the flat float lists (u, u_prev, lo, hi, max_move): a
+    handful of MVs, where plain Python floats are much cheaper than numpy calls."""
+    return [project_value(*row, what=f"{what} (MV {j})") for j, row in enumerate(zip(*cols))]
 
 
 def _floats(a, shape) -> list[float]:
@@ -121,8 +125,14 @@ def limit_activity(u, u_prev, lo, hi, max_move, *, rel_tol: float = 1e-6
     """
     u = np.asarray(u, float)
     shape = u.shape
+    cols = [_floats(x, shape) for x in (u, u_prev, lo, hi, max_move)]
+    return _activity(cols, shape, rel_tol)
+
+
+def _activity(cols, shape, rel_tol):
+    """:func:`limit_activity` on the flat float lists (u, u_prev, lo, hi, max_move)."""
     at_limit, at_rate, over_rate = [], [], []
-    for v, p, a, b, r in zip(*(_floats(x, shape) for x in (u, u_prev, lo, hi, max_move))):
+    for v, p, a, b, r in zip(*cols):
         tol = rel_tol * max(1.0, abs(v))
         move = abs(v - p)
         at_limit.append(abs(v - a) <= tol or abs(v - b) <= tol)
@@ -130,3 +140,16 @@ def limit_activity(u, u_prev, lo, hi, max_move, *, rel_tol: float = 1e-6
         over_rate.append(move > r + tol)
     return (np.array(at_limit, bool).reshape(shape), np.array(at_rate, bool).reshape(shape),
             np.array(over_rate, bool).reshape(shape))
+
+
+def project_with_activity(u, u_prev, lo, hi, max_move, *, what: str = "project_command",
+                          rel_tol: float = 1e-6):
+    """:func:`project_command` and the :func:`limit_activity` of its result in one pass:
+    ``(command, at_limit, at_rate, over_rate)`` (the inputs converted once; the same
+    arithmetic as the two calls)."""
+    u = np.asarray(u, float)
+    shape = u.shape
+    cols = [_floats(a, shape) for a in (u, u_prev, lo, hi, max_move)]
+    out = _project(cols, what)
+    cols[0] = out
+    return (np.array(out, float).reshape(shape),) + _activity(cols, shape, rel_tol)

@@ -15,8 +15,8 @@ import numpy as np
 from ..exceptions import NotBuiltError, SettingsError
 from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_MEASUREMENT_REJECTED,
                    STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutput, Measurement, Targets)
-from .limits import limit_activity, project_command
-from .mpc_results import StepDiagnostics
+from .limits import project_command, project_with_activity
+from .mpc_results import ABSENT, StepDiagnostics
 from .preview import rows_by_sample, stage_references
 
 __all__ = ["ControllerRuntime"]
@@ -117,7 +117,7 @@ class ControllerRuntime:
             raise SettingsError("PredictiveController.step(): targets must be a Targets object; got None.")
         mv_lo = np.maximum(self._vec(targets.mv_low, nu, "targets.mv_low", -np.inf), r["mv_low"])
         mv_hi = np.minimum(self._vec(targets.mv_high, nu, "targets.mv_high", np.inf), r["mv_high"])
-        if np.any(mv_lo > mv_hi):
+        if (mv_lo > mv_hi).any():
             j = int(np.flatnonzero(mv_lo > mv_hi)[0])
             raise SettingsError(f"PredictiveController.step(): MV '{m.mv_names[j]}' has its low "
                                 f"limit {mv_lo[j]:g} above its high limit {mv_hi[j]:g} (targets "
@@ -290,13 +290,13 @@ class ControllerRuntime:
         # ---- exact limits on what is applied (solver tolerance, a stale plan, a hold or a limit
         # that stepped past the MV must not break them): the one projection, hard limits win
         asked = u
-        u = self._apply_limits(asked, mv_lo, mv_hi, rate)
-        at_limit, at_rate, over_rate = limit_activity(u, self._u_prev, mv_lo, mv_hi, rate)
-        diag.clipped = float(np.max(np.abs(u - asked), initial=0.0))
-        diag.active_mv_limits = int(at_limit.sum())
-        diag.active_mv_limit_names = [self._mv_names[j] for j in np.flatnonzero(at_limit)]
-        diag.active_rate_limits = int(at_rate.sum())
-        diag.limits_over_rate = int(over_rate.sum())
+        u, at_limit, at_rate, over_rate = project_with_activity(
+            asked, self._u_prev, mv_lo, mv_hi, rate, what="PredictiveController")
+        diag.clipped = float(np.abs(u - asked).max(initial=0.0))
+        diag.active_mv_limits = int(np.count_nonzero(at_limit))
+        diag.active_mv_limit_names = [self._mv_names[j] for j in at_limit.nonzero()[0]]
+        diag.active_rate_limits = int(np.count_nonzero(at_rate))
+        diag.limits_over_rate = int(np.count_nonzero(over_rate))
         return self._finish(u, status, diag, t_start)
 
     def last_plan(self) -> np.ndarray | None:
@@ -351,9 +351,12 @@ class ControllerRuntime:
 
     def _finish(self, u, status, diag, t_start) -> ControlOutput:
         # faults the controller saw show in the status of an otherwise accepted step
-        diag.n_rejected_measurements = len(diag.get("rejected_measurements", ()))
-        diag.n_mvs_not_following = len(diag.get("mvs_not_following", ()))
-        diag.n_dropped_measurements = len(diag.get("dropped_measurements", ()))
+        # (the fields read directly: the mapping view's get() raises and catches for an unfilled one)
+        rej, nf, drop = (diag.rejected_measurements, diag.mvs_not_following,
+                         diag.dropped_measurements)
+        diag.n_rejected_measurements = 0 if rej is ABSENT else len(rej)
+        diag.n_mvs_not_following = 0 if nf is ABSENT else len(nf)
+        diag.n_dropped_measurements = 0 if drop is ABSENT else len(drop)
         if status == STATUS_OK and (diag.n_rejected_measurements
                                     or diag.n_dropped_measurements):
             status = STATUS_MEASUREMENT_REJECTED

@@ -55,6 +55,7 @@ _PREF_FLOOR = 1e-6    # relative preferred weight of an MV without one (ties bet
 _DAQP_SETTINGS = {"primal_tol": 1e-11, "iter_limit": 2000}
 _PROX_RHO = 1e-6      # stage 1's proximal weight (scaled units)
 _PROX_MAX = 40        # at most this many proximal iterations
+_TOL_SIGN = np.array([[-_CV_TOL], [_CV_TOL]])     # stage 2's widening of [lo; hi]
 
 
 def _finite(v):
@@ -141,6 +142,7 @@ class SteadyTarget:
         r = int(np.sum(se > tol))
         self._Epinv = Vte[:r].T @ (Ue[:, :r].T / se[:r, None])
         self._Erange = Ue[:, :r]                      # dx must lie in range(E)
+        self._full_range = r == nx
         N = Vte[r:].T                                 # (nx + nu, k), orthonormal
         Cy = np.hstack([Cs, Ds])
         Y = Cy @ N
@@ -251,7 +253,8 @@ class SteadyTarget:
         v0, y0 = out[:nv], out[nv:nv + ny]
         resid, dx = out[nv + ny:nv + ny + nx], out[nv + ny + nx:]
         amax = np.maximum.reduce          # (np.max's dispatch costs more than the reduction here)
-        ok = float(amax(np.abs(resid), initial=0.0)) <= 1e-9 * (1 + float(
+        # where E has full row rank every dx is in its range (resid is round-off): no check
+        ok = self._full_range or float(amax(np.abs(resid), initial=0.0)) <= 1e-9 * (1 + float(
             amax(np.abs(dx), initial=0.0)))
         u0 = v0[nx:]
         nb = 4 * ny + 2 * nu
@@ -267,14 +270,15 @@ class SteadyTarget:
         blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
         e1 = ys1 - np.minimum(np.maximum(ys1, blo), np.maximum(blo, bhi))     # (np.clip)
         s1 = np.maximum(np.maximum(llo - ys1, ys1 - lhi), 0.0)
-        lo = np.fmax(blo + np.minimum(e1, 0.0), llo - s1)
-        hi = np.fmin(bhi + np.maximum(e1, 0.0), lhi + s1)
+        lohi = np.empty((2, len(ys1)))              # [lo; hi]: one call for both rows below
+        np.fmax(blo + np.minimum(e1, 0.0), llo - s1, out=lohi[0])
+        np.fmin(bhi + np.maximum(e1, 0.0), lhi + s1, out=lohi[1])
         # widened by the tolerance; an infinite end first becomes DAQP's infinity (no inf - inf,
-        # and no np.errstate, whose context costs more than the arithmetic)
-        lo, hi = _finite(lo), _finite(hi)
-        lo = lo - _CV_TOL * (1 + np.abs(lo))
-        hi = hi + _CV_TOL * (1 + np.abs(hi))
-        return lo, hi
+        # and no np.errstate, whose context costs more than the arithmetic); lo + (-tol) t is
+        # lo - tol t to the bit
+        lohi = _finite(lohi)
+        lohi += _TOL_SIGN * (1 + np.abs(lohi))
+        return lohi
 
     def _values(self, v, dy_s):
         """Engineering-unit values from the scaled steady state v = [x; u]."""
@@ -302,12 +306,9 @@ class SteadyTarget:
             res = self._solve_daqp(data, v0, y0, u0)
         else:
             res = self._solve_cvxpy(data, v0, y0, u0, solver, options)
+        if res.accepted:       # e and s computed when read (the controller reads neither)
+            res.values = _TargetValues(res.values, data, self._sy)
         res.solve_ms = (time.perf_counter() - t0) * 1e3
-        if res.accepted:
-            ys_s = res.values["ys"] / self._sy
-            blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
-            res.values["e"] = ys_s - np.minimum(np.maximum(ys_s, blo), np.maximum(blo, bhi))
-            res.values["s"] = np.maximum(np.maximum(llo - ys_s, ys_s - lhi), 0.0) * self._sy
         return res
 
     def _solve_daqp(self, data, v0, y0, u0):
@@ -323,9 +324,13 @@ class SteadyTarget:
             return QPResult(status=_daqp_status(flag1), accepted=False)
         phi1 = x1[2 * ny:]
         ys1 = y0 + self._Yphi @ phi1
-        lo, hi = self._stage2_bounds(data, ys1)
-        b2lo = _finite(np.concatenate([lo - y0, r[4 * ny:4 * ny + nu]]))
-        b2hi = _finite(np.concatenate([hi - y0, r[4 * ny + nu:4 * ny + 2 * nu]]))
+        # [b2lo; b2hi] = [lo - y0, mv_lo; hi - y0, mv_hi] (less the offsets), finite
+        b2 = np.empty((2, ny + nu))
+        np.subtract(self._stage2_bounds(data, ys1), y0, out=b2[:, :ny])
+        b2[:, ny:] = r[4 * ny:4 * ny + 2 * nu].reshape(2, nu)
+        np.maximum(b2, -_INF, out=b2)
+        np.minimum(b2, _INF, out=b2)
+        b2lo, b2hi = b2[0], b2[1]
         f2 = -2 * self._Uphi.T @ (self._wrel * (data["pref"] - u0)) if k else np.zeros(0)
         phi = phi1
         if k:
@@ -455,7 +460,7 @@ class SteadyTarget:
             st = stage.solver_stats
             iters += int(getattr(st, "num_iters", 0) or 0) if st is not None else 0
             if stage is stage1:
-                lo, hi = self._stage2_bounds(data, np.asarray(ys.value, float))
+                lo, hi = self._stage2_bounds(data, np.asarray(ys.value, float))   # rows
                 # an interior-point solve is good to its tolerance only: widen by that much
                 slack = 1e-8 * (1 + np.abs(np.asarray(ys.value, float)))
                 p["y_lo"].value = np.clip(lo - slack, -big, big)
@@ -463,6 +468,25 @@ class SteadyTarget:
         v = np.concatenate([np.asarray(xs.value, float), np.asarray(us.value, float)])
         vals = self._values(v, y0 - self._Cy @ v0)
         return QPResult(status="optimal", accepted=True, values=vals, iterations=iters)
+
+
+class _TargetValues(dict):
+    """The target's values; ``e`` (band error, scaled) and ``s`` (limit violation, engineering
+    units) are computed on first read from the stored bounds."""
+
+    def __init__(self, values, data, sy):
+        super().__init__(values)
+        self._data, self._sy = data, sy
+
+    def __missing__(self, key):
+        if key not in ("e", "s"):
+            raise KeyError(key)
+        data = self._data
+        ys_s = self["ys"] / self._sy
+        blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
+        self["e"] = ys_s - np.minimum(np.maximum(ys_s, blo), np.maximum(blo, bhi))
+        self["s"] = np.maximum(np.maximum(llo - ys_s, ys_s - lhi), 0.0) * self._sy
+        return self[key]
 
 
 def _workspace(daqp, H, f, A, bu, bl, sense):
