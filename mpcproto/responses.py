@@ -242,10 +242,10 @@ def open_loop_test(model, op: OperatingPoint, mv: str, *, kind: str = "step", si
         try:
             X[k + 1] = plant.advance(U[k], D[k])
         except SimulationError as exc:
-            raise SimulationError(
-                f"open_loop_test(): the nonlinear model '{model.name}' could not be integrated past "
-                f"t = {k * Ts:g} {model.time_unit} ({kind} of {size:g} on {mv}): {exc}. "
-                f"Try a smaller size.") from None
+            raise exc.within("open_loop_test()",
+                             f"model '{model.name}' not integrated past t = {k * Ts:g} "
+                             f"{model.time_unit}, {kind} of {size:g} on {mv}; try a smaller "
+                             f"size") from None
     Y[N] = plant.output(U[-1], D[-1])
     lo_x, hi_x = model.bounds("state")
     out_of = [n for i, n in enumerate(model.state_names)

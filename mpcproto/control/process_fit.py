@@ -67,8 +67,8 @@ def step_test(model: Any, op: Any, mv: str, *, size: float, Ts: float, duration:
     try:
         rt = open_loop_test(model, op, mv, kind="step", size=float(size), duration=duration - at, Ts=Ts)
     except SimulationError as exc:
-        raise SettingsError(f"step_test: the step of {size:g} on '{mv}' made the plant fail: "
-                            f"{exc}. Try a smaller step.") from None
+        raise exc.within("step_test", f"the step of {size:g} on '{mv}' made the plant fail; "
+                         f"try a smaller step").as_class(SettingsError) from None
     t = np.concatenate([np.arange(n_pre) * Ts, at + rt.t])
     Y = np.vstack([np.tile(np.asarray(op.y, float), (n_pre, 1)), rt.y_nonlinear])
     if isinstance(noise_std, Mapping):

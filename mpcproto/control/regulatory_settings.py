@@ -229,7 +229,8 @@ def _dv_step_fit(model: Any, op: Any, dv: str, cv: str, *, Ts: float, step_fract
     try:
         rt = open_loop_test(model, op, dv, kind="step", size=size, duration=duration, Ts=Ts)
     except SimulationError as exc:
-        raise SettingsError(f"feedforward step test of '{dv}' failed: {exc}") from None
+        raise exc.within(None, f"feedforward step test of '{dv}'").as_class(SettingsError) \
+            from None
     i = model.cv_names.index(cv)
     data = StepData(t=np.concatenate([[0.0], Ts + rt.t]),
                     y={cv: np.concatenate([[op.y[i]], rt.y_nonlinear[:, i]])},
@@ -354,7 +355,7 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
                     gd = _src_fit(src, "fopdt")
                 ffs.append(design_feedforward(gp, gd, cv=c, source=src))
             except SettingsError as exc:
-                raise SettingsError(f"{exc}", owner=w) from None
+                raise exc.within(w) from None
             tuning["fits"][f"{c}<-{mv} (feedforward design)"] = gp.as_dict()
             tuning["fits"][f"{c}<-{src} (feedforward design)"] = gd.as_dict()
     try:
@@ -362,4 +363,4 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
                                               cascades=cascades, selectors=selectors,
                                               split_ranges=splits, tuning=tuning)
     except SettingsError as exc:
-        raise SettingsError(f"{exc}", owner=what) from None
+        raise exc.within(what) from None

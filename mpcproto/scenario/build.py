@@ -66,6 +66,18 @@ def _wrap(scn: Scenario, key: str, err: Exception) -> ScenarioError:
     return out
 
 
+def discretize(scn: Scenario, lin: Any) -> Any:
+    """*lin* discretized at the scenario's sample time and dead-time policy; a refusal (a dead time
+    that is not a whole number of samples under ``dead_time = "refuse"``) is the scenario's error
+    at ``scenario.sample_time`` (its fields kept; the function's own argument key replaced)."""
+    from ..exceptions import SettingsError
+
+    try:
+        return lin.discretize(scn.sample_time, dead_time=scn.data["scenario"]["dead_time"])
+    except SettingsError as e:
+        raise e.replace(key="scenario.sample_time").in_file(scn.file) from None
+
+
 def _section_model(scn: Scenario, section: str, ref: Any, options: Mapping[str, Any],
                    params: Mapping[str, Any]) -> Model:
     """Resolve one section's model; errors name the key path the resolver gives them (a
@@ -304,10 +316,7 @@ def _open_loop(eigenvalues) -> str:
 def _report(scn, which, model, op, lin) -> dict[str, Any]:
     from ..exceptions import SettingsError
 
-    try:
-        dlin = lin.discretize(scn.sample_time, dead_time=scn.data["scenario"]["dead_time"])
-    except SettingsError as e:
-        raise ScenarioError(str(e), file=scn.file, key="scenario.sample_time") from None
+    dlin = discretize(scn, lin)
     K = lin.gain("mv")
     rga_val, rga_note = None, ""
     if K.shape[0] == K.shape[1] and K.size:
