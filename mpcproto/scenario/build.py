@@ -56,12 +56,9 @@ def scenario_folder(scn: Scenario) -> Path:
     return Path.cwd()
 
 
-def _wrap(scn: Scenario, key: str, err: Exception) -> ScenarioError:
+def _wrap(scn: Scenario, key: str, err: MpcprotoError) -> ScenarioError:
     """*err* as the scenario's error, at its own key path if it has one, else at *key*."""
-    if isinstance(err, MpcprotoError):
-        out = err.replace(key=err.key or key).in_file(scn.file)
-    else:
-        out = ScenarioError(str(err), file=scn.file, key=key)
+    out = err.replace(key=err.key or key).in_file(scn.file)
     out.detail = getattr(err, "detail", "")
     return out
 
@@ -240,9 +237,10 @@ def operating_point(scn: Scenario, model: Model | None = None):
     except MpcprotoError as e:
         # includes OperatingPointError for non-finite derivatives (absurd parameter values):
         # its message names the model, the entries and the extreme parameters
-        hint = (" Parameter values come from [plant] and [controller_model]."
-                if e.code == "non_finite" else "")
-        raise ScenarioError(str(e) + hint, file=scn.file, key="operating_point") from None
+        hint = ("parameter values come from [plant] and [controller_model]"
+                if e.code == "non_finite" else None)
+        note = "; ".join(p for p in (e.note, hint) if p) or None
+        raise e.replace(key="operating_point", note=note).in_file(scn.file) from None
 
 
 def _pick(scn: Scenario, found: list, pick: str, xg: np.ndarray | None):
