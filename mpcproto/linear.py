@@ -29,7 +29,6 @@ not show up as its poles or zeros, and an integrating level does not make every 
 from __future__ import annotations
 
 import math
-import numbers
 import warnings
 from dataclasses import dataclass, field
 from typing import Any

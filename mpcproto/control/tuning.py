@@ -76,7 +76,6 @@ from scipy.optimize import brentq
 
 from ..exceptions import SettingsError
 from ..validation import Interval, Options, check, fail
-from ..model import suggest
 from .pid import PIDLoop
 from .process_fit import (ProcessFit, StepData, fit_fopdt, fit_integrating, fit_sopdt, fit_step,
                           step_test)
