@@ -158,7 +158,7 @@ def test_sopdt_fit_finds_the_quadruple_tank_lags():
     assert fit.time_constants[0] == pytest.approx(62.0, rel=0.05)
     assert fit.time_constants[1] == pytest.approx(23.0, rel=0.05)
     assert fit.dead_time == pytest.approx(0.0, abs=0.5)
-    with pytest.raises(mp.SettingsError, match=r"order must be 1 \(FOPDT\) or 2 \(SOPDT\); got 3"):
+    with pytest.raises(mp.SettingsError, match=r"key 'order': expected 1 \(FOPDT\) or 2 \(SOPDT\), found 3"):
         mp.fit_step_response(r.t, r.y_nonlinear[:, 0], size=0.1, order=3)
-    with pytest.raises(mp.SettingsError, match=r"does not move"):
+    with pytest.raises(mp.SettingsError, match=r"key 'y': expected a response that moves"):
         mp.fit_step_response(r.t, np.ones_like(r.t), size=0.1)

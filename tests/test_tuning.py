@@ -175,7 +175,7 @@ def test_rules_refuse_models_they_do_not_fit():
         mp.imc(mp.ProcessFit.integrating(0.1, 2.0))
     with pytest.raises(mp.SettingsError, match="never reaches -180 deg.*Ziegler-Nichols.*does not apply"):
         mp.ziegler_nichols(mp.ProcessFit.fopdt(1.0, 10.0, 0.0))
-    with pytest.raises(mp.SettingsError, match="dead time must be finite and >= 0; found -1"):
+    with pytest.raises(mp.SettingsError, match="key 'dead_time': expected a finite dead time >= 0, found -1"):
         mp.ProcessFit.fopdt(1.0, 10.0, -1.0)
     # an integrator without dead time has no default tau_c (a FOPDT one takes the tau1/10 floor)
     with pytest.raises(mp.SettingsError, match="simc: key 'tau_c': expected a tau_c .* > 0, found none.*the fitted dead time is 0.*give tau_c"):
