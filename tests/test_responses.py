@@ -117,19 +117,19 @@ def test_dv_step_and_plot(tank, tmp_path):
 
 def test_bad_requests_are_named(tank):
     m, op = tank
-    with pytest.raises(mp.SettingsError, match=r"'heater' is not an MV or DV.*did you mean 'heater_duty'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'mv': expected the name of an MV or DV of this model .*found 'heater'.*did you mean 'heater_duty'"):
         mp.open_loop_test(m, op, "heater", size=1.0)
-    with pytest.raises(mp.SettingsError, match=r"kind must be one of step, pulse, impulse; got 'stpe'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'kind': expected one of 'step', 'pulse', 'impulse', found 'stpe'"):
         mp.open_loop_test(m, op, "heater_duty", kind="stpe", size=1.0)
-    with pytest.raises(mp.SettingsError, match=r"size must be a finite non-zero number; got 0"):
+    with pytest.raises(mp.SettingsError, match=r"key 'size': expected a finite non-zero number, found 0"):
         mp.open_loop_test(m, op, "heater_duty", size=0)
-    with pytest.raises(mp.SettingsError, match=r"Ts must be a finite number > 0; got -1"):
+    with pytest.raises(mp.SettingsError, match=r"key 'Ts': expected a finite number > 0, found -1"):
         mp.open_loop_test(m, op, "heater_duty", size=1.0, Ts=-1.0, duration=10.0)
     other = mp.make_model("henson_seborg_cstr")
-    with pytest.raises(mp.SettingsError, match=r"operating point belongs to model 'blending_tank'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'op': expected an operating point of model 'henson_seborg_cstr', found one of model 'blending_tank'"):
         mp.open_loop_test(other, op, "coolant_temperature", size=1.0)
     r = mp.open_loop_test(m, op, "heater_duty", size=10.0, duration=100.0, Ts=10.0)
-    with pytest.raises(mp.SettingsError, match=r"must end in .png; got 'out.svg'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'path': expected a file name ending in .png, found 'out.svg'"):
         mp.plot_response_test(r, "out.svg")
 
 
