@@ -10,7 +10,8 @@ setting), ``key`` (the key path below it), ``file`` (for a scenario), ``expected
     <file or owner>: key '<key>': expected <expected>, found <found>[; <fix>]
 
 A caller never parses the text: it reads the fields, and places an error under a longer key path
-with :meth:`MpcprotoError.at` (``err.at("controllers.mpc")``) or in a scenario file with
+with :meth:`MpcprotoError.at` (``err.at("controllers.mpc")``), under the settings table that
+passed the value on with :meth:`MpcprotoError.within`, or in a scenario file with
 :meth:`MpcprotoError.in_file`.  :mod:`mpcproto.validation` builds these errors from declared
 constraints.
 """
@@ -114,13 +115,31 @@ class MpcprotoError(Exception):
         key ``horizon`` -> ``controllers.mpc.horizon``)."""
         return self.replace(key=join_key(prefix, self.key))
 
-    def in_file(self, file: str | None) -> "ScenarioError":
-        """This error as a :class:`ScenarioError` of scenario *file* (same fields, same key)."""
-        f = self.fields()
-        f["file"] = file
-        out = ScenarioError(**f)
+    def within(self, owner: str | None, context: str | None = None) -> "MpcprotoError":
+        """This error as *owner*'s: the settings table whose value reached the code that raised
+        it (same key, expected and found); *context* (``"loop level<-feed"``) leads the note."""
+        note = "; ".join(p for p in (context, self.note) if p) or None
+        return self.replace(owner=owner, note=note)
+
+    def referred(self, owner: str | None, key: str | None) -> "MpcprotoError":
+        """This error, raised in a file (or object) that setting *key* of *owner* names, placed at
+        that setting: the inner file (or owner) and key lead the note (a bundle's ``bundle.json``
+        named by ``controllers.mpc.bundle``)."""
+        inner = ", ".join(p for p in (self.file or self.owner,
+                                      f"key '{self.key}'" if self.key else None) if p)
+        note = "; ".join(p for p in (f"in {inner}" if inner else None, self.note) if p) or None
+        return self.replace(owner=owner, key=key, file=None, note=note)
+
+    def as_class(self, cls: type) -> "MpcprotoError":
+        """This error (same fields and extra attributes) as one of class *cls* (a failed step
+        test's :class:`SimulationError` as the :class:`SettingsError` of the tuning setting)."""
+        out = cls(**self.fields())
         out.__dict__.update({k: v for k, v in self.__dict__.items() if k not in _FIELDS})
         return out
+
+    def in_file(self, file: str | None) -> "ScenarioError":
+        """This error as a :class:`ScenarioError` of scenario *file* (same fields, same key)."""
+        return self.replace(file=file).as_class(ScenarioError)
 
     def __reduce__(self):  # keep the fields through pickling (process pools)
         return (_rebuild, (type(self), self.fields(), {k: v for k, v in self.__dict__.items()

@@ -29,7 +29,6 @@ not show up as its poles or zeros, and an integrating level does not make every 
 from __future__ import annotations
 
 import math
-import numbers
 import warnings
 from dataclasses import dataclass, field
 from typing import Any
@@ -38,6 +37,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from .exceptions import SettingsError
+from .validation import Interval, Options, check, fail
 from .operating import OperatingPoint
 from .realization import (INTEGRATOR_TOL, _channel, _controllability_reach, _gain_matrix,
                           minimal_realization, transmission_zeros)
@@ -72,17 +72,19 @@ def delay_samples(dead_time: float, Ts: float, *, policy: str = "round", what: s
     rounds up) with a ``UserWarning`` (``policy="round"``), or refused with :class:`SettingsError`
     (``policy="refuse"``).  :func:`delay_split` gives the exact split instead.
     """
-    if policy not in ("round", "refuse"):
-        raise SettingsError(f"dead_time policy must be one of {', '.join(map(repr, DEAD_TIME_POLICIES))}; "
-                            f"got {policy!r}.")
+    check(policy, Options(("round", "refuse"), noun="a dead_time policy"), owner="delay_samples()",
+          key="policy")
     n_exact = dead_time / Ts
     n = int(math.floor(n_exact + 0.5))  # half a sample rounds up (2.5 -> 3), not to even
     if abs(n - n_exact) > 1e-9 * max(1.0, n_exact):
         msg = (f"the {what} = {dead_time:g} is not a multiple of the sample time {Ts:g} "
                f"({n_exact:.4g} samples)")
         if policy == "refuse":
-            raise SettingsError(
-                f"{msg}; choose a sample time that divides it, or pass dead_time='exact' (or 'round').")
+            raise fail("delay_samples()", "dead_time", "a dead time of whole samples",
+                       f"{what} = {dead_time:g}, not a multiple of the sample time {Ts:g} "
+                       f"({n_exact:.4g} samples)",
+                       "choose a sample time that divides it, or pass dead_time='exact' (or "
+                       "'round')")
         warnings.warn(f"{msg}; rounded to {n} samples.", stacklevel=stacklevel)
     return n
 
@@ -109,9 +111,8 @@ def delay_splits(delays: Any, Ts: float, names: Any, *, policy: str = "exact",
     ``"exact"`` keeps the fraction (:func:`delay_split`); ``"round"`` and ``"refuse"`` go through
     :func:`delay_samples` (``f = 0``).  *names* maps a role to its variable names (for messages).
     """
-    if policy not in DEAD_TIME_POLICIES:
-        raise SettingsError(f"dead_time policy must be one of {', '.join(map(repr, DEAD_TIME_POLICIES))}; "
-                            f"got {policy!r}.")
+    check(policy, Options(DEAD_TIME_POLICIES, noun="a dead_time policy"), owner="delay_splits()",
+          key="policy")
     out = []
     for r, i, dt in delays:
         if policy == "exact":
@@ -295,8 +296,8 @@ class LinearModel:
             How a dead time that is not a whole number of samples is represented: exactly (split
             sample, two delay taps), rounded to whole samples with a warning, or refused.
         """
-        if isinstance(Ts, bool) or not (isinstance(Ts, numbers.Real) and math.isfinite(Ts) and Ts > 0):
-            raise SettingsError(f"discretize(): the sample time Ts must be a finite number > 0; got {Ts!r}.")
+        check(Ts, Interval(float, 0, None, closed="neither", noun="a sample time"),
+              owner="discretize()", key="Ts")
         nx, nu, nd = self.A.shape[0], self.B.shape[1], self.Bd.shape[1]
         # exact ZOH of the delay-free part, all inputs at once: expm of the augmented matrix
         Phi, Gam = zoh(self.A, np.hstack([self.B, self.Bd, self.Bz]), Ts)

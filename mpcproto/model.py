@@ -524,7 +524,7 @@ class Model:
         try:
             return ca.integrator(f"{self.name}_{label}", plugin, {"x": x, "p": pv, "ode": rhs},
                                  0.0, float(Ts), dict(options or {}))
-        except RuntimeError as exc:
+        except RuntimeError as exc:   # CasADi's own words (a foreign text): its last line
             raise SettingsError(
                 f"Model '{self.name}': cannot build the CasADi integrator {plugin!r} with options "
                 f"{dict(options or {})}: {str(exc).splitlines()[-1]}") from None

@@ -42,9 +42,9 @@ from typing import Any
 
 import numpy as np
 
-from .exceptions import SettingsError, SimulationError
+from .exceptions import SimulationError
 from .linear import linearize
-from .model import suggest
+from .validation import Names, Options, check, fail, shown
 from .operating import OperatingPoint
 
 __all__ = ["ResponseTest", "open_loop_test", "plot_response_test", "linearity_sweep"]
@@ -131,7 +131,7 @@ class ResponseTest:
 
 def _positive(v: Any, what: str) -> float:
     if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(v) or v <= 0:
-        raise SettingsError(f"open_loop_test(): {what} must be a finite number > 0; got {v!r}.")
+        raise fail("open_loop_test()", what, "a finite number > 0", shown(v))
     return float(v)
 
 
@@ -176,22 +176,19 @@ def open_loop_test(model, op: OperatingPoint, mv: str, *, kind: str = "step", si
 
         raise NotBuiltError(f"open_loop_test(): model '{model.name}' is not built; call model.build() first.")
     if kind not in KINDS:
-        raise SettingsError(f"open_loop_test(): kind must be one of {', '.join(KINDS)}; got {kind!r}"
-                            f"{suggest(str(kind), KINDS)}.")
+        check(kind, Options(tuple(KINDS)), owner="open_loop_test()", key="kind")
     if mv in model.mv_names:
         role = "mv"
     elif mv in model.dv_names:
         role = "dv"
     else:
         names = model.mv_names + model.dv_names
-        raise SettingsError(f"open_loop_test(): '{mv}' is not an MV or DV of model '{model.name}'"
-                            f"{suggest(str(mv), names)}; MVs: {', '.join(model.mv_names)}; "
-                            f"DVs: {', '.join(model.dv_names) or '(none)'}.")
+        check(mv, Names("MV or DV", tuple(names)), owner="open_loop_test()", key="mv")
     if isinstance(size, bool) or not isinstance(size, numbers.Real) or not math.isfinite(size) or size == 0:
-        raise SettingsError(f"open_loop_test(): size must be a finite non-zero number; got {size!r}.")
+        raise fail("open_loop_test()", "size", "a finite non-zero number", shown(size))
     if tuple(op.state_names) != tuple(model.state_names) or tuple(op.mv_names) != tuple(model.mv_names):
-        raise SettingsError(f"open_loop_test(): the operating point belongs to model '{op.model}', "
-                            f"not to '{model.name}' (its variables differ).")
+        raise fail("open_loop_test()", "op", f"an operating point of model '{model.name}'",
+                   f"one of model '{op.model}' (its variables differ)")
     lin = linearize(model, op)
     if duration is None:
         poles = lin.poles()
@@ -203,8 +200,8 @@ def open_loop_test(model, op: OperatingPoint, mv: str, *, kind: str = "step", si
     Ts = _positive(Ts, "Ts") if Ts is not None else duration / 200.0
     N = int(round(duration / Ts))
     if N < 2:
-        raise SettingsError(f"open_loop_test(): duration {duration:g} must cover at least 2 samples of "
-                            f"Ts = {Ts:g}.")
+        raise fail("open_loop_test()", "duration", f"at least 2 samples of Ts = {Ts:g}",
+                   f"{duration:g}")
     j = model.names(role).index(mv)
     lo, hi = model.bounds(role)
     base = (op.u if role == "mv" else op.d)[j]
@@ -242,10 +239,10 @@ def open_loop_test(model, op: OperatingPoint, mv: str, *, kind: str = "step", si
         try:
             X[k + 1] = plant.advance(U[k], D[k])
         except SimulationError as exc:
-            raise SimulationError(
-                f"open_loop_test(): the nonlinear model '{model.name}' could not be integrated past "
-                f"t = {k * Ts:g} {model.time_unit} ({kind} of {size:g} on {mv}): {exc}. "
-                f"Try a smaller size.") from None
+            raise exc.within("open_loop_test()",
+                             f"model '{model.name}' not integrated past t = {k * Ts:g} "
+                             f"{model.time_unit}, {kind} of {size:g} on {mv}; try a smaller "
+                             f"size") from None
     Y[N] = plant.output(U[-1], D[-1])
     lo_x, hi_x = model.bounds("state")
     out_of = [n for i, n in enumerate(model.state_names)
@@ -304,7 +301,7 @@ def plot_response_test(result: ResponseTest, path: str | Path, *, title: str | N
 
     path = Path(path)
     if path.suffix.lower() != ".png":
-        raise SettingsError(f"plot_response_test(): the file must end in .png; got '{path}'.")
+        raise fail("plot_response_test()", "path", "a file name ending in .png", f"'{path}'")
     ny = len(result.cv_names)
     fig = Figure(figsize=(8.0, 2.0 * (ny + 1) + 0.6), layout="constrained")
     FigureCanvasAgg(fig)

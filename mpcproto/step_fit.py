@@ -19,8 +19,7 @@ from typing import Any
 import numpy as np
 
 from ._specs import paired_series
-from .exceptions import SettingsError
-from .model import suggest
+from .validation import Options, check, fail, shown
 
 __all__ = ["ProcessFit", "fit_step_response", "step_model_response", "FIT_KINDS", "FIT_NOISE_RATIO",
            "FIT_CHANGE_FRACTION"]
@@ -72,21 +71,20 @@ class ProcessFit:
     def __post_init__(self) -> None:
         n_tau = {"fopdt": 1, "sopdt": 2, "integrating": 0}
         if self.kind not in n_tau:
-            raise SettingsError(f"ProcessFit: kind must be one of {', '.join(n_tau)}; found "
-                                f"{self.kind!r}{suggest(str(self.kind), list(n_tau))}.")
+            check(self.kind, Options(tuple(n_tau)), owner="ProcessFit", key="kind")
         if len(self.time_constants) != n_tau[self.kind]:
-            raise SettingsError(f"ProcessFit ({self.kind}): needs {n_tau[self.kind]} time "
-                                f"constant(s); found {len(self.time_constants)}.")
+            raise fail(f"ProcessFit ({self.kind})", "time_constants",
+                       f"{n_tau[self.kind]} time constant(s)", f"{len(self.time_constants)}")
         if not (math.isfinite(self.gain) and self.gain != 0):
-            raise SettingsError(f"ProcessFit ({self.kind}): the gain must be finite and non-zero; "
-                                f"found {self.gain!r}.")
+            raise fail(f"ProcessFit ({self.kind})", "gain", "a finite non-zero gain",
+                       repr(self.gain))
         for tau in self.time_constants:
             if not (math.isfinite(tau) and tau > 0):
-                raise SettingsError(f"ProcessFit ({self.kind}): time constants must be finite and "
-                                    f"> 0; found {tau!r}.")
+                raise fail(f"ProcessFit ({self.kind})", "time_constants",
+                           "finite time constants > 0", repr(tau))
         if not (math.isfinite(self.dead_time) and self.dead_time >= 0):
-            raise SettingsError(f"ProcessFit ({self.kind}): the dead time must be finite and >= 0; "
-                                f"found {self.dead_time!r}.")
+            raise fail(f"ProcessFit ({self.kind})", "dead_time", "a finite dead time >= 0",
+                       repr(self.dead_time))
 
     @classmethod
     def fopdt(cls, gain: float, time_constant: float, dead_time: float = 0.0, **kw: Any) -> "ProcessFit":
@@ -279,31 +277,30 @@ def fit_step_response(t: Sequence[float], y: Sequence[float], *, size: float, or
     """
     if kind is None:
         if isinstance(order, bool) or order not in (1, 2):
-            raise SettingsError(f"{what}: order must be 1 (FOPDT) or 2 (SOPDT); got {order!r}.")
+            raise fail(what, "order", "1 (FOPDT) or 2 (SOPDT)", shown(order))
         kind = FIT_KINDS[order - 1]
     elif kind not in FIT_KINDS:
-        raise SettingsError(f"{what}: kind must be one of {', '.join(FIT_KINDS)}; got {kind!r}"
-                            f"{suggest(str(kind), FIT_KINDS)}.")
+        check(kind, Options(tuple(FIT_KINDS)), owner=what, key="kind")
     t, y = paired_series(t, y, what=what)
     if np.any(np.diff(t) <= 0):
-        raise SettingsError(f"{what}: t must be strictly increasing.")
+        raise fail(what, "t", "strictly increasing times", "a time at or before the one before it")
     if isinstance(size, bool) or not isinstance(size, numbers.Real) or not math.isfinite(size) or size == 0:
-        raise SettingsError(f"{what}: size must be a finite non-zero number; got {size!r}.")
+        raise fail(what, "size", "a finite non-zero number", shown(size))
     for key, v in (("t_step", t_step), ("y0", y0)):
         if (v is not None or key == "t_step") and (isinstance(v, bool) or not isinstance(v, numbers.Real)
                                                    or not math.isfinite(v)):
-            raise SettingsError(f"{what}: {key} must be a finite number; got {v!r:.60}.")
+            raise fail(what, key, "a finite number", shown(v))
     if y0 is None:
         before = np.nonzero(t <= t_step)[0]
         y0 = float(y[before[-1]] if before.size else y[0])
     after = t >= t_step
     if np.count_nonzero(after) < 5:
-        raise SettingsError(f"{what}: need at least 5 samples after the step at t = {t_step:g}; "
-                            f"got {np.count_nonzero(after)}.")
+        raise fail(what, "t", f"at least 5 samples after the step at t = {t_step:g}",
+                   f"{np.count_nonzero(after)}")
     ta = t[after] - t_step
     dy = y[after] - y0
     if float(np.max(np.abs(dy))) <= 1e-12 * max(1.0, abs(y0)) or dy[-1] == 0.0:
-        raise SettingsError(f"{what}: the response does not move; nothing to fit.")
+        raise fail(what, "y", "a response that moves after the step", "none (nothing to fit)")
     K, taus, theta, res = _fit_lags(ta, dy / size, kind)
     span = float(ta[-1])
     theta = 0.0 if theta < 1e-9 * span else theta

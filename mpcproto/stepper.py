@@ -276,6 +276,7 @@ class Plant:
                 xf, y = out[:self._nx], out[self._nx:]
             except RuntimeError as exc:
                 self.k -= 1
+                # CasADi's own words (a foreign exception's text): its last line closes ours
                 last = [ln for ln in str(exc).splitlines() if ln.strip()]
                 raise SimulationError(
                     f"plant integrator {self.plugin!r} failed on the sample starting at step {self.k}: "

@@ -110,7 +110,7 @@ def test_round_policy_is_explicit_and_warned_refuse_refuses():
     with pytest.warns(UserWarning, match=r"dead time on 'u' = 2.7 is not a multiple .* rounded to 3"):
         dr = lin.discretize(1.0, dead_time="round")
     assert dr.state_names.count("u[k-3]") == 1 and dr.nx == 4
-    with pytest.raises(mp.SettingsError, match=r"'u' = 2.7 is not a multiple of the sample time 1"):
+    with pytest.raises(mp.SettingsError, match=r"'u' = 2.7, not a multiple of the sample time 1"):
         lin.discretize(1.0, dead_time="refuse")
     de = lin.discretize(1.0)
     assert de.state_names == ("y__u_1", "u[k-1]", "u[k-2]", "u[k-3]")   # taps u[k-2] and u[k-3]

@@ -122,8 +122,8 @@ def test_mv_events_commanded_and_applied_fail_the_run():
 
 def test_limits_beyond_the_physical_range_are_refused_and_intersected():
     m = first_order()
-    with pytest.raises(mp.SettingsError, match=r"mv_limits\.u\.low: expected a limit within the "
-                                               r"physical range \[-5, 5\]; found 6"):
+    with pytest.raises(mp.SettingsError, match=r"key 'mv_limits\.u\.low': expected a limit within "
+                                               r"the physical range \[-5, 5\], found 6"):
         mp.simulate(m, _Fixed(0.0), op=op0(m), Ts=1.0, duration=5.0, mv_limits={"u": {"low": 6.0}})
     tr = mp.simulate(m, _Fixed(0.0), op=op0(m), Ts=1.0, duration=5.0,
                      mv_limits={"u": {"low": -9.0, "high": 2.0}})

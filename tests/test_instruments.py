@@ -76,13 +76,13 @@ def test_noise_has_the_given_standard_deviation_and_no_bias():
     (mp.instrument_from_spec, {"noise": 1}, r"instruments.y: key 'noise': expected one of the keys .*found the unknown key 'noise' \(did you mean 'noise_std'"),
     (mp.instrument_from_spec, {"lag": -1}, r"key 'lag': expected a number >= 0, found -1"),
     (mp.instrument_from_spec, {"period": 0}, r"key 'period': expected a number > 0"),
-    (mp.actuator_from_spec, {"low": 2, "high": 1}, r"'low' \(2\) must be <= 'high' \(1\)"),
+    (mp.actuator_from_spec, {"low": 2, "high": 1}, r"key 'low': expected a value <= 'high' \(1\), found 2"),
     (mp.actuator_from_spec, {"rate": -1}, r"key 'rate': expected a number >= 0"),
     (mp.fault_from_spec, {"kind": "sensor_stuck", "variable": "y", "at": 1}, r"did you mean 'sensor_"),
     (mp.fault_from_spec, {"kind": "sensor_nan", "at": 1}, r"key 'variable': expected the key 'variable'"),
     (mp.fault_from_spec, {"kind": "sensor_drift", "variable": "y", "at": 1}, r"key 'rate': expected the key 'rate'"),
-    (mp.fault_from_spec, {"kind": "sensor_nan", "variable": "y", "at": 5, "until": 2}, r"'until' \(2\) must be after 'at' \(5\)"),
-    (mp.fault_from_spec, {"kind": "valve_saturation", "variable": "u", "at": 1}, r"give 'low' and/or 'high'"),
+    (mp.fault_from_spec, {"kind": "sensor_nan", "variable": "y", "at": 5, "until": 2}, r"key 'until': expected a time after 'at' \(5\), found 2"),
+    (mp.fault_from_spec, {"kind": "valve_saturation", "variable": "u", "at": 1}, r"expected 'low' and/or 'high' \(the reduced travel\), found neither"),
 ])
 def test_bad_specs_are_named(factory, spec, message):
     with pytest.raises(mp.SettingsError, match=message):

@@ -142,10 +142,11 @@ def test_dead_time_delay_states_and_analytic_fopdt_step(wood_berry_lin):
 
 
 def test_dead_time_refuse_and_half_sample_rounding(wood_berry_lin):
-    with pytest.raises(mp.SettingsError, match=r"dead time on 'reflux' = 1 is not a multiple of the sample time 2"):
+    with pytest.raises(mp.SettingsError, match=r"dead time on 'reflux' = 1, not a multiple of the sample time 2"):
         wood_berry_lin.discretize(2.0, dead_time="refuse")
     with pytest.raises(mp.SettingsError,
-                       match=r"dead_time policy must be one of 'exact', 'round', 'refuse'; got 'nearest'"):
+                       match=r"key 'policy': expected a dead_time policy one of 'exact', 'round', 'refuse', "
+                             r"found 'nearest'"):
         wood_berry_lin.discretize(0.7, dead_time="nearest")
     with warnings.catch_warnings(record=True) as rec:
         warnings.simplefilter("always")
@@ -153,7 +154,7 @@ def test_dead_time_refuse_and_half_sample_rounding(wood_berry_lin):
     assert any("'reflux' = 1" in str(r.message) and "rounded to 1 samples" in str(r.message) for r in rec)
     assert sum(n.startswith("reflux[k-") for n in d.state_names) == 4  # 7 min -> 3.5 -> 4 samples
     for bad in (0, -1.0, math.nan, "1"):
-        with pytest.raises(mp.SettingsError, match=r"sample time Ts must be a finite number > 0"):
+        with pytest.raises(mp.SettingsError, match=r"key 'Ts': expected a sample time > 0"):
             wood_berry_lin.discretize(bad)
 
 

@@ -143,11 +143,11 @@ def test_rga_pairing_wood_berry_and_blending_tank():
 @pytest.mark.parametrize("loops, message", [
     ([{"cv": "y", "mv": "u"}], r"key 'gain': expected the key 'gain'"),
     ([{"cv": "y", "mv": "u", "gain": 1, "intergal_time": 3}], r"unknown key 'intergal_time'.*did you mean 'integral_time'"),
-    ([{"cv": "yy", "mv": "u", "gain": 1}], r"'yy' is not a CV.*did you mean 'y'"),
+    ([{"cv": "yy", "mv": "u", "gain": 1}], r"key 'loops\[0\].cv': expected the name of a CV .*found 'yy' \(did you mean 'y'"),
     ([{"cv": "y", "mv": "u", "gain": 0}], r"key 'gain': expected a finite non-zero number"),
     ([{"cv": "y", "mv": "u", "gain": 1, "integral_time": -2}], r"key 'integral_time': expected a number > 0"),
-    ([{"cv": "y", "mv": "u", "gain": 1}, {"cv": "y", "mv": "u", "gain": 2}], r"used by two loops"),
-    ([], r"at least one loop"),
+    ([{"cv": "y", "mv": "u", "gain": 1}, {"cv": "y", "mv": "u", "gain": 2}], r"key 'loops\[1\].cv': expected a CV no other loop uses .*found 'y', used by an earlier loop"),
+    ([], r"key 'loops': expected at least one loop, found none"),
 ])
 def test_bad_loop_settings_are_named(loops, message):
     with pytest.raises(mp.SettingsError, match=message):

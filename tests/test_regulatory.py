@@ -295,7 +295,7 @@ def test_override_and_split_range_from_settings():
 @pytest.mark.parametrize("settings, fragment", [
     ({"ratio": {"y1": {"mv": "u"}}}, "pid: key 'ratio.y1.wild': expected 'wild'"),
     ({"ratio": {"y1": {"mv": "u", "wild": "nothing"}}}, "pid: key 'ratio.y1.wild': expected the name"),
-    ({"feedforward": {"y1": {"dv": "d", "mv": "u"}}}, "pid: key 'feedforward.y1': give exactly one source"),
+    ({"feedforward": {"y1": {"dv": "d", "mv": "u"}}}, "pid: key 'feedforward.y1': expected exactly one source"),
     ({"feedforward": {"y1": {"mv": "u", "lead": 3.0}}}, "'gain' must be too"),
     ({"override": {"u": {"select": "lowest", "loops": [{"cv": "y1"}, {"cv": "y2"}]}}},
      "pid: key 'override.u.select': expected one of: min, max, found the unknown select 'lowest'"),
@@ -308,7 +308,7 @@ def test_override_and_split_range_from_settings():
     ({"split_range": {"y1": {"valves": [{"mv": "u", "start": 0, "end": 150}]}}},
      "key 'split_range.y1.valves[0].end': expected a percent <= 100"),
     ({"cascade": {"y1": {"inner": "y1", "mv": "u"}}}, "pid: key 'cascade.y1.inner': expected the name"),
-    ({"cascade": {"y9": {"inner": "y2", "mv": "u"}}}, "pid: key 'cascade': 'y9' is not a CV"),
+    ({"cascade": {"y9": {"inner": "y2", "mv": "u"}}}, "pid: key 'cascade.y9': expected the name of a CV of this model"),
 ])
 def test_structure_settings_are_checked_with_key_paths(settings, fragment):
     m = selector_plant()

@@ -117,19 +117,19 @@ def test_dv_step_and_plot(tank, tmp_path):
 
 def test_bad_requests_are_named(tank):
     m, op = tank
-    with pytest.raises(mp.SettingsError, match=r"'heater' is not an MV or DV.*did you mean 'heater_duty'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'mv': expected the name of an MV or DV of this model .*found 'heater'.*did you mean 'heater_duty'"):
         mp.open_loop_test(m, op, "heater", size=1.0)
-    with pytest.raises(mp.SettingsError, match=r"kind must be one of step, pulse, impulse; got 'stpe'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'kind': expected one of 'step', 'pulse', 'impulse', found 'stpe'"):
         mp.open_loop_test(m, op, "heater_duty", kind="stpe", size=1.0)
-    with pytest.raises(mp.SettingsError, match=r"size must be a finite non-zero number; got 0"):
+    with pytest.raises(mp.SettingsError, match=r"key 'size': expected a finite non-zero number, found 0"):
         mp.open_loop_test(m, op, "heater_duty", size=0)
-    with pytest.raises(mp.SettingsError, match=r"Ts must be a finite number > 0; got -1"):
+    with pytest.raises(mp.SettingsError, match=r"key 'Ts': expected a finite number > 0, found -1"):
         mp.open_loop_test(m, op, "heater_duty", size=1.0, Ts=-1.0, duration=10.0)
     other = mp.make_model("henson_seborg_cstr")
-    with pytest.raises(mp.SettingsError, match=r"operating point belongs to model 'blending_tank'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'op': expected an operating point of model 'henson_seborg_cstr', found one of model 'blending_tank'"):
         mp.open_loop_test(other, op, "coolant_temperature", size=1.0)
     r = mp.open_loop_test(m, op, "heater_duty", size=10.0, duration=100.0, Ts=10.0)
-    with pytest.raises(mp.SettingsError, match=r"must end in .png; got 'out.svg'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'path': expected a file name ending in .png, found 'out.svg'"):
         mp.plot_response_test(r, "out.svg")
 
 
@@ -158,7 +158,7 @@ def test_sopdt_fit_finds_the_quadruple_tank_lags():
     assert fit.time_constants[0] == pytest.approx(62.0, rel=0.05)
     assert fit.time_constants[1] == pytest.approx(23.0, rel=0.05)
     assert fit.dead_time == pytest.approx(0.0, abs=0.5)
-    with pytest.raises(mp.SettingsError, match=r"order must be 1 \(FOPDT\) or 2 \(SOPDT\); got 3"):
+    with pytest.raises(mp.SettingsError, match=r"key 'order': expected 1 \(FOPDT\) or 2 \(SOPDT\), found 3"):
         mp.fit_step_response(r.t, r.y_nonlinear[:, 0], size=0.1, order=3)
-    with pytest.raises(mp.SettingsError, match=r"does not move"):
+    with pytest.raises(mp.SettingsError, match=r"key 'y': expected a response that moves"):
         mp.fit_step_response(r.t, np.ones_like(r.t), size=0.1)

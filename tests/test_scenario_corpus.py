@@ -335,3 +335,28 @@ def test_every_refusal_carries_its_file_and_key(path):
         top = re.split(r"[.\[]", e.key)[0]
         text = path.read_bytes().decode("utf-8", "replace")
         assert top in TOP_KEYS or re.search(rf"^\[{re.escape(top)}\b", text, re.M), (path.name, e.key)
+
+
+def test_a_closed_loop_refusal_lands_at_the_scenario_key_of_its_argument(tmp_path):
+    """simulate() keys its own refusals by its argument (``cv_limits.level``); the scenario layer
+    places them at the section that argument comes from (``limits.level``), from the fields."""
+    from mpcproto.exceptions import SettingsError
+    from mpcproto.scenario.runner import prepare, simulate_error
+    from mpcproto.sim import OpenLoop
+
+    scn = mp.load_scenario(_write(tmp_path, "s"))
+    prep = prepare(scn)
+    m = prep.plant
+    # a high limit that steps below the low one at t = 100 (the scenario format takes numbers
+    # only, so this reaches the loop through the Python API)
+    lim = {"level": {"low": 1.0, "high": {"kind": "step", "at": 100.0, "size": -1.0, "base": 1.5}}}
+    with pytest.raises(SettingsError) as ei:
+        mp.simulate(m, OpenLoop(m.mv_names), op=prep.op, Ts=10.0, duration=600.0, cv_limits=lim)
+    assert (ei.value.owner, ei.value.key) == ("ClosedLoop", "cv_limits.level")
+    err = simulate_error(ei.value, scn, "pid")
+    assert isinstance(err, mp.ScenarioError) and err.file == scn.file
+    assert err.key == "limits.level" and "found low 1 above high 0.5 at t=100" in str(err)
+    # an error that is not the loop's own stays at the controller's key
+    other = SettingsError(owner="PIDController", key="loops[0].gain", expected="a number",
+                          found="'x'")
+    assert simulate_error(other, scn, "pid").key == "controllers.pid.loops[0].gain"

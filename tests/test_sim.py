@@ -244,9 +244,9 @@ def test_bad_inputs_are_named():
     base = dict(op=op, Ts=10.0, duration=100.0)
     with pytest.raises(mp.SettingsError, match=r"faults\[0\].*'levle'.*did you mean 'level'"):
         mp.simulate(m, ol, faults=[{"kind": "sensor_nan", "variable": "levle", "at": 10}], **base)
-    with pytest.raises(mp.SettingsError, match=r"'water_flow' is not a CV"):
+    with pytest.raises(mp.SettingsError, match=r"key 'faults\[0\].variable': expected the name of a CV .* found 'water_flow'"):
         mp.simulate(m, ol, faults=[{"kind": "sensor_nan", "variable": "water_flow", "at": 10}], **base)
-    with pytest.raises(mp.SettingsError, match=r"dvs: 'draw' is not a DV.*did you mean 'draw_off'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'dvs': expected the name of a DV .* found 'draw'.*did you mean 'draw_off'"):
         mp.simulate(m, ol, dvs={"draw": 1.0}, **base)
     with pytest.raises(mp.SettingsError, match=r"dvs.draw_off \(pulse\): key 'duration': expected a number > 0, found -5"):
         mp.simulate(m, ol, dvs={"draw_off": {"kind": "pulse", "at": 1, "duration": -5, "size": 1}}, **base)

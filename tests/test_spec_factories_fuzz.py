@@ -112,7 +112,7 @@ def test_the_reported_cases():
     # the two reported crashes: an unhashable kind and a non-string loop cv
     with pytest.raises(mp.SettingsError, match=r"dvs.feed: key 'kind': expected one of: constant, .*, found a table {}"):
         signal_from_spec({"kind": {}}, what="dvs.feed")
-    with pytest.raises(mp.SettingsError, match=r"pid: key 'loops\[0\].cv': expected the name of a CV \(a string.*found 3"):
+    with pytest.raises(mp.SettingsError, match=r"pid: key 'loops\[0\].cv': expected the name of a CV of this model.*found 3"):
         mp.pid_from_settings(None, None, 1.0, {"loops": [{"cv": 3, "mv": "u"}]}, what="pid")
 
 

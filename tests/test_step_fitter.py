@@ -58,18 +58,18 @@ def test_integrating_fit_at_layer_2():
     assert f.gain == pytest.approx(0.05, rel=1e-8) and f.dead_time == pytest.approx(8.0, abs=1e-6)
     g = mp.fit_integrating(t, y, at=5.0, size=2.0)
     assert (g.gain, g.dead_time) == pytest.approx((f.gain, f.dead_time))
-    with pytest.raises(mp.SettingsError, match=r"kind must be one of fopdt, sopdt, integrating; "
-                                               r"got 'fodpt'.*did you mean 'fopdt'"):
+    with pytest.raises(mp.SettingsError, match=r"key 'kind': expected one of 'fopdt', 'sopdt', "
+                                               r"'integrating', found 'fodpt'.*did you mean 'fopdt'"):
         mp.fit_step_response(t, y, size=2.0, kind="fodpt")
-    with pytest.raises(mp.SettingsError, match=r"fit_fopdt\(y<-u\): fewer than 5 samples after"):
+    with pytest.raises(mp.SettingsError, match=r"fit_fopdt\(y<-u\): key 't': expected at least 5 samples after"):
         mp.fit_fopdt(t[:8], y[:8], at=5.0, size=2.0, cv="y", mv="u")
 
 
 def test_fitters_refuse_wrong_types_with_settings_error():
     t = np.arange(10.0)
-    with pytest.raises(mp.SettingsError, match=r"fit_step_response\(\): t_step must be a finite number; got None"):
+    with pytest.raises(mp.SettingsError, match=r"fit_step_response\(\): key 't_step': expected a finite number, found None"):
         mp.fit_step_response(t, t, size=1.0, t_step=None)
-    with pytest.raises(mp.SettingsError, match=r"fit_fopdt: 'at' \(the time of the step\) must be a finite number; found 'x'"):
+    with pytest.raises(mp.SettingsError, match=r"fit_fopdt: key 'at': expected the time of the step \(a finite number\), found 'x'"):
         mp.fit_fopdt(t, t, at="x", size=1.0)
-    with pytest.raises(mp.SettingsError, match=r"fit_sopdt: the step size must be finite and non-zero; found 'a'"):
+    with pytest.raises(mp.SettingsError, match=r"fit_sopdt: key 'size': expected a finite non-zero step size, found 'a'"):
         mp.fit_sopdt(t, t, at=0.0, size="a")

@@ -77,12 +77,14 @@ def read_bundle(path: str | Path) -> dict[str, Any]:
     """
     f = _bundle_path(path)
     if not f.is_file():
-        raise SettingsError(f"{f}: expected a controller bundle (a directory holding {BUNDLE_FILE}, "
-                            f"written by 'mpcproto export'); found no such file.")
+        raise SettingsError(file=str(f), expected=f"a controller bundle (a directory holding "
+                            f"{BUNDLE_FILE}, written by 'mpcproto export')", found="no such file")
     try:
         doc = json.loads(f.read_text())
     except (ValueError, UnicodeDecodeError) as exc:
-        raise SettingsError(f"{f}: expected JSON; found a file that does not parse ({exc}).") from None
+        # the JSON reader's own words say where the file breaks: shown as the found part
+        raise SettingsError(file=str(f), expected="JSON",
+                            found=f"a file that does not parse ({exc})") from None
     validate_bundle(doc, file=str(f))
     return doc
 
@@ -96,27 +98,28 @@ def validate_bundle(doc: Any, *, file: str = BUNDLE_FILE) -> str:
     """
     if not isinstance(doc, Mapping) or doc.get("format") != FORMAT:
         found = doc.get("format") if isinstance(doc, Mapping) else type(doc).__name__
-        raise SettingsError(f"{file}: key 'format': expected {FORMAT!r}; found {found!r}.")
+        raise SettingsError(file=file, key="format", expected=repr(FORMAT), found=repr(found))
     ver = doc.get("format_version")
     if not isinstance(ver, int) or isinstance(ver, bool) or not 1 <= ver <= FORMAT_VERSION:
-        raise SettingsError(f"{file}: key 'format_version': expected an int from 1 to "
-                            f"{FORMAT_VERSION} (this mpcproto reads those); found {ver!r}.")
+        raise SettingsError(file=file, key="format_version", expected=f"an int from 1 to "
+                            f"{FORMAT_VERSION} (this mpcproto reads those)", found=repr(ver))
     try:
         import jsonschema
     except ImportError:
         for key in ("names", "operating_point", "model", "settings", "controller"):
             if key not in doc:
-                raise SettingsError(f"{file}: expected the key '{key}'; found keys "
-                                    f"{sorted(doc)}.")
+                raise SettingsError(file=file, key=key, expected=f"the key '{key}'",
+                                    found=f"keys {sorted(doc)}")
         return "basic checks (install jsonschema for the full schema)"
     validator = jsonschema.Draft202012Validator(load_schema())
     errors = sorted(validator.iter_errors(doc), key=lambda e: list(map(str, e.absolute_path)))
     if errors:
         e = errors[0]
-        where = ".".join(str(p) for p in e.absolute_path) or "(top level)"
+        where = ".".join(str(p) for p in e.absolute_path) or None
         more = f" ({len(errors) - 1} more problem(s))" if len(errors) > 1 else ""
-        raise SettingsError(f"{file}: key '{where}' does not match the bundle schema: "
-                            f"{e.message}{more}.")
+        # the schema validator's own words are the found part
+        raise SettingsError(file=file, key=where, expected="a value the bundle schema allows",
+                            found=f"{e.message}{more}")
     return "jsonschema"
 
 
@@ -183,8 +186,8 @@ def _matrix(doc: Mapping[str, Any], key: str, rows: int, cols: int, file: str) -
     M = np.asarray(doc[key], float) if doc[key] else np.zeros((rows, cols))
     M = M.reshape(rows, cols) if M.size == rows * cols else M
     if M.shape != (rows, cols):
-        raise SettingsError(f"{file}: key 'model.discrete.{key}': expected a {rows} x {cols} matrix; "
-                            f"found shape {M.shape}.")
+        raise SettingsError(file=file, key=f"model.discrete.{key}",
+                            expected=f"a {rows} x {cols} matrix", found=f"shape {M.shape}")
     return M
 
 
@@ -203,8 +206,9 @@ def discrete_model_from_bundle(doc: Mapping[str, Any], *, file: str = BUNDLE_FIL
         given = op[role]
         missing = [n for n in names[role] if n not in given]
         if missing:
-            raise SettingsError(f"{file}: key 'operating_point.{role}': expected a value for every "
-                                f"name in 'names.{role}'; missing {missing}.")
+            raise SettingsError(file=file, key=f"operating_point.{role}",
+                                expected=f"a value for every name in 'names.{role}'",
+                                found=f"none for {missing}")
         values[key] = np.array([float(given[n]) for n in names[role]], float)
     point = OperatingPoint(model=str(op["model"]), x=values["x"], u=values["u"], d=values["d"],
                            y=values["y"], p=np.array(list(op.get("parameters", {}).values()), float),
@@ -231,7 +235,7 @@ def controller_from_bundle(cls: type, path: str | Path) -> Any:
     try:
         ctl = cls.from_settings(dmodel, settings_from_plain(doc["settings"])).build()
     except SettingsError as exc:
-        raise SettingsError(f"{f}: key 'settings': {exc}") from None
+        raise exc.at("settings").replace(file=str(f)) from None
     ctl.name = str(doc["controller"]["label"])
     return ctl
 

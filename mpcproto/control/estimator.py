@@ -47,12 +47,21 @@ import numpy as np
 import scipy.linalg as sla
 
 from ..exceptions import NotBuiltError, SettingsError
-from ..model import suggest
+from ..validation import Interval, Names, Options, check, fail, shown
+
+#: the owner of the estimator's setting errors; keys are its arguments, per CV
+#: ``disturbance.<cv>``, ``measurement_noise.<cv>``, ``disturbance_noise.<cv>`` (the predictive
+#: controller places them at its own keys, ``cv.<cv>.disturbance``...)
+OWNER = "DisturbanceEstimator"
 
 __all__ = ["DisturbanceEstimator"]
 
 DISTURBANCE_MODELS = ("auto", "output", "input")
 _NOTHING: dict[str, Any] = {"rejected": (), "late": (), "too_old": ()}
+
+
+_DETECTABLE = ("a disturbance model the estimator can detect ('output' disturbances, or an "
+               "'input' model only where MVs reach the CV)")
 
 
 class DisturbanceEstimator:
@@ -107,9 +116,7 @@ class DisturbanceEstimator:
         names = list(self.dmodel.cv_names)
         if isinstance(value, Mapping):
             for k in value:
-                if k not in names:
-                    raise SettingsError(f"DisturbanceEstimator: '{what}' names an unknown CV '{k}'"
-                                        f"{suggest(k, names)}; CVs are {names}.")
+                check(k, Names("CV", tuple(names)), owner=OWNER, key=what)
             default = {"disturbance": "auto", "disturbance_noise": 1e-2,
                        "measurement_noise": 1e-3}[what]
             return [value.get(n, default) for n in names]
@@ -117,14 +124,8 @@ class DisturbanceEstimator:
 
     @staticmethod
     def _positive(v, what: str, allow_zero=False) -> float:
-        try:
-            f = float(v)
-        except (TypeError, ValueError):
-            raise SettingsError(f"DisturbanceEstimator: '{what}' must be a number; got {v!r}.") from None
-        if not np.isfinite(f) or f < 0 or (f == 0 and not allow_zero):
-            raise SettingsError(f"DisturbanceEstimator: '{what}' must be a finite number "
-                                f"{'>= 0' if allow_zero else '> 0'}; got {v!r}.")
-        return f
+        return check(v, Interval(float, 0, None, closed="both" if allow_zero else "neither"),
+                     owner=OWNER, key=what)
 
     # ------------------------------------------------------------------ build
     def build(self) -> "DisturbanceEstimator":
@@ -134,17 +135,15 @@ class DisturbanceEstimator:
         nx, nu, ny = A.shape[0], B.shape[1], C.shape[0]
         kinds = self._per_cv(self.disturbance, "disturbance")
         for n, k in zip(m.cv_names, kinds):
-            if k not in DISTURBANCE_MODELS:
-                raise SettingsError(f"DisturbanceEstimator: disturbance model for CV '{n}' must be one "
-                                    f"of {DISTURBANCE_MODELS}; got {k!r}{suggest(k, DISTURBANCE_MODELS)}.")
-        qw = [self._positive(v, f"disturbance_noise[{n}]")
+            check(k, Options(DISTURBANCE_MODELS, noun="a disturbance model"), owner=OWNER,
+                  key=f"disturbance.{n}")
+        qw = [self._positive(v, f"disturbance_noise.{n}")
               for n, v in zip(m.cv_names, self._per_cv(self.disturbance_noise, "disturbance_noise"))]
-        rv = [self._positive(v, f"measurement_noise[{n}]")
+        rv = [self._positive(v, f"measurement_noise.{n}")
               for n, v in zip(m.cv_names, self._per_cv(self.measurement_noise, "measurement_noise"))]
         qx = self._positive(self.state_noise, "state_noise", allow_zero=True)
-        if not isinstance(self.history, (int, np.integer)) or self.history < 1:
-            raise SettingsError(f"DisturbanceEstimator: 'history' must be an int >= 1 (samples); "
-                                f"got {self.history!r}.")
+        check(self.history, Interval(int, 1, None, noun="a number of samples"), owner=OWNER,
+              key="history")
         Bw = np.zeros((nx, ny))
         Cw = np.zeros((ny, ny))
         integrating = self.integrating_cvs(A, C)
@@ -165,16 +164,17 @@ class DisturbanceEstimator:
         for i, k in enumerate(kinds):
             if k == "output":
                 if integrating[i]:
-                    raise SettingsError(
-                        f"DisturbanceEstimator: CV '{m.cv_names[i]}' integrates (a level, an "
-                        f"inventory); an 'output' disturbance on it cannot be told apart from the "
-                        f"integrating state. Use 'input' or 'auto'.")
+                    raise fail(OWNER, f"disturbance.{m.cv_names[i]}", "'input' or 'auto' for a "
+                               "CV that integrates (a level, an inventory): an 'output' "
+                               "disturbance on it cannot be told apart from the integrating "
+                               "state", "'output'")
                 Cw[i, i] = 1.0
             else:
                 col = B @ Gp[:, i]
                 if np.linalg.norm(col) < 1e-12:
-                    raise SettingsError(f"DisturbanceEstimator: CV '{m.cv_names[i]}' cannot take an "
-                                        f"'input' disturbance (no MV moves it).")
+                    raise fail(OWNER, f"disturbance.{m.cv_names[i]}", "'output' or 'auto' for "
+                               "a CV no MV moves (an 'input' disturbance acts through the MVs)",
+                               "'input'")
                 Bw[:, i] = col
         self.kinds_ = tuple(kinds)
         self.Bw_, self.Cw_ = Bw, Cw
@@ -191,21 +191,19 @@ class DisturbanceEstimator:
         else:
             sxs = np.asarray(self.state_scale, float).reshape(-1)
             if sxs.shape != (nx,) or not np.all(np.isfinite(sxs)) or np.any(sxs <= 0):
-                raise SettingsError(f"DisturbanceEstimator: 'state_scale' must hold {nx} finite "
-                                    f"numbers > 0 (one per state); got {self.state_scale!r}.")
+                raise fail(OWNER, "state_scale", f"{nx} finite numbers > 0 (one per state)",
+                           shown(self.state_scale))
         Q[np.arange(npl), np.arange(npl)] = qx * sxs[:npl] ** 2
         Q[nx + np.arange(ny), nx + np.arange(ny)] = qw
         R = np.diag(rv)
         try:
             P = sla.solve_discrete_are(Aa.T, Ca.T, Q, R)
         except (np.linalg.LinAlgError, ValueError) as exc:
-            raise SettingsError(
-                "DisturbanceEstimator: the Riccati equation of the augmented model has no "
-                f"stabilizing solution ({exc}); the disturbance model is not detectable -- try "
-                "'output' disturbances, or an 'input' model only where MVs reach the CV.") from None
+            # scipy's own words (a foreign exception's text) are the note
+            raise fail(OWNER, "disturbance", _DETECTABLE, "no stabilizing solution of the "
+                       "Riccati equation of the augmented model", note=str(exc)) from None
         if not np.all(np.isfinite(P)):
-            raise SettingsError("DisturbanceEstimator: the Riccati solution is not finite; the "
-                                "disturbance model is not detectable.")
+            raise fail(OWNER, "disturbance", _DETECTABLE, "a Riccati solution that is not finite")
         self.A_, self.C_, self.P_, self.R_ = Aa, Ca, P, R
         self.Ba_ = np.vstack([B, np.zeros((ny, nu))])
         self.Bda_ = np.vstack([np.asarray(m.Bd, float), np.zeros((ny, m.nd))])

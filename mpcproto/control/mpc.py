@@ -62,6 +62,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from ..exceptions import SettingsError
+from .estimator import OWNER as ESTIMATOR
 from ..model import suggest
 from .mpc_qp import ControllerQP
 from .mpc_results import PlanResult, StepDiagnostics
@@ -261,9 +262,22 @@ class PredictiveController(ControllerQP, ControllerRuntime):
         gc.disable()             # compilation makes many short-lived objects: collect once after
         try:
             return self._build()
+        except SettingsError as e:
+            if e.owner != ESTIMATOR:
+                raise
+            raise e.replace(owner="PredictiveController", key=self._estimator_key(e.key)) \
+                from None
         finally:
             if was_enabled:
                 gc.enable()
+
+    def _estimator_key(self, key: str | None) -> str | None:
+        """The controller's key of an estimator setting's key (``disturbance.level`` ->
+        ``cv.level.disturbance``; the estimator's whole disturbance model -> ``cv``)."""
+        keys = {f"{s}.{n}": f"cv.{n}.{s}" for n in self.dmodel.cv_names
+                for s in ("disturbance", "measurement_noise", "disturbance_noise")}
+        keys["disturbance"] = "cv"
+        return keys.get(key or "", key)
 
     @classmethod
     def from_bundle(cls, path) -> "PredictiveController":

@@ -56,6 +56,7 @@ import numpy as np
 from ..exceptions import SettingsError
 from ..linear import rga as _rga
 from ..model import suggest
+from ..validation import Names, check, fail
 from ..operating import OperatingPoint
 from .base import (STATUS_HOLD, STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutput, Measurement,
                    Targets)
@@ -127,7 +128,7 @@ def pid_loop_from_spec(spec: Mapping[str, Any] | PIDLoop, *, what: str) -> PIDLo
     if isinstance(spec, PIDLoop):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"a PID loop must be a table/dict; found {spec!r}.", owner=what)
+        raise fail(what, None, "a PID loop table", repr(spec))
     for k in spec:
         if k not in _LOOP_KEYS:
             raise SettingsError(owner=what, key=str(k),
@@ -238,19 +239,18 @@ class PIDController:
         self.cv_names, self.mv_names = tuple(cv_names), tuple(mv_names)
         self.loops = [pid_loop_from_spec(lp, what=f"PID loops[{i}]") for i, lp in enumerate(loops)]
         if not self.loops:
-            raise SettingsError("PIDController: give at least one loop.")
+            raise fail("PIDController", "loops", "at least one loop", "none")
         seen_cv: set[str] = set()
         seen_mv: set[str] = set()
         for i, lp in enumerate(self.loops):
             for role, names, seen, v in (("CV", self.cv_names, seen_cv, lp.cv),
                                          ("MV", self.mv_names, seen_mv, lp.mv)):
-                if v not in names:
-                    raise SettingsError(
-                        f"PID loops[{i}]: '{v}' is not a {role} of the model{suggest(v, names)}; "
-                        f"{role}s: {', '.join(names)}.")
+                check(v, Names(role, tuple(names)), owner="PIDController",
+                      key=f"loops[{i}].{role.lower()}")
                 if v in seen:
-                    raise SettingsError(f"PID loops[{i}]: {role} '{v}' is used by two loops; "
-                                        f"each {role} may be in one loop only.")
+                    raise fail("PIDController", f"loops[{i}].{role.lower()}", f"a {role} no "
+                               f"other loop uses (each {role} may be in one loop only)",
+                               f"'{v}', used by an earlier loop")
                 seen.add(v)
         self._idx = [(self.cv_names.index(lp.cv), self.mv_names.index(lp.mv)) for lp in self.loops]
         self._diag_keys = [f"integral.{lp.mv}" for lp in self.loops]

@@ -14,6 +14,7 @@ from typing import Any
 from .._specs import as_float, choice, refuse_unknown_keys, shown
 from ..exceptions import SettingsError, join_key
 from ..model import suggest
+from ..validation import Names, check
 from .pid import PIDLoop
 from .tuning import RULES, ZN_METHODS, ProcessFit, rule_on_fit, tune_pid_loops
 
@@ -117,13 +118,8 @@ def _check_settings_below(model: Any, settings: Mapping[str, Any]) -> None:
 
 
 def _name(v: Any, key: str, role: str, names: Sequence[str], what: str) -> str:
-
-    if not isinstance(v, str):
-        article = "an" if role == "MV" else "a"
-        raise SettingsError(owner=what, key=key, found=shown(v),
-                            expected=f"the name of {article} {role} (a string: "
-                                     f"{', '.join(names) or '...'})")
-    return v
+    """*v*, the name of a *role* variable of the model, or the error at *key*."""
+    return check(v, Names(role, tuple(names)), owner=what, key=key)
 
 
 def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any], *,
@@ -218,12 +214,6 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
 
         check_structure_settings(model, {k: settings[k] for k in _STRUCTURE_KEYS if k in settings},
                                  what=what)
-    for i, (c, m) in enumerate(to_tune):
-        for v, names, role in ((c, cv_names, "CV"), (m, mv_names, "MV")):
-            if v not in names:
-                raise SettingsError(f"pair {i} ({c}, {m}): '{v}' is not a {role} of model "
-                                    f"'{model.name}'{suggest(v, names)}; {role}s: {', '.join(names)}.",
-                                    owner=what)
     structures = {k: settings[k] for k in _STRUCTURE_KEYS if k in settings}
     if pairs_spec is None and loop_specs is None and not structures:
         from ..linear import linearize
@@ -273,6 +263,6 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
                 test_duration=settings.get("test_duration"), what=what)
         return PIDController.for_model(model, loops)
     except SettingsError as exc:
-        if str(exc).startswith(what):
+        if exc.owner == what:
             raise
-        raise SettingsError(f"{exc}", owner=what) from None
+        raise exc.within(what) from None

@@ -20,7 +20,7 @@ import numpy as np
 
 from .._specs import as_float, paired_series, shown
 from ..exceptions import SettingsError
-from ..model import suggest
+from ..validation import Names, Options, check, fail
 from ..step_fit import ProcessFit, fit_step_response
 
 __all__ = ["ProcessFit", "StepData", "step_test", "fit_fopdt", "fit_sopdt", "fit_integrating",
@@ -55,32 +55,31 @@ def step_test(model: Any, op: Any, mv: str, *, size: float, Ts: float, duration:
     from ..responses import open_loop_test
 
     if mv not in model.mv_names:
-        raise SettingsError(f"step_test: '{mv}' is not an MV of model '{model.name}'"
-                            f"{suggest(mv, model.mv_names)}; MVs: {', '.join(model.mv_names)}.")
+        check(mv, Names("MV", tuple(model.mv_names)), owner="step_test", key="mv")
     if not (isinstance(size, (int, float)) and math.isfinite(size) and size != 0):
-        raise SettingsError(f"step_test: 'size' must be a finite non-zero number; found {size!r}.")
+        raise fail("step_test", "size", "a finite non-zero number", shown(size))
     at = float(Ts if at is None else at)
     if not (math.isfinite(at) and 0 <= at < duration):
-        raise SettingsError(f"step_test: 'at' must be in [0, duration); found {at!r}.")
+        raise fail("step_test", "at", f"a time in [0, {duration:g}) (the duration)", f"{at:g}")
     n_pre = int(round(at / Ts))
     at = n_pre * Ts
     try:
         rt = open_loop_test(model, op, mv, kind="step", size=float(size), duration=duration - at, Ts=Ts)
     except SimulationError as exc:
-        raise SettingsError(f"step_test: the step of {size:g} on '{mv}' made the plant fail: "
-                            f"{exc}. Try a smaller step.") from None
+        raise exc.within("step_test", f"the step of {size:g} on '{mv}' made the plant fail; "
+                         f"try a smaller step").as_class(SettingsError) from None
     t = np.concatenate([np.arange(n_pre) * Ts, at + rt.t])
     Y = np.vstack([np.tile(np.asarray(op.y, float), (n_pre, 1)), rt.y_nonlinear])
     if isinstance(noise_std, Mapping):
         for c in noise_std:
             if c not in model.cv_names:
-                raise SettingsError(f"step_test: noise_std names '{c}', not a CV of model "
-                                    f"'{model.name}'{suggest(str(c), model.cv_names)}.")
+                check(c, Names("CV", tuple(model.cv_names)), owner="step_test",
+                      key="noise_std")
         std = np.array([float(noise_std.get(c, 0.0)) for c in model.cv_names])
     else:
         std = np.full(len(model.cv_names), float(noise_std))
     if np.any(std < 0) or not np.all(np.isfinite(std)):
-        raise SettingsError(f"step_test: noise_std must be finite and >= 0; found {noise_std!r}.")
+        raise fail("step_test", "noise_std", "finite numbers >= 0", shown(noise_std))
     if np.any(std > 0):
         gen = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
         Y = Y + gen.standard_normal(Y.shape) * std
@@ -93,25 +92,24 @@ def _prep(t, y, at, size, y0, what):
     t, y = paired_series(t, y, what=what, finite_y=False)
     fs = as_float(size)
     if fs is None or not math.isfinite(fs) or fs == 0:
-        raise SettingsError(f"the step size must be finite and non-zero; found {shown(size)}.",
-                            owner=what)
+        raise fail(what, "size", "a finite non-zero step size", shown(size))
     fa = as_float(at)
     if fa is None or not math.isfinite(fa):
-        raise SettingsError(f"'at' (the time of the step) must be a finite number; found "
-                            f"{shown(at)}.", owner=what)
+        raise fail(what, "at", "the time of the step (a finite number)", shown(at))
     if y0 is not None and (as_float(y0) is None or not math.isfinite(as_float(y0))):
-        raise SettingsError(f"'y0' must be a finite number or None; found {shown(y0)}.", owner=what)
+        raise fail(what, "y0", "a finite number or None", shown(y0))
     size, at = fs, fa
     ok = np.isfinite(y)
     if ok.sum() < 5:
-        raise SettingsError("fewer than 5 finite samples of the response.", owner=what)
+        raise fail(what, "y", "at least 5 finite samples of the response", f"{int(ok.sum())}")
     t, y = t[ok], y[ok]
     if y0 is None:
         before = y[t < at]
         y0 = float(before.mean()) if before.size else float(y[0])
     after = t >= at
     if after.sum() < 5:
-        raise SettingsError(f"fewer than 5 samples after the step at t={at:g}.", owner=what)
+        raise fail(what, "t", f"at least 5 samples after the step at t={at:g}",
+                   f"{int(np.count_nonzero(after))}")
     return t[after] - at, (y[after] - y0) / size, y0
 
 
@@ -128,10 +126,9 @@ def _shape_checks(s, r, what, allow_integrating=False):
     noise = _noise_level(r)
     span = float(np.max(np.abs(r))) if r.size else 0.0
     if span <= 3 * noise or span == 0:
-        raise SettingsError(f"the response does not rise above the noise (peak "
-                            f"{span:.3g} per unit step, noise {noise:.3g}); use a larger step.",
-                            owner=what,
-                            code="no_response")
+        raise fail(what, "size", "a response that rises above the noise",
+                   f"a peak of {span:.3g} per unit step, noise {noise:.3g}", "use a larger step",
+                   code="no_response")
     # integrating: still moving at the end at a rate comparable to the mean rate
     ts = s[int(0.8 * n):]
     slope = np.polyfit(ts, tail, 1)[0] if ts.size > 2 else 0.0
@@ -155,7 +152,7 @@ def _fit(kind: str, t: Sequence[float], y: Sequence[float], at: float, size: flo
     s, r, _ = _prep(t, y, at, size, y0, what)
     _, _, inverse = _shape_checks(s, r, what, allow_integrating=kind == "integrating")
     if kind == "integrating" and np.polyfit(s[s.size // 2:], r[s.size // 2:], 1)[0] == 0:
-        raise SettingsError("the response has no slope; it is not integrating.", owner=what)
+        raise fail(what, "y", "an integrating response (a slope at the end)", "no slope")
     # r is the response per unit step measured from y0 at times since the step
     f = fit_step_response(s, r, size=1.0, t_step=0.0, y0=0.0, kind=kind, what=what)
     return replace(f, rmse=f.rmse * abs(size), noise_level=f.noise_level * abs(size),
@@ -190,7 +187,7 @@ def fit_step(data: StepData, cv: str, *, kind: str = "auto") -> ProcessFit:
     """Fit one CV of a :class:`StepData`: ``kind`` "fopdt", "sopdt", "integrating" or "auto"
     (integrating if the response still ramps at the end, else FOPDT)."""
     if cv not in data.y:
-        raise SettingsError(f"fit_step: no CV '{cv}' in the step data{suggest(cv, list(data.y))}.")
+        check(cv, Names("CV", tuple(data.y)), owner="fit_step", key="cv")
     args = dict(at=data.at, size=data.size, y0=data.y0.get(cv), cv=cv, mv=data.mv)
     fits = {"fopdt": fit_fopdt, "sopdt": fit_sopdt, "integrating": fit_integrating}
     if kind == "auto":
@@ -201,6 +198,5 @@ def fit_step(data: StepData, cv: str, *, kind: str = "auto") -> ProcessFit:
                 raise
             return fit_integrating(data.t, data.y[cv], **args)
     if kind not in fits:
-        raise SettingsError(f"fit_step: kind must be one of auto, {', '.join(fits)}; found "
-                            f"{kind!r}{suggest(str(kind), list(fits))}.")
+        check(kind, Options(("auto", *fits), noun="a fit kind"), owner="fit_step", key="kind")
     return fits[kind](data.t, data.y[cv], **args)

@@ -17,6 +17,7 @@ import numpy as np
 from .._specs import choice, number, refuse_unknown_keys, shown
 from ..exceptions import SettingsError, join_key
 from ..model import suggest
+from ..validation import Names, check, fail
 from .pid import PIDLoop
 from .regulatory import (REFERENCES, SELECTS, Cascade, Feedforward, Ratio, RegulatoryController,
                          Selector, SplitRange, Valve)
@@ -37,9 +38,10 @@ def design_feedforward(gp: Any, gd: Any, *, cv: str, source: str) -> Feedforward
     if kinds == ("integrating", "integrating"):
         return Feedforward(cv, source, -gd.gain / gp.gain, dead_time=dt,
                            rule="-Gd/Gp (integrating: static)")
-    raise SettingsError(f"feedforward {cv}<-{source}: the design rule needs two FOPDT or two "
-                        f"integrating models; the step tests gave {gp.kind} (MV) and {gd.kind} "
-                        f"(DV). Give 'gain' (and 'lead', 'lag', 'dead_time') by hand.")
+    raise fail(f"feedforward {cv}<-{source}", "gain", "step tests that give two FOPDT or two "
+               "integrating models (the design rule needs them)",
+               f"{gp.kind} (MV) and {gd.kind} (DV)",
+               "Give 'gain' (and 'lead', 'lag', 'dead_time') by hand")
 
 
 # ---------------------------------------------------------------------------------- settings
@@ -54,7 +56,7 @@ _VALVE_KEYS = ("mv", "start", "end", "at_start", "at_end")
 
 def _table(v: Any, where: str, expect: str) -> Mapping[str, Any]:
     if not isinstance(v, Mapping) or not v:
-        raise SettingsError(f"expected {expect}; found {shown(v)}.", owner=where)
+        raise fail(where, None, expect, shown(v))
     return v
 
 
@@ -73,11 +75,8 @@ def _string(spec: Mapping[str, Any], key: str, where: str, names: Sequence[str],
 
 
 def _key_cv(c: Any, where: str, cvs: Sequence[str]) -> str:
-    if not isinstance(c, str) or c not in cvs:
-        raise SettingsError(f"{shown(c)} is not a CV of the model"
-                            f"{suggest(str(c), cvs)}; expected a table keyed by CV names "
-                            f"({', '.join(cvs)}).", owner=where)
-    return c
+    return check(c, Names("CV", tuple(cvs), fix="a table keyed by CV names"), owner=where,
+                 key=str(c))
 
 
 def _cv_tables(structures: Mapping[str, Any], key: str, cvs: Sequence[str],
@@ -133,9 +132,8 @@ def _check_structures(model: Any, structures: Mapping[str, Any]) -> None:
                                        "lag, dead_time}")
                 refuse_unknown_keys(spec, _FF_KEYS, what=w)
                 if ("dv" in spec) == ("mv" in spec):
-                    raise SettingsError(f"give exactly one source, 'dv' (a measured DV) or "
-                                        f"'mv' (another loop's flow); found "
-                                        f"{'both' if 'dv' in spec else 'neither'}.", owner=w)
+                    raise fail(w, None, "exactly one source, 'dv' (a measured DV) or 'mv' "
+                               "(another loop's flow)", "both" if "dv" in spec else "neither")
                 if "dv" in spec:
                     _string(spec, "dv", w, mdv, "measured DV")
                 else:
@@ -154,9 +152,8 @@ def _check_structures(model: Any, structures: Mapping[str, Any]) -> None:
                 for k in hand:
                     number(spec, k, what=w, low=0.0)
                 if spec.get("lead", 0) > 0 and spec.get("lag", 0) == 0:
-                    raise SettingsError(f"a 'lead' needs a 'lag' > 0 (a pure lead is not "
-                                        f"realizable); found lead = {spec['lead']!r} and no lag.",
-                                        owner=w)
+                    raise fail(w, "lag", "a 'lag' > 0 with a 'lead' (a pure lead is not "
+                               "realizable)", f"lead = {spec['lead']!r} and no lag")
     if "ratio" in structures:
         for c, w, spec in _cv_tables(structures, "ratio", cvs, "{mv = ..., wild = ...}",
                                      _RATIO_KEYS):
@@ -171,10 +168,8 @@ def _check_structures(model: Any, structures: Mapping[str, Any]) -> None:
         w0 = "override"
         for m, spec in _table(structures["override"], w0,
                               "a table {mv = {select = ..., loops = [...]}}").items():
-            if not isinstance(m, str) or m not in mvs:
-                raise SettingsError(f"{shown(m)} is not an MV of the model"
-                                    f"{suggest(str(m), mvs)}; expected a table keyed by MV names "
-                                    f"({', '.join(mvs)}).", owner=w0)
+            check(m, Names("MV", tuple(mvs), fix="a table keyed by MV names"), owner=w0,
+                  key=str(m))
             w = f"{w0}.{m}"
             spec = _table(spec, w, "a table {select = 'min' or 'max', loops = [{cv = ...}, ...]}")
             refuse_unknown_keys(spec, _OVERRIDE_KEYS, what=w)
@@ -208,8 +203,8 @@ def _check_structures(model: Any, structures: Mapping[str, Any]) -> None:
                     if k in v:
                         number(v, k, what=wv)
                     elif not math.isfinite(default):
-                        raise SettingsError(f"MV '{m}' has no finite physical limit to "
-                                            f"default '{k}' to; give '{k}'.", owner=wv)
+                        raise fail(wv, k, f"'{k}' (MV '{m}' has no finite physical limit to "
+                                   f"default it to)", "nothing")
 
 
 def _dv_step_fit(model: Any, op: Any, dv: str, cv: str, *, Ts: float, step_fraction: float,
@@ -229,7 +224,8 @@ def _dv_step_fit(model: Any, op: Any, dv: str, cv: str, *, Ts: float, step_fract
     try:
         rt = open_loop_test(model, op, dv, kind="step", size=size, duration=duration, Ts=Ts)
     except SimulationError as exc:
-        raise SettingsError(f"feedforward step test of '{dv}' failed: {exc}") from None
+        raise exc.within(None, f"feedforward step test of '{dv}'").as_class(SettingsError) \
+            from None
     i = model.cv_names.index(cv)
     data = StepData(t=np.concatenate([[0.0], Ts + rt.t]),
                     y={cv: np.concatenate([[op.y[i]], rt.y_nonlinear[:, i]])},
@@ -282,9 +278,9 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
         w = f"{what}.cascade.{c}"
         (inner,), (fi,) = tune([(spec["inner"], spec["mv"])])
         if fi.kind == "integrating":
-            raise SettingsError(f"the inner loop's process ({spec['inner']} <- {spec['mv']}) "
-                                f"integrates; a cascade's inner loop must be self-regulating here.",
-                                owner=w)
+            raise fail(w, "inner", "an inner loop whose process is self-regulating (a "
+                       "cascade's inner loop must be here)",
+                       f"{spec['inner']} <- {spec['mv']}, which integrates")
         j = mvs.index(spec["mv"])
         lo, hi = model.bounds("mv")
         span = hi[j] - lo[j] if math.isfinite(hi[j] - lo[j]) else max(abs(op.u[j]), 1.0)
@@ -310,16 +306,16 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
                             float(v.get("at_start", lo[j])), float(v.get("at_end", hi[j]))))
         (lp,), _ = tune([(c, vs[0].mv)])
         if vs[0].slope == 0:
-            raise SettingsError(f"{what}.split_range.{c}.valves[0]: the first valve does not move "
-                                f"(at_start = at_end); the loop is tuned on it.")
+            raise fail(f"{what}.split_range.{c}", "valves[0]", "a first valve that moves (the "
+                       "loop is tuned on it)", f"at_start = at_end = {vs[0].at_start:g}")
         lp = dataclasses.replace(lp, mv="split", gain=lp.gain / vs[0].slope)
         splits.append(SplitRange(lp, tuple(vs)))
     for c, spec in structures.get("ratio", {}).items():
         wild = spec["wild"]
         w0 = float(op.u[mvs.index(wild)] if wild in mvs else op.d[model.dv_names.index(wild)])
         if w0 == 0:
-            raise SettingsError(f"{what}.ratio.{c}.wild: the wild flow '{wild}' is 0 at the "
-                                f"operating point; the ratio is undefined there.")
+            raise fail(f"{what}.ratio.{c}", "wild", "a wild flow that is not 0 at the operating "
+                       "point (the ratio is undefined there)", f"'{wild}' = 0")
         (lp,), _ = tune([(c, spec["mv"])])
         ratios.append(Ratio(dataclasses.replace(lp, gain=lp.gain / w0), wild))
     owners = {lp.cv: lp.mv for lp in loops}
@@ -329,9 +325,8 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
         for i, spec in enumerate(items):
             w = f"{what}.feedforward.{c}" + (f"[{i}]" if isinstance(specs, (list, tuple)) else "")
             if c not in owners:
-                raise SettingsError(f"there is no single loop (or cascade inner loop) on "
-                                    f"'{c}' to add the feedforward to; loops on: "
-                                    f"{', '.join(owners) or 'none'}.", owner=w)
+                raise fail(w, None, f"a single loop (or cascade inner loop) on '{c}' to add the "
+                           f"feedforward to", f"loops on {', '.join(owners) or 'none'}")
             src = spec.get("dv", spec.get("mv"))
             if "gain" in spec:
                 ffs.append(Feedforward(c, src, float(spec["gain"]),
@@ -354,7 +349,7 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
                     gd = _src_fit(src, "fopdt")
                 ffs.append(design_feedforward(gp, gd, cv=c, source=src))
             except SettingsError as exc:
-                raise SettingsError(f"{exc}", owner=w) from None
+                raise exc.within(w) from None
             tuning["fits"][f"{c}<-{mv} (feedforward design)"] = gp.as_dict()
             tuning["fits"][f"{c}<-{src} (feedforward design)"] = gd.as_dict()
     try:
@@ -362,4 +357,4 @@ def regulatory_from_settings(model: Any, op: Any, Ts: float, structures: Mapping
                                               cascades=cascades, selectors=selectors,
                                               split_ranges=splits, tuning=tuning)
     except SettingsError as exc:
-        raise SettingsError(f"{exc}", owner=what) from None
+        raise exc.within(what) from None

@@ -75,7 +75,7 @@ import numpy as np
 from scipy.optimize import brentq
 
 from ..exceptions import SettingsError
-from ..model import suggest
+from ..validation import Interval, Options, check, fail
 from .pid import PIDLoop
 from .process_fit import (ProcessFit, StepData, fit_fopdt, fit_integrating, fit_sopdt, fit_step,
                           step_test)
@@ -124,18 +124,17 @@ def simc(fit: ProcessFit, *, tau_c: float | None = None, min_tau_c: float = 0.0,
     """
     _refuse_inverse(fit, "simc")
     th = fit.dead_time
-    if not (isinstance(min_tau_c, (int, float)) and not isinstance(min_tau_c, bool)
-            and math.isfinite(min_tau_c) and min_tau_c >= 0):
-        raise SettingsError(f"simc: min_tau_c must be a finite number >= 0; found {min_tau_c!r}.")
+    check(min_tau_c, Interval(float, 0, None), owner="simc", key="min_tau_c")
     if tau_c is None:
         floor = SIMC_FLOOR_FRACTION * fit.time_constants[0] if fit.time_constants else 0.0
         tau_c = max(th, floor, float(min_tau_c))
         if tau_c <= 0:
-            raise SettingsError("simc: the fitted dead time is 0 and the process integrates, so "
-                                "the default tau_c = dead time is 0; give tau_c (the desired "
-                                "closed-loop time constant) > 0.")
-    if not (isinstance(tau_c, (int, float)) and math.isfinite(tau_c) and tau_c > 0):
-        raise SettingsError(f"simc: tau_c must be a finite number > 0; found {tau_c!r}.")
+            raise fail("simc", "tau_c", "a tau_c (the desired closed-loop time constant) > 0",
+                       "none, and the default tau_c = dead time is 0 (the fitted dead time is 0 "
+                       "and the process integrates)", "give tau_c")
+    if isinstance(tau_c, bool) or not isinstance(tau_c, (int, float)):
+        raise fail("simc", "tau_c", "a number > 0", repr(tau_c))
+    check(tau_c, Interval(float, 0, None, closed="neither"), owner="simc", key="tau_c")
     k = fit.gain
     if fit.kind == "integrating":
         return _loop(fit, 1.0 / (k * (tau_c + th)), 4.0 * (tau_c + th), 0.0, "simc", cv, mv, **loop_kw)
@@ -152,18 +151,18 @@ def imc(fit: ProcessFit, *, lam: float | None = None, mode: str = "PID", cv: str
         mv: str | None = None, **loop_kw: Any) -> PIDLoop:
     """IMC-PID / IMC-PI settings for a FOPDT model (Rivera, Morari & Skogestad 1986)."""
     if mode not in ("PID", "PI"):
-        raise SettingsError(f"imc: mode must be 'PID' or 'PI'; found {mode!r}.")
+        raise fail("imc", "mode", "'PID' or 'PI'", repr(mode))
     if fit.kind != "fopdt":
-        raise SettingsError(
-            f"imc: the IMC rules implemented here are for a first-order-plus-dead-time process; the "
-            f"model is {fit.kind}. Fit a FOPDT (fit_fopdt) or use simc, which covers integrating "
-            f"and second-order processes.")
+        raise fail("imc", "rule", "a first-order-plus-dead-time process (the IMC rules "
+                   "implemented here are for one)", f"the {fit.kind} fit of the step test",
+                   "Fit a FOPDT (fit_fopdt) or use simc, which covers integrating and "
+                   "second-order processes")
     _refuse_inverse(fit, "imc")
     k, tau, th = fit.gain, fit.time_constants[0], fit.dead_time
     if lam is None:
         lam = max(th, 0.1 * tau) if mode == "PID" else max(1.7 * th, 0.1 * tau)
     if not (isinstance(lam, (int, float)) and math.isfinite(lam) and lam > 0):
-        raise SettingsError(f"imc: lam (the IMC filter time constant) must be > 0; found {lam!r}.")
+        raise fail("imc", "lam", "the IMC filter time constant > 0", repr(lam))
     Ti = tau + th / 2.0
     if mode == "PID":     # Rivera, Morari & Skogestad (1986), Table 1, PID row (Pade)
         return _loop(fit, (2 * tau + th) / (k * (2 * lam + th)), Ti, tau * th / (2 * tau + th),
@@ -237,10 +236,8 @@ def ziegler_nichols(fit: ProcessFit | None = None, *, ultimate: tuple[float, flo
     """
     table = {"P": (0.5, None, 0.0), "PI": (0.45, 1 / 1.2, 0.0), "PID": (0.6, 0.5, 0.125)}
     if mode not in table:
-        raise SettingsError(f"ziegler_nichols: mode must be one of P, PI, PID; found {mode!r}.")
-    if method not in ZN_METHODS:
-        raise SettingsError(f"ziegler_nichols: method must be one of {', '.join(ZN_METHODS)}; "
-                            f"found {method!r}.")
+        raise fail("ziegler_nichols", "mode", "one of P, PI, PID", repr(mode))
+    check(method, Options(tuple(ZN_METHODS)), owner="ziegler_nichols", key="method")
     if method == "reaction_curve":
         return _zn_reaction_curve(fit, ultimate, mode, cv, mv, **loop_kw)
     if (fit is None) == (ultimate is None):
@@ -310,8 +307,8 @@ def tune_loop(fit: ProcessFit, rule: str, **kw: Any) -> PIDLoop:
     """Apply the rule called *rule* (``"simc"``, ``"imc"`` or ``"ziegler_nichols"``) to *fit*."""
     fns = {"simc": simc, "imc": imc, "ziegler_nichols": ziegler_nichols}
     if rule not in fns:
-        raise SettingsError(f"tune_loop: unknown rule {rule!r}{suggest(str(rule), RULES)}; "
-                            f"expected one of: {', '.join(RULES)}.")
+        check(rule, Options(tuple(RULES), noun="a tuning rule"), owner="tune_loop()",
+              key="rule")
     return fns[rule](fit, **kw)
 
 
@@ -337,11 +334,9 @@ def tune_pid_loops(model: Any, op: Any, Ts: float, pairs: Sequence[tuple[str, st
     from ..linear import linearize
 
     if rule not in RULES:
-        raise SettingsError(f"unknown rule {rule!r}{suggest(str(rule), RULES)}; expected "
-                            f"one of: {', '.join(RULES)}.", owner=what)
-    if not (isinstance(step_fraction, (int, float)) and 0 < step_fraction <= 0.5):
-        raise SettingsError(f"step_fraction must be in (0, 0.5]; found {step_fraction!r}.",
-                            owner=what)
+        check(rule, Options(tuple(RULES), noun="a tuning rule"), owner=what, key="rule")
+    check(step_fraction, Interval(float, 0, 0.5, closed="right"), owner=what,
+          key="step_fraction")
     lin = linearize(model, op)
     loops, fits = [], []
     lo, hi = model.bounds("mv")
@@ -384,8 +379,7 @@ def rule_on_fit(f: ProcessFit, cv: str, mv: str, *, Ts: float, rule: str,
     extra = extra_dead_time.get(cv, extra_dead_time.get("*", 0.0))
     if not (isinstance(extra, (int, float)) and not isinstance(extra, bool)
             and math.isfinite(extra) and extra >= 0):
-        raise SettingsError(f"extra dead time for '{cv}' must be a number >= 0; "
-                            f"found {extra!r}.", owner=what)
+        raise fail(what, f"extra_dead_time.{cv}", "a number >= 0", repr(extra))
     # the sampled loop adds about half a sample of delay (zero-order hold), plus what the
     # measurement adds (analyzer dead time and half its cycle)
     f = ProcessFit(f.kind, f.gain, f.time_constants, f.dead_time + 0.5 * Ts + float(extra),
@@ -397,4 +391,4 @@ def rule_on_fit(f: ProcessFit, cv: str, mv: str, *, Ts: float, rule: str,
     try:
         return tune_loop(f, rule, cv=cv, mv=mv, **kw), f
     except SettingsError as exc:
-        raise SettingsError(f"loop {cv}<-{mv}: {exc}", owner=what) from None
+        raise exc.within(what, f"loop {cv}<-{mv}") from None

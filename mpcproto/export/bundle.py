@@ -62,15 +62,19 @@ def check_bundle(path: str | Path, *, tolerance: float = TOLERANCE, cls: type | 
     try:
         replay = json.loads(rp.read_text())
     except ValueError as exc:
-        raise SettingsError(f"{rp}: expected JSON; found a file that does not parse ({exc}).") from None
+        # the JSON reader's own words (a foreign text) say where the file breaks
+        raise SettingsError(file=str(rp), expected="JSON",
+                            found=f"a file that does not parse ({exc})") from None
     ctl = cls.from_bundle(root)
     try:
         ours, _ = replay_moves(ctl, replay)
     except (KeyError, IndexError, TypeError, ValueError) as exc:
         if isinstance(exc, MpcprotoError):
             raise
-        raise SettingsError(f"{rp}: expected the recorded run written by 'mpcproto export'; "
-                            f"found a record that cannot be replayed ({type(exc).__name__}: {exc}).") from None
+        # Python's own words for the broken entry (a foreign exception's text) close the message
+        raise SettingsError(file=str(rp), expected="the recorded run written by 'mpcproto export'",
+                            found=f"a record that cannot be replayed ({type(exc).__name__}: "
+                                  f"{exc})") from None
     scales = ctl._resolved["mv_scale"]      # as the rebuilt controller uses them
     cmp = compare_moves(ours, decode_array(replay["steps"]["u"]).reshape(-1, ctl.dmodel.nu)
                         if replay["steps"]["u"] else np.zeros((0, ctl.dmodel.nu)),

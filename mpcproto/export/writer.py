@@ -32,6 +32,7 @@ from typing import Any
 import numpy as np
 
 from ..exceptions import ScenarioError, SettingsError
+from ..validation import fail, shown
 from .bundle import (BUNDLE_FILE, FORMAT, FORMAT_VERSION, REPLAY_FILE, TOLERANCE, check_bundle,
                      encode_array, settings_to_plain, sha256_of)
 from .step_matrix import (fit_pairs, pair_columns, plot_step_matrix, settling_samples,
@@ -461,20 +462,15 @@ def plot_scenario_step_matrix(scenario: Any, path: str | Path, *, which: str = "
     """
     from ..linear import linearize
     from ..scenario import load_scenario
-    from ..scenario.build import controller_model, operating_point, plant_model
+    from ..scenario.build import controller_model, discretize, operating_point, plant_model
     from ..scenario.schema import Scenario
 
     scn = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
     if which not in ("plant", "controller"):
-        raise SettingsError(f"plot_scenario_step_matrix(): which must be 'plant' or 'controller'; "
-                            f"found {which!r}.")
+        raise fail("plot_scenario_step_matrix()", "which", "'plant' or 'controller'", shown(which))
     model = plant_model(scn) if which == "plant" else controller_model(scn)
     op = operating_point(scn, model)
-    try:
-        dmodel = linearize(model, op).discretize(scn.sample_time,
-                                                 dead_time=scn.data["scenario"]["dead_time"])
-    except SettingsError as e:
-        raise ScenarioError(str(e), file=scn.file, key="scenario.sample_time") from None
+    dmodel = discretize(scn, linearize(model, op))
     horizons = [int(s.get("horizon", 30)) for s in scn.data["controllers"].values()
                 if s["kind"] == "mpc" and isinstance(s.get("horizon", 30), int)]
     sm = _step_model(dmodel, at_least=horizons[0] if horizons else 1, fits=fits)

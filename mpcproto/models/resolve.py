@@ -265,7 +265,7 @@ def _build(r: Reference, options: dict, parameters: dict, what: str) -> Model:
         try:
             return transfer_table_model(read_transfer_file(r.target), what=r.text)
         except ModelError as e:
-            raise _err(what, str(e), getattr(e, "detail", "")) from None
+            raise e.referred(what, None) from None
     obj, where = _load(r, what)
     if isinstance(obj, ModuleType) and all(hasattr(obj, a) for a in ("OPTIONS", "build",
                                                                        "default_parameters")):

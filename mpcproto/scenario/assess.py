@@ -167,8 +167,8 @@ def _mpc_section(scn: Scenario, prep, warns: list[str]) -> dict[str, Any] | None
     try:
         an = unconstrained_analysis(ctl)
     except SettingsError as e:
-        raise ScenarioError(f"unconstrained analysis of the MPC: {e}", file=scn.file,
-                            key=f"controllers.{label}") from None
+        raise e.within(e.owner, "unconstrained analysis of the MPC").at(
+            f"controllers.{label}").in_file(scn.file) from None
     warns.extend(f"MPC '{label}': {w}" for w in an.warnings)
     rep = an.as_dict()
     rep["label"] = label
@@ -280,7 +280,7 @@ def scenario_locus(scn: Scenario, name: str, low: Any, high: Any, *,
     try:
         loc = steady_state_locus(plant, str(name), vals[0], vals[1], op=op)
     except SettingsError as e:
-        raise ScenarioError(f"--locus: {e}", file=scn.file) from None
+        raise e.within(e.owner, "--locus").in_file(scn.file) from None
     if plot:
         plot_locus(loc, plot)
     return loc.as_dict()

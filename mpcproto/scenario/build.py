@@ -56,14 +56,23 @@ def scenario_folder(scn: Scenario) -> Path:
     return Path.cwd()
 
 
-def _wrap(scn: Scenario, key: str, err: Exception) -> ScenarioError:
+def _wrap(scn: Scenario, key: str, err: MpcprotoError) -> ScenarioError:
     """*err* as the scenario's error, at its own key path if it has one, else at *key*."""
-    if isinstance(err, MpcprotoError):
-        out = err.replace(key=err.key or key).in_file(scn.file)
-    else:
-        out = ScenarioError(str(err), file=scn.file, key=key)
+    out = err.replace(key=err.key or key).in_file(scn.file)
     out.detail = getattr(err, "detail", "")
     return out
+
+
+def discretize(scn: Scenario, lin: Any) -> Any:
+    """*lin* discretized at the scenario's sample time and dead-time policy; a refusal (a dead time
+    that is not a whole number of samples under ``dead_time = "refuse"``) is the scenario's error
+    at ``scenario.sample_time`` (its fields kept; the function's own argument key replaced)."""
+    from ..exceptions import SettingsError
+
+    try:
+        return lin.discretize(scn.sample_time, dead_time=scn.data["scenario"]["dead_time"])
+    except SettingsError as e:
+        raise e.replace(key="scenario.sample_time").in_file(scn.file) from None
 
 
 def _section_model(scn: Scenario, section: str, ref: Any, options: Mapping[str, Any],
@@ -228,9 +237,10 @@ def operating_point(scn: Scenario, model: Model | None = None):
     except MpcprotoError as e:
         # includes OperatingPointError for non-finite derivatives (absurd parameter values):
         # its message names the model, the entries and the extreme parameters
-        hint = (" Parameter values come from [plant] and [controller_model]."
-                if e.code == "non_finite" else "")
-        raise ScenarioError(str(e) + hint, file=scn.file, key="operating_point") from None
+        hint = ("parameter values come from [plant] and [controller_model]"
+                if e.code == "non_finite" else None)
+        note = "; ".join(p for p in (e.note, hint) if p) or None
+        raise e.replace(key="operating_point", note=note).in_file(scn.file) from None
 
 
 def _pick(scn: Scenario, found: list, pick: str, xg: np.ndarray | None):
@@ -304,10 +314,7 @@ def _open_loop(eigenvalues) -> str:
 def _report(scn, which, model, op, lin) -> dict[str, Any]:
     from ..exceptions import SettingsError
 
-    try:
-        dlin = lin.discretize(scn.sample_time, dead_time=scn.data["scenario"]["dead_time"])
-    except SettingsError as e:
-        raise ScenarioError(str(e), file=scn.file, key="scenario.sample_time") from None
+    dlin = discretize(scn, lin)
     K = lin.gain("mv")
     rga_val, rga_note = None, ""
     if K.shape[0] == K.shape[1] and K.size:

@@ -35,7 +35,7 @@ from typing import Any
 
 from ..exceptions import MpcprotoError, ScenarioError, SettingsError
 from ..model import suggest
-from .build import check_names, controller_model, operating_point, plant_model
+from .build import check_names, controller_model, discretize, operating_point, plant_model
 from ..analysis.criteria import evaluate_comparisons, evaluate_controller
 from .schema import Scenario, load_scenario
 from .checks import (_check_criteria_names, _check_event_times, _check_history, _check_mpc_size,
@@ -100,11 +100,7 @@ def prepare(scn: Scenario, *, base_parameters: Mapping[str, float] | None = None
     model = controller_model(scn, base=base_parameters)
     op = operating_point(scn, plant)
     model_op = op if model is plant else operating_point(scn, model)
-    try:
-        dmodel = linearize(model, model_op).discretize(scn.sample_time,
-                                                       dead_time=scn.data["scenario"]["dead_time"])
-    except SettingsError as e:
-        raise ScenarioError(str(e), file=scn.file, key="scenario.sample_time") from None
+    dmodel = discretize(scn, linearize(model, model_op))
 
     d = scn.data
     check_names(scn, plant, "disturbances", "dv", d["disturbances"])
@@ -210,7 +206,9 @@ def _mpc_from_bundle(settings: Mapping[str, Any], prep: Prepared, key: str) -> A
     try:
         ctl = PredictiveController.from_bundle(p)
     except SettingsError as e:
-        raise ScenarioError(str(e), file=scn.file, key=f"{key}.bundle") from None
+        # the bundle's own file and key (inside bundle.json) go to the note; the scenario's key
+        # is the one that names the bundle
+        raise e.referred(None, f"{key}.bundle").in_file(scn.file) from None
     m, b = prep.dmodel, ctl.dmodel
     for role in ("mv", "dv", "cv"):
         ours, theirs = list(getattr(m, f"{role}_names")), list(getattr(b, f"{role}_names"))
@@ -331,7 +329,7 @@ def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
                 traj = simulate(prep.plant, ctl, op=prep.op, Ts=scn.sample_time,
                                 duration=prep.duration, rng=rec["seed"], **prep.sim)
             except SettingsError as e:
-                raise ScenarioError(str(e), file=scn.file, key=f"controllers.{label}") from None
+                raise simulate_error(e, scn, label) from None
             traj.meta["controller"] = label
             trajs[label] = traj
             compared = {cr[k] for cr in scn.data["criteria"] for k in ("cv", "variable")
@@ -353,6 +351,21 @@ def _run_inner(case: Case | Scenario, ci: bool | None, rec: dict[str, Any],
                     "controllers": {}, "comparisons": [], "passed": False})
         if getattr(e, "detail", ""):  # the traceback of a user's model function (--debug)
             rec["error_detail"] = e.detail
+
+
+#: the scenario section of each simulate() argument (a ClosedLoop error's key starts with one)
+_SIM_SECTIONS = {"dvs": "disturbances", "setpoints": "setpoints", "cv_limits": "limits",
+                 "mv_limits": "limits", "instruments": "instruments", "actuators": "actuators"}
+
+
+def simulate_error(err: SettingsError, scn: Scenario, label: str) -> ScenarioError:
+    """A :class:`SettingsError` of ``simulate()`` as the scenario's error: a closed loop's own
+    error (owner ``"ClosedLoop"``, key = the argument path ``mv_limits.feed.low``) at the
+    scenario key of that argument (``limits.feed.low``); any other at ``controllers.<label>``."""
+    head, dot, rest = (err.key or "").partition(".")
+    if err.owner == "ClosedLoop" and head in _SIM_SECTIONS:
+        return err.replace(key=_SIM_SECTIONS[head] + dot + rest).in_file(scn.file)
+    return err.at(f"controllers.{label}").in_file(scn.file)
 
 
 def run_case(case: Case | Scenario) -> dict[str, Any]:

@@ -105,9 +105,9 @@ def starter_scenario(model: Any, out: str | Path, *, options: Mapping[str, Any] 
     try:
         op = steady_state(m, m.nominal("mv"), m.nominal("dv"))
     except OperatingPointError as e:
-        raise OperatingPointError(
-            f"MODEL {ref.label}: expected a steady state at the nominal MVs and DVs to start the "
-            f"study from; found none ({e}). Give the model nominal values that hold it steady.") from None
+        raise e.within(f"MODEL {ref.label}", "a steady state at the nominal MVs and DVs is "
+                       "needed to start the study from: give the model nominal values that hold "
+                       "it steady") from None
     lin = linearize(m, op)
     mvs, dvs, cvs = m.variables("mv"), m.variables("dv"), m.variables("cv")
     # the MPC's own default scales (control.mpc_settings.default_scale), written out

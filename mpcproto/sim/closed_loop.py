@@ -41,8 +41,8 @@ from ..control.base import Measurement, Targets, ControlOutput, accepts_readback
 from ..exceptions import MpcprotoError, SettingsError, SimulationError
 from ..linear import delay_samples
 from .._specs import refuse_unknown_keys
-from ..model import suggest
 from ..operating import OperatingPoint
+from ..validation import Boolean, Interval, Names, check, fail, shown
 from ..trajectory import RUN_FAILED, RUN_LEFT_RANGE, RUN_OK, Trajectory, valid_range_events
 from .instruments import (Actuator, Instrument, actuator_from_spec, fault_from_spec,
                           instrument_from_spec)
@@ -73,6 +73,9 @@ def split_rng(rng: Any, n: int) -> tuple[list[np.random.Generator], int | None]:
     raise SettingsError(
         f"rng must be a non-negative int seed, a numpy SeedSequence or Generator, or None; "
         f"found {rng!r}.")
+
+
+_OWNER = "ClosedLoop"   # the owner of every setup error (its key: the argument path)
 
 
 class ClosedLoop:
@@ -139,17 +142,16 @@ class ClosedLoop:
                  readback: bool = True):
         self.model = plant_model.with_parameters(plant_parameters) if plant_parameters else plant_model
         self.controller = controller
-        if not isinstance(readback, (bool, np.bool_)):
-            raise SettingsError(f"ClosedLoop: 'readback' must be true or false; found {readback!r}.")
+        check(readback, Boolean(), owner=_OWNER, key="readback")
         self._readback = bool(readback) and accepts_readback(controller)
         self.op = op
         for meth in ("reset", "step"):
             if not callable(getattr(controller, meth, None)):
-                raise SettingsError(
-                    f"ClosedLoop: the controller {controller!r} has no {meth}() method; it must "
-                    f"implement mpcproto.Controller (reset(op, t0) and step(t, meas, dv, targets)).")
-        if not (isinstance(duration, (int, float)) and math.isfinite(duration) and duration > 0):
-            raise SettingsError(f"ClosedLoop: 'duration' must be a finite number > 0; found {duration!r}.")
+                raise fail(_OWNER, "controller", "an mpcproto.Controller (reset(op, t0) and "
+                           "step(t, meas, dv, targets))", f"{controller!r}, which has no {meth}()")
+        if not isinstance(duration, (int, float)):
+            raise fail(_OWNER, "duration", "a finite number > 0", repr(duration))
+        check(duration, Interval(float, 0, None, closed="neither"), owner=_OWNER, key="duration")
         self.plant = Plant(self.model, Ts, integrator=integrator,
                            options=dict(integrator_options) if integrator_options else None)
         self.Ts = self.plant.Ts
@@ -158,19 +160,17 @@ class ClosedLoop:
         m = self.model
         for role, vec in (("state", op.x), ("mv", op.u), ("dv", op.d), ("cv", op.y)):
             if np.asarray(vec).shape != (len(m.names(role)),):
-                raise SettingsError(
-                    f"ClosedLoop: the operating point has {np.asarray(vec).shape} {role} values; "
-                    f"model '{m.name}' has {len(m.names(role))} ({', '.join(m.names(role))}).")
+                raise fail(_OWNER, "op", f"{len(m.names(role))} {role} values for model "
+                           f"'{m.name}' ({', '.join(m.names(role))})",
+                           f"shape {np.asarray(vec).shape}")
         self.forecast_steps = int(forecast_steps) if forecast else 0
         (self._sig_rng, self._noise_rng), self.seed = split_rng(rng, 2)
+        # the spec factories' errors name the argument path as their owner (what=); the loop's
+        # own errors have the owner "ClosedLoop" and the argument path as their key
         self.faults = [fault_from_spec(f, what=f"faults[{i}]") for i, f in enumerate(faults or [])]
         for i, f in enumerate(self.faults):
-            role, names = ("cv", m.cv_names) if f.on_sensor else ("mv", m.mv_names)
-            if f.variable not in names:
-                raise SettingsError(
-                    f"faults[{i}] ({f.kind}): '{f.variable}' is not a {role.upper()} of model "
-                    f"'{m.name}'{suggest(f.variable, names)}; its {role.upper()}s are: "
-                    f"{', '.join(names)}.")
+            role, names = ("CV", m.cv_names) if f.on_sensor else ("MV", m.mv_names)
+            check(f.variable, Names(role, tuple(names)), owner=_OWNER, key=f"faults[{i}].variable")
         self._setup_signals(dvs, setpoints, cv_limits, mv_limits)
         self._setup_instruments(instruments)
         self._setup_actuators(actuators)
@@ -181,23 +181,19 @@ class ClosedLoop:
         if mapping is None:
             return {}
         if not isinstance(mapping, Mapping):
-            raise SettingsError(f"ClosedLoop: '{arg}' must be a mapping of {role.upper()} names; "
-                                f"found {type(mapping).__name__}.")
-        names = self.model.names(role)
+            raise fail(_OWNER, arg, f"a mapping of {role.upper()} names",
+                       type(mapping).__name__)
+        names = tuple(self.model.names(role))
         for k in mapping:
-            if k not in names:
-                raise SettingsError(
-                    f"ClosedLoop: {arg}: '{k}' is not a {role.upper()} of model '{self.model.name}'"
-                    f"{suggest(str(k), names)}; its {role.upper()}s are: {', '.join(names)}.")
+            check(k, Names(role.upper(), names), owner=_OWNER, key=arg)
         return dict(mapping)
 
     def _series(self, spec: Any, reference: float, what: str, keep: dict | None = None,
                 key: Any = None) -> np.ndarray:
         sig = signal_from_spec(spec, what=what, rng=self._sig_rng)
         if sig.relative and not math.isfinite(reference):
-            raise SettingsError(
-                f"{what}: a relative signal needs a finite reference value; give the spec a "
-                f"'base' (an absolute value) instead.")
+            raise fail(_OWNER, what, "a signal with a 'base' (an absolute value): a relative "
+                       "signal needs a finite reference", "a relative signal on an unbounded range")
         if keep is not None:
             keep[key] = sig
         return np.asarray(sig.value(self.times), float) + sig.resolve(reference)
@@ -227,18 +223,17 @@ class ClosedLoop:
                                   ("high", self.MVHI, self.MVHI < plo)):
             if beyond.any():
                 k, j = np.argwhere(beyond)[0]
-                raise SettingsError(
-                    f"mv_limits.{m.mv_names[j]}.{side}: expected a limit within the physical range "
-                    f"[{plo[j]:g}, {phi[j]:g}]; found {arr[k, j]:g} at t={self.times[k]:g}.")
+                raise fail(_OWNER, f"mv_limits.{m.mv_names[j]}.{side}",
+                           f"a limit within the physical range [{plo[j]:g}, {phi[j]:g}]",
+                           f"{arr[k, j]:g} at t={self.times[k]:g}")
         self.MVLO, self.MVHI = np.maximum(self.MVLO, plo), np.minimum(self.MVHI, phi)
         for arg, names, LO, HI in (("cv_limits", m.cv_names, self.LO, self.HI),
                                    ("mv_limits", m.mv_names, self.MVLO, self.MVHI)):
             bad = np.argwhere(LO > HI)
             if bad.size:
                 k, j = bad[0]
-                raise SettingsError(
-                    f"{arg}.{names[j]}: low ({LO[k, j]:g}) is above high "
-                    f"({HI[k, j]:g}) at t={self.times[k]:g}.")
+                raise fail(_OWNER, f"{arg}.{names[j]}", "a low limit at or below the high limit",
+                           f"low {LO[k, j]:g} above high {HI[k, j]:g} at t={self.times[k]:g}")
 
     def _limit_series(self, spec: Mapping[str, Any] | None, role: str, arg: str,
                       allow_rate: bool = False) -> tuple[np.ndarray, np.ndarray]:
@@ -254,19 +249,17 @@ class ClosedLoop:
             s = spec[n]
             allowed = ("low", "high", "rate") if allow_rate else ("low", "high")
             if not isinstance(s, Mapping):
-                raise SettingsError(f"{arg}.{n}: expected a table with keys {', '.join(allowed)}; "
-                                    f"found {s!r}.")
+                raise fail(_OWNER, f"{arg}.{n}", f"a table with keys {', '.join(allowed)}",
+                           shown(s))
             refuse_unknown_keys(s, allowed, what=f"{arg}.{n}")
             if "low" in s and s["low"] is not None:
                 LO[:, j] = self._series(s["low"], plo[j], f"{arg}.{n}.low")
             if "high" in s and s["high"] is not None:
                 HI[:, j] = self._series(s["high"], phi[j], f"{arg}.{n}.high")
             if allow_rate and "rate" in s:
-                r = s["rate"]
-                if isinstance(r, bool) or not isinstance(r, (int, float)) or not r >= 0:
-                    raise SettingsError(f"{arg}.{n}.rate: must be a number >= 0 (per time unit); "
-                                        f"found {r!r}.")
-                self.mv_rate[j] = float(r)
+                self.mv_rate[j] = check(s["rate"], Interval(float, 0, None, allow_inf=True,
+                                                            noun="a rate (per time unit)"),
+                                        owner=_OWNER, key=f"{arg}.{n}.rate")
         return LO, HI
 
     def _setup_instruments(self, instruments) -> None:

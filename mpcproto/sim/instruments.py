@@ -47,9 +47,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from ..exceptions import SettingsError
-from ..model import suggest
 from .._specs import check_keys, choice, number, shown
+from ..validation import Interval, Options, check, fail
 
 __all__ = ["Instrument", "Actuator", "Fault", "instrument_from_spec", "actuator_from_spec",
            "fault_from_spec", "FAULT_KINDS", "SENSOR_FAULTS", "VALVE_FAULTS"]
@@ -71,14 +70,11 @@ class Instrument:
 
     def __post_init__(self) -> None:
         for k in ("noise_std", "lag", "dead_time"):
-            v = getattr(self, k)
-            if not (isinstance(v, (int, float)) and math.isfinite(v) and v >= 0):
-                raise SettingsError(f"Instrument: '{k}' must be a finite number >= 0; found {v!r}.")
-        if not (isinstance(self.bias, (int, float)) and math.isfinite(self.bias)):
-            raise SettingsError(f"Instrument: 'bias' must be a finite number; found {self.bias!r}.")
-        if self.period is not None and not (isinstance(self.period, (int, float))
-                                            and math.isfinite(self.period) and self.period > 0):
-            raise SettingsError(f"Instrument: 'period' must be a finite number > 0; found {self.period!r}.")
+            check(getattr(self, k), Interval(float, 0, None), owner="Instrument", key=k)
+        check(self.bias, Interval(float), owner="Instrument", key="bias")
+        if self.period is not None:
+            check(self.period, Interval(float, 0, None, closed="neither"), owner="Instrument",
+                  key="period")
 
 
 @dataclass(frozen=True)
@@ -91,10 +87,9 @@ class Actuator:
 
     def __post_init__(self) -> None:
         if math.isnan(self.low) or math.isnan(self.high) or not self.low <= self.high:
-            raise SettingsError(
-                f"Actuator: 'low' must be <= 'high'; found low={self.low!r}, high={self.high!r}.")
-        if math.isnan(self.rate) or self.rate < 0:
-            raise SettingsError(f"Actuator: 'rate' must be >= 0; found {self.rate!r}.")
+            raise fail("Actuator", "low", f"a low travel limit <= high ({self.high!r})",
+                       repr(self.low))
+        check(self.rate, Interval(float, 0, None, allow_inf=True), owner="Actuator", key="rate")
 
 
 @dataclass(frozen=True)
@@ -112,14 +107,11 @@ class Fault:
     high: float = math.inf     # valve_saturation
 
     def __post_init__(self) -> None:
-        if self.kind not in FAULT_KINDS:
-            raise SettingsError(
-                f"Fault: unknown kind {self.kind!r}{suggest(str(self.kind), FAULT_KINDS)}; "
-                f"expected one of: {', '.join(FAULT_KINDS)}.")
+        check(self.kind, Options(tuple(FAULT_KINDS), noun="a fault kind"), owner="Fault",
+              key="kind")
         if self.until is not None and not self.until > self.at:
-            raise SettingsError(
-                f"Fault {self.kind} on '{self.variable}': 'until' ({self.until:g}) must be after "
-                f"'at' ({self.at:g}).")
+            raise fail(f"Fault {self.kind} on '{self.variable}'", "until",
+                       f"a time after 'at' ({self.at:g})", f"{self.until:g}")
 
     @property
     def on_sensor(self) -> bool:
@@ -146,7 +138,7 @@ def instrument_from_spec(spec: Mapping[str, Any] | Instrument, *, what: str) -> 
     if isinstance(spec, Instrument):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"an instrument must be a table/dict; found {shown(spec)}.", owner=what)
+        raise fail(what, None, "an instrument table", shown(spec))
     keys = ("noise_std", "bias", "lag", "dead_time", "period")
     check_keys(spec, keys, (), what=what, kind="instrument")
     return Instrument(
@@ -162,12 +154,12 @@ def actuator_from_spec(spec: Mapping[str, Any] | Actuator, *, what: str) -> Actu
     if isinstance(spec, Actuator):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"an actuator must be a table/dict; found {shown(spec)}.", owner=what)
+        raise fail(what, None, "an actuator table", shown(spec))
     check_keys(spec, ("low", "high", "rate"), (), what=what, kind="actuator")
     low = number(spec, "low", what=what, default=-math.inf, allow_inf=True)
     high = number(spec, "high", what=what, default=math.inf, allow_inf=True)
     if not low <= high:
-        raise SettingsError(f"'low' ({low:g}) must be <= 'high' ({high:g}).", owner=what)
+        raise fail(what, "low", f"a value <= 'high' ({high:g})", f"{low:g}")
     return Actuator(low=low, high=high,
                     rate=number(spec, "rate", what=what, low=0.0, default=math.inf, allow_inf=True))
 
@@ -191,8 +183,7 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
     if isinstance(spec, Fault):
         return spec
     if not isinstance(spec, Mapping):
-        raise SettingsError(f"a fault must be a table/dict with a 'kind'; found {shown(spec)}.",
-                            owner=what)
+        raise fail(what, None, "a fault table with a 'kind'", shown(spec))
     kind = choice(spec.get("kind"), FAULT_KINDS, what=what, key="kind", noun="fault kind")
     req, opt = _FAULT_EXTRA[kind]
     body = {k: v for k, v in spec.items() if k != "kind"}
@@ -200,13 +191,12 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
                what=what, kind=kind)
     var = body["variable"]
     if not isinstance(var, str) or not var:
-        raise SettingsError(f"'variable' must be a variable name (a string); found {shown(var)}.",
-                            owner=what)
+        raise fail(what, "variable", "a variable name (a string)", shown(var))
     w = f"{what} ({kind} on '{var}')"
     at = number(body, "at", what=w)
     until = number(body, "until", what=w, default=None)
     if until is not None and until <= at:
-        raise SettingsError(f"'until' ({until:g}) must be after 'at' ({at:g}).", owner=w)
+        raise fail(w, "until", f"a time after 'at' ({at:g})", f"{until:g}")
     kw: dict[str, Any] = {}
     if kind == "sensor_drift":
         kw["rate"] = number(body, "rate", what=w)
@@ -216,10 +206,9 @@ def fault_from_spec(spec: Mapping[str, Any] | Fault, *, what: str) -> Fault:
         kw["position"] = number(body, "position", what=w, default=None)
     if kind == "valve_saturation":
         if "low" not in body and "high" not in body:
-            raise SettingsError("give 'low' and/or 'high' (the reduced travel).", owner=w)
+            raise fail(w, None, "'low' and/or 'high' (the reduced travel)", "neither")
         kw["low"] = number(body, "low", what=w, default=-math.inf)
         kw["high"] = number(body, "high", what=w, default=math.inf)
         if not kw["low"] <= kw["high"]:
-            raise SettingsError(f"'low' ({kw['low']:g}) must be <= 'high' ({kw['high']:g}).",
-                                owner=w)
+            raise fail(w, "low", f"a value <= 'high' ({kw['high']:g})", f"{kw['low']:g}")
     return Fault(kind=kind, variable=var, at=at, until=until, **kw)
