@@ -70,6 +70,7 @@ import numpy as np
 from ..exceptions import SettingsError
 from ..model import suggest
 from ..operating import OperatingPoint
+from ..validation import fail
 from .base import STATUS_HOLD, STATUS_OK, ControlOutput, Measurement, Targets
 from .limits import project_value
 from .pid import PIDLoop, _LoopState, pid_output, readback_list
@@ -141,11 +142,13 @@ class Cascade:
 
     def __post_init__(self) -> None:
         if self.outer.mv != self.inner.cv:
-            raise SettingsError(f"cascade on '{self.outer.cv}': the outer loop must set the inner "
-                                f"loop's CV '{self.inner.cv}'; found '{self.outer.mv}'.")
+            raise fail(f"cascade on '{self.outer.cv}'", "outer.mv",
+                       f"the inner loop's CV '{self.inner.cv}' (the outer loop sets its setpoint)",
+                       f"'{self.outer.mv}'")
         if self.outer.cv == self.inner.cv:
-            raise SettingsError(f"cascade on '{self.outer.cv}': the inner CV must be another CV "
-                                f"(a secondary measurement); found the same.")
+            raise fail(f"cascade on '{self.outer.cv}'", "inner.cv",
+                       "another CV than the outer loop's (a secondary measurement)",
+                       f"the same CV '{self.inner.cv}'")
 
     def as_dict(self) -> dict[str, Any]:
         return {"cv": self.outer.cv, "inner_cv": self.inner.cv, "mv": self.inner.mv,
@@ -237,11 +240,12 @@ class SplitRange:
 
     def __post_init__(self) -> None:
         if not self.valves:
-            raise SettingsError(f"split range on '{self.loop.cv}': give at least one valve.")
+            raise fail(f"split range on '{self.loop.cv}'", "valves", "at least one valve",
+                       "none")
         mvs = [v.mv for v in self.valves]
         if len(set(mvs)) != len(mvs):
-            raise SettingsError(f"split range on '{self.loop.cv}': a valve is listed twice "
-                                f"({', '.join(mvs)}).")
+            raise fail(f"split range on '{self.loop.cv}'", "valves",
+                       "valves on different MVs", f"an MV listed twice ({', '.join(mvs)})")
 
     def as_dict(self) -> dict[str, Any]:
         return {"cv": self.loop.cv, "loop": self.loop.as_dict(),
@@ -404,8 +408,10 @@ class RegulatoryController:
                                  mj=mv(r.loop.mv, w), wild=wild))
         for r in self.ratios:
             if r.wild in [x.loop.mv for x in self.ratios]:
-                raise SettingsError(f"ratio on '{r.loop.mv}': the wild flow '{r.wild}' is itself "
-                                    f"set by a ratio; chain ratios on the primary flow instead.")
+                raise fail(f"ratio on '{r.loop.mv}'", "wild",
+                           "a flow not set by another ratio",
+                           f"'{r.wild}', itself set by a ratio",
+                           "chain ratios on the primary flow instead")
         for f in self.feedforward:
             w = f"feedforward {f.cv}<-{f.source}"
             b = plain.get(f.cv)
@@ -420,7 +426,9 @@ class RegulatoryController:
             else:
                 b.ff.append(_FFState(f, dv(f.source, w)))
         if not blocks:
-            raise SettingsError("RegulatoryController: give at least one loop or structure.")
+            raise fail("RegulatoryController", "loops",
+                       "at least one loop or structure (loops, ratios, cascades, selectors, "
+                       "split_ranges)", "none")
         # order: outer loops, then everything that writes an MV, ratios last (they read the wild
         # MV's command of this sample)
         rank = {"outer": 0, "mv": 1, "select": 1, "split": 1, "ratio": 2}
@@ -480,9 +488,9 @@ class RegulatoryController:
                 kind, i = b.wild
                 wv = float(self._u0[i] if kind == "mv" else d0[i])
                 if abs(wv) < 1e-12:
-                    raise SettingsError(f"RegulatoryController '{self.name}': the wild flow of the "
-                                        f"ratio on '{b.loop.mv}' is 0 at the operating point; the "
-                                        f"ratio is undefined there.")
+                    raise fail(f"RegulatoryController '{self.name}'", f"ratios.{b.loop.mv}.wild",
+                               "a wild flow other than 0 at the operating point (the ratio is "
+                               "undefined at 0)", f"{wv:g}")
                 b.st.u = float(self._u0[b.mj]) / wv
             elif b.kind == "split":
                 b.st.u = self._split_start(b)
@@ -510,7 +518,9 @@ class RegulatoryController:
              u_applied: np.ndarray | None = None) -> ControlOutput:
         """One sample of every structure (module docstring); ``u_applied``: MV readback."""
         if not self._started:
-            raise SettingsError(f"RegulatoryController '{self.name}': call reset(op) before step().")
+            raise fail(f"RegulatoryController '{self.name}'", "step()",
+                       "a call of reset(op) before step()",
+                       "step() called first", code="not_started")
         ua = readback_list(u_applied, len(self.mv_names), f"RegulatoryController '{self.name}'")
         ys, sps = meas.y.tolist(), targets.setpoint.tolist()
         lows, highs = targets.cv_low.tolist(), targets.cv_high.tolist()
