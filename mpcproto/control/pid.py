@@ -184,8 +184,8 @@ def readback_list(u_applied: Any, n: int, who: str) -> list[float] | None:
         return None
     ua = np.asarray(u_applied, float).reshape(-1)
     if ua.shape != (n,):
-        raise SettingsError(f"{who}.step(): u_applied must have {n} entries (MV order); got "
-                            f"shape {np.shape(u_applied)}.")
+        raise fail(f"{who}.step()", "u_applied", f"{n} entries (MV order)",
+                   f"shape {np.shape(u_applied)}")
     return ua.tolist()
 
 
@@ -287,7 +287,8 @@ class PIDController:
         """One sample of every loop; ``u_applied`` (optional): the MVs applied over the last
         sample (readback, NaN = unknown), used by the anti-windup tracking."""
         if not self._state:
-            raise SettingsError(f"PIDController '{self.name}': call reset(op) before step().")
+            raise fail(f"PIDController '{self.name}'", "step()", "a call of reset(op) before step()",
+                       "step() called first", code="not_started")
         ua = readback_list(u_applied, len(self.mv_names), f"PIDController '{self.name}'")
         u_ask = self._u0.copy()           # MVs without a loop stay at the operating point
         held = 0
@@ -402,14 +403,10 @@ def suggest_pairing(lin: Any, *, cvs: Sequence[str] | None = None,
     mvs = tuple(mvs) if mvs is not None else mv_all
     for sel, all_, role in ((cvs, cv_all, "CV"), (mvs, mv_all, "MV")):
         for n in sel:
-            if n not in all_:
-                raise SettingsError(f"suggest_pairing: '{n}' is not a {role}{suggest(n, all_)}; "
-                                    f"{role}s: {', '.join(all_)}.")
+            check(n, Names(role, all_), owner="suggest_pairing", key=f"{role.lower()}s")
     if len(cvs) != len(mvs):
-        raise SettingsError(
-            f"suggest_pairing: pairing needs as many CVs as MVs; got {len(cvs)} CVs "
-            f"({', '.join(cvs)}) and {len(mvs)} MVs ({', '.join(mvs)}). Pass cvs=/mvs= to choose a "
-            f"square selection.")
+        raise fail("suggest_pairing", "cvs", f"as many CVs as MVs ({len(mvs)} MVs: {', '.join(mvs)})",
+                   f"{len(cvs)} CVs ({', '.join(cvs)})", "Pass cvs=/mvs= to choose a square selection.")
     ri = [cv_all.index(c) for c in cvs]
     cj = [mv_all.index(m) for m in mvs]
     K = lin.gain("mv")[np.ix_(ri, cj)]
@@ -422,7 +419,8 @@ def suggest_pairing(lin: Any, *, cvs: Sequence[str] | None = None,
     best, best_cost = None, math.inf
     perms = itertools.permutations(range(n)) if n <= 8 else None
     if perms is None:
-        raise SettingsError(f"suggest_pairing: {n} loops is too many to search; select at most 8.")
+        raise fail("suggest_pairing", "cvs", "at most 8 loops to search (select fewer CVs and MVs)",
+                   f"{n} loops")
     for perm in perms:
         lam = np.array([L[i, perm[i]] for i in range(n)])
         if np.any(lam <= 0):
@@ -431,9 +429,11 @@ def suggest_pairing(lin: Any, *, cvs: Sequence[str] | None = None,
         if cost < best_cost:
             best, best_cost = perm, cost
     if best is None:
-        raise SettingsError(
-            "suggest_pairing: every one-to-one pairing has a negative relative gain; decentralized "
-            f"PID is not advisable for this selection (RGA = {np.round(L, 3).tolist()}).")
+        raise fail("suggest_pairing", "cvs",
+                   "a selection with a pairing whose relative gains are all positive",
+                   f"a negative relative gain in every one-to-one pairing (RGA = "
+                   f"{np.round(L, 3).tolist()})", "decentralized PID is not advisable for this "
+                   "selection", code="negative_rga")
     pairs = [(cvs[i], mvs[best[i]]) for i in range(n)]
     rel = {f"{cvs[i]}<-{mvs[best[i]]}": float(L[i, best[i]]) for i in range(n)}
     return Pairing(pairs=pairs, rga=L, cv_names=cvs, mv_names=mvs, relative_gains=rel,
