@@ -127,7 +127,7 @@ def test_ziegler_nichols_reaction_curve():
     assert neg.gain == pytest.approx(-1.2 / a)
     with pytest.raises(mp.SettingsError, match="key 'method': expected one of 'ultimate', 'reaction_curve'.*found 'curve'"):
         mp.ziegler_nichols(f, method="curve")
-    with pytest.raises(mp.SettingsError, match="reaction_curve' needs a FOPDT fit"):
+    with pytest.raises(mp.SettingsError, match="ziegler_nichols: key 'ultimate': expected for method 'reaction_curve' a FOPDT fit.*found ultimate=\\(Ku, Pu\\), which belongs to method 'ultimate'"):
         mp.ziegler_nichols(ultimate=(8.0, 3.6), method="reaction_curve")
 
 def test_fopdt_fit_recovers_gain_time_constant_and_dead_time_from_noisy_data():

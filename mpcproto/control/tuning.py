@@ -188,7 +188,7 @@ def ultimate_point(fit_or_num: Any, den: Sequence[float] | None = None, dead_tim
         num = np.atleast_1d(np.asarray(fit_or_num, float))
         dn = np.atleast_1d(np.asarray(den, float))
         if not (math.isfinite(dead_time) and dead_time >= 0):
-            raise SettingsError(f"ultimate_point: dead_time must be >= 0; found {dead_time!r}.")
+            raise fail("ultimate_point", "dead_time", "a finite dead time >= 0", repr(dead_time))
 
         def G(w):
             s = 1j * np.asarray(w, float)
@@ -199,18 +199,20 @@ def ultimate_point(fit_or_num: Any, den: Sequence[float] | None = None, dead_tim
         scale = max([1.0 / m for m in mags] + [dead_time, 1e-12])
         k_sign = float(np.real(G(1e-9 / scale)))
     if k_sign < 0:
-        raise SettingsError("ultimate_point: the process gain is negative; use the magnitude "
-                            "(the controller's action is reversed), e.g. a fit with -gain.")
+        raise fail("ultimate_point", "fit_or_num", "a process with a positive gain",
+                   "a negative gain", "use the magnitude (the controller's action is reversed), "
+                   "e.g. a fit with -gain")
     w = np.logspace(-4, 4, 4000) / scale
     if w_max is not None:
         w = w[w <= w_max]
     ph = np.unwrap(np.angle(G(w)))
     crossed = np.flatnonzero(ph <= -np.pi)
     if crossed.size == 0 or crossed[0] == 0:
-        raise SettingsError(
-            "ultimate_point: the phase of the process never reaches -180 deg (e.g. a first-order "
-            "process without dead time), so there is no ultimate gain; the Ziegler-Nichols "
-            "ultimate-sensitivity rule does not apply. Use simc or imc.")
+        raise fail("ultimate_point", "fit_or_num",
+                   "a process whose phase reaches -180 deg (one with an ultimate gain)",
+                   "a phase that never reaches -180 deg (e.g. a first-order process without dead "
+                   "time)", "the Ziegler-Nichols ultimate-sensitivity rule does not apply; use "
+                   "simc or imc")
     i = crossed[0]
     # refine between the two grid points on the phase continued from the lower one
     lo, hi = w[i - 1], w[i]
@@ -241,7 +243,8 @@ def ziegler_nichols(fit: ProcessFit | None = None, *, ultimate: tuple[float, flo
     if method == "reaction_curve":
         return _zn_reaction_curve(fit, ultimate, mode, cv, mv, **loop_kw)
     if (fit is None) == (ultimate is None):
-        raise SettingsError("ziegler_nichols: give either a fitted model or ultimate=(Ku, Pu).")
+        raise fail("ziegler_nichols", "ultimate", "either a fitted model or ultimate=(Ku, Pu)",
+                   "both" if fit is not None else "neither")
     sign = 1.0
     if fit is not None:
         _refuse_inverse(fit, "ziegler_nichols")
@@ -252,7 +255,8 @@ def ziegler_nichols(fit: ProcessFit | None = None, *, ultimate: tuple[float, flo
     else:
         Ku, Pu = map(float, ultimate)
         if not (Ku > 0 and Pu > 0 and math.isfinite(Ku) and math.isfinite(Pu)):
-            raise SettingsError(f"ziegler_nichols: Ku and Pu must be > 0; found {ultimate!r}.")
+            raise fail("ziegler_nichols", "ultimate", "(Ku, Pu) both finite and > 0",
+                       repr(ultimate))
     a, b, c = table[mode]
     dummy = fit or ProcessFit.fopdt(1.0, 1.0)
     return _loop(dummy, sign * a * Ku, b * Pu if b else math.inf, c * Pu, "ziegler_nichols",
@@ -262,15 +266,17 @@ def ziegler_nichols(fit: ProcessFit | None = None, *, ultimate: tuple[float, flo
 def _zn_reaction_curve(fit, ultimate, mode, cv, mv, **loop_kw) -> PIDLoop:
     """Ziegler & Nichols (1942) step-response rule on a FOPDT fit (module docstring)."""
     if fit is None or ultimate is not None or fit.kind != "fopdt":
-        raise SettingsError("ziegler_nichols: method 'reaction_curve' needs a FOPDT fit (the "
-                            "apparent dead time and steepest slope of a step response); "
-                            + ("ultimate=(Ku, Pu) belongs to method 'ultimate'." if ultimate
-                               is not None else f"found {'no fit' if fit is None else fit.kind}."))
+        raise fail("ziegler_nichols", "ultimate" if ultimate is not None else "fit",
+                   "for method 'reaction_curve' a FOPDT fit (the apparent dead time and steepest "
+                   "slope of a step response)",
+                   "ultimate=(Ku, Pu), which belongs to method 'ultimate'" if ultimate is not None
+                   else "no fit" if fit is None else f"a {fit.kind} fit")
     _refuse_inverse(fit, "ziegler_nichols")
     L = fit.dead_time
     if L <= 0:
-        raise SettingsError("ziegler_nichols: the reaction-curve rule needs an apparent dead time "
-                            "> 0 (its gains are 1/(R L)); the fit has none. Use simc or imc.")
+        raise fail("ziegler_nichols", "fit",
+                   "for the reaction-curve rule an apparent dead time > 0 (its gains are 1/(R L))",
+                   f"a fit with dead time {L:g}", "Use simc or imc.")
     _warn_zn_range(fit)
     a = abs(fit.gain) * L / fit.time_constants[0]          # R L, R = k / tau
     sign = math.copysign(1.0, fit.gain)
