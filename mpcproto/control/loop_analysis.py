@@ -35,6 +35,7 @@ import numpy as np
 from scipy.optimize import brentq, minimize_scalar
 
 from ..exceptions import SettingsError
+from ..validation import fail
 from .pid import PIDLoop
 from .tuning import ProcessFit, ultimate_point
 
@@ -86,7 +87,8 @@ def _process(G: Any) -> tuple[Callable[[np.ndarray], np.ndarray], float, Process
     if isinstance(G, tuple) and len(G) == 3:
         num, den, theta = np.atleast_1d(np.asarray(G[0], float)), np.atleast_1d(np.asarray(G[1], float)), float(G[2])
         if not (math.isfinite(theta) and theta >= 0):
-            raise SettingsError(f"loop_margins(): the dead time must be >= 0; got {theta!r}.")
+            raise fail("loop_margins()", "process", "a (num, den, dead_time) tuple with a finite "
+                       "dead time >= 0", f"dead time {theta!r}")
         roots = np.roots(den)
         mags = np.abs(roots[np.abs(roots) > 0])
         scale = max([1.0 / m for m in mags] + [theta, 1e-9])
@@ -98,8 +100,8 @@ def _process(G: Any) -> tuple[Callable[[np.ndarray], np.ndarray], float, Process
         return Gf, scale, None
     if callable(G):
         return G, 1.0, None
-    raise SettingsError("loop_margins(): the process must be a ProcessFit, a (num, den, dead_time) "
-                        f"tuple or a callable G(w); got {type(G).__name__}.")
+    raise fail("loop_margins()", "process",
+               "a ProcessFit, a (num, den, dead_time) tuple or a callable G(w)", type(G).__name__)
 
 
 def loop_margins(process: Any, loop: PIDLoop | tuple[float, float, float, float], *,
@@ -129,8 +131,9 @@ def loop_margins(process: Any, loop: PIDLoop | tuple[float, float, float, float]
     ph = np.unwrap(np.angle(Lw))
     start = ph[0]
     if not (-math.pi <= start <= math.pi / 4):
-        raise SettingsError("loop_margins(): the loop gain is negative at low frequency (positive "
-                            "feedback): the controller's gain sign does not match the process gain.")
+        raise fail("loop_margins()", "loop", "a controller gain whose sign matches the process "
+                   "gain (negative feedback)", "a loop gain negative at low frequency (positive "
+                   "feedback)")
     mag = np.abs(Lw)
     # gain crossovers |L| = 1 (refined)
     pm, wc = math.inf, None
@@ -196,18 +199,20 @@ def half_rule(gain: float, time_constants: Sequence[float], dead_time: float = 0
     """
     taus = sorted((float(t) for t in time_constants), reverse=True)
     if any(not (math.isfinite(t) and t > 0) for t in taus):
-        raise SettingsError(f"half_rule(): time constants must be finite and > 0; got "
-                            f"{list(time_constants)!r}.")
+        raise fail("half_rule()", "time_constants", "finite time constants > 0",
+                   repr(list(time_constants)))
     if order not in (1, 2):
-        raise SettingsError(f"half_rule(): order must be 1 or 2; got {order!r}.")
+        raise fail("half_rule()", "order", "1 or 2", repr(order))
     if len(taus) < order:
-        raise SettingsError(f"half_rule(): a model of order {order} needs at least {order} time "
-                            f"constants; got {len(taus)}.")
+        raise fail("half_rule()", "time_constants",
+                   f"at least {order} time constants for a model of order {order}", f"{len(taus)}")
     inv = [float(t) for t in inverse_response]
     if any(not (math.isfinite(t) and t > 0) for t in inv):
-        raise SettingsError(f"half_rule(): inverse-response time constants must be > 0; got {inv!r}.")
+        raise fail("half_rule()", "inverse_response", "finite time constants > 0", repr(inv))
     if not (math.isfinite(dead_time) and dead_time >= 0 and sample_time >= 0):
-        raise SettingsError("half_rule(): dead_time and sample_time must be finite and >= 0.")
+        bad = "dead_time" if not (math.isfinite(dead_time) and dead_time >= 0) else "sample_time"
+        raise fail("half_rule()", bad, "a finite number >= 0",
+                   repr(dead_time if bad == "dead_time" else sample_time))
     kept = taus[:order]
     rest = taus[order:]
     theta = float(dead_time) + sum(inv) + 0.5 * float(sample_time)
