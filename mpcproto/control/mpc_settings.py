@@ -373,26 +373,28 @@ def check_model(m) -> None:
     need = ("A", "B", "Bd", "C", "D", "Dd", "Ts", "op")
     for k in need:
         if not hasattr(m, k):
-            raise SettingsError(f"PredictiveController: dmodel must be a DiscreteLinearModel "
-                                f"(missing '{k}'); got {type(m).__name__}.")
+            raise fail("PredictiveController", "dmodel", "a DiscreteLinearModel",
+                       f"{type(m).__name__} (missing '{k}')")
     A = np.asarray(m.A, float)
     if A.ndim != 2 or A.shape[0] != A.shape[1]:
-        raise SettingsError(f"PredictiveController: dmodel.A must be square; got shape {A.shape}.")
+        raise fail("PredictiveController", "dmodel.A", "a square matrix", f"shape {A.shape}")
     nx = A.shape[0]
     nu, nd, ny = len(m.op.mv_names), len(m.op.dv_names), len(m.op.cv_names)
     for k, shape in (("B", (nx, nu)), ("Bd", (nx, nd)), ("C", (ny, nx)), ("D", (ny, nu)),
                      ("Dd", (ny, nd))):
         got = np.shape(getattr(m, k))
         if got != shape:
-            raise SettingsError(f"PredictiveController: dmodel.{k} must have shape {shape} "
-                                f"(states={nx}, MVs={nu}, DVs={nd}, CVs={ny}); got {got}.")
+            raise fail("PredictiveController", f"dmodel.{k}",
+                       f"shape {shape} (states={nx}, MVs={nu}, DVs={nd}, CVs={ny})", f"{got}")
         if not np.all(np.isfinite(np.asarray(getattr(m, k), float))):
-            raise SettingsError(f"PredictiveController: dmodel.{k} has non-finite entries.")
+            raise fail("PredictiveController", f"dmodel.{k}", "finite entries",
+                       "non-finite entries", code="non_finite")
     if not np.all(np.isfinite(A)):
-        raise SettingsError("PredictiveController: dmodel.A has non-finite entries.")
+        raise fail("PredictiveController", "dmodel.A", "finite entries", "non-finite entries",
+                   code="non_finite")
     for k, n in (("u", nu), ("d", nd), ("y", ny)):
         if np.shape(getattr(m.op, k)) != (n,):
-            raise SettingsError(f"PredictiveController: dmodel.op.{k} must have shape ({n},); "
-                                f"got {np.shape(getattr(m.op, k))}.")
+            raise fail("PredictiveController", f"dmodel.op.{k}", f"shape ({n},)",
+                       f"{np.shape(getattr(m.op, k))}")
     if not (np.isfinite(m.Ts) and m.Ts > 0):
-        raise SettingsError(f"PredictiveController: dmodel.Ts must be > 0; got {m.Ts!r}.")
+        raise fail("PredictiveController", "dmodel.Ts", "a finite number > 0", repr(m.Ts))
