@@ -42,7 +42,8 @@ from typing import Any
 
 import numpy as np
 
-from ..exceptions import NotBuiltError, SettingsError
+from ..exceptions import NotBuiltError
+from ..validation import fail, shown
 from .condensed import CondensedQP
 
 __all__ = ["UnconstrainedLaw", "MismatchCase", "UnconstrainedAnalysis", "unconstrained_law",
@@ -178,8 +179,9 @@ def _target_map(ctrl) -> dict[str, np.ndarray]:
         res = ctrl.target_.solve(tz, fast=True, solver=ctrl._cvxpy_solver,
                                  options=ctrl._cvxpy_opts)
         if not res.accepted:
-            raise SettingsError(f"unconstrained_analysis(): the steady target did not solve with "
-                                f"no limits ({res.status}); the unconstrained law is not defined.")
+            raise fail("unconstrained_analysis()", "controller",
+                       "a steady target that solves with no limits (else the unconstrained law is "
+                       "not defined)", f"status {res.status}")
         v = res.values
         return np.concatenate([v["us"], v["ys"], v["xs"]])
 
@@ -242,14 +244,14 @@ def _plant(plant, controller):
             mats = tuple(plant)
         A, B, C, D = (np.atleast_2d(np.asarray(a, float)) for a in mats)
     except (TypeError, ValueError):
-        raise SettingsError("unconstrained_analysis(): 'plant' must be a discrete model or a tuple "
-                            f"(A, B, C, D); got {type(plant).__name__}.") from None
+        raise fail("unconstrained_analysis()", "plant", "a discrete model or a tuple (A, B, C, D)",
+                   type(plant).__name__) from None
     m = controller.dmodel
     if B.shape[1] != m.nu or C.shape[0] != m.ny or A.shape[0] != A.shape[1] != B.shape[0] \
             or D.shape != (m.ny, m.nu):
-        raise SettingsError(f"unconstrained_analysis(): 'plant' must have {m.nu} MVs and {m.ny} "
-                            f"CVs (the controller's); got A {A.shape}, B {B.shape}, C {C.shape}, "
-                            f"D {D.shape}.")
+        raise fail("unconstrained_analysis()", "plant",
+                   f"a square A and {m.nu} MVs and {m.ny} CVs (the controller's)",
+                   f"A {A.shape}, B {B.shape}, C {C.shape}, D {D.shape}")
     return A, B, C, D
 
 
@@ -386,17 +388,17 @@ def unconstrained_analysis(controller, *, plant=None, gain_errors=(0.7, 1.3),
     try:
         factors = [float(g) for g in gain_errors]
     except (TypeError, ValueError):
-        raise SettingsError("unconstrained_analysis(): 'gain_errors' must be a sequence of numbers; "
-                            f"got {gain_errors!r}.") from None
+        raise fail("unconstrained_analysis()", "gain_errors", "a sequence of numbers",
+                   shown(gain_errors)) from None
     if any(not np.isfinite(g) or g <= 0 for g in factors):
-        raise SettingsError(f"unconstrained_analysis(): 'gain_errors' must be > 0; got {factors}.")
+        raise fail("unconstrained_analysis()", "gain_errors", "finite factors > 0", f"{factors}")
     try:
         whole = int(extra_delay) == extra_delay and extra_delay >= 0
     except (TypeError, ValueError):
         whole = False
     if not whole:
-        raise SettingsError("unconstrained_analysis(): 'extra_delay' must be a whole number of "
-                            f"samples >= 0; got {extra_delay!r}.")
+        raise fail("unconstrained_analysis()", "extra_delay", "a whole number of samples >= 0",
+                   shown(extra_delay))
     law = unconstrained_law(controller)
     ev, rho = _radius(closed_loop_matrix(law, P)[0])
     cases = [MismatchCase("nominal", 1.0, rho, rho < STABLE_BELOW)]
@@ -438,8 +440,8 @@ def optimal_cost(controller, x0, *, u_prev=None, setpoint=None) -> dict[str, Any
     m = controller.dmodel
     x0 = np.asarray(x0, float).reshape(-1)
     if x0.shape != (m.nx,):
-        raise SettingsError(f"optimal_cost(): 'x0' must have {m.nx} entries (the model's states); "
-                            f"got {x0.shape}.")
+        raise fail("optimal_cost()", "x0", f"{m.nx} entries (the model's states)",
+                   f"shape {x0.shape}")
     up = np.zeros(m.nu) if u_prev is None else np.asarray(u_prev, float).reshape(m.nu)
     sp = np.zeros(m.ny) if setpoint is None else np.asarray(setpoint, float).reshape(m.ny)
     cond = _condensed(controller)
