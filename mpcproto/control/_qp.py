@@ -23,7 +23,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .._deps import clear_cvxpy_solver_cache, csr_matvec, cvxpy_qp_map, osqp_extension
-from ..exceptions import SettingsError
+from ..validation import fail
 
 __all__ = ["CompiledQP", "QPResult", "OSQP_DEFAULTS"]
 
@@ -91,8 +91,8 @@ class CompiledQP:
     def compile(self) -> "CompiledQP":
         """Canonicalize with cvxpy (once) and extract ``P``, ``A`` and the affine maps to q, l, u."""
         if not self.problem.is_dpp():
-            raise SettingsError(f"{self.owner}: the optimization problem is not DPP; it would be "
-                                f"recompiled at every solve.")
+            raise fail(self.owner, "problem", "a DPP optimization problem (compiled once)",
+                       "a problem that is not DPP (it would be recompiled at every solve)")
         for name, par in self.parameters.items():
             if par.value is None:
                 par.value = np.zeros(par.shape)
@@ -115,10 +115,12 @@ class CompiledQP:
         ncon = Atens.shape[0] // (n + 1) if n else 0
         mat_part = Atens[: ncon * n, :npar]
         if mat_part.count_nonzero():
-            raise SettingsError(f"{self.owner}: a parameter multiplies a variable in a constraint; "
-                                f"the constraint matrix would change every step.")
+            raise fail(self.owner, "problem", "constraints whose matrix holds no parameter",
+                       "a parameter multiplying a variable in a constraint (the constraint matrix "
+                       "would change every step)")
         if pp.P is not None and sp.csc_matrix(pp.P)[:, :npar].count_nonzero():
-            raise SettingsError(f"{self.owner}: a parameter enters the quadratic cost.")
+            raise fail(self.owner, "problem", "a quadratic cost without parameters",
+                       "a parameter in the quadratic cost")
         P = sp.csc_matrix(data["P"])
         AF = sp.vstack([sp.csr_matrix(data["A"]), sp.csr_matrix(data["F"])]).tocsr()
         neq = data["A"].shape[0]
@@ -213,7 +215,8 @@ class CompiledQP:
         nz = o
         missing = [p for p in self.parameters if p not in maps]
         if missing:
-            raise SettingsError(f"{self.owner}: no input map for parameter(s) {missing}.")
+            raise fail(self.owner, "maps", "an input map for every parameter",
+                       f"none for parameter(s) {missing}")
         M = sp.csc_matrix(self._M)
         blocks = {name: sp.csc_matrix((M.shape[0], size)) for name, (_, size) in offs.items()}
         self._expand = {}
@@ -225,8 +228,8 @@ class CompiledQP:
             for iname, E in entries.items():
                 E = sp.csc_matrix(E)
                 if E.shape != (size, offs[iname][1]):
-                    raise SettingsError(f"{self.owner}: map {pname}<-{iname} has shape {E.shape}; "
-                                        f"expected {(size, offs[iname][1])}.")
+                    raise fail(self.owner, f"maps.{pname}.{iname}",
+                               f"shape {(size, offs[iname][1])}", f"shape {E.shape}")
                 if Mp.shape[1]:
                     blocks[iname] = blocks[iname] + Mp @ E
                 exp.append((iname, E))
@@ -332,7 +335,8 @@ class CompiledQP:
             hit = direction != 0
             out[hit] = np.sign(direction[hit]) * OSQP_INFTY
         if not np.all(np.isfinite(out[: self._n])):
-            raise SettingsError(f"{self.owner}: a non-finite value reached the cost vector.")
+            raise fail(self.owner, "values", "finite values (they reach the cost vector)",
+                       "a non-finite value in the cost vector", code="non_finite")
         return self._finish_data(out)
 
     # ------------------------------------------------------------------ solving
@@ -353,7 +357,8 @@ class CompiledQP:
     def update_settings(self, **settings) -> None:
         """Change OSQP settings of the fast path (those OSQP allows after setup)."""
         if self._solver is None:
-            raise SettingsError(f"{self.owner}: the fast path is not set up (fast_path=False?).")
+            raise fail(self.owner, "fast_path", "the fast path set up before its settings change",
+                       "no fast path (fast_path=False?)")
         self._solver.update_settings(**settings)
         self._opts.update(settings)
 
