@@ -35,8 +35,8 @@ from typing import Any
 import numpy as np
 
 from ..exceptions import SettingsError
-from ..model import suggest
 from ..operating import OperatingPoint
+from ..validation import did_you_mean, fail
 from .base import FATAL, FALLBACK, ControlOutput, Measurement, Targets, accepts_readback
 from .describe import describe_controller
 from .limits import project_value
@@ -71,13 +71,14 @@ class OverLoops:
         self.cv_names, self.mv_names = cvs, mvs
         dm = getattr(outer, "dmodel", None)
         if dm is None:
-            raise SettingsError(f"OverLoops '{name}': the outer controller needs a 'dmodel' (its "
-                                f"CV, MV and DV names).")
+            raise fail(f"OverLoops '{name}'", "outer",
+                       "a controller with a 'dmodel' (its CV, MV and DV names)",
+                       f"{type(outer).__name__} without one")
         inner_cvs = {lp.cv: lp for lp in self.loops}
         for c in dm.cv_names:
             if c not in cvs:
-                raise SettingsError(f"OverLoops '{name}': outer CV '{c}' is not a plant CV"
-                                    f"{suggest(c, cvs)}.")
+                raise fail(f"OverLoops '{name}'", "outer.cv", f"a plant CV ({', '.join(cvs)})",
+                           f"'{c}'", did_you_mean(c, cvs))
         self._oc = [cvs.index(c) for c in dm.cv_names]
         self._od = [dvs.index(d) if d in dvs else -1 for d in dm.dv_names]
         self._omv: list[tuple[str, int]] = []     # ("sp", plant CV index) or ("mv", plant MV index)
@@ -89,9 +90,9 @@ class OverLoops:
             elif m in mvs and m not in looped:
                 self._omv.append(("mv", mvs.index(m)))
             else:
-                raise SettingsError(
-                    f"OverLoops '{name}': outer MV '{m}' is neither the CV of an inner loop "
-                    f"({', '.join(inner_cvs) or 'none'}) nor a plant MV without a loop.")
+                raise fail(f"OverLoops '{name}'", "outer.mv",
+                           f"the CV of an inner loop ({', '.join(inner_cvs) or 'none'}) or a plant "
+                           f"MV without a loop", f"'{m}'")
         self._readback = accepts_readback(outer)
         self._u_last: list[float] = []
 
@@ -214,8 +215,9 @@ def identify_over_loops(plant: Any, op: OperatingPoint, Ts: float, loops: Sequen
             tr = closed_loop_step(plant, _Stepper(inner, plant.mv_names.index(inp), size, at), op,
                                   Ts=Ts, duration=duration)
         if not tr.success:
-            raise SettingsError(f"identify_over_loops: the step test of '{inp}' failed: "
-                                f"{tr.message}")
+            # the closed-loop run's own words say why the step test failed: shown as found
+            raise fail("identify_over_loops", f"sizes.{inp}", f"a step test of '{inp}' that runs",
+                       f"a failed run: {tr.message}")
         els = {}
         for c in cvs:
             i = plant.cv_names.index(c)
@@ -242,8 +244,8 @@ def identify_over_loops(plant: Any, op: OperatingPoint, Ts: float, loops: Sequen
             j = plant.mv_names.index(m)
             mv_spec[m] = {"nominal": float(op.u[j]), "low": float(mv_lo[j]), "high": float(mv_hi[j])}
         else:
-            raise SettingsError(f"identify_over_loops: '{m}' is neither an inner loop's CV nor a "
-                                f"plant MV.")
+            raise fail("identify_over_loops", "mvs", "an inner loop's CV or a plant MV",
+                       f"'{m}'")
     cv_spec = {c: {"nominal": float(op.y[plant.cv_names.index(c)])} for c in cvs}
     dv_spec = {d: {"nominal": float(op.d[plant.dv_names.index(d)]), "measured": True} for d in dvs}
     elements = {c: {m: cols[m][c] for m in mvs} for c in cvs}
