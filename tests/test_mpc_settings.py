@@ -82,12 +82,12 @@ def test_bad_run_time_targets_are_named():
     meas = mp.Measurement.now([0.0, 0.0], 0.0)
     bad_len = mp.Targets(setpoint=np.zeros(3), cv_low=np.full(2, -np.inf),
                          cv_high=np.full(2, np.inf), mv_low=np.zeros(2), mv_high=np.ones(2))
-    with pytest.raises(mp.SettingsError, match=r"targets.setpoint must have 2 entries"):
+    with pytest.raises(mp.SettingsError, match=r"key 'targets.setpoint': expected 2 entries \(model order\)"):
         ctrl.step(0.0, meas, [0.0], bad_len)
     crossed = mp.Targets(setpoint=np.zeros(2), cv_low=np.full(2, -np.inf),
                          cv_high=np.full(2, np.inf), mv_low=np.array([0.0, 2.0]),
                          mv_high=np.array([1.0, 1.0]))
-    with pytest.raises(mp.SettingsError, match="MV 'steam' has its low limit 2 above its high"):
+    with pytest.raises(mp.SettingsError, match="key 'targets.mv_low.steam': expected MV 'steam' with its low limit at or below its high limit 1, found 2"):
         ctrl.step(0.0, meas, [0.0], crossed)
 
 

@@ -12,7 +12,8 @@ import time
 
 import numpy as np
 
-from ..exceptions import NotBuiltError, SettingsError
+from ..exceptions import NotBuiltError
+from ..validation import fail
 from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_MEASUREMENT_REJECTED,
                    STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutput, Measurement, Targets)
 from .limits import project_command, project_with_activity
@@ -92,8 +93,8 @@ class ControllerRuntime:
         if a.shape != (n,):
             a = a.reshape(-1)
             if a.shape != (n,):
-                raise SettingsError(f"PredictiveController.step(): {what} must have {n} entries "
-                                    f"(model order); got shape {np.shape(v)}.")
+                raise fail("PredictiveController.step()", what, f"{n} entries (model order)",
+                           f"shape {np.shape(v)}")
         return a
 
     def _forecast(self, dv_forecast):
@@ -114,21 +115,22 @@ class ControllerRuntime:
         m = self.dmodel
         nu, ny = m.nu, m.ny
         if targets is None:
-            raise SettingsError("PredictiveController.step(): targets must be a Targets object; got None.")
+            raise fail("PredictiveController.step()", "targets", "a Targets object", "None")
         mv_lo = np.maximum(self._vec(targets.mv_low, nu, "targets.mv_low", -np.inf), r["mv_low"])
         mv_hi = np.minimum(self._vec(targets.mv_high, nu, "targets.mv_high", np.inf), r["mv_high"])
         if (mv_lo > mv_hi).any():
             j = int(np.flatnonzero(mv_lo > mv_hi)[0])
-            raise SettingsError(f"PredictiveController.step(): MV '{m.mv_names[j]}' has its low "
-                                f"limit {mv_lo[j]:g} above its high limit {mv_hi[j]:g} (targets "
-                                f"intersected with the settings).")
+            raise fail("PredictiveController.step()", f"targets.mv_low.{m.mv_names[j]}",
+                       f"MV '{m.mv_names[j]}' with its low limit at or below its high limit "
+                       f"{mv_hi[j]:g}", f"{mv_lo[j]:g}",
+                       note="targets intersected with the settings")
         rate = r["max_move"]
         if targets.mv_rate is not None:
             tr = self._vec(targets.mv_rate, nu, "targets.mv_rate", np.inf)
             if np.any(tr <= 0):
                 j = int(np.flatnonzero(tr <= 0)[0])
-                raise SettingsError(f"PredictiveController.step(): targets.mv_rate for MV "
-                                    f"'{m.mv_names[j]}' must be > 0; got {tr[j]!r}.")
+                raise fail("PredictiveController.step()", f"targets.mv_rate.{m.mv_names[j]}",
+                           "a rate > 0", repr(tr[j]))
             rate = np.fmin(tr, rate)
         cv_lo = np.fmax(self._vec(targets.cv_low, ny, "targets.cv_low", -np.inf), r["cv_low"])
         cv_hi = np.fmin(self._vec(targets.cv_high, ny, "targets.cv_high", np.inf), r["cv_high"])
@@ -224,8 +226,8 @@ class ControllerRuntime:
         taken = self._vec(meas.taken_at, ny, "meas.taken_at", np.nan)
         fresh = np.asarray(meas.fresh, bool)
         if fresh.shape != (ny,):
-            raise SettingsError(f"PredictiveController.step(): meas.fresh must have {ny} entries "
-                                f"(model order); got shape {fresh.shape}.")
+            raise fail("PredictiveController.step()", "meas.fresh", f"{ny} entries (model order)",
+                       f"shape {fresh.shape}")
         info = self.estimator_.update(t, y - op_y, taken, fresh, d_now)
         if info["rejected"]:
             self.counts["rejected_measurements"] += len(info["rejected"])
