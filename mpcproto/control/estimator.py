@@ -46,7 +46,7 @@ from typing import Any
 import numpy as np
 import scipy.linalg as sla
 
-from ..exceptions import NotBuiltError, SettingsError
+from ..exceptions import NotBuiltError
 from ..validation import Interval, Names, Options, check, fail, shown
 
 #: the owner of the estimator's setting errors; keys are its arguments, per CV
@@ -281,9 +281,10 @@ class DisturbanceEstimator:
         H = self._prior.shape[0]
         if self._started:
             if k != self._k + 1:
-                raise SettingsError(f"DisturbanceEstimator.update(): expected the next sample "
-                                    f"(index {self._k + 1}, t={self._t0 + (self._k + 1) * self.dmodel.Ts:g}); "
-                                    f"got t={t:g} (index {k}). Call predict() once per sample.")
+                raise fail("DisturbanceEstimator.update()", "t",
+                           f"the next sample (index {self._k + 1}, "
+                           f"t={self._t0 + (self._k + 1) * self.dmodel.Ts:g})",
+                           f"t={t:g} (index {k})", "Call predict() once per sample.")
         else:
             if k != self._k:
                 # first update after reset: align the clock on the first call
