@@ -43,7 +43,8 @@ from typing import Any
 
 import numpy as np
 
-from ..exceptions import NotBuiltError, SettingsError
+from ..exceptions import NotBuiltError
+from ..validation import fail, shown
 from ._qp import QPResult
 
 __all__ = ["SteadyTarget"]
@@ -113,21 +114,20 @@ class SteadyTarget:
         else:
             sx, su, sy = (np.asarray(v, float) for v in self.scales)
             if sx.shape != (nx,) or su.shape != (nu,) or sy.shape != (ny,):
-                raise SettingsError(f"SteadyTarget: scales must have shapes ({nx},), ({nu},), "
-                                    f"({ny},); got {sx.shape}, {su.shape}, {sy.shape}.")
+                raise fail("SteadyTarget", "scales", f"shapes ({nx},), ({nu},), ({ny},)",
+                           f"{sx.shape}, {su.shape}, {sy.shape}")
         self._sx, self._su, self._sy = sx, su, sy
         for name, M, shape in (("B", B, (nx, nu)), ("C", C, (ny, nx)), ("D", D, (ny, nu)),
                                ("Bd", self.Bd, (nx, nd)), ("Dd", self.Dd, (ny, nd)),
                                ("Cw", self.Cw, (ny, nw))):
             if M.shape != shape:
-                raise SettingsError(f"SteadyTarget: {name} must have shape {shape}; got {M.shape}.")
+                raise fail("SteadyTarget", name, f"shape {shape}", f"{M.shape}")
         for name, v, n in (("band_weight", self.band_weight, ny),
                            ("limit_linear", self.limit_linear, ny),
                            ("limit_quadratic", self.limit_quadratic, ny),
                            ("preferred_weight", self.preferred_weight, nu)):
             if v.shape != (n,) or not np.all(np.isfinite(v)) or np.any(v < 0):
-                raise SettingsError(f"SteadyTarget: {name} must be {n} finite values >= 0; "
-                                    f"got {v!r}.")
+                raise fail("SteadyTarget", name, f"{n} finite values >= 0", shown(v, 200))
         self.nx, self.nu, self.ny = nx, nu, ny
         # -- scaled model: x = sx * x', u = su * u', y = sy * y'
         IA = (np.eye(nx) - A) * (1 / sx)[:, None] * sx[None, :]
@@ -245,8 +245,8 @@ class SteadyTarget:
     def _unpack(self, z):
         z = np.asarray(z, float)
         if z.shape != (self._nz,):
-            raise SettingsError(f"SteadyTarget.solve: the input vector must have {self._nz} "
-                                f"values (layout {self.layout_}); got shape {z.shape}.")
+            raise fail("SteadyTarget.solve", "z", f"{self._nz} values (layout {self.layout_})",
+                       f"shape {z.shape}")
         nx, nu, ny, nin = self.nx, self.nu, self.ny, self._nin
         nv = nx + nu
         out = self._Kin @ z[:nin]
