@@ -57,9 +57,9 @@ def test_project_command_vector_activity_and_bad_input():
     assert at_rate.tolist() == [False, True, False]
     assert over.tolist() == [True, False, True]        # the hard limits won over the rate
     assert np.isnan(project_command([math.nan], [math.nan], [0.0], [1.0], [0.1])[0])
-    with pytest.raises(mp.SettingsError, match=r"\(MV 1\): the low limit \(2\) is above the high"):
+    with pytest.raises(mp.SettingsError, match=r"\(MV 1\): key 'low': expected a low limit <= the high limit \(1\), found 2"):
         project_command([0.0, 0.0], [0.0, 0.0], [0.0, 2.0], [1.0, 1.0], [1.0, 1.0])
-    with pytest.raises(mp.SettingsError, match=r"\(MV 0\): the rate limit must be >= 0"):
+    with pytest.raises(mp.SettingsError, match=r"\(MV 0\): key 'rate': expected a rate limit >= 0, found -1"):
         project_command([0.0], [0.0], [0.0], [1.0], [-1.0])
 
 

@@ -29,7 +29,7 @@ import math
 
 import numpy as np
 
-from ..exceptions import SettingsError
+from ..validation import fail
 
 __all__ = ["project_command", "project_value", "limit_activity", "project_with_activity"]
 
@@ -97,10 +97,9 @@ def project_value(u: float, p: float, lo: float, hi: float, r: float, *,
     The rule of the module docstring; a NaN compares False, so a NaN limit or rate is none.
     """
     if lo > hi:
-        raise SettingsError(f"{what}: the low limit ({lo:g}) is above the high limit ({hi:g}); "
-                            f"expected low <= high.")
+        raise fail(what, "low", f"a low limit <= the high limit ({hi:g})", f"{lo:g}")
     if r < 0:
-        raise SettingsError(f"{what}: the rate limit must be >= 0; found {r:g}.")
+        raise fail(what, "rate", "a rate limit >= 0", f"{r:g}")
     if u != u:                      # no request: hold the previous MV
         u = p
         if u != u:
