@@ -18,8 +18,9 @@ from typing import Any
 
 import numpy as np
 
-from ..exceptions import MpcprotoError, SettingsError, SimulationError
+from ..exceptions import MpcprotoError, SimulationError
 from ..stepper import Plant
+from ..validation import fail
 from .base import ControlOutput, Measurement, Targets
 from .pid import PIDController, PIDLoop
 
@@ -83,8 +84,8 @@ def closed_loop_step(model: Any, controller: Any, op: Any, *, Ts: float, duratio
             return _failed(run, k, f"controller '{getattr(controller, 'name', '?')}' raised "
                                    f"{type(exc).__name__} at t={t:g}: {exc}")
         if not isinstance(out, ControlOutput):
-            raise SettingsError(f"controller '{getattr(controller, 'name', '?')}'.step() must "
-                                f"return a ControlOutput; got {type(out).__name__}.")
+            raise fail(f"controller '{getattr(controller, 'name', '?')}'", "step()",
+                       "a ControlOutput returned", type(out).__name__)
         ucmd = np.asarray(out.u, float).reshape(-1)
         cmd = np.where(np.isfinite(ucmd), ucmd, u_prev)
         u = np.minimum(np.maximum(cmd, mv_lo), np.maximum(mv_lo, mv_hi))
@@ -111,8 +112,10 @@ def closed_inner_step_test(model: Any, op: Any, inner: PIDLoop, cv: str, *, Ts: 
     ctl = PIDController.for_model(model, [inner], name="inner")
     tr = closed_loop_step(model, ctl, op, Ts=Ts, duration=duration, setpoints={inner.cv: (Ts, size)})
     if not tr.success:
-        raise SettingsError(f"cascade on '{cv}': the step test of the closed inner loop on "
-                            f"'{inner.cv}' failed: {tr.message}")
+        # the closed-loop run's own words say why the step test failed: shown as found
+        raise fail(f"cascade on '{cv}'", "inner",
+                   f"a step test of the closed inner loop on '{inner.cv}' that runs",
+                   f"a failed run: {tr.message}")
     i = model.cv_names.index(cv)
     return StepData(t=tr.t, y={cv: tr.series(cv)}, mv=inner.cv, size=size, at=Ts,
                     y0={cv: float(op.y[i])})
