@@ -92,11 +92,10 @@ ZN_METHODS = ("ultimate", "reaction_curve")
 # ---------------------------------------------------------------------------------- rules
 def _refuse_inverse(fit: ProcessFit, rule: str) -> None:
     if fit.inverse_response:
-        raise SettingsError(
-            f"the step response of {fit.cv or 'this CV'} shows an inverse response (it first "
-            f"moves the wrong way); the rule assumes a monotonic response. Model the right-half-"
-            f"plane zero (e.g. Skogestad's half rule into the dead time) before tuning.",
-            owner=rule)
+        raise fail(rule, "rule", "a monotonic step response (the rule assumes one)",
+                   f"an inverse response of {fit.cv or 'this CV'} (it first moves the wrong way)",
+                   "Model the right-half-plane zero (e.g. Skogestad's half rule into the dead "
+                   "time) before tuning.")
 
 
 def _loop(fit: ProcessFit, K: float, Ti: float, Td: float, rule: str, cv: str | None,
