@@ -138,10 +138,10 @@ def _shape_checks(s, r, what, allow_integrating=False):
     sign = np.sign(final) if final != 0 else np.sign(r[np.argmax(np.abs(r))])
     inverse = bool(np.min(sign * r) < -max(5 * noise, 0.02 * abs(final)))
     if integrating and not allow_integrating:
-        raise SettingsError(
-            f"the response is still ramping at the end (slope {slope:.3g} per unit step "
-            f"per time unit): an integrating process (a level?) or a test too short to settle. "
-            f"Use fit_integrating(), or run the test longer.", owner=what, code="integrating")
+        raise fail(what, "y", "a response that settles by the end of the test",
+                   f"one still ramping at the end (slope {slope:.3g} per unit step per time "
+                   f"unit): an integrating process (a level?) or a test too short to settle",
+                   "Use fit_integrating(), or run the test longer.", code="integrating")
     return final, noise, inverse
 
 
