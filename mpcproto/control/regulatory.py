@@ -142,13 +142,13 @@ class Cascade:
 
     def __post_init__(self) -> None:
         if self.outer.mv != self.inner.cv:
-            raise fail(f"cascade on '{self.outer.cv}'", "outer.mv",
+            raise fail("Cascade", "outer.mv",
                        f"the inner loop's CV '{self.inner.cv}' (the outer loop sets its setpoint)",
-                       f"'{self.outer.mv}'")
+                       f"'{self.outer.mv}'", note=f"cascade on '{self.outer.cv}'")
         if self.outer.cv == self.inner.cv:
-            raise fail(f"cascade on '{self.outer.cv}'", "inner.cv",
+            raise fail("Cascade", "inner.cv",
                        "another CV than the outer loop's (a secondary measurement)",
-                       f"the same CV '{self.inner.cv}'")
+                       f"the same CV '{self.inner.cv}'", note=f"cascade on '{self.outer.cv}'")
 
     def as_dict(self) -> dict[str, Any]:
         return {"cv": self.outer.cv, "inner_cv": self.inner.cv, "mv": self.inner.mv,
@@ -240,12 +240,13 @@ class SplitRange:
 
     def __post_init__(self) -> None:
         if not self.valves:
-            raise fail(f"split range on '{self.loop.cv}'", "valves", "at least one valve",
-                       "none")
+            raise fail("SplitRange", "valves", "at least one valve", "none",
+                       note=f"split range on '{self.loop.cv}'")
         mvs = [v.mv for v in self.valves]
         if len(set(mvs)) != len(mvs):
-            raise fail(f"split range on '{self.loop.cv}'", "valves",
-                       "valves on different MVs", f"an MV listed twice ({', '.join(mvs)})")
+            raise fail("SplitRange", "valves", "valves on different MVs",
+                       f"an MV listed twice ({', '.join(mvs)})",
+                       note=f"split range on '{self.loop.cv}'")
 
     def as_dict(self) -> dict[str, Any]:
         return {"cv": self.loop.cv, "loop": self.loop.as_dict(),
@@ -408,10 +409,9 @@ class RegulatoryController:
                                  mj=mv(r.loop.mv, w), wild=wild))
         for r in self.ratios:
             if r.wild in [x.loop.mv for x in self.ratios]:
-                raise fail(f"ratio on '{r.loop.mv}'", "wild",
-                           "a flow not set by another ratio",
+                raise fail("RegulatoryController", "ratios", "a wild flow not set by another ratio",
                            f"'{r.wild}', itself set by a ratio",
-                           "chain ratios on the primary flow instead")
+                           "chain ratios on the primary flow instead", note=f"ratio on '{r.loop.mv}'")
         for f in self.feedforward:
             w = f"feedforward {f.cv}<-{f.source}"
             b = plain.get(f.cv)

@@ -113,9 +113,9 @@ def closed_inner_step_test(model: Any, op: Any, inner: PIDLoop, cv: str, *, Ts: 
     tr = closed_loop_step(model, ctl, op, Ts=Ts, duration=duration, setpoints={inner.cv: (Ts, size)})
     if not tr.success:
         # the closed-loop run's own words say why the step test failed: shown as found
-        raise fail(f"cascade on '{cv}'", "inner",
+        raise fail("closed_inner_step_test", "inner",
                    f"a step test of the closed inner loop on '{inner.cv}' that runs",
-                   f"a failed run: {tr.message}")
+                   f"a failed run: {tr.message}", note=f"cascade on '{cv}'")
     i = model.cv_names.index(cv)
     return StepData(t=tr.t, y={cv: tr.series(cv)}, mv=inner.cv, size=size, at=Ts,
                     y0={cv: float(op.y[i])})
