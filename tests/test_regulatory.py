@@ -243,13 +243,13 @@ def test_structures_refuse_bad_wiring():
     m = selector_plant()
     a = PIDLoop("y1", "u", gain=1.0)
     b = PIDLoop("y2", "u", gain=1.0)
-    with pytest.raises(mp.SettingsError, match="already moved by"):
+    with pytest.raises(mp.SettingsError, match="key 'mv': expected an MV moved by one structure only.*found 'u', already moved by"):
         RegulatoryController.for_model(m, loops=[a, b])
-    with pytest.raises(mp.SettingsError, match="'select' must be one of min, max"):
+    with pytest.raises(mp.SettingsError, match=r"Selector: key 'select': expected one of min, max, found 'lowest'. \(selector on 'u'\)"):
         Selector("u", "lowest", (a, b))
-    with pytest.raises(mp.SettingsError, match="needs a lag"):
+    with pytest.raises(mp.SettingsError, match=r"Feedforward: key 'lag': expected a lag > 0 with the lead \(3\)"):
         Feedforward("y1", "d", 1.0, lead=3.0)
-    with pytest.raises(mp.SettingsError, match="is not a DV"):
+    with pytest.raises(mp.SettingsError, match=r"key 'source': expected the name of a DV of this model"):
         RegulatoryController.for_model(m, loops=[a], feedforward=[Feedforward("y1", "d", 1.0)])
 
 

@@ -67,10 +67,8 @@ from typing import Any
 
 import numpy as np
 
-from ..exceptions import SettingsError
-from ..model import suggest
 from ..operating import OperatingPoint
-from ..validation import fail
+from ..validation import Names, did_you_mean, fail, shown
 from .base import STATUS_HOLD, STATUS_OK, ControlOutput, Measurement, Targets
 from .limits import project_value
 from .pid import PIDLoop, _LoopState, pid_output, readback_list
@@ -82,9 +80,9 @@ REFERENCES = ("setpoint", "high", "low")
 SELECTS = ("min", "max")
 
 
-def _num(v: Any, where: str, cond, expect: str) -> float:
+def _num(v: Any, owner: str, key: str, where: str, cond, expect: str) -> float:
     if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v) or not cond(v):
-        raise SettingsError(f"must be {expect}; found {v!r:.60}.", owner=where)
+        raise fail(owner, key, expect, shown(v), note=where)
     return float(v)
 
 
@@ -105,13 +103,13 @@ class Feedforward:
 
     def __post_init__(self) -> None:
         w = f"feedforward {self.cv}<-{self.source}"
-        _num(self.gain, f"{w}: 'gain'", math.isfinite, "a finite number")
+        _num(self.gain, "Feedforward", "gain", w, math.isfinite, "a finite number")
         for k in ("lead", "lag", "dead_time"):
-            _num(getattr(self, k), f"{w}: '{k}'", lambda v: math.isfinite(v) and v >= 0,
+            _num(getattr(self, k), "Feedforward", k, w, lambda v: math.isfinite(v) and v >= 0,
                  "a finite number >= 0")
         if self.lead > 0 and self.lag == 0:
-            raise SettingsError(f"a lead ({self.lead:g}) needs a lag > 0 (a pure lead is not "
-                                f"realizable); give 'lag' too or set lead = 0.", owner=w)
+            raise fail("Feedforward", "lag", f"a lag > 0 with the lead ({self.lead:g}) (a pure "
+                       f"lead is not realizable)", "0", "give 'lag' too or set lead = 0", note=w)
 
     def as_dict(self) -> dict[str, Any]:
         d = {"cv": self.cv, "source": self.source, "gain": self.gain, "lead": self.lead, "lag": self.lag,
@@ -168,22 +166,22 @@ class Selector:
     def __post_init__(self) -> None:
         w = f"selector on '{self.mv}'"
         if self.select not in SELECTS:
-            raise SettingsError(f"'select' must be one of min, max; found {self.select!r}"
-                                f"{suggest(str(self.select), SELECTS)}.", owner=w)
+            raise fail("Selector", "select", "one of min, max", repr(self.select),
+                       did_you_mean(self.select, SELECTS), note=w)
         if len(self.loops) < 2:
-            raise SettingsError(f"needs at least two loops; found {len(self.loops)}.", owner=w)
+            raise fail("Selector", "loops", "at least two loops", f"{len(self.loops)}", note=w)
         for lp in self.loops:
             if lp.mv != self.mv:
-                raise SettingsError(f"every loop must move '{self.mv}'; loop on '{lp.cv}' "
-                                    f"moves '{lp.mv}'.", owner=w)
+                raise fail("Selector", "loops", f"loops that all move '{self.mv}'",
+                           f"the loop on '{lp.cv}' moving '{lp.mv}'", note=w)
         refs = self.references or ("setpoint",) * len(self.loops)
         if len(refs) != len(self.loops):
-            raise SettingsError(f"one reference per loop expected; found {len(refs)} for "
-                                f"{len(self.loops)} loops.", owner=w)
+            raise fail("Selector", "references", f"one reference per loop ({len(self.loops)})",
+                       f"{len(refs)}", note=w)
         for r in refs:
             if r not in REFERENCES:
-                raise SettingsError(f"a reference must be one of {', '.join(REFERENCES)}; "
-                                    f"found {r!r}{suggest(str(r), REFERENCES)}.", owner=w)
+                raise fail("Selector", "references", f"one of {', '.join(REFERENCES)}", repr(r),
+                           did_you_mean(r, REFERENCES), note=w)
         object.__setattr__(self, "references", tuple(refs))
 
     def as_dict(self) -> dict[str, Any]:
@@ -205,12 +203,13 @@ class Valve:
     def __post_init__(self) -> None:
         w = f"split-range valve '{self.mv}'"
         for k in ("start", "end"):
-            _num(getattr(self, k), f"{w}: '{k}'", lambda v: 0 <= v <= 100, "in [0, 100] (%)")
+            _num(getattr(self, k), "Valve", k, w, lambda v: 0 <= v <= 100,
+                 "a number in [0, 100] (%)")
         for k in ("at_start", "at_end"):
-            _num(getattr(self, k), f"{w}: '{k}'", math.isfinite, "a finite number")
+            _num(getattr(self, k), "Valve", k, w, math.isfinite, "a finite number")
         if not self.end > self.start:
-            raise SettingsError(f"'end' must be above 'start'; found start = {self.start:g}, "
-                                f"end = {self.end:g}.", owner=w)
+            raise fail("Valve", "end", f"an end above 'start' ({self.start:g})", f"{self.end:g}",
+                       note=w)
 
     def value(self, c: float) -> float:
         """The valve's MV for controller output *c* (%)."""
@@ -344,32 +343,29 @@ class RegulatoryController:
 
         def cv(name: str, where: str) -> int:
             if name not in self.cv_names:
-                raise SettingsError(f"'{name}' is not a CV of the model"
-                                    f"{suggest(name, self.cv_names)}; CVs: {', '.join(self.cv_names)}.",
-                                    owner=where)
+                raise fail("RegulatoryController", "cv", Names("CV", self.cv_names).describe(),
+                           shown(name), did_you_mean(name, self.cv_names), note=where)
             return self.cv_names.index(name)
 
         def mv(name: str, where: str) -> int:
             if name not in self.mv_names:
-                raise SettingsError(f"'{name}' is not an MV of the model"
-                                    f"{suggest(name, self.mv_names)}; MVs: {', '.join(self.mv_names)}.",
-                                    owner=where)
+                raise fail("RegulatoryController", "mv", Names("MV", self.mv_names).describe(),
+                           shown(name), did_you_mean(name, self.mv_names), note=where)
             if name in owner:
-                raise SettingsError(f"MV '{name}' is already moved by {owner[name]}; "
-                                    f"each MV may be moved by one structure only (use a selector "
-                                    f"to share an MV).", owner=where)
+                raise fail("RegulatoryController", "mv", "an MV moved by one structure only (use "
+                           "a selector to share an MV)",
+                           f"'{name}', already moved by {owner[name]}", note=where)
             owner[name] = where
             return self.mv_names.index(name)
 
-        def dv(name: str, where: str) -> int:
+        def dv(name: str, where: str, key: str) -> int:
             if name not in self.dv_names:
-                raise SettingsError(f"'{name}' is not a DV of the model"
-                                    f"{suggest(name, self.dv_names)}; DVs: "
-                                    f"{', '.join(self.dv_names) or '(none)'}.", owner=where)
+                raise fail("RegulatoryController", key, Names("DV", self.dv_names).describe(),
+                           shown(name), did_you_mean(name, self.dv_names), note=where)
             if name not in self.measured_dvs:
-                raise SettingsError(f"DV '{name}' is not measured; a controller can only "
-                                    f"use a measured DV (measured: "
-                                    f"{', '.join(self.measured_dvs) or 'none'}).", owner=where)
+                raise fail("RegulatoryController", key, f"a measured DV (measured: "
+                           f"{', '.join(self.measured_dvs) or 'none'}; a controller can only use "
+                           f"those)", f"'{name}', not measured", note=where)
             return self.dv_names.index(name)
 
         blocks: list[_Block] = []
@@ -404,7 +400,7 @@ class RegulatoryController:
                 wild = ("mv", self.mv_names.index(r.wild))
                 wild_mvs.append(r.wild)
             else:
-                wild = ("dv", dv(r.wild, w + " (wild flow)"))
+                wild = ("dv", dv(r.wild, w + " (wild flow)", "wild"))
             blocks.append(_Block(r.loop, cv(r.loop.cv, w), "ratio", f"{r.loop.mv}.ratio",
                                  mj=mv(r.loop.mv, w), wild=wild))
         for r in self.ratios:
@@ -416,15 +412,16 @@ class RegulatoryController:
             w = f"feedforward {f.cv}<-{f.source}"
             b = plain.get(f.cv)
             if b is None:
-                raise SettingsError(f"there is no plain loop (or cascade inner loop) on "
-                                    f"'{f.cv}' to add it to; loops on: {', '.join(plain) or 'none'}.",
-                                    owner=w)
+                raise fail("RegulatoryController", "feedforward",
+                           f"a plain loop (or cascade inner loop) on '{f.cv}' to add it to "
+                           f"(loops on: {', '.join(plain) or 'none'})", "none", note=w)
             if f.source in self.mv_names:
                 if f.source == b.loop.mv:
-                    raise SettingsError("the source is the loop's own MV.", owner=w)
+                    raise fail("RegulatoryController", "feedforward",
+                               "a source other than the loop's own MV", f"'{f.source}'", note=w)
                 b.ff.append(_FFState(f, self.mv_names.index(f.source), "mv"))
             else:
-                b.ff.append(_FFState(f, dv(f.source, w)))
+                b.ff.append(_FFState(f, dv(f.source, w, "source")))
         if not blocks:
             raise fail("RegulatoryController", "loops",
                        "at least one loop or structure (loops, ratios, cascades, selectors, "
