@@ -66,7 +66,7 @@ def test_run_refuses_an_out_path_that_is_a_file_and_an_unknown_case(tmp_path, ca
 
 @pytest.mark.parametrize("replace, fragments", [
     ('tau_c = "fast"', ["key 'controllers.pid.tau_c'", "expected a finite number > 0", "found 'fast'"]),
-    ("tau_c = { levle = 3.0 }", ["key 'controllers.pid.tau_c'", "'levle' is not a CV", "did you mean 'level'"]),
+    ("tau_c = { levle = 3.0 }", ["key 'controllers.pid.tau_c'", "expected one value or a table keyed by CV names", "found 'levle'", "did you mean 'level'"]),
     ("tau_c = { level = -3.0 }", ["key 'controllers.pid.tau_c.level'", "found -3.0"]),
     ('tau_c = 120.0\nlam = 5.0', ["key 'controllers.pid.lam'", "applies to rule imc", "the rule is 'simc'"]),
 ])

@@ -224,7 +224,7 @@ def test_tuning_adds_half_a_sample_and_the_analyzer_delay_to_the_dead_time():
     assert loops[0].gain == pytest.approx(fits[0].time_constants[0] / (fits[0].gain * 2 * th))
     ctl = mp.pid_from_settings(m, op0(m), Ts, {"pairs": {"y": "u"}, "extra_dead_time": 30.0})
     assert ctl.loops[0].gain == pytest.approx(loops[0].gain, rel=1e-6)
-    with pytest.raises(mp.SettingsError, match=r"key 'extra_dead_time': 'yy' is not a CV"):
+    with pytest.raises(mp.SettingsError, match=r"key 'extra_dead_time': expected one value or a table keyed by CV names of model 'fopdt' \(y or '\*'\), found 'yy'; did you mean 'y'"):
         mp.pid_from_settings(m, op0(m), Ts, {"pairs": {"y": "u"}, "extra_dead_time": {"yy": 1.0}})
 
 

@@ -13,8 +13,7 @@ from typing import Any
 
 from .._specs import as_float, choice, refuse_unknown_keys, shown
 from ..exceptions import SettingsError, join_key
-from ..model import suggest
-from ..validation import Names, check
+from ..validation import Names, check, did_you_mean, fail
 from .pid import PIDLoop
 from .tuning import RULES, ZN_METHODS, ProcessFit, rule_on_fit, tune_pid_loops
 
@@ -46,7 +45,7 @@ def _check_number(v: Any, where: str, *, low: float, strict: bool, high: float =
     if not ok:
         rel = ">" if strict else ">="
         rng = f"{rel} {low:g}" + (f" and <= {high:g}" if math.isfinite(high) else "")
-        raise SettingsError(owner=where, expected=f"a finite number {rng}", found=shown(v))
+        raise fail(None, where, f"a finite number {rng}", shown(v))
     return float(f)
 
 
@@ -60,10 +59,9 @@ def _check_per_cv(settings: Mapping[str, Any], key: str, model: Any, what: str, 
     names = list(getattr(model, "cv_names", ()))
     for c, x in v.items():
         if not isinstance(c, str) or (c != "*" and c not in names):
-            raise SettingsError(f"{shown(c)} is not a CV of model "
-                                f"'{getattr(model, 'name', '?')}'{suggest(str(c), names)}; expected "
-                                f"one value or a table keyed by CV names ({', '.join(names)} or "
-                                f"'*').", owner=join_key(what, key))
+            raise fail(None, join_key(what, key), f"one value or a table keyed by CV names of "
+                       f"model '{getattr(model, 'name', '?')}' ({', '.join(names)} or '*')",
+                       shown(c), did_you_mean(str(c), names))
         check(x, join_key(join_key(what, key), str(c)))
 
 
@@ -86,7 +84,7 @@ def _check_settings_below(model: Any, settings: Mapping[str, Any]) -> None:
             users = [r for r, ks in _RULE_KEYS.items() if key in ks]
             raise SettingsError(f"applies to rule {' / '.join(users)}, but the rule "
                                 f"is '{rule}'; remove '{key}' or set rule = '{users[0]}'.",
-                                owner=key)
+                                key=key)
     pos = lambda v, w: _check_number(v, w, low=0.0, strict=True)  # noqa: E731
     if "tau_c" in settings:
         _check_per_cv(settings, "tau_c", model, what, pos)
@@ -155,7 +153,7 @@ def pid_from_settings(model: Any, op: Any, Ts: float, settings: Mapping[str, Any
     from .pid import PIDController, pid_loop_from_spec, suggest_pairing
 
     if not isinstance(settings, Mapping):
-        raise SettingsError(f"PID settings must be a table; found {shown(settings)}.", owner=what)
+        raise fail(what, None, "a table of PID settings", shown(settings))
     refuse_unknown_keys(settings, _SETTINGS_KEYS, what=what)
     cv_names = list(getattr(model, "cv_names", ()))
     mv_names = list(getattr(model, "mv_names", ()))
