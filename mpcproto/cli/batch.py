@@ -174,14 +174,15 @@ def _cmd_batch(args) -> int:
     from ..store import ID_KEY, RESULTS_FILE, is_complete, load_results, lock_output, missing_fields
     from ..validation import fail
 
+    # owner None: the CLI prints 'mpcproto <command>: error:' before the key
     if args.workers is not None and args.workers < 1:
-        raise fail("mpcproto batch", "--workers", "an int in the range [1, inf)", f"{args.workers}")
+        raise fail(None, "--workers", "an int in the range [1, inf)", f"{args.workers}")
     for opt in ("tolerance", "abs_tolerance"):
         v = getattr(args, opt)
         if not (math.isfinite(v) and v >= 0):
-            raise fail("mpcproto batch", f"--{opt.replace('_', '-')}", "a finite number >= 0", f"{v}")
+            raise fail(None, f"--{opt.replace('_', '-')}", "a finite number >= 0", f"{v}")
     if not (math.isfinite(args.progress_interval) and args.progress_interval > 0):
-        raise fail("mpcproto batch", "--progress-interval", "a finite number of seconds > 0",
+        raise fail(None, "--progress-interval", "a finite number of seconds > 0",
                    f"{args.progress_interval}")
     if args.baseline is not None and not Path(args.baseline).is_file():
         raise ScenarioError("expected the results.jsonl of an earlier batch (--baseline); found no "

@@ -17,13 +17,14 @@ def _check_out_dir(out: str) -> None:
 
     from ..validation import fail
 
+    # owner None: the CLI prints 'mpcproto <command>: error:' before the key
     p = Path(out)
     if p.exists() and not p.is_dir():
-        raise fail("mpcproto run", "--out", "a directory for the results (created if missing)",
+        raise fail(None, "--out", "a directory for the results (created if missing)",
                    f"a file named {out}", "Give another path.")
     parent = next((q for q in [p, *p.parents] if q.exists()), None)
     if parent is not None and not parent.is_dir():
-        raise fail("mpcproto run", "--out", "a directory for the results",
+        raise fail(None, "--out", "a directory for the results",
                    f"{out}, below the file '{parent}', so no directory can be made there")
 
 
@@ -101,16 +102,16 @@ def _cmd_new(args: argparse.Namespace) -> int:
 
     out = Path(args.out)
     if out.exists() and not args.force:
-        raise fail("mpcproto new", "--out", "a new file", f"{out} already there",
+        raise fail(None, "--out", "a new file", f"{out} already there",
                    "Give another name or --force to overwrite it.")
     if out.suffix != ".toml":
-        raise fail("mpcproto new", "--out", "a scenario file name ending in .toml",
+        raise fail(None, "--out", "a scenario file name ending in .toml",
                    f"{out} ({out.suffix or 'no suffix'})")
     options = {}
     for item in args.option or []:
         k, sep, v = item.partition("=")
         if not sep or not k.strip().isidentifier():
-            raise fail("mpcproto new", "--option", "NAME=VALUE (e.g. outflow=valve)", repr(item))
+            raise fail(None, "--option", "NAME=VALUE (e.g. outflow=valve)", repr(item))
         options[k.strip()] = _option_value(v.strip())
     text = starter_scenario(args.model, out, options=options)
     out.parent.mkdir(parents=True, exist_ok=True)
