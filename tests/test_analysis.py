@@ -144,7 +144,7 @@ def test_bad_arguments_are_named():
         mp.cv_performance(tr, "x")
     with pytest.raises(mp.SettingsError, match="band_fraction"):
         mp.cv_performance(tr, "c", band_fraction=2.0)
-    with pytest.raises(mp.SettingsError, match="bands names 'cc'"):
+    with pytest.raises(mp.SettingsError, match="key 'bands.cc': expected a CV of the trajectory .*found bands names 'cc'"):
         mp.kpis(tr, bands={"cc": 1.0})
     with pytest.raises(mp.SettingsError, match=r"key 'columns.y.c': expected 2 values \(one per time\), found 3"):
         mp.Trajectory([0, 1], {"y.c": [1, 2, 3]})
