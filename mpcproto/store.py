@@ -47,7 +47,6 @@ from pathlib import Path
 from typing import Any, TextIO
 
 from .exceptions import SettingsError
-from .validation import fail
 
 __all__ = ["RESULTS_FILE", "LOCK_FILE", "ID_KEY", "FINGERPRINT_KEY", "case_id_of",
            "case_fingerprint", "case_verdict", "criterion_passed", "incomplete_note", "missing_fields", "is_complete",
@@ -72,9 +71,9 @@ def case_id_of(case: Any) -> str:
                 return str(case[name])
         elif hasattr(case, name):
             return str(getattr(case, name))
-    raise fail("batch case", "case_id",
-               "a stable id (an attribute or key 'case_id' or 'id')",
-               f"a {type(case).__name__} without one")
+    raise SettingsError(owner="batch case", key="case_id",
+                        expected="a stable id (an attribute or key 'case_id' or 'id')",
+                        found=f"a {type(case).__name__} without one")
 
 
 def case_fingerprint(case: Any) -> str:
