@@ -23,7 +23,7 @@ import numpy as np
 
 from .analysis import summarize
 from .control.describe import describe_controller
-from .exceptions import SettingsError
+from .validation import fail
 from .trajectory import Trajectory
 
 __all__ = ["compare", "Comparison", "scorecard", "describe_controller", "fairness_notes",
@@ -43,7 +43,7 @@ def scorecard(summaries: Mapping[str, Mapping[str, Any]]) -> list[dict[str, Any]
     """
     labels = list(summaries)
     if not labels:
-        raise SettingsError("scorecard: no controller summaries given.")
+        raise fail("scorecard()", "summaries", "at least one controller summary", "none")
     first = summaries[labels[0]]
     rows: list[dict[str, Any]] = []
     for cv in first["kpi"]["cv"]:
@@ -218,19 +218,21 @@ def compare(plant_model: Any, controllers: Mapping[str, Any] | Sequence[Any], *,
     from .sim.closed_loop import simulate
 
     if isinstance(rng, np.random.Generator):
-        raise SettingsError("compare: rng must be an int seed or a SeedSequence so that every "
-                            "controller sees the same noise; got a Generator.")
+        raise fail("compare()", "rng",
+                   "an int seed or a SeedSequence, so that every controller sees the same noise",
+                   "a Generator")
     if not isinstance(controllers, Mapping):
         items: dict[str, Any] = {}
         for c in controllers:
             lb = str(getattr(c, "name", type(c).__name__))
             if lb in items:
-                raise SettingsError(f"compare: two controllers are named '{lb}'; pass a mapping "
-                                    f"{{label: controller}} with distinct labels.")
+                raise fail("compare()", "controllers", "controllers with distinct names",
+                           f"two controllers named '{lb}'",
+                           "pass a mapping {label: controller} with distinct labels")
             items[lb] = c
         controllers = items
     if not controllers:
-        raise SettingsError("compare: give at least one controller.")
+        raise fail("compare()", "controllers", "at least one controller", "none")
     trajs: dict[str, Trajectory] = {}
     sums: dict[str, dict[str, Any]] = {}
     for label, ctl in controllers.items():

@@ -27,7 +27,8 @@ from typing import Any
 
 import numpy as np
 
-from .exceptions import OperatingPointError, SettingsError
+from .exceptions import OperatingPointError
+from .validation import fail, shown
 from .model import suggest
 
 __all__ = ["SteadyStateLocus", "steady_state_locus", "plot_locus"]
@@ -61,8 +62,9 @@ def _role_of(model, name: str) -> str:
         if name in model.names(role):
             return role
     known = list(model.names("mv")) + list(model.names("dv")) + list(model.names("parameter"))
-    raise SettingsError(f"steady_state_locus(): '{name}' is not an MV, DV or parameter of model "
-                        f"'{model.name}'{suggest(name, known)}; choose one of {known}.")
+    raise fail("steady_state_locus()", "variable",
+               f"an MV, DV or parameter of model '{model.name}' (one of {known})",
+               f"{name!r}{suggest(name, known)}")
 
 
 def steady_state_locus(model, variable: str, low: float, high: float, *, op=None,
@@ -103,9 +105,10 @@ def steady_state_locus(model, variable: str, low: float, high: float, *, op=None
 
     role = _role_of(model, variable)
     if not (math.isfinite(low) and math.isfinite(high) and low < high):
-        raise SettingsError(f"steady_state_locus(): needs finite low < high; got {low!r}, {high!r}.")
+        raise fail("steady_state_locus()", "high", "finite low < high",
+                   f"low = {low!r}, high = {high!r}")
     if not (0 < step < 1):
-        raise SettingsError(f"steady_state_locus(): step must be in (0, 1); got {step!r}.")
+        raise fail("steady_state_locus()", "step", "a number in (0, 1)", shown(step))
     op = steady_state(model) if op is None else op
     j = list(model.names(role)).index(variable)
     u0, d0, p0 = np.array(op.u, float), np.array(op.d, float), np.array(model.p, float)
@@ -249,8 +252,8 @@ def plot_locus(locus: SteadyStateLocus, path, *, cv: str | None = None) -> None:
 
     name = cv or locus.cv_names[0]
     if name not in locus.cv_names:
-        raise SettingsError(f"plot_locus(): '{name}' is not a CV of the locus; CVs: "
-                            f"{list(locus.cv_names)}.")
+        raise fail("plot_locus()", "cv", f"a CV of the locus (one of {list(locus.cv_names)})",
+                   repr(name))
     i = locus.cv_names.index(name)
     fig, ax = plt.subplots(figsize=(7, 4.5))
     st = locus.stable

@@ -44,7 +44,7 @@ from typing import Any
 
 import numpy as np
 
-from .exceptions import SettingsError
+from .validation import fail, shown
 from .linear import INTEGRATOR_TOL, open_loop_class
 from .linear import rga as _rga
 
@@ -67,12 +67,12 @@ COLLINEAR_COSINE = 0.985
 def _matrix(K: Any, what: str) -> np.ndarray:
     K = np.asarray(K, dtype=float)
     if K.ndim != 2 or K.size == 0:
-        raise SettingsError(f"{what}: the gain matrix must be a non-empty 2-D array (CVs x MVs); "
-                            f"got shape {K.shape}.")
+        raise fail(what, "K", "a non-empty 2-D gain matrix (CVs x MVs)", f"shape {K.shape}")
     if not np.all(np.isfinite(K)):
-        raise SettingsError(f"{what}: the gain matrix has non-finite entries (a CV that integrates "
-                            f"has no steady-state gain); analyse the settling part of the unit, or "
-                            f"use the integrating channels' ramp rates as gains.")
+        raise fail(what, "K", "finite gains",
+                   "non-finite entries (a CV that integrates has no steady-state gain)",
+                   "analyse the settling part of the unit, or use the integrating channels' ramp "
+                   "rates as gains")
     return K
 
 
@@ -94,16 +94,16 @@ def niederlinski_index(K: Any, pairing: Sequence[int]) -> float:
     K = _matrix(K, "niederlinski_index()")
     n = K.shape[0]
     if K.shape[1] != n:
-        raise SettingsError(f"niederlinski_index(): needs a square gain matrix; got shape {K.shape}.")
+        raise fail("niederlinski_index()", "K", "a square gain matrix", f"shape {K.shape}")
     p = [int(j) for j in pairing]
     if sorted(p) != list(range(n)):
-        raise SettingsError(f"niederlinski_index(): pairing must be a permutation of 0..{n - 1} (one "
-                            f"MV per CV); got {list(pairing)!r}.")
+        raise fail("niederlinski_index()", "pairing",
+                   f"a permutation of 0..{n - 1} (one MV per CV)", repr(list(pairing)))
     Kp = K[:, p]
     diag = np.prod(np.diag(Kp))
     if diag == 0:
-        raise SettingsError("niederlinski_index(): a paired gain is zero: the pairing puts an MV on "
-                            "a CV it does not move.")
+        raise fail("niederlinski_index()", "pairing", "non-zero paired gains",
+                   "a paired gain of zero (the pairing puts an MV on a CV it does not move)")
     return float(np.linalg.det(Kp) / diag)
 
 
@@ -156,8 +156,9 @@ def _scales(v: Any, n: int, what: str) -> np.ndarray:
         return np.ones(n)
     a = np.asarray(v, dtype=float).reshape(-1)
     if a.shape != (n,) or not np.all(np.isfinite(a)) or np.any(a <= 0):
-        raise SettingsError(f"gain_matrix_analysis(): {what} must be {n} finite numbers > 0 (the "
-                            f"span of each variable that counts as one unit); got {v!r}.")
+        raise fail("gain_matrix_analysis()", what,
+                   f"{n} finite numbers > 0 (the span of each variable that counts as one unit)",
+                   shown(v))
     return a
 
 
@@ -189,8 +190,8 @@ def gain_matrix_analysis(K: Any, *, cv_names: Sequence[str] | None = None,
     cvn = tuple(cv_names) if cv_names is not None else tuple(f"y{i}" for i in range(ny))
     mvn = tuple(mv_names) if mv_names is not None else tuple(f"u{j}" for j in range(nu))
     if len(cvn) != ny or len(mvn) != nu:
-        raise SettingsError(f"gain_matrix_analysis(): {ny} CV and {nu} MV names expected; got "
-                            f"{len(cvn)} and {len(mvn)}.")
+        raise fail("gain_matrix_analysis()", "cv_names" if len(cvn) != ny else "mv_names",
+                   f"{ny} CV and {nu} MV names", f"{len(cvn)} and {len(mvn)}")
     sy = _scales(cv_scales, ny, "cv_scales")
     su = _scales(mv_scales, nu, "mv_scales")
     Ks = K / sy[:, None] * su[None, :]
@@ -262,15 +263,16 @@ def _pairing_indices(pairing, cvn, mvn) -> list[int]:
         try:
             c, m = item
         except (TypeError, ValueError):
-            raise SettingsError(f"gain_matrix_analysis(): pairing must be (cv, mv) name pairs; got "
-                                f"{item!r}.") from None
+            raise fail("gain_matrix_analysis()", "pairing", "(cv, mv) name pairs",
+                       shown(item)) from None
         if c not in cvn or m not in mvn:
-            raise SettingsError(f"gain_matrix_analysis(): pairing ({c!r}, {m!r}) names an unknown "
-                                f"variable; CVs {list(cvn)}, MVs {list(mvn)}.")
+            raise fail("gain_matrix_analysis()", "pairing",
+                       f"known names (CVs {list(cvn)}, MVs {list(mvn)})",
+                       f"({c!r}, {m!r}), which names an unknown variable")
         perm[cvn.index(c)] = mvn.index(m)
     if sorted(perm) != list(range(len(cvn))):
-        raise SettingsError(f"gain_matrix_analysis(): the pairing must pair every CV with its own MV; "
-                            f"got {list(pairing)!r}.")
+        raise fail("gain_matrix_analysis()", "pairing", "every CV paired with its own MV",
+                   repr(list(pairing)))
     return perm
 
 
@@ -279,8 +281,7 @@ def transfer_matrix_at(lin: Any, w: float) -> np.ndarray:
     dead times included exactly (each delayed input column is multiplied by ``exp(-jw theta)``).
     """
     if not (isinstance(w, (int, float)) and math.isfinite(w) and w >= 0):
-        raise SettingsError(f"transfer_matrix_at(): the frequency must be a finite number >= 0; "
-                            f"got {w!r}.")
+        raise fail("transfer_matrix_at()", "w", "a finite frequency >= 0", shown(w))
     A = np.asarray(lin.A, float)
     nx = A.shape[0]
     B = np.asarray(lin.B, complex).copy()
@@ -307,9 +308,10 @@ def rga_at_frequency(lin: Any, w: float | Sequence[float]) -> np.ndarray:
     for wk in ws:
         G = transfer_matrix_at(lin, float(wk))
         if G.shape[0] != G.shape[1]:
-            raise SettingsError(f"rga_at_frequency(): needs as many CVs as MVs; got {G.shape}.")
+            raise fail("rga_at_frequency()", "lin", "as many CVs as MVs", f"shape {G.shape}")
         if np.linalg.cond(G) > 1e12:
-            raise SettingsError(f"rga_at_frequency(): G(jw) is singular at w = {wk:g}.")
+            raise fail("rga_at_frequency()", "w", "frequencies where G(jw) is invertible",
+                       f"G(jw) singular at w = {wk:g}")
         out.append(G * np.linalg.inv(G).T)
     arr = np.array(out)
     return arr[0] if np.ndim(w) == 0 else arr
@@ -347,7 +349,7 @@ def sampling_advice(lin: Any, Ts: float) -> SamplingAdvice:
       a dead time under one sample is invisible to the controller (common practice, no source).
     """
     if not (isinstance(Ts, (int, float)) and math.isfinite(Ts) and Ts > 0):
-        raise SettingsError(f"sampling_advice(): Ts must be a finite number > 0; got {Ts!r}.")
+        raise fail("sampling_advice()", "Ts", "a finite number > 0", shown(Ts))
     poles = np.linalg.eigvals(np.asarray(lin.A, float)) if np.size(lin.A) else np.zeros(0)
     tol = INTEGRATOR_TOL * max(1.0, float(np.max(np.abs(poles)))) if poles.size else 0.0
     stable = poles[poles.real < -tol]

@@ -36,7 +36,6 @@ from typing import Any
 import numpy as np
 import scipy.linalg as sla
 
-from .exceptions import SettingsError
 from .validation import Interval, Options, check, fail
 from .operating import OperatingPoint
 from .realization import (INTEGRATOR_TOL, _channel, _controllability_reach, _gain_matrix,
@@ -131,12 +130,13 @@ def rga(K: np.ndarray) -> np.ndarray:
     """
     K = np.asarray(K, float)
     if K.ndim != 2 or K.shape[0] != K.shape[1]:
-        raise SettingsError(f"rga(): the gain matrix must be square; got shape {K.shape}.")
+        raise fail("rga()", "K", "a square gain matrix", f"shape {K.shape}")
     if not np.all(np.isfinite(K)):
-        raise SettingsError("rga(): the RGA is not defined: the steady-state gain matrix has "
-                                "non-finite entries (a CV that integrates has no steady-state gain).")
+        raise fail("rga()", "K", "finite steady-state gains (the RGA is not defined otherwise)",
+                   "non-finite entries (a CV that integrates has no steady-state gain)")
     if np.linalg.cond(K) > 1e12:
-        raise SettingsError("rga(): the gain matrix is singular; no relative gain array exists.")
+        raise fail("rga()", "K", "an invertible gain matrix",
+                   "a singular one (no relative gain array exists)")
     return K * np.linalg.inv(K).T
 
 
@@ -188,7 +188,7 @@ class LinearModel:
         Df : ndarray (ny, nu) or (ny, nd)
         """
         if role not in ("mv", "dv"):
-            raise SettingsError(f"LinearModel.folded_inputs(): role must be 'mv' or 'dv'; got {role!r}.")
+            raise fail("LinearModel.folded_inputs()", "role", "'mv' or 'dv'", repr(role))
         n = self.B.shape[1] if role == "mv" else self.Bd.shape[1]
         S = np.zeros((len(self.delays), n))
         for k, (r, i, _) in enumerate(self.delays):
@@ -453,7 +453,7 @@ class DiscreteLinearModel:
         one was discretized from (ZOH step invariance).
         """
         if role not in ("mv", "dv"):
-            raise SettingsError(f"DiscreteLinearModel.gain(): role must be 'mv' or 'dv'; got {role!r}.")
+            raise fail("DiscreteLinearModel.gain()", "role", "'mv' or 'dv'", repr(role))
         B, D = (self.B, self.D) if role == "mv" else (self.Bd, self.Dd)
         return _gain_matrix(self.A, B, self.C, D, discrete=True)
 

@@ -525,9 +525,10 @@ class Model:
             return ca.integrator(f"{self.name}_{label}", plugin, {"x": x, "p": pv, "ode": rhs},
                                  0.0, float(Ts), dict(options or {}))
         except RuntimeError as exc:   # CasADi's own words (a foreign text): its last line
-            raise SettingsError(
-                f"Model '{self.name}': cannot build the CasADi integrator {plugin!r} with options "
-                f"{dict(options or {})}: {str(exc).splitlines()[-1]}") from None
+            raise SettingsError(owner=f"Model '{self.name}'", key="integrator",
+                                expected="a CasADi integrator plugin and options it accepts",
+                                found=f"{plugin!r} with options {dict(options or {})}, which "
+                                      f"CasADi refuses: {str(exc).splitlines()[-1]}") from None
 
     def describe(self) -> dict[str, Any]:
         """Plain-data description: name, time unit, variables by role, delays."""

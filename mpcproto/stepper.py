@@ -33,7 +33,8 @@ from typing import Any
 import casadi as ca
 import numpy as np
 
-from .exceptions import SettingsError, SimulationError
+from .exceptions import SimulationError
+from .validation import fail, shown
 from .layout import ParameterLayout, in_order
 from .linear import delay_split, split_sample_inputs, zoh
 
@@ -92,7 +93,7 @@ class Plant:
 
             raise NotBuiltError(f"Plant: model '{model.name}' is not built; call model.build() first.")
         if not (isinstance(Ts, (int, float)) and math.isfinite(Ts) and Ts > 0):
-            raise SettingsError(f"Plant: the sample time Ts must be a finite number > 0; got {Ts!r}.")
+            raise fail("Plant", "Ts", "a finite sample time > 0", shown(Ts))
         self.model = model
         self.Ts = float(Ts)
         self.plugin = integrator or getattr(model, "integrator", "cvodes") or "cvodes"
@@ -187,9 +188,10 @@ class Plant:
     def _exact_maps(self, model: Any) -> None:
         """Exact discrete map of a linear (affine) model over one sample, split at the switches."""
         if not getattr(model, "is_linear_", False):
-            raise SettingsError(
-                f"Plant: integrator 'exact' steps a model that is linear in its states and inputs by "
-                f"its exact discrete map; model '{model.name}' is not linear. Use 'cvodes'.")
+            raise fail("Plant", "integrator",
+                       "a model linear in its states and inputs for integrator 'exact' (it steps "
+                       "the exact discrete map)", f"model '{model.name}', which is not linear",
+                       "Use 'cvodes'.")
         nx, nu, nd, nz, ny = model.nx, model.nu, model.nd, model.nz, model.ny
         zero = dict(x=np.zeros(nx), u=np.zeros(nu), d=np.zeros(nd), z=np.zeros(nz), p=self._p)
         shapes = dict(A=(nx, nx), B=(nx, nu), Bd=(nx, nd), Bz=(nx, nz), C=(ny, nx), D=(ny, nu),

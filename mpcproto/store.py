@@ -71,9 +71,9 @@ def case_id_of(case: Any) -> str:
                 return str(case[name])
         elif hasattr(case, name):
             return str(getattr(case, name))
-    raise SettingsError(
-        f"A batch case must carry a stable id (an attribute or key 'case_id' or 'id'). "
-        f"Got a {type(case).__name__} without one.")
+    raise SettingsError(owner="batch case", key="case_id",
+                        expected="a stable id (an attribute or key 'case_id' or 'id')",
+                        found=f"a {type(case).__name__} without one")
 
 
 def case_fingerprint(case: Any) -> str:
@@ -374,11 +374,12 @@ def lock_output(out_dir: str | os.PathLike, *, what: str = "mpcproto batch") -> 
         if not locked:
             fh.close()
             raise OutputInUseError(
-                f"The output folder '{out}' is in use by another batch ({_describe_holder(info)}"
+                owner="batch output", key="out_dir",
+                expected="a folder no other batch is writing to",
+                found=f"'{out}', in use by another batch ({_describe_holder(info)}"
                 + ("; that process has ended but processes it started still hold the folder after "
-                   f"{STALE_WAIT_S:g} s" if ended else "")
-                + "); expected a folder no other batch is writing to. Wait for that run to end, "
-                  "stop it, or give another --out.")
+                   f"{STALE_WAIT_S:g} s" if ended else "") + ")",
+                fix="Wait for that run to end, stop it, or give another --out.")
     try:
         old = _read_holder(fh)
         if old.get("pid") is not None:

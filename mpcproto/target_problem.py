@@ -218,22 +218,25 @@ def solve_targets(model, targets: Mapping[str, float], *,
     where = f"solve_targets(model '{getattr(model, 'name', model)}')"
     _require(model, where)
     if not isinstance(targets, Mapping) or not targets:
-        raise OperatingPointError(f"{where}: targets must be a non-empty mapping CV name -> value; "
-                                  f"got {targets!r}.")
+        raise OperatingPointError(owner=where, key="targets",
+                                  expected="a non-empty mapping CV name -> value",
+                                  found=f"{targets!r}")
     cvs = model.cv_names
     tvec = np.zeros(model.ny)
     wvec = np.zeros(model.ny)
     tdict: dict[str, float] = {}
     for k, v in targets.items():
         if k not in cvs:
-            raise OperatingPointError(f"{where}: target '{k}' is not a CV of the model{suggest(str(k), cvs)}; "
-                                      f"its CVs are: {', '.join(cvs)}.")
+            raise OperatingPointError(owner=where, key=f"targets.{k}",
+                                      expected=f"a CV of the model (one of {', '.join(cvs)})",
+                                      found=f"target '{k}', which is not a CV{suggest(str(k), cvs)}")
         try:
             fv = float(v)
         except (TypeError, ValueError):
             fv = math.nan
         if not math.isfinite(fv):
-            raise OperatingPointError(f"{where}: the target for '{k}' must be a finite number; got {v!r}.")
+            raise OperatingPointError(owner=where, key=f"targets.{k}", expected="a finite number",
+                                      found=f"{v!r}")
         i = cvs.index(k)
         tvec[i], wvec[i] = fv, 1.0
         tdict[k] = fv
@@ -244,13 +247,16 @@ def solve_targets(model, targets: Mapping[str, float], *,
     fixed = dict(fixed_mvs or {})
     for k, v in fixed.items():
         if k not in model.mv_names:
-            raise OperatingPointError(f"{where}: fixed_mvs names '{k}', which is not an MV"
-                                      f"{suggest(str(k), model.mv_names)}; MVs: {', '.join(model.mv_names)}.")
+            raise OperatingPointError(owner=where, key=f"fixed_mvs.{k}",
+                                      expected=f"an MV (one of {', '.join(model.mv_names)})",
+                                      found=f"fixed_mvs names '{k}', which is not an MV"
+                                            f"{suggest(str(k), model.mv_names)}")
         i = model.mv_names.index(k)
         fv = float(v)
         if not (ulo[i] <= fv <= uhi[i]):
-            raise OperatingPointError(f"{where}: fixed MV '{k}' = {fv:g} is outside its bounds "
-                                      f"[{ulo[i]:g}, {uhi[i]:g}].")
+            raise OperatingPointError(owner=where, key=f"fixed_mvs.{k}",
+                                      expected=f"a value within its bounds [{ulo[i]:g}, {uhi[i]:g}]",
+                                      found=f"fixed MV '{k}' = {fv:g}")
         ulo[i] = uhi[i] = u0[i] = fv
     u0 = np.clip(u0, ulo, uhi)
     x0 = model.vector("state", x_guess, what=f"{where}: x_guess")

@@ -45,7 +45,7 @@ from typing import Any
 
 import numpy as np
 
-from .exceptions import SettingsError
+from .validation import fail
 
 __all__ = ["Trajectory", "KINDS", "RUN_OK", "RUN_FAILED", "RUN_LEFT_RANGE", "valid_range_events"]
 
@@ -89,14 +89,13 @@ class Trajectory:
         for k, v in list(self.columns.items()):
             arr = np.asarray(v, float).reshape(-1)
             if arr.shape != (n,):
-                raise SettingsError(
-                    f"Trajectory: column '{k}' must have {n} values (one per time); got {arr.shape[0]}.")
+                raise fail("Trajectory", f"columns.{k}", f"{n} values (one per time)",
+                           f"{arr.shape[0]}")
             self.columns[k] = arr
         for k, v in list(self.text.items()):
             lst = [str(s) for s in v]
             if len(lst) != n:
-                raise SettingsError(
-                    f"Trajectory: text series '{k}' must have {n} entries; got {len(lst)}.")
+                raise fail("Trajectory", f"text.{k}", f"{n} entries (one per time)", f"{len(lst)}")
             self.text[k] = lst
 
     # ------------------------------------------------------------------ access
@@ -128,7 +127,8 @@ class Trajectory:
             return float(self.meta["Ts"])
         if len(self) > 1:
             return float(self.t[1] - self.t[0])
-        raise SettingsError("Trajectory: no sample time in meta['Ts'] and fewer than two samples.")
+        raise fail("Trajectory", "meta.Ts", "a sample time in meta['Ts'] or at least two samples",
+                   f"neither ({len(self)} sample(s))")
 
     def names(self, kind: str) -> list[str]:
         """Variable names that have a column of *kind* (``"y"``, ``"u"``, ...), in column order."""
@@ -145,9 +145,8 @@ class Trajectory:
             return self.columns[key]
         except KeyError:
             known = self.names(kind)
-            raise SettingsError(
-                f"Trajectory: no series '{key}'; the {kind!r} series are: "
-                f"{', '.join(known) or '(none)'}.") from None
+            raise fail("Trajectory", key, f"one of the {kind!r} series: {', '.join(known) or '(none)'}",
+                       f"no series '{key}'") from None
 
     def __getitem__(self, key: str) -> np.ndarray:
         if key == "t":
@@ -194,17 +193,19 @@ class Trajectory:
         try:
             fh = path.open(newline="")
         except OSError as exc:
-            raise SettingsError(f"Trajectory.from_csv: cannot open '{path}': {exc}.") from None
+            raise fail("Trajectory.from_csv", "path", "a readable file",
+                       f"'{path}', which cannot be opened: {exc}") from None
         with fh:
             first = fh.readline()
             if not first.startswith(_META_PREFIX):
-                raise SettingsError(
-                    f"Trajectory.from_csv: '{path}' does not start with the line "
-                    f"'{_META_PREFIX.strip()} {{...}}'; it was not written by Trajectory.to_csv.")
+                raise fail("Trajectory.from_csv", "path",
+                           f"a file starting with the line '{_META_PREFIX.strip()} {{...}}'",
+                           f"'{path}', which was not written by Trajectory.to_csv")
             meta = json.loads(first[len(_META_PREFIX):])
             rows = list(csv.reader(fh))
         if not rows or rows[0][:1] != ["t"]:
-            raise SettingsError(f"Trajectory.from_csv: '{path}' has no header row starting with 't'.")
+            raise fail("Trajectory.from_csv", "path", "a header row starting with 't'",
+                       f"'{path}' without one")
         header, body = rows[0], rows[1:]
         t = np.array([float(r[0]) for r in body])
         columns: dict[str, np.ndarray] = {}

@@ -140,11 +140,11 @@ def test_summary_matches_the_summary_json_contract():
 
 def test_bad_arguments_are_named():
     tr = traj([0, 1, 2], sp=1.0)
-    with pytest.raises(mp.SettingsError, match="no series 'y.x'; the 'y' series are: c"):
+    with pytest.raises(mp.SettingsError, match="key 'y.x': expected one of the 'y' series: c, found no series 'y.x'"):
         mp.cv_performance(tr, "x")
     with pytest.raises(mp.SettingsError, match="band_fraction"):
         mp.cv_performance(tr, "c", band_fraction=2.0)
-    with pytest.raises(mp.SettingsError, match="bands names 'cc'"):
+    with pytest.raises(mp.SettingsError, match="key 'bands.cc': expected a CV of the trajectory .*found bands names 'cc'"):
         mp.kpis(tr, bands={"cc": 1.0})
-    with pytest.raises(mp.SettingsError, match="column 'y.c' must have 2 values"):
+    with pytest.raises(mp.SettingsError, match=r"key 'columns.y.c': expected 2 values \(one per time\), found 3"):
         mp.Trajectory([0, 1], {"y.c": [1, 2, 3]})

@@ -62,7 +62,7 @@ def test_missing_and_new_cases_are_listed_not_compared():
 def test_improvements_are_counted_and_bad_tolerances_named(tmp_path):
     cmp = compare_with_baseline([_rec("a", 0.5, travel=0.2)], [_rec("a", 1.0)], rtol=0.1)
     assert cmp.ok and cmp.improved == 2
-    with pytest.raises(SettingsError, match=r"'rtol'.*Got -0.1"):
+    with pytest.raises(SettingsError, match=r"key 'rtol': expected a finite number >= 0, found -0.1"):
         compare_with_baseline([], [], rtol=-0.1)
     with pytest.raises(SettingsError, match="does not exist"):
         compare_with_baseline([], tmp_path / "none.jsonl")

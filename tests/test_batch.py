@@ -172,13 +172,13 @@ def test_bad_arguments_are_named(tmp_path, pool):
     cases = make_cases(2, steps=50)
     with pytest.raises(SettingsError, match="either 'executor' or 'workers'"):
         run_batch(cases, tmp_path, executor=pool, workers=2, run=run_tank_case)
-    with pytest.raises(SettingsError, match=r"'max_in_flight'.*Got 0"):
+    with pytest.raises(SettingsError, match=r"key 'max_in_flight': expected an int in the range \[1, inf\), found 0"):
         run_batch(cases, tmp_path, executor=pool, run=run_tank_case, max_in_flight=0)
-    with pytest.raises(SettingsError, match=r"'workers'.*Got 0"):
+    with pytest.raises(SettingsError, match=r"key 'workers': expected an int in the range \[1, inf\), found 0"):
         run_batch(cases, tmp_path, workers=0, run=run_tank_case)
     with pytest.raises(SettingsError, match="share the id 'tank-0000'"):
         run_batch([cases[0], cases[0]], tmp_path, executor=pool, run=run_tank_case, progress=False)
-    with pytest.raises(SettingsError, match="'run' callable of run_batch must be picklable"):
+    with pytest.raises(SettingsError, match="run_batch: key 'run': expected a picklable callable"):
         run_batch(cases, tmp_path, executor=pool, run=lambda case: {}, progress=False)
     with pytest.raises(SettingsError, match="stable id"):
         run_batch([object()], tmp_path, executor=pool, run=run_tank_case, progress=False)

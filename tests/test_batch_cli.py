@@ -89,8 +89,8 @@ def test_a_failed_criterion_gives_exit_1_and_bad_input_exit_2(tmp_path, capsys):
                      str(tmp_path / "nobase.jsonl")],
     }
     expected = {"no such file": "missing.toml: expected a scenario file",
-                "workers": "'--workers' option must be an int in the range [1, inf). Got 0",
-                "tolerance": "'--tolerance' option must be a finite number >= 0. Got -1",
+                "workers": "mpcproto batch: error: key '--workers': expected an int in the range [1, inf), found 0",
+                "tolerance": "mpcproto batch: error: key '--tolerance': expected a finite number >= 0, found -1",
                 "baseline": "nobase.jsonl: expected the results.jsonl of an earlier batch"}
     for what, argv in cases.items():
         assert main(argv) == 2, what

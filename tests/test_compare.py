@@ -71,7 +71,7 @@ def test_compare_refuses_a_generator_and_duplicate_names():
     ol = mp.OpenLoop(tank.mv_names)
     with pytest.raises(mp.SettingsError, match="same noise"):
         mp.compare(tank, {"a": ol}, op=op, Ts=10.0, duration=100.0, rng=np.random.default_rng(1))
-    with pytest.raises(mp.SettingsError, match="two controllers are named 'open_loop'"):
+    with pytest.raises(mp.SettingsError, match="key 'controllers': expected controllers with distinct names, found two controllers named 'open_loop'"):
         mp.compare(tank, [ol, mp.OpenLoop(tank.mv_names)], op=op, Ts=10.0, duration=100.0)
 
 

@@ -66,7 +66,7 @@ def test_dask_local_cluster_gives_the_numbers_of_the_local_pool(tmp_path):
 def test_an_unreachable_scheduler_is_a_clear_error():
     from mpcproto import SettingsError
 
-    with pytest.raises(SettingsError, match="'--scheduler' address 'tcp://127.0.0.1:9' could not "
-                                            "be reached"):
+    with pytest.raises(SettingsError, match="dask_executor: key 'address': .*found 'tcp://127.0.0.1:9', "
+                                            "which could not be reached"):
         with dask_executor("tcp://127.0.0.1:9", timeout=2):
             pass

@@ -51,5 +51,5 @@ def test_discrete_gain_is_per_channel_and_equals_the_continuous_gain():
     _, Y = dlin.simulate(np.tile([0.0, 1.0], (200, 1)))
     assert Y[-1, 1] == pytest.approx(3.5, rel=1e-9)
     assert Y[-1, 0] - Y[-2, 0] == pytest.approx(-0.5, rel=1e-12)
-    with pytest.raises(mp.SettingsError, match=r"gain\(\): role must be 'mv' or 'dv'; got 'cv'"):
+    with pytest.raises(mp.SettingsError, match=r"gain\(\): key 'role': expected 'mv' or 'dv', found 'cv'"):
         dlin.gain("cv")

@@ -173,7 +173,7 @@ def test_dead_time_rounded_to_zero_acts_directly():
 def test_rga_errors_and_values():
     # Bristol (1966): RGA = K .* inv(K)^T; a diagonal plant has the identity RGA
     np.testing.assert_allclose(mp.rga(np.diag([2.0, -3.0])), np.eye(2))
-    with pytest.raises(mp.SettingsError, match=r"must be square; got shape \(2, 3\)"):
+    with pytest.raises(mp.SettingsError, match=r"key 'K': expected a square gain matrix, found shape \(2, 3\)"):
         mp.rga(np.ones((2, 3)))
     with pytest.raises(mp.SettingsError, match="singular"):
         mp.rga(np.array([[1.0, 2.0], [2.0, 4.0]]))

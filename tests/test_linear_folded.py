@@ -22,5 +22,5 @@ def test_folded_inputs_give_the_wood_berry_gains_without_dead_times():
     Bdf, Ddf = lin.folded_inputs("dv")
     assert Bdf.shape == lin.Bd.shape
     assert np.allclose(-lin.C @ np.linalg.solve(lin.A, Bdf) + Ddf, lin.gain("dv"))
-    with pytest.raises(mp.SettingsError, match=r"folded_inputs\(\): role must be 'mv' or 'dv'; got 'cv'"):
+    with pytest.raises(mp.SettingsError, match=r"folded_inputs\(\): key 'role': expected 'mv' or 'dv', found 'cv'"):
         lin.folded_inputs("cv")

@@ -162,7 +162,7 @@ def test_fixed_mvs_are_held():
     assert "heater_duty" not in res.mvs_at_bounds
     with pytest.raises(mp.OperatingPointError, match=r"fixed_mvs names 'heater', which is not an MV"):
         mp.solve_targets(tank, {"temperature": 80.0}, fixed_mvs={"heater": 300.0})
-    with pytest.raises(mp.OperatingPointError, match=r"fixed MV 'heater_duty' = 900 is outside its bounds \[0, 600\]"):
+    with pytest.raises(mp.OperatingPointError, match=r"key 'fixed_mvs.heater_duty': expected a value within its bounds \[0, 600\], found fixed MV 'heater_duty' = 900"):
         mp.solve_targets(tank, {"temperature": 80.0}, fixed_mvs={"heater_duty": 900.0})
 
 
@@ -181,9 +181,9 @@ def test_quadruple_tank_targets_match_the_hand_solution():
 
 
 def test_bad_targets_are_named(cstr):
-    with pytest.raises(mp.OperatingPointError, match=r"target 'temprature' is not a CV.*did you mean 'temperature'"):
+    with pytest.raises(mp.OperatingPointError, match=r"key 'targets.temprature': expected a CV .*found target 'temprature', which is not a CV.*did you mean 'temperature'"):
         mp.solve_targets(cstr, {"temprature": 350.0})
-    with pytest.raises(mp.OperatingPointError, match=r"target for 'temperature' must be a finite number; got 'hot'"):
+    with pytest.raises(mp.OperatingPointError, match=r"key 'targets.temperature': expected a finite number, found 'hot'"):
         mp.solve_targets(cstr, {"temperature": "hot"})
     with pytest.raises(mp.OperatingPointError, match=r"non-empty mapping"):
         mp.solve_targets(cstr, {})

@@ -72,7 +72,7 @@ def test_plant_dead_time_is_exact_whatever_the_sample_time():
     assert mp.sim.Plant(m, 10.0).delay_split_ == [(4, 0.0)]
     n, f = mp.sim.Plant(m, 15.0).delay_split_[0]
     assert n == 2 and f == pytest.approx(2.0 / 3.0)
-    with pytest.raises(mp.SettingsError, match="integrator 'exact'.*not linear"):
+    with pytest.raises(mp.SettingsError, match="key 'integrator': expected a model linear .* for integrator 'exact'.*not linear"):
         mp.sim.Plant(mp.make_model("henson_seborg_cstr"), 1.0, integrator="exact")
 
 

@@ -49,6 +49,7 @@ import numpy as np
 
 from ..control.base import DEGRADED, FALLBACK, FATAL
 from ..exceptions import SettingsError
+from ..validation import fail, shown
 from ..model import TIME_UNITS
 from ..trajectory import Trajectory
 
@@ -124,7 +125,7 @@ def cv_performance(traj: Trajectory, cv: str, *, band: float | None = None,
     """IAE, ISE, ITAE, largest error, settling time and overshoot per setpoint change, and the
     interaction from other CVs' setpoint changes, of one CV (see the module docstring)."""
     if not 0 < band_fraction < 1:
-        raise SettingsError(f"cv_performance: band_fraction must be in (0, 1); found {band_fraction!r}.")
+        raise fail("cv_performance()", "band_fraction", "a number in (0, 1)", shown(band_fraction))
     y = traj.series("y", cv)
     sp = traj.series("sp", cv) if traj.has("sp", cv) else np.full(len(traj), np.nan)
     t = traj.t
@@ -223,8 +224,9 @@ def kpis(traj: Trajectory, *, bands: Mapping[str, float] | None = None,
     bands = dict(bands or {})
     for k in bands:
         if k not in traj.names("y"):
-            raise SettingsError(f"kpis: bands names '{k}', which is not a CV of the trajectory; "
-                                f"CVs: {', '.join(traj.names('y'))}.")
+            raise fail("kpis()", f"bands.{k}",
+                       f"a CV of the trajectory (one of {', '.join(traj.names('y'))})",
+                       f"bands names '{k}', which is not one")
     moves = _all_moves(traj)
     return {"cv": {c: cv_performance(traj, c, band=bands.get(c), band_fraction=band_fraction,
                                      moves=moves)
@@ -356,7 +358,9 @@ def controller_health(traj: Trajectory, *, slow_fraction: float = 0.5) -> dict[s
     running count at the end of the run (``meta["controller_counts"]``), where it keeps one.
     """
     if not slow_fraction > 0:
-        raise SettingsError(f"controller_health: slow_fraction must be > 0; found {slow_fraction!r}.")
+        # (SettingsError spelt out: this function's own 'fail' is the failed-step flags below)
+        raise SettingsError(owner="controller_health()", key="slow_fraction",
+                            expected="a number > 0", found=shown(slow_fraction))
     status = traj.text.get("status", ["ok"] * len(traj))
     n = len(traj)
     nan = np.full(n, np.nan)

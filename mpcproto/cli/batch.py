@@ -170,20 +170,20 @@ def _cmd_batch(args) -> int:
     import warnings
     from pathlib import Path
 
-    from ..exceptions import ScenarioError, SettingsError
+    from ..exceptions import ScenarioError
     from ..store import ID_KEY, RESULTS_FILE, is_complete, load_results, lock_output, missing_fields
+    from ..validation import fail
 
+    # owner None: the CLI prints 'mpcproto <command>: error:' before the key
     if args.workers is not None and args.workers < 1:
-        raise SettingsError(f"The '--workers' option must be an int in the range [1, inf). "
-                            f"Got {args.workers} instead.")
+        raise fail(None, "--workers", "an int in the range [1, inf)", f"{args.workers}")
     for opt in ("tolerance", "abs_tolerance"):
         v = getattr(args, opt)
         if not (math.isfinite(v) and v >= 0):
-            raise SettingsError(f"The '--{opt.replace('_', '-')}' option must be a finite number "
-                                f">= 0. Got {v} instead.")
+            raise fail(None, f"--{opt.replace('_', '-')}", "a finite number >= 0", f"{v}")
     if not (math.isfinite(args.progress_interval) and args.progress_interval > 0):
-        raise SettingsError(f"The '--progress-interval' option must be a finite number of seconds "
-                            f"> 0. Got {args.progress_interval} instead.")
+        raise fail(None, "--progress-interval", "a finite number of seconds > 0",
+                   f"{args.progress_interval}")
     if args.baseline is not None and not Path(args.baseline).is_file():
         raise ScenarioError("expected the results.jsonl of an earlier batch (--baseline); found no "
                             "such file.", file=args.baseline)

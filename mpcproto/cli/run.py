@@ -15,16 +15,17 @@ def _check_out_dir(out: str) -> None:
     """Refuse an --out that cannot become a results directory, before anything runs."""
     from pathlib import Path
 
-    from ..exceptions import SettingsError
+    from ..validation import fail
 
+    # owner None: the CLI prints 'mpcproto <command>: error:' before the key
     p = Path(out)
     if p.exists() and not p.is_dir():
-        raise SettingsError(f"--out {out}: expected a directory for the results (created if "
-                            f"missing); found a file of that name. Give another path.")
+        raise fail(None, "--out", "a directory for the results (created if missing)",
+                   f"a file named {out}", "Give another path.")
     parent = next((q for q in [p, *p.parents] if q.exists()), None)
     if parent is not None and not parent.is_dir():
-        raise SettingsError(f"--out {out}: expected a directory for the results; found that "
-                            f"'{parent}' is a file, so no directory can be made below it.")
+        raise fail(None, "--out", "a directory for the results",
+                   f"{out}, below the file '{parent}', so no directory can be made there")
 
 
 def _print_verdict(cr: dict[str, Any], label: str) -> None:
@@ -95,23 +96,22 @@ def _option_value(text: str) -> Any:
 def _cmd_new(args: argparse.Namespace) -> int:
     from pathlib import Path
 
-    from ..exceptions import SettingsError
+    from ..validation import fail
     from ..scenario import check_scenario
     from ..scenario.starter import starter_scenario
 
     out = Path(args.out)
     if out.exists() and not args.force:
-        raise SettingsError(f"--out {out}: expected a new file; found one already there. Give "
-                            f"another name or --force to overwrite it.")
+        raise fail(None, "--out", "a new file", f"{out} already there",
+                   "Give another name or --force to overwrite it.")
     if out.suffix != ".toml":
-        raise SettingsError(f"--out {out}: expected a scenario file name ending in .toml; found "
-                            f"{out.suffix or 'no suffix'}.")
+        raise fail(None, "--out", "a scenario file name ending in .toml",
+                   f"{out} ({out.suffix or 'no suffix'})")
     options = {}
     for item in args.option or []:
         k, sep, v = item.partition("=")
         if not sep or not k.strip().isidentifier():
-            raise SettingsError(f"--option {item}: expected NAME=VALUE (e.g. outflow=valve); "
-                                f"found {item!r}.")
+            raise fail(None, "--option", "NAME=VALUE (e.g. outflow=valve)", repr(item))
         options[k.strip()] = _option_value(v.strip())
     text = starter_scenario(args.model, out, options=options)
     out.parent.mkdir(parents=True, exist_ok=True)

@@ -14,7 +14,7 @@ import argparse
 import functools
 from typing import Any
 
-from ..exceptions import SettingsError
+from ..validation import fail
 
 __all__ = ["register_cli", "linearize_plot"]
 
@@ -42,13 +42,15 @@ def _cmd_export(args: argparse.Namespace) -> int:
 
     if args.check:
         if args.scenario or args.out:
-            raise SettingsError("export --check DIR: expected only the bundle directory (the check "
-                                "uses the bundle alone); found a scenario or --out as well. Export "
-                                "first, then check; an export always runs the check.")
+            # owner None: the CLI prints 'mpcproto export: error:' before the key
+            raise fail(None, "--check", "only the bundle directory (the check uses the bundle alone)",
+                       "a scenario or --out as well",
+                       "Export first, then check; an export always runs the check.")
         return _report_proof(check_bundle(args.check), args.check)
     if not args.scenario or not args.out:
-        raise SettingsError("export: expected SCENARIO.toml and --out DIR (or --check DIR); found "
-                            f"{'no scenario' if not args.scenario else 'no --out'}.")
+        raise fail(None, "scenario" if not args.scenario else "--out",
+                   "SCENARIO.toml and --out DIR (or --check DIR)",
+                   "no scenario" if not args.scenario else "no --out")
     from .writer import export_bundle
 
     res = export_bundle(args.scenario, args.out, controller=args.controller, summary=args.summary,

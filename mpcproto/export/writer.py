@@ -309,8 +309,8 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
     label = _pick_controller(scn, controller)
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
-        raise SettingsError(f"--out {out}: expected a directory for the bundle (created if missing); "
-                            f"found a file of that name.")
+        raise fail("export_bundle()", "out_dir", "a directory for the bundle (--out; created if missing)",
+                   f"a file named {out}")
     out.mkdir(parents=True, exist_ok=True)
 
     with warnings.catch_warnings(record=True) as caught:
@@ -342,13 +342,14 @@ def export_bundle(scenario: Any, out_dir: str | Path, *, controller: str | None 
             try:
                 summ = json.loads(sp.read_text())
             except (OSError, ValueError) as exc:
-                raise SettingsError(f"--summary {sp}: expected the summary.json of an 'mpcproto run' "
-                                    f"of this scenario; cannot read it ({exc}).") from None
+                raise fail("export_bundle()", "summary",
+                           "the summary.json of an 'mpcproto run' of this scenario (--summary)",
+                           f"{sp}, which cannot be read ({exc})") from None
             source = f"summary.json of an earlier run ({sp.name})"
         if not isinstance(summ, Mapping) or summ.get("scenario") != scn.name:
             found = summ.get("scenario") if isinstance(summ, Mapping) else type(summ).__name__
-            raise SettingsError(f"--summary: expected the summary of scenario '{scn.name}'; found "
-                                f"one of {found!r}.")
+            raise fail("export_bundle()", "summary",
+                       f"the summary of scenario '{scn.name}' (--summary)", f"one of {found!r}")
         _write_json(study_dir / "summary.json", _finite(summ))
 
     # the scenario file as it was

@@ -21,7 +21,7 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
-from ..exceptions import SettingsError
+from ..validation import fail, shown
 from ..analysis.criteria import REGRESSION_ATOL, REGRESSION_RTOL, regression_bounds
 from ..store import case_verdict, load_results
 from .summary import flat_numbers
@@ -125,16 +125,16 @@ def compared_numbers(controller_result: Mapping[str, Any]) -> dict[str, float]:
 
 def _check_tol(name: str, v: Any) -> float:
     if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v < 0:
-        raise SettingsError(f"The '{name}' of the baseline comparison must be a finite number >= 0. "
-                            f"Got {v!r} instead.")
+        raise fail("compare_with_baseline()", name, "a finite number >= 0", shown(v))
     return float(v)
 
 
 def _records(source: str | os.PathLike | Iterable[Mapping[str, Any]]) -> dict[str, Mapping[str, Any]]:
     if isinstance(source, (str, os.PathLike)):
         if not os.path.isfile(source):
-            raise SettingsError(f"The baseline file '{os.fspath(source)}' does not exist. Expected "
-                                "the results.jsonl of an earlier batch run.")
+            raise fail("compare_with_baseline()", "baseline",
+                       "the results.jsonl of an earlier batch run",
+                       f"'{os.fspath(source)}', which does not exist")
         recs = load_results(source)
     else:
         recs = list(source)

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..exceptions import SettingsError
+from ..validation import fail, shown
 from ..trajectory import Trajectory
 
 __all__ = ["plot_cvs", "plot_mvs", "plot_comparison", "PALETTE"]
@@ -41,10 +41,10 @@ def _check(runs: Mapping[str, Trajectory]) -> list[tuple[str, Trajectory]]:
     if isinstance(runs, Trajectory):
         runs = {str(runs.meta.get("controller", "run")): runs}
     if not isinstance(runs, Mapping) or not runs:
-        raise SettingsError("plots: give the runs as a non-empty mapping {label: Trajectory}.")
+        raise fail("plots", "runs", "a non-empty mapping {label: Trajectory}", shown(runs))
     for k, v in runs.items():
         if not isinstance(v, Trajectory):
-            raise SettingsError(f"plots: run '{k}' is a {type(v).__name__}, not a Trajectory.")
+            raise fail("plots", f"runs.{k}", "a Trajectory", f"a {type(v).__name__}")
     return list(runs.items())
 
 
@@ -83,7 +83,7 @@ def _panels(runs, kind: str, wanted, what: str, role: str, height: float):
     first = items[0][1]
     names = list(wanted) if wanted is not None else first.names(kind)
     if not names:
-        raise SettingsError(f"{what}: the trajectories have no {role} series ('{kind}.*').")
+        raise fail(f"{what}()", "runs", f"trajectories with {role} series ('{kind}.*')", "none")
     plt = _plt()
     scale, tu = _time_axis(first)
     fig, axes = plt.subplots(len(names), 1, figsize=(9, height * len(names) + 0.8), sharex=True,

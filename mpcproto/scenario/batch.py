@@ -54,7 +54,7 @@ from pathlib import Path
 from typing import Any, TextIO
 
 from .._deps import pool_processes
-from ..exceptions import SettingsError
+from ..validation import fail, shown
 from ..store import (FINGERPRINT_KEY, ID_KEY, RESULTS_FILE, append_record, case_fingerprint,
                      case_id_of, iter_results, load_results, lock_output, repair_tail, scan_done)
 from ..store import case_verdict as verdict
@@ -379,19 +379,18 @@ def run_batch(cases: Iterable[Any], out_dir: str | os.PathLike, *,
         stopped.
     """
     if executor is not None and workers is not None:
-        raise SettingsError("run_batch takes either 'executor' or 'workers', not both. "
-                            f"Got executor={executor!r} and workers={workers!r}.")
+        raise fail("run_batch", "workers", "either 'executor' or 'workers', not both",
+                   f"executor={executor!r} and workers={workers!r}")
     if max_in_flight is not None and (isinstance(max_in_flight, bool)
                                       or not isinstance(max_in_flight, int) or max_in_flight < 1):
-        raise SettingsError("The 'max_in_flight' argument of run_batch must be an int in the range "
-                            f"[1, inf). Got {max_in_flight!r} instead.")
+        raise fail("run_batch", "max_in_flight", "an int in the range [1, inf)", shown(max_in_flight))
     if (isinstance(progress_interval, bool) or not isinstance(progress_interval, (int, float))
             or not math.isfinite(progress_interval) or progress_interval <= 0):
-        raise SettingsError("The 'progress_interval' argument of run_batch must be a finite number "
-                            f"of seconds > 0. Got {progress_interval!r} instead.")
+        raise fail("run_batch", "progress_interval", "a finite number of seconds > 0",
+                   shown(progress_interval))
     if isinstance(progress, str) and progress != "lines":
-        raise SettingsError("The 'progress' argument of run_batch must be None, True, False, "
-                            f"'lines' or a callable. Got {progress!r} instead.")
+        raise fail("run_batch", "progress", "None, True, False, 'lines' or a callable",
+                   shown(progress))
     run_fn = _default_run() if run is None else run
     out = Path(out_dir)
     with lock_output(out):
@@ -425,10 +424,10 @@ def _run_locked(cases: Iterable[Any], out: Path, *, executor: Executor | None,
         try:   # fail now, not once per case in the workers
             pickle.dumps(run_fn)
         except Exception as exc:  # noqa: BLE001 - pickling raises many types
-            raise SettingsError(
-                f"The 'run' callable of run_batch must be picklable to reach the worker processes "
-                f"(a function defined at module level, not a lambda or a local function). Got "
-                f"{run_fn!r}, which does not pickle: {exc}.") from None
+            raise fail("run_batch", "run",
+                       "a picklable callable, to reach the worker processes (a function defined "
+                       "at module level, not a lambda or a local function)",
+                       f"{run_fn!r}, which does not pickle: {exc}") from None
     guard = _TermGuard()
     guard.install()   # before the pool: forked workers reset it when they start
     ex = local_pool(workers) if own else executor
@@ -518,9 +517,9 @@ def _run_locked(cases: Iterable[Any], out: Path, *, executor: Executor | None,
                             break
                         cid = case_id_of(case)
                         if cid in seen:
-                            raise SettingsError(
-                                f"Two batch cases share the id {cid!r}; case ids must be unique "
-                                "(give each scenario a distinct name).")
+                            raise fail("run_batch", "cases", "unique case ids",
+                                       f"two batch cases that share the id {cid!r}",
+                                       "give each scenario a distinct name")
                         seen.add(cid)
                         outcome.total += 1
                         fp = case_fingerprint(case)

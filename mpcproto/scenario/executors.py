@@ -42,7 +42,7 @@ from contextlib import contextmanager
 from typing import Iterator
 
 from .._deps import dask_executor_client, pool_max_workers
-from ..exceptions import SettingsError
+from ..validation import fail, shown
 
 __all__ = ["local_pool", "dask_executor", "executor_slots", "default_start_method", "default_workers",
            "limit_blas_threads", "end_with_parent",
@@ -58,9 +58,7 @@ _PRELOAD = ["numpy", "casadi", "mpcproto", "mpcproto.scenario.runner"]
 
 def _check_workers(workers: object, what: str = "workers") -> int:
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-        raise SettingsError(
-            f"The '{what}' argument of the batch runner must be an int in the range [1, inf). "
-            f"Got {workers!r} instead.")
+        raise fail("batch runner", what, "an int in the range [1, inf)", shown(workers))
     return workers
 
 
@@ -221,9 +219,8 @@ def local_pool(workers: int | None = None, *, start_method: str | None = None,
     if start_method is None:
         start_method = default_start_method()
     if start_method not in START_METHODS or start_method not in available:
-        raise SettingsError(
-            f"The 'start_method' argument of local_pool must be one of "
-            f"{[m for m in START_METHODS if m in available]}. Got {start_method!r} instead.")
+        raise fail("local_pool", "start_method",
+                   f"one of {[m for m in START_METHODS if m in available]}", shown(start_method))
     ctx = multiprocessing.get_context(start_method)
     if start_method == "forkserver":
         ctx.set_forkserver_preload(list(_PRELOAD if preload is None else preload))
@@ -271,10 +268,11 @@ def dask_executor(address: str, *, timeout: float = 30.0) -> Iterator[Executor]:
     try:
         client = distributed.Client(address, timeout=timeout, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
-        raise SettingsError(
-            f"The '--scheduler' address {address!r} could not be reached within {timeout:g} s: "
-            f"{exc}. Expected the address of a running Dask scheduler such as "
-            "'tcp://host:8786'.") from None
+        # the found value shows the Dask client's own reason (its exception text)
+        raise fail("dask_executor", "address",
+                   "the address of a running Dask scheduler such as 'tcp://host:8786' (the "
+                   "'--scheduler' option)",
+                   f"{address!r}, which could not be reached within {timeout:g} s: {exc}") from None
     try:
         yield client.get_executor(pure=False)
     finally:

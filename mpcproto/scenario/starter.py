@@ -32,7 +32,8 @@ from typing import Any
 
 from ..control.mpc_settings import default_scale, range_span
 from ..control.mpc_settings import nice_number as _nice
-from ..exceptions import OperatingPointError, SettingsError
+from ..exceptions import OperatingPointError
+from ..validation import fail
 
 __all__ = ["starter_scenario"]
 
@@ -61,7 +62,8 @@ def _toml_value(v: Any) -> str:
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
     if isinstance(v, Mapping):
         return _inline(v)
-    raise SettingsError(f"cannot write the option value {v!r} into a scenario (TOML) file.")
+    raise fail("starter_scenario()", "options",
+               "option values a scenario (TOML) file can hold", f"{v!r}, which it cannot")
 
 
 def _inline(d: Mapping[str, Any]) -> str:

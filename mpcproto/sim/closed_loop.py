@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 
 from ..control.base import Measurement, Targets, ControlOutput, accepts_readback
-from ..exceptions import MpcprotoError, SettingsError, SimulationError
+from ..exceptions import MpcprotoError, SimulationError
 from ..linear import delay_samples
 from .._specs import refuse_unknown_keys
 from ..operating import OperatingPoint
@@ -70,9 +70,8 @@ def split_rng(rng: Any, n: int) -> tuple[list[np.random.Generator], int | None]:
         ss = np.random.SeedSequence(None if rng is None else int(rng))
         seed = int(rng) if rng is not None else None
         return [np.random.default_rng(s) for s in ss.spawn(n)], seed
-    raise SettingsError(
-        f"rng must be a non-negative int seed, a numpy SeedSequence or Generator, or None; "
-        f"found {rng!r}.")
+    raise fail("ClosedLoop", "rng",
+               "a non-negative int seed, a numpy SeedSequence or Generator, or None", shown(rng))
 
 
 _OWNER = "ClosedLoop"   # the owner of every setup error (its key: the argument path)
@@ -428,7 +427,8 @@ class ClosedLoop:
     def step(self) -> bool:
         """Advance one sample; returns False when the run is over (end reached or failed)."""
         if not self._started:
-            raise SettingsError("ClosedLoop.step(): call reset() first.")
+            raise fail("ClosedLoop", "step()", "a reset() call first", "a loop not yet reset",
+                       "call reset() first")
         if self.done:
             return False
         k, m = self.k, self.model
@@ -458,14 +458,15 @@ class ClosedLoop:
                                  f"{type(exc).__name__} at t={t:g}: {exc}", rows=k)
         step_ms = (time.perf_counter() - t_start) * 1e3
         if not isinstance(out, ControlOutput):
-            raise SettingsError(
-                f"controller '{getattr(self.controller, 'name', '?')}'.step() must return a "
-                f"ControlOutput; got {type(out).__name__}.")
+            raise fail("ClosedLoop", "controller",
+                       "a controller whose step() returns a ControlOutput",
+                       f"'{getattr(self.controller, 'name', '?')}'.step() returning "
+                       f"{type(out).__name__}")
         ucmd = np.asarray(out.u, float).reshape(-1)
         if ucmd.shape != self.u_prev.shape:
-            raise SettingsError(
-                f"controller '{getattr(self.controller, 'name', '?')}' returned {ucmd.shape[0]} MV "
-                f"values; model '{m.name}' has {m.nu} ({', '.join(m.mv_names)}).")
+            raise fail("ClosedLoop", "controller",
+                       f"{m.nu} MV values per step (model '{m.name}': {', '.join(m.mv_names)})",
+                       f"'{getattr(self.controller, 'name', '?')}' returning {ucmd.shape[0]}")
         u = self._actuate(t, ucmd)
         rec = self._rec
         rec["x"][k], rec["u"][k], rec["ucmd"][k] = self.plant.x, u, ucmd
@@ -538,7 +539,8 @@ class ClosedLoop:
     def trajectory(self) -> Trajectory:
         """The Trajectory of the samples recorded so far."""
         if not self._started:
-            raise SettingsError("ClosedLoop.trajectory(): nothing recorded; call reset()/run() first.")
+            raise fail("ClosedLoop", "trajectory()", "a recorded run", "nothing recorded",
+                       "call reset()/run() first")
         m, n = self.model, self.k
         cols: dict[str, np.ndarray] = {}
         rec = self._rec

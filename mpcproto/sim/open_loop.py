@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ..control.base import ControlOutput, Measurement, Targets
-from ..exceptions import SettingsError
+from ..validation import fail
 from ..model import suggest
 from ..operating import OperatingPoint
 from .signals import signal_from_spec
@@ -34,9 +34,8 @@ class OpenLoop:
         self.moves = {}
         for k, spec in (moves or {}).items():
             if k not in self.mv_names:
-                raise SettingsError(
-                    f"OpenLoop: '{k}' is not an MV{suggest(str(k), self.mv_names)}; MVs: "
-                    f"{', '.join(self.mv_names)}.")
+                raise fail("OpenLoop", f"moves.{k}", f"an MV name (one of {', '.join(self.mv_names)})",
+                           f"'{k}', which is not an MV{suggest(str(k), self.mv_names)}")
             self.moves[k] = signal_from_spec(spec, what=f"moves.{k}", rng=rng)
         self._u0 = np.zeros(len(self.mv_names))
 
