@@ -109,6 +109,6 @@ def test_bad_forecast_is_refused_before_the_estimator_moves():
     tg = mp.Targets(setpoint=np.zeros(2), cv_low=np.full(2, -np.inf), cv_high=np.full(2, np.inf),
                     mv_low=np.zeros(2), mv_high=np.ones(2))
     meas = mp.Measurement.now([0.0, 0.0], 0.0)
-    with pytest.raises(mp.SettingsError, match=r"dv_forecast must have shape \(n, 1\)"):
+    with pytest.raises(mp.SettingsError, match=r"key 'dv_forecast': expected shape \(n, 1\)"):
         ctrl.step(0.0, meas, [0.0], tg, dv_forecast=np.zeros((4, 3)))
     ctrl.step(0.0, meas, [0.0], tg, dv_forecast=np.zeros((4, 1)))   # same sample, now accepted

@@ -110,7 +110,7 @@ def test_bad_setting_and_bad_program_are_refused():
         mp.PredictiveController.from_settings(dm, {"setpoint_preview": "yes"})
     ctrl = mp.PredictiveController(dm, horizon=5, setpoint_preview=True).build()
     ctrl.reset()
-    with pytest.raises(SettingsError, match=r"setpoint_program must have shape \(n, 1\)"):
+    with pytest.raises(SettingsError, match=r"key 'setpoint_program': expected shape \(n, 1\)"):
         ctrl.step(0.0, mp.Measurement.now([0.0], 0.0), np.zeros(0), free_targets(1, 1),
                   setpoint_program=np.zeros((3, 2)))
     assert ctrl.counts["steps"] == 0          # refused before anything changed

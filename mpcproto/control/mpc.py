@@ -225,8 +225,9 @@ class PredictiveController(ControllerQP, ControllerRuntime):
         key.  The result is validated but not built: call :meth:`build`.
         """
         if not isinstance(settings, Mapping):
-            raise SettingsError(f"PredictiveController.from_settings(): settings must be a mapping; "
-                                f"got {type(settings).__name__}.")
+            raise SettingsError(owner="PredictiveController.from_settings()", key="settings",
+                                expected="a mapping of setting names to values",
+                                found=type(settings).__name__)
         for k in settings:
             if k not in SETTINGS_KEYS:
                 known = sorted(SETTINGS_KEYS)

@@ -36,14 +36,16 @@ def rows_by_sample(value, ncols: int, key: str, columns: str) -> np.ndarray:
     try:
         a = np.asarray(value, float)
     except (TypeError, ValueError):
-        raise SettingsError(f"PredictiveController: {key} must be an array of numbers of shape "
-                            f"(n, {ncols}); got {type(value).__name__}.") from None
+        raise SettingsError(owner="PredictiveController", key=key,
+                            expected=f"an array of numbers of shape (n, {ncols})",
+                            found=type(value).__name__) from None
     if a.ndim == 1:
         a = a[None, :]
     if a.ndim != 2 or a.shape[1] != ncols or a.shape[0] < 1:
-        raise SettingsError(f"PredictiveController: {key} must have shape (n, {ncols}) (rows: "
-                            f"samples from now, columns: {columns} in model order); got "
-                            f"{np.shape(value)}.")
+        raise SettingsError(owner="PredictiveController", key=key,
+                            expected=f"shape (n, {ncols}) (rows: samples from now, columns: "
+                                     f"{columns} in model order)",
+                            found=f"shape {np.shape(value)}")
     return a
 
 
