@@ -443,6 +443,15 @@ def print_budget(title, prof):
 
 def main(argv=()):
     argv = list(argv)
+    known = {"--quick", "--budget", "--only", "tank", "unit8x12"}
+    if "-h" in argv or "--help" in argv or any(a not in known for a in argv):
+        bad = [a for a in argv if a not in known | {"-h", "--help"}]
+        if bad:
+            print(f"bench_mpc.py: unknown argument {bad[0]!r}; expected --quick, --budget, "
+                  f"--only tank|unit8x12 (see --help)", file=sys.stderr)
+            sys.exit(2)
+        print(__doc__)
+        sys.exit(0)
     quick = "--quick" in argv
     if "--budget" in argv:                # the per-phase budget tables only (no files written)
         units = [u for u in (Tank(), Unit()) if "--only" not in argv or u.name in argv]
