@@ -48,6 +48,7 @@ refused and the controller's fallback rules apply.
 
 from __future__ import annotations
 
+import math
 import time
 from typing import Any
 
@@ -204,10 +205,16 @@ class CondensedQP:
         assert zs["band_hi"].start == zs["band_lo"].stop and zs["lim_lo"].start == \
             zs["band_hi"].stop and zs["lim_hi"].start == zs["lim_lo"].stop and \
             zs["u_hi"].start == zs["u_lo"].stop
-        self._q_idx = np.concatenate([np.arange(zs["band_lo"].start, zs["lim_hi"].stop),
-                                      np.arange(zs["rate"].start, zs["rate"].stop)])
-        self._sq = np.concatenate([np.tile(sy, 4), su])           # their scales
-        self._n4 = 4 * ny
+        # the entries read for a sample's signature, scaled: band_lo, band_hi, lim_lo, lim_hi, the
+        # rates, then pairs (a <= b) giving band_lo == band_hi, the bands == the limits (both ways)
+        # and lim_lo <= lim_hi
+        blk = [np.arange(zs[k].start, zs[k].stop) for k in ("band_lo", "band_hi", "lim_lo",
+                                                             "lim_hi")]
+        pa, pb = (0, 1, 0, 2, 1, 3, 2), (1, 0, 2, 0, 3, 1, 3)
+        self._q_idx = np.concatenate(blk + [np.arange(zs["rate"].start, zs["rate"].stop)]
+                                     + [blk[i] for i in pa] + [blk[i] for i in pb])
+        self._sq = np.concatenate([np.tile(sy, 4), su, np.tile(sy, 14)])   # their scales
+        self._n4, self._nq = 4 * ny, 4 * ny + nu
         self._usl = slice(zs["u_lo"].start, zs["u_hi"].stop)          # u_lo, u_hi
         self._zv = (None, None)
         self._zlen = max(s_.stop for s_ in zs.values())
@@ -253,7 +260,7 @@ class CondensedQP:
         rated = np.isfinite(rs)
         if self._preview and merged.any():
             return {}                      # resolved per sample by _moving_entry
-        return _Entry(self, eq, zone & ~merged, lim, rated, merged)
+        return _Entry(self, eq, zone & ~merged, lim, rated, merged, b4)
 
     def _moving_entry(self, split, bs, rs, z):
         """With preview, a zone sharing its limit's rows keeps its own rows while its band moves."""
@@ -268,7 +275,7 @@ class CondensedQP:
             lim = self._lim_weighted & (fin[2] | fin[3])
             merged = zone & lim & (b4[0] == b4[2]) & (b4[1] == b4[3]) & ~moving
             ent = split[moving.tobytes()] = _Entry(self, eq, zone & ~merged, lim,
-                                                   np.isfinite(rs), merged)
+                                                   np.isfinite(rs), merged, b4)
         return ent
 
     # ------------------------------------------------------------------ solve
@@ -286,34 +293,34 @@ class CondensedQP:
         if z is not self._zv[0]:            # views of the blocks read (the same z each sample)
             n = self.n_variables_
             self._zv = (z, z[self._usl].reshape(2, n))
-        # band_lo, band_hi, lim_lo, lim_hi and the rates, scaled in one division
+        # band_lo, band_hi, lim_lo, lim_hi, the rates and the signature's pairs, scaled
         q = z.take(self._q_idx) / self._sq
+        nq = self._nq
+        p = nq + 7 * self.ny
+        sig = np.isfinite(q[:nq]).tobytes() + (q[nq:p] <= q[p:]).tobytes()
         bs = q[:self._n4]
-        b4 = bs.reshape(4, self.ny)
-        sig = (np.isfinite(q).tobytes() + (b4[0] == b4[1]).tobytes()
-               + (b4[:2] == b4[2:]).tobytes())
         ent = self._sigs.get(sig)
         if ent is None:
             if len(self._sigs) > 256:
                 self._sigs.clear()
-            ent = self._sigs[sig] = self._entry(bs, q[self._n4:], z)
+            ent = self._sigs[sig] = self._entry(bs, q[self._n4:nq], z)
         if ent.__class__ is dict:
-            ent = self._moving_entry(ent, bs, q[self._n4:], z)
+            ent = self._moving_entry(ent, bs, q[self._n4:nq], z)
         st = ent.st
-        f = np.dot(st.F, z.take(st.f_cols))
+        if st.W is not None:                # one soft group: gradient and free response at once
+            r = np.dot(st.W, z.take(st.w_cols))
+            f, yf = r[:self.n_variables_], r[self.n_variables_:]
+        else:
+            f = np.dot(st.F, z.take(st.f_cols))
+            if st.n_groups:                 # free response of the soft rows (groups, 1, N)
+                yf = np.matmul(z.take(st.g_cols), st.S)
         np.divide(self._zv[1], self._su_t, st.b_u)
         if st.n_groups:
-            # free response of the soft rows: (groups, 1, N), or (N,) for one group
-            yf = np.matmul(z.take(st.g_cols), st.S) if st.n_groups > 1 else \
-                np.dot(z.take(st.g_cols), st.S)
             np.subtract(bs.take(st.v_idx), yf, st.b_soft)
             if st.moved_idx is not None:                      # preview: zone bands move
                 st.b_soft[:, :st.n_zone_groups] += z.take(st.moved_idx) / st.moved_scale
             if st.n_lim:
-                t = bs.tolist()
-                if any([t[i] > t[j] for i, j in st.lim_pairs]):
-                    self._crossed(st, ent, b4, yf)
-                else:
+                if not (ent.check_cross and self._crossed(st, ent, bs, yf)):
                     st.lim_off = 0.0
                     if st.wkey != ent.wkey:
                         st.set_limit_weights(ent.wkey, ent.rho_rows, ent.wlin_rows)
@@ -324,10 +331,13 @@ class CondensedQP:
         b.clip(-_INF, _INF, out=b)
         return st.H, f, st.A, st.bu, st.bl, st.sense, st.weights, st, st.key
 
-    def _crossed(self, st, ent, b4, yf):
+    def _crossed(self, st, ent, bs, yf) -> bool:
         """Run-time limits crossed (lo > hi) on a limited CV: one slack covers both sides (the
         slack form's), so the row becomes the mid-point with the linear weight raised by
-        ``h (lo - hi)`` -- the same cost up to a constant."""
+        ``h (lo - hi)`` -- the same cost up to a constant.  False (nothing done) when none is."""
+        b4 = bs.reshape(4, self.ny)
+        if not (b4[2][st.lim_cv] > b4[3][st.lim_cv]).any():
+            return False
         c, N = st.lim_cv, self.N
         lo, hi = b4[2][c], b4[3][c]
         cross = lo > hi
@@ -341,6 +351,7 @@ class CondensedQP:
         wkey = (wl.tobytes(), ent.wkey[1])
         if st.wkey != wkey:
             st.set_limit_weights(wkey, ent.rho_rows, np.repeat(wl, N))
+        return True
 
     def solve(self, z: np.ndarray) -> QPResult:
         """Solve for the input vector *z*; warm-started from the last active set of the same
@@ -368,26 +379,25 @@ class CondensedQP:
         ms = (time.perf_counter() - t0) * 1e3
         flag = int(flag)
         status = DAQP_EXIT.get(flag) or f"exit_flag_{flag}"
-        ok = flag == 1 or flag == 2
-        if ok:
-            U = np.asarray(x, float)
-            v = float(U @ U)           # finite unless an entry is not (or it overflows: then look)
-            ok = v - v == 0.0 or bool(np.isfinite(U).all())
+        # finite: x'x is (unless an entry is not finite, or it overflows: then look at each)
+        ok = (flag == 1 or flag == 2) and (math.isfinite(np.dot(x, x))
+                                           or bool(np.isfinite(x).all()))
         lam = info.get("lam")
-        self.last_info_ = {"exit_flag": flag, "active_set": None if lam is None
-                           else int(np.count_nonzero(lam)), "solver": "daqp",
+        nact = None if lam is None else int(np.count_nonzero(lam))
+        self.last_info_ = {"exit_flag": flag, "active_set": nact, "solver": "daqp",
                            "rows": st.n_rows, "variables": self.n_variables_}
         vals: dict[str, np.ndarray] = {}
         if ok:
-            vals["u"] = U.reshape(self.nu, self.M, order="F")
+            U = x
+            vals["u"] = U.reshape(self.M, self.nu).T          # (nu, M), a view of x
             slack = np.zeros((self.ny, self.N))
-            if st.n_lim:
+            off = st.lim_off
+            if st.n_lim and (nact != 0 or off.__class__ is not float):
                 # only a row in the final active set can be violated (others hold to primal_tol)
                 o, nl = st.lim_o, st.n_lim
                 act = lam[o:o + nl].nonzero()[0] if lam is not None else np.arange(nl)
-                off = st.lim_off
                 if act.size:
-                    gu = A[st.n_zone + act] @ U
+                    gu = np.dot(A[st.n_zone + act], U)
                     s = np.maximum(np.maximum(bl[o + act] - gu, gu - bu[o + act]), 0.0)
                     if off.__class__ is not float:
                         s += off[act]
@@ -468,7 +478,7 @@ class _Structure:
                  "weights_changed", "wkey", "b", "bl", "bu", "b_u", "b_soft", "b_rate",
                  "n_rows", "n_zone", "n_lim", "n_rate", "n_groups", "n_zone_groups", "lim_o",
                  "lim_cv", "lim_pairs", "lim_flat", "lim_off", "f_cols", "F", "g_cols", "S",
-                 "v_idx", "moved_idx", "moved_scale", "rate_cols", "R")
+                 "v_idx", "moved_idx", "moved_scale", "rate_cols", "R", "W", "w_cols")
 
     def __init__(self, cq: "CondensedQP", eq, zone, lim, rated, key: bytes):
         import daqp
@@ -559,6 +569,15 @@ class _Structure:
             R[0, rows, i], R[1, rows, i] = -1.0 / cq._su[j], 1.0 / cq._su[j]
             R[:, i * M, k + i] = 1.0 / cq._su[j]
         self.R = R
+        # one soft group: the gradient and its free response from one product
+        self.W = self.w_cols = None
+        if ng == 1:
+            u = np.union1d(self.f_cols, cols[0, 0])
+            W = np.zeros((n + N, len(u)))
+            W[:n, np.searchsorted(u, self.f_cols)] = self.F
+            W[n:, np.searchsorted(u, cols[0, 0])] = S[0].T
+            self.W, self.w_cols = W, u
+            self.S, self.g_cols = S[0], cols[0, 0]
         for view in (self.b_u, self.b_soft if ng else self.b, self.b_rate):
             assert view.size == 0 or np.shares_memory(view, self.b)     # views, not copies
 
@@ -574,11 +593,13 @@ class _Entry:
     """A sample's exact structure with the soft weights of its limit rows (a zone whose ends
     are its CV's limits adds its weight to the limit row's quadratic weight)."""
 
-    __slots__ = ("st", "wl", "wkey", "rho_rows", "wlin_rows")
+    __slots__ = ("st", "wl", "wkey", "rho_rows", "wlin_rows", "check_cross")
 
-    def __init__(self, cq: "CondensedQP", eq, zone, lim, rated, merged):
+    def __init__(self, cq: "CondensedQP", eq, zone, lim, rated, merged, b4):
         self.st = cq._structure(eq, zone, lim, rated)
         c = self.st.lim_cv
+        # lim_lo <= lim_hi on every limited CV (a bit of the signature): no crossing to look for
+        self.check_cross = not bool(np.all(b4[2][c] <= b4[3][c]))
         w = cq._w
         self.wl = w["limit_linear"][c].copy()
         hq_c = w["limit_quadratic"][c] + np.where(merged[c], w["cv_weight"][c], 0.0)
