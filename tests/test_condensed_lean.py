@@ -228,6 +228,15 @@ def test_lean_data_equals_plain_construction_on_the_tank(tank):
     z3[zs["band_lo"].start] = z3[zs["band_hi"].start] = np.nan   # no zone: the limits alone
     res = check_sample(ctrl, z3, soft_rows_expected=2 * N)
     assert res.values["slack"][0].min() >= 0.5 * 0.05 / ctrl._sy[0] - 1e-9
+    # soft rows on the level alone: its moving zone and its limit (one free response for
+    # both), then with the limits crossed
+    z4 = z2.copy()
+    z4[zs["lim_lo"].start + 1], z4[zs["lim_hi"].start + 1] = -np.inf, np.inf
+    z4[zs["band_lo"].start + 2] = z4[zs["band_hi"].start + 2]
+    check_sample(ctrl, z4, soft_rows_expected=2 * N)
+    z5 = z4.copy()
+    z5[zs["lim_hi"].start] = z5[zs["lim_lo"].start] - 0.05
+    check_sample(ctrl, z5, soft_rows_expected=2 * N)
     # the same samples again (warm-started workspaces, cached structures): the same QP data
-    for zz, rows in ((z, 2 * N), (z2, 4 * N), (z3, 2 * N), (z, 2 * N)):
+    for zz, rows in ((z, 2 * N), (z2, 4 * N), (z3, 2 * N), (z5, 2 * N), (z4, 2 * N), (z, 2 * N)):
         check_sample(ctrl, zz, soft_rows_expected=rows)

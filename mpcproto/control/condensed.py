@@ -314,6 +314,8 @@ class CondensedQP:
             f = np.dot(st.F, z.take(st.f_cols))
             if st.n_groups:                 # free response of the soft rows (groups, 1, N)
                 yf = np.matmul(z.take(st.g_cols), st.S)
+                if st.g_map is not None:
+                    yf = yf[st.g_map]
         np.divide(self._zv[1], self._su_t, st.b_u)
         if st.n_groups:
             np.subtract(bs.take(st.v_idx), yf, st.b_soft)
@@ -346,8 +348,9 @@ class CondensedQP:
         st.lim_off = np.repeat(np.where(cross, 0.5 * (lo - hi), 0.0), N)
         lo, hi = np.where(cross, mid, lo), np.where(cross, mid, hi)
         g = st.n_zone_groups
-        st.b_soft[0, g:] = lo[:, None, None] - yf[g:]
-        st.b_soft[1, g:] = hi[:, None, None] - yf[g:]
+        yl = yf if yf.ndim == 1 else yf[g:]     # (N,): the soft rows of one CV
+        st.b_soft[0, g:] = lo[:, None, None] - yl
+        st.b_soft[1, g:] = hi[:, None, None] - yl
         wkey = (wl.tobytes(), ent.wkey[1])
         if st.wkey != wkey:
             st.set_limit_weights(wkey, ent.rho_rows, np.repeat(wl, N))
@@ -478,7 +481,8 @@ class _Structure:
                  "weights_changed", "wkey", "b", "bl", "bu", "b_u", "b_soft", "b_rate",
                  "n_rows", "n_zone", "n_lim", "n_rate", "n_groups", "n_zone_groups", "lim_o",
                  "lim_cv", "lim_pairs", "lim_flat", "lim_off", "f_cols", "F", "g_cols", "S",
-                 "v_idx", "moved_idx", "moved_scale", "rate_cols", "R", "W", "w_cols")
+                 "v_idx", "moved_idx", "moved_scale", "rate_cols", "R", "W", "w_cols",
+                 "g_map")
 
     def __init__(self, cq: "CondensedQP", eq, zone, lim, rated, key: bytes):
         import daqp
@@ -541,12 +545,18 @@ class _Structure:
         self.lim_pairs = [(2 * ny + int(c), 3 * ny + int(c)) for c in lim_cv]
         self.lim_flat = (lim_cv[:, None] * N + np.arange(N)[None, :]).ravel()
         self.moved_idx = self.moved_scale = None
+        self.g_map = None
         if ng:
-            blocks = [cq.free_[np.arange(N) * ny + c] for c, _ in groups]
+            # the free response once per CV (a CV with a zone of its own and a limit has both)
+            gcv = [int(c) for c, _ in groups]
+            ucv = list(dict.fromkeys(gcv))
+            if len(ucv) < ng:
+                self.g_map = np.array([ucv.index(c) for c in gcv])
+            blocks = [cq.free_[np.arange(N) * ny + c] for c in ucv]
             used = [np.flatnonzero(np.any(bk != 0, axis=0)) for bk in blocks]
             kmax = max(1, max(len(u) for u in used))
-            S = np.zeros((ng, kmax, N))
-            cols = np.zeros((ng, 1, kmax), dtype=np.intp)
+            S = np.zeros((len(ucv), kmax, N))
+            cols = np.zeros((len(ucv), 1, kmax), dtype=np.intp)
             for g, (bk, u) in enumerate(zip(blocks, used)):
                 S[g, :len(u)] = bk[:, u].T
                 cols[g, 0, :len(u)] = u
@@ -569,9 +579,9 @@ class _Structure:
             R[0, rows, i], R[1, rows, i] = -1.0 / cq._su[j], 1.0 / cq._su[j]
             R[:, i * M, k + i] = 1.0 / cq._su[j]
         self.R = R
-        # one soft group: the gradient and its free response from one product
+        # soft rows of one CV: the gradient and its free response from one product
         self.W = self.w_cols = None
-        if ng == 1:
+        if ng and S.shape[0] == 1:
             u = np.union1d(self.f_cols, cols[0, 0])
             W = np.zeros((n + N, len(u)))
             W[:n, np.searchsorted(u, self.f_cols)] = self.F
