@@ -210,7 +210,7 @@ class ControllerQP:
         spd = sp_ - op_y
         has_sp = np.isfinite(spd)
         consistent = clo <= chi
-        if consistent.all():
+        if False not in consistent.tolist():        # (cheaper than .all() on a few entries)
             zone_lo, zone_hi = clo, chi
         else:
             zone_lo = np.where(consistent, clo, -np.inf)
