@@ -205,11 +205,15 @@ def test_shipped_scenarios_condensed_equals_statement(path, label):
     cq = ctl.condensed_
     for z, res in seen[::3]:
         assert res.accepted, res.status
-        u_ref, _s, obj_ref = reference_plan(ctl, z)
+        u_ref, _s, _obj = reference_plan(ctl, z)
         d = np.abs(res.values["u"] - u_ref)
         worst_first = max(worst_first, float(d[:, 0].max()))
         worst_plan = max(worst_plan, float(d.max()))
-        # never worse than the reference (where they differ, DAQP's objective is the lower one)
+        # never worse than the reference (where they differ, DAQP's objective is the lower one):
+        # both plans costed by the same objective function -- the interior-point solve's own
+        # reported value carries its feasibility tolerance (on caustic_blending's last sample it
+        # reads 1e-9 below the cost of its own plan, which is above DAQP's)
+        obj_ref = cq.objective(z, u_ref)
         assert cq.objective(z, res.values["u"]) <= obj_ref + 1e-10 * max(1.0, abs(obj_ref))
     # the applied move to 1e-8 of the MV scale; later moves of the plan lie along directions in
     # which the objective is nearly flat (it agrees to ~16 digits where they differ by 2e-8 on

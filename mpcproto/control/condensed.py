@@ -48,6 +48,7 @@ refused and the controller's fallback rules apply.
 
 from __future__ import annotations
 
+import math
 import time
 from typing import Any
 
@@ -200,70 +201,82 @@ class CondensedQP:
             self._PxN = PxN
             self._GxN = GxN
         self._H0 = 0.5 * (H0 + H0.T)
-        self._bands_idx = np.array([np.arange(zs[k].start, zs[k].stop) for k in
-                                    ("band_lo", "band_hi", "lim_lo", "lim_hi")])   # (4, ny)
+        # contiguous blocks of z read per sample (input_layout's order)
+        assert zs["band_hi"].start == zs["band_lo"].stop and zs["lim_lo"].start == \
+            zs["band_hi"].stop and zs["lim_hi"].start == zs["lim_lo"].stop and \
+            zs["u_hi"].start == zs["u_lo"].stop
+        # the entries read for a sample's signature, scaled: band_lo, band_hi, lim_lo, lim_hi, the
+        # rates, then pairs (a <= b) giving band_lo == band_hi, the bands == the limits (both ways)
+        # and lim_lo <= lim_hi
+        blk = [np.arange(zs[k].start, zs[k].stop) for k in ("band_lo", "band_hi", "lim_lo",
+                                                             "lim_hi")]
+        pa, pb = (0, 1, 0, 2, 1, 3, 2), (1, 0, 2, 0, 3, 1, 3)
+        self._q_idx = np.concatenate(blk + [np.arange(zs["rate"].start, zs["rate"].stop)]
+                                     + [blk[i] for i in pa] + [blk[i] for i in pb])
+        self._sq = np.concatenate([np.tile(sy, 4), su, np.tile(sy, 14)])   # their scales
+        self._n4, self._nq = 4 * ny, 4 * ny + nu
+        self._usl = slice(zs["u_lo"].start, zs["u_hi"].stop)          # u_lo, u_hi
+        self._zv = (None, None)
+        self._zlen = max(s_.stop for s_ in zs.values())
         self._q_active = self._w["cv_weight"] > 0
         self._lim_weighted = (self._w["limit_linear"] > 0) | (self._w["limit_quadratic"] > 0)
-        self._structs: dict[bytes, dict[str, Any]] = {}
+        self._structs: dict[bytes, _Structure] = {}
+        self._sigs: dict[bytes, Any] = {}        # sample signature -> _Entry (or dict of them)
         self.is_built = True
         return self
 
     def restart(self) -> None:
         """Forget the workspaces and active sets of a previous run (a rerun repeats it exactly)."""
         self._structs.clear()
+        self._sigs.clear()
 
     # ------------------------------------------------------------------ per structure
     def _structure(self, eq, zone, lim, rated):
+        """The workspace of the row structure (eq, zone, lim, rated): Hessian, rows, DAQP model
+        and the per-sample maps of the gradient and the bounds (built once)."""
         key = np.concatenate([eq, zone, lim, rated]).tobytes()
         st = self._structs.get(key)
         if st is not None:
-            return st, key
-        import daqp
-
-        N, ny, nu, M = self.N, self.ny, self.nu, self.M
-
-        def rows_of(mask):         # rows k*ny + i of the CVs in mask, CV after CV
-            return (np.arange(N)[:, None] * ny + np.flatnonzero(mask)[None, :]).ravel(order="F")
-
-        r_eq, r_zone, r_lim = rows_of(eq), rows_of(zone), rows_of(lim)
-        G = self.G_
-        q = self._w["cv_weight"]
-        Geq = G[r_eq]
-        qeq = np.repeat(q[eq], N)
-        H = self._H0 + 2.0 * Geq.T @ (qeq[:, None] * Geq)
-        H = 0.5 * (H + H.T)
-        r_rate = (np.arange(M)[:, None] * nu + np.flatnonzero(rated)[None, :]).ravel(order="F")
-        Arows = np.vstack([G[r_zone], G[r_lim], self._Dm[r_rate]])
-        n, mA = self.n_variables_, Arows.shape[0]
-        m = n + mA
-        sense = np.zeros(m, dtype=np.int32)
-        sense[n:n + len(r_zone) + len(r_lim)] = _SOFT
-        # soft weights of the zone rows (quadratic only); limit rows' weights are set per sample
-        rho = np.full(m, _RHO_LINEAR)
-        wlin = np.zeros(m)
-        zq = np.repeat(q[zone], N)
-        rho[n:n + len(r_zone)] = 1.0 / (2.0 * zq)
-        # gradient: f = fz @ z[:k_end] + fb @ (setpoints of the eq CVs) (+ u_prev, pref, terminal)
-        fG = -2.0 * Geq.T * qeq[None, :]
-        fz = -fG @ self.free_[r_eq]
-        if self._Pt is not None:
-            fz = fz + self._Kt @ self._PxN
-        fb = fG.reshape(n, int(eq.sum()), N).sum(axis=2)
-        fref = fG / self._sy_t[r_eq][None, :] if self._preview else None   # times ref[r_eq]
-        used = np.concatenate([r_zone, r_lim])
-        bb = np.empty(2 * m)
-        st = {"H": H, "A": Arows, "sense": sense, "rho": rho, "wlin": wlin, "r_eq": r_eq,
-              "r_zone": r_zone, "r_lim": r_lim, "r_rate": r_rate, "free": self.free_[used],
-              "fz": fz, "fb": fb, "fref": fref, "sy_zone": self._sy_t[r_zone],
-              "n_eq": len(r_eq), "n_zone": len(r_zone),
-              "n_lim": len(r_lim), "model": daqp.Model(), "ready": False, "wkey": None,
-              "b": bb, "bl": bb[:m], "bu": bb[m:], "lim_cv": np.flatnonzero(lim),
-              "zone_cv": np.flatnonzero(zone), "eq_cv": np.flatnonzero(eq),
-              "rate_mv": r_rate % nu, "rate_first": r_rate < nu}
+            return st
         if len(self._structs) > 32:
             self._structs.clear()
+            self._sigs.clear()            # its entries point to the workspaces just dropped
+        st = _Structure(self, eq, zone, lim, rated, key)
         self._structs[key] = st
-        return st, key
+        return st
+
+    def _entry(self, bs, rs, z):
+        """The exact row structure of a sample (the rules in the module docstring) with the
+        limit rows' soft weights; *bs*: the scaled band and limit blocks (4 ny), *rs*: the
+        scaled rate limits.  Returns an :class:`_Entry` or, with setpoint preview and a zone
+        that may share its limit's rows, a dict of entries by which CVs' bands move."""
+        b4 = bs.reshape(4, self.ny)
+        fin = np.isfinite(b4)
+        eq = self._q_active & fin[0] & fin[1] & (b4[0] == b4[1])
+        zone = self._q_active & ~eq & (fin[0] | fin[1])
+        lim = self._lim_weighted & (fin[2] | fin[3])
+        # a zone whose ends are the CV's limits shares the limit's row: q v^2 + l v + h v^2
+        merged = zone & lim & (b4[0] == b4[2]) & (b4[1] == b4[3])
+        rated = np.isfinite(rs)
+        if self._preview and merged.any():
+            return {}                      # resolved per sample by _moving_entry
+        return _Entry(self, eq, zone & ~merged, lim, rated, merged, b4)
+
+    def _moving_entry(self, split, bs, rs, z):
+        """With preview, a zone sharing its limit's rows keeps its own rows while its band moves."""
+        ref = z[self._zs["ref"]]
+        moving = np.any(ref.reshape(self.N, self.ny) != 0, axis=0)
+        ent = split.get(moving.tobytes())
+        if ent is None:
+            b4 = bs.reshape(4, self.ny)
+            fin = np.isfinite(b4)
+            eq = self._q_active & fin[0] & fin[1] & (b4[0] == b4[1])
+            zone = self._q_active & ~eq & (fin[0] | fin[1])
+            lim = self._lim_weighted & (fin[2] | fin[3])
+            merged = zone & lim & (b4[0] == b4[2]) & (b4[1] == b4[3]) & ~moving
+            ent = split[moving.tobytes()] = _Entry(self, eq, zone & ~merged, lim,
+                                                   np.isfinite(rs), merged, b4)
+        return ent
 
     # ------------------------------------------------------------------ solve
     def data(self, z: np.ndarray):
@@ -271,98 +284,85 @@ class CondensedQP:
 
         ``weights`` = (rho_l, rho_u, w_l, w_u) of the soft rows (DAQP's convention).  Shared by
         :meth:`solve` and the benchmark's floor, which solves the same data with DAQP's own API.
+        Per sample: the structure looked up by a signature of the band, limit and rate blocks
+        (their finiteness and which ends coincide), then one matrix-vector product for the
+        gradient (on the input entries it reads), one batched product for the free response of
+        the soft rows (per CV, on the state entries that CV sees), one small product for the rate
+        rows and a few array operations for the bounds.
         """
-        zs = self._zs
-        su, sy = self._su, self._sy
-        N, M, n = self.N, self.M, self.n_variables_
-        ny = self.ny
-        # the four CV blocks (band_lo, band_hi, lim_lo, lim_hi) scaled in one division
-        bands = z.take(self._bands_idx) / sy
-        band_lo, band_hi, lim_lo, lim_hi = bands
-        rate = z[zs["rate"]] / su
-        q = self._w["cv_weight"]
-        lq, hq = self._w["limit_linear"], self._w["limit_quadratic"]
-        fin = np.isfinite(bands)
-        fin_lo, fin_hi = fin[0], fin[1]
-        eq = self._q_active & fin_lo & fin_hi & (band_lo == band_hi)
-        zone = self._q_active & ~eq & (fin_lo | fin_hi)
-        lim = self._lim_weighted & (fin[2] | fin[3])
-        # a zone whose ends are the CV's limits shares the limit's row: q v^2 + l v + h v^2
-        merged = zone & lim & (band_lo == lim_lo) & (band_hi == lim_hi)
-        if self._preview:
-            ref = z[zs["ref"]]
-            merged &= ~np.any(ref.reshape(N, ny) != 0, axis=0)   # a moving band: its own rows
-        zone = zone & ~merged
-        rated = np.isfinite(rate)
-        st, key = self._structure(eq, zone, lim, rated)
-        zf = z[:self._k_end]
-        yf = st["free"] @ zf                      # free response of the soft rows
-        nz_, nl = st["n_zone"], st["n_lim"]
-        u_prev = z[zs["u_prev"]]
-        f = self._fprev @ u_prev - self._fpref @ z[zs["pref"]] + st["fz"] @ zf
-        if st["n_eq"]:
-            f += st["fb"] @ band_lo[st["eq_cv"]]
-            if self._preview:
-                f += st["fref"] @ ref[st["r_eq"]]
-        if self._Pt is not None:
-            f -= self._Kt @ (z[zs["x_term"]] / self._sx)
-        bu, bl = st["bu"], st["bl"]
-        bl[:n] = z[zs["u_lo"]] / self._su_t
-        bu[:n] = z[zs["u_hi"]] / self._su_t
-        o = n
-        if nz_:
-            c = st["zone_cv"]
-            bl[o:o + nz_] = np.repeat(band_lo[c], N) - yf[:nz_]
-            bu[o:o + nz_] = np.repeat(band_hi[c], N) - yf[:nz_]
-            if self._preview:
-                moved = ref[st["r_zone"]] / st["sy_zone"]
-                bl[o:o + nz_] += moved
-                bu[o:o + nz_] += moved
-            o += nz_
-        if nl:
-            c = st["lim_cv"]
-            lo, hi = lim_lo[c], lim_hi[c]
-            wl = lq[c].copy()
-            cross = lo > hi
-            st["lim_off"] = 0.0
-            if cross.any():          # one slack covers both sides: the mid-point, raised weight
-                mid = 0.5 * (lo + hi)
-                wl = np.where(cross, wl + hq[c] * (lo - hi), wl)
-                st["lim_off"] = np.repeat(np.where(cross, 0.5 * (lo - hi), 0.0), N)
-                lo, hi = np.where(cross, mid, lo), np.where(cross, mid, hi)
-            ylim = yf[nz_:]
-            bl[o:o + nl] = np.repeat(lo, N) - ylim
-            bu[o:o + nl] = np.repeat(hi, N) - ylim
-            rho_l = st["rho"]
-            hq_c = hq[c] + np.where(merged[c], q[c], 0.0)
-            wkey = (wl.tobytes(), hq_c.tobytes())
-            if st["wkey"] != wkey:
-                st["wkey"] = wkey
-                with np.errstate(divide="ignore"):
-                    rq = np.where(hq_c > 0, 1.0 / (2.0 * hq_c), _RHO_LINEAR)
-                rho_l[o:o + nl] = np.repeat(rq, N)
-                st["wlin"][o:o + nl] = np.repeat(wl, N)
-                st["weights_changed"] = True
-            o += nl
-        if len(st["r_rate"]):
+        if z is not self._zv[0]:            # views of the blocks read (the same z each sample)
+            n = self.n_variables_
+            self._zv = (z, z[self._usl].reshape(2, n))
+        # band_lo, band_hi, lim_lo, lim_hi, the rates and the signature's pairs, scaled
+        q = z.take(self._q_idx) / self._sq
+        nq = self._nq
+        p = nq + 7 * self.ny
+        sig = np.isfinite(q[:nq]).tobytes() + (q[nq:p] <= q[p:]).tobytes()
+        bs = q[:self._n4]
+        ent = self._sigs.get(sig)
+        if ent is None:
+            if len(self._sigs) > 256:
+                self._sigs.clear()
+            ent = self._sigs[sig] = self._entry(bs, q[self._n4:nq], z)
+        if ent.__class__ is dict:
+            ent = self._moving_entry(ent, bs, q[self._n4:nq], z)
+        st = ent.st
+        if st.W is not None:                # one soft group: gradient and free response at once
+            r = np.dot(st.W, z.take(st.w_cols))
+            f, yf = r[:self.n_variables_], r[self.n_variables_:]
+        else:
+            f = np.dot(st.F, z.take(st.f_cols))
+            if st.n_groups:                 # free response of the soft rows (groups, 1, N)
+                yf = np.matmul(z.take(st.g_cols), st.S)
+                if st.g_map is not None:
+                    yf = yf[st.g_map]
+        np.divide(self._zv[1], self._su_t, st.b_u)
+        if st.n_groups:
+            np.subtract(bs.take(st.v_idx), yf, st.b_soft)
+            if st.moved_idx is not None:                      # preview: zone bands move
+                st.b_soft[:, :st.n_zone_groups] += z.take(st.moved_idx) / st.moved_scale
+            if st.n_lim:
+                if not (ent.check_cross and self._crossed(st, ent, bs, yf)):
+                    st.lim_off = 0.0
+                    if st.wkey != ent.wkey:
+                        st.set_limit_weights(ent.wkey, ent.rho_rows, ent.wlin_rows)
+        if st.n_rate:
             # move rows: the first move is measured from u_prev, the others from the last move
-            rr = rate[st["rate_mv"]]
-            d0 = np.where(st["rate_first"], (u_prev / su)[st["rate_mv"]], 0.0)
-            bl[o:] = d0 - rr
-            bu[o:] = d0 + rr
-        b = st["b"]                              # [bl; bu] in one buffer: two calls for four
-        np.maximum(b, -_INF, out=b)             # (np.clip's dispatch costs more than these)
-        np.minimum(b, _INF, out=b)
-        weights = (st["rho"], st["rho"], st["wlin"], st["wlin"])
-        return st["H"], f, st["A"], bu, bl, st["sense"], weights, st, key
+            np.matmul(st.R, z.take(st.rate_cols), out=st.b_rate)
+        b = st.b                                # [bl; bu] in one buffer: one call for four
+        b.clip(-_INF, _INF, out=b)
+        return st.H, f, st.A, st.bu, st.bl, st.sense, st.weights, st, st.key
+
+    def _crossed(self, st, ent, bs, yf) -> bool:
+        """Run-time limits crossed (lo > hi) on a limited CV: one slack covers both sides (the
+        slack form's), so the row becomes the mid-point with the linear weight raised by
+        ``h (lo - hi)`` -- the same cost up to a constant.  False (nothing done) when none is."""
+        b4 = bs.reshape(4, self.ny)
+        if not (b4[2][st.lim_cv] > b4[3][st.lim_cv]).any():
+            return False
+        c, N = st.lim_cv, self.N
+        lo, hi = b4[2][c], b4[3][c]
+        cross = lo > hi
+        mid = 0.5 * (lo + hi)
+        wl = np.where(cross, ent.wl + self._w["limit_quadratic"][c] * (lo - hi), ent.wl)
+        st.lim_off = np.repeat(np.where(cross, 0.5 * (lo - hi), 0.0), N)
+        lo, hi = np.where(cross, mid, lo), np.where(cross, mid, hi)
+        g = st.n_zone_groups
+        yl = yf if yf.ndim == 1 else yf[g:]     # (N,): the soft rows of one CV
+        st.b_soft[0, g:] = lo[:, None, None] - yl
+        st.b_soft[1, g:] = hi[:, None, None] - yl
+        wkey = (wl.tobytes(), ent.wkey[1])
+        if st.wkey != wkey:
+            st.set_limit_weights(wkey, ent.rho_rows, np.repeat(wl, N))
+        return True
 
     def solve(self, z: np.ndarray) -> QPResult:
         """Solve for the input vector *z*; warm-started from the last active set of the same
         structure.  ``values``: ``u`` (nu, M) and ``slack`` (ny, N), scaled."""
-        H, f, A, bu, bl, sense, weights, st, key = self.data(z)
+        H, f, A, bu, bl, sense, weights, st, _key = self.data(z)
         t0 = time.perf_counter()
-        mdl = st["model"]
-        if not st["ready"]:
+        mdl = st.model
+        if not st.ready:
             ef = mdl.setup(H, f, A, bu, bl, sense)
             ef = int(ef[0] if isinstance(ef, tuple) else ef)
             if ef < 0:                 # e.g. a Hessian DAQP cannot factorize: not solved
@@ -371,39 +371,46 @@ class CondensedQP:
                 return QPResult(status=f"setup_failed ({ef})", accepted=False,
                                 solve_ms=(time.perf_counter() - t0) * 1e3)
             mdl.settings = self.options
-            st["ready"] = True
-            st["weights_changed"] = True
+            st.ready = True
+            st.weights_changed = True
         else:
             mdl.update(f=f, bupper=bu, blower=bl)
-        if st.get("weights_changed"):
+        if st.weights_changed:
             mdl.soft_weights(rho_l=weights[0], rho_u=weights[1], w_l=weights[2], w_u=weights[3])
-            st["weights_changed"] = False
+            st.weights_changed = False
         x, _fval, flag, info = mdl.solve()
         ms = (time.perf_counter() - t0) * 1e3
-        status = DAQP_EXIT.get(int(flag), f"exit_flag_{int(flag)}")
-        ok = flag in (1, 2) and np.isfinite(x).all()
+        flag = int(flag)
+        status = DAQP_EXIT.get(flag) or f"exit_flag_{flag}"
+        # finite: x'x is (unless an entry is not finite, or it overflows: then look at each)
+        ok = (flag == 1 or flag == 2) and (math.isfinite(np.dot(x, x))
+                                           or bool(np.isfinite(x).all()))
         lam = info.get("lam")
-        self.last_info_ = {"exit_flag": int(flag), "active_set": int(np.count_nonzero(lam))
-                           if lam is not None else None, "solver": "daqp",
-                           "rows": int(A.shape[0]), "variables": self.n_variables_}
+        nact = None if lam is None else int(np.count_nonzero(lam))
+        self.last_info_ = {"exit_flag": flag, "active_set": nact, "solver": "daqp",
+                           "rows": st.n_rows, "variables": self.n_variables_}
         vals: dict[str, np.ndarray] = {}
         if ok:
-            U = np.asarray(x, float)
-            vals["u"] = U.reshape(self.nu, self.M, order="F")
+            U = x
+            vals["u"] = U.reshape(self.M, self.nu).T          # (nu, M), a view of x
             slack = np.zeros((self.ny, self.N))
-            nl = st["n_lim"]
-            if nl:
+            off = st.lim_off
+            if st.n_lim and (nact != 0 or off.__class__ is not float):
                 # only a row in the final active set can be violated (others hold to primal_tol)
-                o, nz_ = self.n_variables_ + st["n_zone"], st["n_zone"]
+                o, nl = st.lim_o, st.n_lim
                 act = lam[o:o + nl].nonzero()[0] if lam is not None else np.arange(nl)
-                s = np.zeros(nl)
                 if act.size:
-                    gu = A[nz_ + act] @ U
-                    s[act] = np.maximum(np.maximum(bl[o + act] - gu, gu - bu[o + act]), 0.0)
-                s += st["lim_off"]
-                slack[st["lim_cv"], :] = s.reshape(len(st["lim_cv"]), self.N)
+                    gu = np.dot(A[st.n_zone + act], U)
+                    s = np.maximum(np.maximum(bl[o + act] - gu, gu - bu[o + act]), 0.0)
+                    if off.__class__ is not float:
+                        s += off[act]
+                    slack.reshape(-1)[st.lim_flat[act]] = s
+                if off.__class__ is not float:     # crossed limits: the slack's floor
+                    rest = np.ones(nl, bool)
+                    rest[act] = False
+                    slack.reshape(-1)[st.lim_flat[rest]] = off[rest]
             vals["slack"] = slack
-        return QPResult(status=status, accepted=bool(ok), values=vals,
+        return QPResult(status=status, accepted=ok, values=vals,
                         iterations=int(info.get("iterations", 0)), solve_ms=ms)
 
     # ------------------------------------------------------------------ what-if helpers
@@ -452,3 +459,162 @@ class CondensedQP:
             xN = self._PxN @ z[:self._k_end] + self._GxN @ U
             obj += xN @ self._Pt @ xN - 2 * (z[zs["x_term"]] / self._sx) @ (self._Pt @ xN)
         return float(obj)
+
+
+class _Structure:
+    """One row structure of the condensed QP (which CVs have a setpoint, a zone, a limit; which
+    MVs a rate): its Hessian, rows, DAQP workspace, bound buffers and the per-sample maps.
+
+    The maps read the input vector ``z`` through index arrays built here once:
+
+    * gradient: ``f = F @ z[f_cols]`` -- every term of ``f`` (free response through the setpoint
+      rows, setpoints, ``u_prev``, preferred MVs, terminal state, previewed references) folded
+      into one matrix over the entries of ``z`` it reads;
+    * soft rows: the free response of each CV with soft rows, on the state entries that CV
+      sees (``S``: groups x columns x N, one batched product), subtracted from the CV's band or
+      limit;
+    * rate rows: ``(u_prev - rate, -rate, ...; u_prev + rate, rate, ...) / su`` from one small
+      product.
+    """
+
+    __slots__ = ("key", "H", "A", "sense", "rho", "wlin", "weights", "model", "ready",
+                 "weights_changed", "wkey", "b", "bl", "bu", "b_u", "b_soft", "b_rate",
+                 "n_rows", "n_zone", "n_lim", "n_rate", "n_groups", "n_zone_groups", "lim_o",
+                 "lim_cv", "lim_pairs", "lim_flat", "lim_off", "f_cols", "F", "g_cols", "S",
+                 "v_idx", "moved_idx", "moved_scale", "rate_cols", "R", "W", "w_cols",
+                 "g_map")
+
+    def __init__(self, cq: "CondensedQP", eq, zone, lim, rated, key: bytes):
+        import daqp
+
+        N, ny, nu, M, n = cq.N, cq.ny, cq.nu, cq.M, cq.n_variables_
+        zs = cq._zs
+
+        def rows_of(mask):         # rows k*ny + i of the CVs in mask, CV after CV
+            return (np.arange(N)[:, None] * ny + np.flatnonzero(mask)[None, :]).ravel(order="F")
+
+        r_eq, r_zone, r_lim = rows_of(eq), rows_of(zone), rows_of(lim)
+        eq_cv, zone_cv, lim_cv = np.flatnonzero(eq), np.flatnonzero(zone), np.flatnonzero(lim)
+        G = cq.G_
+        q = cq._w["cv_weight"]
+        Geq = G[r_eq]
+        qeq = np.repeat(q[eq], N)
+        H = cq._H0 + 2.0 * Geq.T @ (qeq[:, None] * Geq)
+        self.H = 0.5 * (H + H.T)
+        r_rate = (np.arange(M)[:, None] * nu + np.flatnonzero(rated)[None, :]).ravel(order="F")
+        self.A = np.vstack([G[r_zone], G[r_lim], cq._Dm[r_rate]])
+        nz_, nl, nr = len(r_zone), len(r_lim), len(r_rate)
+        m = n + self.A.shape[0]
+        self.key, self.n_rows = key, int(self.A.shape[0])
+        self.n_zone, self.n_lim, self.n_rate = nz_, nl, nr
+        self.sense = np.zeros(m, dtype=np.int32)
+        self.sense[n:n + nz_ + nl] = _SOFT
+        # soft weights of the zone rows (quadratic only); limit rows' weights are set per sample
+        self.rho = np.full(m, _RHO_LINEAR)
+        self.wlin = np.zeros(m)
+        self.rho[n:n + nz_] = 1.0 / (2.0 * np.repeat(q[zone], N))
+        self.weights = (self.rho, self.rho, self.wlin, self.wlin)
+        self.model, self.ready, self.weights_changed, self.wkey = daqp.Model(), False, False, None
+        # ---- gradient: one matrix over the whole input vector, kept on the columns it reads
+        fG = -2.0 * Geq.T * qeq[None, :]
+        F = np.zeros((n, cq._zlen))
+        k_end = cq._k_end
+        F[:, :k_end] = -fG @ cq.free_[r_eq]
+        F[:, zs["u_prev"]] += cq._fprev
+        F[:, zs["pref"]] -= cq._fpref
+        if len(r_eq):
+            fb = fG.reshape(n, len(eq_cv), N).sum(axis=2)          # times the setpoints
+            F[:, zs["band_lo"].start + eq_cv] += fb / cq._sy[eq_cv][None, :]
+            if cq._preview:                                        # times the references
+                F[:, zs["ref"].start + r_eq] += fG / cq._sy_t[r_eq][None, :]
+        if cq._Pt is not None:
+            F[:, :k_end] += cq._Kt @ cq._PxN
+            F[:, zs["x_term"]] -= cq._Kt / cq._sx[None, :]
+        self.f_cols = np.flatnonzero(np.any(F != 0, axis=0))
+        self.F = np.ascontiguousarray(F[:, self.f_cols])
+        # ---- bound buffer [bl; bu] and its blocks (views, written in place each sample)
+        self.b = np.empty(2 * m)
+        b2 = self.b.reshape(2, m)
+        self.bl, self.bu = self.b[:m], self.b[m:]
+        self.b_u = b2[:, :n]
+        # ---- soft rows: a group per zone CV, then per limited CV (N rows each)
+        groups = [(c, 0) for c in zone_cv] + [(c, 2) for c in lim_cv]
+        ng = len(groups)
+        self.n_groups, self.n_zone_groups = ng, len(zone_cv)
+        self.lim_o, self.lim_cv, self.lim_off = n + nz_, lim_cv, 0.0
+        self.lim_pairs = [(2 * ny + int(c), 3 * ny + int(c)) for c in lim_cv]
+        self.lim_flat = (lim_cv[:, None] * N + np.arange(N)[None, :]).ravel()
+        self.moved_idx = self.moved_scale = None
+        self.g_map = None
+        if ng:
+            # the free response once per CV (a CV with a zone of its own and a limit has both)
+            gcv = [int(c) for c, _ in groups]
+            ucv = list(dict.fromkeys(gcv))
+            if len(ucv) < ng:
+                self.g_map = np.array([ucv.index(c) for c in gcv])
+            blocks = [cq.free_[np.arange(N) * ny + c] for c in ucv]
+            used = [np.flatnonzero(np.any(bk != 0, axis=0)) for bk in blocks]
+            kmax = max(1, max(len(u) for u in used))
+            S = np.zeros((len(ucv), kmax, N))
+            cols = np.zeros((len(ucv), 1, kmax), dtype=np.intp)
+            for g, (bk, u) in enumerate(zip(blocks, used)):
+                S[g, :len(u)] = bk[:, u].T
+                cols[g, 0, :len(u)] = u
+                cols[g, 0, len(u):] = u[0] if len(u) else 0      # padding: weight zero
+            self.S, self.g_cols = S, cols
+            self.v_idx = np.array([[base * ny + c for c, base in groups],
+                                   [(base + 1) * ny + c for c, base in groups]]).reshape(2, ng, 1, 1)
+            self.b_soft = b2[:, n:n + nz_ + nl].reshape(2, ng, 1, N)
+            if cq._preview and len(zone_cv):
+                self.moved_idx = (zs["ref"].start + r_zone).reshape(len(zone_cv), 1, N)
+                self.moved_scale = cq._sy[zone_cv].reshape(len(zone_cv), 1, 1)
+        # ---- rate rows: (lower; upper) = R @ (rates, u_prev) of the rated MVs
+        self.b_rate = b2[:, n + nz_ + nl:]
+        mv = np.flatnonzero(rated)
+        k = len(mv)
+        self.rate_cols = np.concatenate([zs["rate"].start + mv, zs["u_prev"].start + mv])
+        R = np.zeros((2, nr, 2 * k))
+        for i, j in enumerate(mv):
+            rows = slice(i * M, (i + 1) * M)
+            R[0, rows, i], R[1, rows, i] = -1.0 / cq._su[j], 1.0 / cq._su[j]
+            R[:, i * M, k + i] = 1.0 / cq._su[j]
+        self.R = R
+        # soft rows of one CV: the gradient and its free response from one product
+        self.W = self.w_cols = None
+        if ng and S.shape[0] == 1:
+            u = np.union1d(self.f_cols, cols[0, 0])
+            W = np.zeros((n + N, len(u)))
+            W[:n, np.searchsorted(u, self.f_cols)] = self.F
+            W[n:, np.searchsorted(u, cols[0, 0])] = S[0].T
+            self.W, self.w_cols = W, u
+            self.S, self.g_cols = S[0], cols[0, 0]
+        for view in (self.b_u, self.b_soft if ng else self.b, self.b_rate):
+            assert view.size == 0 or np.shares_memory(view, self.b)     # views, not copies
+
+    def set_limit_weights(self, wkey, rho_rows, wlin_rows) -> None:
+        o, nl = self.lim_o, self.n_lim
+        self.rho[o:o + nl] = rho_rows
+        self.wlin[o:o + nl] = wlin_rows
+        self.wkey = wkey
+        self.weights_changed = True
+
+
+class _Entry:
+    """A sample's exact structure with the soft weights of its limit rows (a zone whose ends
+    are its CV's limits adds its weight to the limit row's quadratic weight)."""
+
+    __slots__ = ("st", "wl", "wkey", "rho_rows", "wlin_rows", "check_cross")
+
+    def __init__(self, cq: "CondensedQP", eq, zone, lim, rated, merged, b4):
+        self.st = cq._structure(eq, zone, lim, rated)
+        c = self.st.lim_cv
+        # lim_lo <= lim_hi on every limited CV (a bit of the signature): no crossing to look for
+        self.check_cross = not bool(np.all(b4[2][c] <= b4[3][c]))
+        w = cq._w
+        self.wl = w["limit_linear"][c].copy()
+        hq_c = w["limit_quadratic"][c] + np.where(merged[c], w["cv_weight"][c], 0.0)
+        self.wkey = (self.wl.tobytes(), hq_c.tobytes())
+        with np.errstate(divide="ignore"):
+            rq = np.where(hq_c > 0, 1.0 / (2.0 * hq_c), _RHO_LINEAR)
+        self.rho_rows = np.repeat(rq, cq.N)
+        self.wlin_rows = np.repeat(self.wl, cq.N)

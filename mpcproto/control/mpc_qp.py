@@ -107,7 +107,14 @@ class ControllerQP:
             off[k] = slice(o, o + s_)
             o += s_
         self._zsl = off
-        self._z = np.zeros(o)
+        self._z = z = np.zeros(o)
+        # views of z's blocks written each sample (u_lo, u_hi as (2, M, nu): F-order of (nu, M))
+        self._zv = (z[off["x0"]], z[off["u_prev"]], z[off["w"]], z[off["band_lo"]],
+                    z[off["band_hi"]], z[off["lim_lo"]], z[off["lim_hi"]],
+                    z[off["u_lo"].start:off["u_hi"].stop].reshape(2, M, nu), z[off["rate"]],
+                    z[off["pref"]])
+        # reach of the rate limits over the control horizon: +k for u_lo, -k for u_hi
+        self._reach = np.array([1.0, -1.0])[:, None, None] * np.arange(1, M + 1)[None, :, None]
         tl, o = {}, 0
         if self.target_ is not None:
             for k, s_ in self.target_.layout_.items():
@@ -115,7 +122,6 @@ class ControllerQP:
                 o += s_
         self._tsl = tl
         self._tz = np.zeros(o)
-        self._steps = np.arange(1, M + 1)[None, :].astype(float)
         self._plan_idx = np.minimum(np.arange(N), M - 1)
         kind = r["solver"]
         self.solver_ = kind
@@ -195,15 +201,21 @@ class ControllerQP:
                 d_end = d_now + dtraj[-nd:]
         else:
             d_end = d_now
-        # ---- deviations of limits and setpoints
+        # ---- deviations of limits and setpoints (clo, chi, u_prev_dev: written straight into z's
+        # blocks, views valid for this call)
+        zx0, zup, zw, zblo, zbhi, zllo, zlhi, zu, zrate, zpref = self._zv
         lo_dev, hi_dev = mv_lo - op_u, mv_hi - op_u
-        clo, chi = cv_lo - op_y, cv_hi - op_y
+        clo = np.subtract(cv_lo, op_y, zllo)
+        chi = np.subtract(cv_hi, op_y, zlhi)
         spd = sp_ - op_y
         has_sp = np.isfinite(spd)
         consistent = clo <= chi
-        zone_lo = np.where(consistent, clo, -np.inf)
-        zone_hi = np.where(consistent, chi, np.inf)
-        u_prev_dev = u_prev - op_u
+        if False not in consistent.tolist():        # (cheaper than .all() on a few entries)
+            zone_lo, zone_hi = clo, chi
+        else:
+            zone_lo = np.where(consistent, clo, -np.inf)
+            zone_hi = np.where(consistent, chi, np.inf)
+        u_prev_dev = np.subtract(u_prev, op_u, zup)
         t_target = 0.0
         fast = self._fast
         # ---- steady target
@@ -251,20 +263,16 @@ class ControllerQP:
             pref = self._pref_dev
         # ---- MV limits reachable under the rate limits (keeps the QP feasible when a limit moved
         # past the current MV: the plan then moves towards it as fast as allowed)
-        reach = self._steps * rate[:, None]
-        ulo = np.fmin(lo_dev[:, None], u_prev_dev[:, None] + reach)
-        uhi = np.fmax(hi_dev[:, None], u_prev_dev[:, None] - reach)
-        z[zs["x0"]] = x
-        z[zs["u_prev"]] = u_prev_dev
-        z[zs["w"]] = w
-        z[zs["band_lo"]] = band_lo
-        z[zs["band_hi"]] = band_hi
-        z[zs["lim_lo"]] = clo
-        z[zs["lim_hi"]] = chi
-        z[zs["u_lo"]] = ulo.ravel(order="F")
-        z[zs["u_hi"]] = uhi.ravel(order="F")
-        z[zs["rate"]] = rate
-        z[zs["pref"]] = pref
+        np.multiply(self._reach, rate, zu)       # (2, M, nu): u_prev +- k rate, then the limits
+        zu += u_prev_dev
+        np.fmin(zu[0], lo_dev, zu[0])
+        np.fmax(zu[1], hi_dev, zu[1])
+        zx0[:] = x
+        zw[:] = w
+        zblo[:] = band_lo
+        zbhi[:] = band_hi
+        zrate[:] = rate
+        zpref[:] = pref
         if self.terminal_weight_ is not None:
             z[zs["x_term"]] = self._target[2]
         if "ref" in zs:
