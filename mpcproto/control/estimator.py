@@ -40,6 +40,7 @@ counted; non-finite values are rejected and flagged.
 
 from __future__ import annotations
 
+import struct
 from collections.abc import Mapping
 from typing import Any
 
@@ -57,8 +58,13 @@ OWNER = "DisturbanceEstimator"
 __all__ = ["DisturbanceEstimator"]
 
 DISTURBANCE_MODELS = ("auto", "output", "input")
-_NOTHING: dict[str, Any] = {"rejected": (), "late": (), "too_old": ()}
+#: what :meth:`DisturbanceEstimator.update` returns when every CV was measured now (the same
+#: object each time: a caller may test ``info is NO_EVENTS``; never mutate it)
+NO_EVENTS: dict[str, Any] = {"rejected": (), "late": (), "too_old": ()}
 
+
+#: a float's 8 bytes as numpy stores a float64 (native order)
+_pack_float = struct.Struct("=d").pack
 
 _DETECTABLE = ("a disturbance model the estimator can detect ('output' disturbances, or an "
                "'input' model only where MVs reach the CV)")
@@ -213,6 +219,15 @@ class DisturbanceEstimator:
         self._gains: dict[bytes, np.ndarray] = {}
         self.gain_ = self._gain(np.ones(ny, bool))
         self.nx_, self.na_, self.ny_ = nx, na, ny
+        # the prediction of the next sample's prior and of its CVs in one product:
+        # [prior; C prior + D u] = M [post; u; d] (the DV columns only where Bd is not zero)
+        Mx = np.hstack([Aa, self.Ba_] + ([self.Bda_] if self._has_Bd else []))
+        My = Ca @ Mx
+        My[:, na:na + nu] += self.D_
+        self._M = np.vstack([Mx, My])
+        self._nrow = Mx.shape[1]
+        self._Ts = float(m.Ts)
+        self._all_true, self._all_true_a = np.ones(ny, bool).tobytes(), np.ones(na, bool).tobytes()
         self.is_built = True
         self.reset()
         return self
@@ -250,10 +265,20 @@ class DisturbanceEstimator:
         na, ny = self.na_, self.ny_
         self._t0 = float(t0)
         self._k = 0                       # index of the current sample (time t0 + k Ts)
-        self._prior = np.zeros((H, na))   # ring buffers indexed by k % H
-        self._post = np.zeros((H, na))
-        self._u = np.zeros((H, self.dmodel.nu))   # input applied from sample k to k+1
-        self._d = np.zeros((H, self.dmodel.nd))   # DV deviation at sample k
+        nu = self.dmodel.nu
+        # ring buffers indexed by k % H; per sample one row [posterior, input applied from sample
+        # k to k+1, DV deviation at sample k] (what the prediction multiplies) and one row
+        # [prior, its predicted CVs C prior + D u[k-1]]
+        self._H = H
+        self._row = np.zeros((H, na + nu + self.dmodel.nd))
+        self._post, self._u, self._d = (self._row[:, :na], self._row[:, na:na + nu],
+                                        self._row[:, na + nu:])
+        self._pri = np.zeros((H, na + ny))
+        self._prior, self._yp = self._pri[:, :na], self._pri[:, na:]
+        # the rows as views (a list index is cheaper than a numpy one on the per-sample path)
+        self._xrows = [r[: self._nrow] for r in self._row]
+        self._prows, self._priors, self._yps = list(self._pri), list(self._prior), list(self._yp)
+        self._posts, self._us = list(self._post), list(self._u)
         self._ymask = np.zeros((H, ny), bool)
         self._yval = np.zeros((H, ny))
         xa = np.zeros(na)
@@ -261,7 +286,8 @@ class DisturbanceEstimator:
             xa[: self.nx_] = np.asarray(x0, float).reshape(-1)
         self._prior[0] = xa
         self._post[0] = xa
-        self._u_prev = np.zeros(self.dmodel.nu)
+        self._yp[0] = self.C_ @ xa
+        self._u_prev = np.zeros(nu)       # the input before sample 0 (later: a view of the last)
         self._started = False
         self.counts = {"rejected_nonfinite": 0, "late_used": 0, "too_old": 0}
 
@@ -276,19 +302,21 @@ class DisturbanceEstimator:
         Returns a dict with ``rejected`` (CV indices with fresh non-finite values), ``late`` (CV
         indices used at an earlier sample) and ``too_old`` (dropped).
         """
-        self._check()
-        k = self.sample_index(t)
-        H = self._prior.shape[0]
+        if not self.is_built:
+            self._check()
+        Ts = self._Ts
+        k = int(round((float(t) - self._t0) / Ts))          # sample_index(t)
+        H = self._H
         if self._started:
             if k != self._k + 1:
                 raise fail("DisturbanceEstimator.update()", "t",
                            f"the next sample (index {self._k + 1}, "
-                           f"t={self._t0 + (self._k + 1) * self.dmodel.Ts:g})",
+                           f"t={self._t0 + (self._k + 1) * Ts:g})",
                            f"t={t:g} (index {k})", "Call predict() once per sample.")
         else:
             if k != self._k:
                 # first update after reset: align the clock on the first call
-                self._t0 = float(t) - self._k * self.dmodel.Ts
+                self._t0 = float(t) - self._k * Ts
                 k = self._k
         self._k = k
         slot = k % H
@@ -296,21 +324,30 @@ class DisturbanceEstimator:
         y_dev = np.asarray(y_dev, float)
         fresh = np.asarray(fresh, bool)
         taken_at = np.asarray(taken_at, float)
-        half = 0.5 * self.dmodel.Ts
-        if (fresh.all() and np.isfinite(y_dev).all()
-                and taken_at.min() > t - half and taken_at.max() < t + half):
-            # the common case: every CV measured now
+        half = 0.5 * Ts
+        # the common case, every CV measured now: first a cheap test that implies the full one
+        # (bytes compared: all fresh, every value finite, every value taken at t bit for bit),
+        # then the full test
+        all_true = self._all_true
+        if ((fresh.tobytes() == all_true and np.isfinite(y_dev).tobytes() == all_true
+             and taken_at.tobytes() == _pack_float(t) * self.ny_ and t - half < t < t + half)
+                or (fresh.all() and np.isfinite(y_dev).all()
+                    and taken_at.min() > t - half and taken_at.max() < t + half)):
             self._ymask[slot] = True
             self._yval[slot] = y_dev
-            xa = self._prior[slot]
-            yhat = self.C_ @ xa
-            if self._has_D:
-                yhat += self.D_ @ (self._u[(k - 1) % H] if k > 0 else self._u_prev)
+            xa = self._priors[slot]
+            if k > 0:
+                e = y_dev - self._yps[slot]     # C prior + D u[k-1], from the prediction
+            else:
+                yhat = self.C_ @ xa
+                if self._has_D:
+                    yhat += self.D_ @ self._u_prev
+                e = y_dev - yhat
             if self._has_Dd:
-                yhat += self.Dd_ @ d_dev
-            self._post[slot] = xa + self.gain_ @ (y_dev - yhat)
+                e -= self.Dd_.dot(d_dev)
+            np.add(xa, self.gain_.dot(e), out=self._posts[slot])
             self._started = True
-            return _NOTHING
+            return NO_EVENTS
         rejected, late, too_old = [], [], []
         first = k
         for i in np.flatnonzero(fresh):
@@ -343,24 +380,26 @@ class DisturbanceEstimator:
                 xa = xa + L @ (self._yval[s, mask] - yhat[mask])
             self._post[s] = xa
             if j < k:
-                self._prior[(j + 1) % H] = (self.A_ @ xa + self.Ba_ @ self._u[s]
-                                            + self.Bda_ @ self._d[s])
+                self._propagate(s, (j + 1) % H)
         self._started = True
         return {"rejected": rejected, "late": late, "too_old": too_old}
 
+    def _propagate(self, s: int, nxt: int) -> None:
+        """The prior of the sample after slot *s* (and its predicted CVs) from the posterior,
+        the input and the DVs of slot *s*: ``A post + B u + Bd d``."""
+        np.dot(self._M, self._xrows[s], out=self._prows[nxt])
+
     def predict(self, u_dev: np.ndarray) -> None:
         """Propagate to the next sample with the MVs *u_dev* applied from now on."""
-        self._check()
-        H = self._prior.shape[0]
+        if not self.is_built:
+            self._check()
+        H = self._H
         s = self._k % H
-        self._u[s] = u_dev
         nxt = (self._k + 1) % H
-        xn = self.A_ @ self._post[s] + self.Ba_ @ u_dev
-        if self._has_Bd:
-            xn += self.Bda_ @ self._d[s]
-        self._prior[nxt] = xn
+        self._u[s] = u_dev
+        np.dot(self._M, self._xrows[s], out=self._prows[nxt])      # _propagate(s, nxt)
         self._ymask[nxt] = False
-        self._u_prev = np.asarray(u_dev, float).copy()
+        self._u_prev = self._us[s]       # a view: the slot is not written again before it is read
 
     def revise_input(self, u_dev: np.ndarray) -> None:
         """Replace the MVs of the last :meth:`predict` by those actually applied (readback).
@@ -370,22 +409,24 @@ class DisturbanceEstimator:
         it too, so a stuck or clipped valve does not show up as a disturbance.
         """
         self._check()
-        H = self._prior.shape[0]
+        H = self._H
         s = self._k % H
-        u_dev = np.asarray(u_dev, float)
-        self._u[s] = u_dev
-        xn = self.A_ @ self._post[s] + self.Ba_ @ u_dev
-        if self._has_Bd:
-            xn += self.Bda_ @ self._d[s]
-        self._prior[(self._k + 1) % H] = xn
-        self._u_prev = u_dev.copy()
+        self._u[s] = np.asarray(u_dev, float)
+        self._propagate(s, (self._k + 1) % H)
+        self._u_prev = self._us[s]
+
+    def estimate(self) -> tuple[np.ndarray, np.ndarray, bool]:
+        """``(state, disturbance_estimate, finite)``: the two current estimates (views, as the
+        properties return them) and whether every entry of both is finite."""
+        row = self._posts[self._k % self._H]
+        return row[: self.nx_], row[self.nx_:], np.isfinite(row).tobytes() == self._all_true_a
 
     @property
     def state(self) -> np.ndarray:
         """Current filtered plant (and delay) state, deviation variables."""
-        return self._post[self._k % self._prior.shape[0], : self.nx_]
+        return self._post[self._k % self._H, : self.nx_]
 
     @property
     def disturbance_estimate(self) -> np.ndarray:
         """Current estimate of the per-CV disturbance states."""
-        return self._post[self._k % self._prior.shape[0], self.nx_:]
+        return self._post[self._k % self._H, self.nx_:]
