@@ -279,7 +279,12 @@ class DisturbanceEstimator:
         self._xrows = [r[: self._nrow] for r in self._row]
         self._prows, self._priors, self._yps = list(self._pri), list(self._prior), list(self._yp)
         self._posts, self._us = list(self._post), list(self._u)
+        self._xs, self._ws = [r[: self.nx_] for r in self._post], [r[self.nx_:] for r in self._post]
+        # which CVs were used at each sample: _full[s] (every CV, the common path: the row of
+        # _ymask is not written), else the row of _ymask (_marked[s]: the row has entries)
         self._ymask = np.zeros((H, ny), bool)
+        self._full, self._marked = [False] * H, [False] * H
+        self._all_cvs = np.ones(ny, bool)
         self._yval = np.zeros((H, ny))
         xa = np.zeros(na)
         if x0 is not None:
@@ -333,7 +338,7 @@ class DisturbanceEstimator:
              and taken_at.tobytes() == _pack_float(t) * self.ny_ and t - half < t < t + half)
                 or (fresh.all() and np.isfinite(y_dev).all()
                     and taken_at.min() > t - half and taken_at.max() < t + half)):
-            self._ymask[slot] = True
+            self._full[slot] = True
             self._yval[slot] = y_dev
             xa = self._priors[slot]
             if k > 0:
@@ -361,6 +366,7 @@ class DisturbanceEstimator:
                 continue
             s = j % H
             self._ymask[s, i] = True
+            self._marked[s] = True
             self._yval[s, i] = v
             if j < k:
                 late.append(int(i))
@@ -372,7 +378,7 @@ class DisturbanceEstimator:
         for j in range(first, k + 1):
             s = j % H
             xa = self._prior[s].copy()
-            mask = self._ymask[s]
+            mask = self._all_cvs if self._full[s] else self._ymask[s]
             if mask.any():
                 u_held = self._u[(j - 1) % H] if j > 0 else self._u_prev
                 yhat = self.C_ @ xa + self.D_ @ u_held + self.Dd_ @ self._d[s]
@@ -389,16 +395,24 @@ class DisturbanceEstimator:
         the input and the DVs of slot *s*: ``A post + B u + Bd d``."""
         np.dot(self._M, self._xrows[s], out=self._prows[nxt])
 
-    def predict(self, u_dev: np.ndarray) -> None:
-        """Propagate to the next sample with the MVs *u_dev* applied from now on."""
+    def predict(self, u_dev: np.ndarray, *, less: np.ndarray | None = None) -> None:
+        """Propagate to the next sample with the MVs *u_dev* applied from now on (deviation;
+        with *less*: ``u_dev - less``, the absolute MVs and the operating point's, subtracted
+        into the estimator's own buffer)."""
         if not self.is_built:
             self._check()
         H = self._H
         s = self._k % H
         nxt = (self._k + 1) % H
-        self._u[s] = u_dev
+        if less is None:
+            self._u[s] = u_dev
+        else:
+            np.subtract(u_dev, less, out=self._us[s])
         np.dot(self._M, self._xrows[s], out=self._prows[nxt])      # _propagate(s, nxt)
-        self._ymask[nxt] = False
+        self._full[nxt] = False
+        if self._marked[nxt]:
+            self._ymask[nxt] = False
+            self._marked[nxt] = False
         self._u_prev = self._us[s]       # a view: the slot is not written again before it is read
 
     def revise_input(self, u_dev: np.ndarray) -> None:
@@ -418,15 +432,16 @@ class DisturbanceEstimator:
     def estimate(self) -> tuple[np.ndarray, np.ndarray, bool]:
         """``(state, disturbance_estimate, finite)``: the two current estimates (views, as the
         properties return them) and whether every entry of both is finite."""
-        row = self._posts[self._k % self._H]
-        return row[: self.nx_], row[self.nx_:], np.isfinite(row).tobytes() == self._all_true_a
+        s = self._k % self._H
+        return (self._xs[s], self._ws[s],
+                np.isfinite(self._posts[s]).tobytes() == self._all_true_a)
 
     @property
     def state(self) -> np.ndarray:
         """Current filtered plant (and delay) state, deviation variables."""
-        return self._post[self._k % self._H, : self.nx_]
+        return self._xs[self._k % self._H]
 
     @property
     def disturbance_estimate(self) -> np.ndarray:
         """Current estimate of the per-CV disturbance states."""
-        return self._post[self._k % self._H, self.nx_:]
+        return self._ws[self._k % self._H]

@@ -151,13 +151,21 @@ def project_with_activity(u, u_prev, lo, hi, max_move, *, what: str = "project_c
     pass instead of three boolean arrays): ``(command, clipped, at_limit, n_at_rate,
     n_over_rate)`` with ``clipped`` the largest ``|command - u|`` (0.0 for no MV; NaN where a
     command or a request is NaN, as ``np.abs(command - u).max(initial=0.0)``), ``at_limit`` the
-    list of flat indices at a hard limit and the two counts as ints.
+    list of flat indices at a hard limit and the two counts as ints.  In this form each input
+    may also be a list of floats of the command's length (taken as it is: no conversion).
     """
-    u = np.asarray(u, float)
-    shape = u.shape
-    if u.ndim == 1:                     # the common case: flat lists without broadcasting
-        cols = [u.tolist()]
+    if summary and type(u) is list:
+        shape = (len(u),)
+    else:
+        u = np.asarray(u, float)
+        shape = u.shape
+    if len(shape) == 1:                 # the common case: flat lists without broadcasting
+        n = shape[0]
+        cols = [u if type(u) is list else u.tolist()]
         for a in (u_prev, lo, hi, max_move):
+            if summary and type(a) is list and len(a) == n:
+                cols.append(a)
+                continue
             a = np.asarray(a, float)
             cols.append(a.tolist() if a.shape == shape else _floats(a, shape))
     else:

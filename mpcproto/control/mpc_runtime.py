@@ -77,8 +77,12 @@ class ControllerRuntime:
         self._shape_u, self._shape_y, self._shape_d = (m.nu,), (m.ny,), (m.nd,)
         self._ff = np.asarray(r.feedforward, bool)
         self._ff_all = bool(self._ff.all())
-        self._all_known = np.ones(m.nu, bool).tobytes()
+        self._all_known, self._all_used = np.ones(m.nu, bool).tobytes(), np.ones(m.nd, bool).tobytes()
         self._sy_list = np.asarray(self._sy, float).tolist()
+        self._su_list, self._op_u_list = np.asarray(self._su, float).tolist(), self._op_u.tolist()
+        # all slacks zero (ny, N): the per-CV largest slack of that case, by the same arithmetic
+        self._zero_slacks = bytes(8 * m.ny * self._N)
+        self._zero_smax = [0.0 * b for b in self._sy_list]
         self._lims = None
         self._z[:] = 0.0
         self._forecast_in_z = False
@@ -144,7 +148,7 @@ class ControllerRuntime:
             mv_lo, mv_hi = c.mv
         else:
             mv_lo, mv_hi = self._mv_limits(a, b)
-            c.mv_key, c.mv = key, (mv_lo, mv_hi)
+            c.mv_key, c.mv, c.mv_lists = key, (mv_lo, mv_hi), (mv_lo.tolist(), mv_hi.tolist())
         tr = targets.mv_rate
         if tr is None:
             rate = c.resolved.max_move
@@ -157,7 +161,7 @@ class ControllerRuntime:
                 rate = c.rate
             else:
                 rate = self._rate_limits(tr)
-                c.rate_key, c.rate = key, rate
+                c.rate_key, c.rate, c.rate_list = key, rate, rate.tolist()
         a, b = targets.cv_low, targets.cv_high
         a = c.none_lo_y if a is None else np.asarray(a, float)
         b = c.none_hi_y if b is None else np.asarray(b, float)
@@ -176,6 +180,7 @@ class ControllerRuntime:
         sp_ = c.none_sp if sp_ is None else np.asarray(sp_, float)
         if sp_.shape != sy:
             sp_ = self._vec(sp_, c.ny, "targets.setpoint", np.nan)
+        c.lists = c.mv_lists + (c.max_move_list if tr is None else c.rate_list,)
         return mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_
 
     def _mv_limits(self, low, high):
@@ -264,7 +269,8 @@ class ControllerRuntime:
         preview = None if setpoint_program is None else self._preview(setpoint_program, sp_)
         if u_applied is not None:
             self._readback(u_applied)
-        if self._clamping:
+        clamped = self._clamping              # (_clamped counts the clamps down)
+        if clamped:
             mv_lo, mv_hi = self._clamped(mv_lo, mv_hi)
             diag.mvs_not_following = [self._mv_names[j] for j in np.flatnonzero(self._clamp_left)]
         # ---- measured DVs (deviation); unknown / not fed forward -> 0
@@ -278,7 +284,9 @@ class ControllerRuntime:
         use = np.isfinite(dv)
         if not self._ff_all:
             use &= self._ff
-        d_now = np.where(use, dv - self._op_d, 0.0)
+        d_now = dv - self._op_d
+        if use.tobytes() != self._all_used:      # (bytes of the booleans) some DV not used
+            d_now[~use] = 0.0
         # ---- estimator
         y = np.asarray(meas.y, float)
         if y.shape != self._shape_y:
@@ -322,12 +330,17 @@ class ControllerRuntime:
         diag.iterations = res.iterations
         if res.accepted:
             Us = res.values["u"]
-            u = Us[:, 0] * self._su + op_u
+            # the first move, absolute, as floats (the projection's own form): the same
+            # arithmetic as Us[:, 0] * su + op_u
+            u = [a * b + c for a, b, c in zip(Us[:, 0].tolist(), self._su_list, self._op_u_list)]
             self._plan_scaled = Us                  # (nu, M) scaled; unscaled on demand
             self._plan = None
             self._plan_age = 0
-            smax_cv = [a * b for a, b in zip(res.values["slack"].max(axis=1).tolist(),
-                                             self._sy_list)]
+            S = res.values["slack"]
+            if S.tobytes() == self._zero_slacks:   # every slack +0.0 (bit for bit): the common case
+                smax_cv = self._zero_smax
+            else:
+                smax_cv = [a * b for a, b in zip(S.max(axis=1).tolist(), self._sy_list)]
             tol = self._slack_tol_list
             relaxed = [names[i] for i, (a, b) in enumerate(zip(smax_cv, tol)) if a > b]
             diag.fallback = False
@@ -339,8 +352,9 @@ class ControllerRuntime:
             status, u = self._fall_back(res.status, diag, op_u)
         # ---- exact limits on what is applied (solver tolerance, a stale plan, a hold or a limit
         # that stepped past the MV must not break them): the one projection, hard limits win
+        lo, hi, rt = (mv_lo, mv_hi, rate) if clamped else self._lims.lists
         u, diag.clipped, at_limit, diag.active_rate_limits, diag.limits_over_rate = \
-            project_with_activity(u, self._u_prev, mv_lo, mv_hi, rate, what="PredictiveController",
+            project_with_activity(u, self._u_prev, lo, hi, rt, what="PredictiveController",
                                   summary=True)
         diag.active_mv_limits = len(at_limit)
         diag.active_mv_limit_names = [self._mv_names[j] for j in at_limit] if at_limit else []
@@ -452,7 +466,7 @@ class ControllerRuntime:
             status = STATUS_MEASUREMENT_REJECTED
         elif status == STATUS_OK and n_nf:
             status = STATUS_MV_NOT_FOLLOWING
-        self.estimator_.predict(u - self._op_u)
+        self.estimator_.predict(u, less=self._op_u)
         self._u_prev = u
         diag.step_ms = (time.perf_counter() - t_start) * 1e3
         diag.counts = dict(self.counts)
@@ -461,12 +475,13 @@ class ControllerRuntime:
 
 class _LimitCache:
     """The step's limits of the last targets seen (:meth:`ControllerRuntime._limits`): the byte
-    keys of the targets' arrays, the intersections with the settings, and read-only stand-ins
-    for targets left out (None)."""
+    keys of the targets' arrays, the intersections with the settings (and as lists of floats:
+    ``lists`` = the MV limits and rates of the last call, what the projection reads), and
+    read-only stand-ins for targets left out (None)."""
 
     __slots__ = ("resolved", "nu", "ny", "shape_u", "shape_y", "none_lo_u", "none_hi_u",
-                 "none_lo_y", "none_hi_y", "none_sp", "mv_key", "mv", "rate_key", "rate",
-                 "cv_key", "cv")
+                 "none_lo_y", "none_hi_y", "none_sp", "mv_key", "mv", "mv_lists", "rate_key",
+                 "rate", "rate_list", "max_move_list", "cv_key", "cv", "lists")
 
     def __init__(self, resolved, nu: int, ny: int):
         self.resolved, self.nu, self.ny = resolved, nu, ny
@@ -475,7 +490,8 @@ class _LimitCache:
         self.none_lo_y, self.none_hi_y = _read_only(np.full(ny, -np.inf)), _read_only(np.full(ny, np.inf))
         self.none_sp = _read_only(np.full(ny, np.nan))
         self.mv_key = self.rate_key = self.cv_key = None
-        self.mv = self.rate = self.cv = None
+        self.mv = self.rate = self.cv = self.mv_lists = self.rate_list = self.lists = None
+        self.max_move_list = np.asarray(resolved.max_move, float).tolist()
 
 
 def _read_only(a: np.ndarray) -> np.ndarray:
