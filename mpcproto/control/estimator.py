@@ -291,7 +291,6 @@ class DisturbanceEstimator:
             xa[: self.nx_] = np.asarray(x0, float).reshape(-1)
         self._prior[0] = xa
         self._post[0] = xa
-        self._yp[0] = self.C_ @ xa
         self._u_prev = np.zeros(nu)       # the input before sample 0 (later: a view of the last)
         self._started = False
         self.counts = {"rejected_nonfinite": 0, "late_used": 0, "too_old": 0}
