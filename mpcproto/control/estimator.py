@@ -219,13 +219,6 @@ class DisturbanceEstimator:
         self._gains: dict[bytes, np.ndarray] = {}
         self.gain_ = self._gain(np.ones(ny, bool))
         self.nx_, self.na_, self.ny_ = nx, na, ny
-        # the prediction of the next sample's prior and of its CVs in one product:
-        # [prior; C prior + D u] = M [post; u; d] (the DV columns only where Bd is not zero)
-        Mx = np.hstack([Aa, self.Ba_] + ([self.Bda_] if self._has_Bd else []))
-        My = Ca @ Mx
-        My[:, na:na + nu] += self.D_
-        self._M = np.vstack([Mx, My])
-        self._nrow = Mx.shape[1]
         self._Ts = float(m.Ts)
         self._all_true, self._all_true_a = np.ones(ny, bool).tobytes(), np.ones(na, bool).tobytes()
         self.is_built = True
@@ -266,19 +259,13 @@ class DisturbanceEstimator:
         self._t0 = float(t0)
         self._k = 0                       # index of the current sample (time t0 + k Ts)
         nu = self.dmodel.nu
-        # ring buffers indexed by k % H; per sample one row [posterior, input applied from sample
-        # k to k+1, DV deviation at sample k] (what the prediction multiplies) and one row
-        # [prior, its predicted CVs C prior + D u[k-1]]
+        # ring buffers indexed by k % H: prior and posterior estimates, the input applied from
+        # sample k to k+1, the DV deviation at sample k
         self._H = H
-        self._row = np.zeros((H, na + nu + self.dmodel.nd))
-        self._post, self._u, self._d = (self._row[:, :na], self._row[:, na:na + nu],
-                                        self._row[:, na + nu:])
-        self._pri = np.zeros((H, na + ny))
-        self._prior, self._yp = self._pri[:, :na], self._pri[:, na:]
-        # the rows as views (a list index is cheaper than a numpy one on the per-sample path)
-        self._xrows = [r[: self._nrow] for r in self._row]
-        self._prows, self._priors, self._yps = list(self._pri), list(self._prior), list(self._yp)
-        self._posts, self._us = list(self._post), list(self._u)
+        self._prior, self._post = np.zeros((H, na)), np.zeros((H, na))
+        self._u, self._d = np.zeros((H, nu)), np.zeros((H, self.dmodel.nd))
+        # their rows as views (a list index is cheaper than a numpy one on the per-sample path)
+        self._priors, self._posts, self._us = list(self._prior), list(self._post), list(self._u)
         self._xs, self._ws = [r[: self.nx_] for r in self._post], [r[self.nx_:] for r in self._post]
         # which CVs were used at each sample: _full[s] (every CV, the common path: the row of
         # _ymask is not written), else the row of _ymask (_marked[s]: the row has entries)
@@ -340,16 +327,12 @@ class DisturbanceEstimator:
             self._full[slot] = True
             self._yval[slot] = y_dev
             xa = self._priors[slot]
-            if k > 0:
-                e = y_dev - self._yps[slot]     # C prior + D u[k-1], from the prediction
-            else:
-                yhat = self.C_ @ xa
-                if self._has_D:
-                    yhat += self.D_ @ self._u_prev
-                e = y_dev - yhat
+            yhat = self.C_.dot(xa)
+            if self._has_D:
+                yhat += self.D_.dot(self._us[(k - 1) % H] if k > 0 else self._u_prev)
             if self._has_Dd:
-                e -= self.Dd_.dot(d_dev)
-            np.add(xa, self.gain_.dot(e), out=self._posts[slot])
+                yhat += self.Dd_.dot(d_dev)
+            np.add(xa, self.gain_.dot(y_dev - yhat), out=self._posts[slot])
             self._started = True
             return NO_EVENTS
         rejected, late, too_old = [], [], []
@@ -385,14 +368,19 @@ class DisturbanceEstimator:
                 xa = xa + L @ (self._yval[s, mask] - yhat[mask])
             self._post[s] = xa
             if j < k:
-                self._propagate(s, (j + 1) % H)
+                self._propagate(s, (j + 1) % H, True)
         self._started = True
         return {"rejected": rejected, "late": late, "too_old": too_old}
 
-    def _propagate(self, s: int, nxt: int) -> None:
-        """The prior of the sample after slot *s* (and its predicted CVs) from the posterior,
-        the input and the DVs of slot *s*: ``A post + B u + Bd d``."""
-        np.dot(self._M, self._xrows[s], out=self._prows[nxt])
+    def _propagate(self, s: int, nxt: int, dvs: bool) -> None:
+        """The prior of the sample after slot *s* from the posterior, the input and (*dvs*:
+        always, or only where Bd is not zero) the DVs of slot *s*: ``A post + B u + Bd d``,
+        summed in that order, written into the ring."""
+        prior = self._priors[nxt]
+        np.dot(self.A_, self._posts[s], out=prior)
+        prior += self.Ba_.dot(self._us[s])
+        if dvs:
+            prior += self.Bda_.dot(self._d[s])
 
     def predict(self, u_dev: np.ndarray, *, less: np.ndarray | None = None) -> None:
         """Propagate to the next sample with the MVs *u_dev* applied from now on (deviation;
@@ -407,7 +395,7 @@ class DisturbanceEstimator:
             self._u[s] = u_dev
         else:
             np.subtract(u_dev, less, out=self._us[s])
-        np.dot(self._M, self._xrows[s], out=self._prows[nxt])      # _propagate(s, nxt)
+        self._propagate(s, nxt, self._has_Bd)
         self._full[nxt] = False
         if self._marked[nxt]:
             self._ymask[nxt] = False
@@ -425,7 +413,7 @@ class DisturbanceEstimator:
         H = self._H
         s = self._k % H
         self._u[s] = np.asarray(u_dev, float)
-        self._propagate(s, (self._k + 1) % H)
+        self._propagate(s, (self._k + 1) % H, self._has_Bd)
         self._u_prev = self._us[s]
 
     def estimate(self) -> tuple[np.ndarray, np.ndarray, bool]:
