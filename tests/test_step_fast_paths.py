@@ -21,7 +21,7 @@ from mpcproto.control.mpc_results import StepDiagnostics, blank_diagnostics
 
 def feedthrough_model(Ts=1.0):
     """A 3-state unit with two MVs, one DV and direct terms everywhere (D, Dd, Bd not zero):
-    the common path's stacked prediction must carry all of them."""
+    the common path's correction and prediction must carry all of them."""
     A = np.array([[0.85, 0.10, 0.0], [0.0, 0.9, 0.05], [0.0, 0.0, 0.7]])
     B = np.array([[0.2, 0.0], [0.0, 0.1], [0.3, 0.2]])
     Bd = np.array([[0.1], [0.05], [0.0]])

@@ -78,11 +78,15 @@ class ControllerRuntime:
         self._ff = np.asarray(r.feedforward, bool)
         self._ff_all = bool(self._ff.all())
         self._all_known, self._all_used = np.ones(m.nu, bool).tobytes(), np.ones(m.nd, bool).tobytes()
+        self._unused_key, self._unused = None, None
         self._sy_list = np.asarray(self._sy, float).tolist()
         self._su_list, self._op_u_list = np.asarray(self._su, float).tolist(), self._op_u.tolist()
-        # all slacks zero (ny, N): the per-CV largest slack of that case, by the same arithmetic
+        # all slacks zero (ny, N): the relaxed CVs and the largest slack of that case, by the
+        # same arithmetic as the step's general rule
         self._zero_slacks = bytes(8 * m.ny * self._N)
-        self._zero_smax = [0.0 * b for b in self._sy_list]
+        zero = [0.0 * b for b in self._sy_list]
+        self._zero_relaxed = [n for n, a, b in zip(m.cv_names, zero, self._slack_tol_list) if a > b]
+        self._zero_slack_max = max(max(zero), 0.0) if zero else 0.0
         self._lims = None
         self._z[:] = 0.0
         self._forecast_in_z = False
@@ -285,8 +289,11 @@ class ControllerRuntime:
         if not self._ff_all:
             use &= self._ff
         d_now = dv - self._op_d
-        if use.tobytes() != self._all_used:      # (bytes of the booleans) some DV not used
-            d_now[~use] = 0.0
+        key = use.tobytes()
+        if key != self._all_used:                # (bytes of the booleans) some DV not used
+            if key != self._unused_key:          # the DVs not used, kept while they stay so
+                self._unused_key, self._unused = key, ~use
+            d_now[self._unused] = 0.0
         # ---- estimator
         y = np.asarray(meas.y, float)
         if y.shape != self._shape_y:
@@ -337,14 +344,15 @@ class ControllerRuntime:
             self._plan = None
             self._plan_age = 0
             S = res.values["slack"]
+            diag.fallback = False
             if S.tobytes() == self._zero_slacks:   # every slack +0.0 (bit for bit): the common case
-                smax_cv = self._zero_smax
+                relaxed = self._zero_relaxed.copy()
+                diag.slack_max = self._zero_slack_max
             else:
                 smax_cv = [a * b for a, b in zip(S.max(axis=1).tolist(), self._sy_list)]
-            tol = self._slack_tol_list
-            relaxed = [names[i] for i, (a, b) in enumerate(zip(smax_cv, tol)) if a > b]
-            diag.fallback = False
-            diag.slack_max = max(max(smax_cv), 0.0) if smax_cv else 0.0
+                tol = self._slack_tol_list
+                relaxed = [names[i] for i, (a, b) in enumerate(zip(smax_cv, tol)) if a > b]
+                diag.slack_max = max(max(smax_cv), 0.0) if smax_cv else 0.0
             diag.cv_limits_relaxed = bool(relaxed)
             diag.relaxed_cvs = relaxed
             status = STATUS_OK
