@@ -180,25 +180,17 @@ def project_with_activity(u, u_prev, lo, hi, max_move, *, what: str = "project_c
 
 def _project_counted(us, ps, los, his, rs, what, rel_tol):
     """:func:`project_value` and :func:`_activity` per MV in one loop, with the activity
-    counted: the same comparisons on the same numbers, inlined (a controller step's common
-    path; ``abs(x) <= tol`` written ``-tol <= x <= tol``, ``max(1.0, |v|)`` as a test that
-    also gives 1.0 for a NaN)."""
+    counted: the same comparisons on the same numbers, the activity inlined (a controller
+    step's common path; ``abs(x) <= tol`` written ``-tol <= x <= tol``, ``max(1.0, |v|)`` as a
+    test that also gives 1.0 for a NaN)."""
     out, at_limit = [], []
     n_rate = n_over = 0
     clipped = 0.0
     j = 0
     for v0, p, a, b, r in zip(us, ps, los, his, rs):
-        if a > b or r < 0:                      # the refusal exactly as project_value words it
+        if a > b or r < 0:                      # refused: the message names the MV
             project_value(v0, p, a, b, r, what=f"{what} (MV {j})")
-        v = p if v0 != v0 else v0               # no request: hold the previous MV
-        if v > p + r:                           # the rate limit (skipped where p or r is NaN)
-            v = p + r
-        elif v < p - r:
-            v = p - r
-        if v < a:                               # the hard limits last: they win
-            v = a
-        elif v > b:
-            v = b
+        v = project_value(v0, p, a, b, r)
         out.append(v)
         if v != v0:                             # (a NaN difference, once there, stays)
             d = abs(v - v0)

@@ -139,15 +139,8 @@ class ControllerRuntime:
         c = self._lims
         if c is None or c.resolved is not self._resolved:
             c = self._lims = _LimitCache(self._resolved, self.dmodel.nu, self.dmodel.ny)
-        su, sy = c.shape_u, c.shape_y
-        a, b = targets.mv_low, targets.mv_high
-        a = c.none_lo_u if a is None else np.asarray(a, float)
-        b = c.none_hi_u if b is None else np.asarray(b, float)
-        if a.shape != su:
-            a = self._vec(a, c.nu, "targets.mv_low", -np.inf)
-        if b.shape != su:
-            b = self._vec(b, c.nu, "targets.mv_high", np.inf)
-        key = a.tobytes() + b.tobytes()
+        a, b, key = self._target_pair(targets.mv_low, targets.mv_high, c.none_lo_u, c.none_hi_u,
+                                      "mv")
         if key == c.mv_key:
             mv_lo, mv_hi = c.mv
         else:
@@ -158,7 +151,7 @@ class ControllerRuntime:
             rate = c.resolved.max_move
         else:
             tr = np.asarray(tr, float)
-            if tr.shape != su:
+            if tr.shape != c.shape_u:
                 tr = self._vec(tr, c.nu, "targets.mv_rate", np.inf)
             key = tr.tobytes()
             if key == c.rate_key:
@@ -166,14 +159,8 @@ class ControllerRuntime:
             else:
                 rate = self._rate_limits(tr)
                 c.rate_key, c.rate, c.rate_list = key, rate, rate.tolist()
-        a, b = targets.cv_low, targets.cv_high
-        a = c.none_lo_y if a is None else np.asarray(a, float)
-        b = c.none_hi_y if b is None else np.asarray(b, float)
-        if a.shape != sy:
-            a = self._vec(a, c.ny, "targets.cv_low", -np.inf)
-        if b.shape != sy:
-            b = self._vec(b, c.ny, "targets.cv_high", np.inf)
-        key = a.tobytes() + b.tobytes()
+        a, b, key = self._target_pair(targets.cv_low, targets.cv_high, c.none_lo_y, c.none_hi_y,
+                                      "cv")
         if key == c.cv_key:
             cv_lo, cv_hi = c.cv
         else:
@@ -182,10 +169,22 @@ class ControllerRuntime:
             c.cv_key, c.cv = key, (cv_lo, cv_hi)
         sp_ = targets.setpoint
         sp_ = c.none_sp if sp_ is None else np.asarray(sp_, float)
-        if sp_.shape != sy:
+        if sp_.shape != c.shape_y:
             sp_ = self._vec(sp_, c.ny, "targets.setpoint", np.nan)
         c.lists = c.mv_lists + (c.max_move_list if tr is None else c.rate_list,)
         return mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_
+
+    def _target_pair(self, low, high, none_low, none_high, kind: str):
+        """A target's low and high arrays (None: none) as float arrays of the model's length
+        (checked) and their byte key."""
+        low = none_low if low is None else np.asarray(low, float)
+        high = none_high if high is None else np.asarray(high, float)
+        shape = none_low.shape
+        if low.shape != shape:
+            low = self._vec(low, shape[0], f"targets.{kind}_low", -np.inf)
+        if high.shape != shape:
+            high = self._vec(high, shape[0], f"targets.{kind}_high", np.inf)
+        return low, high, low.tobytes() + high.tobytes()
 
     def _mv_limits(self, low, high):
         """The targets' MV limits intersected with the settings (checked, read-only)."""
