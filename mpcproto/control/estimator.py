@@ -63,6 +63,9 @@ DISTURBANCE_MODELS = ("auto", "output", "input")
 NO_EVENTS: dict[str, Any] = {"rejected": (), "late": (), "too_old": ()}
 
 
+#: the attributes :meth:`DisturbanceEstimator._row_views` makes (not copied: rebuilt)
+_ROW_VIEWS = ("_priors", "_posts", "_us", "_xs", "_ws")
+
 #: a float's 8 bytes as numpy stores a float64 (native order)
 _pack_float = struct.Struct("=d").pack
 
@@ -264,9 +267,7 @@ class DisturbanceEstimator:
         self._H = H
         self._prior, self._post = np.zeros((H, na)), np.zeros((H, na))
         self._u, self._d = np.zeros((H, nu)), np.zeros((H, self.dmodel.nd))
-        # their rows as views (a list index is cheaper than a numpy one on the per-sample path)
-        self._priors, self._posts, self._us = list(self._prior), list(self._post), list(self._u)
-        self._xs, self._ws = [r[: self.nx_] for r in self._post], [r[self.nx_:] for r in self._post]
+        self._row_views()
         # which CVs were used at each sample: _full[s] (every CV, the common path: the row of
         # _ymask is not written), else the row of _ymask (_marked[s]: the row has entries)
         self._ymask = np.zeros((H, ny), bool)
@@ -281,6 +282,24 @@ class DisturbanceEstimator:
         self._u_prev = np.zeros(nu)       # the input before sample 0 (later: a view of the last)
         self._started = False
         self.counts = {"rejected_nonfinite": 0, "late_used": 0, "too_old": 0}
+
+    def _row_views(self) -> None:
+        """The ring buffers' rows as views (a list index is cheaper than a numpy one on the
+        per-sample path); rebuilt after a copy, which would otherwise copy each view apart."""
+        self._priors, self._posts, self._us = list(self._prior), list(self._post), list(self._u)
+        self._xs = [r[: self.nx_] for r in self._post]
+        self._ws = [r[self.nx_:] for r in self._post]
+
+    def __getstate__(self) -> dict[str, Any]:
+        state = dict(self.__dict__)
+        for k in _ROW_VIEWS:
+            state.pop(k, None)
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        if "_prior" in state:
+            self._row_views()
 
     def sample_index(self, t: float) -> int:
         """Nearest sample index of time *t* (sample 0 at the reset time)."""
