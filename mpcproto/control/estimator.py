@@ -40,6 +40,7 @@ counted; non-finite values are rejected and flagged.
 
 from __future__ import annotations
 
+import struct
 from collections.abc import Mapping
 from typing import Any
 
@@ -57,8 +58,16 @@ OWNER = "DisturbanceEstimator"
 __all__ = ["DisturbanceEstimator"]
 
 DISTURBANCE_MODELS = ("auto", "output", "input")
-_NOTHING: dict[str, Any] = {"rejected": (), "late": (), "too_old": ()}
+#: what :meth:`DisturbanceEstimator.update` returns when every CV was measured now (the same
+#: object each time: a caller may test ``info is NO_EVENTS``; never mutate it)
+NO_EVENTS: dict[str, Any] = {"rejected": (), "late": (), "too_old": ()}
 
+
+#: the attributes :meth:`DisturbanceEstimator._row_views` makes (not copied: rebuilt)
+_ROW_VIEWS = ("_priors", "_posts", "_us", "_xs", "_ws")
+
+#: a float's 8 bytes as numpy stores a float64 (native order)
+_pack_float = struct.Struct("=d").pack
 
 _DETECTABLE = ("a disturbance model the estimator can detect ('output' disturbances, or an "
                "'input' model only where MVs reach the CV)")
@@ -213,6 +222,8 @@ class DisturbanceEstimator:
         self._gains: dict[bytes, np.ndarray] = {}
         self.gain_ = self._gain(np.ones(ny, bool))
         self.nx_, self.na_, self.ny_ = nx, na, ny
+        self._Ts = float(m.Ts)
+        self._all_true, self._all_true_a = np.ones(ny, bool).tobytes(), np.ones(na, bool).tobytes()
         self.is_built = True
         self.reset()
         return self
@@ -250,20 +261,45 @@ class DisturbanceEstimator:
         na, ny = self.na_, self.ny_
         self._t0 = float(t0)
         self._k = 0                       # index of the current sample (time t0 + k Ts)
-        self._prior = np.zeros((H, na))   # ring buffers indexed by k % H
-        self._post = np.zeros((H, na))
-        self._u = np.zeros((H, self.dmodel.nu))   # input applied from sample k to k+1
-        self._d = np.zeros((H, self.dmodel.nd))   # DV deviation at sample k
+        nu = self.dmodel.nu
+        # ring buffers indexed by k % H: prior and posterior estimates, the input applied from
+        # sample k to k+1, the DV deviation at sample k
+        self._H = H
+        self._prior, self._post = np.zeros((H, na)), np.zeros((H, na))
+        self._u, self._d = np.zeros((H, nu)), np.zeros((H, self.dmodel.nd))
+        self._row_views()
+        # which CVs were used at each sample: _full[s] (every CV, the common path: the row of
+        # _ymask is not written), else the row of _ymask (_marked[s]: the row has entries)
         self._ymask = np.zeros((H, ny), bool)
+        self._full, self._marked = [False] * H, [False] * H
+        self._all_cvs = np.ones(ny, bool)
         self._yval = np.zeros((H, ny))
         xa = np.zeros(na)
         if x0 is not None:
             xa[: self.nx_] = np.asarray(x0, float).reshape(-1)
         self._prior[0] = xa
         self._post[0] = xa
-        self._u_prev = np.zeros(self.dmodel.nu)
+        self._u_prev = np.zeros(nu)       # the input before sample 0 (later: a view of the last)
         self._started = False
         self.counts = {"rejected_nonfinite": 0, "late_used": 0, "too_old": 0}
+
+    def _row_views(self) -> None:
+        """The ring buffers' rows as views (a list index is cheaper than a numpy one on the
+        per-sample path); rebuilt after a copy, which would otherwise copy each view apart."""
+        self._priors, self._posts, self._us = list(self._prior), list(self._post), list(self._u)
+        self._xs = [r[: self.nx_] for r in self._post]
+        self._ws = [r[self.nx_:] for r in self._post]
+
+    def __getstate__(self) -> dict[str, Any]:
+        state = dict(self.__dict__)
+        for k in _ROW_VIEWS:
+            state.pop(k, None)
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        if "_prior" in state:
+            self._row_views()
 
     def sample_index(self, t: float) -> int:
         """Nearest sample index of time *t* (sample 0 at the reset time)."""
@@ -276,19 +312,21 @@ class DisturbanceEstimator:
         Returns a dict with ``rejected`` (CV indices with fresh non-finite values), ``late`` (CV
         indices used at an earlier sample) and ``too_old`` (dropped).
         """
-        self._check()
-        k = self.sample_index(t)
-        H = self._prior.shape[0]
+        if not self.is_built:
+            self._check()
+        Ts = self._Ts
+        k = int(round((float(t) - self._t0) / Ts))          # sample_index(t)
+        H = self._H
         if self._started:
             if k != self._k + 1:
                 raise fail("DisturbanceEstimator.update()", "t",
                            f"the next sample (index {self._k + 1}, "
-                           f"t={self._t0 + (self._k + 1) * self.dmodel.Ts:g})",
+                           f"t={self._t0 + (self._k + 1) * Ts:g})",
                            f"t={t:g} (index {k})", "Call predict() once per sample.")
         else:
             if k != self._k:
                 # first update after reset: align the clock on the first call
-                self._t0 = float(t) - self._k * self.dmodel.Ts
+                self._t0 = float(t) - self._k * Ts
                 k = self._k
         self._k = k
         slot = k % H
@@ -296,21 +334,26 @@ class DisturbanceEstimator:
         y_dev = np.asarray(y_dev, float)
         fresh = np.asarray(fresh, bool)
         taken_at = np.asarray(taken_at, float)
-        half = 0.5 * self.dmodel.Ts
-        if (fresh.all() and np.isfinite(y_dev).all()
-                and taken_at.min() > t - half and taken_at.max() < t + half):
-            # the common case: every CV measured now
-            self._ymask[slot] = True
+        half = 0.5 * Ts
+        # the common case, every CV measured now: first a cheap test that implies the full one
+        # (bytes compared: all fresh, every value finite, every value taken at t bit for bit),
+        # then the full test
+        all_true = self._all_true
+        if ((fresh.tobytes() == all_true and np.isfinite(y_dev).tobytes() == all_true
+             and taken_at.tobytes() == _pack_float(t) * self.ny_ and t - half < t < t + half)
+                or (fresh.all() and np.isfinite(y_dev).all()
+                    and taken_at.min() > t - half and taken_at.max() < t + half)):
+            self._full[slot] = True
             self._yval[slot] = y_dev
-            xa = self._prior[slot]
-            yhat = self.C_ @ xa
+            xa = self._priors[slot]
+            yhat = self.C_.dot(xa)
             if self._has_D:
-                yhat += self.D_ @ (self._u[(k - 1) % H] if k > 0 else self._u_prev)
+                yhat += self.D_.dot(self._us[(k - 1) % H] if k > 0 else self._u_prev)
             if self._has_Dd:
-                yhat += self.Dd_ @ d_dev
-            self._post[slot] = xa + self.gain_ @ (y_dev - yhat)
+                yhat += self.Dd_.dot(d_dev)
+            np.add(xa, self.gain_.dot(y_dev - yhat), out=self._posts[slot])
             self._started = True
-            return _NOTHING
+            return NO_EVENTS
         rejected, late, too_old = [], [], []
         first = k
         for i in np.flatnonzero(fresh):
@@ -324,6 +367,7 @@ class DisturbanceEstimator:
                 continue
             s = j % H
             self._ymask[s, i] = True
+            self._marked[s] = True
             self._yval[s, i] = v
             if j < k:
                 late.append(int(i))
@@ -335,7 +379,7 @@ class DisturbanceEstimator:
         for j in range(first, k + 1):
             s = j % H
             xa = self._prior[s].copy()
-            mask = self._ymask[s]
+            mask = self._all_cvs if self._full[s] else self._ymask[s]
             if mask.any():
                 u_held = self._u[(j - 1) % H] if j > 0 else self._u_prev
                 yhat = self.C_ @ xa + self.D_ @ u_held + self.Dd_ @ self._d[s]
@@ -343,24 +387,39 @@ class DisturbanceEstimator:
                 xa = xa + L @ (self._yval[s, mask] - yhat[mask])
             self._post[s] = xa
             if j < k:
-                self._prior[(j + 1) % H] = (self.A_ @ xa + self.Ba_ @ self._u[s]
-                                            + self.Bda_ @ self._d[s])
+                self._propagate(s, (j + 1) % H, True)
         self._started = True
         return {"rejected": rejected, "late": late, "too_old": too_old}
 
-    def predict(self, u_dev: np.ndarray) -> None:
-        """Propagate to the next sample with the MVs *u_dev* applied from now on."""
-        self._check()
-        H = self._prior.shape[0]
+    def _propagate(self, s: int, nxt: int, dvs: bool) -> None:
+        """The prior of the sample after slot *s* from the posterior, the input and (*dvs*:
+        always, or only where Bd is not zero) the DVs of slot *s*: ``A post + B u + Bd d``,
+        summed in that order, written into the ring."""
+        prior = self._priors[nxt]
+        np.dot(self.A_, self._posts[s], out=prior)
+        prior += self.Ba_.dot(self._us[s])
+        if dvs:
+            prior += self.Bda_.dot(self._d[s])
+
+    def predict(self, u_dev: np.ndarray, *, less: np.ndarray | None = None) -> None:
+        """Propagate to the next sample with the MVs *u_dev* applied from now on (deviation;
+        with *less*: ``u_dev - less``, the absolute MVs and the operating point's, subtracted
+        into the estimator's own buffer)."""
+        if not self.is_built:
+            self._check()
+        H = self._H
         s = self._k % H
-        self._u[s] = u_dev
         nxt = (self._k + 1) % H
-        xn = self.A_ @ self._post[s] + self.Ba_ @ u_dev
-        if self._has_Bd:
-            xn += self.Bda_ @ self._d[s]
-        self._prior[nxt] = xn
-        self._ymask[nxt] = False
-        self._u_prev = np.asarray(u_dev, float).copy()
+        if less is None:
+            self._u[s] = u_dev
+        else:
+            np.subtract(u_dev, less, out=self._us[s])
+        self._propagate(s, nxt, self._has_Bd)
+        self._full[nxt] = False
+        if self._marked[nxt]:
+            self._ymask[nxt] = False
+            self._marked[nxt] = False
+        self._u_prev = self._us[s]       # a view: the slot is not written again before it is read
 
     def revise_input(self, u_dev: np.ndarray) -> None:
         """Replace the MVs of the last :meth:`predict` by those actually applied (readback).
@@ -370,22 +429,25 @@ class DisturbanceEstimator:
         it too, so a stuck or clipped valve does not show up as a disturbance.
         """
         self._check()
-        H = self._prior.shape[0]
+        H = self._H
         s = self._k % H
-        u_dev = np.asarray(u_dev, float)
-        self._u[s] = u_dev
-        xn = self.A_ @ self._post[s] + self.Ba_ @ u_dev
-        if self._has_Bd:
-            xn += self.Bda_ @ self._d[s]
-        self._prior[(self._k + 1) % H] = xn
-        self._u_prev = u_dev.copy()
+        self._u[s] = np.asarray(u_dev, float)
+        self._propagate(s, (self._k + 1) % H, self._has_Bd)
+        self._u_prev = self._us[s]
+
+    def estimate(self) -> tuple[np.ndarray, np.ndarray, bool]:
+        """``(state, disturbance_estimate, finite)``: the two current estimates (views, as the
+        properties return them) and whether every entry of both is finite."""
+        s = self._k % self._H
+        return (self._xs[s], self._ws[s],
+                np.isfinite(self._posts[s]).tobytes() == self._all_true_a)
 
     @property
     def state(self) -> np.ndarray:
         """Current filtered plant (and delay) state, deviation variables."""
-        return self._post[self._k % self._prior.shape[0], : self.nx_]
+        return self._xs[self._k % self._H]
 
     @property
     def disturbance_estimate(self) -> np.ndarray:
         """Current estimate of the per-CV disturbance states."""
-        return self._post[self._k % self._prior.shape[0], self.nx_:]
+        return self._ws[self._k % self._H]

@@ -142,13 +142,68 @@ def _activity(cols, shape, rel_tol):
 
 
 def project_with_activity(u, u_prev, lo, hi, max_move, *, what: str = "project_command",
-                          rel_tol: float = 1e-6):
+                          rel_tol: float = 1e-6, summary: bool = False):
     """:func:`project_command` and the :func:`limit_activity` of its result in one pass:
     ``(command, at_limit, at_rate, over_rate)`` (the inputs converted once; the same
-    arithmetic as the two calls)."""
-    u = np.asarray(u, float)
-    shape = u.shape
-    cols = [_floats(a, shape) for a in (u, u_prev, lo, hi, max_move)]
+    arithmetic as the two calls).
+
+    With ``summary=True`` (what a controller step records; the activity counted in the same
+    pass instead of three boolean arrays): ``(command, clipped, at_limit, n_at_rate,
+    n_over_rate)`` with ``clipped`` the largest ``|command - u|`` (0.0 for no MV; NaN where a
+    command or a request is NaN, as ``np.abs(command - u).max(initial=0.0)``), ``at_limit`` the
+    list of flat indices at a hard limit and the two counts as ints.  In this form each input
+    may also be a list of floats of the command's length (taken as it is: no conversion).
+    """
+    if summary and type(u) is list:
+        shape = (len(u),)
+    else:
+        u = np.asarray(u, float)
+        shape = u.shape
+    if len(shape) == 1:                 # the common case: flat lists without broadcasting
+        n = shape[0]
+        cols = [u if type(u) is list else u.tolist()]
+        for a in (u_prev, lo, hi, max_move):
+            if summary and type(a) is list and len(a) == n:
+                cols.append(a)
+                continue
+            a = np.asarray(a, float)
+            cols.append(a.tolist() if a.shape == shape else _floats(a, shape))
+    else:
+        cols = [_floats(a, shape) for a in (u, u_prev, lo, hi, max_move)]
+    if summary:
+        out, clipped, at_limit, n_rate, n_over = _project_counted(*cols, what, rel_tol)
+        return np.array(out, float).reshape(shape), clipped, at_limit, n_rate, n_over
     out = _project(cols, what)
     cols[0] = out
     return (np.array(out, float).reshape(shape),) + _activity(cols, shape, rel_tol)
+
+
+def _project_counted(us, ps, los, his, rs, what, rel_tol):
+    """:func:`project_value` and :func:`_activity` per MV in one loop, with the activity
+    counted: the same comparisons on the same numbers, the activity inlined (a controller
+    step's common path; ``abs(x) <= tol`` written ``-tol <= x <= tol``, ``max(1.0, |v|)`` as a
+    test that also gives 1.0 for a NaN)."""
+    out, at_limit = [], []
+    n_rate = n_over = 0
+    clipped = 0.0
+    j = 0
+    for v0, p, a, b, r in zip(us, ps, los, his, rs):
+        if a > b or r < 0:                      # refused: the message names the MV
+            project_value(v0, p, a, b, r, what=f"{what} (MV {j})")
+        v = project_value(v0, p, a, b, r)
+        out.append(v)
+        if v != v0:                             # (a NaN difference, once there, stays)
+            d = abs(v - v0)
+            if (d > clipped or d != d) and clipped == clipped:
+                clipped = d
+        tol = abs(v)
+        tol = rel_tol * (tol if tol > 1.0 else 1.0)
+        move = abs(v - p)
+        if -tol <= v - a <= tol or -tol <= v - b <= tol:
+            at_limit.append(j)
+        if -tol <= move - r <= tol:
+            n_rate += 1
+        if move > r + tol:
+            n_over += 1
+        j += 1
+    return out, clipped, at_limit, n_rate, n_over

@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["StepDiagnostics", "PlanResult", "ABSENT"]
+__all__ = ["StepDiagnostics", "PlanResult", "ABSENT", "blank_diagnostics"]
 
 
 class _Absent:
@@ -146,6 +146,15 @@ class StepDiagnostics(_FieldRecord):
     n_dropped_measurements: Any = ABSENT
     step_ms: Any = ABSENT
     counts: Any = ABSENT
+
+
+def blank_diagnostics() -> StepDiagnostics:
+    """A :class:`StepDiagnostics` with no field filled, as ``StepDiagnostics()`` (without the
+    keyword loop of ``__init__``: a step makes one per sample)."""
+    return _new(StepDiagnostics)
+
+
+_new = object.__new__
 
 
 @_with_fields

@@ -16,8 +16,9 @@ from ..exceptions import NotBuiltError
 from ..validation import fail
 from .base import (STATUS_FAILED, STATUS_FALLBACK, STATUS_HOLD, STATUS_MEASUREMENT_REJECTED,
                    STATUS_MV_NOT_FOLLOWING, STATUS_OK, ControlOutput, Measurement, Targets)
+from .estimator import NO_EVENTS
 from .limits import project_command, project_with_activity
-from .mpc_results import ABSENT, StepDiagnostics
+from .mpc_results import ABSENT, blank_diagnostics
 from .preview import rows_by_sample, stage_references
 
 __all__ = ["ControllerRuntime"]
@@ -69,7 +70,24 @@ class ControllerRuntime:
         self._slack_tol = 1e-4 * r["cv_scale"]
         self._slack_tol_list = self._slack_tol.tolist()
         self._mv_names = list(m.mv_names)
+        self._cv_names = list(m.cv_names)
         self._fast = self.fast_path and self.solver_ in ("osqp", "daqp")
+        # the step's constants: shapes, the feedforward flags, all MVs known
+        self._nu, self._ny, self._nd = m.nu, m.ny, m.nd
+        self._shape_u, self._shape_y, self._shape_d = (m.nu,), (m.ny,), (m.nd,)
+        self._ff = np.asarray(r.feedforward, bool)
+        self._ff_all = bool(self._ff.all())
+        self._all_known, self._all_used = np.ones(m.nu, bool).tobytes(), np.ones(m.nd, bool).tobytes()
+        self._unused_key, self._unused = None, None
+        self._sy_list = np.asarray(self._sy, float).tolist()
+        self._su_list, self._op_u_list = np.asarray(self._su, float).tolist(), self._op_u.tolist()
+        # all slacks zero (ny, N): the relaxed CVs and the largest slack of that case, by the
+        # same arithmetic as the step's general rule
+        self._zero_slacks = bytes(8 * m.ny * self._N)
+        zero = [0.0 * b for b in self._sy_list]
+        self._zero_relaxed = [n for n, a, b in zip(m.cv_names, zero, self._slack_tol_list) if a > b]
+        self._zero_slack_max = max(max(zero), 0.0) if zero else 0.0
+        self._lims = None
         self._z[:] = 0.0
         self._forecast_in_z = False
         self._u_prev = np.asarray(op.u, float).copy()
@@ -82,6 +100,7 @@ class ControllerRuntime:
         self._clamp_hi = np.full(nu, np.inf)
         self._clamp_lo = np.full(nu, -np.inf)
         self._clamp_left = np.zeros(nu, int)
+        self._clamping = False                # any _clamp_left > 0 (a Python flag: cheap to test)
         self.counts = {"steps": 0, "fallbacks": 0, "holds": 0, "inaccurate": 0, "failed_solves": 0,
                        "target_fallbacks": 0, "rejected_measurements": 0, "late_measurements": 0,
                        "backup_solves": 0, "readback_differs": 0, "mv_not_following": 0}
@@ -110,32 +129,83 @@ class ControllerRuntime:
         return stage_references(program, sp_, self._N)
 
     def _limits(self, targets: Targets):
-        """Hard MV limits and rates (absolute), CV soft limits and setpoints for this sample."""
-        r = self._resolved
-        m = self.dmodel
-        nu, ny = m.nu, m.ny
+        """Hard MV limits and rates (absolute), CV soft limits and setpoints for this sample.
+
+        The intersections with the settings are kept for the last targets seen (compared byte
+        for byte, the checks done when they change) and handed out read-only: a sample whose
+        limits did not change costs no arithmetic."""
         if targets is None:
             raise fail("PredictiveController.step()", "targets", "a Targets object", "None")
-        mv_lo = np.maximum(self._vec(targets.mv_low, nu, "targets.mv_low", -np.inf), r["mv_low"])
-        mv_hi = np.minimum(self._vec(targets.mv_high, nu, "targets.mv_high", np.inf), r["mv_high"])
+        c = self._lims
+        if c is None or c.resolved is not self._resolved:
+            c = self._lims = _LimitCache(self._resolved, self.dmodel.nu, self.dmodel.ny)
+        a, b, key = self._target_pair(targets.mv_low, targets.mv_high, c.none_lo_u, c.none_hi_u,
+                                      "mv")
+        if key == c.mv_key:
+            mv_lo, mv_hi = c.mv
+        else:
+            mv_lo, mv_hi = self._mv_limits(a, b)
+            c.mv_key, c.mv, c.mv_lists = key, (mv_lo, mv_hi), (mv_lo.tolist(), mv_hi.tolist())
+        tr = targets.mv_rate
+        if tr is None:
+            rate = c.resolved.max_move
+        else:
+            tr = np.asarray(tr, float)
+            if tr.shape != c.shape_u:
+                tr = self._vec(tr, c.nu, "targets.mv_rate", np.inf)
+            key = tr.tobytes()
+            if key == c.rate_key:
+                rate = c.rate
+            else:
+                rate = self._rate_limits(tr)
+                c.rate_key, c.rate, c.rate_list = key, rate, rate.tolist()
+        a, b, key = self._target_pair(targets.cv_low, targets.cv_high, c.none_lo_y, c.none_hi_y,
+                                      "cv")
+        if key == c.cv_key:
+            cv_lo, cv_hi = c.cv
+        else:
+            cv_lo = _read_only(np.fmax(a, c.resolved.cv_low))
+            cv_hi = _read_only(np.fmin(b, c.resolved.cv_high))
+            c.cv_key, c.cv = key, (cv_lo, cv_hi)
+        sp_ = targets.setpoint
+        sp_ = c.none_sp if sp_ is None else np.asarray(sp_, float)
+        if sp_.shape != c.shape_y:
+            sp_ = self._vec(sp_, c.ny, "targets.setpoint", np.nan)
+        c.lists = c.mv_lists + (c.max_move_list if tr is None else c.rate_list,)
+        return mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_
+
+    def _target_pair(self, low, high, none_low, none_high, kind: str):
+        """A target's low and high arrays (None: none) as float arrays of the model's length
+        (checked) and their byte key."""
+        low = none_low if low is None else np.asarray(low, float)
+        high = none_high if high is None else np.asarray(high, float)
+        shape = none_low.shape
+        if low.shape != shape:
+            low = self._vec(low, shape[0], f"targets.{kind}_low", -np.inf)
+        if high.shape != shape:
+            high = self._vec(high, shape[0], f"targets.{kind}_high", np.inf)
+        return low, high, low.tobytes() + high.tobytes()
+
+    def _mv_limits(self, low, high):
+        """The targets' MV limits intersected with the settings (checked, read-only)."""
+        r, m = self._resolved, self.dmodel
+        mv_lo = np.maximum(low, r.mv_low)
+        mv_hi = np.minimum(high, r.mv_high)
         if (mv_lo > mv_hi).any():
             j = int(np.flatnonzero(mv_lo > mv_hi)[0])
             raise fail("PredictiveController.step()", f"targets.mv_low.{m.mv_names[j]}",
                        f"MV '{m.mv_names[j]}' with its low limit at or below its high limit "
                        f"{mv_hi[j]:g}", f"{mv_lo[j]:g}",
                        note="targets intersected with the settings")
-        rate = r["max_move"]
-        if targets.mv_rate is not None:
-            tr = self._vec(targets.mv_rate, nu, "targets.mv_rate", np.inf)
-            if np.any(tr <= 0):
-                j = int(np.flatnonzero(tr <= 0)[0])
-                raise fail("PredictiveController.step()", f"targets.mv_rate.{m.mv_names[j]}",
-                           "a rate > 0", repr(tr[j]))
-            rate = np.fmin(tr, rate)
-        cv_lo = np.fmax(self._vec(targets.cv_low, ny, "targets.cv_low", -np.inf), r["cv_low"])
-        cv_hi = np.fmin(self._vec(targets.cv_high, ny, "targets.cv_high", np.inf), r["cv_high"])
-        sp_ = self._vec(targets.setpoint, ny, "targets.setpoint", np.nan)
-        return mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_
+        return _read_only(mv_lo), _read_only(mv_hi)
+
+    def _rate_limits(self, tr):
+        """The targets' rate limits intersected with the settings (checked, read-only)."""
+        if np.any(tr <= 0):
+            j = int(np.flatnonzero(tr <= 0)[0])
+            raise fail("PredictiveController.step()", f"targets.mv_rate.{self.dmodel.mv_names[j]}",
+                       "a rate > 0", repr(tr[j]))
+        return _read_only(np.fmin(tr, self._resolved.max_move))
 
     def step(self, t: float, meas: Measurement, dv: np.ndarray, targets: Targets,
              dv_forecast: np.ndarray | None = None, *,
@@ -192,63 +262,72 @@ class ControllerRuntime:
         if self._op is None:
             raise NotBuiltError("PredictiveController.step(): call .reset(op, t0) before the first step.")
         t_start = time.perf_counter()
-        m, r = self.dmodel, self._resolved
-        N = self._N
-        op_u, op_d, op_y = self._op_u, self._op_d, self._op_y
-        nu, ny, nd = m.nu, m.ny, m.nd
-        names = m.cv_names
-        diag = StepDiagnostics()
+        op_u = self._op_u
+        names = self._cv_names
+        diag = blank_diagnostics()
         # ---- inputs checked before anything changes state
         mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_ = self._limits(targets)
-        dv_forecast = self._forecast(dv_forecast)
-        preview = self._preview(setpoint_program, sp_)
+        if dv_forecast is not None:
+            dv_forecast = self._forecast(dv_forecast)
+        preview = None if setpoint_program is None else self._preview(setpoint_program, sp_)
         if u_applied is not None:
-            ua = self._vec(u_applied, nu, "u_applied", np.nan)
-            known = np.isfinite(ua)
-            if known.any():
-                ua = np.where(known, ua, self._u_prev)
-                if not np.array_equal(ua, self._u_prev):
-                    if self.counts["steps"] > 0:      # the estimator has predicted with u_prev
-                        self.estimator_.revise_input(ua - op_u)
-                        self._note_not_following(self._u_prev, ua)
-                    self._u_prev = ua
-                    self.counts["readback_differs"] += 1
-                self._ua_prev = ua.copy()
-        if self._clamp_left.any():
+            self._readback(u_applied)
+        clamped = self._clamping              # (_clamped counts the clamps down)
+        if clamped:
             mv_lo, mv_hi = self._clamped(mv_lo, mv_hi)
             diag.mvs_not_following = [self._mv_names[j] for j in np.flatnonzero(self._clamp_left)]
         # ---- measured DVs (deviation); unknown / not fed forward -> 0
-        dv = np.full(nd, np.nan) if dv is None else self._vec(dv, nd, "dv", np.nan)
-        use = r["feedforward"] & np.isfinite(dv)
-        d_now = np.where(use, dv - op_d, 0.0)
+        nd = self._nd
+        if dv is None:
+            dv = np.full(nd, np.nan)
+        else:
+            dv = np.asarray(dv, float)
+            if dv.shape != self._shape_d:
+                dv = self._vec(dv, nd, "dv", np.nan)
+        use = np.isfinite(dv)
+        if not self._ff_all:
+            use &= self._ff
+        d_now = dv - self._op_d
+        key = use.tobytes()
+        if key != self._all_used:                # (bytes of the booleans) some DV not used
+            if key != self._unused_key:          # the DVs not used, kept while they stay so
+                self._unused_key, self._unused = key, ~use
+            d_now[self._unused] = 0.0
         # ---- estimator
-        y = self._vec(meas.y, ny, "meas.y", np.nan)
-        taken = self._vec(meas.taken_at, ny, "meas.taken_at", np.nan)
+        y = np.asarray(meas.y, float)
+        if y.shape != self._shape_y:
+            y = self._vec(meas.y, self._ny, "meas.y", np.nan)
+        taken = np.asarray(meas.taken_at, float)
+        if taken.shape != self._shape_y:
+            taken = self._vec(meas.taken_at, self._ny, "meas.taken_at", np.nan)
         fresh = np.asarray(meas.fresh, bool)
-        if fresh.shape != (ny,):
-            raise fail("PredictiveController.step()", "meas.fresh", f"{ny} entries (model order)",
-                       f"shape {fresh.shape}")
-        info = self.estimator_.update(t, y - op_y, taken, fresh, d_now)
-        if info["rejected"]:
-            self.counts["rejected_measurements"] += len(info["rejected"])
-        if info["late"]:
-            self.counts["late_measurements"] += len(info["late"])
-        diag.rejected_measurements = [names[i] for i in info["rejected"]]
-        diag.late_measurements = [names[i] for i in info["late"]]
-        # readings older than the estimator's history (one taken before the run started, the
-        # steady state an analyzer reports first, is no loss)
-        diag.dropped_measurements = [names[i] for i in info["too_old"]
-                                        if self.estimator_.sample_index(taken[i]) >= 0]
+        if fresh.shape != self._shape_y:
+            raise fail("PredictiveController.step()", "meas.fresh",
+                       f"{self._ny} entries (model order)", f"shape {fresh.shape}")
+        est = self.estimator_
+        info = est.update(t, y - self._op_y, taken, fresh, d_now)
+        if info is NO_EVENTS:
+            diag.rejected_measurements, diag.late_measurements, diag.dropped_measurements = [], [], []
+        else:
+            if info["rejected"]:
+                self.counts["rejected_measurements"] += len(info["rejected"])
+            if info["late"]:
+                self.counts["late_measurements"] += len(info["late"])
+            diag.rejected_measurements = [names[i] for i in info["rejected"]]
+            diag.late_measurements = [names[i] for i in info["late"]]
+            # readings older than the estimator's history (one taken before the run started,
+            # the steady state an analyzer reports first, is no loss)
+            diag.dropped_measurements = [names[i] for i in info["too_old"]
+                                            if est.sample_index(taken[i]) >= 0]
         diag.backup_solves = 0
-        x = self.estimator_.state
-        w = self.estimator_.disturbance_estimate
+        x, w, finite = est.estimate()
         self.counts["steps"] += 1
-        if not (np.isfinite(x).all() and np.isfinite(w).all()):
+        if not finite:
             u = self._hold(mv_lo, mv_hi, rate)
             self.counts["failed_solves"] += 1
             diag.update(solver_status="estimate_not_finite", fallback=True, solve_ms=0.0,
                         target_ms=0.0, slack_max=float("nan"), active_mv_limits=0, iterations=None)
-            self.estimator_.reset(None, t)
+            est.reset(None, t)
             return self._finish(u, STATUS_FAILED, diag, t_start)
         res = self._optimize(x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
                              self._u_prev, diag, preview=preview)
@@ -257,49 +336,75 @@ class ControllerRuntime:
         diag.iterations = res.iterations
         if res.accepted:
             Us = res.values["u"]
-            u = Us[:, 0] * self._su + op_u
+            # the first move, absolute, as floats (the projection's own form): the same
+            # arithmetic as Us[:, 0] * su + op_u
+            u = [a * b + c for a, b, c in zip(Us[:, 0].tolist(), self._su_list, self._op_u_list)]
             self._plan_scaled = Us                  # (nu, M) scaled; unscaled on demand
             self._plan = None
             self._plan_age = 0
-            smax_cv = (res.values["slack"].max(axis=1) * self._sy).tolist()
-            tol = self._slack_tol_list
-            relaxed = [names[i] for i in range(ny) if smax_cv[i] > tol[i]]
+            S = res.values["slack"]
             diag.fallback = False
-            diag.slack_max = max(max(smax_cv), 0.0) if ny else 0.0
+            if S.tobytes() == self._zero_slacks:   # every slack +0.0 (bit for bit): the common case
+                relaxed = self._zero_relaxed.copy()
+                diag.slack_max = self._zero_slack_max
+            else:
+                smax_cv = [a * b for a, b in zip(S.max(axis=1).tolist(), self._sy_list)]
+                tol = self._slack_tol_list
+                relaxed = [names[i] for i, (a, b) in enumerate(zip(smax_cv, tol)) if a > b]
+                diag.slack_max = max(max(smax_cv), 0.0) if smax_cv else 0.0
             diag.cv_limits_relaxed = bool(relaxed)
             diag.relaxed_cvs = relaxed
             status = STATUS_OK
         else:
-            if res.status == "optimal_inaccurate":
-                self.counts["inaccurate"] += 1
-            else:
-                self.counts["failed_solves"] += 1
-            self.counts["fallbacks"] += 1
-            diag.fallback = True
-            diag.slack_max = float("nan")
-            diag.cv_limits_relaxed = None
-            diag.relaxed_cvs = []
-            if self._plan is None and self._plan_scaled is not None:
-                self._plan = self._plan_scaled * self._su_col + op_u[:, None]
-            if self.fallback == "shift" and self._plan is not None and self._plan_age + 1 < N:
-                self._plan_age += 1
-                u = self._plan[:, min(self._plan_age, self._M - 1)].copy()
-                status = STATUS_FALLBACK
-            else:
-                u = self._u_prev.copy()
-                status = STATUS_HOLD
-                self.counts["holds"] += 1
+            status, u = self._fall_back(res.status, diag, op_u)
         # ---- exact limits on what is applied (solver tolerance, a stale plan, a hold or a limit
         # that stepped past the MV must not break them): the one projection, hard limits win
-        asked = u
-        u, at_limit, at_rate, over_rate = project_with_activity(
-            asked, self._u_prev, mv_lo, mv_hi, rate, what="PredictiveController")
-        diag.clipped = float(np.abs(u - asked).max(initial=0.0))
-        diag.active_mv_limits = int(np.count_nonzero(at_limit))
-        diag.active_mv_limit_names = [self._mv_names[j] for j in at_limit.nonzero()[0]]
-        diag.active_rate_limits = int(np.count_nonzero(at_rate))
-        diag.limits_over_rate = int(np.count_nonzero(over_rate))
+        lo, hi, rt = (mv_lo, mv_hi, rate) if clamped else self._lims.lists
+        u, diag.clipped, at_limit, diag.active_rate_limits, diag.limits_over_rate = \
+            project_with_activity(u, self._u_prev, lo, hi, rt, what="PredictiveController",
+                                  summary=True)
+        diag.active_mv_limits = len(at_limit)
+        diag.active_mv_limit_names = [self._mv_names[j] for j in at_limit] if at_limit else []
         return self._finish(u, status, diag, t_start)
+
+    def _readback(self, u_applied):
+        """The MVs read back (checked): they replace the previous MVs where known."""
+        ua = np.asarray(u_applied, float)
+        if ua.shape != self._shape_u:
+            ua = self._vec(ua, self._nu, "u_applied", np.nan)
+        known = np.isfinite(ua)
+        if known.tobytes() == self._all_known:   # (bytes of the booleans) none replaced
+            ua = ua.copy()                        # ours: it may become the previous MVs
+        elif not known.any():
+            return
+        else:
+            ua = np.where(known, ua, self._u_prev)
+        if ua.tobytes() != self._u_prev.tobytes() and not np.array_equal(ua, self._u_prev):
+            if self.counts["steps"] > 0:      # the estimator has predicted with u_prev
+                self.estimator_.revise_input(ua - self._op_u)
+                self._note_not_following(self._u_prev, ua)
+            self._u_prev = ua
+            self.counts["readback_differs"] += 1
+        self._ua_prev = ua.copy()
+
+    def _fall_back(self, solver_status, diag, op_u):
+        """``(status, u)`` of a step whose solve was not accepted: the shifted plan or a hold."""
+        if solver_status == "optimal_inaccurate":
+            self.counts["inaccurate"] += 1
+        else:
+            self.counts["failed_solves"] += 1
+        self.counts["fallbacks"] += 1
+        diag.fallback = True
+        diag.slack_max = float("nan")
+        diag.cv_limits_relaxed = None
+        diag.relaxed_cvs = []
+        if self._plan is None and self._plan_scaled is not None:
+            self._plan = self._plan_scaled * self._su_col + op_u[:, None]
+        if self.fallback == "shift" and self._plan is not None and self._plan_age + 1 < self._N:
+            self._plan_age += 1
+            return STATUS_FALLBACK, self._plan[:, min(self._plan_age, self._M - 1)].copy()
+        self.counts["holds"] += 1
+        return STATUS_HOLD, self._u_prev.copy()
 
     def last_plan(self) -> np.ndarray | None:
         """MV plan (nu, M), absolute, of the last accepted solve (None before the first one).
@@ -326,6 +431,7 @@ class ControllerRuntime:
             self._clamp_hi = np.where(up, ua, self._clamp_hi)
             self._clamp_lo = np.where(down, ua, self._clamp_lo)
             self._clamp_left = np.where(up | down, _NOT_FOLLOWING_HOLD + 1, self._clamp_left)
+            self._clamping = bool(self._clamp_left.any())
             self.counts["mv_not_following"] += int(up.sum() + down.sum())
 
     def _clamped(self, lo, hi):
@@ -338,6 +444,7 @@ class ControllerRuntime:
         lo2 = np.clip(np.where(on, np.fmax(lo, self._clamp_lo), lo), lo, hi)
         lo2 = np.minimum(lo2, hi2)            # a clamp never makes the limits cross
         self._clamp_left = np.maximum(self._clamp_left - 1, 0)
+        self._clamping = bool(self._clamp_left.any())
         self._clamp_hi = np.where(self._clamp_left > 0, self._clamp_hi, np.inf)
         self._clamp_lo = np.where(self._clamp_left > 0, self._clamp_lo, -np.inf)
         return lo2, hi2
@@ -352,20 +459,49 @@ class ControllerRuntime:
         return self._apply_limits(self._u_prev.copy(), lo, hi, rate)
 
     def _finish(self, u, status, diag, t_start) -> ControlOutput:
+        """Status, the estimator's prediction with the MVs sent, the step's time and counts.
+        *u* is the step's own new array (the projection's): kept as the previous MVs, a copy
+        sent."""
         # faults the controller saw show in the status of an otherwise accepted step
         # (the fields read directly: the mapping view's get() raises and catches for an unfilled one)
         rej, nf, drop = (diag.rejected_measurements, diag.mvs_not_following,
                          diag.dropped_measurements)
-        diag.n_rejected_measurements = 0 if rej is ABSENT else len(rej)
-        diag.n_mvs_not_following = 0 if nf is ABSENT else len(nf)
-        diag.n_dropped_measurements = 0 if drop is ABSENT else len(drop)
-        if status == STATUS_OK and (diag.n_rejected_measurements
-                                    or diag.n_dropped_measurements):
+        n_rej = diag.n_rejected_measurements = 0 if rej is ABSENT else len(rej)
+        n_nf = diag.n_mvs_not_following = 0 if nf is ABSENT else len(nf)
+        n_drop = diag.n_dropped_measurements = 0 if drop is ABSENT else len(drop)
+        if status == STATUS_OK and (n_rej or n_drop):
             status = STATUS_MEASUREMENT_REJECTED
-        elif status == STATUS_OK and diag.n_mvs_not_following:
+        elif status == STATUS_OK and n_nf:
             status = STATUS_MV_NOT_FOLLOWING
-        self.estimator_.predict(u - self._op_u)
-        self._u_prev = np.asarray(u, float).copy()
+        self.estimator_.predict(u, less=self._op_u)
+        self._u_prev = u
         diag.step_ms = (time.perf_counter() - t_start) * 1e3
         diag.counts = dict(self.counts)
-        return ControlOutput(u=np.asarray(u, float).copy(), status=status, diagnostics=diag)
+        return ControlOutput(u=u.copy(), status=status, diagnostics=diag)
+
+
+class _LimitCache:
+    """The step's limits of the last targets seen (:meth:`ControllerRuntime._limits`): the byte
+    keys of the targets' arrays, the intersections with the settings (and as lists of floats:
+    ``lists`` = the MV limits and rates of the last call, what the projection reads), and
+    read-only stand-ins for targets left out (None)."""
+
+    __slots__ = ("resolved", "nu", "ny", "shape_u", "shape_y", "none_lo_u", "none_hi_u",
+                 "none_lo_y", "none_hi_y", "none_sp", "mv_key", "mv", "mv_lists", "rate_key",
+                 "rate", "rate_list", "max_move_list", "cv_key", "cv", "lists")
+
+    def __init__(self, resolved, nu: int, ny: int):
+        self.resolved, self.nu, self.ny = resolved, nu, ny
+        self.shape_u, self.shape_y = (nu,), (ny,)
+        self.none_lo_u, self.none_hi_u = _read_only(np.full(nu, -np.inf)), _read_only(np.full(nu, np.inf))
+        self.none_lo_y, self.none_hi_y = _read_only(np.full(ny, -np.inf)), _read_only(np.full(ny, np.inf))
+        self.none_sp = _read_only(np.full(ny, np.nan))
+        self.mv_key = self.rate_key = self.cv_key = None
+        self.mv = self.rate = self.cv = self.mv_lists = self.rate_list = self.lists = None
+        self.max_move_list = np.asarray(resolved.max_move, float).tolist()
+
+
+def _read_only(a: np.ndarray) -> np.ndarray:
+    """*a* made read-only (an array the step hands out again on later samples)."""
+    a.flags.writeable = False
+    return a
