@@ -34,6 +34,18 @@ iterations of strictly convex DAQP solves solve it.  All in deviation variables 
 the measured DVs, ``w`` the disturbance estimates.  Written with the state (not a gain matrix) so
 that integrating units work: a level's steady state asks for balanced flows and leaves the level
 itself to its setpoint.
+
+The common case in closed form: when every CV whose band is a single value (a setpoint) can be
+met exactly with every other band, every CV limit and every MV bound satisfied, stage 1's optimum
+is 0 and stage 2 is the minimum of its objective over those setpoint equalities alone, provided
+that minimum satisfies the other rows.  Per *setpoint pattern* (which CVs have a setpoint; a few
+cached) one matrix maps the sample's inputs (``d``, ``w``, the setpoints, ``pref``) straight to
+``[xs; ys; us]`` (the equality-constrained stage 2 by the null-space method); a solve is one
+product and a vectorised check of the other rows.  Where the check fails (an unreachable setpoint,
+an active MV bound, zone edge or limit), or where the shortcut would not be exact (a CV bound with
+no weight, dependent setpoints that do not agree, disturbances outside the model's steady-state
+range), the two DAQP stages decide.  ``iterations`` is 0 for the closed form; ``last_path`` says
+which way the last solve went; ``closed_form = False`` turns the shortcut off.
 """
 
 from __future__ import annotations
@@ -57,6 +69,9 @@ _DAQP_SETTINGS = {"primal_tol": 1e-11, "iter_limit": 2000}
 _PROX_RHO = 1e-6      # stage 1's proximal weight (scaled units)
 _PROX_MAX = 40        # at most this many proximal iterations
 _TOL_SIGN = np.array([[-_CV_TOL], [_CV_TOL]])     # stage 2's widening of [lo; hi]
+_EQ_RANK_TOL = 1e-9   # setpoint rows of Yphi (singular values <= 1): below this, dependent
+_EQ_RESID_TOL = 1e-11  # dependent setpoints must agree to this (relative, scaled units)
+_STRUCT_CACHE = 8     # setpoint patterns kept
 
 
 def _finite(v):
@@ -102,6 +117,8 @@ class SteadyTarget:
         self.preferred_weight = np.asarray(preferred_weight, float)
         self.solver_options = dict(solver_options or {})
         self.scales = scales
+        self.closed_form = True       # the exact shortcut of the common case (see the module)
+        self.last_path = None         # "closed_form", "daqp", "cvxpy" or "out_of_range"
         self.is_built = False
 
     def build(self) -> "SteadyTarget":
@@ -227,11 +244,124 @@ class SteadyTarget:
         self._g1hi = np.concatenate([np.full(2 * ny, cp_), ny + a(ny), np.full(ny, cp_),
                                      3 * ny + a(ny), 4 * ny + nu + a(nu)])
         self._bconst = np.array([0.0, -np.inf, np.inf])
+        self._build_closed_form(c, h, lin)
         self._daqp1 = self._daqp2 = None              # DAQP workspaces, made on first use
         self._ref = None                              # cvxpy reference problems, made on first use
         self.stage2_failures = 0
         self.is_built = True
         return self
+
+    def _build_closed_form(self, c, h, lin):
+        """What every closed-form solve shares (the per-pattern maps are made on first use)."""
+        ny, nu = self.ny, self.nu
+        sl = self._zsl
+        zi = np.arange(self._nz)
+        # the rows [ys; us] must satisfy, gathered from z by one index (per pattern, see
+        # _structure): lower bounds enter with +, upper ones with - (lo - y <= 0, y - hi <= 0)
+        self._chk_rows = np.vstack([np.concatenate([zi[sl[a]], zi[sl[b]]]) for a, b in (
+            ("band_lo", "mv_lo"), ("lim_lo", "mv_lo"), ("band_hi", "mv_hi"),
+            ("lim_hi", "mv_hi"))])
+        self._chk_sign = np.array([[1.0], [1.0], [-1.0], [-1.0]])
+        # a finite band of a CV without band weight, or finite limits without limit weights,
+        # leave stage 1's optimum non-unique: such inputs go the general way
+        self._unweighted = np.concatenate([zi[sl["band_lo"]][c <= 0], zi[sl["band_hi"]][c <= 0],
+                                           zi[sl["lim_lo"]][(h <= 0) & (lin <= 0)],
+                                           zi[sl["lim_hi"]][(h <= 0) & (lin <= 0)]])
+        self._blo_sl, self._bhi_sl = sl["band_lo"], sl["band_hi"]
+        self._structs = {}
+        self._yu = slice(self.nx, self.nx + ny + nu)  # [ys; us] in the map's output
+
+    def _structure(self, mask):
+        """The affine map of one setpoint pattern *mask* (bool, ny): ``[xs; ys; us; phi; r] =
+        G @ z[cols]`` (engineering units; ``r`` the disagreement of dependent setpoints, scaled),
+        or None where the pattern has no exact closed form."""
+        nx, nu, ny, k = self.nx, self.nu, self.ny, self._k
+        nv, nin = nx + nu, self._nin
+        sx, su, sy = self._sx, self._su, self._sy
+        m = np.flatnonzero(mask)
+        p = m.size
+        nq = nin + p + nu                             # q = [d; w; setpoints; pref] (engineering)
+        Kv, Ky = self._Kin[:nv], self._Kin[nv:nv + ny]
+        # be = setpoints - y0 (scaled, the equality rows' right side); f2 of stage 2
+        dbe = np.hstack([-Ky[m], np.diag(1 / sy[m]), np.zeros((p, nu))])
+        df2 = -2 * (self._Uphi.T * self._wrel) @ np.hstack([-Kv[nx:], np.zeros((nu, p)),
+                                                            np.diag(1 / su)])
+        Ae = self._Yphi[m]
+        if k:
+            Ua, sa, Vta = np.linalg.svd(Ae) if p else (np.zeros((0, 0)), np.zeros(0), np.eye(k))
+            r = int(np.sum(sa > _EQ_RANK_TOL))
+            # min 1/2 phi' H2 phi + f2' phi  s.t.  Ae phi = be, by the null-space method:
+            # phi = Fp be + Zn t,  t = -(Zn' H2 Zn)^-1 Zn' (H2 Fp be + f2)
+            Fp = Vta[:r].T @ (Ua[:, :r].T / sa[:r, None])
+            Zn = Vta[r:].T
+            Hr = Zn.T @ self._H2 @ Zn
+            try:
+                L = np.linalg.cholesky(0.5 * (Hr + Hr.T)) if Zn.shape[1] else None
+            except np.linalg.LinAlgError:
+                return None
+            if L is not None:
+                Sol = Zn @ np.linalg.solve(L.T, np.linalg.solve(L, Zn.T))   # Zn Hr^-1 Zn'
+                dphi = (Fp - Sol @ (self._H2 @ Fp)) @ dbe - Sol @ df2
+            else:
+                dphi = Fp @ dbe
+            Rres = Ua[:, r:].T @ dbe                  # dependent setpoints: must agree
+        else:
+            dphi = np.zeros((0, nq))
+            Rres = dbe                                # nothing moves: setpoints must hold already
+        Kq = np.hstack([Kv, np.zeros((nv, p + nu))])
+        Kyq = np.hstack([Ky, np.zeros((ny, p + nu))])
+        dv = Kq + self._Vphi @ dphi
+        dy = Kyq + self._Yphi @ dphi
+        G = np.vstack([dv[:nx] * sx[:, None], dy * sy[:, None], dv[nx:] * su[:, None], dphi,
+                       Rres])
+        if not np.all(np.isfinite(G)):
+            return None
+        sl = self._zsl
+        cols = np.concatenate([np.arange(nin), np.arange(self._nz)[sl["band_lo"]][m],
+                               np.arange(self._nz)[sl["pref"]]])
+        # a setpoint CV is checked against its limits only (its band is the equality itself)
+        chk = self._chk_rows.copy()
+        chk[0, m] = chk[1, m]
+        chk[2, m] = chk[3, m]
+        return G, cols, Rres.shape[0], chk
+
+    def _solve_closed_form(self, z):
+        """The common case's exact answer, or None where the two DAQP stages must decide."""
+        blo = z[self._blo_sl]
+        mask = blo == z[self._bhi_sl]      # (an infinite "setpoint" fails the check below)
+        key = mask.tobytes()
+        try:
+            st = self._structs[key]
+        except KeyError:
+            if len(self._structs) >= _STRUCT_CACHE:
+                self._structs.pop(next(iter(self._structs)))
+            st = self._structs[key] = self._structure(mask)
+        if st is None:
+            return None
+        if self._unweighted.size and (np.abs(z[self._unweighted]) < np.inf).any():
+            return None
+        G, cols, nres, chk = st
+        q = z[cols]
+        out = G @ q
+        nx, ny = self.nx, self.ny
+        if nres:
+            be_scale = 1.0 + float(np.maximum.reduce(np.abs(q[self._nin:self._nin + mask.sum()]
+                                                               / self._sy[mask]), initial=0.0))
+            if float(np.maximum.reduce(np.abs(out[-nres:]))) > _EQ_RESID_TOL * be_scale:
+                return None
+        # every other row, strictly: lo - y <= 0 and y - hi <= 0 (a candidate on an edge by
+        # round-off only goes the general way).  NaN -- an absent bound given as NaN, or a NaN
+        # among the inputs -- fails too (np.maximum propagates it); an infinite bound never binds
+        g = z[chk] - out[self._yu]
+        g *= self._chk_sign
+        if not np.maximum.reduce(g, axis=None) <= 0.0:
+            return None
+        nu = self.nu
+        self._x1_last = None    # stage 1's next start: [s = 0; e = 0; phi], made when needed
+        self._x1_from = out
+        vals = _TargetValues(xs=out[:nx], ys=out[nx:nx + ny], us=out[nx + ny:nx + ny + nu])
+        vals._data, vals._sy, vals._source = None, self._sy, (self, z.copy())
+        return vals
 
     def restart(self) -> None:
         """Forget any state kept between solves (a rerun repeats a run)."""
@@ -287,27 +417,42 @@ class SteadyTarget:
         return {"xs": v[:nx] * self._sx, "us": v[nx:] * self._su, "ys": ys * self._sy}
 
     # ------------------------------------------------------------------ solve
-    def solve(self, z: np.ndarray, fast: bool = True, solver: str = "OSQP", options=None):
+    def solve(self, z: np.ndarray, fast: bool = True, solver: str = "OSQP", options=None,
+              closed_form: bool | None = None):
         """Solve for the input vector *z* (blocks in ``layout_`` order, deviation variables).
 
-        ``fast=True`` solves both stages with DAQP; ``fast=False`` solves the same two stages
-        with cvxpy and *solver* (a reference and a second opinion).  Returns a
-        :class:`~mpcproto.control._qp.QPResult` with ``xs``, ``us``, ``ys`` and ``s`` in
-        engineering deviation units and ``e`` (scaled).
+        ``fast=True`` takes the exact closed form where it applies (see the module; not when
+        *closed_form* -- default: the attribute ``closed_form`` -- is False) and otherwise solves
+        both stages with DAQP; ``fast=False`` solves the same two stages with cvxpy and *solver*
+        (a reference and a second opinion).  Returns a :class:`~mpcproto.control._qp.QPResult`
+        with ``xs``, ``us``, ``ys`` and ``s`` in engineering deviation units and ``e`` (scaled);
+        ``last_path`` records the way taken.
         """
         if not self.is_built:
             raise NotBuiltError("SteadyTarget is not built; call .build() first.")
         t0 = time.perf_counter()
+        if fast and self._full_range and (self.closed_form if closed_form is None
+                                          else closed_form):
+            z = np.asarray(z, float)
+            if z.shape == (self._nz,):
+                vals = self._solve_closed_form(z)
+                if vals is not None:
+                    self.last_path = "closed_form"
+                    return QPResult("optimal", True, vals, 0, (time.perf_counter() - t0) * 1e3)
         data, v0, y0, u0, in_range = self._unpack(z)
         if not in_range:
+            self.last_path = "out_of_range"
             return QPResult(status="infeasible", accepted=False,
                             solve_ms=(time.perf_counter() - t0) * 1e3)
         if fast:
+            self.last_path = "daqp"
             res = self._solve_daqp(data, v0, y0, u0)
         else:
+            self.last_path = "cvxpy"
             res = self._solve_cvxpy(data, v0, y0, u0, solver, options)
         if res.accepted:       # e and s computed when read (the controller reads neither)
-            res.values = _TargetValues(res.values, data, self._sy)
+            vals = res.values = _TargetValues(res.values)
+            vals._data, vals._sy, vals._source = data, self._sy, None
         res.solve_ms = (time.perf_counter() - t0) * 1e3
         return res
 
@@ -376,7 +521,12 @@ class SteadyTarget:
         them all and the next sample's (warm-started from the last active set; a workspace solve
         that does not end optimal is repeated afresh before it counts as a failure).
         """
-        x = self._x1_last.copy()
+        x = self._x1_last
+        if x is None:           # after a closed form: its phi with s = 0, e = 0
+            nv = self.nx + self.ny + self.nu
+            x = np.concatenate([np.zeros(2 * self.ny), self._x1_from[nv:nv + self._k]])
+        else:
+            x = x.copy()
         H = self._H1p
         iters = 0
         mdl = self._daqp1
@@ -474,14 +624,16 @@ class _TargetValues(dict):
     """The target's values; ``e`` (band error, scaled) and ``s`` (limit violation, engineering
     units) are computed on first read from the stored bounds."""
 
-    def __init__(self, values, data, sy):
-        super().__init__(values)
-        self._data, self._sy = data, sy
+    # set by the maker: _data (the unpacked bounds) or None and _source = (target, z), _sy
+    __slots__ = ("_data", "_sy", "_source")
 
     def __missing__(self, key):
         if key not in ("e", "s"):
             raise KeyError(key)
         data = self._data
+        if data is None:
+            target, z = self._source
+            data = self._data = target._unpack(z)[0]
         ys_s = self["ys"] / self._sy
         blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
         self["e"] = ys_s - np.minimum(np.maximum(ys_s, blo), np.maximum(blo, bhi))
