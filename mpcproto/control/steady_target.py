@@ -212,6 +212,8 @@ class SteadyTarget:
                         + _MIN_NORM * (T.T @ Zf) @ (Zf.T @ T))
         self._H2 = 0.5 * (self._H2 + self._H2.T)
         self._Zf = Zf
+        self._P2 = (T.T @ Zf) @ (Zf.T @ T)          # the pull's part of H2, over _MIN_NORM
+        self._unorm = max(float(np.linalg.norm(self._Uphi, 2)) if k else 0.0, 1e-300)
         self._A2 = np.vstack([self._Yphi, self._Uphi])
         self._sense2 = np.zeros(ny + nu, dtype=np.intc)
         self.layout_ = {"d": nd, "w": nw, "band_lo": ny, "band_hi": ny, "lim_lo": ny, "lim_hi": ny,
@@ -291,19 +293,27 @@ class SteadyTarget:
             Ua, sa, Vta = np.linalg.svd(Ae) if p else (np.zeros((0, 0)), np.zeros(0), np.eye(k))
             r = int(np.sum(sa > _EQ_RANK_TOL))
             # min 1/2 phi' H2 phi + f2' phi  s.t.  Ae phi = be, by the null-space method:
-            # phi = Fp be + Zn t,  t = -(Zn' H2 Zn)^-1 Zn' (H2 Fp be + f2)
+            # phi = Fp be + Zn t.  The free directions Zn are split into those that move the
+            # MVs (Z1) and those that leave them alone (Z2: only the 1e-9 pull decides there,
+            # and f2 has no part in them); the pull's rows are divided by its weight, so the
+            # system is as well conditioned as each part (solved as one, the 1e-9 would cost
+            # nine digits of the free states)
             Fp = Vta[:r].T @ (Ua[:, :r].T / sa[:r, None])
             Zn = Vta[r:].T
-            Hr = Zn.T @ self._H2 @ Zn
-            try:
-                L = np.linalg.cholesky(0.5 * (Hr + Hr.T)) if Zn.shape[1] else None
-            except np.linalg.LinAlgError:
-                return None
-            if L is not None:
-                Sol = Zn @ np.linalg.solve(L.T, np.linalg.solve(L, Zn.T))   # Zn Hr^-1 Zn'
-                dphi = (Fp - Sol @ (self._H2 @ Fp)) @ dbe - Sol @ df2
-            else:
-                dphi = Fp @ dbe
+            kn = Zn.shape[1]
+            dphi = Fp @ dbe
+            if kn:
+                H2, P = self._H2, self._P2
+                _, sm, Vmt = np.linalg.svd(self._Uphi @ Zn)
+                rm = int(np.sum(sm > 1e-10 * self._unorm))
+                Z1, Z2 = Zn @ Vmt[:rm].T, Zn @ Vmt[rm:].T
+                Kb = np.block([[Z1.T @ H2 @ Z1, 2 * _MIN_NORM * (Z1.T @ P @ Z2)],
+                               [Z2.T @ P @ Z1, Z2.T @ P @ Z2]])
+                rhs = -np.vstack([Z1.T @ (H2 @ dphi + df2), Z2.T @ (P @ dphi)])
+                if not np.linalg.cond(Kb) < 1e12:
+                    return None
+                t = np.linalg.solve(Kb, rhs)
+                dphi = dphi + np.hstack([Z1, Z2]) @ t
             Rres = Ua[:, r:].T @ dbe                  # dependent setpoints: must agree
         else:
             dphi = np.zeros((0, nq))
@@ -328,7 +338,8 @@ class SteadyTarget:
     def _solve_closed_form(self, z):
         """The common case's exact answer, or None where the two DAQP stages must decide."""
         blo = z[self._blo_sl]
-        mask = blo == z[self._bhi_sl]      # (an infinite "setpoint" fails the check below)
+        mask = blo == z[self._bhi_sl]
+        mask &= np.isfinite(blo)           # (an infinite "setpoint" is no setpoint)
         key = mask.tobytes()
         try:
             st = self._structs[key]
