@@ -37,20 +37,23 @@ CLARABEL_GAP = 1e-4
 
 # ------------------------------------------------------------------------------------------------
 # the units
+TANK_SETTINGS = {
+    "horizon": 20, "control_horizon": 4,
+    "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5},
+           "concentration": {"scale": 0.2}, "temperature": {"scale": 1.0}},
+    "mv": {"caustic_flow": {"scale": 0.01, "low": 0.0, "high": 0.2, "max_move": 0.005},
+           "water_flow": {"scale": 0.1, "low": 0.0, "high": 3.0, "max_move": 0.1},
+           "heater_duty": {"scale": 20.0, "low": 0.0, "high": 600.0, "max_move": 20.0}},
+}
+
+
 def tank_target():
     """The blending tank's own steady target (the model linearized at its steady state and
     sampled at 10 s; the controller's settings of benchmarks/bench_mpc.py's tank)."""
     tank = mp.make_model("blending_tank")
     op = mp.steady_state(tank)
     dm = mp.linearize(tank, op).discretize(10.0)
-    ctrl = mp.PredictiveController.from_settings(dm, {
-        "horizon": 20, "control_horizon": 4,
-        "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5},
-               "concentration": {"scale": 0.2}, "temperature": {"scale": 1.0}},
-        "mv": {"caustic_flow": {"scale": 0.01, "low": 0.0, "high": 0.2, "max_move": 0.005},
-               "water_flow": {"scale": 0.1, "low": 0.0, "high": 3.0, "max_move": 0.1},
-               "heater_duty": {"scale": 20.0, "low": 0.0, "high": 600.0, "max_move": 20.0}},
-    }).build()
+    ctrl = mp.PredictiveController.from_settings(dm, TANK_SETTINGS).build()
     return ctrl.target_, dm
 
 
@@ -233,26 +236,27 @@ def test_general_path_after_a_closed_form_starts_from_it():
 
 # ------------------------------------------------------------------------------------------------
 # other shapes
+def random_lags(rng, nx, nu, ny, pref_weight):
+    """A target on random first-order lags (diagonal A) and their steady-state gain matrix."""
+    A = np.diag(rng.uniform(0.2, 0.9, nx))
+    B = rng.normal(size=(nx, nu))
+    C = rng.normal(size=(ny, nx))
+    return matrix_target(A, B, C, pref_weight), C @ np.linalg.solve(np.eye(nx) - A, B)
+
+
 def test_fewer_cvs_than_mvs_ties_broken_by_preferred_values():
     # Null-space method (scipy reference): 1 CV, 3 MVs, weights r: the MVs minimise
     # sum r (u - p)^2 on G u = t; an MV bound that the answer would cross sends the solve the
     # general way and the bound holds there.
     rng = np.random.default_rng(21)
     for trial in range(10):
-        A = np.diag(rng.uniform(0.2, 0.9, 2))
-        B = rng.normal(size=(2, 3))
-        C = rng.normal(size=(1, 2))
         r = 10.0 ** rng.uniform(-1, 1, 3)
-        tgt = matrix_target(A, B, C, r)
-        G = C @ np.linalg.solve(np.eye(2) - A, B)
+        tgt, _ = random_lags(rng, 2, 3, 1, r)
         t, p = rng.normal(size=1), rng.normal(size=3)
         z = zvec(tgt, band_lo=t, band_hi=t, mv_lo=-100.0, mv_hi=100.0, pref=p)
         a, b, c, path = three_ways(tgt, z)
         assert path == "closed_form"
-        u_p = sla.lstsq(G, t)[0]
-        Z = sla.null_space(G)
-        W = np.sqrt(r)
-        u_ref = u_p + Z @ sla.lstsq(W[:, None] * Z, W * (p - u_p))[0]
+        u_ref = lse_reference(tgt, z, r)
         np.testing.assert_allclose(a.values["us"], u_ref, atol=1e-9 * (1 + np.abs(u_ref).max()))
         assert gap(a, b, tgt) <= 1e-9 and gap(a, c, tgt) <= CLARABEL_GAP
         # an MV bound just inside the unconstrained answer: active, so the general path
@@ -278,11 +282,7 @@ def test_more_setpoints_than_mvs():
     # (G has full column rank: unique; linear algebra).
     rng = np.random.default_rng(31)
     for trial in range(10):
-        A = np.diag(rng.uniform(0.2, 0.9, 3))
-        B = rng.normal(size=(3, 2))
-        C = rng.normal(size=(3, 3))
-        tgt = matrix_target(A, B, C, [1.0, 1.0])
-        G = C @ np.linalg.solve(np.eye(3) - A, B)
+        tgt, G = random_lags(rng, 3, 2, 3, [1.0, 1.0])
         t = rng.normal(size=3)
         z = zvec(tgt, band_lo=t, band_hi=t, mv_lo=-1e3, mv_hi=1e3, pref=rng.normal(size=2))
         a, b, c, path = three_ways(tgt, z)
@@ -375,14 +375,7 @@ def test_tank_closed_loop_same_with_and_without_the_closed_form():
     tgt, dm = tank_target()
     runs = []
     for closed in (True, False):
-        ctrl = mp.PredictiveController.from_settings(dm, {
-            "horizon": 20, "control_horizon": 4,
-            "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5},
-                   "concentration": {"scale": 0.2}, "temperature": {"scale": 1.0}},
-            "mv": {"caustic_flow": {"scale": 0.01, "low": 0.0, "high": 0.2, "max_move": 0.005},
-                   "water_flow": {"scale": 0.1, "low": 0.0, "high": 3.0, "max_move": 0.1},
-                   "heater_duty": {"scale": 20.0, "low": 0.0, "high": 600.0,
-                                   "max_move": 20.0}}}).build()
+        ctrl = mp.PredictiveController.from_settings(dm, TANK_SETTINGS).build()
         ctrl.target_.closed_form = closed
         ctrl.reset(dm.op)
         x = np.zeros(dm.nx)
@@ -404,3 +397,21 @@ def test_tank_closed_loop_same_with_and_without_the_closed_form():
     assert np.max(np.abs(u1 - u2) / scale) <= 1e-8
     assert sum(i == 0 for i in it1) >= 90          # nearly every sample in closed form
     assert all(i > 0 for i in it2)
+
+
+def test_disturbance_without_a_steady_state_is_not_taken():
+    # A state that integrates a DV and that no MV reaches (A = 1, B = 0 in its row): a nonzero DV
+    # has no steady state at all (the row reads 0 = d; linear algebra), so the target refuses it,
+    # and with such a model the closed form is never tried (the range check is the DAQP path's).
+    A = np.diag([1.0, 0.5])
+    B = np.array([[0.0], [0.5]])
+    C = np.array([[0.0, 1.0]])
+    Bd = np.array([[1.0], [0.0]])
+    tgt = mp.SteadyTarget(A, B, C, np.zeros((1, 1)), Bd, np.zeros((1, 1)), np.zeros((2, 0)),
+                          np.zeros((1, 0)), band_weight=[1.0], limit_linear=[100.0],
+                          limit_quadratic=[10.0], preferred_weight=[1.0]).build()
+    ok = tgt.solve(zvec(tgt, d=[0.0], band_lo=[0.3], band_hi=[0.3], mv_lo=-5.0, mv_hi=5.0))
+    assert tgt.last_path == "daqp" and ok.accepted
+    np.testing.assert_allclose(ok.values["us"], [0.3], atol=1e-10)    # gain 0.5 / (1 - 0.5) = 1
+    bad = tgt.solve(zvec(tgt, d=[0.1], band_lo=[0.3], band_hi=[0.3], mv_lo=-5.0, mv_hi=5.0))
+    assert tgt.last_path == "out_of_range" and not bad.accepted
