@@ -273,62 +273,79 @@ class SteadyTarget:
         self._structs = {}
         self._yu = slice(self.nx, self.nx + ny + nu)  # [ys; us] in the map's output
 
+    def _eq_min(self, Ae, dbe, df2):
+        """Stage 2 over the equalities ``Ae phi = be``: ``(dphi, Rres)`` with ``phi = dphi @ q``
+        and ``Rres @ q`` the disagreement of dependent rows (must be ~0), for ``be = dbe @ q``
+        and ``f2 = df2 @ q``; None where there is no well-conditioned answer."""
+        k = self._k
+        p = Ae.shape[0]
+        Ua, sa, Vta = np.linalg.svd(Ae) if p else (np.zeros((0, 0)), np.zeros(0), np.eye(k))
+        r = int(np.sum(sa > _EQ_RANK_TOL))
+        # min 1/2 phi' H2 phi + f2' phi  s.t.  Ae phi = be, by the null-space method:
+        # phi = Fp be + Zn t.  The free directions Zn are split into those that move the
+        # MVs (Z1) and those that leave them alone (Z2: only the 1e-9 pull decides there,
+        # and f2 has no part in them); the pull's rows are divided by its weight, so the
+        # system is as well conditioned as each part (solved as one, the 1e-9 would cost
+        # nine digits of the free states)
+        Fp = Vta[:r].T @ (Ua[:, :r].T / sa[:r, None])
+        Zn = Vta[r:].T
+        dphi = Fp @ dbe
+        if Zn.shape[1]:
+            H2, P = self._H2, self._P2
+            _, sm, Vmt = np.linalg.svd(self._Uphi @ Zn)
+            rm = int(np.sum(sm > 1e-10 * self._unorm))
+            Z1, Z2 = Zn @ Vmt[:rm].T, Zn @ Vmt[rm:].T
+            Kb = np.block([[Z1.T @ H2 @ Z1, 2 * _MIN_NORM * (Z1.T @ P @ Z2)],
+                           [Z2.T @ P @ Z1, Z2.T @ P @ Z2]])
+            rhs = -np.vstack([Z1.T @ (H2 @ dphi + df2), Z2.T @ (P @ dphi)])
+            if not np.linalg.cond(Kb) < 1e12:
+                return None
+            dphi = dphi + np.hstack([Z1, Z2]) @ np.linalg.solve(Kb, rhs)
+        return dphi, Ua[:, r:].T @ dbe
+
+    def _inputs(self, m, ncol):
+        """Maps from q = [d; w; ncol values; pref] (engineering) to ``y0`` and ``u0`` (scaled)
+        and to stage 2's ``f2``."""
+        nx, nu, ny = self.nx, self.nu, self.ny
+        nv, nin = nx + nu, self._nin
+        Kv, Ky = self._Kin[:nv], self._Kin[nv:nv + ny]
+        dy0 = np.hstack([Ky, np.zeros((ny, ncol + nu))])
+        du0 = np.hstack([Kv[nx:], np.zeros((nu, ncol + nu))])
+        dpref = np.hstack([np.zeros((nu, nin + ncol)), np.diag(1 / self._su)])
+        df2 = -2 * (self._Uphi.T * self._wrel) @ (dpref - du0)
+        return np.hstack([Kv, np.zeros((nv, ncol + nu))]), dy0, du0, df2
+
+    def _finish_map(self, dv0, dy0, dphi, extra):
+        """[xs; ys; us; phi; extra rows] in engineering units from the maps of v0, y0, phi."""
+        nx = self.nx
+        dv = dv0 + self._Vphi @ dphi
+        dy = dy0 + self._Yphi @ dphi
+        G = np.vstack([dv[:nx] * self._sx[:, None], dy * self._sy[:, None],
+                       dv[nx:] * self._su[:, None], dphi] + extra)
+        return G if np.all(np.isfinite(G)) else None
+
     def _structure(self, mask):
         """The affine map of one setpoint pattern *mask* (bool, ny): ``[xs; ys; us; phi; r] =
         G @ z[cols]`` (engineering units; ``r`` the disagreement of dependent setpoints, scaled),
         or None where the pattern has no exact closed form."""
-        nx, nu, ny, k = self.nx, self.nu, self.ny, self._k
-        nv, nin = nx + nu, self._nin
-        sx, su, sy = self._sx, self._su, self._sy
+        nin, sy = self._nin, self._sy
         m = np.flatnonzero(mask)
         p = m.size
-        nq = nin + p + nu                             # q = [d; w; setpoints; pref] (engineering)
-        Kv, Ky = self._Kin[:nv], self._Kin[nv:nv + ny]
-        # be = setpoints - y0 (scaled, the equality rows' right side); f2 of stage 2
-        dbe = np.hstack([-Ky[m], np.diag(1 / sy[m]), np.zeros((p, nu))])
-        df2 = -2 * (self._Uphi.T * self._wrel) @ np.hstack([-Kv[nx:], np.zeros((nu, p)),
-                                                            np.diag(1 / su)])
-        Ae = self._Yphi[m]
-        if k:
-            Ua, sa, Vta = np.linalg.svd(Ae) if p else (np.zeros((0, 0)), np.zeros(0), np.eye(k))
-            r = int(np.sum(sa > _EQ_RANK_TOL))
-            # min 1/2 phi' H2 phi + f2' phi  s.t.  Ae phi = be, by the null-space method:
-            # phi = Fp be + Zn t.  The free directions Zn are split into those that move the
-            # MVs (Z1) and those that leave them alone (Z2: only the 1e-9 pull decides there,
-            # and f2 has no part in them); the pull's rows are divided by its weight, so the
-            # system is as well conditioned as each part (solved as one, the 1e-9 would cost
-            # nine digits of the free states)
-            Fp = Vta[:r].T @ (Ua[:, :r].T / sa[:r, None])
-            Zn = Vta[r:].T
-            kn = Zn.shape[1]
-            dphi = Fp @ dbe
-            if kn:
-                H2, P = self._H2, self._P2
-                _, sm, Vmt = np.linalg.svd(self._Uphi @ Zn)
-                rm = int(np.sum(sm > 1e-10 * self._unorm))
-                Z1, Z2 = Zn @ Vmt[:rm].T, Zn @ Vmt[rm:].T
-                Kb = np.block([[Z1.T @ H2 @ Z1, 2 * _MIN_NORM * (Z1.T @ P @ Z2)],
-                               [Z2.T @ P @ Z1, Z2.T @ P @ Z2]])
-                rhs = -np.vstack([Z1.T @ (H2 @ dphi + df2), Z2.T @ (P @ dphi)])
-                if not np.linalg.cond(Kb) < 1e12:
-                    return None
-                t = np.linalg.solve(Kb, rhs)
-                dphi = dphi + np.hstack([Z1, Z2]) @ t
-            Rres = Ua[:, r:].T @ dbe                  # dependent setpoints: must agree
+        dv0, dy0, _, df2 = self._inputs(m, p)
+        # be = setpoints - y0 (scaled), the equality rows' right side
+        dbe = np.hstack([np.zeros((p, nin)), np.diag(1 / sy[m]), np.zeros((p, self.nu))]) - dy0[m]
+        if self._k:
+            sol = self._eq_min(self._Yphi[m], dbe, df2)
+            if sol is None:
+                return None
+            dphi, Rres = sol
         else:
-            dphi = np.zeros((0, nq))
-            Rres = dbe                                # nothing moves: setpoints must hold already
-        Kq = np.hstack([Kv, np.zeros((nv, p + nu))])
-        Kyq = np.hstack([Ky, np.zeros((ny, p + nu))])
-        dv = Kq + self._Vphi @ dphi
-        dy = Kyq + self._Yphi @ dphi
-        G = np.vstack([dv[:nx] * sx[:, None], dy * sy[:, None], dv[nx:] * su[:, None], dphi,
-                       Rres])
-        if not np.all(np.isfinite(G)):
+            dphi, Rres = np.zeros((0, dbe.shape[1])), dbe   # nothing moves: setpoints must hold
+        G = self._finish_map(dv0, dy0, dphi, [Rres])
+        if G is None:
             return None
-        sl = self._zsl
-        cols = np.concatenate([np.arange(nin), np.arange(self._nz)[sl["band_lo"]][m],
-                               np.arange(self._nz)[sl["pref"]]])
+        zi = np.arange(self._nz)
+        cols = np.concatenate([zi[:nin], zi[self._zsl["band_lo"]][m], zi[self._zsl["pref"]]])
         # a setpoint CV is checked against its limits only (its band is the equality itself)
         chk = self._chk_rows.copy()
         chk[0, m] = chk[1, m]
