@@ -137,7 +137,7 @@ def _tank_case(rng, tgt, kind):
     elif kind == "zone_edge":            # a zone narrower than the preferred values allow
         tgt_free = tgt.solve(zvec(tgt, d=d, w=w, band_lo=np.r_[sp[0], -INF, sp[2]],
                                   band_hi=np.r_[sp[0], INF, sp[2]], mv_lo=mv_lo, mv_hi=mv_hi,
-                                  pref=pref))
+                                  pref=pref), closed_form=False)
         y1 = tgt_free.values["ys"][1]
         band_lo[1], band_hi[1] = y1 + 0.5 * sy[1], y1 + 3 * sy[1]
         expect = "daqp"
@@ -160,12 +160,18 @@ def test_tank_closed_form_equals_the_two_stage_qp(kind):
     tgt, dm = tank_target()
     rng = np.random.default_rng({"setpoints": 1, "zones": 2, "zone_edge": 3, "unreachable": 4,
                                  "limit": 5}[kind])
+    paths = []
     for _ in range(12):
         z, expect = _tank_case(rng, tgt, kind)
         a, b, c, path = three_ways(tgt, z)
-        assert path == expect
-        assert (a.iterations == 0) == (path == "closed_form")
-        assert gap(a, b, tgt) <= 1e-9
+        paths.append(path)
+        # where the DAQP stages decided, the next sample may re-use their active rows
+        assert path == expect or (expect == "daqp" and path == "active_set" and
+                                  paths[-2:-1] in (["daqp"], ["active_set"]))
+        assert (a.iterations == 0) == (path != "daqp")
+        # the DAQP stages hold the CVs to 1e-12 of their values (an unreachable setpoint of
+        # 1e4 scales: to 1e-8 of a scale)
+        assert gap(a, b, tgt) <= 1e-9 + 1e-12 * np.max(np.abs(z[tgt._zsl["band_lo"]]) / tgt._sy)
         assert gap(a, c, tgt) <= CLARABEL_GAP
         if path == "closed_form":
             u_ref = lse_reference(tgt, z, 1 / tgt._su ** 2)
@@ -272,6 +278,13 @@ def test_fewer_cvs_than_mvs_ties_broken_by_preferred_values():
         assert gap(a2, b2, tgt) == 0.0
         assert lo[j] - 1e-9 <= a2.values["us"][j] <= hi[j] + 1e-9
         assert gap(a2, c2, tgt) <= CLARABEL_GAP
+        # the next sample (preferred values moved a little) re-uses the active bound
+        z3 = zvec(tgt, band_lo=t, band_hi=t, mv_lo=lo, mv_hi=hi, pref=p * 1.01)
+        a3, b3, c3, path3 = three_ways(tgt, z3)
+        assert path3 == "active_set"
+        assert a3.values["us"][j] in (lo[j], hi[j]) or abs(a3.values["us"][j] - (
+            hi[j] if u_ref[j] > 0 else lo[j])) <= 1e-12 * 100
+        assert gap(a3, b3, tgt) <= 1e-9 and gap(a3, c3, tgt) <= CLARABEL_GAP
 
 
 def test_more_setpoints_than_mvs():
@@ -288,11 +301,21 @@ def test_more_setpoints_than_mvs():
         a, b, c, path = three_ways(tgt, z)
         assert path == "daqp"
         assert gap(a, c, tgt) <= CLARABEL_GAP
+        # the next sample re-uses that solve's deciding rows (none: the compromise alone) and
+        # gives the weighted least-squares compromise (normal equations, numpy lstsq)
+        t3 = t + rng.normal(size=3) * 0.1
+        z3 = zvec(tgt, band_lo=t3, band_hi=t3, mv_lo=-1e3, mv_hi=1e3, pref=rng.normal(size=2))
+        a3, b3, c3, path3 = three_ways(tgt, z3)
+        assert path3 == "active_set"
+        w = np.sqrt(tgt.band_weight)
+        u_ls = np.linalg.lstsq(w[:, None] * G, w * t3, rcond=None)[0]
+        np.testing.assert_allclose(a3.values["us"], u_ls, atol=1e-9 * (1 + np.abs(u_ls).max()))
+        assert gap(a3, b3, tgt) <= 1e-9 and gap(a3, c3, tgt) <= CLARABEL_GAP
         u_true = rng.normal(size=2)
         t2 = G @ u_true
         z2 = zvec(tgt, band_lo=t2, band_hi=t2, mv_lo=-1e3, mv_hi=1e3, pref=rng.normal(size=2))
         a2, b2, c2, path2 = three_ways(tgt, z2)
-        assert path2 == "closed_form"
+        assert path2 in ("closed_form", "active_set")
         np.testing.assert_allclose(a2.values["us"], u_true, atol=1e-9)
         assert gap(a2, b2, tgt) <= 1e-9 and gap(a2, c2, tgt) <= CLARABEL_GAP
 
@@ -337,11 +360,25 @@ def test_zone_edge_active_is_left_to_the_general_path():
     a, b, c, path = three_ways(tgt, z)
     assert path == "daqp"
     np.testing.assert_allclose(a.values["us"], [0.4, 0.2], atol=1e-9)
-    # the same zone around the preferred point: nothing active, the closed form
+    # the next sample keeps that active row: the zone [1.5, 2] gives u = 1.5 [2, 1] / 5 by the
+    # re-used active set (its multiplier has the right sign)
+    z1 = zvec(tgt, band_lo=[1.5], band_hi=[2.0], mv_lo=-10.0, mv_hi=10.0, pref=[0.0, 0.0])
+    a1, b1, c1, path1 = three_ways(tgt, z1)
+    assert path1 == "active_set"
+    np.testing.assert_allclose(a1.values["us"], [0.6, 0.3], atol=1e-12)
+    assert gap(a1, b1, tgt) <= 1e-9 and gap(a1, c1, tgt) <= CLARABEL_GAP
+    # a zone around the preferred point: the old active row would pull y up to -1 against its
+    # multiplier's sign, so it is refused, and nothing active: the common closed form
     z2 = zvec(tgt, band_lo=[-1.0], band_hi=[2.0], mv_lo=-10.0, mv_hi=10.0, pref=[0.0, 0.0])
     a2, b2, c2, path2 = three_ways(tgt, z2)
     assert path2 == "closed_form"
     np.testing.assert_allclose(a2.values["us"], [0.0, 0.0], atol=1e-12)
+    # (the same with the zone's far edge active instead: refused, the DAQP stages decide)
+    three_ways(tgt, z)
+    z3 = zvec(tgt, band_lo=[-2.0], band_hi=[-1.0], mv_lo=-10.0, mv_hi=10.0, pref=[0.0, 0.0])
+    a3, b3, c3, path3 = three_ways(tgt, z3)
+    assert path3 == "daqp"
+    np.testing.assert_allclose(a3.values["us"], [-0.4, -0.2], atol=1e-9)
 
 
 def test_limits_without_weight_and_odd_inputs_go_the_general_way():
@@ -360,9 +397,10 @@ def test_limits_without_weight_and_odd_inputs_go_the_general_way():
               zvec(tgt, band_lo=[1.0], band_hi=[1.0], mv_lo=-10.0, mv_hi=10.0,
                    pref=[np.nan, 0.0])):
         tgt.solve(z)
-        assert tgt.last_path != "closed_form"
+        assert tgt.last_path not in ("closed_form", "active_set")
     z = zvec(tgt, band_lo=[1.0], band_hi=[1.0], lim_lo=[-5.0], lim_hi=[5.0], mv_lo=-10.0,
              mv_hi=10.0, pref=[0.0, 0.0])
+    tgt.restart()                  # (forgets the last DAQP solve's active rows)
     tgt.solve(z)
     assert tgt.last_path == "closed_form"
 
