@@ -44,8 +44,12 @@ cached) one matrix maps the sample's inputs (``d``, ``w``, the setpoints, ``pref
 product and a vectorised check of the other rows.  Where the check fails (an unreachable setpoint,
 an active MV bound, zone edge or limit), or where the shortcut would not be exact (a CV bound with
 no weight, dependent setpoints that do not agree, disturbances outside the model's steady-state
-range), the two DAQP stages decide.  ``iterations`` is 0 for the closed form; ``last_path`` says
-which way the last solve went; ``closed_form = False`` turns the shortcut off.
+range), the two DAQP stages decide.  Their deciding rows are then re-used by the next sample:
+the same lexicographic solve with those rows as equalities (stage 1 as weighted least squares,
+stage 2 with the CVs pinned at stage 1's values), accepted only where both stages' KKT conditions
+hold (primal feasibility, the multipliers' signs, a limit's stage-1 multiplier within its linear
+weight).  ``iterations`` is 0 for both closed forms; ``last_path`` says which way the last solve
+went; ``closed_form = False`` turns both shortcuts off.
 """
 
 from __future__ import annotations
