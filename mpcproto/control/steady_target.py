@@ -275,6 +275,9 @@ class SteadyTarget:
                                            zi[sl["lim_lo"]][(h <= 0) & (lin <= 0)],
                                            zi[sl["lim_hi"]][(h <= 0) & (lin <= 0)]])
         self._blo_sl, self._bhi_sl = sl["band_lo"], sl["band_hi"]
+        self._bands_sl = slice(sl["band_lo"].start, sl["band_hi"].stop)   # (adjacent in z)
+        self._masks = {}                              # setpoint pattern by the bands' bytes
+        self._any_unweighted = bool(self._unweighted.size)
         self._c_s, self._lin_s = c, lin              # stage 1's weights (scaled)
         self._structs = {}
         self._pstructs = {}                           # re-used active sets (_pattern_map)
@@ -364,11 +367,18 @@ class SteadyTarget:
     def _solve_closed_form(self, z):
         """The exact answer by a closed form (the common case, or the last DAQP solve's active
         rows re-used), or None where the two DAQP stages must decide."""
-        blo = z[self._blo_sl]
-        mask = blo == z[self._bhi_sl]
-        mask &= np.isfinite(blo)           # (an infinite "setpoint" is no setpoint)
-        key = mask.tobytes()
-        if self._unweighted.size and (np.abs(z[self._unweighted]) < np.inf).any():
+        bands = z[self._bands_sl].tobytes()      # [band_lo; band_hi]: setpoints change rarely
+        try:
+            mask, key = self._masks[bands]
+        except KeyError:
+            blo = z[self._blo_sl]
+            mask = blo == z[self._bhi_sl]
+            mask &= np.isfinite(blo)           # (an infinite "setpoint" is no setpoint)
+            key = mask.tobytes()
+            if len(self._masks) >= 4 * _STRUCT_CACHE:
+                self._masks.clear()
+            self._masks[bands] = mask, key
+        if self._any_unweighted and (np.abs(z[self._unweighted]) < np.inf).any():
             return None
         out = None
         pat = self._pat
