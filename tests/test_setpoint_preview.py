@@ -96,11 +96,13 @@ def test_constant_program_or_preview_off_changes_nothing():
     base = off.plan(x, tg)["u_plan"]
     np.testing.assert_allclose(on.plan(x, tg, setpoint_program=np.tile([0.5, -0.2], (4, 1)))
                                ["u_plan"], base, rtol=0, atol=1e-12)
-    np.testing.assert_allclose(on.plan(x, tg)["u_plan"], base, rtol=0, atol=1e-12)
+    # (a repeat may take the steady target by its re-used active set instead of the DAQP
+    # stages: the same optimum to round-off, ~1e-12 here)
+    np.testing.assert_allclose(on.plan(x, tg)["u_plan"], base, rtol=0, atol=1e-10)
     step = np.tile([0.5, -0.2], (11, 1))
     step[4:, 0] = 1.0
     np.testing.assert_allclose(off.plan(x, tg, setpoint_program=step)["u_plan"], base, rtol=0,
-                               atol=1e-12)
+                               atol=1e-10)
     assert np.abs(on.plan(x, tg, setpoint_program=step)["u_plan"] - base).max() > 1e-3
 
 

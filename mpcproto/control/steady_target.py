@@ -34,6 +34,22 @@ iterations of strictly convex DAQP solves solve it.  All in deviation variables 
 the measured DVs, ``w`` the disturbance estimates.  Written with the state (not a gain matrix) so
 that integrating units work: a level's steady state asks for balanced flows and leaves the level
 itself to its setpoint.
+
+The common case in closed form: when every CV whose band is a single value (a setpoint) can be
+met exactly with every other band, every CV limit and every MV bound satisfied, stage 1's optimum
+is 0 and stage 2 is the minimum of its objective over those setpoint equalities alone, provided
+that minimum satisfies the other rows.  Per *setpoint pattern* (which CVs have a setpoint; a few
+cached) one matrix maps the sample's inputs (``d``, ``w``, the setpoints, ``pref``) straight to
+``[xs; ys; us]`` (the equality-constrained stage 2 by the null-space method); a solve is one
+product and a vectorised check of the other rows.  Where the check fails (an unreachable setpoint,
+an active MV bound, zone edge or limit), or where the shortcut would not be exact (a CV bound with
+no weight, dependent setpoints that do not agree, disturbances outside the model's steady-state
+range), the two DAQP stages decide.  Their deciding rows are then re-used by the next sample:
+the same lexicographic solve with those rows as equalities (stage 1 as weighted least squares,
+stage 2 with the CVs pinned at stage 1's values), accepted only where both stages' KKT conditions
+hold (primal feasibility, the multipliers' signs, a limit's stage-1 multiplier within its linear
+weight).  ``iterations`` is 0 for both closed forms; ``last_path`` says which way the last solve
+went; ``closed_form = False`` turns both shortcuts off.
 """
 
 from __future__ import annotations
@@ -57,6 +73,10 @@ _DAQP_SETTINGS = {"primal_tol": 1e-11, "iter_limit": 2000}
 _PROX_RHO = 1e-6      # stage 1's proximal weight (scaled units)
 _PROX_MAX = 40        # at most this many proximal iterations
 _TOL_SIGN = np.array([[-_CV_TOL], [_CV_TOL]])     # stage 2's widening of [lo; hi]
+_EQ_RANK_TOL = 1e-9   # setpoint rows of Yphi (singular values <= 1): below this, dependent
+_EQ_RESID_TOL = 1e-11  # dependent setpoints must agree to this (relative, scaled units)
+_STRUCT_CACHE = 8     # setpoint patterns kept (and as many active-set patterns)
+_MISSING = object()
 
 
 def _finite(v):
@@ -102,6 +122,8 @@ class SteadyTarget:
         self.preferred_weight = np.asarray(preferred_weight, float)
         self.solver_options = dict(solver_options or {})
         self.scales = scales
+        self.closed_form = True       # the exact shortcut of the common case (see the module)
+        self.last_path = None         # "closed_form", "active_set", "daqp", "cvxpy", "out_of_range"
         self.is_built = False
 
     def build(self) -> "SteadyTarget":
@@ -195,6 +217,8 @@ class SteadyTarget:
                         + _MIN_NORM * (T.T @ Zf) @ (Zf.T @ T))
         self._H2 = 0.5 * (self._H2 + self._H2.T)
         self._Zf = Zf
+        self._P2 = (T.T @ Zf) @ (Zf.T @ T)          # the pull's part of H2, over _MIN_NORM
+        self._unorm = max(float(np.linalg.norm(self._Uphi, 2)) if k else 0.0, 1e-300)
         self._A2 = np.vstack([self._Yphi, self._Uphi])
         self._sense2 = np.zeros(ny + nu, dtype=np.intc)
         self.layout_ = {"d": nd, "w": nw, "band_lo": ny, "band_hi": ny, "lim_lo": ny, "lim_hi": ny,
@@ -227,11 +251,356 @@ class SteadyTarget:
         self._g1hi = np.concatenate([np.full(2 * ny, cp_), ny + a(ny), np.full(ny, cp_),
                                      3 * ny + a(ny), 4 * ny + nu + a(nu)])
         self._bconst = np.array([0.0, -np.inf, np.inf])
+        self._build_closed_form(c, h, lin)
         self._daqp1 = self._daqp2 = None              # DAQP workspaces, made on first use
         self._ref = None                              # cvxpy reference problems, made on first use
         self.stage2_failures = 0
         self.is_built = True
         return self
+
+    def _build_closed_form(self, c, h, lin):
+        """What every closed-form solve shares (the per-pattern maps are made on first use)."""
+        ny, nu = self.ny, self.nu
+        sl = self._zsl
+        zi = np.arange(self._nz)
+        # the rows [ys; us] must satisfy, gathered from z by one index (per pattern, see
+        # _structure): lower bounds enter with +, upper ones with - (lo - y <= 0, y - hi <= 0)
+        self._chk_rows = np.vstack([np.concatenate([zi[sl[a]], zi[sl[b]]]) for a, b in (
+            ("band_lo", "mv_lo"), ("lim_lo", "mv_lo"), ("band_hi", "mv_hi"),
+            ("lim_hi", "mv_hi"))])
+        self._chk_sign = np.array([[1.0], [1.0], [-1.0], [-1.0]])
+        # a finite band of a CV without band weight, or finite limits without limit weights,
+        # leave stage 1's optimum non-unique: such inputs go the general way
+        self._unweighted = np.concatenate([zi[sl["band_lo"]][c <= 0], zi[sl["band_hi"]][c <= 0],
+                                           zi[sl["lim_lo"]][(h <= 0) & (lin <= 0)],
+                                           zi[sl["lim_hi"]][(h <= 0) & (lin <= 0)]])
+        self._blo_sl, self._bhi_sl = sl["band_lo"], sl["band_hi"]
+        self._bands_sl = slice(sl["band_lo"].start, sl["band_hi"].stop)   # (adjacent in z)
+        self._masks = {}                              # setpoint pattern by the bands' bytes
+        self._any_unweighted = bool(self._unweighted.size)
+        self._c_s, self._lin_s = c, lin              # stage 1's weights (scaled)
+        self._structs = {}
+        self._pstructs = {}                           # re-used active sets (_pattern_map)
+        self._pat = None                              # the last DAQP solve's deciding rows
+        self._noting = False
+        self._yu = slice(self.nx, self.nx + ny + nu)  # [ys; us] in the map's output
+
+    def _eq_min(self, Ae, dbe, df2):
+        """Stage 2 over the equalities ``Ae phi = be``: ``(dphi, Rres)`` with ``phi = dphi @ q``
+        and ``Rres @ q`` the disagreement of dependent rows (must be ~0), for ``be = dbe @ q``
+        and ``f2 = df2 @ q``; None where there is no well-conditioned answer."""
+        k = self._k
+        p = Ae.shape[0]
+        Ua, sa, Vta = np.linalg.svd(Ae) if p else (np.zeros((0, 0)), np.zeros(0), np.eye(k))
+        r = int(np.sum(sa > _EQ_RANK_TOL))
+        # min 1/2 phi' H2 phi + f2' phi  s.t.  Ae phi = be, by the null-space method:
+        # phi = Fp be + Zn t.  The free directions Zn are split into those that move the
+        # MVs (Z1) and those that leave them alone (Z2: only the 1e-9 pull decides there,
+        # and f2 has no part in them); the pull's rows are divided by its weight, so the
+        # system is as well conditioned as each part (solved as one, the 1e-9 would cost
+        # nine digits of the free states)
+        Fp = Vta[:r].T @ (Ua[:, :r].T / sa[:r, None])
+        Zn = Vta[r:].T
+        dphi = Fp @ dbe
+        if Zn.shape[1]:
+            H2, P = self._H2, self._P2
+            _, sm, Vmt = np.linalg.svd(self._Uphi @ Zn)
+            rm = int(np.sum(sm > 1e-10 * self._unorm))
+            Z1, Z2 = Zn @ Vmt[:rm].T, Zn @ Vmt[rm:].T
+            Kb = np.block([[Z1.T @ H2 @ Z1, 2 * _MIN_NORM * (Z1.T @ P @ Z2)],
+                           [Z2.T @ P @ Z1, Z2.T @ P @ Z2]])
+            rhs = -np.vstack([Z1.T @ (H2 @ dphi + df2), Z2.T @ (P @ dphi)])
+            if not np.linalg.cond(Kb) < 1e12:
+                return None
+            dphi = dphi + np.hstack([Z1, Z2]) @ np.linalg.solve(Kb, rhs)
+        return dphi, Ua[:, r:].T @ dbe
+
+    def _inputs(self, m, ncol):
+        """Maps from q = [d; w; ncol values; pref] (engineering) to ``y0`` and ``u0`` (scaled)
+        and to stage 2's ``f2``."""
+        nx, nu, ny = self.nx, self.nu, self.ny
+        nv, nin = nx + nu, self._nin
+        Kv, Ky = self._Kin[:nv], self._Kin[nv:nv + ny]
+        dy0 = np.hstack([Ky, np.zeros((ny, ncol + nu))])
+        du0 = np.hstack([Kv[nx:], np.zeros((nu, ncol + nu))])
+        dpref = np.hstack([np.zeros((nu, nin + ncol)), np.diag(1 / self._su)])
+        df2 = -2 * (self._Uphi.T * self._wrel) @ (dpref - du0)
+        return np.hstack([Kv, np.zeros((nv, ncol + nu))]), dy0, du0, df2
+
+    def _finish_map(self, dv0, dy0, dphi, extra):
+        """[xs; ys; us; phi; extra rows] in engineering units from the maps of v0, y0, phi."""
+        nx = self.nx
+        dv = dv0 + self._Vphi @ dphi
+        dy = dy0 + self._Yphi @ dphi
+        G = np.vstack([dv[:nx] * self._sx[:, None], dy * self._sy[:, None],
+                       dv[nx:] * self._su[:, None], dphi] + extra)
+        return G if np.all(np.isfinite(G)) else None
+
+    def _structure(self, mask):
+        """The affine map of one setpoint pattern *mask* (bool, ny): ``[xs; ys; us; phi; r] =
+        G @ z[cols]`` (engineering units; ``r`` the disagreement of dependent setpoints, scaled),
+        or None where the pattern has no exact closed form."""
+        nin, sy = self._nin, self._sy
+        m = np.flatnonzero(mask)
+        p = m.size
+        dv0, dy0, _, df2 = self._inputs(m, p)
+        # be = setpoints - y0 (scaled), the equality rows' right side
+        dbe = np.hstack([np.zeros((p, nin)), np.diag(1 / sy[m]), np.zeros((p, self.nu))]) - dy0[m]
+        if self._k:
+            sol = self._eq_min(self._Yphi[m], dbe, df2)
+            if sol is None:
+                return None
+            dphi, Rres = sol
+        else:
+            dphi, Rres = np.zeros((0, dbe.shape[1])), dbe   # nothing moves: setpoints must hold
+        G = self._finish_map(dv0, dy0, dphi, [Rres])
+        if G is None:
+            return None
+        zi = np.arange(self._nz)
+        cols = np.concatenate([zi[:nin], zi[self._zsl["band_lo"]][m], zi[self._zsl["pref"]]])
+        # a setpoint CV is checked against its limits only (its band is the equality itself)
+        chk = self._chk_rows.copy()
+        chk[0, m] = chk[1, m]
+        chk[2, m] = chk[3, m]
+        return G, cols, Rres.shape[0], chk
+
+    def _solve_closed_form(self, z):
+        """The exact answer by a closed form (the common case, or the last DAQP solve's active
+        rows re-used), or None where the two DAQP stages must decide."""
+        bands = z[self._bands_sl].tobytes()      # [band_lo; band_hi]: setpoints change rarely
+        try:
+            mask, key = self._masks[bands]
+        except KeyError:
+            blo = z[self._blo_sl]
+            mask = blo == z[self._bhi_sl]
+            mask &= np.isfinite(blo)           # (an infinite "setpoint" is no setpoint)
+            key = mask.tobytes()
+            if len(self._masks) >= 4 * _STRUCT_CACHE:
+                self._masks.clear()
+            self._masks[bands] = mask, key
+        if self._any_unweighted and (np.abs(z[self._unweighted]) < np.inf).any():
+            return None
+        out = None
+        pat = self._pat
+        if pat is not None and pat[0] == key:
+            pst = self._pstructs.get(pat, _MISSING)
+            if pst is _MISSING:
+                if len(self._pstructs) >= _STRUCT_CACHE:
+                    self._pstructs.pop(next(iter(self._pstructs)))
+                pst = self._pstructs[pat] = self._pattern_map(pat)
+            if pst is not None:
+                out = self._solve_pattern(z, pst)
+                self.last_path = "active_set"
+        if out is None:
+            out = self._solve_common(z, mask, key)
+            if out is None:
+                return None
+            self._pat = None
+            self.last_path = "closed_form"
+        nx, ny = self.nx, self.ny
+        nu = self.nu
+        self._x1_last = None    # stage 1's next start: [s = 0; e = 0; phi], made when needed
+        self._x1_from = out
+        vals = _TargetValues(xs=out[:nx], ys=out[nx:nx + ny], us=out[nx + ny:nx + ny + nu])
+        vals._data, vals._sy, vals._source = None, self._sy, (self, z.copy())
+        return vals
+
+    def _solve_common(self, z, mask, key):
+        """The common case (setpoints met, nothing else active): the map's output, or None."""
+        try:
+            st = self._structs[key]
+        except KeyError:
+            if len(self._structs) >= _STRUCT_CACHE:
+                self._structs.pop(next(iter(self._structs)))
+            st = self._structs[key] = self._structure(mask)
+        if st is None:
+            return None
+        G, cols, nres, chk = st
+        q = z[cols]
+        out = G @ q
+        if nres:
+            be_scale = 1.0 + float(np.maximum.reduce(np.abs(q[self._nin:self._nin + mask.sum()]
+                                                               / self._sy[mask]), initial=0.0))
+            if float(np.maximum.reduce(np.abs(out[-nres:]))) > _EQ_RESID_TOL * be_scale:
+                return None
+        # every other row, strictly: lo - y <= 0 and y - hi <= 0 (a candidate on an edge by
+        # round-off only goes the general way).  NaN -- an absent bound given as NaN, or a NaN
+        # among the inputs -- fails too (np.maximum propagates it); an infinite bound never binds
+        g = z[chk] - out[self._yu]
+        g *= self._chk_sign
+        if not np.maximum.reduce(g, axis=None) <= 0.0:
+            return None
+        return out
+
+    # ------------------------------------------------------------------ a re-used active set
+    def _note_pattern(self, data, y0, ys1, yf, uf):
+        """After a DAQP solve: the rows that decided it (scaled units), kept for the next
+        sample's closed form (:meth:`_pattern_map`); None where a soft limit is violated."""
+        blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
+        bounds = {"lim_lo": llo, "lim_hi": lhi, "band_lo": blo, "band_hi": bhi,
+                  "mv_lo": data["mv_lo"], "mv_hi": data["mv_hi"]}
+        with np.errstate(invalid="ignore"):
+            if np.any(np.maximum(llo - ys1, ys1 - lhi) > 1e-9 * (1 + np.abs(ys1))):
+                return None
+            sp = (blo == bhi) & np.isfinite(blo)
+            e1 = ys1 - np.minimum(np.maximum(ys1, blo), np.maximum(blo, bhi))
+            o_lo = ~sp & (e1 < -1e-9 * (1 + np.abs(blo)))
+            o_hi = ~sp & (e1 > 1e-9 * (1 + np.abs(bhi)))
+            inside = ~(sp | o_lo | o_hi)
+            rows = []
+            for name, sign in (("lim_lo", -1), ("lim_hi", 1), ("mv_lo", -1), ("mv_hi", 1),
+                               ("band_lo", -1), ("band_hi", 1)):
+                b = bounds[name]
+                val = uf if name.startswith("mv") else yf
+                hit = (np.abs(val - b) <= 1e-9 * (1 + np.abs(b))) & np.isfinite(b)
+                if name.startswith("band"):
+                    hit &= inside
+                rows += [(name, int(i), sign) for i in np.flatnonzero(hit)]
+        return (sp.tobytes(), tuple(np.flatnonzero(o_lo)), tuple(np.flatnonzero(o_hi)),
+                tuple(rows))
+
+    def _pattern_map(self, pat):
+        """The closed form of a lexicographic solve whose deciding rows are *pat* (see
+        :meth:`_note_pattern`): stage 1 as weighted least squares of the CVs off their targets
+        (setpoints; zone edges of the CVs outside their zones) over the active limit and MV rows,
+        stage 2 over those CVs pinned at stage 1's values and its own active rows.  Besides
+        ``[xs; ys; us; phi]`` the map gives the disagreement of dependent rows (must be ~0) and
+        the multipliers of the active rows (each stage's, signed: must be >= 0, and a limit's
+        stage-1 multiplier at most its linear weight: the KKT conditions of both stages)."""
+        mask = np.frombuffer(pat[0], dtype=bool)
+        o_lo, o_hi, rows = list(pat[1]), list(pat[2]), pat[3]
+        nx, nu, ny, k, nin = self.nx, self.nu, self.ny, self._k, self._nin
+        if not k:
+            return None
+        sy, su, sl = self._sy, self._su, self._zsl
+        zi = np.arange(self._nz)
+        S = list(np.flatnonzero(mask))
+        T = S + o_lo + o_hi
+        tcols = [zi[sl["band_lo"]][i] for i in S + o_lo] + [zi[sl["band_hi"]][i] for i in o_hi]
+        a1 = [r for r in rows if not r[0].startswith("band")]
+        a2 = [r for r in a1 if r[0].startswith("mv") or r[1] not in T] + [
+            r for r in rows if r[0].startswith("band")]
+        if any(self._c_s[i] <= 0 for i in T):
+            return None
+        rcols = {r: zi[sl[r[0]]][r[1]] for r in rows}
+        vals = list(tcols) + [rcols[r] for r in rows]      # q = [d; w; vals; pref]
+        ncol = len(vals)
+        dv0, dy0, du0, df2 = self._inputs(None, ncol)
+        nq = dv0.shape[1]
+
+        def value_row(pos, kind_y, i):                     # bound - offset (scaled), a row of q
+            e = np.zeros(nq)
+            e[nin + pos] = 1 / (sy[i] if kind_y else su[i])
+            return e - (dy0[i] if kind_y else du0[i])
+
+        def row_of(r):
+            return self._Uphi[r[1]] if r[0].startswith("mv") else self._Yphi[r[1]]
+
+        pos = {r: len(tcols) + j for j, r in enumerate(rows)}
+        Y = self._Yphi[T]
+
+        def independent(base, cand):
+            """Rows of *cand* that add to the rank of *base* (greedy); the others are implied
+            where consistent (checked: their residuals), and carry no multiplier."""
+            keep, drop, M = [], [], base
+            rk = np.linalg.matrix_rank(M, tol=_EQ_RANK_TOL) if M.shape[0] else 0
+            for r in cand:
+                M2 = np.vstack([M, row_of(r)])
+                rk2 = np.linalg.matrix_rank(M2, tol=_EQ_RANK_TOL)
+                if rk2 > rk:
+                    keep.append(r)
+                    M, rk = M2, rk2
+                else:
+                    drop.append(r)
+            return keep, drop
+
+        a1, drop1 = independent(np.zeros((0, k)), a1)
+        a2, drop2 = independent(Y, a2)
+        dropped = list(dict.fromkeys(drop1 + drop2))
+        db = np.array([value_row(j, True, i) for j, i in enumerate(T)]).reshape(len(T), nq)
+        A1 = np.array([row_of(r) for r in a1]).reshape(len(a1), k)
+        da1 = np.array([value_row(pos[r], not r[0].startswith("mv"), r[1])
+                        for r in a1]).reshape(len(a1), nq)
+        A2 = np.array([row_of(r) for r in a2]).reshape(len(a2), k)
+        da2 = np.array([value_row(pos[r], not r[0].startswith("mv"), r[1])
+                        for r in a2]).reshape(len(a2), nq)
+        Ad = np.array([row_of(r) for r in dropped]).reshape(len(dropped), k)
+        dad = np.array([value_row(pos[r], not r[0].startswith("mv"), r[1])
+                        for r in dropped]).reshape(len(dropped), nq)
+        # stage 1: min sum c (Y phi - b)^2 over A1 phi = a1 (null-space method; the fitted
+        # values are unique even where phi is not)
+        c = self._c_s[T]
+        U1, s1, V1t = np.linalg.svd(A1) if len(a1) else (np.zeros((0, 0)), np.zeros(0),
+                                                          np.eye(k))
+        r1 = int(np.sum(s1 > _EQ_RANK_TOL))
+        F1 = V1t[:r1].T @ (U1[:, :r1].T / s1[:r1, None])
+        N1 = V1t[r1:].T
+        phi_p = F1 @ da1
+        wh = np.sqrt(c)[:, None]
+        t = np.linalg.pinv(wh * (Y @ N1), rcond=1e-12) @ (wh * (db - Y @ phi_p))
+        fT = Y @ (phi_p + N1 @ t)
+        g1 = 2 * Y.T @ (c[:, None] * (fT - db))
+        sign1 = np.array([r[2] for r in a1], float)
+        mu1 = -sign1[:, None] * (np.linalg.pinv(A1.T, rcond=1e-12) @ g1) if len(a1) else \
+            np.zeros((0, nq))
+        # stage 2 over [Y; A2] phi = [fT; a2]
+        sol = self._eq_min(np.vstack([Y, A2]), np.vstack([fT, da2]), df2)
+        if sol is None:
+            return None
+        dphi, R2 = sol
+        E2 = np.vstack([Y, A2])
+        nu2 = -np.linalg.pinv(E2.T, rcond=1e-12) @ (self._H2 @ dphi + df2)
+        sign2 = np.array([r[2] for r in a2], float)
+        mu2 = sign2[:, None] * nu2[len(T):]
+        resid = np.vstack([U1[:, r1:].T @ da1, R2, Ad @ dphi - dad])
+        G = self._finish_map(dv0, dy0, dphi, [resid, mu1, mu2])
+        if G is None:
+            return None
+        cap = np.array([self._lin_s[r[1]] if r[0].startswith("lim") else np.inf for r in a1])
+        # round-off of the multipliers: each stage's curvature times the size of phi
+        scales = (2 * float(np.max(c, initial=0.0)), float(np.max(np.abs(self._H2))))
+        cols = np.concatenate([zi[:nin], np.array(vals, dtype=int), zi[sl["pref"]]])
+        # the check of every row: targets' CVs against their limits (a CV outside its zone
+        # also against that side's edge, from outside), the active rows not at all
+        chk = self._chk_rows.copy()
+        sg = np.repeat(self._chk_sign, ny + nu, axis=1)
+        for i in S:
+            chk[0, i], chk[2, i] = chk[1, i], chk[3, i]
+        for i in o_lo:
+            chk[0, i], chk[2, i] = chk[1, i], zi[sl["band_lo"]][i]
+        for i in o_hi:
+            chk[2, i], chk[0, i] = chk[3, i], zi[sl["band_hi"]][i]
+        for r in rows:
+            col = (ny + r[1]) if r[0].startswith("mv") else r[1]
+            sg[chk[:, col] == rcols[r], col] = 0.0
+        return G, cols, resid.shape[0], chk, sg, cap, scales
+
+    def _solve_pattern(self, z, st):
+        """Closed form by a re-used active set (see :meth:`_pattern_map`), or None."""
+        G, cols, nres, chk, sg, cap, (c1, h2) = st
+        out = G @ z[cols]
+        nx, ny, nu, k = self.nx, self.ny, self.nu, self._k
+        n0 = nx + ny + nu + k
+        amax = np.maximum.reduce
+        size = 1.0 + float(amax(np.abs(out[nx + ny + nu:n0])))          # of phi
+        if nres and float(amax(np.abs(out[n0:n0 + nres]))) > _EQ_RESID_TOL * size:
+            return None
+        # the multipliers' signs (and a limit's stage-1 multiplier at most its linear weight),
+        # to their round-off: a multiplier that is 0 in exact arithmetic may come out -1e-17
+        n1 = cap.size
+        for mu, scale, top in ((out[n0 + nres:n0 + nres + n1], c1, cap),
+                               (out[n0 + nres + n1:], h2, None)):
+            if mu.size:
+                tol = 1e-11 * (float(amax(np.abs(mu))) + scale * size)
+                if not float(np.minimum.reduce(mu)) >= -tol:
+                    return None
+                if top is not None and not float(amax(mu - top)) <= tol:
+                    return None
+        g = z[chk] - out[self._yu]
+        g *= sg
+        if not np.maximum.reduce(g, axis=None) <= 0.0:
+            return None
+        return out
 
     def restart(self) -> None:
         """Forget any state kept between solves (a rerun repeats a run)."""
@@ -240,6 +609,7 @@ class SteadyTarget:
         self.stage2_failures = 0
         self._x1_last = self._x1_start
         self._daqp1 = self._daqp2 = None
+        self._pat = None
 
     # ------------------------------------------------------------------ the data of one sample
     def _unpack(self, z):
@@ -287,27 +657,43 @@ class SteadyTarget:
         return {"xs": v[:nx] * self._sx, "us": v[nx:] * self._su, "ys": ys * self._sy}
 
     # ------------------------------------------------------------------ solve
-    def solve(self, z: np.ndarray, fast: bool = True, solver: str = "OSQP", options=None):
+    def solve(self, z: np.ndarray, fast: bool = True, solver: str = "OSQP", options=None,
+              closed_form: bool | None = None):
         """Solve for the input vector *z* (blocks in ``layout_`` order, deviation variables).
 
-        ``fast=True`` solves both stages with DAQP; ``fast=False`` solves the same two stages
-        with cvxpy and *solver* (a reference and a second opinion).  Returns a
-        :class:`~mpcproto.control._qp.QPResult` with ``xs``, ``us``, ``ys`` and ``s`` in
-        engineering deviation units and ``e`` (scaled).
+        ``fast=True`` takes the exact closed form where it applies (see the module; not when
+        *closed_form* -- default: the attribute ``closed_form`` -- is False) and otherwise solves
+        both stages with DAQP; ``fast=False`` solves the same two stages with cvxpy and *solver*
+        (a reference and a second opinion).  Returns a :class:`~mpcproto.control._qp.QPResult`
+        with ``xs``, ``us``, ``ys`` and ``s`` in engineering deviation units and ``e`` (scaled);
+        ``last_path`` records the way taken.
         """
         if not self.is_built:
             raise NotBuiltError("SteadyTarget is not built; call .build() first.")
         t0 = time.perf_counter()
+        if fast and self._full_range and (self.closed_form if closed_form is None
+                                          else closed_form):
+            z = np.asarray(z, float)
+            if z.shape == (self._nz,):
+                vals = self._solve_closed_form(z)
+                if vals is not None:        # (last_path: "closed_form" or "active_set")
+                    return QPResult("optimal", True, vals, 0, (time.perf_counter() - t0) * 1e3)
         data, v0, y0, u0, in_range = self._unpack(z)
         if not in_range:
+            self.last_path = "out_of_range"
             return QPResult(status="infeasible", accepted=False,
                             solve_ms=(time.perf_counter() - t0) * 1e3)
         if fast:
+            self.last_path = "daqp"
+            self._noting = self._full_range and (self.closed_form if closed_form is None
+                                                 else closed_form)
             res = self._solve_daqp(data, v0, y0, u0)
         else:
+            self.last_path = "cvxpy"
             res = self._solve_cvxpy(data, v0, y0, u0, solver, options)
         if res.accepted:       # e and s computed when read (the controller reads neither)
-            res.values = _TargetValues(res.values, data, self._sy)
+            vals = res.values = _TargetValues(res.values)
+            vals._data, vals._sy, vals._source = data, self._sy, None
         res.solve_ms = (time.perf_counter() - t0) * 1e3
         return res
 
@@ -342,6 +728,8 @@ class SteadyTarget:
                 self.stage2_failures += 1
         v = v0 + self._Vphi @ phi
         vals = self._values(v, y0 - self._Cy @ v0)
+        if self._noting:               # the deciding rows, for the next sample's closed form
+            self._pat = self._note_pattern(data, y0, ys1, y0 + self._Yphi @ phi, v[self.nx:])
         return QPResult(status="optimal", accepted=True, values=vals, iterations=iters)
 
     def _solve_stage2(self, daqp, f2, b2hi, b2lo):
@@ -376,7 +764,12 @@ class SteadyTarget:
         them all and the next sample's (warm-started from the last active set; a workspace solve
         that does not end optimal is repeated afresh before it counts as a failure).
         """
-        x = self._x1_last.copy()
+        x = self._x1_last
+        if x is None:           # after a closed form: its phi with s = 0, e = 0
+            nv = self.nx + self.ny + self.nu
+            x = np.concatenate([np.zeros(2 * self.ny), self._x1_from[nv:nv + self._k]])
+        else:
+            x = x.copy()
         H = self._H1p
         iters = 0
         mdl = self._daqp1
@@ -474,14 +867,16 @@ class _TargetValues(dict):
     """The target's values; ``e`` (band error, scaled) and ``s`` (limit violation, engineering
     units) are computed on first read from the stored bounds."""
 
-    def __init__(self, values, data, sy):
-        super().__init__(values)
-        self._data, self._sy = data, sy
+    # set by the maker: _data (the unpacked bounds) or None and _source = (target, z), _sy
+    __slots__ = ("_data", "_sy", "_source")
 
     def __missing__(self, key):
         if key not in ("e", "s"):
             raise KeyError(key)
         data = self._data
+        if data is None:
+            target, z = self._source
+            data = self._data = target._unpack(z)[0]
         ys_s = self["ys"] / self._sy
         blo, bhi, llo, lhi = data["band_lo"], data["band_hi"], data["lim_lo"], data["lim_hi"]
         self["e"] = ys_s - np.minimum(np.maximum(ys_s, blo), np.maximum(blo, bhi))
