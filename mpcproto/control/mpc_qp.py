@@ -121,7 +121,10 @@ class ControllerQP:
                 tl[k] = slice(o, o + s_)
                 o += s_
         self._tsl = tl
-        self._tz = np.zeros(o)
+        self._tz = tz = np.zeros(o)
+        self._tzv = tuple(tz[tl[k]] for k in ("d", "w", "band_lo", "band_hi", "lim_lo", "lim_hi",
+                                              "mv_lo", "mv_hi", "pref")) if tl else None
+        self._slim = self._tz_lim = None     # this sample's limits in deviations (kept)
         self._plan_idx = np.minimum(np.arange(N), M - 1)
         kind = r["solver"]
         self.solver_ = kind
@@ -172,16 +175,26 @@ class ControllerQP:
         ``setpoint_preview`` is on and it is built; else 0 (the closed loop passes no program)."""
         return self._N + 1 if self.is_built and self.setpoint_preview else 0
 
+    def _sample_limits(self, mv_lo, mv_hi, cv_lo, cv_hi, sp_) -> "_SampleLimits":
+        """The deviations of this sample's limits and setpoints (kept while they stay)."""
+        c = self._slim
+        key = sp_.tobytes()
+        if (c is not None and c.key == key and c.mv_lo is mv_lo and c.mv_hi is mv_hi
+                and c.cv_lo is cv_lo and c.cv_hi is cv_hi):
+            return c
+        c = self._slim = _SampleLimits(mv_lo, mv_hi, cv_lo, cv_hi, sp_, key, self._op_u,
+                                       self._op_y)
+        return c
+
     def _optimize(self, x, w, d_now, use, dv_forecast, mv_lo, mv_hi, rate, cv_lo, cv_hi, sp_,
                   u_prev, diag, preview=None):
         """Steady target and dynamic QP for estimate (x, w); returns the dynamic QPResult.
         *preview*: ``(sp_end, departures)`` of :func:`~mpcproto.control.preview.stage_references`."""
         if preview is not None:
             sp_ = preview[0]             # the target for the end of the horizon
-        m = self.dmodel
         N = self._N
-        op_u, op_d, op_y = self._op_u, self._op_d, self._op_y
-        nd = m.nd
+        op_u, op_d = self._op_u, self._op_d
+        nd = self._nd
         z, zs = self._z, self._zsl
         # ---- DV trajectory over the horizon (deviation), samples 0..N
         if nd:
@@ -201,36 +214,33 @@ class ControllerQP:
                 d_end = d_now + dtraj[-nd:]
         else:
             d_end = d_now
-        # ---- deviations of limits and setpoints (clo, chi, u_prev_dev: written straight into z's
-        # blocks, views valid for this call)
+        # ---- deviations of limits and setpoints: computed when the limits or setpoints change
+        # (the limits' arrays are kept by the runtime while the targets stay: compared by
+        # identity; the setpoints by their bytes), written into z's and the target's blocks
+        lim = self._sample_limits(mv_lo, mv_hi, cv_lo, cv_hi, sp_)
         zx0, zup, zw, zblo, zbhi, zllo, zlhi, zu, zrate, zpref = self._zv
-        lo_dev, hi_dev = mv_lo - op_u, mv_hi - op_u
-        clo = np.subtract(cv_lo, op_y, zllo)
-        chi = np.subtract(cv_hi, op_y, zlhi)
-        spd = sp_ - op_y
-        has_sp = np.isfinite(spd)
-        consistent = clo <= chi
-        if False not in consistent.tolist():        # (cheaper than .all() on a few entries)
-            zone_lo, zone_hi = clo, chi
-        else:
-            zone_lo = np.where(consistent, clo, -np.inf)
-            zone_hi = np.where(consistent, chi, np.inf)
+        lo_dev, hi_dev = lim.lo_dev, lim.hi_dev
+        zllo[:] = lim.clo
+        zlhi[:] = lim.chi
         u_prev_dev = np.subtract(u_prev, op_u, zup)
         t_target = 0.0
         fast = self._fast
         # ---- steady target
         if self.target_ is not None:
-            tz, ts = self._tz, self._tsl
+            tv = self._tzv
             if nd:
-                tz[ts["d"]] = d_end
-            tz[ts["w"]] = w
-            tz[ts["band_lo"]] = np.where(has_sp, spd, zone_lo)
-            tz[ts["band_hi"]] = np.where(has_sp, spd, zone_hi)
-            tz[ts["lim_lo"]] = clo
-            tz[ts["lim_hi"]] = chi
-            tz[ts["mv_lo"]] = lo_dev
-            tz[ts["mv_hi"]] = hi_dev
-            tz[ts["pref"]] = self._pref_dev
+                tv[0][:] = d_end
+            tv[1][:] = w
+            if self._tz_lim is not lim:       # the blocks of limits, setpoints and preferences
+                tv[2][:] = lim.tband_lo
+                tv[3][:] = lim.tband_hi
+                tv[4][:] = lim.clo
+                tv[5][:] = lim.chi
+                tv[6][:] = lo_dev
+                tv[7][:] = hi_dev
+                tv[8][:] = self._pref_dev
+                self._tz_lim = lim
+            tz = self._tz
             res = self.target_.solve(tz, fast=fast, solver=self._cvxpy_solver,
                                      options=self._cvxpy_opts)
             t_target = res.solve_ms
@@ -243,23 +253,31 @@ class ControllerQP:
                     res = res2
             diag.target_iterations = res.iterations     # 0: the active set was re-used
             if res.accepted:
-                self._target = (res.values["us"], res.values["ys"], res.values["xs"])
+                vals = res.values
+                self._target = (vals["us"], vals["ys"], vals["xs"])
                 diag.target_status = "ok"
             else:
                 self.counts["target_fallbacks"] += 1
                 diag.target_status = res.status
                 if self._target is None:     # stay where we are
                     self._target = (np.clip(u_prev_dev, lo_dev, hi_dev),
-                                    m.C @ x + self._Cw @ w, x.copy())
+                                    self.dmodel.C @ x + self._Cw @ w, x.copy())
             us, ys, _xs = self._target
-            band_lo = np.where(has_sp, ys, np.fmin(zone_lo, ys))
-            band_hi = np.where(has_sp, ys, np.fmax(zone_hi, ys))
+            # a setpoint CV's band is its target value; a zone widened to take the target in
+            if lim.all_sp:
+                zblo[:] = ys
+                zbhi[:] = ys
+            else:
+                np.fmin(lim.zone_lo, ys, zblo)
+                np.copyto(zblo, ys, where=lim.has_sp)
+                np.fmax(lim.zone_hi, ys, zbhi)
+                np.copyto(zbhi, ys, where=lim.has_sp)
             pref = us
             diag.target_u = us + op_u          # read as a list
-            diag.target_y = ys + op_y
+            diag.target_y = ys + self._op_y
         else:
-            band_lo = np.where(has_sp, spd, zone_lo)
-            band_hi = np.where(has_sp, spd, zone_hi)
+            zblo[:] = lim.tband_lo
+            zbhi[:] = lim.tband_hi
             pref = self._pref_dev
         # ---- MV limits reachable under the rate limits (keeps the QP feasible when a limit moved
         # past the current MV: the plan then moves towards it as fast as allowed)
@@ -269,8 +287,6 @@ class ControllerQP:
         np.fmax(zu[1], hi_dev, zu[1])
         zx0[:] = x
         zw[:] = w
-        zblo[:] = band_lo
-        zbhi[:] = band_hi
         zrate[:] = rate
         zpref[:] = pref
         if self.terminal_weight_ is not None:
@@ -381,3 +397,26 @@ class ControllerQP:
             out.update(u=u0, u_plan=Uplan, y_pred=Y, x_pred=X,
                        slack=res.values["slack"] * self._sy_col)
         return out
+
+
+class _SampleLimits:
+    """A sample's limits and setpoints in deviations, and what the QPs' blocks take from them:
+    the MV limits, the CV limits, the setpoints, the zones (the limits where they do not cross),
+    the target's bands (the setpoint, else the zone)."""
+
+    __slots__ = ("mv_lo", "mv_hi", "cv_lo", "cv_hi", "key", "lo_dev", "hi_dev", "clo", "chi",
+                 "has_sp", "all_sp", "zone_lo", "zone_hi", "tband_lo", "tband_hi")
+
+    def __init__(self, mv_lo, mv_hi, cv_lo, cv_hi, sp_, key, op_u, op_y):
+        self.mv_lo, self.mv_hi, self.cv_lo, self.cv_hi, self.key = mv_lo, mv_hi, cv_lo, cv_hi, key
+        self.lo_dev, self.hi_dev = mv_lo - op_u, mv_hi - op_u
+        clo, chi = cv_lo - op_y, cv_hi - op_y
+        spd = sp_ - op_y
+        has_sp = np.isfinite(spd)
+        consistent = clo <= chi
+        self.clo, self.chi, self.has_sp = clo, chi, has_sp
+        self.all_sp = bool(has_sp.all())
+        self.zone_lo = np.where(consistent, clo, -np.inf)
+        self.zone_hi = np.where(consistent, chi, np.inf)
+        self.tband_lo = np.where(has_sp, spd, self.zone_lo)
+        self.tband_hi = np.where(has_sp, spd, self.zone_hi)

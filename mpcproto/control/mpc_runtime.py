@@ -61,6 +61,7 @@ class ControllerRuntime:
         if self.target_ is not None:
             self.target_.restart()
         self._last_inputs = None
+        self._slim = self._tz_lim = None
         self._op = op
         self._op_u = np.asarray(m.op.u, float)
         self._op_d = np.asarray(m.op.d, float)
