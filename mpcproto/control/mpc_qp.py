@@ -30,6 +30,10 @@ __all__ = ["ControllerQP"]
 class ControllerQP:
     """Build and per-sample solve of the controller's QPs (a part of ``PredictiveController``)."""
 
+    #: take the MV limits as the reachable bounds when the previous MVs were projected inside
+    #: them (False: always the general formula; the tests compare the two)
+    _reach_shortcut = True
+
     def _build(self) -> "ControllerQP":
         t_start = time.perf_counter()
         r = self.validate()
@@ -125,6 +129,7 @@ class ControllerQP:
         self._tzv = tuple(tz[tl[k]] for k in ("d", "w", "band_lo", "band_hi", "lim_lo", "lim_hi",
                                               "mv_lo", "mv_hi", "pref")) if tl else None
         self._slim = self._tz_lim = None     # this sample's limits in deviations (kept)
+        self._zu_lim = self._u_prev_within = None
         self._plan_idx = np.minimum(np.arange(N), M - 1)
         kind = r["solver"]
         self.solver_ = kind
@@ -281,10 +286,22 @@ class ControllerQP:
             pref = self._pref_dev
         # ---- MV limits reachable under the rate limits (keeps the QP feasible when a limit moved
         # past the current MV: the plan then moves towards it as fast as allowed)
-        np.multiply(self._reach, rate, zu)       # (2, M, nu): u_prev +- k rate, then the limits
-        zu += u_prev_dev
-        np.fmin(zu[0], lo_dev, zu[0])
-        np.fmax(zu[1], hi_dev, zu[1])
+        # When the previous MVs are the runtime's own, projected inside these very limits, every
+        # reachable bound is the limit itself (u_prev + k rate >= u_prev >= lo under monotone
+        # rounding, k rate >= 0): the limits broadcast over the moves, written once
+        inside = self._u_prev_within
+        if (self._reach_shortcut and u_prev is self._u_prev and inside is not None
+                and inside[0] is mv_lo and inside[1] is mv_hi):
+            if self._zu_lim is not lim:
+                zu[0] = lo_dev
+                zu[1] = hi_dev
+                self._zu_lim = lim
+        else:
+            np.multiply(self._reach, rate, zu)   # (2, M, nu): u_prev +- k rate, then the limits
+            zu += u_prev_dev
+            np.fmin(zu[0], lo_dev, zu[0])
+            np.fmax(zu[1], hi_dev, zu[1])
+            self._zu_lim = None
         zx0[:] = x
         zw[:] = w
         zrate[:] = rate

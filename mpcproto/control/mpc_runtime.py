@@ -61,7 +61,7 @@ class ControllerRuntime:
         if self.target_ is not None:
             self.target_.restart()
         self._last_inputs = None
-        self._slim = self._tz_lim = None
+        self._slim = self._tz_lim = self._zu_lim = self._u_prev_within = None
         self._op = op
         self._op_u = np.asarray(m.op.u, float)
         self._op_d = np.asarray(m.op.d, float)
@@ -325,6 +325,7 @@ class ControllerRuntime:
         self.counts["steps"] += 1
         if not finite:
             u = self._hold(mv_lo, mv_hi, rate)
+            self._u_prev_within = None
             self.counts["failed_solves"] += 1
             diag.update(solver_status="estimate_not_finite", fallback=True, solve_ms=0.0,
                         target_ms=0.0, slack_max=float("nan"), active_mv_limits=0, iterations=None)
@@ -364,6 +365,7 @@ class ControllerRuntime:
         u, diag.clipped, at_limit, diag.active_rate_limits, diag.limits_over_rate = \
             project_with_activity(u, self._u_prev, lo, hi, rt, what="PredictiveController",
                                   summary=True)
+        self._u_prev_within = (mv_lo, mv_hi)     # u is inside these limits (the next sample's)
         diag.active_mv_limits = len(at_limit)
         diag.active_mv_limit_names = [self._mv_names[j] for j in at_limit] if at_limit else []
         return self._finish(u, status, diag, t_start)
@@ -385,6 +387,7 @@ class ControllerRuntime:
                 self.estimator_.revise_input(ua - self._op_u)
                 self._note_not_following(self._u_prev, ua)
             self._u_prev = ua
+            self._u_prev_within = None
             self.counts["readback_differs"] += 1
         self._ua_prev = ua.copy()
 
