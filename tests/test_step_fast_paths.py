@@ -206,6 +206,11 @@ def test_projection_summary_equals_the_clip_rule_and_the_general_projection():
                                       r.tolist(), summary=True)
         np.testing.assert_array_equal(again[0], out)
         assert again[1:] == (clipped, at_limit, n_rate, n_over) or math.isnan(clipped)
+        # mixed forms: a list request with an array of previous MVs (the controller's), and
+        # limits some as lists, some as arrays (converted)
+        mixed = project_with_activity(u.tolist(), p, lo.tolist(), hi, r.tolist(), summary=True)
+        np.testing.assert_array_equal(mixed[0], out)
+        assert mixed[1:] == (clipped, at_limit, n_rate, n_over) or math.isnan(clipped)
 
 
 def test_projection_summary_nan_cases_and_refusals_as_the_general_projection():
