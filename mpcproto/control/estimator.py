@@ -289,6 +289,7 @@ class DisturbanceEstimator:
         self._post[0] = xa
         self._u_prev = np.zeros(nu)       # the input before sample 0 (later: a view of the last)
         self._started = False
+        self._finite_k = -1               # the sample whose posterior update found finite
         self.counts = {"rejected_nonfinite": 0, "late_used": 0, "too_old": 0}
 
     def _row_views(self) -> None:
@@ -324,7 +325,8 @@ class DisturbanceEstimator:
         if not self.is_built:
             self._check()
         Ts = self._Ts
-        k = int(round((float(t) - self._t0) / Ts))          # sample_index(t)
+        # sample_index(t) (round gives an int; float(t) for a time of another type)
+        k = round(((t if type(t) is float else float(t)) - self._t0) / Ts)
         H = self._H
         if self._started:
             if k != self._k + 1:
@@ -344,15 +346,13 @@ class DisturbanceEstimator:
         fresh = np.asarray(fresh, bool)
         taken_at = np.asarray(taken_at, float)
         half = 0.5 * Ts
-        # the common case, every CV measured now: first a cheap test that implies the full one
-        # (bytes compared: all fresh, every value taken at t bit for bit; every value finite
-        # because their sum is: a NaN or an infinity makes it NaN or infinite, an overflow only
-        # sends a finite set to the full test), then the full test
-        if ((fresh.tobytes() == self._all_true and y_dev.shape == self._shape_y
-             and taken_at.tobytes() == _pack_float(t) * self.ny_ and _finite_sum(y_dev.tolist())
-             and t - half < t < t + half)
-                or (fresh.all() and np.isfinite(y_dev).all()
-                    and taken_at.min() > t - half and taken_at.max() < t + half)):
+        # the common case, every CV measured now: first a cheap test (bytes compared: all
+        # fresh, every value taken at t bit for bit) whose values' finiteness is read from the
+        # correction (below), then the full test
+        quick = (fresh.tobytes() == self._all_true and y_dev.shape == self._shape_y
+                 and taken_at.tobytes() == _pack_float(t) * self.ny_ and t - half < t < t + half)
+        if quick or (fresh.all() and np.isfinite(y_dev).all()
+                     and taken_at.min() > t - half and taken_at.max() < t + half):
             self._full[slot] = True
             self._yvals[slot][...] = y_dev              # (self._yval[slot] = y_dev)
             xa = self._priors[slot]
@@ -361,9 +361,21 @@ class DisturbanceEstimator:
                 yhat += self.D_.dot(self._us[(k - 1) % H] if k > 0 else self._u_prev)
             if self._has_Dd:
                 yhat += self.Dd_.dot(d_dev)
-            np.add(xa, self.gain_.dot(y_dev - yhat), out=self._posts[slot])
-            self._started = True
-            return NO_EVENTS
+            post = self._posts[slot]
+            np.add(xa, self.gain_.dot(y_dev - yhat), out=post)
+            # a finite posterior (its sum finite) means finite values: a NaN or an infinity
+            # among them makes every entry of the correction NaN or infinite (each entry sums
+            # a gain times each value); it is also estimate()'s answer for this sample.  Else
+            # numpy decides: values not all finite take the general path (the posterior is
+            # written again there), finite ones keep this posterior
+            if (total := sum(post.tolist())) - total == 0.0:
+                self._finite_k = k
+            elif quick and not np.isfinite(y_dev).all():
+                self._full[slot] = False
+                quick = None
+            if quick is not None:
+                self._started = True
+                return NO_EVENTS
         rejected, late, too_old = [], [], []
         first = k
         for i in np.flatnonzero(fresh):
@@ -455,7 +467,10 @@ class DisturbanceEstimator:
     def estimate(self) -> tuple[np.ndarray, np.ndarray, bool]:
         """``(state, disturbance_estimate, finite)``: the two current estimates (views, as the
         properties return them) and whether every entry of both is finite."""
-        s = self._k % self._H
+        k = self._k
+        s = k % self._H
+        if self._finite_k == k:             # update found it finite
+            return self._xs[s], self._ws[s], True
         post = self._posts[s]
         return (self._xs[s], self._ws[s], _finite_sum(post.tolist())
                 or np.isfinite(post).tobytes() == self._all_true_a)
