@@ -362,7 +362,7 @@ class DisturbanceEstimator:
             if self._has_Dd:
                 yhat += self.Dd_.dot(d_dev)
             post = self._posts[slot]
-            np.add(xa, self.gain_.dot(y_dev - yhat), out=post)
+            np.add(xa, self.gain_.dot(y_dev - yhat), post)    # (out by position: cheaper)
             # a finite posterior (its sum finite) means finite values: a NaN or an infinity
             # among them makes every entry of the correction NaN or infinite (each entry sums
             # a gain times each value); it is also estimate()'s answer for this sample.  Else
@@ -437,13 +437,14 @@ class DisturbanceEstimator:
         if less is None:
             u[...] = u_dev                              # (self._u[s] = u_dev)
         else:
-            np.subtract(u_dev, less, out=u)
-        # self._propagate(s, nxt, self._has_Bd) written out: the same products and sums
+            np.subtract(u_dev, less, u)
+        # self._propagate(s, nxt, self._has_Bd) written out: the same products and sums (the
+        # ufuncs' out given by position: cheaper than out= or +=)
         prior = self._priors[nxt]
-        np.dot(self.A_, self._posts[s], out=prior)
-        prior += self.Ba_.dot(u)
+        np.dot(self.A_, self._posts[s], prior)
+        np.add(prior, self.Ba_.dot(u), prior)
         if self._has_Bd:
-            prior += self.Bda_.dot(self._ds[s])
+            np.add(prior, self.Bda_.dot(self._ds[s]), prior)
         self._full[nxt] = False
         if self._marked[nxt]:
             self._ymask[nxt] = False
