@@ -33,6 +33,9 @@ from ..validation import fail
 
 __all__ = ["project_command", "project_value", "limit_activity", "project_with_activity"]
 
+#: numpy's float64 (one object: a native float array's dtype is it)
+_FLOAT = np.dtype(float)
+
 
 def project_command(u, u_prev, lo, hi, max_move, *, what: str = "project_command") -> np.ndarray:
     """The MV command sent: *u* projected onto the rate limit, then onto the hard limits.
@@ -158,7 +161,7 @@ def project_with_activity(u, u_prev, lo, hi, max_move, *, what: str = "project_c
         shape = (len(u),)
         n = shape[0]
         # lists taken as they are, a flat float array listed (a controller's previous MVs)
-        if type(u_prev) is np.ndarray and u_prev.shape == shape and u_prev.dtype == np.float64:
+        if type(u_prev) is np.ndarray and u_prev.dtype is _FLOAT and u_prev.shape == shape:
             ps = u_prev.tolist()
         else:
             ps = u_prev if type(u_prev) is list and len(u_prev) == n else _floats(u_prev, shape)
