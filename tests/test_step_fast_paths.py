@@ -169,6 +169,49 @@ def test_estimate_finite_flag_agrees_with_numpy_isfinite(bad):
     assert est.estimate()[2] is True
 
 
+@pytest.mark.parametrize("bad", [np.inf, -np.inf, np.nan])
+def test_a_non_finite_value_measured_now_is_rejected_as_the_masked_recursion(bad):
+    # Every CV fresh and taken now, one value not finite: the common path's cheap test passes
+    # and the value's finiteness is read from the correction; the value must still be rejected
+    # and the estimate be the masked Kalman recursion's without it (Kalman 1960, the
+    # estimator's subset gain; reference: masked_kalman_pass).
+    m = feedthrough_model()
+    rng = np.random.default_rng(5)
+    for i in range(2):
+        est = mp.DisturbanceEstimator(m, history=5).build()
+        est.reset(None, 0.0)
+        n = 6
+        Y, U, Dv = rng.normal(size=(n, 2)), rng.normal(size=(n, 2)), rng.normal(size=(n, 1))
+        M = np.ones((n, 2), bool)
+        for k in range(n):
+            y = Y[k].copy()
+            if k == 3:
+                y[i], M[k, i] = bad, False
+            info = est.update(float(k), y, np.full(2, float(k)), np.ones(2, bool), Dv[k])
+            assert list(info["rejected"]) == ([i] if k == 3 else [])
+            x, w, finite = est.estimate()
+            ref = masked_kalman_pass(est, Y[:k + 1], M[:k + 1], U[:k + 1], Dv[:k + 1])
+            np.testing.assert_allclose(np.concatenate([x, w]), ref, rtol=1e-9, atol=1e-12)
+            assert finite is True and np.isfinite(ref).all()
+            est.predict(U[k])
+        assert est.counts["rejected_nonfinite"] == 1
+
+
+def test_estimate_finite_flag_when_the_sum_of_a_finite_estimate_overflows():
+    # Entries near the largest double (numpy.finfo) are finite although their sum is not: the
+    # flag then comes from numpy.isfinite (the reference), on the common path of update too.
+    m = feedthrough_model()
+    est = mp.DisturbanceEstimator(m).build()
+    big = np.finfo(float).max / 2
+    est.reset(np.full(m.nx, big), 0.0)
+    x, w, finite = est.estimate()
+    assert finite is True and np.isfinite(np.concatenate([x, w])).all()
+    est.update(0.0, np.zeros(2), np.zeros(2), np.ones(2, bool), np.zeros(1))
+    x, w, finite = est.estimate()
+    assert finite is bool(np.isfinite(np.concatenate([x, w])).all())
+    assert finite is True
+
+
 # ------------------------------------------------------------------ the projection
 def clip_rule(u, p, lo, hi, r):
     """Reference (common practice, no source): the rate window around the previous MV, then the
@@ -206,6 +249,11 @@ def test_projection_summary_equals_the_clip_rule_and_the_general_projection():
                                       r.tolist(), summary=True)
         np.testing.assert_array_equal(again[0], out)
         assert again[1:] == (clipped, at_limit, n_rate, n_over) or math.isnan(clipped)
+        # mixed forms: a list request with an array of previous MVs (the controller's), and
+        # limits some as lists, some as arrays (converted)
+        mixed = project_with_activity(u.tolist(), p, lo.tolist(), hi, r.tolist(), summary=True)
+        np.testing.assert_array_equal(mixed[0], out)
+        assert mixed[1:] == (clipped, at_limit, n_rate, n_over) or math.isnan(clipped)
 
 
 def test_projection_summary_nan_cases_and_refusals_as_the_general_projection():

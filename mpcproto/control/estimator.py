@@ -64,10 +64,17 @@ NO_EVENTS: dict[str, Any] = {"rejected": (), "late": (), "too_old": ()}
 
 
 #: the attributes :meth:`DisturbanceEstimator._row_views` makes (not copied: rebuilt)
-_ROW_VIEWS = ("_priors", "_posts", "_us", "_xs", "_ws")
+_ROW_VIEWS = ("_priors", "_posts", "_us", "_ds", "_yvals", "_xs", "_ws")
 
 #: a float's 8 bytes as numpy stores a float64 (native order)
 _pack_float = struct.Struct("=d").pack
+
+
+def _finite_sum(values: list[float]) -> bool:
+    """True only where every value is finite (their sum is finite: a NaN or an infinity makes
+    it NaN or infinite); False may also mean an overflow of a finite set (ask numpy then)."""
+    total = sum(values)
+    return total - total == 0.0
 
 _DETECTABLE = ("a disturbance model the estimator can detect ('output' disturbances, or an "
                "'input' model only where MVs reach the CV)")
@@ -267,13 +274,14 @@ class DisturbanceEstimator:
         self._H = H
         self._prior, self._post = np.zeros((H, na)), np.zeros((H, na))
         self._u, self._d = np.zeros((H, nu)), np.zeros((H, self.dmodel.nd))
+        self._yval = np.zeros((H, ny))
         self._row_views()
         # which CVs were used at each sample: _full[s] (every CV, the common path: the row of
         # _ymask is not written), else the row of _ymask (_marked[s]: the row has entries)
         self._ymask = np.zeros((H, ny), bool)
         self._full, self._marked = [False] * H, [False] * H
         self._all_cvs = np.ones(ny, bool)
-        self._yval = np.zeros((H, ny))
+        self._shape_y = (ny,)
         xa = np.zeros(na)
         if x0 is not None:
             xa[: self.nx_] = np.asarray(x0, float).reshape(-1)
@@ -281,12 +289,14 @@ class DisturbanceEstimator:
         self._post[0] = xa
         self._u_prev = np.zeros(nu)       # the input before sample 0 (later: a view of the last)
         self._started = False
+        self._finite_k = -1               # the sample whose posterior update found finite
         self.counts = {"rejected_nonfinite": 0, "late_used": 0, "too_old": 0}
 
     def _row_views(self) -> None:
         """The ring buffers' rows as views (a list index is cheaper than a numpy one on the
         per-sample path); rebuilt after a copy, which would otherwise copy each view apart."""
         self._priors, self._posts, self._us = list(self._prior), list(self._post), list(self._u)
+        self._ds, self._yvals = list(self._d), list(self._yval)
         self._xs = [r[: self.nx_] for r in self._post]
         self._ws = [r[self.nx_:] for r in self._post]
 
@@ -315,7 +325,8 @@ class DisturbanceEstimator:
         if not self.is_built:
             self._check()
         Ts = self._Ts
-        k = int(round((float(t) - self._t0) / Ts))          # sample_index(t)
+        # sample_index(t) (round gives an int; float(t) for a time of another type)
+        k = round(((t if type(t) is float else float(t)) - self._t0) / Ts)
         H = self._H
         if self._started:
             if k != self._k + 1:
@@ -330,30 +341,41 @@ class DisturbanceEstimator:
                 k = self._k
         self._k = k
         slot = k % H
-        self._d[slot] = d_dev
+        self._ds[slot][...] = d_dev                     # (the row's view: self._d[slot] = d_dev)
         y_dev = np.asarray(y_dev, float)
         fresh = np.asarray(fresh, bool)
         taken_at = np.asarray(taken_at, float)
         half = 0.5 * Ts
-        # the common case, every CV measured now: first a cheap test that implies the full one
-        # (bytes compared: all fresh, every value finite, every value taken at t bit for bit),
-        # then the full test
-        all_true = self._all_true
-        if ((fresh.tobytes() == all_true and np.isfinite(y_dev).tobytes() == all_true
-             and taken_at.tobytes() == _pack_float(t) * self.ny_ and t - half < t < t + half)
-                or (fresh.all() and np.isfinite(y_dev).all()
-                    and taken_at.min() > t - half and taken_at.max() < t + half)):
+        # the common case, every CV measured now: first a cheap test (bytes compared: all
+        # fresh, every value taken at t bit for bit) whose values' finiteness is read from the
+        # correction (below), then the full test
+        quick = (fresh.tobytes() == self._all_true and y_dev.shape == self._shape_y
+                 and taken_at.tobytes() == _pack_float(t) * self.ny_ and t - half < t < t + half)
+        if quick or (fresh.all() and np.isfinite(y_dev).all()
+                     and taken_at.min() > t - half and taken_at.max() < t + half):
             self._full[slot] = True
-            self._yval[slot] = y_dev
+            self._yvals[slot][...] = y_dev              # (self._yval[slot] = y_dev)
             xa = self._priors[slot]
             yhat = self.C_.dot(xa)
             if self._has_D:
                 yhat += self.D_.dot(self._us[(k - 1) % H] if k > 0 else self._u_prev)
             if self._has_Dd:
                 yhat += self.Dd_.dot(d_dev)
-            np.add(xa, self.gain_.dot(y_dev - yhat), out=self._posts[slot])
-            self._started = True
-            return NO_EVENTS
+            post = self._posts[slot]
+            np.add(xa, self.gain_.dot(y_dev - yhat), post)    # (out by position: cheaper)
+            # a finite posterior (its sum finite) means finite values: a NaN or an infinity
+            # among them makes every entry of the correction NaN or infinite (each entry sums
+            # a gain times each value); it is also estimate()'s answer for this sample.  Else
+            # numpy decides: values not all finite take the general path (the posterior is
+            # written again there), finite ones keep this posterior
+            if (total := sum(post.tolist())) - total == 0.0:
+                self._finite_k = k
+            elif quick and not np.isfinite(y_dev).all():
+                self._full[slot] = False
+                quick = None
+            if quick is not None:
+                self._started = True
+                return NO_EVENTS
         rejected, late, too_old = [], [], []
         first = k
         for i in np.flatnonzero(fresh):
@@ -399,7 +421,7 @@ class DisturbanceEstimator:
         np.dot(self.A_, self._posts[s], out=prior)
         prior += self.Ba_.dot(self._us[s])
         if dvs:
-            prior += self.Bda_.dot(self._d[s])
+            prior += self.Bda_.dot(self._ds[s])
 
     def predict(self, u_dev: np.ndarray, *, less: np.ndarray | None = None) -> None:
         """Propagate to the next sample with the MVs *u_dev* applied from now on (deviation;
@@ -408,18 +430,26 @@ class DisturbanceEstimator:
         if not self.is_built:
             self._check()
         H = self._H
-        s = self._k % H
-        nxt = (self._k + 1) % H
+        k = self._k
+        s = k % H
+        nxt = (k + 1) % H
+        u = self._us[s]
         if less is None:
-            self._u[s] = u_dev
+            u[...] = u_dev                              # (self._u[s] = u_dev)
         else:
-            np.subtract(u_dev, less, out=self._us[s])
-        self._propagate(s, nxt, self._has_Bd)
+            np.subtract(u_dev, less, u)
+        # self._propagate(s, nxt, self._has_Bd) written out: the same products and sums (the
+        # ufuncs' out given by position: cheaper than out= or +=)
+        prior = self._priors[nxt]
+        np.dot(self.A_, self._posts[s], prior)
+        np.add(prior, self.Ba_.dot(u), prior)
+        if self._has_Bd:
+            np.add(prior, self.Bda_.dot(self._ds[s]), prior)
         self._full[nxt] = False
         if self._marked[nxt]:
             self._ymask[nxt] = False
             self._marked[nxt] = False
-        self._u_prev = self._us[s]       # a view: the slot is not written again before it is read
+        self._u_prev = u                 # a view: the slot is not written again before it is read
 
     def revise_input(self, u_dev: np.ndarray) -> None:
         """Replace the MVs of the last :meth:`predict` by those actually applied (readback).
@@ -438,9 +468,13 @@ class DisturbanceEstimator:
     def estimate(self) -> tuple[np.ndarray, np.ndarray, bool]:
         """``(state, disturbance_estimate, finite)``: the two current estimates (views, as the
         properties return them) and whether every entry of both is finite."""
-        s = self._k % self._H
-        return (self._xs[s], self._ws[s],
-                np.isfinite(self._posts[s]).tobytes() == self._all_true_a)
+        k = self._k
+        s = k % self._H
+        if self._finite_k == k:             # update found it finite
+            return self._xs[s], self._ws[s], True
+        post = self._posts[s]
+        return (self._xs[s], self._ws[s], _finite_sum(post.tolist())
+                or np.isfinite(post).tobytes() == self._all_true_a)
 
     @property
     def state(self) -> np.ndarray:

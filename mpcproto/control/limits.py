@@ -33,6 +33,9 @@ from ..validation import fail
 
 __all__ = ["project_command", "project_value", "limit_activity", "project_with_activity"]
 
+#: numpy's float64 (one object: a native float array's dtype is it)
+_FLOAT = np.dtype(float)
+
 
 def project_command(u, u_prev, lo, hi, max_move, *, what: str = "project_command") -> np.ndarray:
     """The MV command sent: *u* projected onto the rate limit, then onto the hard limits.
@@ -156,16 +159,24 @@ def project_with_activity(u, u_prev, lo, hi, max_move, *, what: str = "project_c
     """
     if summary and type(u) is list:
         shape = (len(u),)
-    else:
-        u = np.asarray(u, float)
-        shape = u.shape
-    if len(shape) == 1:                 # the common case: flat lists without broadcasting
         n = shape[0]
-        cols = [u if type(u) is list else u.tolist()]
+        # lists taken as they are, a flat float array listed (a controller's previous MVs)
+        if type(u_prev) is np.ndarray and u_prev.dtype is _FLOAT and u_prev.shape == shape:
+            ps = u_prev.tolist()
+        else:
+            ps = u_prev if type(u_prev) is list and len(u_prev) == n else _floats(u_prev, shape)
+        if not (type(lo) is list and type(hi) is list and type(max_move) is list
+                and len(lo) == len(hi) == len(max_move) == n):
+            lo, hi, max_move = (a if type(a) is list and len(a) == n else _floats(a, shape)
+                                for a in (lo, hi, max_move))
+        out, clipped, at_limit, n_rate, n_over = _project_counted(u, ps, lo, hi, max_move, what,
+                                                                  rel_tol)
+        return np.array(out, float), clipped, at_limit, n_rate, n_over
+    u = np.asarray(u, float)
+    shape = u.shape
+    if len(shape) == 1:                 # the common case: flat lists without broadcasting
+        cols = [u.tolist()]
         for a in (u_prev, lo, hi, max_move):
-            if summary and type(a) is list and len(a) == n:
-                cols.append(a)
-                continue
             a = np.asarray(a, float)
             cols.append(a.tolist() if a.shape == shape else _floats(a, shape))
     else:
@@ -180,7 +191,7 @@ def project_with_activity(u, u_prev, lo, hi, max_move, *, what: str = "project_c
 
 def _project_counted(us, ps, los, his, rs, what, rel_tol):
     """:func:`project_value` and :func:`_activity` per MV in one loop, with the activity
-    counted: the same comparisons on the same numbers, the activity inlined (a controller
+    counted: the same comparisons on the same numbers, both inlined (a controller
     step's common path; ``abs(x) <= tol`` written ``-tol <= x <= tol``, ``max(1.0, |v|)`` as a
     test that also gives 1.0 for a NaN)."""
     out, at_limit = [], []
@@ -190,7 +201,17 @@ def _project_counted(us, ps, los, his, rs, what, rel_tol):
     for v0, p, a, b, r in zip(us, ps, los, his, rs):
         if a > b or r < 0:                      # refused: the message names the MV
             project_value(v0, p, a, b, r, what=f"{what} (MV {j})")
-        v = project_value(v0, p, a, b, r)
+        # project_value inlined: where both the request and the previous MV are NaN, every
+        # comparison below is False and the NaN stays (its early return of NaN)
+        v = p if v0 != v0 else v0
+        if v > p + r:
+            v = p + r
+        elif v < p - r:
+            v = p - r
+        if v < a:
+            v = a
+        elif v > b:
+            v = b
         out.append(v)
         if v != v0:                             # (a NaN difference, once there, stays)
             d = abs(v - v0)
