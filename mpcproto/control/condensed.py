@@ -54,6 +54,11 @@ from typing import Any
 
 import numpy as np
 
+try:                                   # the ufunc ndarray.clip calls (no Python wrapper)
+    from numpy._core.umath import clip as _clip
+except ImportError:                    # numpy < 2
+    from numpy.core.umath import clip as _clip
+
 from ._qp import QPResult
 
 __all__ = ["CondensedQP", "DAQP_DEFAULTS", "DAQP_OPTIONS", "DAQP_EXIT"]
@@ -216,7 +221,10 @@ class CondensedQP:
         self._sq = np.concatenate([np.tile(sy, 4), su, np.tile(sy, 14)])   # their scales
         self._n4, self._nq = 4 * ny, 4 * ny + nu
         self._usl = slice(zs["u_lo"].start, zs["u_hi"].stop)          # u_lo, u_hi
-        self._zv = (None, None)
+        self._ssl = slice(zs["band_lo"].start, zs["lim_hi"].stop)     # the signature's blocks
+        self._rsl = zs["rate"]
+        self._zv = (None, None, None, None)
+        self._last = (None, None, None)    # (raw signature blocks, entry, scaled q) of last sample
         self._zlen = max(s_.stop for s_ in zs.values())
         self._q_active = self._w["cv_weight"] > 0
         self._lim_weighted = (self._w["limit_linear"] > 0) | (self._w["limit_quadratic"] > 0)
@@ -229,6 +237,7 @@ class CondensedQP:
         """Forget the workspaces and active sets of a previous run (a rerun repeats it exactly)."""
         self._structs.clear()
         self._sigs.clear()
+        self._last = (None, None, None)
 
     # ------------------------------------------------------------------ per structure
     def _structure(self, eq, zone, lim, rated):
@@ -241,6 +250,7 @@ class CondensedQP:
         if len(self._structs) > 32:
             self._structs.clear()
             self._sigs.clear()            # its entries point to the workspaces just dropped
+            self._last = (None, None, None)
         st = _Structure(self, eq, zone, lim, rated, key)
         self._structs[key] = st
         return st
@@ -290,33 +300,46 @@ class CondensedQP:
         the soft rows (per CV, on the state entries that CV sees), one small product for the rate
         rows and a few array operations for the bounds.
         """
-        if z is not self._zv[0]:            # views of the blocks read (the same z each sample)
-            n = self.n_variables_
-            self._zv = (z, z[self._usl].reshape(2, n))
-        # band_lo, band_hi, lim_lo, lim_hi, the rates and the signature's pairs, scaled
-        q = z.take(self._q_idx) / self._sq
-        nq = self._nq
-        p = nq + 7 * self.ny
-        sig = np.isfinite(q[:nq]).tobytes() + (q[nq:p] <= q[p:]).tobytes()
+        zv = self._zv
+        if z is not zv[0]:                  # views of the blocks read (the same z each sample)
+            zv = self._zv = (z, z[self._usl].reshape(2, self.n_variables_), z[self._ssl],
+                             z[self._rsl])
+        # the band, limit and rate blocks as they were last sample (bit for bit): the same
+        # signature, entry and scaled values; else band_lo, band_hi, lim_lo, lim_hi, the rates and
+        # the signature's pairs, scaled
+        raw = zv[2].tobytes() + zv[3].tobytes()
+        last = self._last
+        if raw == last[0]:
+            ent, q = last[1], last[2]
+        else:
+            q = z.take(self._q_idx) / self._sq
+            nq = self._nq
+            p = nq + 7 * self.ny
+            sig = np.isfinite(q[:nq]).tobytes() + (q[nq:p] <= q[p:]).tobytes()
+            ent = self._sigs.get(sig)
+            if ent is None:
+                if len(self._sigs) > 256:
+                    self._sigs.clear()
+                ent = self._sigs[sig] = self._entry(q[:self._n4], q[self._n4:nq], z)
+            self._last = (raw, ent, q)
         bs = q[:self._n4]
-        ent = self._sigs.get(sig)
-        if ent is None:
-            if len(self._sigs) > 256:
-                self._sigs.clear()
-            ent = self._sigs[sig] = self._entry(bs, q[self._n4:nq], z)
         if ent.__class__ is dict:
-            ent = self._moving_entry(ent, bs, q[self._n4:nq], z)
+            ent = self._moving_entry(ent, bs, q[self._n4:self._nq], z)
         st = ent.st
+        n = self.n_variables_
         if st.W is not None:                # one soft group: gradient and free response at once
             r = np.dot(st.W, z.take(st.w_cols))
-            f, yf = r[:self.n_variables_], r[self.n_variables_:]
+            f, yf = r[:n], r[n:]
         else:
             f = np.dot(st.F, z.take(st.f_cols))
             if st.n_groups:                 # free response of the soft rows (groups, 1, N)
                 yf = np.matmul(z.take(st.g_cols), st.S)
                 if st.g_map is not None:
                     yf = yf[st.g_map]
-        np.divide(self._zv[1], self._su_t, st.b_u)
+        ub = zv[1].tobytes()                # MV limits as written last into this structure's
+        if ub != st.u_raw:                  # bounds: those bounds stand (DAQP only reads them)
+            np.divide(zv[1], self._su_t, st.b_u)
+            st.u_raw = ub
         if st.n_groups:
             np.subtract(bs.take(st.v_idx), yf, st.b_soft)
             if st.moved_idx is not None:                      # preview: zone bands move
@@ -330,7 +353,7 @@ class CondensedQP:
             # move rows: the first move is measured from u_prev, the others from the last move
             np.matmul(st.R, z.take(st.rate_cols), out=st.b_rate)
         b = st.b                                # [bl; bu] in one buffer: one call for four
-        b.clip(-_INF, _INF, out=b)
+        _clip(b, -_INF, _INF, out=b)
         return st.H, f, st.A, st.bu, st.bl, st.sense, st.weights, st, st.key
 
     def _crossed(self, st, ent, bs, yf) -> bool:
@@ -482,7 +505,7 @@ class _Structure:
                  "n_rows", "n_zone", "n_lim", "n_rate", "n_groups", "n_zone_groups", "lim_o",
                  "lim_cv", "lim_pairs", "lim_flat", "lim_off", "f_cols", "F", "g_cols", "S",
                  "v_idx", "moved_idx", "moved_scale", "rate_cols", "R", "W", "w_cols",
-                 "g_map")
+                 "g_map", "u_raw")
 
     def __init__(self, cq: "CondensedQP", eq, zone, lim, rated, key: bytes):
         import daqp
@@ -515,6 +538,7 @@ class _Structure:
         self.rho[n:n + nz_] = 1.0 / (2.0 * np.repeat(q[zone], N))
         self.weights = (self.rho, self.rho, self.wlin, self.wlin)
         self.model, self.ready, self.weights_changed, self.wkey = daqp.Model(), False, False, None
+        self.u_raw = None              # the MV limits (bytes of z's u_lo, u_hi) last in b_u
         # ---- gradient: one matrix over the whole input vector, kept on the columns it reads
         fG = -2.0 * Geq.T * qeq[None, :]
         F = np.zeros((n, cq._zlen))
