@@ -404,19 +404,21 @@ class CondensedQP:
         x, _fval, flag, info = mdl.solve()
         ms = (time.perf_counter() - t0) * 1e3
         flag = int(flag)
-        status = DAQP_EXIT.get(flag) or f"exit_flag_{flag}"
-        # finite: x'x is (unless an entry is not finite, or it overflows: then look at each)
-        ok = (flag == 1 or flag == 2) and (math.isfinite(np.dot(x, x))
-                                           or bool(np.isfinite(x).all()))
+        if flag == 1 or flag == 2:
+            status = "optimal"
+            # finite: x'x is (unless an entry is not finite, or it overflows: then look at each)
+            ok = math.isfinite(np.dot(x, x)) or bool(np.isfinite(x).all())
+        else:
+            status = DAQP_EXIT.get(flag) or f"exit_flag_{flag}"
+            ok = False
         lam = info.get("lam")
         nact = None if lam is None else int(np.count_nonzero(lam))
         self.last_info_ = {"exit_flag": flag, "active_set": nact, "solver": "daqp",
                            "rows": st.n_rows, "variables": self.n_variables_}
-        vals: dict[str, np.ndarray] = {}
         if ok:
             U = x
-            vals["u"] = U.reshape(self.M, self.nu).T          # (nu, M), a view of x
             slack = np.zeros((self.ny, self.N))
+            vals = {"u": U.reshape(self.M, self.nu).T, "slack": slack}     # u: a view of x
             off = st.lim_off
             if st.n_lim and (nact != 0 or off.__class__ is not float):
                 # only a row in the final active set can be violated (others hold to primal_tol)
@@ -432,7 +434,8 @@ class CondensedQP:
                     rest = np.ones(nl, bool)
                     rest[act] = False
                     slack.reshape(-1)[st.lim_flat[rest]] = off[rest]
-            vals["slack"] = slack
+        else:
+            vals = {}
         return QPResult(status=status, accepted=ok, values=vals,
                         iterations=int(info.get("iterations", 0)), solve_ms=ms)
 
