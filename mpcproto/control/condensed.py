@@ -221,10 +221,7 @@ class CondensedQP:
         self._sq = np.concatenate([np.tile(sy, 4), su, np.tile(sy, 14)])   # their scales
         self._n4, self._nq = 4 * ny, 4 * ny + nu
         self._usl = slice(zs["u_lo"].start, zs["u_hi"].stop)          # u_lo, u_hi
-        self._ssl = slice(zs["band_lo"].start, zs["lim_hi"].stop)     # the signature's blocks
-        self._rsl = zs["rate"]
-        self._zv = (None, None, None, None)
-        self._last = (None, None, None)    # (raw signature blocks, entry, scaled q) of last sample
+        self._zv = (None, None)
         self._zlen = max(s_.stop for s_ in zs.values())
         self._q_active = self._w["cv_weight"] > 0
         self._lim_weighted = (self._w["limit_linear"] > 0) | (self._w["limit_quadratic"] > 0)
@@ -237,7 +234,6 @@ class CondensedQP:
         """Forget the workspaces and active sets of a previous run (a rerun repeats it exactly)."""
         self._structs.clear()
         self._sigs.clear()
-        self._last = (None, None, None)
 
     # ------------------------------------------------------------------ per structure
     def _structure(self, eq, zone, lim, rated):
@@ -250,7 +246,6 @@ class CondensedQP:
         if len(self._structs) > 32:
             self._structs.clear()
             self._sigs.clear()            # its entries point to the workspaces just dropped
-            self._last = (None, None, None)
         st = _Structure(self, eq, zone, lim, rated, key)
         self._structs[key] = st
         return st
@@ -302,29 +297,20 @@ class CondensedQP:
         """
         zv = self._zv
         if z is not zv[0]:                  # views of the blocks read (the same z each sample)
-            zv = self._zv = (z, z[self._usl].reshape(2, self.n_variables_), z[self._ssl],
-                             z[self._rsl])
-        # the band, limit and rate blocks as they were last sample (bit for bit): the same
-        # signature, entry and scaled values; else band_lo, band_hi, lim_lo, lim_hi, the rates and
-        # the signature's pairs, scaled
-        raw = zv[2].tobytes() + zv[3].tobytes()
-        last = self._last
-        if raw == last[0]:
-            ent, q = last[1], last[2]
-        else:
-            q = z.take(self._q_idx) / self._sq
-            nq = self._nq
-            p = nq + 7 * self.ny
-            sig = np.isfinite(q[:nq]).tobytes() + (q[nq:p] <= q[p:]).tobytes()
-            ent = self._sigs.get(sig)
-            if ent is None:
-                if len(self._sigs) > 256:
-                    self._sigs.clear()
-                ent = self._sigs[sig] = self._entry(q[:self._n4], q[self._n4:nq], z)
-            self._last = (raw, ent, q)
+            zv = self._zv = (z, z[self._usl].reshape(2, self.n_variables_))
+        # band_lo, band_hi, lim_lo, lim_hi, the rates and the signature's pairs, scaled
+        q = z.take(self._q_idx) / self._sq
+        nq = self._nq
+        p = nq + 7 * self.ny
+        sig = np.isfinite(q[:nq]).tobytes() + (q[nq:p] <= q[p:]).tobytes()
         bs = q[:self._n4]
+        ent = self._sigs.get(sig)
+        if ent is None:
+            if len(self._sigs) > 256:
+                self._sigs.clear()
+            ent = self._sigs[sig] = self._entry(bs, q[self._n4:nq], z)
         if ent.__class__ is dict:
-            ent = self._moving_entry(ent, bs, q[self._n4:self._nq], z)
+            ent = self._moving_entry(ent, bs, q[self._n4:nq], z)
         st = ent.st
         n = self.n_variables_
         if st.W is not None:                # one soft group: gradient and free response at once
@@ -341,7 +327,10 @@ class CondensedQP:
             np.divide(zv[1], self._su_t, st.b_u)
             st.u_raw = ub
         if st.n_groups:
-            np.subtract(bs.take(st.v_idx), yf, st.b_soft)
+            if st.v_sl is not None:         # one group: its band or limit ends, a view of bs
+                np.subtract(bs[st.v_sl], yf, st.b_soft1)
+            else:
+                np.subtract(bs.take(st.v_idx), yf, st.b_soft)
             if st.moved_idx is not None:                      # preview: zone bands move
                 st.b_soft[:, :st.n_zone_groups] += z.take(st.moved_idx) / st.moved_scale
             if st.n_lim:
@@ -417,10 +406,11 @@ class CondensedQP:
                            "rows": st.n_rows, "variables": self.n_variables_}
         if ok:
             U = x
-            slack = np.zeros((self.ny, self.N))
-            vals = {"u": U.reshape(self.M, self.nu).T, "slack": slack}     # u: a view of x
+            # u: (nu, M), a view of x; slack: (ny, N), the shared zeros unless a row is violated
+            vals = {"u": U.reshape((self.nu, self.M), order="F"), "slack": st.zero_slack}
             off = st.lim_off
             if st.n_lim and (nact != 0 or off.__class__ is not float):
+                slack = vals["slack"] = np.zeros((self.ny, self.N))
                 # only a row in the final active set can be violated (others hold to primal_tol)
                 o, nl = st.lim_o, st.n_lim
                 act = lam[o:o + nl].nonzero()[0] if lam is not None else np.arange(nl)
@@ -508,7 +498,7 @@ class _Structure:
                  "n_rows", "n_zone", "n_lim", "n_rate", "n_groups", "n_zone_groups", "lim_o",
                  "lim_cv", "lim_pairs", "lim_flat", "lim_off", "f_cols", "F", "g_cols", "S",
                  "v_idx", "moved_idx", "moved_scale", "rate_cols", "R", "W", "w_cols",
-                 "g_map", "u_raw")
+                 "g_map", "u_raw", "v_sl", "b_soft1", "zero_slack")
 
     def __init__(self, cq: "CondensedQP", eq, zone, lim, rated, key: bytes):
         import daqp
@@ -573,6 +563,7 @@ class _Structure:
         self.lim_flat = (lim_cv[:, None] * N + np.arange(N)[None, :]).ravel()
         self.moved_idx = self.moved_scale = None
         self.g_map = None
+        self.v_sl = self.b_soft1 = None
         if ng:
             # the free response once per CV (a CV with a zone of its own and a limit has both)
             gcv = [int(c) for c, _ in groups]
@@ -592,6 +583,10 @@ class _Structure:
             self.v_idx = np.array([[base * ny + c for c, base in groups],
                                    [(base + 1) * ny + c for c, base in groups]]).reshape(2, ng, 1, 1)
             self.b_soft = b2[:, n:n + nz_ + nl].reshape(2, ng, 1, N)
+            if ng == 1:                     # its (lower; upper) ends: bs[base*ny + c :: ny][:2]
+                c, base = groups[0]
+                self.v_sl = (slice(base * ny + int(c), (base + 2) * ny, ny), None)
+                self.b_soft1 = b2[:, n:n + nz_ + nl]                        # (2, N)
             if cq._preview and len(zone_cv):
                 self.moved_idx = (zs["ref"].start + r_zone).reshape(len(zone_cv), 1, N)
                 self.moved_scale = cq._sy[zone_cv].reshape(len(zone_cv), 1, 1)
@@ -615,7 +610,11 @@ class _Structure:
             W[n:, np.searchsorted(u, cols[0, 0])] = S[0].T
             self.W, self.w_cols = W, u
             self.S, self.g_cols = S[0], cols[0, 0]
-        for view in (self.b_u, self.b_soft if ng else self.b, self.b_rate):
+        # the slacks of a sample whose limit rows all hold: zeros, shared and read-only
+        self.zero_slack = np.zeros((ny, N))
+        self.zero_slack.flags.writeable = False
+        for view in (self.b_u, self.b_soft if ng else self.b, self.b_rate,
+                     self.b_soft1 if ng == 1 else self.b):
             assert view.size == 0 or np.shares_memory(view, self.b)     # views, not copies
 
     def set_limit_weights(self, wkey, rho_rows, wlin_rows) -> None:
