@@ -220,6 +220,8 @@ class CondensedQP:
                                      + [blk[i] for i in pa] + [blk[i] for i in pb])
         self._sq = np.concatenate([np.tile(sy, 4), su, np.tile(sy, 14)])   # their scales
         self._n4, self._nq = 4 * ny, 4 * ny + nu
+        sb = np.empty(self._nq + 7 * ny, dtype=bool)      # the signature's booleans
+        self._sigbuf = (sb[:self._nq], sb[self._nq:], sb)
         self._usl = slice(zs["u_lo"].start, zs["u_hi"].stop)          # u_lo, u_hi
         self._zv = (None, None)
         self._zlen = max(s_.stop for s_ in zs.values())
@@ -302,7 +304,10 @@ class CondensedQP:
         q = z.take(self._q_idx) / self._sq
         nq = self._nq
         p = nq + 7 * self.ny
-        sig = np.isfinite(q[:nq]).tobytes() + (q[nq:p] <= q[p:]).tobytes()
+        sb = self._sigbuf                   # finiteness, then the pairs, in one buffer
+        np.isfinite(q[:nq], out=sb[0])
+        np.less_equal(q[nq:p], q[p:], out=sb[1])
+        sig = sb[2].tobytes()
         bs = q[:self._n4]
         ent = self._sigs.get(sig)
         if ent is None:
@@ -314,10 +319,10 @@ class CondensedQP:
         st = ent.st
         n = self.n_variables_
         if st.W is not None:                # one soft group: gradient and free response at once
-            r = np.dot(st.W, z.take(st.w_cols))
+            r = st.W.dot(z.take(st.w_cols))       # (the method: np.dot without its dispatch)
             f, yf = r[:n], r[n:]
         else:
-            f = np.dot(st.F, z.take(st.f_cols))
+            f = st.F.dot(z.take(st.f_cols))
             if st.n_groups:                 # free response of the soft rows (groups, 1, N)
                 yf = np.matmul(z.take(st.g_cols), st.S)
                 if st.g_map is not None:
@@ -396,7 +401,7 @@ class CondensedQP:
         if flag == 1 or flag == 2:
             status = "optimal"
             # finite: x'x is (unless an entry is not finite, or it overflows: then look at each)
-            ok = math.isfinite(np.dot(x, x)) or bool(np.isfinite(x).all())
+            ok = math.isfinite(x.dot(x)) or bool(np.isfinite(x).all())
         else:
             status = DAQP_EXIT.get(flag) or f"exit_flag_{flag}"
             ok = False
@@ -407,7 +412,7 @@ class CondensedQP:
         if ok:
             U = x
             # u: (nu, M), a view of x; slack: (ny, N), the shared zeros unless a row is violated
-            vals = {"u": U.reshape((self.nu, self.M), order="F"), "slack": st.zero_slack}
+            vals = {"u": U.reshape(self.M, self.nu).T, "slack": st.zero_slack}
             off = st.lim_off
             if st.n_lim and (nact != 0 or off.__class__ is not float):
                 slack = vals["slack"] = np.zeros((self.ny, self.N))
