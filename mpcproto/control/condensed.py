@@ -54,11 +54,6 @@ from typing import Any
 
 import numpy as np
 
-try:                                   # the ufunc ndarray.clip calls (no Python wrapper)
-    from numpy._core.umath import clip as _clip
-except ImportError:                    # numpy < 2
-    from numpy.core.umath import clip as _clip
-
 from ._qp import QPResult
 
 __all__ = ["CondensedQP", "DAQP_DEFAULTS", "DAQP_OPTIONS", "DAQP_EXIT"]
@@ -346,8 +341,9 @@ class CondensedQP:
         if st.n_rate:
             # move rows: the first move is measured from u_prev, the others from the last move
             np.matmul(st.R, z.take(st.rate_cols), out=st.b_rate)
-        b = st.b                                # [bl; bu] in one buffer: one call for four
-        _clip(b, -_INF, _INF, out=b)
+        b = st.b                  # [bl; bu] in one buffer, clamped to DAQP's infinity by two
+        np.maximum(b, -_INF, out=b)     # ufuncs (ndarray.clip's result to the bit, without its
+        np.minimum(b, _INF, out=b)      # Python wrapper)
         return st.H, f, st.A, st.bu, st.bl, st.sense, st.weights, st, st.key
 
     def _crossed(self, st, ent, bs, yf) -> bool:
