@@ -240,3 +240,56 @@ def test_lean_data_equals_plain_construction_on_the_tank(tank):
     # the same samples again (warm-started workspaces, cached structures): the same QP data
     for zz, rows in ((z, 2 * N), (z2, 4 * N), (z3, 2 * N), (z5, 2 * N), (z4, 2 * N), (z, 2 * N)):
         check_sample(ctrl, zz, soft_rows_expected=rows)
+
+
+def test_lean_data_one_soft_group_and_moving_mv_limits(tank):
+    """One CV with soft rows (a limit alone, a zone alone, a zone that is its limits, crossed
+    limits) -- the structures whose ends are read as a view of the scaled bands -- and MV limits
+    that change between samples of one structure (its bounds are rewritten only then): every
+    sample's QP data and plan against the plain construction solved by DAQP's own API
+    (references in the module docstring); a result kept by the caller does not change when
+    later samples are solved."""
+    dm, ctrl = tank
+    rng = np.random.default_rng(11)
+    ctrl.reset(dm.op)
+    x = rng.normal(scale=0.02, size=dm.nx)
+    sp = dm.op.y + np.array([0.05, 0.5, -1.0])
+    tg = mp.Targets(setpoint=sp, cv_low=np.full(3, -np.inf), cv_high=np.full(3, np.inf),
+                    mv_low=np.full(3, -np.inf), mv_high=np.full(3, np.inf))
+    out = ctrl.plan(x, tg, disturbance=rng.normal(scale=0.01, size=3), dv=dm.op.d + 0.02,
+                    u_prev=dm.op.u * 1.05)
+    assert out["accepted"]
+    z = ctrl._last_inputs.copy()
+    zs = ctrl._zsl
+    inf = np.inf
+    # the level's limits alone (its band a setpoint; no concentration limits): one group
+    z1 = z.copy()
+    z1[zs["lim_lo"].start + 1], z1[zs["lim_hi"].start + 1] = -inf, inf
+    check_sample(ctrl, z1, soft_rows_expected=N)
+    # crossed on that one group: the mid-point row; the slacks are the crossing's floor at least
+    z2 = z1.copy()
+    z2[zs["lim_hi"].start] = z2[zs["lim_lo"].start] - 0.05
+    kept = check_sample(ctrl, z2, soft_rows_expected=N)
+    kept_slack = kept.values["slack"].copy()
+    assert kept_slack[0].min() >= 0.5 * 0.05 / ctrl._sy[0] - 1e-9
+    # a zone alone on the temperature (no CV limits at all): one zone group
+    z3 = z1.copy()
+    z3[zs["lim_lo"].start], z3[zs["lim_hi"].start] = -inf, inf
+    z3[zs["band_lo"].start + 2] -= 0.5
+    z3[zs["band_hi"].start + 2] += 1.5
+    res3 = check_sample(ctrl, z3, soft_rows_expected=N)
+    assert not res3.values["slack"].any()               # no limit rows: no slack
+    # the level's zone is its limits (one merged group)
+    z4 = z1.copy()
+    z4[zs["band_lo"].start] = z4[zs["lim_lo"].start]
+    z4[zs["band_hi"].start] = z4[zs["lim_hi"].start]
+    check_sample(ctrl, z4, soft_rows_expected=N)
+    # MV limits tightened, then a one-sided one, then back: the same structure each time
+    z5 = z1.copy()
+    z5[zs["u_lo"]] += 0.2 * np.abs(z5[zs["u_lo"]]) + 0.001
+    z6 = z5.copy()
+    z6[zs["u_hi"]][1::dm.nu] = inf                        # the water flow: no upper limit
+    for zz in (z5, z6, z1, z5):
+        check_sample(ctrl, zz, soft_rows_expected=N)
+    # the result kept from the crossed sample: unchanged by the solves after it
+    np.testing.assert_array_equal(kept.values["slack"], kept_slack)

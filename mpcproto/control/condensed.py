@@ -215,6 +215,8 @@ class CondensedQP:
                                      + [blk[i] for i in pa] + [blk[i] for i in pb])
         self._sq = np.concatenate([np.tile(sy, 4), su, np.tile(sy, 14)])   # their scales
         self._n4, self._nq = 4 * ny, 4 * ny + nu
+        sb = np.empty(self._nq + 7 * ny, dtype=bool)      # the signature's booleans
+        self._sigbuf = (sb[:self._nq], sb[self._nq:], sb)
         self._usl = slice(zs["u_lo"].start, zs["u_hi"].stop)          # u_lo, u_hi
         self._zv = (None, None)
         self._zlen = max(s_.stop for s_ in zs.values())
@@ -290,14 +292,17 @@ class CondensedQP:
         the soft rows (per CV, on the state entries that CV sees), one small product for the rate
         rows and a few array operations for the bounds.
         """
-        if z is not self._zv[0]:            # views of the blocks read (the same z each sample)
-            n = self.n_variables_
-            self._zv = (z, z[self._usl].reshape(2, n))
+        zv = self._zv
+        if z is not zv[0]:                  # views of the blocks read (the same z each sample)
+            zv = self._zv = (z, z[self._usl].reshape(2, self.n_variables_))
         # band_lo, band_hi, lim_lo, lim_hi, the rates and the signature's pairs, scaled
         q = z.take(self._q_idx) / self._sq
         nq = self._nq
         p = nq + 7 * self.ny
-        sig = np.isfinite(q[:nq]).tobytes() + (q[nq:p] <= q[p:]).tobytes()
+        sb = self._sigbuf                   # finiteness, then the pairs, in one buffer
+        np.isfinite(q[:nq], out=sb[0])
+        np.less_equal(q[nq:p], q[p:], out=sb[1])
+        sig = sb[2].tobytes()
         bs = q[:self._n4]
         ent = self._sigs.get(sig)
         if ent is None:
@@ -307,18 +312,25 @@ class CondensedQP:
         if ent.__class__ is dict:
             ent = self._moving_entry(ent, bs, q[self._n4:nq], z)
         st = ent.st
+        n = self.n_variables_
         if st.W is not None:                # one soft group: gradient and free response at once
-            r = np.dot(st.W, z.take(st.w_cols))
-            f, yf = r[:self.n_variables_], r[self.n_variables_:]
+            r = st.W.dot(z.take(st.w_cols))       # (the method: np.dot without its dispatch)
+            f, yf = r[:n], r[n:]
         else:
-            f = np.dot(st.F, z.take(st.f_cols))
+            f = st.F.dot(z.take(st.f_cols))
             if st.n_groups:                 # free response of the soft rows (groups, 1, N)
                 yf = np.matmul(z.take(st.g_cols), st.S)
                 if st.g_map is not None:
                     yf = yf[st.g_map]
-        np.divide(self._zv[1], self._su_t, st.b_u)
+        ub = zv[1].tobytes()                # MV limits as written last into this structure's
+        if ub != st.u_raw:                  # bounds: those bounds stand (DAQP only reads them)
+            np.divide(zv[1], self._su_t, st.b_u)
+            st.u_raw = ub
         if st.n_groups:
-            np.subtract(bs.take(st.v_idx), yf, st.b_soft)
+            if st.v_sl is not None:         # one group: its band or limit ends, a view of bs
+                np.subtract(bs[st.v_sl], yf, st.b_soft1)
+            else:
+                np.subtract(bs.take(st.v_idx), yf, st.b_soft)
             if st.moved_idx is not None:                      # preview: zone bands move
                 st.b_soft[:, :st.n_zone_groups] += z.take(st.moved_idx) / st.moved_scale
             if st.n_lim:
@@ -329,8 +341,9 @@ class CondensedQP:
         if st.n_rate:
             # move rows: the first move is measured from u_prev, the others from the last move
             np.matmul(st.R, z.take(st.rate_cols), out=st.b_rate)
-        b = st.b                                # [bl; bu] in one buffer: one call for four
-        b.clip(-_INF, _INF, out=b)
+        b = st.b                  # [bl; bu] in one buffer, clamped to DAQP's infinity by two
+        np.maximum(b, -_INF, out=b)     # ufuncs (ndarray.clip's result to the bit, without its
+        np.minimum(b, _INF, out=b)      # Python wrapper)
         return st.H, f, st.A, st.bu, st.bl, st.sense, st.weights, st, st.key
 
     def _crossed(self, st, ent, bs, yf) -> bool:
@@ -381,21 +394,24 @@ class CondensedQP:
         x, _fval, flag, info = mdl.solve()
         ms = (time.perf_counter() - t0) * 1e3
         flag = int(flag)
-        status = DAQP_EXIT.get(flag) or f"exit_flag_{flag}"
-        # finite: x'x is (unless an entry is not finite, or it overflows: then look at each)
-        ok = (flag == 1 or flag == 2) and (math.isfinite(np.dot(x, x))
-                                           or bool(np.isfinite(x).all()))
+        if flag == 1 or flag == 2:
+            status = "optimal"
+            # finite: x'x is (unless an entry is not finite, or it overflows: then look at each)
+            ok = math.isfinite(x.dot(x)) or bool(np.isfinite(x).all())
+        else:
+            status = DAQP_EXIT.get(flag) or f"exit_flag_{flag}"
+            ok = False
         lam = info.get("lam")
         nact = None if lam is None else int(np.count_nonzero(lam))
         self.last_info_ = {"exit_flag": flag, "active_set": nact, "solver": "daqp",
                            "rows": st.n_rows, "variables": self.n_variables_}
-        vals: dict[str, np.ndarray] = {}
         if ok:
             U = x
-            vals["u"] = U.reshape(self.M, self.nu).T          # (nu, M), a view of x
-            slack = np.zeros((self.ny, self.N))
+            # u: (nu, M), a view of x; slack: (ny, N), the shared zeros unless a row is violated
+            vals = {"u": U.reshape(self.M, self.nu).T, "slack": st.zero_slack}
             off = st.lim_off
             if st.n_lim and (nact != 0 or off.__class__ is not float):
+                slack = vals["slack"] = np.zeros((self.ny, self.N))
                 # only a row in the final active set can be violated (others hold to primal_tol)
                 o, nl = st.lim_o, st.n_lim
                 act = lam[o:o + nl].nonzero()[0] if lam is not None else np.arange(nl)
@@ -409,7 +425,8 @@ class CondensedQP:
                     rest = np.ones(nl, bool)
                     rest[act] = False
                     slack.reshape(-1)[st.lim_flat[rest]] = off[rest]
-            vals["slack"] = slack
+        else:
+            vals = {}
         return QPResult(status=status, accepted=ok, values=vals,
                         iterations=int(info.get("iterations", 0)), solve_ms=ms)
 
@@ -482,7 +499,7 @@ class _Structure:
                  "n_rows", "n_zone", "n_lim", "n_rate", "n_groups", "n_zone_groups", "lim_o",
                  "lim_cv", "lim_pairs", "lim_flat", "lim_off", "f_cols", "F", "g_cols", "S",
                  "v_idx", "moved_idx", "moved_scale", "rate_cols", "R", "W", "w_cols",
-                 "g_map")
+                 "g_map", "u_raw", "v_sl", "b_soft1", "zero_slack")
 
     def __init__(self, cq: "CondensedQP", eq, zone, lim, rated, key: bytes):
         import daqp
@@ -515,6 +532,7 @@ class _Structure:
         self.rho[n:n + nz_] = 1.0 / (2.0 * np.repeat(q[zone], N))
         self.weights = (self.rho, self.rho, self.wlin, self.wlin)
         self.model, self.ready, self.weights_changed, self.wkey = daqp.Model(), False, False, None
+        self.u_raw = None              # the MV limits (bytes of z's u_lo, u_hi) last in b_u
         # ---- gradient: one matrix over the whole input vector, kept on the columns it reads
         fG = -2.0 * Geq.T * qeq[None, :]
         F = np.zeros((n, cq._zlen))
@@ -546,6 +564,7 @@ class _Structure:
         self.lim_flat = (lim_cv[:, None] * N + np.arange(N)[None, :]).ravel()
         self.moved_idx = self.moved_scale = None
         self.g_map = None
+        self.v_sl = self.b_soft1 = None
         if ng:
             # the free response once per CV (a CV with a zone of its own and a limit has both)
             gcv = [int(c) for c, _ in groups]
@@ -565,6 +584,10 @@ class _Structure:
             self.v_idx = np.array([[base * ny + c for c, base in groups],
                                    [(base + 1) * ny + c for c, base in groups]]).reshape(2, ng, 1, 1)
             self.b_soft = b2[:, n:n + nz_ + nl].reshape(2, ng, 1, N)
+            if ng == 1:                     # its (lower; upper) ends: bs[base*ny + c :: ny][:2]
+                c, base = groups[0]
+                self.v_sl = (slice(base * ny + int(c), (base + 2) * ny, ny), None)
+                self.b_soft1 = b2[:, n:n + nz_ + nl]                        # (2, N)
             if cq._preview and len(zone_cv):
                 self.moved_idx = (zs["ref"].start + r_zone).reshape(len(zone_cv), 1, N)
                 self.moved_scale = cq._sy[zone_cv].reshape(len(zone_cv), 1, 1)
@@ -588,7 +611,11 @@ class _Structure:
             W[n:, np.searchsorted(u, cols[0, 0])] = S[0].T
             self.W, self.w_cols = W, u
             self.S, self.g_cols = S[0], cols[0, 0]
-        for view in (self.b_u, self.b_soft if ng else self.b, self.b_rate):
+        # the slacks of a sample whose limit rows all hold: zeros, shared and read-only
+        self.zero_slack = np.zeros((ny, N))
+        self.zero_slack.flags.writeable = False
+        for view in (self.b_u, self.b_soft if ng else self.b, self.b_rate,
+                     self.b_soft1 if ng == 1 else self.b):
             assert view.size == 0 or np.shares_memory(view, self.b)     # views, not copies
 
     def set_limit_weights(self, wkey, rho_rows, wlin_rows) -> None:
