@@ -16,3 +16,16 @@ def first_order(K=1.0, tau=10.0):
 def op0(m):
     """The nominal point of *m* (a steady state for the plants above)."""
     return mp.OperatingPoint.at(m, m.nominal("state"), m.nominal("mv"), m.nominal("dv"))
+
+
+def tank_settings(horizon=20, control_horizon=4):
+    """The blending tank controller of ``benchmarks/bench_mpc.py`` (our own numbers): CV scales,
+    the level's limits, MV limits and rate limits."""
+    return {
+        "horizon": horizon, "control_horizon": control_horizon,
+        "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5},
+               "concentration": {"scale": 0.2}, "temperature": {"scale": 1.0}},
+        "mv": {"caustic_flow": {"scale": 0.01, "low": 0.0, "high": 0.2, "max_move": 0.005},
+               "water_flow": {"scale": 0.1, "low": 0.0, "high": 3.0, "max_move": 0.1},
+               "heater_duty": {"scale": 20.0, "low": 0.0, "high": 600.0, "max_move": 20.0}},
+    }

@@ -26,6 +26,8 @@ import scipy.linalg as sla
 
 import mpcproto as mp
 
+from _plants import tank_settings
+
 INF = np.inf
 CLARABEL = {"tol_gap_abs": 1e-10, "tol_gap_rel": 1e-10, "tol_feas": 1e-10, "max_iter": 500}
 # the reference's stage 2 keeps the CVs within 1e-8 (relative) of its stage 1 -- an interior-point
@@ -37,14 +39,7 @@ CLARABEL_GAP = 1e-4
 
 # ------------------------------------------------------------------------------------------------
 # the units
-TANK_SETTINGS = {
-    "horizon": 20, "control_horizon": 4,
-    "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5},
-           "concentration": {"scale": 0.2}, "temperature": {"scale": 1.0}},
-    "mv": {"caustic_flow": {"scale": 0.01, "low": 0.0, "high": 0.2, "max_move": 0.005},
-           "water_flow": {"scale": 0.1, "low": 0.0, "high": 3.0, "max_move": 0.1},
-           "heater_duty": {"scale": 20.0, "low": 0.0, "high": 600.0, "max_move": 20.0}},
-}
+TANK_SETTINGS = tank_settings(20, 4)
 
 
 def tank_target():

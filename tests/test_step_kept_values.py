@@ -16,6 +16,8 @@ import numpy as np
 import mpcproto as mp
 from mpcproto.control.mpc_qp import ControllerQP
 
+from _plants import tank_settings
+
 
 def _tank():
     tank = mp.make_model("blending_tank")
@@ -24,14 +26,7 @@ def _tank():
 
 
 def _settings():
-    return {
-        "horizon": 30, "control_horizon": 6,
-        "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5},
-               "concentration": {"scale": 0.2}, "temperature": {"scale": 1.0}},
-        "mv": {"caustic_flow": {"scale": 0.01, "low": 0.0, "high": 0.2, "max_move": 0.005},
-               "water_flow": {"scale": 0.1, "low": 0.0, "high": 3.0, "max_move": 0.1},
-               "heater_duty": {"scale": 20.0, "low": 0.0, "high": 600.0, "max_move": 20.0}},
-    }
+    return tank_settings(30, 6)
 
 
 def _run(dm, shortcut: bool, steps: int = 120):
