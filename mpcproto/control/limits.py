@@ -135,13 +135,20 @@ def _activity(cols, shape, rel_tol):
     """:func:`limit_activity` on the flat float lists (u, u_prev, lo, hi, max_move)."""
     at_limit, at_rate, over_rate = [], [], []
     for v, p, a, b, r in zip(*cols):
-        tol = rel_tol * max(1.0, abs(v))
-        move = abs(v - p)
-        at_limit.append(abs(v - a) <= tol or abs(v - b) <= tol)
-        at_rate.append(abs(move - r) <= tol)
-        over_rate.append(move > r + tol)
+        lim, rate, over = _active(v, p, a, b, r, rel_tol)
+        at_limit.append(lim)
+        at_rate.append(rate)
+        over_rate.append(over)
     return (np.array(at_limit, bool).reshape(shape), np.array(at_rate, bool).reshape(shape),
             np.array(over_rate, bool).reshape(shape))
+
+
+def _active(v, p, a, b, r, rel_tol):
+    """``(at a hard limit, at the rate limit, moved more than the rate)`` of one projected MV
+    *v* (previous *p*, limits *a*, *b*, rate *r*); tolerance ``rel_tol * max(1, |v|)``."""
+    tol = rel_tol * max(1.0, abs(v))
+    move = abs(v - p)
+    return (abs(v - a) <= tol or abs(v - b) <= tol), abs(move - r) <= tol, move > r + tol
 
 
 def project_with_activity(u, u_prev, lo, hi, max_move, *, what: str = "project_command",
@@ -190,10 +197,8 @@ def project_with_activity(u, u_prev, lo, hi, max_move, *, what: str = "project_c
 
 
 def _project_counted(us, ps, los, his, rs, what, rel_tol):
-    """:func:`project_value` and :func:`_activity` per MV in one loop, with the activity
-    counted: the same comparisons on the same numbers, both inlined (a controller
-    step's common path; ``abs(x) <= tol`` written ``-tol <= x <= tol``, ``max(1.0, |v|)`` as a
-    test that also gives 1.0 for a NaN)."""
+    """:func:`project_value` per MV and its activity (:func:`_active`) counted, in one loop (a
+    controller step's common path: an index list and two counts instead of three arrays)."""
     out, at_limit = [], []
     n_rate = n_over = 0
     clipped = 0.0
@@ -201,30 +206,16 @@ def _project_counted(us, ps, los, his, rs, what, rel_tol):
     for v0, p, a, b, r in zip(us, ps, los, his, rs):
         if a > b or r < 0:                      # refused: the message names the MV
             project_value(v0, p, a, b, r, what=f"{what} (MV {j})")
-        # project_value inlined: where both the request and the previous MV are NaN, every
-        # comparison below is False and the NaN stays (its early return of NaN)
-        v = p if v0 != v0 else v0
-        if v > p + r:
-            v = p + r
-        elif v < p - r:
-            v = p - r
-        if v < a:
-            v = a
-        elif v > b:
-            v = b
+        v = project_value(v0, p, a, b, r)       # (checked above: cannot refuse)
         out.append(v)
         if v != v0:                             # (a NaN difference, once there, stays)
             d = abs(v - v0)
             if (d > clipped or d != d) and clipped == clipped:
                 clipped = d
-        tol = abs(v)
-        tol = rel_tol * (tol if tol > 1.0 else 1.0)
-        move = abs(v - p)
-        if -tol <= v - a <= tol or -tol <= v - b <= tol:
+        lim, rate, over = _active(v, p, a, b, r, rel_tol)
+        if lim:
             at_limit.append(j)
-        if -tol <= move - r <= tol:
-            n_rate += 1
-        if move > r + tol:
-            n_over += 1
+        n_rate += rate
+        n_over += over
         j += 1
     return out, clipped, at_limit, n_rate, n_over
