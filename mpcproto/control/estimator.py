@@ -368,7 +368,7 @@ class DisturbanceEstimator:
             # a gain times each value); it is also estimate()'s answer for this sample.  Else
             # numpy decides: values not all finite take the general path (the posterior is
             # written again there), finite ones keep this posterior
-            if (total := sum(post.tolist())) - total == 0.0:
+            if _finite_sum(post.tolist()):
                 self._finite_k = k
             elif quick and not np.isfinite(y_dev).all():
                 self._full[slot] = False
@@ -418,10 +418,10 @@ class DisturbanceEstimator:
         always, or only where Bd is not zero) the DVs of slot *s*: ``A post + B u + Bd d``,
         summed in that order, written into the ring."""
         prior = self._priors[nxt]
-        np.dot(self.A_, self._posts[s], out=prior)
-        prior += self.Ba_.dot(self._us[s])
+        np.dot(self.A_, self._posts[s], prior)          # (ufuncs' out by position: cheaper)
+        np.add(prior, self.Ba_.dot(self._us[s]), prior)
         if dvs:
-            prior += self.Bda_.dot(self._ds[s])
+            np.add(prior, self.Bda_.dot(self._ds[s]), prior)
 
     def predict(self, u_dev: np.ndarray, *, less: np.ndarray | None = None) -> None:
         """Propagate to the next sample with the MVs *u_dev* applied from now on (deviation;
@@ -438,13 +438,7 @@ class DisturbanceEstimator:
             u[...] = u_dev                              # (self._u[s] = u_dev)
         else:
             np.subtract(u_dev, less, u)
-        # self._propagate(s, nxt, self._has_Bd) written out: the same products and sums (the
-        # ufuncs' out given by position: cheaper than out= or +=)
-        prior = self._priors[nxt]
-        np.dot(self.A_, self._posts[s], prior)
-        np.add(prior, self.Ba_.dot(u), prior)
-        if self._has_Bd:
-            np.add(prior, self.Bda_.dot(self._ds[s]), prior)
+        self._propagate(s, nxt, self._has_Bd)
         self._full[nxt] = False
         if self._marked[nxt]:
             self._ymask[nxt] = False
