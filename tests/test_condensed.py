@@ -320,3 +320,54 @@ def check_against_statement(ctrl, z, u_s):
     obj = ctrl.condensed_.objective(z, u_s)
     assert obj <= obj_ref + 1e-10 * max(1.0, abs(obj_ref))
     assert obj == pytest.approx(obj_ref, rel=1e-8, abs=1e-8)
+
+
+def _restart_run(ctrl, dm, steps=90):
+    """A closed loop whose row structure changes: a setpoint given up for a zone between CV
+    limits (one row group), then limits the steady target cannot meet (a widened zone: its own
+    rows beside the limit's), then the setpoint back."""
+    ctrl.reset(dm.op)
+    op, x, out = dm.op, np.zeros(dm.nx), []
+    rng = np.random.default_rng(5)
+    for k in range(steps):
+        sp_ = op.y + np.array([0.0, 0.2, 0.0])
+        lo, hi = np.full(3, -np.inf), np.full(3, np.inf)
+        if 20 <= k < 70:
+            sp_[1] = np.nan
+            lo[1], hi[1] = op.y[1] - 0.1, op.y[1] + 0.1
+        if 45 <= k < 70:
+            lo[0], hi[0] = op.y[0] + 0.5, op.y[0] + 0.6      # a level the MVs cannot reach
+            sp_[0] = np.nan
+        tg = mp.Targets(setpoint=sp_, cv_low=lo, cv_high=hi, mv_low=np.zeros(3),
+                        mv_high=np.array([0.2, 3.0, 600.0]))
+        y = dm.C @ x + op.y + rng.normal(scale=[0.002, 0.01, 0.05])
+        o = ctrl.step(k * dm.Ts, mp.Measurement.now(y, k * dm.Ts), np.array([op.d[0], 0, 0]), tg)
+        out.append(o.u)
+        x = dm.A @ x + dm.B @ (o.u - op.u)
+    return np.array(out)
+
+
+def test_restart_keeps_the_workspaces_and_repeats_the_run_exactly():
+    # Determinism (common practice, no source): reset() keeps each row structure's Hessian, rows
+    # and DAQP set-up (they depend on the design alone) but forgets the active sets, so a rerun
+    # gives the MVs of the first run and of a freshly built controller to the last bit.
+    tank = mp.make_model("blending_tank")
+    dm = mp.linearize(tank, mp.steady_state(tank)).discretize(10.0)
+    settings = {"horizon": 40, "control_horizon": 8,
+                "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5},
+                       "concentration": {"scale": 0.2}, "temperature": {"scale": 1.0}},
+                "mv": {"caustic_flow": {"scale": 0.01, "max_move": 0.005},
+                       "water_flow": {"scale": 0.1, "max_move": 0.1},
+                       "heater_duty": {"scale": 20.0, "max_move": 20.0}}}
+    ctrl = mp.PredictiveController.from_settings(dm, settings).build()
+    first = _restart_run(ctrl, dm)
+    cq = ctrl.condensed_
+    kept = {k: (st, st.model) for k, st in cq._structs.items()}
+    assert len(kept) >= 3, "the loop meets several row structures"
+    zones = [st for st in cq._structs.values() if st.n_zone]
+    assert zones and any(st.n_lim for st in zones), "a zone with rows of its own beside a limit"
+    again = _restart_run(ctrl, dm)
+    assert all(cq._structs[k] is st and st.model is mdl for k, (st, mdl) in kept.items())
+    fresh = _restart_run(mp.PredictiveController.from_settings(dm, settings).build(), dm)
+    assert np.array_equal(first, again)
+    assert np.array_equal(first, fresh)

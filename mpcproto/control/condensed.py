@@ -38,7 +38,11 @@ The rows present (which CVs have a setpoint, a zone, a limit; which MVs a rate) 
 *structure* of a sample.  Each structure gets its Hessian, row matrix and DAQP workspace once; a
 sample with the same structure only updates ``f`` and the bounds and re-solves warm-started from
 the previous active set (``daqp.Model.update`` keeps the active set).  A closed loop rarely has
-more than a few structures.
+more than a few structures.  The Hessian and the gradient's matrix depend only on which CVs have
+a setpoint: structures that differ in their zones, limits or rates share them (built once per
+set of setpoint CVs).  A restart (the controller's ``reset``) keeps the workspaces and forgets
+only their active sets: the next solve of each structure starts cold, through the same
+``update`` call as its first solve after set-up, so a rerun repeats a run to the bit.
 
 Accuracy: DAQP is an exact active-set method; with ``primal_tol = 1e-10`` (our default) the
 applied move equals the QP's optimum to round-off (checked against Clarabel through cvxpy in
@@ -224,13 +228,17 @@ class CondensedQP:
         self._lim_weighted = (self._w["limit_linear"] > 0) | (self._w["limit_quadratic"] > 0)
         self._structs: dict[bytes, _Structure] = {}
         self._sigs: dict[bytes, Any] = {}        # sample signature -> _Entry (or dict of them)
+        self._sp_parts: dict[bytes, tuple] = {}  # set of setpoint CVs -> (H, F, f_cols)
         self.is_built = True
         return self
 
     def restart(self) -> None:
-        """Forget the workspaces and active sets of a previous run (a rerun repeats it exactly)."""
-        self._structs.clear()
-        self._sigs.clear()
+        """Forget the active sets of a previous run (a rerun repeats it exactly).  The
+        workspaces stay: a structure's Hessian, rows and DAQP set-up depend on the design alone;
+        its next solve starts from an empty active set (``update`` with the structure's own
+        row flags), as its first solve after set-up did."""
+        for st in self._structs.values():
+            st.cold = True
 
     # ------------------------------------------------------------------ per structure
     def _structure(self, eq, zone, lim, rated):
@@ -243,9 +251,46 @@ class CondensedQP:
         if len(self._structs) > 32:
             self._structs.clear()
             self._sigs.clear()            # its entries point to the workspaces just dropped
+            self._sp_parts.clear()
         st = _Structure(self, eq, zone, lim, rated, key)
         self._structs[key] = st
         return st
+
+    def _setpoint_part(self, eq, r_eq, eq_cv):
+        """``(H, F, f_cols)`` of the structures whose setpoint CVs are *eq*: the Hessian (move
+        suppression, preferred MVs, terminal cost and the setpoints' least squares) and the
+        gradient's matrix over the entries of ``z`` it reads, ``f = F @ z[f_cols]``.  Built once
+        per set of setpoint CVs and shared (read-only) by every structure with that set."""
+        key = eq.tobytes()
+        part = self._sp_parts.get(key)
+        if part is not None:
+            return part
+        N, n, zs = self.N, self.n_variables_, self._zs
+        Geq = self.G_[r_eq]
+        qeq = np.repeat(self._w["cv_weight"][eq], N)
+        H = self._H0 + 2.0 * Geq.T @ (qeq[:, None] * Geq)
+        H = 0.5 * (H + H.T)
+        # ---- gradient: one matrix over the whole input vector, kept on the columns it reads
+        fG = -2.0 * Geq.T * qeq[None, :]
+        F = np.zeros((n, self._zlen))
+        k_end = self._k_end
+        F[:, :k_end] = -fG @ self.free_[r_eq]
+        F[:, zs["u_prev"]] += self._fprev
+        F[:, zs["pref"]] -= self._fpref
+        if len(r_eq):
+            fb = fG.reshape(n, len(eq_cv), N).sum(axis=2)          # times the setpoints
+            F[:, zs["band_lo"].start + eq_cv] += fb / self._sy[eq_cv][None, :]
+            if self._preview:                                      # times the references
+                F[:, zs["ref"].start + r_eq] += fG / self._sy_t[r_eq][None, :]
+        if self._Pt is not None:
+            F[:, :k_end] += self._Kt @ self._PxN
+            F[:, zs["x_term"]] -= self._Kt / self._sx[None, :]
+        f_cols = np.flatnonzero(np.any(F != 0, axis=0))
+        F = np.ascontiguousarray(F[:, f_cols])
+        for a in (H, F, f_cols):
+            a.flags.writeable = False       # shared: each structure takes its own copy of H
+        part = self._sp_parts[key] = (H, F, f_cols)
+        return part
 
     def _entry(self, bs, rs, z):
         """The exact row structure of a sample (the rules in the module docstring) with the
@@ -386,6 +431,13 @@ class CondensedQP:
             mdl.settings = self.options
             st.ready = True
             st.weights_changed = True
+            st.cold = True
+        if st.cold:
+            # the first solve of a structure, and its first after a restart: the row flags as
+            # set up (no active set) and the data through update() -- one path for both, so a
+            # rerun repeats the first run to the bit (update's round-off differs from setup's)
+            mdl.update(f=f, bupper=bu, blower=bl, sense=st.sense)
+            st.cold = False
         else:
             mdl.update(f=f, bupper=bu, blower=bl)
         if st.weights_changed:
@@ -494,7 +546,7 @@ class _Structure:
       product.
     """
 
-    __slots__ = ("key", "H", "A", "sense", "rho", "wlin", "weights", "model", "ready",
+    __slots__ = ("key", "H", "A", "sense", "rho", "wlin", "weights", "model", "ready", "cold",
                  "weights_changed", "wkey", "b", "bl", "bu", "b_u", "b_soft", "b_rate",
                  "n_rows", "n_zone", "n_lim", "n_rate", "n_groups", "n_zone_groups", "lim_o",
                  "lim_cv", "lim_pairs", "lim_flat", "lim_off", "f_cols", "F", "g_cols", "S",
@@ -514,10 +566,10 @@ class _Structure:
         eq_cv, zone_cv, lim_cv = np.flatnonzero(eq), np.flatnonzero(zone), np.flatnonzero(lim)
         G = cq.G_
         q = cq._w["cv_weight"]
-        Geq = G[r_eq]
-        qeq = np.repeat(q[eq], N)
-        H = cq._H0 + 2.0 * Geq.T @ (qeq[:, None] * Geq)
-        self.H = 0.5 * (H + H.T)
+        # the Hessian and the gradient's matrix depend on the setpoint CVs alone: built once per
+        # set of setpoint CVs (the products with G are most of a new structure's cost)
+        H, self.F, self.f_cols = cq._setpoint_part(eq, r_eq, eq_cv)
+        self.H = H.copy()                   # DAQP's setup takes a writable Hessian
         r_rate = (np.arange(M)[:, None] * nu + np.flatnonzero(rated)[None, :]).ravel(order="F")
         self.A = np.vstack([G[r_zone], G[r_lim], cq._Dm[r_rate]])
         nz_, nl, nr = len(r_zone), len(r_lim), len(r_rate)
@@ -532,24 +584,8 @@ class _Structure:
         self.rho[n:n + nz_] = 1.0 / (2.0 * np.repeat(q[zone], N))
         self.weights = (self.rho, self.rho, self.wlin, self.wlin)
         self.model, self.ready, self.weights_changed, self.wkey = daqp.Model(), False, False, None
+        self.cold = False
         self.u_raw = None              # the MV limits (bytes of z's u_lo, u_hi) last in b_u
-        # ---- gradient: one matrix over the whole input vector, kept on the columns it reads
-        fG = -2.0 * Geq.T * qeq[None, :]
-        F = np.zeros((n, cq._zlen))
-        k_end = cq._k_end
-        F[:, :k_end] = -fG @ cq.free_[r_eq]
-        F[:, zs["u_prev"]] += cq._fprev
-        F[:, zs["pref"]] -= cq._fpref
-        if len(r_eq):
-            fb = fG.reshape(n, len(eq_cv), N).sum(axis=2)          # times the setpoints
-            F[:, zs["band_lo"].start + eq_cv] += fb / cq._sy[eq_cv][None, :]
-            if cq._preview:                                        # times the references
-                F[:, zs["ref"].start + r_eq] += fG / cq._sy_t[r_eq][None, :]
-        if cq._Pt is not None:
-            F[:, :k_end] += cq._Kt @ cq._PxN
-            F[:, zs["x_term"]] -= cq._Kt / cq._sx[None, :]
-        self.f_cols = np.flatnonzero(np.any(F != 0, axis=0))
-        self.F = np.ascontiguousarray(F[:, self.f_cols])
         # ---- bound buffer [bl; bu] and its blocks (views, written in place each sample)
         self.b = np.empty(2 * m)
         b2 = self.b.reshape(2, m)
