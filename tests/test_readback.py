@@ -132,3 +132,27 @@ def test_mpc_estimator_not_biased_by_a_stuck_valve():
 
     assert iae(tr_rb) < 0.7 * iae(tr_no)
     assert math.isfinite(iae(tr_rb))
+
+
+def test_a_readback_off_by_round_off_is_the_command():
+    # An actuator's arithmetic may return the command a few ulps off; that is no difference
+    # (our rule: within 1e-9 of the MV's scale, common practice of comparing floats, no
+    # source): nothing is counted and the next step equals one given no readback at all.  A
+    # readback 1e-6 of the scale off is a difference and is counted.
+    m = first_order()
+    dm = mp.linearize(m, op0(m)).discretize(1.0)
+    tg = mp.Targets(setpoint=np.array([op0(m).y[0] + 1.0]), cv_low=np.array([-np.inf]),
+                    cv_high=np.array([np.inf]), mv_low=np.array([-5.0]), mv_high=np.array([5.0]))
+    outs = {}
+    for case in ("none", "ulps", "off"):
+        ctl = mp.PredictiveController(dm, horizon=20, mv={"u": {"low": -5.0, "high": 5.0}}).build()
+        ctl.reset(op0(m))
+        u = ctl.step(0.0, mp.Measurement.now(op0(m).y, 0.0), np.zeros(0), tg).u
+        ua = {"none": None, "ulps": np.nextafter(np.nextafter(u, np.inf), np.inf),
+              "off": u + 1e-6 * ctl.scales_["u"]}[case]
+        assert case == "none" or not np.array_equal(ua, u)
+        out = ctl.step(1.0, mp.Measurement.now(op0(m).y, 1.0), np.zeros(0), tg, u_applied=ua)
+        outs[case] = (out.u, ctl.counts["readback_differs"])
+    assert outs["ulps"][1] == 0 and outs["none"][1] == 0
+    assert np.array_equal(outs["ulps"][0], outs["none"][0])
+    assert outs["off"][1] == 1

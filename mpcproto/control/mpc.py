@@ -181,8 +181,10 @@ class PredictiveController(ControllerQP, ControllerRuntime):
     counts : dict
         Running totals since :meth:`reset`: steps, fallbacks, holds, inaccurate, failed solves,
         target fallbacks, rejected measurements, late measurements used, samples whose MV
-        readback differed from the command (``readback_differs``), MVs found not following
-        their command (``mv_not_following``; limited at their position for 5 samples).
+        readback differed from the command by more than 1e-9 of the MV's scale
+        (``readback_differs``; less is the round-off of the actuator's arithmetic), MVs found
+        not following their command (``mv_not_following``; limited at their position for 5
+        samples).
     """
 
     name = "mpc"

@@ -25,6 +25,10 @@ __all__ = ["ControllerRuntime"]
 
 #: samples an MV that did not follow its command stays limited at its position (readback)
 _NOT_FOLLOWING_HOLD = 5
+#: a readback within this fraction of the MV's scale of the previous MV is that MV: the round-off
+#: of an actuator's arithmetic (a few ulps) neither counts as a difference nor revises the
+#: estimator's input (our rule)
+_READBACK_TOL = 1e-9
 
 
 class ControllerRuntime:
@@ -82,6 +86,7 @@ class ControllerRuntime:
         self._unused_key, self._unused = None, None
         self._sy_list = np.asarray(self._sy, float).tolist()
         self._su_list, self._op_u_list = np.asarray(self._su, float).tolist(), self._op_u.tolist()
+        self._readback_tol = _READBACK_TOL * np.asarray(self._su, float)
         # all slacks zero (ny, N): the relaxed CVs and the largest slack of that case, by the
         # same arithmetic as the step's general rule
         self._zero_slacks = bytes(8 * m.ny * self._N)
@@ -382,7 +387,8 @@ class ControllerRuntime:
             return
         else:
             ua = np.where(known, ua, self._u_prev)
-        if ua.tobytes() != self._u_prev.tobytes() and not np.array_equal(ua, self._u_prev):
+        if (ua.tobytes() != self._u_prev.tobytes()
+                and (np.abs(ua - self._u_prev) > self._readback_tol).any()):
             if self.counts["steps"] > 0:      # the estimator has predicted with u_prev
                 self.estimator_.revise_input(ua - self._op_u)
                 self._note_not_following(self._u_prev, ua)
