@@ -371,3 +371,29 @@ def test_restart_keeps_the_workspaces_and_repeats_the_run_exactly():
     fresh = _restart_run(mp.PredictiveController.from_settings(dm, settings).build(), dm)
     assert np.array_equal(first, again)
     assert np.array_equal(first, fresh)
+
+
+def test_a_controller_pickles_before_and_after_a_run_and_its_copy_repeats_a_fresh_run():
+    # A built controller may be sent to another process (pickled) or deep-copied, before or
+    # after it ran: the DAQP workspaces it keeps over reset() do not pickle (the copy sets them
+    # up again) and the views of its input vectors and signature buffer must be views of the
+    # copy's own arrays again (pickled as they were, a copy's MVs were once 240 off).  After
+    # reset() every copy gives a fresh controller's MVs to the bit (determinism, common
+    # practice, no source).
+    import copy as copy_
+    import pickle
+
+    tank = mp.make_model("blending_tank")
+    dm = mp.linearize(tank, mp.steady_state(tank)).discretize(10.0)
+    settings = {"horizon": 30, "control_horizon": 6,
+                "cv": {"level": {"scale": 0.05, "low": 0.3, "high": 2.5}},
+                "mv": {"caustic_flow": {"scale": 0.01, "max_move": 0.005},
+                       "water_flow": {"scale": 0.1, "max_move": 0.1},
+                       "heater_duty": {"scale": 20.0, "max_move": 20.0}}}
+    ctrl = mp.PredictiveController.from_settings(dm, settings).build()
+    before = [pickle.loads(pickle.dumps(ctrl)), copy_.deepcopy(ctrl)]
+    first = _restart_run(ctrl, dm, steps=60)
+    assert ctrl.condensed_._structs, "workspaces kept after the run"
+    after = [pickle.loads(pickle.dumps(ctrl)), copy_.deepcopy(ctrl)]
+    for c in before + after:
+        assert np.array_equal(_restart_run(c, dm, steps=60), first)

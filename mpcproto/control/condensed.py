@@ -219,8 +219,7 @@ class CondensedQP:
                                      + [blk[i] for i in pa] + [blk[i] for i in pb])
         self._sq = np.concatenate([np.tile(sy, 4), su, np.tile(sy, 14)])   # their scales
         self._n4, self._nq = 4 * ny, 4 * ny + nu
-        sb = np.empty(self._nq + 7 * ny, dtype=bool)      # the signature's booleans
-        self._sigbuf = (sb[:self._nq], sb[self._nq:], sb)
+        self._signature_buffer()
         self._usl = slice(zs["u_lo"].start, zs["u_hi"].stop)          # u_lo, u_hi
         self._zv = (None, None)
         self._zlen = max(s_.stop for s_ in zs.values())
@@ -231,6 +230,26 @@ class CondensedQP:
         self._sp_parts: dict[bytes, tuple] = {}  # set of setpoint CVs -> (H, F, f_cols)
         self.is_built = True
         return self
+
+    def _signature_buffer(self) -> None:
+        """The signature's booleans in one buffer: (finiteness, pairs, the whole)."""
+        sb = np.empty(self._nq + 7 * self.ny, dtype=bool)
+        self._sigbuf = (sb[:self._nq], sb[self._nq:], sb)
+
+    def __getstate__(self) -> dict[str, Any]:
+        # DAQP workspaces do not pickle: a copy (a controller sent to another process) sets its
+        # structures up again on first use; views would pickle as copies of their own
+        state = dict(self.__dict__)
+        if "_structs" in state:
+            state["_structs"], state["_sigs"] = {}, {}
+        state["_zv"] = (None, None)
+        state.pop("_sigbuf", None)
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        if "_nq" in state:
+            self._signature_buffer()
 
     def restart(self) -> None:
         """Forget the active sets of a previous run (a rerun repeats it exactly).  The

@@ -9,6 +9,7 @@ per-sample filling and solving of both QPs (``_optimize``) with the what-if :met
 from __future__ import annotations
 
 import time
+from typing import Any
 
 import numpy as np
 import scipy.linalg as sla
@@ -111,12 +112,7 @@ class ControllerQP:
             off[k] = slice(o, o + s_)
             o += s_
         self._zsl = off
-        self._z = z = np.zeros(o)
-        # views of z's blocks written each sample (u_lo, u_hi as (2, M, nu): F-order of (nu, M))
-        self._zv = (z[off["x0"]], z[off["u_prev"]], z[off["w"]], z[off["band_lo"]],
-                    z[off["band_hi"]], z[off["lim_lo"]], z[off["lim_hi"]],
-                    z[off["u_lo"].start:off["u_hi"].stop].reshape(2, M, nu), z[off["rate"]],
-                    z[off["pref"]])
+        self._z = np.zeros(o)
         # reach of the rate limits over the control horizon: +k for u_lo, -k for u_hi
         self._reach = np.array([1.0, -1.0])[:, None, None] * np.arange(1, M + 1)[None, :, None]
         tl, o = {}, 0
@@ -125,9 +121,8 @@ class ControllerQP:
                 tl[k] = slice(o, o + s_)
                 o += s_
         self._tsl = tl
-        self._tz = tz = np.zeros(o)
-        self._tzv = tuple(tz[tl[k]] for k in ("d", "w", "band_lo", "band_hi", "lim_lo", "lim_hi",
-                                              "mv_lo", "mv_hi", "pref")) if tl else None
+        self._tz = np.zeros(o)
+        self._input_views()
         self._slim = self._tz_lim = None     # this sample's limits in deviations (kept)
         self._zu_lim = self._u_prev_within = None
         self._plan_idx = np.minimum(np.arange(N), M - 1)
@@ -179,6 +174,30 @@ class ControllerQP:
         """Rows of ``setpoint_program`` the controller uses (now and the N samples ahead) when
         ``setpoint_preview`` is on and it is built; else 0 (the closed loop passes no program)."""
         return self._N + 1 if self.is_built and self.setpoint_preview else 0
+
+    def _input_views(self) -> None:
+        """Views of the blocks of the input vectors ``z`` (dynamic QP) and ``tz`` (steady
+        target) written each sample (u_lo, u_hi as (2, M, nu): the F-order of (nu, M))."""
+        z, off, tz, tl = self._z, self._zsl, self._tz, self._tsl
+        nu = off["u_prev"].stop - off["u_prev"].start
+        self._zv = (z[off["x0"]], z[off["u_prev"]], z[off["w"]], z[off["band_lo"]],
+                    z[off["band_hi"]], z[off["lim_lo"]], z[off["lim_hi"]],
+                    z[off["u_lo"].start:off["u_hi"].stop].reshape(2, -1, nu),
+                    z[off["rate"]], z[off["pref"]])
+        self._tzv = tuple(tz[tl[k]] for k in ("d", "w", "band_lo", "band_hi", "lim_lo", "lim_hi",
+                                              "mv_lo", "mv_hi", "pref")) if tl else None
+
+    def __getstate__(self) -> dict[str, Any]:
+        # views of z and tz would pickle as copies of their own: made again on unpickling
+        state = dict(self.__dict__)
+        state.pop("_zv", None)
+        state.pop("_tzv", None)
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        if "_z" in state:
+            self._input_views()
 
     def _sample_limits(self, mv_lo, mv_hi, cv_lo, cv_hi, sp_) -> "_SampleLimits":
         """The deviations of this sample's limits and setpoints (kept while they stay)."""

@@ -602,6 +602,15 @@ class SteadyTarget:
             return None
         return out
 
+    def __getstate__(self) -> dict[str, Any]:
+        # DAQP workspaces do not pickle: a copy sets its stages up again on first use (as
+        # after restart())
+        state = dict(self.__dict__)
+        for k in ("_daqp1", "_daqp2"):
+            if k in state:
+                state[k] = None
+        return state
+
     def restart(self) -> None:
         """Forget any state kept between solves (a rerun repeats a run)."""
         if not self.is_built:
