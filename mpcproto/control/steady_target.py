@@ -469,7 +469,7 @@ class SteadyTarget:
         stage-1 multiplier at most its linear weight: the KKT conditions of both stages)."""
         mask = np.frombuffer(pat[0], dtype=bool)
         o_lo, o_hi, rows = list(pat[1]), list(pat[2]), pat[3]
-        nx, nu, ny, k, nin = self.nx, self.nu, self.ny, self._k, self._nin
+        nu, ny, k, nin = self.nu, self.ny, self._k, self._nin
         if not k:
             return None
         sy, su, sl = self._sy, self._su, self._zsl
